@@ -1,0 +1,35 @@
+# The two commands of the README, and a few for contributors.
+# Both bootstrap .venv on a fresh clone: only Python 3.11+ and make are needed.
+
+PYTHON ?= python3
+VENV := .venv
+BIN := $(VENV)/bin
+STAMP := $(VENV)/.installed-$(shell cat pyproject.toml | cksum | cut -d' ' -f1)
+
+.PHONY: demo test lint bench clean
+
+$(BIN)/python:
+	$(PYTHON) -m venv $(VENV)
+	$(BIN)/python -m pip install --quiet --upgrade pip
+
+$(STAMP): pyproject.toml | $(BIN)/python
+	$(BIN)/python -m pip install --quiet -e ".[test]"
+	rm -f $(VENV)/.installed-*
+	touch $(STAMP)
+
+demo: $(STAMP)
+	rm -rf demo-study
+	$(BIN)/harmonize demo demo-study
+
+test: $(STAMP)
+	$(BIN)/python -m pytest -q
+	$(BIN)/ruff check harmonize cli tests
+
+lint: $(STAMP)
+	$(BIN)/ruff check harmonize cli tests benchmarks
+
+bench: $(STAMP)
+	$(BIN)/python -m benchmarks.run
+
+clean:
+	rm -rf $(VENV) demo-study .pytest_cache

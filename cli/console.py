@@ -1,0 +1,26 @@
+"""Shared rich consoles and small formatting helpers for the CLI."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import typer
+from rich.console import Console
+
+from harmonize.study import Study, load_study
+
+console = Console(highlight=False)
+err_console = Console(stderr=True, highlight=False)
+
+CAUTION = (
+    "harmonize prepares data; it does not assess stocks. Official survey protocols and "
+    "local rules on confidential data prevail."
+)
+
+
+def study_from(ctx: typer.Context) -> Study:
+    return load_study(Path(ctx.obj["study"]))
+
+
+def fmt_int(n: int) -> str:
+    return f"{n:,}"

@@ -1,0 +1,25 @@
+"""init: write a commented study folder to start from."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import typer
+from harmonize.cli.console import console
+
+from harmonize.templates import write_starter
+
+
+def register(app: typer.Typer) -> None:
+    app.command("init")(init)
+
+
+def init(folder: Path = typer.Argument(..., help="The new study folder.")) -> None:
+    """Write a commented study.toml, an example profile, empty taxa files and a domain."""
+    written = write_starter(folder)
+    for path in written:
+        console.print(f"wrote {path}")
+    console.print(
+        "next: draw your domain in domain.geojson, list taxa in taxa.csv, adapt the profile, "
+        f"then 'harmonize --study {folder} check PROFILE --events HAULS --records CATCH'"
+    )

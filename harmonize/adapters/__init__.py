@@ -1,0 +1,1 @@
+"""Source adapters: one module per source kind."""

@@ -1,0 +1,118 @@
+"""The adapter interface: read raw files -> validated canonical events, values and rejections."""
+
+from __future__ import annotations
+
+from abc import ABC, abstractmethod
+from collections.abc import Callable, Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import ClassVar
+
+import pandas as pd
+
+from harmonize.adapters.reading import RawTable, Rejections
+from harmonize.contract import fields
+from harmonize.profile import Profile
+from harmonize.study import Study
+
+#: progress(stage, done, total) — the CLI turns it into a progress bar.
+ProgressCallback = Callable[[str, int, int], None]
+
+EVENT_COLUMNS = (
+    "event_id", "event_start", "event_end", "lat", "lon", "depth_min_m", "depth_max_m",
+    "bottom_depth_m", "on_bottom", "effort", "effort_unit", "flags", "source_row", "observer_id",
+)
+VALUE_COLUMNS = (
+    "event_id", "variable", "variable_kind", "life_stage", "quantity", "value", "unit",
+    "zero_filled", "flags", "source_record_rows", "n_values", "n_vessels", "no_effort",
+)
+# no_effort (optional, default False): the value is not sampled by the event's effort (e.g. a
+# temperature measured during a haul); its effort, effort_unit and density stay null.
+
+
+@dataclass
+class InputFile:
+    """One input file and its accounting."""
+
+    role: str
+    path: Path
+    sha256: str
+    rows_read: int
+    rows_accepted: int
+    rows_quarantined: int
+
+
+@dataclass
+class AdapterOutput:
+    """What an adapter hands to the pipeline.
+
+    ``events`` has one row per accepted event with :data:`EVENT_COLUMNS` (event_start in
+    UTC, lat/lon the event's representative point); ``values`` one row per (event,
+    variable, quantity, life_stage) with :data:`VALUE_COLUMNS`; ``quarantine`` one row per
+    rejected input row (source_file, source_row, reason_code, message, raw); ``files`` the
+    per-file accounting. Events may also carry pre-computed tags (cell_id, season,
+    season_year, depth_layer) which the pipeline then keeps.
+    """
+
+    events: pd.DataFrame
+    values: pd.DataFrame
+    quarantine: pd.DataFrame
+    files: list[InputFile]
+    notes: list[str] = field(default_factory=list)
+
+
+class Adapter(ABC):
+    """A source kind. Subclasses set the class attributes and implement :meth:`read`.
+
+    Register a built-in adapter with ``register(MyAdapter)`` at the bottom of its module;
+    an outside package exposes its class in the ``harmonize.adapters`` entry-point group.
+    """
+
+    kind: ClassVar[str]
+    description: ClassVar[str]
+    #: table role -> Table Schema name in harmonize.schemas; one-table kinds use "rows".
+    tables: ClassVar[Mapping[str, str]]
+
+    def table_fields(self) -> dict[str, set[str]]:
+        """Field names per table role, for profile validation."""
+        return {role: {f.name for f in fields(schema)} for role, schema in self.tables.items()}
+
+    @abstractmethod
+    def read(
+        self,
+        inputs: Mapping[str, Path],
+        profile: Profile,
+        study: Study,
+        progress: ProgressCallback | None = None,
+    ) -> AdapterOutput:
+        """Read, validate and convert the inputs (role -> file) of one ingest."""
+
+
+def finish(
+    tables: list[RawTable],
+    rejections: Rejections,
+    events: pd.DataFrame,
+    values: pd.DataFrame,
+    notes: list[str] | None = None,
+) -> AdapterOutput:
+    """Build the AdapterOutput with per-file accounting from the rejections."""
+    files = []
+    for t in tables:
+        n_bad = rejections.count(t.role)
+        files.append(
+            InputFile(
+                role=t.role,
+                path=t.path,
+                sha256=t.sha256,
+                rows_read=t.n_rows,
+                rows_accepted=t.n_rows - n_bad,
+                rows_quarantined=n_bad,
+            )
+        )
+    return AdapterOutput(
+        events=events.reset_index(drop=True),
+        values=values.reset_index(drop=True),
+        quarantine=rejections.to_frame(tables),
+        files=files,
+        notes=list(notes or []),
+    )

@@ -1,0 +1,163 @@
+"""Steps that several adapters share: domain test, taxon names, orphan records, zero-filling."""
+
+from __future__ import annotations
+
+import numpy as np
+import pandas as pd
+
+from harmonize.adapters.reading import Rejections, closest_names
+from harmonize.errors import ReasonCode
+from harmonize.study import Study, normalise_name, taxon_lookup
+from harmonize.tagging import inside_domain, normalise_lon
+
+
+def reject_outside_domain(
+    study: Study,
+    lon: np.ndarray,
+    lat: np.ndarray,
+    positions: np.ndarray,
+    role: str,
+    rejections: Rejections,
+    what: str = "position",
+) -> np.ndarray:
+    """Quarantine rows whose point lies outside the study domain; returns the inside mask."""
+    lon = normalise_lon(lon)
+    inside = inside_domain(study.domain, lon, lat)
+    out = ~inside
+    if out.any():
+        rejections.add(
+            role, positions[out], ReasonCode.OUTSIDE_DOMAIN,
+            [f"{what} ({la:.4f}, {lo:.4f}) lies outside the study domain; check for swapped "
+             f"latitude/longitude or a sign error" for la, lo in zip(lat[out], lon[out], strict=True)],
+        )
+    return inside
+
+
+def resolve_taxa(names: pd.Series, study: Study) -> tuple[pd.Series, np.ndarray, pd.Series, pd.Series]:
+    """Canonical taxon for each name via taxa.csv names and aliases (case/space-insensitive).
+
+    Returns (canonical names with nulls where unknown, unknown mask, a message per row
+    naming the closest known names, and the closest known taxon of each unknown name).
+    The closest taxon is what a misspelt name most likely meant: adapters never infer a
+    zero for it in the same event.
+    """
+    lookup = taxon_lookup(study.taxa)
+    keys = normalise_name(names)
+    canonical = keys.map(lookup).astype("string")
+    unknown = (canonical.isna() & names.notna()).to_numpy()
+    messages = pd.Series(pd.NA, index=names.index, dtype="string")
+    best = pd.Series(pd.NA, index=names.index, dtype="string")
+    if unknown.any():
+        distinct = names[unknown].unique()
+        close = closest_names(distinct, list(lookup) + list(study.taxa["taxon"]))
+        per_name, first = {}, {}
+        for name in distinct:
+            options = list(dict.fromkeys(lookup.get(c.casefold(), c) for c in close.get(name, [])))
+            hint = f"; closest known: {', '.join(options)}" if options else "; add it (or an alias) to the taxa list"
+            per_name[name] = f"taxon '{name}' is not in the taxa list{hint}"
+            first[name] = options[0] if options else None
+        messages[unknown] = names[unknown].map(per_name)
+        best[unknown] = names[unknown].map(first)
+    return canonical, unknown, messages, best
+
+
+def reject_records_of_events(
+    records: pd.DataFrame,
+    record_alive: np.ndarray,
+    event_ids: pd.Series,
+    event_alive: np.ndarray,
+    event_rejections: pd.DataFrame,
+    rejections: Rejections,
+    event_word: str = "event",
+) -> np.ndarray:
+    """Quarantine records whose event is unknown (orphan_record) or was rejected.
+
+    A record of a rejected event gets the event's reason code, with the event's row in
+    the message. Returns the updated alive mask of the records.
+    """
+    alive = record_alive.copy()
+    rec_ids = records["event_id"]
+    known = rec_ids.isin(event_ids[event_ids.notna()]).to_numpy()
+    orphan = alive & ~known & rec_ids.notna().to_numpy()
+    if orphan.any():
+        rejections.add(
+            "records", np.flatnonzero(orphan), ReasonCode.ORPHAN_RECORD,
+            [f"{event_word} '{e}' is not in the events file" for e in rec_ids[orphan]],
+        )
+    alive &= ~orphan
+    # first occurrence of each event id decides: a later duplicate row does not count
+    first = pd.DataFrame({"event_id": event_ids, "pos": np.arange(len(event_ids)), "alive": event_alive})
+    first = first[first["event_id"].notna()].drop_duplicates("event_id")
+    dead = first[~first["alive"]].merge(event_rejections, on="pos", how="left")
+    if len(dead):
+        hit = rec_ids.isin(dead["event_id"]).to_numpy() & alive
+        if hit.any():
+            info = dead.set_index("event_id")
+            for reason, grp in pd.DataFrame({"pos": np.flatnonzero(hit), "eid": rec_ids[hit].to_numpy()}).assign(
+                reason=lambda d: info.loc[d["eid"], "reason_code"].to_numpy()
+            ).groupby("reason"):
+                rejections.add(
+                    "records", grp["pos"].to_numpy(), ReasonCode(reason),
+                    [f"its {event_word} '{e}' (events row {info.loc[e, 'pos'] + 1}) was rejected: {info.loc[e, 'message']}"
+                     for e in grp["eid"]],
+                )
+        alive &= ~hit
+    return alive
+
+
+def zero_fill(
+    events: pd.DataFrame,
+    caught: pd.DataFrame,
+    blocked: pd.DataFrame,
+    study: Study,
+    protocol: str | None,
+    quantities: list[tuple[str, str]],
+) -> pd.DataFrame:
+    """Zero rows for target taxa of the protocol that an event did not record.
+
+    Parameters
+    ----------
+    events
+        event_id and year of every accepted event.
+    caught
+        event_id, variable, life_stage of every accepted record.
+    blocked
+        event_id, variable of records that went to quarantine with a known taxon: those
+        pairs never become inferred zeros.
+    protocol
+        The profile's protocol (key into targets.csv); None means no zero-filling.
+    quantities
+        (quantity, unit) pairs the protocol records, e.g. [("biomass", "kg"), ("count", "1")].
+
+    Returns
+    -------
+    DataFrame with event_id, variable, life_stage, quantity, unit, value (0.0).
+    """
+    cols = ["event_id", "variable", "life_stage", "quantity", "unit", "value"]
+    targets = study.targets[study.targets["protocol"] == protocol] if protocol else study.targets.iloc[:0]
+    if targets.empty or events.empty or not quantities:
+        return pd.DataFrame({c: [] for c in cols})
+    pairs = events[["event_id", "year"]].merge(
+        targets.rename(columns={"taxon": "variable"})[["variable", "life_stage", "first_year", "last_year"]],
+        how="cross",
+    )
+    year = pairs["year"].astype("int64")
+    valid = (pairs["first_year"].isna() | (year >= pairs["first_year"].fillna(0))) & (
+        pairs["last_year"].isna() | (year <= pairs["last_year"].fillna(9999))
+    )
+    pairs = pairs[valid.to_numpy()]
+    # a target without a stage is met by a catch of any stage; a staged target only by that stage
+    any_stage = caught[["event_id", "variable"]].drop_duplicates().assign(_hit=True)
+    staged = caught[["event_id", "variable", "life_stage"]].dropna().drop_duplicates().assign(_hit_stage=True)
+    pairs = pairs.merge(any_stage, on=["event_id", "variable"], how="left")
+    pairs = pairs.merge(staged, on=["event_id", "variable", "life_stage"], how="left")
+    met = np.where(pairs["life_stage"].isna(), pairs["_hit"].notna(), pairs["_hit_stage"].notna())
+    pairs = pairs[~met]
+    if len(blocked):
+        pairs = pairs.merge(blocked[["event_id", "variable"]].drop_duplicates().assign(_blocked=True),
+                            on=["event_id", "variable"], how="left")
+        pairs = pairs[pairs["_blocked"].isna()]
+    q = pd.DataFrame(quantities, columns=["quantity", "unit"])
+    zeros = pairs[["event_id", "variable", "life_stage"]].merge(q, how="cross")
+    zeros["value"] = 0.0
+    return zeros[cols].reset_index(drop=True)

@@ -1,0 +1,472 @@
+"""Shared reading and field validation for tabular adapters.
+
+Files are read as text (every cell a string) so that a bad cell can be reported with its
+row, column and content; fields are then typed, unit-converted and checked against the
+adapter's Table Schema with pandera, and every failure becomes a quarantine entry.
+"""
+
+from __future__ import annotations
+
+import csv
+import difflib
+import hashlib
+import io
+import json
+from collections.abc import Iterable, Mapping, Sequence
+from dataclasses import dataclass
+from datetime import UTC, datetime, timedelta
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+import pandera.errors
+
+from harmonize import units
+from harmonize.contract import FieldSpec, pandera_schema
+from harmonize.errors import ConfigError, InputFileError, ReasonCode
+from harmonize.profile import Profile
+
+NA_TOKENS = frozenset({"", "na", "n/a", "nan", "null", "none", "-"})
+_TRUE = frozenset({"true", "t", "yes", "y", "1"})
+_FALSE = frozenset({"false", "f", "no", "n", "0"})
+MAX_FIELD_CHARS = 1_000_000
+
+
+@dataclass
+class RawTable:
+    """One input file as text: original column names, one string per cell."""
+
+    path: Path
+    role: str
+    frame: pd.DataFrame
+    sha256: str
+
+    @property
+    def n_rows(self) -> int:
+        return len(self.frame)
+
+    def raw_json(self, positions: np.ndarray) -> list[str]:
+        """The rows at ``positions`` as JSON objects keyed by the provider's column names."""
+        sub = self.frame.iloc[positions]
+        return [json.dumps(rec, ensure_ascii=False) for rec in sub.to_dict("records")]
+
+
+def file_sha256(path: Path) -> str:
+    digest = hashlib.sha256()
+    with open(path, "rb") as fh:
+        for block in iter(lambda: fh.read(1 << 20), b""):
+            digest.update(block)
+    return digest.hexdigest()
+
+
+def read_table(path: Path, profile: Profile, role: str) -> tuple[RawTable, list[tuple[int, str]]]:
+    """Read a CSV/TSV (or parquet) file as strings.
+
+    Returns the table and the malformed lines (1-based data row, raw text) whose number of
+    fields differs from the header; those rows stay in the table (all cells empty except
+    a marker) so that the caller quarantines them and the row numbering stays intact.
+
+    Raises
+    ------
+    InputFileError
+        Empty file, undecodable text, no header, duplicate column names.
+    """
+    path = Path(path)
+    if not path.is_file():
+        raise InputFileError(path, "no such file")
+    sha = file_sha256(path)
+    if path.suffix.lower() == ".parquet":
+        import pyarrow.parquet as pq
+
+        frame = pq.read_table(path).to_pandas().astype("string")
+        frame = frame.fillna("")
+        return RawTable(path, role, frame.astype(object), sha), []
+
+    data = path.read_bytes()
+    if not data.strip():
+        raise InputFileError(path, "the file is empty; expected a header row and data rows")
+    encoding = "utf-8-sig" if profile.encoding.lower().replace("_", "-") in ("utf-8", "utf8") else profile.encoding
+    try:
+        text = data.decode(encoding)
+    except UnicodeDecodeError as exc:
+        raise InputFileError(
+            path,
+            f"is not valid {profile.encoding} text (byte 0x{data[exc.start]:02x} at offset {exc.start}); "
+            "re-save it as UTF-8 or set [source] encoding in the profile (e.g. \"latin-1\")",
+        ) from None
+    delimiter = profile.delimiter or _sniff_delimiter(text, path)
+    csv.field_size_limit(MAX_FIELD_CHARS)
+    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
+    try:
+        header = next(reader)
+        while not any(c.strip() for c in header):
+            header = next(reader)
+    except StopIteration:
+        raise InputFileError(path, "the file has no header row") from None
+    except csv.Error as exc:
+        raise InputFileError(path, f"the header row cannot be read ({exc})") from None
+    header = [h.strip().lstrip("\ufeff") for h in header]
+    dupes = sorted({h for h in header if header.count(h) > 1 and h})
+    if dupes:
+        raise InputFileError(path, f"column name(s) {dupes} appear more than once in the header")
+    width = len(header)
+    rows: list[list[str]] = []
+    malformed: list[tuple[int, str]] = []
+    try:
+        for cells in reader:
+            if not cells or not any(c.strip() for c in cells):
+                continue  # blank lines are not data rows
+            if len(cells) != width:
+                malformed.append((len(rows) + 1, delimiter.join(cells)))
+                cells = [""] * width
+            rows.append(cells)
+    except csv.Error as exc:
+        raise InputFileError(
+            path, f"cannot be parsed as CSV after data row {len(rows)} ({exc}); check quoting"
+        ) from None
+    if not rows:
+        raise InputFileError(path, "the file has a header but no data rows")
+    frame = pd.DataFrame(rows, columns=header, dtype=object)
+    return RawTable(path, role, frame, sha), malformed
+
+
+def _sniff_delimiter(text: str, path: Path) -> str:
+    if path.suffix.lower() in (".tsv", ".tab"):
+        return "\t"
+    first = text.lstrip("\ufeff").splitlines()[0] if text else ""
+    counts = {d: first.count(d) for d in (",", ";", "\t", "|")}
+    best = max(counts, key=lambda d: counts[d])
+    return best if counts[best] > 0 else ","
+
+
+class Rejections:
+    """Collects rejected rows; the first reason given for a row is the one stored."""
+
+    def __init__(self) -> None:
+        self._parts: list[pd.DataFrame] = []
+
+    def add(
+        self,
+        role: str,
+        positions: Iterable[int] | np.ndarray,
+        reason: ReasonCode,
+        messages: str | Sequence[str] | pd.Series,
+    ) -> None:
+        pos = np.asarray(list(positions) if not isinstance(positions, np.ndarray) else positions, dtype=np.int64)
+        if pos.size == 0:
+            return
+        if isinstance(messages, str):
+            msgs: Any = [messages] * pos.size
+        else:
+            msgs = list(messages)
+        self._parts.append(
+            pd.DataFrame({"role": role, "pos": pos, "reason_code": str(reason), "message": msgs})
+        )
+
+    def _all(self) -> pd.DataFrame:
+        if not self._parts:
+            return pd.DataFrame({"role": [], "pos": np.array([], dtype=np.int64), "reason_code": [], "message": []})
+        return pd.concat(self._parts, ignore_index=True)
+
+    def mask(self, role: str, n: int) -> np.ndarray:
+        """Boolean mask over the ``n`` rows of a table: True where rejected."""
+        out = np.zeros(n, dtype=bool)
+        for part in self._parts:
+            sel = part["pos"].to_numpy()[part["role"].to_numpy() == role]
+            out[sel] = True
+        return out
+
+    def count(self, role: str) -> int:
+        allr = self._all()
+        return int(allr.loc[allr["role"] == role, "pos"].nunique())
+
+    def first_reasons(self, role: str) -> pd.DataFrame:
+        """pos, reason_code, message of each rejected row of a table (first reason)."""
+        allr = self._all()
+        return allr[allr["role"] == role].drop_duplicates("pos")[["pos", "reason_code", "message"]]
+
+    def to_frame(self, tables: Sequence[RawTable]) -> pd.DataFrame:
+        """The quarantine rows: source_file, source_row, reason_code, message, raw."""
+        allr = self._all()
+        out = []
+        for table in tables:
+            part = allr[allr["role"] == table.role]
+            if part.empty:
+                continue
+            grouped = part.groupby("pos", sort=True)
+            first = grouped.first()
+            n_more = grouped.size() - 1
+            extra = grouped["message"].agg(lambda m: "; also: " + "; ".join(list(dict.fromkeys(m))[1:3]) if len(set(m)) > 1 else "")
+            pos = first.index.to_numpy()
+            out.append(
+                pd.DataFrame(
+                    {
+                        "source_file": table.path.name,
+                        "source_row": pos + 1,
+                        "reason_code": first["reason_code"].to_numpy(),
+                        "message": (first["message"] + extra).to_numpy(),
+                        "raw": table.raw_json(pos),
+                        "n_problems": (n_more + 1).to_numpy(),
+                    }
+                )
+            )
+        if not out:
+            return pd.DataFrame(
+                {"source_file": [], "source_row": np.array([], dtype=np.int64), "reason_code": [],
+                 "message": [], "raw": [], "n_problems": np.array([], dtype=np.int64)}
+            )
+        return pd.concat(out, ignore_index=True)
+
+
+def resolve_columns(
+    table: RawTable, specs: Sequence[FieldSpec], profile: Profile
+) -> dict[str, str]:
+    """Adapter field -> file column for the fields this file provides.
+
+    A field the profile maps must exist in the file; an unmapped field is looked for under
+    its own name (case-insensitive). A required field with neither column nor constant is
+    an error naming the profile section to fill in.
+    """
+    mapping = dict(profile.column_map(table.role))
+    columns = list(table.frame.columns)
+    by_fold = {c.casefold(): c for c in columns}
+    section = "[columns]" if table.role == "rows" else f"[columns.{table.role}]"
+    found: dict[str, str] = {}
+    for spec in specs:
+        if spec.name in mapping:
+            col = mapping[spec.name]
+            actual = col if col in columns else by_fold.get(col.casefold())
+            if actual is None:
+                close = difflib.get_close_matches(col, columns, n=3)
+                hint = f" (closest: {', '.join(close)})" if close else ""
+                raise InputFileError(
+                    table.path,
+                    f"column '{col}', which {profile.path.name} {section} maps to field "
+                    f"'{spec.name}', is not in the file{hint}; columns are: {', '.join(columns)}",
+                )
+            found[spec.name] = actual
+        elif spec.name.casefold() in by_fold:
+            found[spec.name] = by_fold[spec.name.casefold()]
+        elif spec.required and spec.name not in profile.constants:
+            raise InputFileError(
+                table.path,
+                f"required field '{spec.name}' ({spec.description.rstrip('.')}) has no column; "
+                f"map it in {section} of {profile.path.name} or add a column named '{spec.name}'. "
+                f"Columns are: {', '.join(columns)}",
+            )
+    return found
+
+
+def coerce_fields(
+    table: RawTable,
+    specs: Sequence[FieldSpec],
+    profile: Profile,
+    rejections: Rejections,
+    schema_name: str,
+    malformed: Sequence[tuple[int, str]] = (),
+) -> pd.DataFrame:
+    """Typed, unit-converted field frame of a table, with bad cells sent to ``rejections``.
+
+    Columns are the adapter's field names (absent optional fields are all-null columns);
+    the index is the 0-based position of the row in the file.
+    """
+    found = resolve_columns(table, specs, profile)
+    n = table.n_rows
+    if malformed:
+        pos = np.array([r - 1 for r, _ in malformed])
+        rejections.add(
+            table.role, pos, ReasonCode.BAD_TYPE,
+            [f"row has a different number of fields than the header ({len(table.frame.columns)} columns); "
+             "check delimiters and quotes" for _ in malformed],
+        )
+    out: dict[str, pd.Series] = {}
+    for spec in specs:
+        if spec.name in found:
+            col = found[spec.name]
+            text = table.frame[col].astype("string").str.strip()
+            null = text.isna() | text.str.casefold().isin(NA_TOKENS)
+            text = text.mask(null)
+            label = f"{spec.name} (column '{col}')" if col != spec.name else f"column '{col}'"
+        elif spec.name in profile.constants:
+            text = pd.Series([str(profile.constants[spec.name])] * n, dtype="string")
+            null = pd.Series(np.zeros(n, dtype=bool))
+            label = f"{spec.name} (constant in {profile.path.name})"
+        else:
+            out[spec.name] = _empty(spec, n)
+            continue
+        out[spec.name] = _typed(text, null, spec, label, table, profile, rejections)
+    frame = pd.DataFrame(out, index=pd.RangeIndex(n))
+    _check_constraints(frame, specs, found, table, rejections, schema_name, profile)
+    return frame
+
+
+def _empty(spec: FieldSpec, n: int) -> pd.Series:
+    if spec.type == "number":
+        return pd.Series(np.full(n, np.nan))
+    if spec.type == "datetime":
+        return pd.Series(pd.NaT, index=range(n), dtype="datetime64[us]")
+    if spec.type == "boolean":
+        return pd.Series([pd.NA] * n, dtype="boolean")
+    if spec.type == "integer":
+        return pd.Series([pd.NA] * n, dtype="Int64")
+    return pd.Series([pd.NA] * n, dtype="string")
+
+
+def _typed(
+    text: pd.Series,
+    null: pd.Series,
+    spec: FieldSpec,
+    label: str,
+    table: RawTable,
+    profile: Profile,
+    rejections: Rejections,
+) -> pd.Series:
+    role = table.role
+    if spec.type in ("number", "integer"):
+        values = pd.to_numeric(text, errors="coerce").astype("float64")
+        bad = (~null & values.isna()).to_numpy()
+        if bad.any():
+            rejections.add(
+                role, np.flatnonzero(bad), ReasonCode.BAD_TYPE,
+                [f"{label} holds '{_short(v)}', which is not a number" for v in text[bad]],
+            )
+        infinite = np.isinf(values.to_numpy())
+        if infinite.any():
+            rejections.add(role, np.flatnonzero(infinite), ReasonCode.OUT_OF_RANGE, f"{label} is not a finite number")
+            values = values.mask(infinite)
+        if spec.dimension and spec.name in profile.units:
+            unit = profile.units[spec.name]
+            if not units.is_known(spec.dimension, unit):
+                raise ConfigError(
+                    profile.path, f"units.{spec.name}",
+                    f"'{unit}' is not a known {spec.dimension} unit; use one of {', '.join(units.known_units(spec.dimension))}",
+                )
+            values = pd.Series(units.to_canonical(values.to_numpy(), spec.dimension, unit), index=values.index)
+        if spec.type == "integer":
+            frac = (values % 1 != 0) & values.notna()
+            if frac.any():
+                rejections.add(role, np.flatnonzero(frac.to_numpy()), ReasonCode.BAD_TYPE, f"{label} must be a whole number")
+        return values
+    if spec.type == "boolean":
+        folded = text.str.casefold()
+        values = pd.Series(pd.NA, index=text.index, dtype="boolean")
+        values[folded.isin(_TRUE).fillna(False).to_numpy()] = True
+        values[folded.isin(_FALSE).fillna(False).to_numpy()] = False
+        bad = (~null & values.isna()).to_numpy()
+        if bad.any():
+            rejections.add(
+                role, np.flatnonzero(bad), ReasonCode.BAD_TYPE,
+                [f"{label} holds '{_short(v)}'; expected true or false" for v in text[bad]],
+            )
+        return values
+    if spec.type == "datetime":
+        values, bad, future = parse_times(text, profile)
+        if bad.any():
+            rejections.add(
+                role, np.flatnonzero(bad), ReasonCode.BAD_TIME,
+                [f"{label} holds '{_short(v)}', which is not a date-time (expected e.g. 2021-06-14T08:30)" for v in text[bad]],
+            )
+        if future.any():
+            rejections.add(role, np.flatnonzero(future), ReasonCode.BAD_TIME, f"{label} lies in the future")
+        return values
+    return text.astype("string")
+
+
+def parse_times(text: pd.Series, profile: Profile) -> tuple[pd.Series, np.ndarray, np.ndarray]:
+    """Parse date-time strings into naive UTC timestamps.
+
+    Strings with an offset (Z, +02:00) are converted to UTC; strings without one are read in
+    the profile's time zone. Returns (timestamps, unparseable mask, future mask).
+    """
+    present = text.notna().to_numpy()
+    has_zone = text.str.contains(r"(?:[zZ]|[+-]\d{2}:?\d{2})$", regex=True).fillna(False).to_numpy()
+    out = pd.Series(pd.NaT, index=text.index, dtype="datetime64[us]")
+    fmt = profile.time_format or "ISO8601"
+    for zoned in (True, False):
+        sel = present & (has_zone == zoned)
+        if not sel.any():
+            continue
+        part = text[sel]
+        parsed = pd.to_datetime(part, format=fmt, errors="coerce", utc=zoned, dayfirst=profile.dayfirst)
+        retry = parsed.isna()
+        if retry.any() and profile.time_format is None:
+            again = pd.to_datetime(part[retry], format="mixed", errors="coerce", utc=zoned, dayfirst=profile.dayfirst)
+            parsed = parsed.copy()
+            parsed[retry] = again
+        if zoned:
+            parsed = parsed.dt.tz_convert("UTC").dt.tz_localize(None)
+        elif profile.timezone != "UTC":
+            parsed = (
+                parsed.dt.tz_localize(profile.timezone, ambiguous="NaT", nonexistent="NaT")
+                .dt.tz_convert("UTC")
+                .dt.tz_localize(None)
+            )
+        out[sel] = parsed.astype("datetime64[us]").to_numpy()
+    bad = present & out.isna().to_numpy()
+    now = datetime.now(UTC).replace(tzinfo=None) + timedelta(days=1)
+    future = (out > pd.Timestamp(now)).fillna(False).to_numpy()
+    return out, bad, future
+
+
+def _check_constraints(
+    frame: pd.DataFrame,
+    specs: Sequence[FieldSpec],
+    found: Mapping[str, str],
+    table: RawTable,
+    rejections: Rejections,
+    schema_name: str,
+    profile: Profile,
+) -> None:
+    """Required fields and ranges, validated lazily by pandera from the Table Schema."""
+    already = rejections.mask(table.role, table.n_rows)
+    try:
+        pandera_schema(schema_name).validate(frame[~already], lazy=True)
+    except pandera.errors.SchemaErrors as err:
+        cases = err.failure_cases
+        cases = cases[cases["index"].notna()]
+        by_name = {s.name: s for s in specs}
+        for (column, check), part in cases.groupby(["column", "check"], sort=False):
+            spec = by_name.get(str(column))
+            if spec is None:
+                continue
+            pos = part["index"].astype(np.int64).to_numpy()
+            col = found.get(spec.name)
+            label = f"{spec.name} (column '{col}')" if col and col != spec.name else f"column '{col or spec.name}'"
+            if str(check) == "not_nullable":
+                rejections.add(table.role, pos, ReasonCode.MISSING_VALUE, f"{label} is empty; {spec.description[:1].lower()}{spec.description[1:].rstrip('.')} is required")
+            else:
+                raw_col = table.frame[col] if col in table.frame else None
+                shown = [str(raw_col.iloc[p]).strip() if raw_col is not None else _fmt(v)
+                         for p, v in zip(pos, part["failure_case"], strict=True)]
+                given = profile.units.get(spec.name) or (spec.unit if spec.unit not in (None, "1", "degree_north", "degree_east") else "")
+                unit = f" {given}" if given else ""
+                canon = f" {spec.unit}" if spec.unit not in (None, "1", "degree_north", "degree_east") else ""
+                hint = ""
+                if spec.name.endswith("lat"):
+                    hint = "; are latitude and longitude swapped?"
+                rejections.add(
+                    table.role, pos, ReasonCode.OUT_OF_RANGE,
+                    [f"{label} = {v}{unit} is outside the allowed range ({spec.range_text()}{canon}){hint}" for v in shown],
+                )
+
+
+def _fmt(value: Any) -> str:
+    try:
+        return f"{float(value):g}"
+    except (TypeError, ValueError):
+        return str(value)
+
+
+def _short(value: Any, limit: int = 60) -> str:
+    text = str(value)
+    return text if len(text) <= limit else text[: limit - 3] + "..."
+
+
+def closest_names(unknown: Iterable[str], known: Sequence[str], n: int = 3) -> dict[str, list[str]]:
+    """For each unknown name, the closest known names (for actionable messages)."""
+    folded = {k.casefold(): k for k in known}
+    return {
+        u: [folded[c] for c in difflib.get_close_matches(u.casefold(), list(folded), n=n, cutoff=0.6)]
+        for u in unknown
+    }

@@ -1,0 +1,257 @@
+"""Bottom-trawl surveys: hauls (events) and catch by taxon (records); effort = area swept.
+
+Area swept a = D x w: distance towed times the effective net width (the swept-area method,
+Sparre and Venema 1998, FAO Fisheries Technical Paper 306/1 Rev. 2, section 13.5). The
+distance is the WGS84 geodesic between start and end positions (pyproj.Geod, Karney 2013);
+without an end position, a given distance; without either, speed x duration.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping
+from pathlib import Path
+
+import numpy as np
+import pandas as pd
+import pyproj
+
+from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
+from harmonize.adapters.common import (
+    reject_outside_domain,
+    reject_records_of_events,
+    resolve_taxa,
+    zero_fill,
+)
+from harmonize.adapters.reading import Rejections, coerce_fields, read_table, resolve_columns
+from harmonize.adapters.registry import register
+from harmonize.contract import fields
+from harmonize.errors import ReasonCode
+from harmonize.profile import Profile
+from harmonize.study import Study
+from harmonize.tagging import normalise_lon
+
+#: Towing speeds outside this window (knots) are not a survey tow. Standard survey tows run
+#: at 3-4 knots (common practice); the window is wide on purpose.
+TOW_SPEED_KN = (0.5, 8.0)
+KM_PER_NMI = 1.852  # exact, by definition of the international nautical mile
+_GEOD = pyproj.Geod(ellps="WGS84")
+
+
+def tow_geometry(
+    start_lon: np.ndarray, start_lat: np.ndarray, end_lon: np.ndarray, end_lat: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Geodesic tow length (km) on WGS84 and the geodesic midpoint (lon, lat) of each tow."""
+    az, _, dist_m = _GEOD.inv(start_lon, start_lat, end_lon, end_lat)
+    mid_lon, mid_lat, _ = _GEOD.fwd(start_lon, start_lat, az, dist_m / 2.0)
+    return np.asarray(dist_m) / 1000.0, normalise_lon(mid_lon), np.asarray(mid_lat)
+
+
+def area_swept_km2(distance_km: np.ndarray, net_width_m: np.ndarray) -> np.ndarray:
+    """Swept area a = D x w, in km2 (Sparre and Venema 1998, section 13.5)."""
+    return np.asarray(distance_km, float) * np.asarray(net_width_m, float) / 1000.0
+
+
+@register
+class TrawlAdapter(Adapter):
+    kind = "trawl"
+    description = "Bottom-trawl hauls and their catch by taxon; effort = area swept (km2)."
+    tables = {"events": "trawl_events", "records": "trawl_records"}
+
+    def read(
+        self,
+        inputs: Mapping[str, Path],
+        profile: Profile,
+        study: Study,
+        progress: ProgressCallback | None = None,
+    ) -> AdapterOutput:
+        rej = Rejections()
+        ev_raw, ev_bad = read_table(inputs["events"], profile, "events")
+        rc_raw, rc_bad = read_table(inputs["records"], profile, "records")
+        if progress:
+            progress("read", 1, 3)
+        ev = coerce_fields(ev_raw, fields("trawl_events"), profile, rej, "trawl_events", ev_bad)
+        rc = coerce_fields(rc_raw, fields("trawl_records"), profile, rej, "trawl_records", rc_bad)
+        if progress:
+            progress("validate", 2, 3)
+
+        hauls, flags = self._hauls(ev, study, rej)
+        ev_alive = ~rej.mask("events", len(ev))
+        rc_alive = ~rej.mask("records", len(rc))
+        rc_alive = reject_records_of_events(
+            rc, rc_alive, ev["event_id"], ev_alive, rej.first_reasons("events"), rej, "haul"
+        )
+        # taxon names and quantities of the catch rows that are still alive
+        taxon, unknown, messages, guess = resolve_taxa(rc["taxon"], study)
+        unknown = unknown & rc_alive
+        rej.add("records", np.flatnonzero(unknown), ReasonCode.UNKNOWN_TAXON, messages[unknown])
+        no_quantity = rc_alive & rc["weight"].isna().to_numpy() & rc["count"].isna().to_numpy()
+        rej.add("records", np.flatnonzero(no_quantity & ~unknown), ReasonCode.MISSING_VALUE,
+                "catch row has neither a weight nor a count")
+        rc_ok = ~rej.mask("records", len(rc))
+
+        # A quarantined catch row of a live haul makes that haul's catch incomplete, and
+        # its taxon (when known) is never zero-filled for that haul.
+        lost = ~rc_ok & rc["event_id"].isin(ev["event_id"][ev_alive]).to_numpy()
+        incomplete = set(rc["event_id"][lost].dropna())
+        blocked = pd.DataFrame({"event_id": rc["event_id"][lost], "variable": taxon.fillna(guess)[lost]}).dropna()
+
+        catch = pd.DataFrame({
+            "event_id": rc["event_id"][rc_ok],
+            "variable": taxon[rc_ok],
+            "life_stage": rc["life_stage"][rc_ok].str.casefold(),
+            "weight": rc["weight"][rc_ok],
+            "count": rc["count"][rc_ok],
+            "row": np.flatnonzero(rc_ok) + 1,
+        })
+        values = _catch_values(catch)
+        # the protocol records the quantities the catch file has a column for
+        provided = resolve_columns(rc_raw, fields("trawl_records"), profile)
+        quantities = [(q, u) for q, u, col in (("biomass", "kg", "weight"), ("count", "1", "count"))
+                      if col in provided or col in profile.constants]
+        zeros = zero_fill(
+            hauls.assign(year=hauls["event_start"].dt.year)[["event_id", "year"]],
+            catch[["event_id", "variable", "life_stage"]],
+            blocked, study, profile.protocol, quantities,
+        )
+        zeros = zeros.assign(variable_kind="taxon", zero_filled=True,
+                             flags=[[] for _ in range(len(zeros))],
+                             source_record_rows=[[] for _ in range(len(zeros))], n_values=0)
+        temps = _temperature_values(hauls)
+        values = pd.concat([values, zeros, temps], ignore_index=True)
+        values["n_vessels"] = pd.NA
+
+        hauls["flags"] = [
+            f + (["catch_incomplete"] if e in incomplete else [])
+            for f, e in zip(flags, hauls["event_id"], strict=True)
+        ]
+        if progress:
+            progress("convert", 3, 3)
+        return finish([ev_raw, rc_raw], rej, hauls.drop(columns=["bottom_temperature"]), values)
+
+    @staticmethod
+    def _hauls(ev: pd.DataFrame, study: Study, rej: Rejections) -> tuple[pd.DataFrame, list[list[str]]]:
+        """Validate hauls and compute distance, duration, area swept and the tow midpoint."""
+        n = len(ev)
+        pos = np.arange(n)
+        dup = ev["event_id"].duplicated(keep="first").to_numpy() & ev["event_id"].notna().to_numpy()
+        rej.add("events", pos[dup], ReasonCode.DUPLICATE_RECORD,
+                [f"haul '{e}' appears earlier in the file; only the first row is kept" for e in ev["event_id"][dup]])
+
+        start, end = ev["start_time"], ev["end_time"]
+        alive = ~rej.mask("events", n)
+        backwards = alive & (end < start).fillna(False).to_numpy()
+        rej.add("events", pos[backwards], ReasonCode.END_BEFORE_START,
+                [f"end_time {e} is before start_time {s}" for s, e in zip(start[backwards], end[backwards], strict=True)])
+        alive &= ~backwards
+        duration_h = ((end - start).dt.total_seconds() / 3600.0).to_numpy(dtype=float, na_value=np.nan)
+        duration_h = np.where(np.isnan(duration_h), ev["duration"].to_numpy(float), duration_h)
+        zero_time = alive & (duration_h <= 0)
+        rej.add("events", pos[zero_time], ReasonCode.BAD_EFFORT, "tow duration is 0; start and end times are equal")
+        alive &= ~zero_time
+
+        slon, slat = ev["start_lon"].to_numpy(float), ev["start_lat"].to_numpy(float)
+        elon, elat = ev["end_lon"].to_numpy(float), ev["end_lat"].to_numpy(float)
+        have_end = np.isfinite(elon) & np.isfinite(elat) & np.isfinite(slon) & np.isfinite(slat)
+        geo_km, mid_lon, mid_lat = tow_geometry(
+            np.where(have_end, slon, 0), np.where(have_end, slat, 0),
+            np.where(have_end, elon, 0), np.where(have_end, elat, 0),
+        )
+        given_km = ev["distance"].to_numpy(float)
+        speed_kn = ev["speed"].to_numpy(float)
+        derived_km = speed_kn * KM_PER_NMI * duration_h
+        distance_km = np.where(have_end, geo_km, np.where(np.isfinite(given_km), given_km, derived_km))
+        speed_derived = ~have_end & ~np.isfinite(given_km) & np.isfinite(derived_km)
+        no_distance = alive & ~np.isfinite(distance_km)
+        rej.add("events", pos[no_distance], ReasonCode.MISSING_VALUE,
+                "distance towed cannot be computed: give end_lat/end_lon, a distance, or speed and duration")
+        alive &= ~no_distance
+        lon = np.where(have_end, mid_lon, normalise_lon(slon))
+        lat = np.where(have_end, mid_lat, slat)
+
+        width_m = ev["net_width_m"].to_numpy(float)
+        area_km2 = area_swept_km2(distance_km, width_m)
+        zero_area = alive & (area_km2 <= 0)
+        rej.add("events", pos[zero_area], ReasonCode.BAD_EFFORT,
+                "area swept is 0: start and end positions are the same; check the end position")
+        alive &= ~zero_area
+        with np.errstate(invalid="ignore", divide="ignore"):
+            tow_speed = distance_km / KM_PER_NMI / duration_h
+        lo, hi = TOW_SPEED_KN
+        bad_speed = alive & np.isfinite(tow_speed) & ((tow_speed < lo) | (tow_speed > hi))
+        rej.add("events", pos[bad_speed], ReasonCode.IMPLAUSIBLE_SPEED,
+                [f"towing speed {v:.2f} knots ({d:.3f} km in {h * 60:.0f} min) is outside {lo:g}-{hi:g} knots; "
+                 "check positions, times and units" for v, d, h in
+                 zip(tow_speed[bad_speed], distance_km[bad_speed], duration_h[bad_speed], strict=True)])
+        alive &= ~bad_speed
+        checkable = alive & np.isfinite(lon) & np.isfinite(lat)
+        reject_outside_domain(study, lon[checkable], lat[checkable], pos[checkable], "events", rej, "tow midpoint")
+        alive = ~rej.mask("events", n)
+
+        gear = ev["gear_depth_m"].to_numpy(float)
+        bottom = ev["bottom_depth_m"].to_numpy(float)
+        on_bottom = ~np.isfinite(gear)
+        depth = np.where(on_bottom, bottom, gear)
+        event_end = end.where(end.notna(), start + pd.to_timedelta(duration_h, unit="h"))
+        hauls = pd.DataFrame({
+            "event_id": ev["event_id"],
+            "event_start": start,
+            "event_end": event_end,
+            "lat": lat,
+            "lon": lon,
+            "depth_min_m": depth,
+            "depth_max_m": depth,
+            "bottom_depth_m": bottom,
+            "on_bottom": on_bottom,
+            "effort": area_km2,
+            "effort_unit": "km2",
+            "source_row": pos + 1,
+            "observer_id": pd.NA,
+            "bottom_temperature": ev["bottom_temperature"],
+        })[alive].reset_index(drop=True)
+        flag_lists = []
+        for derived, given, checked in zip(speed_derived[alive], (~have_end & np.isfinite(given_km))[alive],
+                                           np.isfinite(tow_speed)[alive], strict=True):
+            f = []
+            if derived:
+                f.append("speed_derived")
+            if given:
+                f.append("distance_given")
+            if not checked:
+                f.append("speed_unchecked")
+            flag_lists.append(f)
+        return hauls, flag_lists
+
+
+def _catch_values(catch: pd.DataFrame) -> pd.DataFrame:
+    """Long rows (biomass, count) per haul x taxon x life stage; several rows are summed."""
+    keys = ["event_id", "variable", "life_stage"]
+    grouped = catch.groupby(keys, dropna=False, sort=False)
+    agg = grouped.agg(
+        weight=("weight", lambda s: s.sum(min_count=1)),
+        count=("count", lambda s: s.sum(min_count=1)),
+        rows=("row", list),
+        n=("row", "size"),
+    ).reset_index()
+    parts = []
+    for quantity, unit, col in (("biomass", "kg", "weight"), ("count", "1", "count")):
+        part = agg[agg[col].notna()]
+        parts.append(pd.DataFrame({
+            "event_id": part["event_id"], "variable": part["variable"], "life_stage": part["life_stage"],
+            "quantity": quantity, "unit": unit, "value": part[col].astype(float),
+            "variable_kind": "taxon", "zero_filled": False,
+            "flags": [["merged_rows"] if k > 1 else [] for k in part["n"]],
+            "source_record_rows": part["rows"], "n_values": part["n"],
+        }))
+    return pd.concat(parts, ignore_index=True)
+
+
+def _temperature_values(hauls: pd.DataFrame) -> pd.DataFrame:
+    """Bottom temperature measured at the haul, as a physical variable (CF standard name)."""
+    t = hauls[hauls["bottom_temperature"].notna()]
+    return pd.DataFrame({
+        "event_id": t["event_id"], "variable": "sea_water_temperature_at_sea_floor",
+        "variable_kind": "physical", "life_stage": pd.NA, "quantity": "measurement",
+        "value": t["bottom_temperature"].astype(float), "unit": "degC", "zero_filled": False,
+        "flags": [[] for _ in range(len(t))], "source_record_rows": [[] for _ in range(len(t))],
+        "n_values": 1, "no_effort": True,
+    })

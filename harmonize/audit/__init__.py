@@ -1,0 +1,1 @@
+"""Coverage audit: metrics in SQL, findings, report."""

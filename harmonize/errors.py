@@ -1,0 +1,71 @@
+"""Error classes, warning class and the stable reason codes of the quarantine table."""
+
+from __future__ import annotations
+
+from enum import StrEnum
+
+
+class ReasonCode(StrEnum):
+    """Why an input row was rejected. Codes are stable: never reuse one for another meaning."""
+
+    MISSING_VALUE = "missing_value"
+    BAD_TYPE = "bad_type"
+    OUT_OF_RANGE = "out_of_range"
+    BAD_TIME = "bad_time"
+    END_BEFORE_START = "end_before_start"
+    OUTSIDE_DOMAIN = "outside_domain"
+    UNKNOWN_TAXON = "unknown_taxon"
+    ORPHAN_RECORD = "orphan_record"
+    DUPLICATE_RECORD = "duplicate_record"
+    BAD_EFFORT = "bad_effort"
+    UNIT_MISMATCH = "unit_mismatch"
+    IMPLAUSIBLE_SPEED = "implausible_speed"
+    # added beyond the contract's first list
+    REJECTED_EVENT = "rejected_event"
+    FUTURE_TIME = "future_time"
+    TIME_BACKWARDS = "time_backwards"
+    CLOGGED_NET = "clogged_net"
+
+
+class HarmonizeError(Exception):
+    """Base class of every error harmonize raises on purpose."""
+
+
+class ConfigError(HarmonizeError):
+    """The study or a profile is wrong: names the file, the key and what is expected."""
+
+    def __init__(self, file: object, key: str | None, problem: str) -> None:
+        self.file = str(file)
+        self.key = key
+        self.problem = problem
+        where = f"{self.file}: {key}: " if key else f"{self.file}: "
+        super().__init__(where + problem)
+
+
+class InputFileError(HarmonizeError):
+    """An input file cannot be read as a whole (missing column, encoding, empty, ...)."""
+
+    def __init__(self, file: object, problem: str) -> None:
+        self.file = str(file)
+        self.problem = problem
+        super().__init__(f"{self.file}: {problem}")
+
+
+class AdapterNotFoundError(HarmonizeError):
+    """No adapter is registered for a source kind."""
+
+
+class StoreBusyError(HarmonizeError):
+    """Another process holds the store."""
+
+
+class StoreError(HarmonizeError):
+    """The store is missing, from another version, or fails its integrity check."""
+
+
+class DuplicateIngestError(HarmonizeError):
+    """A file was already ingested under another configuration (use --replace)."""
+
+
+class HarmonizeWarning(UserWarning):
+    """Warnings harmonize emits itself (turned into errors in the test suite)."""

@@ -1,0 +1,1 @@
+"""Exports of the store for models, GIS and publishing."""

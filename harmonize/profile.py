@@ -1,0 +1,233 @@
+"""Provider profiles: how one provider's files map onto an adapter's fields."""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import tomllib
+import zoneinfo
+from collections.abc import Mapping
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+from harmonize.errors import ConfigError
+from harmonize.study import Study, resolve_inside
+
+KINDS = ("trawl", "plankton", "transect", "opportunistic", "gridded", "effort")
+PROVIDER_TYPES = ("agency", "volunteer", "industry", "model", "remote_sensing")
+_SOURCE_KEYS = {
+    "id", "kind", "provider_type", "protocol", "timezone", "encoding", "delimiter",
+    "dayfirst", "time_format", "description",
+}
+
+
+@dataclass(frozen=True, eq=False)
+class Profile:
+    """A validated provider profile."""
+
+    path: Path
+    source_id: str
+    kind: str
+    provider_type: str
+    protocol: str | None
+    timezone: str = "UTC"
+    encoding: str = "utf-8"
+    delimiter: str | None = None
+    dayfirst: bool = False
+    time_format: str | None = None
+    columns: Mapping[str, Mapping[str, str]] = field(default_factory=dict)
+    units: Mapping[str, str] = field(default_factory=dict)
+    constants: Mapping[str, Any] = field(default_factory=dict)
+    raw: Mapping[str, Any] = field(default_factory=dict)
+
+    @property
+    def fingerprint(self) -> str:
+        """sha256 of the profile's content (key order does not matter)."""
+        return hashlib.sha256(json.dumps(self.raw, sort_keys=True, default=str).encode()).hexdigest()
+
+    def section(self, name: str) -> Mapping[str, Any]:
+        """A kind-specific section ([fishing], [aggregate], ...), empty when absent."""
+        value = self.raw.get(name, {})
+        if not isinstance(value, Mapping):
+            raise ConfigError(self.path, f"[{name}]", "expected a table ([...] section)")
+        return value
+
+    def column_map(self, table: str) -> Mapping[str, str]:
+        """Adapter field -> provider column for one table ("events", "records" or "rows")."""
+        return self.columns.get(table, {})
+
+
+def find_profile(study: Study, name_or_path: str | Path) -> Path:
+    """Resolve a profile argument: a path inside the study folder or a name in profiles/."""
+    given = Path(name_or_path)
+    candidates = [given] if given.is_absolute() else [Path.cwd() / given, study.root / given]
+    candidates += [study.profiles_dir / given, study.profiles_dir / f"{given}.toml"]
+    for cand in candidates:
+        if cand.is_file():
+            path = cand.resolve()
+            if not path.is_relative_to(study.root):
+                raise ConfigError(
+                    path, None,
+                    f"profile lies outside the study folder {study.root}; copy it into profiles/",
+                )
+            return path
+    known = sorted(p.stem for p in study.profiles_dir.glob("*.toml")) if study.profiles_dir.is_dir() else []
+    hint = f"; profiles in the study: {', '.join(known)}" if known else "; profiles/ is empty"
+    raise ConfigError(name_or_path, None, f"no such profile{hint}")
+
+
+def load_profile(path: str | Path, study: Study, table_fields: Mapping[str, set[str]]) -> Profile:
+    """Read and validate a profile.
+
+    Parameters
+    ----------
+    path
+        The profile file (inside the study folder).
+    study
+        The study the profile belongs to.
+    table_fields
+        Adapter field names per table, used to check [columns], [units] and [constants].
+        Pass an empty mapping to skip those checks (the adapter is not known yet).
+    """
+    path = Path(path).resolve()
+    resolve_inside(study.root, str(path), path, "profile")
+    try:
+        raw = tomllib.loads(path.read_text(encoding="utf-8"))
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(path, None, f"is not valid TOML ({exc})") from None
+    except UnicodeDecodeError:
+        raise ConfigError(path, None, "is not UTF-8 text") from None
+
+    src = raw.get("source")
+    if not isinstance(src, Mapping):
+        raise ConfigError(path, "[source]", "section is missing; it needs id, kind and provider_type")
+    unknown = sorted(set(src) - _SOURCE_KEYS)
+    if unknown:
+        raise ConfigError(path, f"source.{unknown[0]}", f"unknown key; expected one of {sorted(_SOURCE_KEYS)}")
+    source_id = _text(path, src, "id")
+    kind = _text(path, src, "kind")
+    if kind not in KINDS:
+        raise ConfigError(path, "source.kind", f"'{kind}' is not a source kind; expected one of {', '.join(KINDS)}")
+    provider_type = _text(path, src, "provider_type")
+    if provider_type not in PROVIDER_TYPES:
+        raise ConfigError(
+            path, "source.provider_type",
+            f"'{provider_type}' is not known; expected one of {', '.join(PROVIDER_TYPES)}",
+        )
+    protocol = src.get("protocol")
+    if protocol is not None and (not isinstance(protocol, str) or not protocol.strip()):
+        raise ConfigError(path, "source.protocol", f"expected text, got {protocol!r}")
+    timezone = src.get("timezone", "UTC")
+    try:
+        zoneinfo.ZoneInfo(str(timezone))
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+        raise ConfigError(
+            path, "source.timezone", f"'{timezone}' is not an IANA time zone (e.g. 'UTC', 'Europe/Oslo')"
+        ) from None
+    encoding = str(src.get("encoding", "utf-8"))
+    try:
+        "".encode(encoding)
+    except LookupError:
+        raise ConfigError(path, "source.encoding", f"'{encoding}' is not a text encoding Python knows") from None
+    dayfirst = src.get("dayfirst", False)
+    if not isinstance(dayfirst, bool):
+        raise ConfigError(path, "source.dayfirst", f"expected true or false, got {dayfirst!r}")
+
+    columns = _read_columns(path, raw.get("columns", {}), table_fields)
+    all_fields = {f for names in table_fields.values() for f in names}
+    units = raw.get("units", {})
+    if not isinstance(units, Mapping) or not all(isinstance(v, str) for v in units.values()):
+        raise ConfigError(path, "[units]", "expected field = \"unit\" pairs")
+    constants = raw.get("constants", {})
+    if not isinstance(constants, Mapping):
+        raise ConfigError(path, "[constants]", "expected field = value pairs")
+    if all_fields:
+        for section, mapping in (("units", units), ("constants", constants)):
+            for key in mapping:
+                if key not in all_fields:
+                    raise ConfigError(
+                        path, f"{section}.{key}",
+                        f"'{key}' is not a field of the {kind} adapter; fields: {', '.join(sorted(all_fields))}",
+                    )
+
+    return Profile(
+        path=path,
+        source_id=source_id,
+        kind=kind,
+        provider_type=provider_type,
+        protocol=protocol.strip() if isinstance(protocol, str) else None,
+        timezone=str(timezone),
+        encoding=encoding,
+        delimiter=src.get("delimiter"),
+        dayfirst=dayfirst,
+        time_format=src.get("time_format"),
+        columns=columns,
+        units=dict(units),
+        constants=dict(constants),
+        raw=raw,
+    )
+
+
+def peek_kind(path: Path) -> str:
+    """The [source] kind of a profile, read before the adapter is known."""
+    try:
+        raw = tomllib.loads(Path(path).read_text(encoding="utf-8"))
+    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
+        raise ConfigError(path, None, f"is not valid TOML ({exc})") from None
+    src = raw.get("source")
+    if not isinstance(src, Mapping):
+        raise ConfigError(path, "[source]", "section is missing; it needs id, kind and provider_type")
+    kind = src.get("kind")
+    if kind not in KINDS:
+        raise ConfigError(path, "source.kind", f"'{kind}' is not a source kind; expected one of {', '.join(KINDS)}")
+    return str(kind)
+
+
+def _text(path: Path, sec: Mapping[str, Any], key: str) -> str:
+    value = sec.get(key)
+    if not isinstance(value, str) or not value.strip():
+        raise ConfigError(path, f"source.{key}", f"expected non-empty text, got {value!r}")
+    return value.strip()
+
+
+def _read_columns(
+    path: Path, raw: Any, table_fields: Mapping[str, set[str]]
+) -> dict[str, dict[str, str]]:
+    if not isinstance(raw, Mapping):
+        raise ConfigError(path, "[columns]", "expected field = \"column\" pairs")
+    tables = [t for t in table_fields if t != "rows"]
+    out: dict[str, dict[str, str]] = {}
+    flat = {k: v for k, v in raw.items() if not isinstance(v, Mapping)}
+    nested = {k: v for k, v in raw.items() if isinstance(v, Mapping)}
+    if flat:
+        target = "rows" if "rows" in table_fields or not table_fields else None
+        if target is None:
+            raise ConfigError(
+                path, "[columns]",
+                f"this kind reads two tables; map columns under [columns.{tables[0]}] and [columns.{tables[1]}]",
+            )
+        out["rows"] = {k: _column_name(path, f"columns.{k}", v) for k, v in flat.items()}
+    for table, mapping in nested.items():
+        if table_fields and table not in table_fields:
+            raise ConfigError(
+                path, f"[columns.{table}]", f"unknown table; expected one of {', '.join(table_fields)}"
+            )
+        out[table] = {k: _column_name(path, f"columns.{table}.{k}", v) for k, v in mapping.items()}
+    for table, mapping in out.items():
+        known = table_fields.get(table)
+        if known is None:
+            continue
+        for fld in mapping:
+            if fld not in known:
+                raise ConfigError(
+                    path, f"columns.{table}.{fld}" if table != "rows" else f"columns.{fld}",
+                    f"'{fld}' is not a field of this adapter; fields: {', '.join(sorted(known))}",
+                )
+    return out
+
+
+def _column_name(path: Path, key: str, value: Any) -> str:
+    if not isinstance(value, str) or not value.strip():
+        raise ConfigError(path, key, f"expected the provider's column name as text, got {value!r}")
+    return value

@@ -1,0 +1,17 @@
+"""Pure, vectorised tagging: season, depth layer, grid cell and stratum."""
+
+from harmonize.tagging.depth import INTEGRATED, NEAR_BOTTOM, tag_depth_layer
+from harmonize.tagging.season import season_year_offsets, tag_season
+from harmonize.tagging.space import Grid, assign_strata, inside_domain, normalise_lon
+
+__all__ = [
+    "INTEGRATED",
+    "NEAR_BOTTOM",
+    "Grid",
+    "assign_strata",
+    "inside_domain",
+    "normalise_lon",
+    "season_year_offsets",
+    "tag_depth_layer",
+    "tag_season",
+]

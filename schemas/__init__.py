@@ -1,0 +1,1 @@
+"""The contract as data: Table Schema JSON (Frictionless Data) files shipped with harmonize."""

@@ -1,0 +1,33 @@
+"""Shared fixtures: a copy of the small invented Keldmar study for each test."""
+
+from __future__ import annotations
+
+import os
+import shutil
+from pathlib import Path
+
+import pytest
+from hypothesis import settings
+
+from harmonize.study import Study, load_study
+
+FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
+
+settings.register_profile("ci", max_examples=40, deadline=None)
+settings.register_profile("dev", max_examples=400, deadline=None)
+settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "ci"))
+
+
+@pytest.fixture
+def study_dir(tmp_path: Path) -> Path:
+    """A fresh copy of fixtures/keldmar with the messy trawl files beside it."""
+    target = tmp_path / "study"
+    shutil.copytree(FIXTURES / "keldmar", target)
+    for f in (FIXTURES / "trawl").glob("*.csv"):
+        shutil.copy(f, target / f.name)
+    return target
+
+
+@pytest.fixture
+def study(study_dir: Path) -> Study:
+    return load_study(study_dir)

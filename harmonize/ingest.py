@@ -38,6 +38,7 @@ class IngestResult:
     quarantine: pd.DataFrame = field(default_factory=pd.DataFrame)
     superseded: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
+    masked: pd.DataFrame = field(default_factory=pd.DataFrame)
 
     @property
     def rows_read(self) -> int:
@@ -52,10 +53,12 @@ class IngestResult:
         return sum(f.rows_quarantined for f in self.files)
 
     def reasons(self) -> pd.Series:
-        """Quarantined rows by reason code."""
-        if self.quarantine.empty:
-            return pd.Series(dtype="int64")
-        return self.quarantine["reason_code"].value_counts()
+        """Quarantined rows (and values rejected in bulk) by reason code."""
+        counts = (self.quarantine["reason_code"].value_counts() if not self.quarantine.empty
+                  else pd.Series(dtype="int64"))
+        if not self.masked.empty:
+            counts = counts.add(self.masked.groupby("reason_code")["n_values"].sum(), fill_value=0)
+        return counts.astype("int64").sort_values(ascending=False)
 
 
 def prepare(study: Study, profile: str | Path) -> tuple[Adapter, Profile]:
@@ -125,28 +128,58 @@ def run(
 
     started = pd.Timestamp.now("UTC").tz_localize(None)
     out = adapter.read(inputs, prof, study, progress)
+    return store_output(study, prof, adapter.kind, out, write=write, replace=replace,
+                        inputs_sha256=inputs_sha, config_sha256=config_sha, started=started)
+
+
+def store_output(
+    study: Study,
+    profile: Profile,
+    kind: str,
+    out: AdapterOutput,
+    *,
+    write: bool = True,
+    replace: bool = False,
+    inputs_sha256: str | None = None,
+    config_sha256: str | None = None,
+    started: pd.Timestamp | None = None,
+) -> IngestResult:
+    """Tag, assemble and (with ``write``) commit an adapter's output to the store.
+
+    ``run`` calls this after ``adapter.read``; tests and outside tools can call it with an
+    AdapterOutput they built themselves.
+    """
     _check_accounting(out)
+    started = started if started is not None else pd.Timestamp.now("UTC").tz_localize(None)
+    main = _main_file(out)
+    main_name = Path(main).name
+    shas = {f.role: f.sha256 for f in out.files}
+    inputs_sha = inputs_sha256 or _digest(sorted(shas.items()))
+    config_sha = config_sha256 or _digest([profile.fingerprint, study.fingerprint, CONTRACT_VERSION])
     ingest_id = f"{started:%Y%m%dT%H%M%S}-{uuid.uuid4().hex[:8]}"
-    table = assemble(out, study, prof, adapter.kind, ingest_id)
+    table = assemble(out, study, profile, kind, ingest_id)
     zero_filled = int(pa.compute.sum(table["zero_filled"]).as_py() or 0)
-    result = IngestResult("checked", prof.source_id, adapter.kind, None, out.files, table.num_rows,
+    result = IngestResult("checked", profile.source_id, kind, None, out.files, table.num_rows,
                           zero_filled, out.quarantine, notes=out.notes)
+    result.masked = out.masked
     if not write:
         return result
 
+    store = Store(study.store_dir)
     staged = store.staging_dir(ingest_id)
     try:
         write_partitions(table, staged / "parts")
         files = [{"role": f.role, "file_name": f.path.name, "file_sha256": f.sha256, "rows_read": f.rows_read,
                   "rows_accepted": f.rows_accepted, "rows_quarantined": f.rows_quarantined} for f in out.files]
+        main_file = next(f for f in out.files if f.path == main)
         record = IngestRecord(
-            ingest_id=ingest_id, source_id=prof.source_id, source_kind=adapter.kind,
-            provider_type=prof.provider_type, file_name=main_name, file_sha256=shas[main_role],
+            ingest_id=ingest_id, source_id=profile.source_id, source_kind=kind,
+            provider_type=profile.provider_type, file_name=main_name, file_sha256=main_file.sha256,
             inputs_sha256=inputs_sha, config_sha256=config_sha, started_at=started,
             finished_at=pd.Timestamp.now("UTC").tz_localize(None), rows_read=result.rows_read,
             rows_accepted=result.rows_accepted, rows_quarantined=result.rows_quarantined,
             records_written=table.num_rows, records_zero_filled=zero_filled,
-            profile_file=prof.path.name,
+            profile_file=profile.path.name,
         )
 
         def on_conflict(previous: pd.DataFrame) -> list[str]:
@@ -158,7 +191,7 @@ def run(
                 raise DuplicateIngestError(_duplicate_message(previous, main_name))
             return list(previous["ingest_id"])
 
-        superseded = store.commit(record, files, staged, out.quarantine, [], on_conflict)
+        superseded = store.commit(record, files, staged, out.quarantine, [], on_conflict, masked=out.masked)
     finally:
         store.discard(staged)
     result.status, result.ingest_id, result.superseded = "complete", ingest_id, superseded

@@ -75,6 +75,13 @@ CREATE TABLE IF NOT EXISTS quarantine (
     message VARCHAR NOT NULL,
     raw VARCHAR
 );
+CREATE TABLE IF NOT EXISTS quarantine_summary (
+    ingest_id VARCHAR NOT NULL,
+    source_file VARCHAR NOT NULL,
+    reason_code VARCHAR NOT NULL,
+    n_values BIGINT NOT NULL,
+    message VARCHAR NOT NULL
+);
 CREATE TABLE IF NOT EXISTS observation_files (
     ingest_id VARCHAR NOT NULL,
     path VARCHAR NOT NULL,
@@ -238,6 +245,7 @@ class Store:
         quarantine: pd.DataFrame,
         supersede: Sequence[str],
         on_conflict: callable,  # type: ignore[valid-type]
+        masked: pd.DataFrame | None = None,
     ) -> list[str]:
         """Move staged parquet files into place and record the ingest in one transaction.
 
@@ -290,6 +298,12 @@ class Store:
                     con.register("_incoming_quarantine", q)
                     con.execute("INSERT INTO quarantine SELECT * FROM _incoming_quarantine")
                     con.unregister("_incoming_quarantine")
+                if masked is not None and len(masked):
+                    m = masked[["source_file", "reason_code", "n_values", "message"]].copy()
+                    m.insert(0, "ingest_id", record.ingest_id)
+                    con.register("_incoming_masked", m)
+                    con.execute("INSERT INTO quarantine_summary SELECT * FROM _incoming_masked")
+                    con.unregister("_incoming_masked")
                 self._define_view(con, temporary=False)
                 con.execute("COMMIT")
             except BaseException:
@@ -390,11 +404,12 @@ class Store:
             ).fetchall()
             problems += [f"ingest {i}: rows_read {r} <> accepted {a} + quarantined {q}" for i, r, a, q in bad]
             bad = con.execute(
-                """SELECT i.ingest_id, i.rows_quarantined, count(q.ingest_id)
-                   FROM ingests i LEFT JOIN quarantine q USING (ingest_id)
-                   WHERE i.status = 'complete' GROUP BY ALL HAVING i.rows_quarantined <> count(q.ingest_id)"""
+                """SELECT i.ingest_id, i.rows_quarantined,
+                          (SELECT count(*) FROM quarantine q WHERE q.ingest_id = i.ingest_id)
+                          + (SELECT coalesce(sum(n_values), 0) FROM quarantine_summary m WHERE m.ingest_id = i.ingest_id) AS n
+                   FROM ingests i WHERE i.status = 'complete' AND i.rows_quarantined <> n"""
             ).fetchall()
-            problems += [f"ingest {i}: rows_quarantined {a} but {b} quarantine rows" for i, a, b in bad]
+            problems += [f"ingest {i}: rows_quarantined {a} but {b} quarantined rows and values" for i, a, b in bad]
             bad = con.execute(
                 """SELECT i.ingest_id, i.records_written, coalesce(sum(f.n_rows), 0)
                    FROM ingests i LEFT JOIN observation_files f USING (ingest_id)

@@ -59,6 +59,11 @@ class AdapterOutput:
     quarantine: pd.DataFrame
     files: list[InputFile]
     notes: list[str] = field(default_factory=list)
+    #: For inputs whose "rows" are grid values or pings: values rejected in bulk and counted,
+    #: not stored one by one (columns source_file, reason_code, n_values, message). They are
+    #: part of the file's rows_quarantined.
+    masked: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(
+        {"source_file": [], "reason_code": [], "n_values": [], "message": []}))
 
 
 class Adapter(ABC):

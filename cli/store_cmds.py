@@ -24,6 +24,9 @@ def status(
     """What the store holds: ingests, and rows by kind, year, season and layer."""
     study = study_from(ctx)
     store = Store(study.store_dir)
+    if not store.exists():
+        console.print(f"the store of '{study.name}' is empty: nothing ingested yet ('harmonize ingest PROFILE FILES')")
+        return
     ingests = store.ingests(include_superseded=all_ingests)
     table = Table(title=f"ingests in {study.name}", title_justify="left")
     for col in ("ingest", "source", "kind", "file", "status", "read", "accepted", "quarantined", "rows written"):

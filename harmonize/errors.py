@@ -25,6 +25,9 @@ class ReasonCode(StrEnum):
     FUTURE_TIME = "future_time"
     TIME_BACKWARDS = "time_backwards"
     CLOGGED_NET = "clogged_net"
+    UNKNOWN_GEAR = "unknown_gear"
+    # an absence reported outside a complete checklist (opportunistic records)
+    ABSENCE_OUTSIDE_CHECKLIST = "absence_outside_checklist"
 
 
 class HarmonizeError(Exception):

@@ -21,6 +21,7 @@ from harmonize.errors import ConfigError, DuplicateIngestError, HarmonizeError
 from harmonize.profile import Profile, find_profile, load_profile, peek_kind
 from harmonize.store import IngestRecord, Store
 from harmonize.study import Study
+from harmonize.twins import twin_settings
 from harmonize.tagging import Grid, assign_strata, normalise_lon, tag_depth_layer, tag_season
 
 
@@ -179,7 +180,7 @@ def store_output(
             finished_at=pd.Timestamp.now("UTC").tz_localize(None), rows_read=result.rows_read,
             rows_accepted=result.rows_accepted, rows_quarantined=result.rows_quarantined,
             records_written=table.num_rows, records_zero_filled=zero_filled,
-            profile_file=profile.path.name,
+            profile_file=profile.path.name, duplicates=twin_settings(profile, kind),
         )
 
         def on_conflict(previous: pd.DataFrame) -> list[str]:
@@ -224,14 +225,14 @@ _EVENT_ARROW = pa.schema([
     ("lat", pa.float64()), ("lon", pa.float64()), ("cell_id", pa.string()), ("stratum", pa.string()),
     ("depth_min_m", pa.float64()), ("depth_max_m", pa.float64()), ("bottom_depth_m", pa.float64()),
     ("effort", pa.float64()), ("effort_unit", pa.string()), ("observer_id", pa.string()),
-    ("event_flags", pa.list_(pa.string())), ("source_row", pa.int64()),
+    ("event_flags", pa.list_(pa.string())), ("source_row", pa.int64()), ("gear", pa.string()),
 ])
 _VALUE_ARROW = pa.schema([
     ("event_id", pa.string()), ("variable", pa.string()), ("variable_kind", pa.string()),
     ("life_stage", pa.string()), ("quantity", pa.string()), ("value", pa.float64()), ("unit", pa.string()),
     ("zero_filled", pa.bool_()), ("value_flags", pa.list_(pa.string())),
     ("source_record_rows", pa.list_(pa.int64())), ("n_values", pa.int32()), ("n_vessels", pa.int32()),
-    ("no_effort", pa.bool_()),
+    ("no_effort", pa.bool_()), ("behavior", pa.string()),
 ])
 
 
@@ -260,6 +261,20 @@ def tag_events(events: pd.DataFrame, study: Study) -> pd.DataFrame:
     return ev
 
 
+def _to_arrow(frame: pd.DataFrame, schema: pa.Schema) -> pa.Table:
+    """Column-by-column conversion with explicit types (robust for empty frames)."""
+    arrays = []
+    for fld in schema:
+        col = frame[fld.name]
+        if pa.types.is_list(fld.type):
+            arrays.append(pa.array(col.tolist(), type=fld.type))
+        elif pa.types.is_timestamp(fld.type):
+            arrays.append(pa.array(pd.to_datetime(col).astype("datetime64[us]"), type=fld.type, from_pandas=True))
+        else:
+            arrays.append(pa.array(col.astype(object).where(col.notna(), None).tolist(), type=fld.type))
+    return pa.Table.from_arrays(arrays, schema=schema)
+
+
 def _keep(frame: pd.DataFrame, column: str, computed: pd.Series) -> pd.Series:
     if column in frame and frame[column].notna().any():
         return frame[column].where(frame[column].notna(), computed)
@@ -273,21 +288,24 @@ def assemble(out: AdapterOutput, study: Study, profile: Profile, kind: str, inge
     for col in _EVENT_ARROW.names:
         if col not in ev:
             ev[col] = None
-    ev["event_flags"] = [list(f) if isinstance(f, list | tuple | np.ndarray) else [] for f in ev["event_flags"]]
-    ev_tab = pa.Table.from_pandas(ev[_EVENT_ARROW.names], schema=_EVENT_ARROW, preserve_index=False)
+    ev["event_flags"] = pd.Series([list(f) if isinstance(f, list | tuple | np.ndarray) else [] for f in ev["event_flags"]],
+                                  index=ev.index, dtype=object)
+    ev_tab = _to_arrow(ev, _EVENT_ARROW)
     va = out.values.rename(columns={"flags": "value_flags"})
     for col in _VALUE_ARROW.names:
         if col not in va:
             va[col] = None
     va = va[_VALUE_ARROW.names].copy()
-    va["value_flags"] = [list(f) if isinstance(f, list | tuple | np.ndarray) else [] for f in va["value_flags"]]
-    va["source_record_rows"] = [[int(x) for x in r] if isinstance(r, list | tuple | np.ndarray) else [] for r in va["source_record_rows"]]
-    for col in ("life_stage", "variable", "event_id"):
+    va["value_flags"] = pd.Series([list(f) if isinstance(f, list | tuple | np.ndarray) else [] for f in va["value_flags"]],
+                                  index=va.index, dtype=object)
+    va["source_record_rows"] = pd.Series([[int(x) for x in r] if isinstance(r, list | tuple | np.ndarray) else []
+                                          for r in va["source_record_rows"]], index=va.index, dtype=object)
+    for col in ("life_stage", "variable", "event_id", "behavior"):
         va[col] = va[col].astype(object).where(va[col].notna(), None)
     for col in ("n_values", "n_vessels"):
         va[col] = pd.array(va[col], dtype="Int32")
     va["no_effort"] = va["no_effort"].fillna(False).astype(bool)
-    va_tab = pa.Table.from_pandas(va, schema=_VALUE_ARROW, preserve_index=False)
+    va_tab = _to_arrow(va, _VALUE_ARROW)
 
     con = duckdb.connect()
     try:
@@ -296,7 +314,7 @@ def assemble(out: AdapterOutput, study: Study, profile: Profile, kind: str, inge
         cols = dict(observation_sql_columns())
         params = [ingest_id, profile.source_id, kind, profile.provider_type, profile.protocol, Path(_main_file(out)).name]
         exprs = {
-            "record_id": "substr(md5(concat_ws('|', $2, e.event_id, v.variable, coalesce(v.life_stage, ''), v.quantity)), 1, 24)",
+            "record_id": "substr(md5(concat_ws('|', $2, e.event_id, v.variable, coalesce(v.life_stage, ''), v.quantity, v.behavior)), 1, 24)",  # concat_ws skips a null behavior: ids without one are unchanged
             "ingest_id": "$1", "source_id": "$2", "source_kind": "$3", "provider_type": "$4", "protocol": "$5",
             # density only for counts and biomass; presence-only and no-effort values carry no effort
             "density": "CASE WHEN v.quantity IN ('count', 'biomass') AND NOT v.no_effort AND e.effort > 0 THEN v.value / e.effort END",

@@ -25,7 +25,7 @@ from pathlib import Path
 import duckdb
 import pandas as pd
 
-from harmonize import __version__
+from harmonize import __version__, twins
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns
 from harmonize.errors import StoreBusyError, StoreError
 
@@ -111,6 +111,8 @@ class IngestRecord:
     records_zero_filled: int
     profile_file: str
     status: str = "complete"
+    #: opportunistic sources: the twin windows of the profile (harmonize.twins)
+    duplicates: twins.TwinSettings | None = None
 
 
 class Store:
@@ -124,9 +126,11 @@ class Store:
         How long to wait for another harmonize process to release the database.
     """
 
-    def __init__(self, directory: str | Path, lock_timeout_s: float = 60.0) -> None:
+    def __init__(self, directory: str | Path, lock_timeout_s: float | None = None) -> None:
         self.directory = Path(directory).resolve()
         self.db_path = self.directory / DB_NAME
+        if lock_timeout_s is None:
+            lock_timeout_s = float(os.environ.get("HARMONIZE_LOCK_TIMEOUT", "60"))
         self.lock_timeout_s = lock_timeout_s
 
     # ------------------------------------------------------------------ connections
@@ -148,6 +152,7 @@ class Store:
                 self._define_view(con, temporary=True)
             else:
                 con.execute(_SCHEMA_SQL)
+                twins.ensure_tables(con)
                 self._check_version(con)
                 self._define_view(con, temporary=False)
             yield con
@@ -210,7 +215,10 @@ class Store:
         else:
             source = "(SELECT " + ", ".join(f'CAST(NULL AS {t}) AS "{c}"' for c, t in cols) + " LIMIT 0)"
         kind = "TEMP VIEW" if temporary else "VIEW"
-        con.execute(f"CREATE OR REPLACE {kind} observations AS SELECT {select} FROM {source}")
+        # the parquet rows as written; the observations view adds the store-wide flags
+        # (probable_duplicate, high_count) that harmonize.twins recomputes at each commit
+        con.execute(f"CREATE OR REPLACE {kind} observations_base AS SELECT {select} FROM {source}")
+        con.execute(f"CREATE OR REPLACE {kind} observations AS {twins.flagged_view_sql(con, 'observations_base')}")
 
     # ------------------------------------------------------------------ ingest support
     def previous_ingests(self, source_id: str, file_names: Sequence[str], inputs_sha256: str) -> pd.DataFrame:
@@ -265,6 +273,8 @@ class Store:
                 n_rows = con.execute("SELECT count(*) FROM read_parquet(?)", [str(part)]).fetchall()[0][0]
                 os.replace(part, target)
                 moved.append((rel.as_posix(), int(n_rows)))
+                _crash_point("moving")
+            _crash_point("before_transaction")
             con.execute("BEGIN TRANSACTION")
             try:
                 if supersede:
@@ -304,8 +314,14 @@ class Store:
                     con.register("_incoming_masked", m)
                     con.execute("INSERT INTO quarantine_summary SELECT * FROM _incoming_masked")
                     con.unregister("_incoming_masked")
+                if record.duplicates is not None:
+                    twins.record_settings(con, record.ingest_id, record.source_id, record.duplicates)
                 self._define_view(con, temporary=False)
+                # twins span sources and ingests: recomputed over the whole store, in this transaction
+                twins.refresh(con)
+                _crash_point("before_commit")
                 con.execute("COMMIT")
+                _crash_point("after_commit")
             except BaseException:
                 con.execute("ROLLBACK")
                 raise
@@ -434,7 +450,7 @@ class Store:
                 WHERE source_row IS NOT NULL
                 UNION
                 SELECT o.ingest_id, f.file_name, unnest(o.source_record_rows) AS row
-                FROM observations o JOIN files f ON f.ingest_id = o.ingest_id AND f.role = 'records'
+                FROM observations o JOIN files f ON f.ingest_id = o.ingest_id AND f.role IN ('records', 'rows')
                 UNION
                 SELECT ingest_id, source_file, source_row FROM quarantine
             )
@@ -446,6 +462,12 @@ class Store:
         ).fetchall()
         return [f"ingest {i}: {name} has {n} data rows but only {k} are accepted or quarantined"
                 for i, name, n, k in rows]
+
+
+def _crash_point(name: str) -> None:
+    """Test hook: HARMONIZE_CRASH_AT=<name> kills the process here (crash-safety tests)."""
+    if os.environ.get("HARMONIZE_CRASH_AT") == name:
+        os.kill(os.getpid(), 9)
 
 
 def _alive(pid: int) -> bool:

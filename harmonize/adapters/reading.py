@@ -31,6 +31,7 @@ NA_TOKENS = frozenset({"", "na", "n/a", "nan", "null", "none", "-"})
 _TRUE = frozenset({"true", "t", "yes", "y", "1"})
 _FALSE = frozenset({"false", "f", "no", "n", "0"})
 MAX_FIELD_CHARS = 1_000_000
+EARLIEST_TIME = "1800-01-01"
 
 
 @dataclass
@@ -365,7 +366,7 @@ def _typed(
         if bad.any():
             rejections.add(
                 role, np.flatnonzero(bad), ReasonCode.BAD_TIME,
-                [f"{label} holds '{_short(v)}', which is not a date-time (expected e.g. 2021-06-14T08:30)" for v in text[bad]],
+                [f"{label} holds '{_short(v)}', which is not a date-time after {EARLIEST_TIME[:4]} (expected e.g. 2021-06-14T08:30)" for v in text[bad]],
             )
         if future.any():
             rejections.add(role, np.flatnonzero(future), ReasonCode.BAD_TIME, f"{label} lies in the future")
@@ -403,6 +404,9 @@ def parse_times(text: pd.Series, profile: Profile) -> tuple[pd.Series, np.ndarra
                 .dt.tz_localize(None)
             )
         out[sel] = parsed.astype("datetime64[us]").to_numpy()
+    # Dates before 1800 are typing errors (a lone "-1" parses as year -1), not survey data.
+    ancient = (out < pd.Timestamp(EARLIEST_TIME)).fillna(False).to_numpy()
+    out = out.mask(ancient)
     bad = present & out.isna().to_numpy()
     now = datetime.now(UTC).replace(tzinfo=None) + timedelta(days=1)
     future = (out > pd.Timestamp(now)).fillna(False).to_numpy()
@@ -464,9 +468,30 @@ def _short(value: Any, limit: int = 60) -> str:
 
 
 def closest_names(unknown: Iterable[str], known: Sequence[str], n: int = 3) -> dict[str, list[str]]:
-    """For each unknown name, the closest known names (for actionable messages)."""
-    folded = {k.casefold(): k for k in known}
-    return {
-        u: [folded[c] for c in difflib.get_close_matches(u.casefold(), list(folded), n=n, cutoff=0.6)]
-        for u in unknown
-    }
+    """For each unknown name, the closest known names (for actionable messages).
+
+    Names are compared without case, diacritics or extra spaces, whole and by their first
+    word (a misspelt genus is still found: "Østravix" -> "Ostravix keldensis").
+    """
+    keyed: dict[str, str] = {}
+    for name in known:
+        key = _fold(name)
+        keyed.setdefault(key, name)
+        first = key.split(" ")[0]
+        if first and first != key:
+            keyed.setdefault(first, name)
+    out = {}
+    for u in unknown:
+        key = _fold(u)
+        hits = difflib.get_close_matches(key, list(keyed), n=n * 2, cutoff=0.6)
+        hits += difflib.get_close_matches(key.split(" ")[0], list(keyed), n=n, cutoff=0.75)
+        out[u] = list(dict.fromkeys(keyed[h] for h in hits))[:n]
+    return out
+
+
+def _fold(text: str) -> str:
+    import unicodedata
+
+    table = str.maketrans({"ø": "o", "æ": "ae", "œ": "oe", "ß": "ss", "ł": "l", "đ": "d"})
+    plain = unicodedata.normalize("NFKD", str(text).casefold().translate(table))
+    return " ".join("".join(c for c in plain if not unicodedata.combining(c)).split())

@@ -191,7 +191,8 @@ class TrawlAdapter(Adapter):
         bottom = ev["bottom_depth_m"].to_numpy(float)
         on_bottom = ~np.isfinite(gear)
         depth = np.where(on_bottom, bottom, gear)
-        event_end = end.where(end.notna(), start + pd.to_timedelta(duration_h, unit="h"))
+        safe_h = np.where(alive & np.isfinite(duration_h), duration_h, 0.0)
+        event_end = end.where(end.notna(), start + pd.to_timedelta(safe_h, unit="h"))
         hauls = pd.DataFrame({
             "event_id": ev["event_id"],
             "event_start": start,

@@ -1,0 +1,298 @@
+"""Cross-source twins: volunteer records that repeat a sighting already in the store.
+
+The same animal is often reported by an agency survey and a volunteer, or by two
+volunteers of one party. A record of an opportunistic source is a *probable duplicate* when
+a better-ranked record of the same taxon lies within its source's distance and time windows
+(profile ``[duplicates]``; defaults 2.0 km and 60 min, common practice). Nothing is deleted:
+the record keeps its row, the ``observations`` view adds the flag ``probable_duplicate``, and
+the ``twins`` table links it to its twin.
+
+Which record is kept (the primary) follows one visible rule, in this order:
+
+1. the source's rank: ``[duplicates] rank`` in an opportunistic profile, otherwise by provider
+   type (agency, model and remote sensing 0, industry 1, volunteer 2); lower is kept;
+2. a counted record before a presence-only one;
+3. a record with a clock time before one dated to the day only (flag ``date_only``);
+4. the earlier record (event start), then the earlier ingest id, then the earlier row of the
+   file, then the record id.
+
+Only records of opportunistic sources are ever flagged: agency surveys keep their design.
+Two counts of complete checklists (volunteer effort units) are twins only when the watches
+overlap in time, and two records of one source and one observer likewise: consecutive
+checklists of a watch, or of the members of a party, are separate effort, not duplicates.
+
+The rule runs in DuckDB over the whole store after every commit (so it also holds when the
+agency survey is ingested after the volunteer file). Candidate pairs come from an equi-join
+on (taxon, latitude bin, longitude bin, time bin) with bins at least as wide as the largest
+window, probing the 27 neighbouring bins; the exact test then uses the distance on the local
+tangent plane of the WGS84 ellipsoid, whose radii of curvature M and N follow Snyder 1987,
+"Map Projections - A Working Manual", USGS Professional Paper 1395, eqs. 4-18 and 4-20
+(equation numbers from memory; the test checks the distances against GeographicLib, which
+agrees with the geodesic of Karney 2013 to better than 1e-5 relative at a few km).
+
+The same refresh flags ``high_count``: a count of an opportunistic source whose logarithm
+lies beyond Tukey's "far out" fence (upper quartile + 3 interquartile ranges; Tukey 1977,
+Exploratory Data Analysis) of the counts of the same taxon in the store, with at least
+:data:`HIGH_COUNT_MIN_N` counts for reference and an interquartile range of at least a
+factor 2.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+
+import duckdb
+import numpy as np
+import pandas as pd
+
+from harmonize.contract import observation_sql_columns
+from harmonize.errors import ConfigError
+from harmonize.profile import Profile
+
+DEFAULT_DISTANCE_KM = 2.0
+DEFAULT_MINUTES = 60.0
+#: Windows above these are refused: they would link unrelated sightings (common practice).
+MAX_DISTANCE_KM = 50.0
+MAX_MINUTES = 7 * 24 * 60.0
+DEFAULT_RANKS = {"agency": 0, "model": 0, "remote_sensing": 0, "industry": 1, "volunteer": 2}
+HIGH_COUNT_MIN_N = 20
+DUPLICATE_FLAG = "probable_duplicate"
+HIGH_COUNT_FLAG = "high_count"
+
+# WGS84 (NIMA TR8350.2, 3rd ed. 2000): semi-major axis and flattening
+WGS84_A_M = 6378137.0
+WGS84_F = 1 / 298.257223563
+_E2 = WGS84_F * (2 - WGS84_F)
+
+_TABLES_SQL = """
+CREATE TABLE IF NOT EXISTS twin_settings (
+    ingest_id VARCHAR NOT NULL, source_id VARCHAR NOT NULL,
+    distance_km DOUBLE NOT NULL, minutes DOUBLE NOT NULL, rank INTEGER
+);
+CREATE TABLE IF NOT EXISTS twins (
+    record_id VARCHAR NOT NULL, ingest_id VARCHAR NOT NULL,
+    twin_record_id VARCHAR NOT NULL, twin_ingest_id VARCHAR NOT NULL,
+    source_id VARCHAR NOT NULL, twin_source_id VARCHAR NOT NULL, variable VARCHAR,
+    distance_km DOUBLE NOT NULL, minutes DOUBLE NOT NULL
+);
+CREATE TABLE IF NOT EXISTS store_flags (
+    record_id VARCHAR NOT NULL, ingest_id VARCHAR NOT NULL, flag VARCHAR NOT NULL
+);
+"""
+
+
+@dataclass(frozen=True)
+class TwinSettings:
+    """The twin windows of one opportunistic source (profile ``[duplicates]``)."""
+
+    distance_km: float = DEFAULT_DISTANCE_KM
+    minutes: float = DEFAULT_MINUTES
+    rank: int | None = None
+
+
+def twin_settings(profile: Profile, kind: str) -> TwinSettings | None:
+    """The validated ``[duplicates]`` section of an opportunistic profile; None for other kinds.
+
+    Raises
+    ------
+    ConfigError
+        Unknown key, a value that is not a positive number, or a window above the maximum.
+    """
+    if kind != "opportunistic":
+        return None
+    sec = profile.section("duplicates")
+    unknown = sorted(set(sec) - {"distance_km", "minutes", "rank"})
+    if unknown:
+        raise ConfigError(profile.path, f"duplicates.{unknown[0]}",
+                          "unknown key; expected distance_km, minutes or rank")
+    values: dict[str, float] = {}
+    for key, default, top in (("distance_km", DEFAULT_DISTANCE_KM, MAX_DISTANCE_KM),
+                              ("minutes", DEFAULT_MINUTES, MAX_MINUTES)):
+        value = sec.get(key, default)
+        if isinstance(value, bool) or not isinstance(value, int | float) or not 0 < value <= top:
+            raise ConfigError(profile.path, f"duplicates.{key}", f"expected a number above 0 and at most {top:g}, got {value!r}")
+        values[key] = float(value)
+    rank = sec.get("rank")
+    if rank is not None and (isinstance(rank, bool) or not isinstance(rank, int) or rank < 0):
+        raise ConfigError(profile.path, "duplicates.rank", f"expected a whole number 0 or more (0 = kept first), got {rank!r}")
+    return TwinSettings(values["distance_km"], values["minutes"], rank)
+
+
+def local_distance_km(lon1: np.ndarray, lat1: np.ndarray, lon2: np.ndarray, lat2: np.ndarray) -> np.ndarray:
+    """Distance (km) on the tangent plane of the WGS84 ellipsoid at the mean latitude.
+
+    ``d = sqrt((N cos(phi) dlambda)^2 + (M dphi)^2)`` with the radii of curvature of the
+    prime vertical N and the meridian M (Snyder 1987, eqs. 4-18 and 4-20). Good to about
+    1e-5 relative for separations of a few km; this is the formula the store's SQL uses.
+    """
+    phi = np.radians((np.asarray(lat1, float) + np.asarray(lat2, float)) / 2)
+    w = np.sqrt(1 - _E2 * np.sin(phi) ** 2)
+    n = WGS84_A_M / w
+    m = WGS84_A_M * (1 - _E2) / w**3
+    dlam = np.radians((np.asarray(lon2, float) - np.asarray(lon1, float) + 540.0) % 360.0 - 180.0)
+    dphi = np.radians(np.asarray(lat2, float) - np.asarray(lat1, float))
+    return np.sqrt((n * np.cos(phi) * dlam) ** 2 + (m * dphi) ** 2) / 1000.0
+
+
+def _distance_sql(a: str, b: str) -> str:
+    phi = f"radians(({a}.lat + {b}.lat) / 2)"
+    w = f"sqrt(1 - {_E2!r} * pow(sin({phi}), 2))"
+    dlam = f"radians((({b}.lon - {a}.lon + 540.0) % 360.0) - 180.0)"
+    return (f"sqrt(pow({WGS84_A_M!r} / {w} * cos({phi}) * {dlam}, 2) + "
+            f"pow({WGS84_A_M * (1 - _E2)!r} / pow({w}, 3) * radians({b}.lat - {a}.lat), 2)) / 1000.0")
+
+
+def ensure_tables(con: duckdb.DuckDBPyConnection) -> None:
+    """Create the twin tables in a store opened for writing (no-op when they exist)."""
+    con.execute(_TABLES_SQL)
+
+
+def record_settings(con: duckdb.DuckDBPyConnection, ingest_id: str, source_id: str, settings: TwinSettings) -> None:
+    """Persist one ingest's windows, so that later refreshes use them."""
+    con.execute("INSERT INTO twin_settings VALUES (?, ?, ?, ?, ?)",
+                [ingest_id, source_id, settings.distance_km, settings.minutes, settings.rank])
+
+
+def _has_table(con: duckdb.DuckDBPyConnection, name: str) -> bool:
+    return bool(con.execute("SELECT count(*) FROM duckdb_tables() WHERE table_name = ?", [name]).fetchall()[0][0])
+
+
+def flagged_view_sql(con: duckdb.DuckDBPyConnection, base: str) -> str:
+    """SELECT for the observations view: ``base`` with the store-wide flags added to ``flags``."""
+    cols = [c for c, _ in observation_sql_columns()]
+    if not _has_table(con, "store_flags"):
+        return f"SELECT * FROM {base}"
+    select = ", ".join(
+        'CASE WHEN f.extra IS NULL THEN b.flags ELSE list_sort(list_distinct(list_concat(b.flags, f.extra))) END AS "flags"'
+        if c == "flags" else f'b."{c}"' for c in cols)
+    return (f"SELECT {select} FROM {base} b LEFT JOIN "
+            "(SELECT record_id, ingest_id, list(DISTINCT flag) AS extra FROM store_flags GROUP BY ALL) f "
+            "ON f.record_id = b.record_id AND f.ingest_id = b.ingest_id")
+
+
+_RANK_SQL = "CASE o.provider_type " + " ".join(f"WHEN '{k}' THEN {v}" for k, v in DEFAULT_RANKS.items()) + " ELSE 3 END"
+
+# b is kept before a (the ordering of the module docstring)
+_OUTRANKS = """(b.rank < a.rank OR (b.rank = a.rank AND (b.qorder < a.qorder OR (b.qorder = a.qorder AND (
+    b.vague < a.vague OR (b.vague = a.vague AND (
+    b.t0 < a.t0 OR (b.t0 = a.t0 AND (b.ingest_id < a.ingest_id OR (b.ingest_id = a.ingest_id
+    AND (b.source_row < a.source_row OR (b.source_row = a.source_row AND b.record_id < a.record_id))))))))))))"""
+
+
+def refresh(con: duckdb.DuckDBPyConnection, base: str = "observations_base") -> int:
+    """Recompute the ``twins`` and ``store_flags`` tables over the whole store.
+
+    Runs inside the caller's transaction (Store.commit). Returns the number of twins.
+    """
+    con.execute("DELETE FROM twins")
+    con.execute("DELETE FROM store_flags")
+    con.execute("""
+        CREATE OR REPLACE TEMP TABLE _twin_sources AS
+        SELECT s.source_id, s.distance_km, s.minutes, s.rank
+        FROM twin_settings s JOIN ingests i USING (ingest_id) WHERE i.status = 'complete'
+        QUALIFY row_number() OVER (PARTITION BY s.source_id ORDER BY i.started_at DESC, s.ingest_id DESC) = 1""")
+    if not con.execute("SELECT count(*) FROM _twin_sources").fetchall()[0][0]:
+        return 0
+    con.execute(f"""
+        CREATE OR REPLACE TEMP TABLE _twin_cand AS
+        WITH wanted AS (
+            SELECT DISTINCT variable FROM {base}
+            WHERE variable_kind = 'taxon' AND source_id IN (SELECT source_id FROM _twin_sources))
+        SELECT o.record_id, o.ingest_id, o.source_id, o.event_id, o.variable, o.observer_id, o.lat, o.lon,
+               coalesce(o.source_row, 0) AS source_row, epoch(o.event_start) AS t0, epoch(coalesce(o.event_end, o.event_start)) AS t1,
+               coalesce(s.rank, {_RANK_SQL}) AS rank,
+               CASE WHEN o.quantity = 'presence' THEN 1 ELSE 0 END AS qorder,
+               CASE WHEN list_contains(o.flags, 'date_only') THEN 1 ELSE 0 END AS vague,
+               s.distance_km AS win_km, s.minutes AS win_min, s.source_id IS NOT NULL AS flaggable
+        FROM {base} o LEFT JOIN _twin_sources s USING (source_id)
+        WHERE o.variable_kind = 'taxon' AND NOT coalesce(o.zero_filled, false) AND o.value > 0
+          AND o.quantity IN ('count', 'presence', 'biomass') AND o.lat IS NOT NULL AND o.lon IS NOT NULL
+          AND o.event_start IS NOT NULL AND o.variable IN (SELECT variable FROM wanted)""")
+    km, minutes, span, top = con.execute(
+        "SELECT max(win_km), max(win_min), coalesce(max(t1 - t0), 0), coalesce(max(abs(lat)), 0) FROM _twin_cand"
+    ).fetchall()[0]
+    if km is None:
+        return 0
+    # bins at least as wide as the largest window: a degree of latitude is >= 110.57 km and a
+    # degree of longitude >= 111.32 cos(lat) km on WGS84, so these sizes are on the safe side
+    lat_bin = km / 110.0
+    lon_bin = min(360.0, km / (111.0 * math.cos(math.radians(min(top + lat_bin, 89.0)))))
+    time_bin = minutes * 60.0 + span + 1.0
+    con.execute("""
+        CREATE OR REPLACE TEMP TABLE _twin_binned AS
+        SELECT *, CAST(floor(lat / $1) AS BIGINT) AS iy, CAST(floor(lon / $2) AS BIGINT) AS ix,
+               CAST(floor(t0 / $3) AS BIGINT) AS it FROM _twin_cand""", [lat_bin, lon_bin, time_bin])
+    con.execute(f"""
+        INSERT INTO twins
+        WITH a AS (
+            SELECT c.*, c.iy + d.dy AS jy, c.ix + d.dx AS jx, c.it + d.dt AS jt
+            FROM _twin_binned c,
+                 (SELECT y.range AS dy, x.range AS dx, t.range AS dt
+                  FROM range(-1, 2) y, range(-1, 2) x, range(-1, 2) t) d
+            WHERE c.flaggable),
+        pairs AS (
+            SELECT a.record_id, a.ingest_id, b.record_id AS twin_record_id, b.ingest_id AS twin_ingest_id,
+                   a.source_id, b.source_id AS twin_source_id, a.variable,
+                   {_distance_sql('a', 'b')} AS distance_km,
+                   greatest(0, b.t0 - a.t1, a.t0 - b.t1) / 60.0 AS minutes,
+                   a.win_km, a.win_min, b.rank AS twin_rank
+            FROM a JOIN _twin_binned b
+              ON b.variable = a.variable AND b.iy = a.jy AND b.ix = a.jx AND b.it = a.jt
+            WHERE NOT (b.ingest_id = a.ingest_id AND b.event_id = a.event_id)
+              AND (b.source_id <> a.source_id OR a.observer_id IS NULL OR b.observer_id IS NULL
+                   OR a.observer_id <> b.observer_id OR (a.t0 < b.t1 AND b.t0 < a.t1) OR a.t0 = b.t0)
+              AND (NOT b.flaggable OR a.qorder + b.qorder > 0 OR (a.t0 < b.t1 AND b.t0 < a.t1) OR a.t0 = b.t0)
+              AND {_OUTRANKS})
+        SELECT record_id, ingest_id, twin_record_id, twin_ingest_id, source_id, twin_source_id, variable,
+               distance_km, minutes
+        FROM pairs WHERE distance_km <= win_km AND minutes <= win_min
+        QUALIFY row_number() OVER (PARTITION BY record_id, ingest_id
+                                   ORDER BY twin_rank, distance_km, minutes, twin_record_id) = 1""")
+    con.execute(f"INSERT INTO store_flags SELECT record_id, ingest_id, '{DUPLICATE_FLAG}' FROM twins")
+    con.execute(f"""
+        INSERT INTO store_flags
+        WITH ref AS (
+            SELECT variable, quantile_cont(ln(value), 0.25) AS q1, quantile_cont(ln(value), 0.75) AS q3,
+                   count(*) AS n
+            FROM {base} WHERE variable_kind = 'taxon' AND quantity = 'count' AND value > 0
+                             AND NOT coalesce(zero_filled, false)
+            GROUP BY variable)
+        SELECT o.record_id, o.ingest_id, '{HIGH_COUNT_FLAG}'
+        FROM {base} o JOIN ref USING (variable) JOIN _twin_sources s USING (source_id)
+        WHERE o.quantity = 'count' AND o.value > 0 AND ref.n >= {HIGH_COUNT_MIN_N}
+          AND ln(o.value) > ref.q3 + 3 * greatest(ref.q3 - ref.q1, ln(2))""")
+    for name in ("_twin_sources", "_twin_cand", "_twin_binned"):
+        con.execute(f"DROP TABLE IF EXISTS {name}")
+    return int(con.execute("SELECT count(*) FROM twins").fetchall()[0][0])
+
+
+def twins_frame(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
+    """The twins with both records' taxon, time and position, for people to review."""
+    if not _has_table(con, "twins"):
+        return pd.DataFrame(columns=["record_id", "twin_record_id", "source_id", "twin_source_id",
+                                     "variable", "distance_km", "minutes"])
+    return con.execute("""
+        SELECT t.record_id, t.twin_record_id, t.source_id, t.twin_source_id, t.variable,
+               round(t.distance_km, 3) AS distance_km, round(t.minutes, 1) AS minutes,
+               a.event_id, a.event_start, a.lat, a.lon, a.quantity, a.value,
+               b.event_id AS twin_event_id, b.event_start AS twin_event_start, b.lat AS twin_lat,
+               b.lon AS twin_lon, b.quantity AS twin_quantity, b.value AS twin_value
+        FROM twins t
+        JOIN observations a ON a.record_id = t.record_id AND a.ingest_id = t.ingest_id
+        JOIN observations b ON b.record_id = t.twin_record_id AND b.ingest_id = t.twin_ingest_id
+        ORDER BY t.source_id, a.event_start, t.record_id""").df()
+
+
+def volunteer_only(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
+    """Strata and seasons whose biological records all come from volunteers.
+
+    One row per (stratum, season_year, season) sampled only by volunteer sources, with the
+    number of volunteer events: there the opportunistic design carries the whole model.
+    """
+    return con.execute("""
+        SELECT stratum, season_year, season, count(DISTINCT source_id || '/' || event_id) AS volunteer_events
+        FROM observations WHERE variable_kind = 'taxon'
+        GROUP BY stratum, season_year, season
+        HAVING bool_and(provider_type = 'volunteer')
+        ORDER BY season_year, season, stratum""").df()

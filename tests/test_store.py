@@ -1,0 +1,97 @@
+"""Store safety: a killed ingest leaves all or nothing; a second writer waits or is told."""
+
+from __future__ import annotations
+
+import os
+import subprocess
+import sys
+import textwrap
+import time
+from pathlib import Path
+
+import pytest
+
+from harmonize import Store, load_study
+
+BIN = Path(sys.executable).parent / "harmonize"
+
+
+def _ingest(study_dir: Path, env: dict[str, str] | None = None) -> subprocess.CompletedProcess[str]:
+    return subprocess.run(
+        [str(BIN), "--study", str(study_dir), "ingest", "trawl_agency",
+         "--events", str(study_dir / "hauls_messy.csv"), "--records", str(study_dir / "catch_messy.csv")],
+        capture_output=True, text=True, timeout=120, env={**os.environ, **(env or {})},
+    )
+
+
+@pytest.mark.parametrize("point", ["moving", "before_transaction", "before_commit", "after_commit"])
+def test_killed_ingest_leaves_all_or_nothing(study_dir: Path, point: str) -> None:
+    killed = _ingest(study_dir, {"HARMONIZE_CRASH_AT": point})
+    assert killed.returncode == -9  # SIGKILL
+    store = Store(load_study(study_dir).store_dir)
+    assert store.check() == []
+    complete = store.ingests(include_superseded=False) if store.exists() else None
+    n_complete = 0 if complete is None else len(complete)
+    assert n_complete == (1 if point == "after_commit" else 0)
+    if n_complete == 0 and store.exists():
+        with store.connect() as con:
+            assert con.execute("SELECT count(*) FROM observations").fetchall()[0][0] == 0
+    # the re-run completes (or finds the committed ingest) and the store is sound
+    rerun = _ingest(study_dir)
+    assert rerun.returncode == 0, rerun.stderr
+    assert ("nothing to do" in rerun.stdout) == (point == "after_commit")
+    assert store.check() == []
+    with store.connect() as con:
+        assert con.execute("SELECT count(*) FROM observations").fetchall()[0][0] == 31
+    # leftovers of the killed run are removed by the next writer (after_commit: the re-run
+    # found nothing to write, so its staging folder waits for the next one)
+    if point != "after_commit":
+        staging = store.directory / "staging"
+        assert not staging.is_dir() or list(staging.iterdir()) == []
+
+
+def test_second_writer_is_told_the_store_is_busy(study_dir: Path) -> None:
+    _ingest(study_dir)
+    holder = subprocess.Popen(
+        [sys.executable, "-c", textwrap.dedent(f"""
+            import duckdb, time, sys
+            con = duckdb.connect({str(study_dir / 'store' / 'harmonized.duckdb')!r})
+            print('locked', flush=True)
+            time.sleep(30)
+        """)],
+        stdout=subprocess.PIPE, text=True,
+    )
+    try:
+        assert holder.stdout is not None and holder.stdout.readline().strip() == "locked"
+        (study_dir / "catch_messy.csv").write_text((study_dir / "catch_messy.csv").read_text() + "H010,pale lumb,10,1,\n")
+        start = time.monotonic()
+        out = subprocess.run(
+            [str(BIN), "--study", str(study_dir), "ingest", "--replace", "trawl_agency",
+             "--events", str(study_dir / "hauls_messy.csv"), "--records", str(study_dir / "catch_messy.csv")],
+            capture_output=True, text=True, timeout=120, env={**os.environ, "HARMONIZE_LOCK_TIMEOUT": "2"},
+        )
+        assert time.monotonic() - start >= 2  # it waited before giving up
+        assert out.returncode == 2
+        assert f"the store is busy (another harmonize process, PID {holder.pid})" in out.stderr
+    finally:
+        holder.kill()
+        holder.wait()
+    store = Store(study_dir / "store")
+    assert store.check() == []
+    assert len(store.ingests(include_superseded=False)) == 1
+
+
+def test_two_concurrent_ingests_of_different_sources_both_land(study_dir: Path) -> None:
+    # A copy of the profile under another source id: two writers at once, both must commit.
+    prof = study_dir / "profiles" / "trawl_agency.toml"
+    (study_dir / "profiles" / "trawl_second.toml").write_text(prof.read_text().replace('id = "keldmar_trawl"', 'id = "keldmar_trawl_b"'))
+    cmd = [str(BIN), "--study", str(study_dir), "ingest"]
+    files = ["--events", str(study_dir / "hauls_messy.csv"), "--records", str(study_dir / "catch_messy.csv")]
+    procs = [subprocess.Popen([*cmd, p, *files], stdout=subprocess.PIPE, stderr=subprocess.PIPE, text=True)
+             for p in ("trawl_agency", "trawl_second")]
+    for p in procs:
+        _, err = p.communicate(timeout=120)
+        assert p.returncode == 0, err
+    store = Store(study_dir / "store")
+    assert store.check() == []
+    assert sorted(store.ingests()["source_id"]) == ["keldmar_trawl", "keldmar_trawl_b"]

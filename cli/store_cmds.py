@@ -9,6 +9,7 @@ from harmonize.cli.console import console, fmt_int, study_from
 from rich.table import Table
 
 from harmonize.store import Store
+from harmonize.twins import volunteer_only
 
 
 def register(app: typer.Typer) -> None:
@@ -44,6 +45,11 @@ def status(
             t2.add_row(r.source_kind, str(r.season_year), r.season, str(r.depth_layer), fmt_int(r.events),
                        fmt_int(r.rows), fmt_int(int(r.zero_filled)))
         console.print(t2)
+        with store.connect() as con:  # where volunteers alone carry the model (harmonize.twins)
+            alone = volunteer_only(con)
+        if len(alone):
+            console.print(f"volunteer records only: {fmt_int(len(alone))} stratum x season cells have no other "
+                          "biological records (see 'harmonize twins')", markup=False)
     if check:
         problems = store.check()
         if problems:

@@ -47,3 +47,22 @@ def suppression_sql(min_vessels: int, column: str = "value", n_vessels: str = "n
     """SQL expression that blanks ``column`` where fewer than ``min_vessels`` vessels contribute."""
     return (f"CASE WHEN {n_vessels} IS NOT NULL AND {n_vessels} < {int(min_vessels)} "
             f"THEN NULL ELSE {column} END")
+
+
+def suppression_note(n_suppressed: int, min_vessels: int, n_total: int | None = None) -> str:
+    """The sentence exports and reports print about suppressed effort values.
+
+    Parameters
+    ----------
+    n_suppressed
+        Rows blanked by :func:`suppress` (or counted with :func:`confidential_mask`).
+    min_vessels
+        The study's ``[confidentiality] min_vessels``.
+    n_total
+        Effort rows in the output, when known.
+    """
+    of = f" of {n_total:,}" if n_total is not None else ""
+    rows = "value" if n_suppressed == 1 else "values"
+    return (f"{n_suppressed:,}{of} fishing-effort {rows} rest on fewer than {min_vessels} vessels and "
+            f"are withheld (confidentiality threshold [confidentiality] min_vessels = {min_vessels}); "
+            "the store keeps the true values. Local confidentiality rules prevail.")

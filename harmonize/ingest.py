@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import re
 import uuid
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
@@ -17,12 +18,13 @@ import pyarrow as pa
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
 from harmonize.adapters.registry import get_adapter
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns, validate_observations
+from harmonize.engines import engine_scope
 from harmonize.errors import ConfigError, DuplicateIngestError, HarmonizeError
 from harmonize.profile import Profile, find_profile, load_profile, peek_kind
 from harmonize.store import IngestRecord, Store
 from harmonize.study import Study
-from harmonize.twins import twin_settings
 from harmonize.tagging import Grid, assign_strata, normalise_lon, tag_depth_layer, tag_season
+from harmonize.twins import twin_settings
 
 
 @dataclass
@@ -98,12 +100,18 @@ def run(
     write: bool = True,
     replace: bool = False,
     progress: ProgressCallback | None = None,
+    engine: str | None = None,
+    scheduler: str | None = None,
 ) -> IngestResult:
     """Validate and harmonise one set of inputs; with ``write``, commit them to the store.
 
     Re-ingesting the same file(s) with the same configuration is a no-op ("unchanged").
     Ingesting a file of the same name or content under another configuration needs
     ``replace=True``, which supersedes the earlier ingest.
+
+    ``engine`` ("duckdb" or "dask"; default: ``HARMONIZE_ENGINE`` or "duckdb") runs the
+    steps that support it (ping tracks -> fishing hours) on that engine; ``scheduler`` is
+    the address of a Dask scheduler (see :mod:`harmonize.engines`). The result is the same.
     """
     adapter, prof = prepare(study, profile)
     for role, path in inputs.items():
@@ -128,7 +136,8 @@ def run(
             raise DuplicateIngestError(_duplicate_message(previous, main_name))
 
     started = pd.Timestamp.now("UTC").tz_localize(None)
-    out = adapter.read(inputs, prof, study, progress)
+    with engine_scope(engine, scheduler):
+        out = adapter.read(inputs, prof, study, progress)
     return store_output(study, prof, adapter.kind, out, write=write, replace=replace,
                         inputs_sha256=inputs_sha, config_sha256=config_sha, started=started)
 
@@ -262,17 +271,38 @@ def tag_events(events: pd.DataFrame, study: Study) -> pd.DataFrame:
 
 
 def _to_arrow(frame: pd.DataFrame, schema: pa.Schema) -> pa.Table:
-    """Column-by-column conversion with explicit types (robust for empty frames)."""
+    """Column-by-column conversion with explicit types (robust for empty frames).
+
+    Columns convert in Arrow's C++ code; a column Arrow refuses (mixed Python types) takes
+    the slower route through Python objects, which gives the same result or the same error.
+    """
     arrays = []
     for fld in schema:
         col = frame[fld.name]
         if pa.types.is_list(fld.type):
-            arrays.append(pa.array(col.tolist(), type=fld.type))
+            arrays.append(_list_array(col, fld.type))
         elif pa.types.is_timestamp(fld.type):
             arrays.append(pa.array(pd.to_datetime(col).astype("datetime64[us]"), type=fld.type, from_pandas=True))
         else:
-            arrays.append(pa.array(col.astype(object).where(col.notna(), None).tolist(), type=fld.type))
+            try:
+                arrays.append(pa.array(col, type=fld.type, from_pandas=True))
+            except (pa.ArrowInvalid, pa.ArrowTypeError, TypeError, ValueError):
+                arrays.append(pa.array(col.astype(object).where(col.notna(), None).tolist(), type=fld.type))
     return pa.Table.from_arrays(arrays, schema=schema)
+
+
+def _list_array(col: pd.Series, typ: pa.DataType) -> pa.Array:
+    """A list column from cells that are lists, tuples or arrays; any other cell becomes []."""
+    values = col.to_numpy(dtype=object)
+    try:  # lists and arrays convert in C++; None, NaN and pd.NA become nulls
+        arr = pa.array(values, type=typ, from_pandas=True)
+    except (pa.ArrowInvalid, pa.ArrowTypeError, TypeError, ValueError):
+        cast = int if pa.types.is_integer(typ.value_type) else (lambda x: x)
+        arr = pa.array([[cast(x) for x in v] if isinstance(v, list | tuple | np.ndarray) else [] for v in values],
+                       type=typ)
+    if arr.null_count:
+        arr = pa.compute.if_else(arr.is_null(), pa.scalar([], type=typ), arr)
+    return arr
 
 
 def _keep(frame: pd.DataFrame, column: str, computed: pd.Series) -> pd.Series:
@@ -288,18 +318,12 @@ def assemble(out: AdapterOutput, study: Study, profile: Profile, kind: str, inge
     for col in _EVENT_ARROW.names:
         if col not in ev:
             ev[col] = None
-    ev["event_flags"] = pd.Series([list(f) if isinstance(f, list | tuple | np.ndarray) else [] for f in ev["event_flags"]],
-                                  index=ev.index, dtype=object)
-    ev_tab = _to_arrow(ev, _EVENT_ARROW)
+    ev_tab = _to_arrow(ev, _EVENT_ARROW)  # flags that are not lists become []
     va = out.values.rename(columns={"flags": "value_flags"})
     for col in _VALUE_ARROW.names:
         if col not in va:
             va[col] = None
     va = va[_VALUE_ARROW.names].copy()
-    va["value_flags"] = pd.Series([list(f) if isinstance(f, list | tuple | np.ndarray) else [] for f in va["value_flags"]],
-                                  index=va.index, dtype=object)
-    va["source_record_rows"] = pd.Series([[int(x) for x in r] if isinstance(r, list | tuple | np.ndarray) else []
-                                          for r in va["source_record_rows"]], index=va.index, dtype=object)
     for col in ("life_stage", "variable", "event_id", "behavior"):
         va[col] = va[col].astype(object).where(va[col].notna(), None)
     for col in ("n_values", "n_vessels"):
@@ -344,8 +368,10 @@ def _sample(table: pa.Table, n: int = 200_000) -> pd.DataFrame:
     # The contract check runs on the whole table when it is small, on a sample otherwise;
     # the SQL above already fixes every column's type.
     if table.num_rows > n:
-        idx = np.random.default_rng(0).choice(table.num_rows, n, replace=False)
-        table = table.take(np.sort(idx))
+        # 20 slices at random places: slicing is free, a row-wise take of list columns is not
+        k, size = 20, n // 20
+        blocks = np.sort(np.random.default_rng(0).choice(table.num_rows // size, k, replace=False))
+        table = pa.concat_tables([table.slice(int(b) * size, size) for b in blocks])
     return table.to_pandas()
 
 
@@ -356,18 +382,51 @@ def _main_file(out: AdapterOutput) -> Path:
     return out.files[0].path
 
 
+_PLAIN_PARTITION = re.compile(r"[A-Za-z0-9_.-]+")
+
+
 def write_partitions(table: pa.Table, folder: Path) -> None:
-    """Write observation rows as hive-partitioned zstd parquet under ``folder``."""
+    """Write observation rows as hive-partitioned zstd parquet under ``folder``.
+
+    Rows are sorted by source_kind, season_year, event_start, event_id. Only the sort keys
+    and a row index go through DuckDB's sort; the rows are then taken in that order by
+    Arrow and each partition, a contiguous slice, is copied to its own file. Sorting the
+    whole rows inside a partitioned COPY held about 3.5x the table in memory (BENCHMARKS.md).
+    """
     if table.num_rows == 0:
         return
     con = duckdb.connect()
     try:
-        con.register("obs", table)
-        target = str(folder).replace("'", "''")
-        con.execute(
-            f"""COPY (SELECT * FROM obs ORDER BY source_kind, season_year, event_start, event_id)
-                TO '{target}' (FORMAT parquet, PARTITION_BY (source_kind, season_year),
-                COMPRESSION zstd, ROW_GROUP_SIZE 500000, FILENAME_PATTERN 'part-{{uuid}}')"""
-        )
+        keys = pa.table({"i": np.arange(table.num_rows, dtype=np.int64), "k": table["source_kind"],
+                         "y": table["season_year"], "t": table["event_start"], "e": table["event_id"]})
+        con.register("sort_keys", keys)
+        parts = con.execute("SELECT k, y, count(*) FROM sort_keys GROUP BY ALL ORDER BY k, y").fetchall()
+        if not all(k is not None and _PLAIN_PARTITION.fullmatch(k) for k, _, _ in parts):
+            _write_partitions_sorted_in_copy(con, table, folder)
+            return
+        order = con.sql("SELECT i FROM sort_keys ORDER BY k, y, t, e").to_arrow_table()["i"]
+        con.unregister("sort_keys")
+        del keys
+        ordered = table.take(order)
+        offset = 0
+        for kind, year, n in parts:
+            target = folder / f"source_kind={kind}" / f"season_year={'__HIVE_DEFAULT_PARTITION__' if year is None else year}"
+            target.mkdir(parents=True, exist_ok=True)
+            con.register("part", ordered.slice(offset, n).drop_columns(["source_kind", "season_year"]))
+            name = str(target / f"part-{uuid.uuid4()}.parquet").replace("'", "''")
+            con.execute(f"COPY part TO '{name}' (FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 500000)")
+            con.unregister("part")
+            offset += n
     finally:
         con.close()
+
+
+def _write_partitions_sorted_in_copy(con: duckdb.DuckDBPyConnection, table: pa.Table, folder: Path) -> None:
+    """DuckDB's own partitioned COPY, for partition values that need escaping in paths."""
+    con.register("obs", table)
+    target = str(folder).replace("'", "''")
+    con.execute(
+        f"""COPY (SELECT * FROM obs ORDER BY source_kind, season_year, event_start, event_id)
+            TO '{target}' (FORMAT parquet, PARTITION_BY (source_kind, season_year),
+            COMPRESSION zstd, ROW_GROUP_SIZE 500000, FILENAME_PATTERN 'part-{{uuid}}')"""
+    )

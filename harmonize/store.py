@@ -129,6 +129,13 @@ class Store:
     def __init__(self, directory: str | Path, lock_timeout_s: float | None = None) -> None:
         self.directory = Path(directory).resolve()
         self.db_path = self.directory / DB_NAME
+        if "?" in str(self.db_path):
+            # DuckDB 2.0 cuts a database path at '?' when it names the write-ahead log
+            # ("a?b/x.duckdb" -> "a.wal?b/x.duckdb"): commits would fail half-way.
+            raise StoreError(
+                f"cannot use the store {self.db_path}: DuckDB does not accept a '?' in a database "
+                "path; rename the folder without '?'"
+            )
         if lock_timeout_s is None:
             lock_timeout_s = float(os.environ.get("HARMONIZE_LOCK_TIMEOUT", "60"))
         self.lock_timeout_s = lock_timeout_s
@@ -205,15 +212,20 @@ class Store:
         except duckdb.CatalogException:
             paths = []
         cols = observation_sql_columns()
-        select = ", ".join(f'CAST("{c}" AS {t}) AS "{c}"' for c, t in cols)
+        present: set[str] = set()
         if paths:
             listing = ", ".join("'" + p.replace("'", "''") + "'" for p in paths)
             source = (
                 f"read_parquet([{listing}], hive_partitioning = true, "
                 "hive_types = {'source_kind': VARCHAR, 'season_year': INTEGER}, union_by_name = true)"
             )
+            # Files written before a column joined the contract lack it: it reads as null.
+            present = {r[0] for r in con.execute(f"DESCRIBE SELECT * FROM {source}").fetchall()}
         else:
-            source = "(SELECT " + ", ".join(f'CAST(NULL AS {t}) AS "{c}"' for c, t in cols) + " LIMIT 0)"
+            source = "(SELECT 1 LIMIT 0)"
+        select = ", ".join(
+            f'CAST("{c}" AS {t}) AS "{c}"' if c in present else f'CAST(NULL AS {t}) AS "{c}"' for c, t in cols
+        )
         kind = "TEMP VIEW" if temporary else "VIEW"
         # the parquet rows as written; the observations view adds the store-wide flags
         # (probable_duplicate, high_count) that harmonize.twins recomputes at each commit

@@ -52,7 +52,8 @@ def store_frames(
     for col, default in _VALUE_DEFAULTS.items():
         if col not in va:
             va[col] = default
-    va["flags"] = [[] for _ in range(len(va))]
+    # values may carry a "flags" column of lists (e.g. ["probable_duplicate"]); default none
+    va["flags"] = [list(f) if isinstance(f, list | tuple) else [] for f in va["flags"]] if "flags" in va else [[] for _ in range(len(va))]
     va["source_record_rows"] = [[] for _ in range(len(va))]
     name = file_name or f"{source_id}.csv"
     digest = hashlib.sha256(pd.util.hash_pandas_object(va.drop(columns=["flags", "source_record_rows"]).astype(str)).values.tobytes()).hexdigest()

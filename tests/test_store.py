@@ -95,3 +95,26 @@ def test_two_concurrent_ingests_of_different_sources_both_land(study_dir: Path) 
     store = Store(study_dir / "store")
     assert store.check() == []
     assert sorted(store.ingests()["source_id"]) == ["keldmar_trawl", "keldmar_trawl_b"]
+
+
+def test_store_written_before_a_new_column_still_reads(study_dir: Path) -> None:
+    # Files written by an older harmonize lack columns that later joined the contract: the
+    # observations view reads them as null instead of failing.
+    import duckdb
+
+    _ingest(study_dir)
+    store = Store(study_dir / "store")
+    with store.connect() as con:
+        files = [r[0] for r in con.execute("SELECT path FROM observation_files").fetchall()]
+    for rel in files:
+        path = store.directory / rel
+        con = duckdb.connect()
+        con.execute(f"COPY (SELECT * EXCLUDE (behavior, gear) FROM read_parquet('{path}')) TO '{path}.tmp' (FORMAT parquet)")
+        con.close()
+        os.replace(f"{path}.tmp", path)
+    with store.connect(read_only=False) as con:  # a writer redefines the view
+        pass
+    with store.connect() as con:
+        rows = con.execute("SELECT count(*), count(behavior), count(gear) FROM observations").fetchall()[0]
+    assert rows == (31, 0, 0)
+    assert store.check() == []

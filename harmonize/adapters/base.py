@@ -25,7 +25,10 @@ EVENT_COLUMNS = (
 VALUE_COLUMNS = (
     "event_id", "variable", "variable_kind", "life_stage", "quantity", "value", "unit",
     "zero_filled", "flags", "source_record_rows", "n_values", "n_vessels", "no_effort",
+    "behavior",
 )
+# behavior (optional, default null): Darwin Core behavior of the counted animals (seabirds
+# "in_flight" / "on_water"); part of the record key, so both can be stored for one taxon.
 # no_effort (optional, default False): the value is not sampled by the event's effort (e.g. a
 # temperature measured during a haul); its effort, effort_unit and density stay null.
 

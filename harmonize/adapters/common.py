@@ -42,8 +42,11 @@ def resolve_taxa(names: pd.Series, study: Study) -> tuple[pd.Series, np.ndarray,
     zero for it in the same event.
     """
     lookup = taxon_lookup(study.taxa)
-    keys = normalise_name(names)
-    canonical = keys.map(lookup).astype("string")
+    # a catch file repeats a few dozen names millions of times: normalise each distinct one
+    codes, distinct_names = pd.factorize(names, use_na_sentinel=True)
+    per_name = normalise_name(pd.Series(distinct_names, dtype=object)).map(lookup).astype("string")
+    canonical = pd.Series(per_name.to_numpy()[codes], index=names.index, dtype="string")
+    canonical[codes < 0] = pd.NA
     unknown = (canonical.isna() & names.notna()).to_numpy()
     messages = pd.Series(pd.NA, index=names.index, dtype="string")
     best = pd.Series(pd.NA, index=names.index, dtype="string")

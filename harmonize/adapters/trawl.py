@@ -13,6 +13,7 @@ from pathlib import Path
 
 import numpy as np
 import pandas as pd
+import pyarrow as pa
 import pyproj
 
 from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
@@ -192,7 +193,7 @@ class TrawlAdapter(Adapter):
         on_bottom = ~np.isfinite(gear)
         depth = np.where(on_bottom, bottom, gear)
         safe_h = np.where(alive & np.isfinite(duration_h), duration_h, 0.0)
-        event_end = end.where(end.notna(), start + pd.to_timedelta(safe_h, unit="h"))
+        event_end = end.where(end.notna(), start + pd.to_timedelta(safe_h, unit="h").round("s"))
         hauls = pd.DataFrame({
             "event_id": ev["event_id"],
             "event_start": start,
@@ -226,13 +227,28 @@ class TrawlAdapter(Adapter):
 def _catch_values(catch: pd.DataFrame) -> pd.DataFrame:
     """Long rows (biomass, count) per haul x taxon x life stage; several rows are summed."""
     keys = ["event_id", "variable", "life_stage"]
-    grouped = catch.groupby(keys, dropna=False, sort=False)
-    agg = grouped.agg(
-        weight=("weight", lambda s: s.sum(min_count=1)),
-        count=("count", lambda s: s.sum(min_count=1)),
-        rows=("row", list),
-        n=("row", "size"),
-    ).reset_index()
+    # one integer code per group (nulls are a group of their own), then numpy reductions:
+    # a pandas groupby over three string keys with Python aggregations was the slowest step
+    # of a large trawl ingest (see BENCHMARKS.md)
+    codes = catch.groupby(keys, dropna=False, sort=False).ngroup().to_numpy(np.int64)
+    n_groups = int(codes.max()) + 1 if codes.size else 0
+    first = np.full(n_groups, codes.size, dtype=np.int64)
+    np.minimum.at(first, codes, np.arange(codes.size))
+    n = np.bincount(codes, minlength=n_groups)
+    # rows of each group in file order, as one list per group (built by Arrow, not in Python)
+    order = np.argsort(codes, kind="stable")
+    offsets = np.concatenate([[0], np.cumsum(n)]).astype(np.int64)
+    rows = pa.ListArray.from_arrays(pa.array(offsets), pa.array(catch["row"].to_numpy(np.int64)[order]))
+    rows = pd.Series(rows.to_pandas(), dtype=object)
+    head = catch.iloc[first][keys].reset_index(drop=True)
+
+    def total(col: str) -> np.ndarray:
+        v = catch[col].to_numpy(float)
+        seen = np.bincount(codes, weights=~np.isnan(v), minlength=n_groups) > 0
+        sums = np.bincount(codes, weights=np.nan_to_num(v), minlength=n_groups)
+        return np.where(seen, sums, np.nan)  # min_count=1: a group without any value stays null
+
+    agg = head.assign(weight=total("weight"), count=total("count"), rows=rows, n=n)
     parts = []
     for quantity, unit, col in (("biomass", "kg", "weight"), ("count", "1", "count")):
         part = agg[agg[col].notna()]
@@ -240,10 +256,14 @@ def _catch_values(catch: pd.DataFrame) -> pd.DataFrame:
             "event_id": part["event_id"], "variable": part["variable"], "life_stage": part["life_stage"],
             "quantity": quantity, "unit": unit, "value": part[col].astype(float),
             "variable_kind": "taxon", "zero_filled": False,
-            "flags": [["merged_rows"] if k > 1 else [] for k in part["n"]],
+            "flags": _MERGED_FLAGS[(part["n"].to_numpy() > 1).astype(int)],
             "source_record_rows": part["rows"], "n_values": part["n"],
         }))
     return pd.concat(parts, ignore_index=True)
+
+
+#: flags of a value built from one catch row, and from several (shared, never mutated)
+_MERGED_FLAGS = np.array([[], ["merged_rows"]], dtype=object)
 
 
 def _temperature_values(hauls: pd.DataFrame) -> pd.DataFrame:

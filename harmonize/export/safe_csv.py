@@ -1,9 +1,16 @@
-"""CSV writing that guards text cells against spreadsheet formula injection."""
+"""CSV writing that guards text cells against spreadsheet formula injection.
+
+OWASP ASVS 5.0 requirement V1.2.10: a text cell that starts with = + - @ tab, carriage
+return (or NUL) is read as a formula by spreadsheet programs; prefix it with a single quote.
+Only text columns are touched, never numbers. Two implementations that agree: one for pandas
+frames, one as DuckDB SQL for exports too large for memory.
+"""
 
 from __future__ import annotations
 
 from pathlib import Path
 
+import duckdb
 import pandas as pd
 
 # OWASP ASVS 5.0 V1.2.10: a text cell starting with = + - @ tab or CR (or NUL) is read as a
@@ -18,6 +25,12 @@ def neutralise_text(values: pd.Series) -> pd.Series:
     return text.where(~risky, "'" + text)
 
 
+def neutralise_sql(expr: str) -> str:
+    """SQL (DuckDB) expression doing :func:`neutralise_text` on the text expression ``expr``."""
+    triggers = ", ".join(f"chr({ord(c)})" for c in _TRIGGERS)
+    return f"CASE WHEN left({expr}, 1) IN ({triggers}) THEN chr(39) || {expr} ELSE {expr} END"
+
+
 def write_safe_csv(frame: pd.DataFrame, path: str | Path) -> None:
     """Write ``frame`` as UTF-8 CSV with formula-like text cells neutralised."""
     out = frame.copy()
@@ -25,3 +38,39 @@ def write_safe_csv(frame: pd.DataFrame, path: str | Path) -> None:
         if out[col].dtype == object or pd.api.types.is_string_dtype(out[col]):
             out[col] = neutralise_text(out[col])
     out.to_csv(path, index=False)
+
+
+def copy_safe_csv(con: duckdb.DuckDBPyConnection, query: str, path: str | Path,
+                  list_separator: str = "|") -> tuple[list[tuple[str, str]], int]:
+    """Stream the result of ``query`` to a UTF-8 CSV file with DuckDB, text cells neutralised.
+
+    List columns are joined with ``list_separator`` first (CSV has no lists); timestamps are
+    written as ``YYYY-MM-DD HH:MM:SS`` (UTC in harmonize). Returns the (column, type) pairs
+    of the file, for its metadata, and the number of rows written.
+    """
+    described = con.execute(f"DESCRIBE ({query})").fetchall()
+    select: list[str] = []
+    columns: list[tuple[str, str]] = []
+    sep = "'" + list_separator.replace("'", "''") + "'"
+    for name, sql_type, *_ in described:
+        ident = '"' + name.replace('"', '""') + '"'
+        # the header is text too: a column named after a taxon or variable is guarded as well
+        alias = '"' + _neutral_name(name).replace('"', '""') + '"'
+        t = str(sql_type).upper()
+        if t.endswith("[]"):
+            select.append(f"{neutralise_sql(f'array_to_string({ident}, {sep})')} AS {alias}")
+            columns.append((name, "VARCHAR"))
+        elif t == "VARCHAR":
+            select.append(f"{neutralise_sql(ident)} AS {alias}")
+            columns.append((name, t))
+        else:
+            select.append(f"{ident} AS {alias}")
+            columns.append((name, t))
+    target = str(path).replace("'", "''")
+    written = con.execute(
+        f"COPY (SELECT {', '.join(select)} FROM ({query})) TO '{target}' (FORMAT csv, HEADER true)").fetchall()
+    return columns, int(written[0][0])
+
+
+def _neutral_name(name: str) -> str:
+    return "'" + name if name.startswith(_TRIGGERS) else name

@@ -1,0 +1,26 @@
+"""The floor of an ingest: DuckDB reads the CSV file(s) and writes zstd parquet, nothing else.
+
+Kept apart from :mod:`benchmarks.baselines` so that the measured process imports DuckDB only.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import duckdb
+
+
+def duckdb_floor(files: list[Path], out_dir: Path) -> int:
+    """CSV -> zstd parquet with DuckDB, nothing else; returns the rows copied."""
+    out_dir.mkdir(parents=True, exist_ok=True)
+    con = duckdb.connect()
+    total = 0
+    try:
+        for path in files:
+            target = out_dir / (path.stem + ".parquet")
+            n = con.execute(f"COPY (SELECT * FROM read_csv('{path}')) TO '{target}' "
+                            "(FORMAT parquet, COMPRESSION zstd)").fetchall()[0][0]
+            total += int(n)
+    finally:
+        con.close()
+    return total

@@ -1,0 +1,289 @@
+"""Benchmark runner: harmonize against baselines measured in the same run, at several sizes.
+
+Run from the repository root::
+
+    .venv/bin/python -m benchmarks.run                 # ingest at 1e5, 1e6, 1e7; stores 1e7, 1e8; gridded
+    .venv/bin/python -m benchmarks.run --quick         # ingest at 1e5, 1e6; store 1e6, 1e7; small gridded
+    .venv/bin/python -m benchmarks.run --only ingest --sizes 1e5 3e6
+    .venv/bin/python -m benchmarks.run --only store --store-sizes 1e7 --dask
+
+Every measurement runs in a fresh child process (``python -m benchmarks.run --child ...``)
+so that its peak resident memory (``ru_maxrss`` of that process, DuckDB's threads included)
+is its own; its time is the child's whole run, imports included, as a user would see it. Times are reported as ratios against a baseline measured in the same run: the
+absolute seconds depend on the machine and are printed only for context. Results are
+printed as Markdown tables and written, with the machine description, to a JSON file
+(``--json``, default ``benchmarks/results.json``). Not part of the test suite.
+
+Comparisons:
+
+- ``ingest``: N pings and N trawl catch rows. harmonize (``harmonize.ingest.run``: read,
+  validate, tag, write the store) vs the raw DuckDB floor (CSV -> parquet, no checks) and vs
+  a plain pandas script (:mod:`benchmarks.baselines`).
+- ``store``: a synthetic store of N observation rows, registered through ``Store.commit``;
+  the coverage audit vs one raw DuckDB group-by pass over the same parquet (the least an
+  audit must read), and the wide export vs a raw DuckDB pivot of the same rows to parquet.
+  With ``--dask`` the audit's aggregations also run on a local Dask cluster.
+- ``gridded``: a gridded NetCDF ingest of a file larger than the memory budget it is given
+  (:mod:`benchmarks.gridded_memory`).
+"""
+
+from __future__ import annotations
+
+import argparse
+import json
+import os
+import platform
+import resource
+import shutil
+import subprocess
+import sys
+import tempfile
+import time
+from pathlib import Path
+from typing import Any
+
+ROOT = Path(__file__).resolve().parent.parent
+
+
+# ---------------------------------------------------------------------------- child tasks
+
+def _task(name: str, args: list[str]) -> dict[str, Any]:
+    """Run one measured task in this (child) process; returns its stats."""
+    start = time.perf_counter()
+    stats: dict[str, Any] = {}
+    if name == "import":
+        import harmonize.ingest  # noqa: F401  (the fixed cost of importing the package)
+    elif name == "floor":
+        from benchmarks.floor import duckdb_floor
+
+        stats["rows"] = duckdb_floor([Path(a) for a in args[1:]], Path(args[0]))
+    elif name == "pandas_pings":
+        from benchmarks.baselines import pandas_pings
+
+        stats["rows_out"] = pandas_pings(Path(args[0]), Path(args[1]))
+    elif name == "pandas_trawl":
+        from benchmarks.baselines import pandas_trawl
+
+        stats["rows_out"] = pandas_trawl(Path(args[0]), Path(args[1]), Path(args[2]))
+    elif name == "harmonize":
+        from harmonize import load_study
+        from harmonize.ingest import run
+
+        study_dir, profile, *files = args
+        inputs = {"rows": Path(files[0])} if len(files) == 1 else {"events": Path(files[0]), "records": Path(files[1])}
+        result = run(load_study(study_dir), profile, inputs)
+        stats.update(rows_read=result.rows_read, rows_quarantined=result.rows_quarantined,
+                     rows_out=result.records_written)
+    elif name == "make_store":
+        from benchmarks.stores import make_store
+
+        stats.update(make_store(Path(args[0]), int(args[1])))
+    elif name == "audit":
+        from benchmarks.stores import run_audit
+
+        stats.update(run_audit(Path(args[0]), engine=args[1] if len(args) > 1 else "duckdb"))
+    elif name == "audit_floor":
+        from benchmarks.stores import audit_floor
+
+        stats.update(audit_floor(Path(args[0])))
+    elif name == "wide":
+        from benchmarks.stores import run_wide
+
+        stats.update(run_wide(Path(args[0]), Path(args[1])))
+    elif name == "wide_floor":
+        from benchmarks.stores import wide_floor
+
+        stats.update(wide_floor(Path(args[0]), Path(args[1])))
+    else:
+        raise SystemExit(f"unknown task {name}")
+    stats["work_seconds"] = time.perf_counter() - start
+    stats["peak_rss_mb"] = resource.getrusage(resource.RUSAGE_SELF).ru_maxrss / 1024
+    return stats
+
+
+def measure(name: str, *args: object, timeout: float | None = None) -> dict[str, Any]:
+    """Run a task in a fresh child process; returns its stats (``error`` on failure)."""
+    cmd = [sys.executable, "-m", "benchmarks.run", "--child", name, *map(str, args)]
+    start = time.perf_counter()
+    proc = subprocess.run(cmd, capture_output=True, text=True, cwd=ROOT, timeout=timeout)
+    seconds = time.perf_counter() - start
+    if proc.returncode != 0:
+        tail = (proc.stderr.strip().splitlines() or ["(no output)"])[-1]
+        return {"error": f"exit {proc.returncode}: {tail}"}
+    stats = json.loads(proc.stdout.strip().splitlines()[-1])
+    stats["seconds"] = seconds  # the whole child process: start-up and imports included
+    return stats
+
+
+# ---------------------------------------------------------------------------- comparisons
+
+def bench_ingest(sizes: list[int], work: Path) -> list[dict[str, Any]]:
+    """Pings and trawl catch rows: harmonize vs raw DuckDB floor vs pandas script."""
+    from benchmarks.synth import ping_study, trawl_study
+
+    rows = []
+    for n in sizes:
+        folder = work / f"pings_{n}"
+        path = ping_study(folder, n)
+        res = {"what": "pings", "n": n, "file_mb": path.stat().st_size / 2**20,
+               "floor": measure("floor", folder / "floor", path),
+               "pandas": measure("pandas_pings", path, folder / "pandas.parquet"),
+               "harmonize": measure("harmonize", folder, "bench_pings", path)}
+        rows.append(res)
+        _print_ingest_row(res)
+        shutil.rmtree(folder, ignore_errors=True)
+
+        folder = work / f"trawl_{n}"
+        ev, rc = trawl_study(folder, n)
+        res = {"what": "trawl catch rows", "n": n, "file_mb": (ev.stat().st_size + rc.stat().st_size) / 2**20,
+               "floor": measure("floor", folder / "floor", ev, rc),
+               "pandas": measure("pandas_trawl", ev, rc, folder / "pandas.parquet"),
+               "harmonize": measure("harmonize", folder, "bench_trawl", ev, rc)}
+        rows.append(res)
+        _print_ingest_row(res)
+        shutil.rmtree(folder, ignore_errors=True)
+    return rows
+
+
+def bench_store(sizes: list[int], work: Path, dask: bool) -> list[dict[str, Any]]:
+    """Audit and wide export over synthetic stores of N observation rows."""
+    rows = []
+    for n in sizes:
+        folder = work / f"store_{n}"
+        made = measure("make_store", folder, n)
+        res: dict[str, Any] = {"n": n, "make": made}
+        if "error" not in made:
+            res["audit_floor"] = measure("audit_floor", folder)
+            res["audit"] = measure("audit", folder, "duckdb")
+            if dask:
+                res["audit_dask"] = measure("audit", folder, "dask")
+            res["wide_floor"] = measure("wide_floor", folder, work / "wide_floor.parquet")
+            res["wide"] = measure("wide", folder, work / "wide.parquet")
+        rows.append(res)
+        _print_store_row(res)
+        shutil.rmtree(folder, ignore_errors=True)
+        for name in ("wide_floor.parquet", "wide.parquet"):
+            (work / name).unlink(missing_ok=True)
+    return rows
+
+
+def bench_gridded(quick: bool, work: Path) -> dict[str, Any]:
+    """A gridded file larger than the ingest's memory budget (see benchmarks/gridded_memory.py)."""
+    # 720 x 960 int16 values per time step (1.3 MiB); the long file is 10x the short one
+    steps = 40 if quick else 240
+    cmd = [sys.executable, "benchmarks/gridded_memory.py", "--steps", str(steps), "--factor", "10",
+           "--ny", "720", "--nx", "960", "--chunk-mb", "64"]
+    env = dict(os.environ, TMPDIR=str(work))
+    start = time.perf_counter()
+    proc = subprocess.run(cmd, capture_output=True, text=True, cwd=ROOT, env=env)
+    out = {"seconds": time.perf_counter() - start, "chunk_mb": 64, "steps": steps,
+           "output": proc.stdout.strip(), "error": proc.stderr.strip().splitlines()[-1:] if proc.returncode else None}
+    print("\n### Gridded ingest, memory budget [aggregate] chunk_mb = 64\n")
+    print("```\n" + out["output"] + "\n```", flush=True)
+    return out
+
+
+# ---------------------------------------------------------------------------- printing
+
+def _fmt_ratio(a: dict[str, Any], b: dict[str, Any]) -> str:
+    if "error" in a or "error" in b:
+        return "n/a"
+    return f"{a['seconds'] / b['seconds']:.2f}"
+
+
+def _cell(m: dict[str, Any]) -> str:
+    if "error" in m:
+        return f"failed ({m['error'][:60]})"
+    return f"{m['seconds']:.1f} s / {m['peak_rss_mb']:,.0f} MB"
+
+
+def _print_ingest_row(r: dict[str, Any]) -> None:
+    if not getattr(_print_ingest_row, "header", False):
+        print("\n### Ingest: harmonize vs raw DuckDB floor vs pandas script\n")
+        print("| input | N | CSV MB | DuckDB floor (time / peak RSS) | pandas script | harmonize "
+              "| harmonize / floor | pandas / harmonize |")
+        print("|---|---:|---:|---|---|---|---:|---:|")
+        _print_ingest_row.header = True  # type: ignore[attr-defined]
+    print(f"| {r['what']} | {r['n']:.0e} | {r['file_mb']:,.0f} | {_cell(r['floor'])} | {_cell(r['pandas'])} "
+          f"| {_cell(r['harmonize'])} | {_fmt_ratio(r['harmonize'], r['floor'])} "
+          f"| {_fmt_ratio(r['pandas'], r['harmonize'])} |", flush=True)
+
+
+def _print_store_row(r: dict[str, Any]) -> None:
+    if not getattr(_print_store_row, "header", False):
+        print("\n### Store: audit and wide export vs raw DuckDB passes over the same parquet\n")
+        print("| rows | parquet MB | build s | audit floor | audit | audit / floor | audit on Dask "
+              "| wide floor | wide export | wide / floor |")
+        print("|---:|---:|---:|---|---|---:|---|---|---|---:|")
+        _print_store_row.header = True  # type: ignore[attr-defined]
+    m = r["make"]
+    if "error" in m:
+        print(f"| {r['n']:.0e} | | failed ({m['error'][:80]}) | | | | | | | |", flush=True)
+        return
+    dask = _cell(r["audit_dask"]) if "audit_dask" in r else "not run"
+    print(f"| {r['n']:.0e} | {m['parquet_mb']:,.0f} | {m['seconds']:.0f} | {_cell(r['audit_floor'])} "
+          f"| {_cell(r['audit'])} | {_fmt_ratio(r['audit'], r['audit_floor'])} | {dask} "
+          f"| {_cell(r['wide_floor'])} | {_cell(r['wide'])} | {_fmt_ratio(r['wide'], r['wide_floor'])} |",
+          flush=True)
+
+
+def machine() -> dict[str, Any]:
+    """What the numbers were measured on."""
+    import duckdb
+    import pandas
+    import pyarrow
+
+    cpu = "unknown"
+    try:
+        cpu = next(line.split(":", 1)[1].strip() for line in Path("/proc/cpuinfo").read_text().splitlines()
+                   if line.startswith("model name"))
+    except (OSError, StopIteration):
+        pass
+    mem_gb = os.sysconf("SC_PAGE_SIZE") * os.sysconf("SC_PHYS_PAGES") / 2**30
+    return {"cpu": cpu, "cores": os.cpu_count(), "memory_gb": round(mem_gb, 1),
+            "python": platform.python_version(), "os": platform.platform(),
+            "duckdb": duckdb.__version__, "pandas": pandas.__version__, "pyarrow": pyarrow.__version__,
+            "date": time.strftime("%Y-%m-%d %H:%M UTC", time.gmtime())}
+
+
+def main(argv: list[str] | None = None) -> None:
+    parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
+    parser.add_argument("--sizes", nargs="+", type=float, help="ingest sizes N (default 1e5 1e6 1e7)")
+    parser.add_argument("--store-sizes", nargs="+", type=float, help="store sizes (default 1e7 1e8)")
+    parser.add_argument("--quick", action="store_true", help="ingest 1e5 and 1e6 only; stores 1e6 and 1e7")
+    parser.add_argument("--only", default="ingest,store,gridded", help="comma-separated: ingest, store, gridded")
+    parser.add_argument("--dask", action="store_true", help="also run the audit's aggregations on Dask")
+    parser.add_argument("--work", type=Path, default=None, help="scratch folder (default: a temp dir)")
+    parser.add_argument("--json", type=Path, default=ROOT / "benchmarks" / "results.json")
+    parser.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
+    args = parser.parse_args(argv)
+    if args.child:
+        print(json.dumps(_task(args.child[0], args.child[1:])))
+        return
+
+    sizes = [int(s) for s in (args.sizes or ([1e5, 1e6] if args.quick else [1e5, 1e6, 1e7]))]
+    store_sizes = [int(s) for s in (args.store_sizes or ([1e6, 1e7] if args.quick else [1e7, 1e8]))]
+    only = {s.strip() for s in args.only.split(",")}
+    info = machine()
+    print(f"Machine: {info['cpu']}, {info['cores']} cores, {info['memory_gb']} GB RAM; Python {info['python']}, "
+          f"DuckDB {info['duckdb']}, pandas {info['pandas']}, pyarrow {info['pyarrow']}; {info['date']}")
+    results: dict[str, Any] = {"machine": info}
+    base = measure("import")
+    results["import_baseline"] = base
+    print(f"Fixed cost of a child process importing harmonize: {_cell(base)}")
+    work = Path(tempfile.mkdtemp(prefix="harmonize-bench-", dir=args.work))
+    try:
+        if "ingest" in only:
+            results["ingest"] = bench_ingest(sizes, work)
+        if "store" in only:
+            results["store"] = bench_store(store_sizes, work, args.dask)
+        if "gridded" in only:
+            results["gridded"] = bench_gridded(args.quick, work)
+    finally:
+        shutil.rmtree(work, ignore_errors=True)
+        args.json.write_text(json.dumps(results, indent=2, default=str) + "\n", encoding="utf-8")
+    print(f"\nresults written to {args.json}")
+
+
+if __name__ == "__main__":
+    main()

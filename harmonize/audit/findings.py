@@ -1,0 +1,484 @@
+"""Findings of the coverage audit: gaps and problems, each with a place and a sentence to act on.
+
+Findings are derived from the aggregated tables of :mod:`harmonize.audit.metrics` (small
+frames; the observation rows stay in DuckDB). The codes and their rules:
+
+no_samples (error; warning for opportunistic and effort data, which have no design)
+    A source kind sampled a season (or a depth layer, or a stratum, of that season) in
+    most of its earlier years with data (more than half, at least two) and has no sample
+    there in a year when it has data otherwise. Reported at the coarsest level that is
+    empty: the whole season, else the layer, else the stratum (not for opportunistic or
+    effort data). In a kind's last year, seasons after the latest one sampled are not
+    reported (the year may not be over). Also (warning): a season x depth layer that no
+    biological source samples in any year.
+thin_samples (warning)
+    A source kind has some, but fewer than ``[audit] min_events``, samples in a
+    season_year x season x depth layer. Not applied to fishing effort.
+coverage_drop (warning)
+    The share of domain cells a source kind sampled in a season is below
+    ``[audit] coverage_drop`` times the median share of its earlier years (at least two).
+    Not applied to fishing effort.
+missing_year (error)
+    A source has no records in a season year between its first and last year (with
+    ``--year Y``: also when it had records in Y-1 and none in Y).
+few_encounters (warning)
+    A taxon has fewer than ``[audit] min_encounters`` non-zero records in a season x depth
+    layer, all years together (one quantity per source: count, else presence, else biomass).
+volunteer_only (warning)
+    Every biological event in a season x depth layer, or every encounter of a taxon
+    there, comes from volunteer providers.
+source_disagreement (warning; info where no tolerance is known)
+    Two sources of one physical variable, paired by cell, season year, season and depth
+    layer, differ on average by more than the variable's tolerance.
+
+Tolerances live in study.toml, ``[audit.tolerance]`` (variable = tolerance in the
+variable's canonical unit), and fall back to :data:`DEFAULT_TOLERANCES`.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterable, Mapping
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from harmonize.audit.metrics import ALL_BIOLOGICAL, Metrics
+from harmonize.errors import ConfigError
+from harmonize.study import Study
+from harmonize.tagging import season_year_offsets
+
+CODES = ("no_samples", "thin_samples", "coverage_drop", "missing_year", "few_encounters",
+         "volunteer_only", "source_disagreement")
+SEVERITIES = ("error", "warning", "info")
+#: Kinds that describe where fishing happened, not where anyone sampled.
+EFFORT_KINDS = ("effort",)
+#: Kinds without a sampling design: their gaps are warnings, and strata are not checked.
+UNDESIGNED_KINDS = ("opportunistic", "effort")
+VOLUNTEER = "volunteer"
+
+#: Default tolerances (canonical unit of the variable) for source_disagreement. A judgement,
+#: not a standard: 0.5 degC is the order of the differences between in-situ temperatures and
+#: ocean-model or satellite fields that users usually accept before correcting (common
+#: practice). Set your own in study.toml [audit.tolerance].
+DEFAULT_TOLERANCES: dict[str, float] = {
+    "sea_surface_temperature": 0.5,
+    "sea_water_temperature": 0.5,
+    "sea_water_temperature_at_sea_floor": 0.5,
+    "sea_water_salinity": 0.2,
+    "mass_concentration_of_chlorophyll_a_in_sea_water": 0.5,
+}
+
+
+@dataclass(frozen=True)
+class Finding:
+    """One finding: what (code, severity), where, and what to do (message)."""
+
+    code: str
+    severity: str
+    message: str
+    source_kind: str | None = None
+    season_year: int | None = None
+    season: str | None = None
+    depth_layer: str | None = None
+    stratum: str | None = None
+    variable: str | None = None
+    details: Mapping[str, Any] = field(default_factory=dict)
+
+    def to_dict(self) -> dict[str, Any]:
+        """The contract's finding object (section 6), with ``details`` as an extra key."""
+        return {
+            "code": self.code, "severity": self.severity, "source_kind": self.source_kind,
+            "season_year": self.season_year, "season": self.season, "depth_layer": self.depth_layer,
+            "stratum": self.stratum, "variable": self.variable, "message": self.message,
+            "details": {k: _plain(v) for k, v in self.details.items()},
+        }
+
+
+def _plain(value: Any) -> Any:
+    """numpy scalars and NaN -> JSON-friendly Python values."""
+    if isinstance(value, np.generic):
+        value = value.item()
+    if isinstance(value, float) and not np.isfinite(value):
+        return None
+    if isinstance(value, list | tuple):
+        return [_plain(v) for v in value]
+    return value
+
+
+def _int(value: Any) -> int | None:
+    return None if value is None or pd.isna(value) else int(value)
+
+
+def _str(value: Any) -> str | None:
+    return None if value is None or pd.isna(value) else str(value)
+
+
+def _layer(name: str | None) -> str:
+    return f"the {name} layer" if name else "samples with no depth layer"
+
+
+def _years_text(years: Iterable[int]) -> str:
+    ys = sorted(int(y) for y in years)
+    if not ys:
+        return "none"
+    if ys == list(range(ys[0], ys[-1] + 1)) and len(ys) > 2:
+        return f"{ys[0]}-{ys[-1]}"
+    return ", ".join(str(y) for y in ys)
+
+
+# --------------------------------------------------------------------------- tolerances
+def tolerances(study: Study) -> dict[str, float]:
+    """Tolerances per physical variable: the defaults overlaid with study.toml [audit.tolerance].
+
+    Raises
+    ------
+    ConfigError
+        When a tolerance is not a positive number.
+    """
+    out = dict(DEFAULT_TOLERANCES)
+    section = (study.raw.get("audit") or {}).get("tolerance") or {}
+    if not isinstance(section, Mapping):
+        raise ConfigError(study.file, "audit.tolerance", "expected a table of variable = tolerance")
+    for name, value in section.items():
+        if isinstance(value, bool) or not isinstance(value, int | float) or not value > 0:
+            raise ConfigError(study.file, f"audit.tolerance.{name}",
+                              f"expected a number above 0 in the variable's canonical unit, got {value!r}")
+        out[str(name)] = float(value)
+    return out
+
+
+def tolerance_for(variable: str, table: Mapping[str, float]) -> float | None:
+    """The tolerance of ``variable``; temperatures without their own entry take 0.5 degC."""
+    if variable in table:
+        return table[variable]
+    if "temperature" in variable:
+        return DEFAULT_TOLERANCES["sea_water_temperature"]
+    return None
+
+
+# --------------------------------------------------------------------------- the rules
+def _history(presence: pd.DataFrame, kind_years: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
+    """For each combination (keys) and each year its kind has data: sampled now / before.
+
+    ``presence`` holds source_kind, season_year, *keys for sampled combinations;
+    ``kind_years`` the (source_kind, season_year) pairs with any data of the kind.
+    """
+    combos = presence[["source_kind", *keys]].drop_duplicates()
+    grid = combos.merge(kind_years, on="source_kind")
+    hit = presence[["source_kind", "season_year", *keys]].drop_duplicates().assign(sampled=True)
+    grid = grid.merge(hit, on=["source_kind", "season_year", *keys], how="left")
+    grid["sampled"] = grid["sampled"].fillna(False).astype(bool)
+    grid = grid.sort_values(["source_kind", *keys, "season_year"], kind="stable")
+    by = grid.groupby(["source_kind", *keys], sort=False, dropna=False)
+    grid["earlier_years"] = by.cumcount()
+    grid["earlier_sampled"] = by["sampled"].cumsum() - grid["sampled"].astype(int)
+    return grid
+
+
+def _usually_sampled_but_not(grid: pd.DataFrame) -> pd.DataFrame:
+    return grid[~grid["sampled"] & (grid["earlier_years"] >= 2)
+                & (grid["earlier_sampled"] * 2 > grid["earlier_years"])]
+
+
+def season_order(study: Study) -> dict[str, int]:
+    """Position of each season within its season year (a December-January season comes first)."""
+    offsets = season_year_offsets(study.seasons)
+    return {name: min(m - 12 * int(offsets[m]) for m in months) for name, months in study.seasons.items()}
+
+
+def no_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
+    """Combinations sampled in most earlier years but empty this year; never-sampled season x layer."""
+    out: list[Finding] = []
+    le = m.layer_events[m.layer_events["season_year"].notna() & m.layer_events["season"].notna()]
+    kind_years = le[["source_kind", "season_year"]].drop_duplicates()
+    # A kind's last year may simply not be over (or its files not yet in): seasons after the
+    # latest one it sampled that year are not gaps.
+    order = season_order(study)
+    last = le.assign(pos=le["season"].map(order)).groupby("source_kind").agg(
+        last_year=("season_year", "max"))
+    last_pos = (le.assign(pos=le["season"].map(order)).merge(last, on="source_kind")
+                .query("season_year == last_year").groupby("source_kind")["pos"].max())
+    empty_seasons: set[tuple[str, int, str]] = set()
+    levels = (("season", []), ("layer", ["depth_layer"]), ("stratum", ["stratum"]))
+    for level, extra in levels:
+        frame = m.stratum_events if level == "stratum" else le
+        frame = frame[frame["season_year"].notna() & frame["season"].notna()]
+        if level == "layer":
+            frame = frame[frame["depth_layer"].notna()]
+        if level == "stratum":  # volunteers and fleets choose where they go: no stratum design
+            frame = frame[~frame["source_kind"].isin(UNDESIGNED_KINDS)]
+        grid = _usually_sampled_but_not(_history(frame, kind_years, ["season", *extra]))
+        if year is not None:
+            grid = grid[grid["season_year"] == year]
+        unfinished = (grid["season_year"] == grid["source_kind"].map(last["last_year"])) & (
+            grid["season"].map(order) > grid["source_kind"].map(last_pos))
+        grid = grid[~unfinished]
+        for r in grid.itertuples(index=False):
+            key = (r.source_kind, int(r.season_year), r.season)
+            if level == "season":
+                empty_seasons.add(key)
+            elif key in empty_seasons:
+                continue
+            where = {"season": f"{r.season}", "layer": f"{_layer(getattr(r, 'depth_layer', None))} in {r.season}",
+                     "stratum": f"stratum {getattr(r, 'stratum', '')} in {r.season}"}[level]
+            out.append(Finding(
+                "no_samples", "warning" if r.source_kind in UNDESIGNED_KINDS else "error",
+                f"No {r.source_kind} samples in {where} {int(r.season_year)}, although the "
+                f"{r.source_kind} data sampled it in {int(r.earlier_sampled)} of the {int(r.earlier_years)} "
+                "earlier years with data; find and ingest the missing records, or treat this gap as "
+                "unknown in any model of that year.",
+                source_kind=r.source_kind, season_year=int(r.season_year), season=r.season,
+                depth_layer=_str(getattr(r, "depth_layer", None)), stratum=_str(getattr(r, "stratum", None)),
+                details={"level": level, "earlier_years": int(r.earlier_years),
+                         "earlier_years_sampled": int(r.earlier_sampled)},
+            ))
+    out += _never_sampled(m, study)
+    return out
+
+
+def _never_sampled(m: Metrics, study: Study) -> list[Finding]:
+    """Season x layer combinations that no biological source samples in any year."""
+    bio = m.extent[(m.extent["source_kind"] == ALL_BIOLOGICAL) & (m.extent["events"] > 0)]
+    if not len(m.extent[m.extent["source_kind"] != ALL_BIOLOGICAL]):
+        return []
+    sampled = set(zip(bio["season"], bio["depth_layer"], strict=True))
+    layers = [layer.name for layer in study.depth_layers] + ["near_bottom"]
+    seasons = list(study.seasons)
+    # Report a season or a layer that is empty throughout once, and the remaining combinations one by one.
+    empty_seasons = [s for s in seasons if not any((s, x) in sampled for x in layers)]
+    empty_layers = [x for x in layers if not any((s, x) in sampled for s in seasons)]
+    out = []
+    for season in empty_seasons:
+        out.append(Finding(
+            "no_samples", "warning",
+            f"No biological source samples any depth layer in {season}, in any year; a model "
+            f"fitted to these data will only extrapolate into {season}, so treat its predictions "
+            "there as assumptions, or add a source that samples that season.",
+            source_kind=ALL_BIOLOGICAL, season=season, details={"level": "never_sampled"},
+        ))
+    for layer in empty_layers:
+        out.append(Finding(
+            "no_samples", "warning",
+            f"No biological source samples {_layer(layer)} in any season or year; a model "
+            "will extrapolate there from other layers, so treat its predictions for that "
+            "layer as assumptions, or add a source that samples it.",
+            source_kind=ALL_BIOLOGICAL, depth_layer=layer, details={"level": "never_sampled"},
+        ))
+    for season in seasons:
+        for layer in layers:
+            if season in empty_seasons or layer in empty_layers or (season, layer) in sampled:
+                continue
+            out.append(Finding(
+                "no_samples", "warning",
+                f"No biological source samples {_layer(layer)} in {season} in any year; a model "
+                "will extrapolate there from other seasons or layers, so treat its predictions for "
+                f"{season} in that layer as assumptions, or add a source that samples it.",
+                source_kind=ALL_BIOLOGICAL, season=season, depth_layer=layer,
+                details={"level": "never_sampled"},
+            ))
+    return out
+
+
+def thin_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
+    """Season_year x season x layer cells with some but too few samples."""
+    need = study.audit.min_events
+    le = m.layer_events
+    thin = le[(le["events"] > 0) & (le["events"] < need) & ~le["source_kind"].isin(EFFORT_KINDS)
+              & le["season_year"].notna()]
+    if year is not None:
+        thin = thin[thin["season_year"] == year]
+    return [Finding(
+        "thin_samples", "warning",
+        f"Only {int(r.events)} {r.source_kind} sample{'s' if r.events != 1 else ''} in "
+        f"{_layer(_str(r.depth_layer))} in {r.season} {int(r.season_year)} (the study asks for at "
+        f"least {need}); estimates there will be uncertain, so add samples or pool this with a "
+        "neighbouring season or layer.",
+        source_kind=r.source_kind, season_year=int(r.season_year), season=_str(r.season),
+        depth_layer=_str(r.depth_layer), details={"events": int(r.events), "min_events": need},
+    ) for r in thin.itertuples(index=False)]
+
+
+def coverage_drop(m: Metrics, study: Study, year: int | None) -> list[Finding]:
+    """Seasons whose share of domain cells fell below the study's fraction of the earlier median."""
+    share = study.audit.coverage_drop
+    cov = m.coverage[(m.coverage["events"] > 0) & ~m.coverage["source_kind"].isin(EFFORT_KINDS)]
+    out: list[Finding] = []
+    for (kind, season), g in cov.groupby(["source_kind", "season"], sort=True):
+        g = g.sort_values("season_year")
+        fractions = g["coverage_fraction"].to_numpy(float)
+        for i in range(2, len(g)):
+            y = int(g["season_year"].iloc[i])
+            if year is not None and y != year:
+                continue
+            median = float(np.median(fractions[:i]))
+            if fractions[i] < share * median:
+                row = g.iloc[i]
+                out.append(Finding(
+                    "coverage_drop", "warning",
+                    f"{kind} samples in {season} {y} cover {fractions[i]:.0%} of the domain's cells "
+                    f"({int(row['cells_sampled'])} of {int(row['domain_cells'])}), below {share:g} x the "
+                    f"median of the {i} earlier years ({median:.0%}); check for missing files or a "
+                    f"reduced survey before comparing {y} with earlier years.",
+                    source_kind=str(kind), season_year=y, season=str(season),
+                    details={"coverage_fraction": fractions[i], "earlier_median": median,
+                             "earlier_years": i, "cells_sampled": int(row["cells_sampled"]),
+                             "domain_cells": int(row["domain_cells"]), "threshold": share},
+                ))
+    return out
+
+
+def missing_year(m: Metrics, study: Study, year: int | None) -> list[Finding]:
+    """Sources silent for a season year inside their span (or in the audited year)."""
+    out: list[Finding] = []
+    sy = m.source_years
+    for (source_id, kind), g in sy.groupby(["source_id", "source_kind"], sort=True):
+        years = {int(y) for y in g["season_year"]}
+        first, last = min(years), max(years)
+        gaps = [y for y in range(first, last + 1) if y not in years]
+        if year is not None:
+            gaps = [y for y in gaps if y == year]
+            if year == last + 1 and last in years:
+                gaps.append(year)
+        for y in gaps:
+            out.append(Finding(
+                "missing_year", "error",
+                f"Source {source_id} ({kind}) has no records in season year {y}, although it has "
+                f"records in {_years_text(years)}; ingest that year's files, or record why the "
+                "survey did not run, before fitting a model across those years.",
+                source_kind=str(kind), season_year=y,
+                details={"source_id": source_id, "years_with_records": sorted(years)},
+            ))
+    return out
+
+
+def few_encounters(m: Metrics, study: Study) -> list[Finding]:
+    """Taxa with too few encounters in a season x layer to fit."""
+    need = study.audit.min_encounters
+    enc = m.encounters
+    if enc.empty:
+        return []
+    g = (enc.groupby(["variable", "season", "depth_layer"], dropna=False)
+         .agg(encounters=("encounters", "sum"), records=("records", "sum"),
+              kinds=("source_kind", lambda s: sorted(set(s))))
+         .reset_index())
+    g = g[g["encounters"] < need]
+    return [Finding(
+        "few_encounters", "warning",
+        f"{r.variable} was encountered in only {int(r.encounters)} of {int(r.records)} "
+        f"{'/'.join(r.kinds)} records in {_layer(_str(r.depth_layer))} in {r.season} (all years; the "
+        f"study asks for at least {need}); too few to fit it there, so pool seasons or layers "
+        "or leave it out of that part of the model.",
+        source_kind=r.kinds[0] if len(r.kinds) == 1 else ALL_BIOLOGICAL, season=_str(r.season),
+        depth_layer=_str(r.depth_layer), variable=str(r.variable),
+        details={"encounters": int(r.encounters), "records": int(r.records), "min_encounters": need,
+                 "source_kinds": r.kinds},
+    ) for r in g.itertuples(index=False)]
+
+
+def volunteer_only(m: Metrics, study: Study) -> list[Finding]:
+    """Season x layer combinations (or taxa in them) described only by volunteers."""
+    out: list[Finding] = []
+    bp = m.bio_providers
+    flagged: set[tuple[Any, Any]] = set()
+    if not bp.empty:
+        is_vol = bp["provider_type"] == VOLUNTEER
+        by = bp.assign(vol=bp["events"].where(is_vol, 0)).groupby(["season", "depth_layer"], dropna=False)
+        g = by.agg(events=("events", "sum"), vol=("vol", "sum"), years=("years", "max"),
+                   kinds=("source_kind", lambda s: sorted(set(s)))).reset_index()
+        for r in g[(g["events"] > 0) & (g["vol"] == g["events"])].itertuples(index=False):
+            flagged.add((_str(r.season), _str(r.depth_layer)))
+            out.append(Finding(
+                "volunteer_only", "warning",
+                f"Every biological record in {_layer(_str(r.depth_layer))} in {r.season} "
+                f"({int(r.events)} events) comes from volunteers, whose effort is not standardised; "
+                "use a model that accounts for observer effort there, or treat it as presence-only.",
+                source_kind=r.kinds[0] if len(r.kinds) == 1 else ALL_BIOLOGICAL, season=_str(r.season),
+                depth_layer=_str(r.depth_layer),
+                details={"events": int(r.events), "source_kinds": r.kinds},
+            ))
+    enc = m.encounters
+    if enc.empty:
+        return out
+    is_vol = enc["provider_type"] == VOLUNTEER
+    g = (enc.assign(vol=enc["encounters"].where(is_vol, 0))
+         .groupby(["variable", "season", "depth_layer"], dropna=False)
+         .agg(encounters=("encounters", "sum"), vol=("vol", "sum"),
+              kinds=("source_kind", lambda s: sorted(set(s))))
+         .reset_index())
+    g = g[(g["encounters"] > 0) & (g["vol"] == g["encounters"])]
+    for r in g.itertuples(index=False):
+        if (_str(r.season), _str(r.depth_layer)) in flagged:
+            continue
+        vol_kinds = sorted(set(enc.loc[is_vol & (enc["variable"] == r.variable), "source_kind"]))
+        out.append(Finding(
+            "volunteer_only", "warning",
+            f"All {int(r.encounters)} encounters of {r.variable} in {_layer(_str(r.depth_layer))} in "
+            f"{r.season} come from volunteers, although other sources sample there; check whether "
+            "the survey protocols record this taxon, and model those records with their own effort.",
+            source_kind=vol_kinds[0] if len(vol_kinds) == 1 else ALL_BIOLOGICAL, season=_str(r.season),
+            depth_layer=_str(r.depth_layer), variable=str(r.variable),
+            details={"encounters": int(r.encounters)},
+        ))
+    return out
+
+
+def source_disagreement(m: Metrics, study: Study) -> list[Finding]:
+    """Physical variables on which two sources differ beyond the tolerance."""
+    table = tolerances(study)
+    out: list[Finding] = []
+    for r in m.comparisons.itertuples(index=False):
+        tol = tolerance_for(str(r.variable), table)
+        mean, sd = float(r.mean_difference), r.sd_difference
+        sd_text = "n/a" if pd.isna(sd) else f"{float(sd):.2f}"
+        unit = _str(r.unit) or ""
+        base = (f"{r.variable} from {r.source_a} ({r.kind_a}) and {r.source_b} ({r.kind_b}) differ by "
+                f"{mean:+.2f} {unit} on average (sd {sd_text}, {int(r.n_cell_periods)} shared cell-periods, "
+                f"{_layer(_str(r.depth_layer))})")
+        details = {"source_a": r.source_a, "source_b": r.source_b, "kind_b": r.kind_b,
+                   "mean_difference": mean, "sd_difference": None if pd.isna(sd) else float(sd),
+                   "n_cell_periods": int(r.n_cell_periods), "unit": unit, "tolerance": tol,
+                   "delta_change_offset": mean}
+        if tol is None:
+            out.append(Finding(
+                "source_disagreement", "info",
+                base + f"; no tolerance is set for {r.variable}, so add one under [audit.tolerance] "
+                "in study.toml to have this checked.",
+                source_kind=str(r.kind_a), depth_layer=_str(r.depth_layer), variable=str(r.variable),
+                details=details))
+        elif abs(mean) > tol:
+            out.append(Finding(
+                "source_disagreement", "warning",
+                base + f", more than the tolerance of {tol:g} {unit}; correct one source before pooling "
+                f"them (a delta-change correction adds {mean:+.2f} {unit} to {r.source_b}), or raise "
+                "[audit.tolerance] in study.toml if the difference is expected.",
+                source_kind=str(r.kind_a), depth_layer=_str(r.depth_layer), variable=str(r.variable),
+                details=details))
+    return out
+
+
+def all_findings(m: Metrics, study: Study, year: int | None = None) -> list[Finding]:
+    """Every finding of the audit, sorted by severity, code and place.
+
+    Parameters
+    ----------
+    m
+        The audit's metrics.
+    study
+        The study (thresholds, layers, seasons, tolerances).
+    year
+        With a year, findings tied to a season year are reported for that year only.
+    """
+    found = (no_samples(m, study, year) + thin_samples(m, study, year) + coverage_drop(m, study, year)
+             + missing_year(m, study, year) + few_encounters(m, study) + volunteer_only(m, study)
+             + source_disagreement(m, study))
+    return sort_findings(found)
+
+
+def sort_findings(found: Iterable[Finding]) -> list[Finding]:
+    """Errors first, then warnings, then information; then by code and place."""
+    def key(f: Finding) -> tuple[Any, ...]:
+        return (SEVERITIES.index(f.severity), CODES.index(f.code), f.source_kind or "",
+                f.season_year or 0, f.season or "", f.depth_layer or "", f.stratum or "", f.variable or "")
+    return sorted(found, key=key)

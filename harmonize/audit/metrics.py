@@ -1,0 +1,337 @@
+"""Coverage metrics of the store, computed in DuckDB SQL; only aggregates leave the database.
+
+Every query reads the ``observations`` view of a read-only store connection. Observation
+rows are never pulled into Python: the first pass reduces them to events (a haul, tow,
+segment, checklist, grid-cell-period) counted per tags and grid cell, and everything about
+sampling effort is computed from that much smaller table. Taxon encounters and physical-variable comparisons
+take one more filtered pass each over the parquet files.
+
+Conventions shared by all metrics:
+
+- rows flagged ``probable_duplicate`` (a volunteer twin of another source's record) are
+  left out wherever something is counted;
+- an event is a *sample* (``effort_bearing``) when it has at least one row that is not
+  presence-only; presence-only events count as encounters, not as samples;
+- effort events (fishing) whose value rests on fewer than ``min_vessels`` vessels are
+  confidential: their cell is never named (``cell_public`` is null), see
+  :mod:`harmonize.confidentiality`.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import duckdb
+import pandas as pd
+
+from harmonize.confidentiality import suppression_sql
+
+DUPLICATE_FLAG = "probable_duplicate"
+#: The pseudo source kind of rows that pool every biological source.
+ALL_BIOLOGICAL = "all_biological"
+#: Provider types whose values are derived fields rather than in-situ measurements.
+REFERENCE_PROVIDERS = ("model", "remote_sensing")
+
+_KEPT = f"NOT list_contains(coalesce(flags, []::VARCHAR[]), '{DUPLICATE_FLAG}')"
+
+
+@dataclass
+class Metrics:
+    """Aggregated tables the findings and the report are built from (all small)."""
+
+    extent: pd.DataFrame
+    coverage: pd.DataFrame
+    layer_events: pd.DataFrame
+    stratum_events: pd.DataFrame
+    source_years: pd.DataFrame
+    bio_providers: pd.DataFrame
+    encounters: pd.DataFrame
+    comparisons: pd.DataFrame
+    cell_maps: pd.DataFrame
+    suppressed: pd.DataFrame
+    n_domain_cells: int
+
+
+def _year_filter(max_year: int | None) -> str:
+    return "" if max_year is None else f" AND season_year <= {int(max_year)}"
+
+
+def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame,
+                      min_vessels: int, max_year: int | None = None) -> None:
+    """Create the temporary table ``audit_cells``: events counted per tag combination and cell.
+
+    One pass over the observations reduces them to one row per event (grouped on a 64-bit
+    hash of source id and event id, far cheaper than the two strings: a collision, odds
+    about 1 in 3,000 for 1e8 events, would merge two events in the counts); the events are
+    then counted per source, tags, grid cell and flags, a table small enough for every
+    other metric to be computed from quickly.
+
+    Parameters
+    ----------
+    con
+        A connection with the ``observations`` view (read-only is fine: temporary
+        tables live in memory).
+    domain_cells
+        Frame with a ``cell_id`` column: the grid cells whose centre lies in the domain.
+    min_vessels
+        Effort events with fewer distinct vessels are confidential.
+    max_year
+        Leave out season years after this one (the annual audit).
+    """
+    con.register("_audit_domain_cells", domain_cells[["cell_id"]])
+    con.execute("CREATE OR REPLACE TEMP TABLE audit_domain_cells AS SELECT DISTINCT cell_id FROM _audit_domain_cells")
+    con.unregister("_audit_domain_cells")
+    confidential = f"(n_vessels IS NOT NULL AND n_vessels < {int(min_vessels)})"
+    con.execute(
+        f"""
+        CREATE OR REPLACE TEMP TABLE audit_cells AS
+        WITH ev AS (
+            SELECT hash(source_id, event_id) AS event_key,
+                   any_value(source_id) AS source_id, any_value(source_kind) AS source_kind,
+                   any_value(provider_type) AS provider_type, any_value(season_year) AS season_year,
+                   any_value(season) AS season, any_value(depth_layer) AS depth_layer,
+                   any_value(cell_id) AS cell_id, any_value(stratum) AS stratum,
+                   bool_or(quantity <> 'presence') AS effort_bearing,
+                   bool_or(variable_kind = 'taxon') AS biological,
+                   min(n_vessels) AS n_vessels
+            FROM observations
+            WHERE {_KEPT}{_year_filter(max_year)}
+            GROUP BY event_key
+        ),
+        tagged AS (
+            SELECT ev.*, {confidential} AS confidential,
+                   {suppression_sql(min_vessels, 'ev.cell_id')} AS cell_public,
+                   d.cell_id IS NOT NULL AS in_domain
+            FROM ev LEFT JOIN audit_domain_cells d ON d.cell_id = ev.cell_id
+        )
+        SELECT source_id, source_kind, provider_type, season_year, season, depth_layer, cell_id,
+               stratum, effort_bearing, biological, confidential, cell_public, in_domain,
+               count(*) AS n
+        FROM tagged GROUP BY ALL
+        """
+    )
+
+
+def extent(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
+    """Events and years by source kind x season x depth layer, plus all biological sources pooled."""
+    return con.execute(
+        f"""
+        WITH rows AS (
+            SELECT source_kind, season, depth_layer, season_year, effort_bearing, n FROM audit_cells
+            UNION ALL
+            SELECT '{ALL_BIOLOGICAL}', season, depth_layer, season_year, effort_bearing, n
+            FROM audit_cells WHERE biological
+        )
+        SELECT source_kind, season, depth_layer,
+               coalesce(sum(n) FILTER (WHERE effort_bearing), 0)::BIGINT AS events,
+               count(DISTINCT season_year) FILTER (WHERE effort_bearing) AS "years",
+               min(season_year) FILTER (WHERE effort_bearing) AS first_year,
+               max(season_year) FILTER (WHERE effort_bearing) AS last_year,
+               coalesce(sum(n) FILTER (WHERE NOT effort_bearing), 0)::BIGINT AS presence_only_events
+        FROM rows GROUP BY ALL ORDER BY ALL
+        """
+    ).df()
+
+
+def coverage(con: duckdb.DuckDBPyConnection, n_domain_cells: int) -> pd.DataFrame:
+    """Per source kind x season_year x season: events, domain cells sampled, their share, strata.
+
+    Every season a kind ever sampled gets a row for every year of the kind's span, with
+    zeros where nothing was sampled, so gaps are explicit.
+    """
+    denom = max(int(n_domain_cells), 1)
+    return con.execute(
+        f"""
+        WITH kind_years AS (
+            SELECT source_kind, min(season_year) AS y0, max(season_year) AS y1
+            FROM audit_cells WHERE season_year IS NOT NULL GROUP BY ALL
+        ),
+        kind_seasons AS (
+            SELECT DISTINCT source_kind, season FROM audit_cells WHERE season IS NOT NULL
+        ),
+        frame AS (
+            SELECT k.source_kind, s.season, unnest(range(k.y0, k.y1 + 1)) AS season_year
+            FROM kind_years k JOIN kind_seasons s USING (source_kind)
+        ),
+        agg AS (
+            SELECT source_kind, season_year, season,
+                   sum(n) FILTER (WHERE effort_bearing) AS events,
+                   count(DISTINCT cell_public) FILTER (WHERE effort_bearing AND in_domain) AS cells_sampled,
+                   count(DISTINCT cell_id) FILTER (WHERE effort_bearing AND in_domain)
+                     - count(DISTINCT cell_public) FILTER (WHERE effort_bearing AND in_domain) AS cells_suppressed,
+                   count(DISTINCT stratum) FILTER (WHERE effort_bearing) AS strata_sampled,
+                   sum(n) FILTER (WHERE NOT effort_bearing) AS presence_only_events
+            FROM audit_cells GROUP BY ALL
+        )
+        SELECT f.source_kind, CAST(f.season_year AS INTEGER) AS season_year, f.season,
+               coalesce(a.events, 0)::BIGINT AS events,
+               coalesce(a.cells_sampled, 0) AS cells_sampled,
+               coalesce(a.cells_sampled, 0) / {denom}::DOUBLE AS coverage_fraction,
+               coalesce(a.strata_sampled, 0) AS strata_sampled,
+               coalesce(a.cells_suppressed, 0) AS cells_suppressed,
+               coalesce(a.presence_only_events, 0)::BIGINT AS presence_only_events,
+               {int(n_domain_cells)} AS domain_cells
+        FROM frame f LEFT JOIN agg a
+             ON a.source_kind = f.source_kind AND a.season = f.season AND a.season_year = f.season_year
+        ORDER BY f.source_kind, f.season_year, f.season
+        """
+    ).df()
+
+
+def layer_events(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
+    """Samples per source kind x season_year x season x depth layer."""
+    return con.execute(
+        """SELECT source_kind, season_year, season, depth_layer, sum(n)::BIGINT AS events
+           FROM audit_cells WHERE effort_bearing GROUP BY ALL ORDER BY ALL"""
+    ).df()
+
+
+def stratum_events(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
+    """Samples per source kind x season_year x season x stratum (events with a stratum)."""
+    return con.execute(
+        """SELECT source_kind, season_year, season, stratum, sum(n)::BIGINT AS events
+           FROM audit_cells WHERE effort_bearing AND stratum IS NOT NULL GROUP BY ALL ORDER BY ALL"""
+    ).df()
+
+
+def source_years(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
+    """Events (of any kind, presence-only included) per source and season year."""
+    return con.execute(
+        """SELECT source_id, any_value(source_kind) AS source_kind, season_year, sum(n)::BIGINT AS events
+           FROM audit_cells WHERE season_year IS NOT NULL GROUP BY source_id, season_year ORDER BY ALL"""
+    ).df()
+
+
+def bio_providers(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
+    """Biological events (samples and presence-only) per season x layer x provider type x kind."""
+    return con.execute(
+        """SELECT season, depth_layer, provider_type, source_kind, sum(n)::BIGINT AS events,
+                  count(DISTINCT season_year) AS "years"
+           FROM audit_cells WHERE biological GROUP BY ALL ORDER BY ALL"""
+    ).df()
+
+
+#: Which quantity of a taxon stands for its records, when a source stores several.
+_PREFERENCE = "CASE quantity WHEN 'count' THEN 0 WHEN 'presence' THEN 1 WHEN 'biomass' THEN 2 ELSE 3 END"
+
+
+def encounters(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> pd.DataFrame:
+    """Taxon records and encounters (records with a value above zero) by taxon and place in time.
+
+    Grouped by variable, season, depth layer, season_year, source kind and provider type.
+    A source that stores a taxon under several quantities (count and biomass of one
+    catch) is counted in one of them only: count, else presence, else biomass. Each life
+    stage or behaviour recorded is a record of its own.
+    """
+    return con.execute(
+        f"""WITH g AS (
+                SELECT variable, season, depth_layer, season_year, source_kind, provider_type,
+                       source_id, quantity, count(*) AS records,
+                       count(*) FILTER (WHERE value > 0) AS encounters
+                FROM observations
+                WHERE variable_kind = 'taxon' AND {_KEPT}{_year_filter(max_year)}
+                GROUP BY ALL
+            ),
+            preferred AS (
+                SELECT source_id, variable, arg_min(quantity, {_PREFERENCE}) AS quantity
+                FROM g GROUP BY ALL
+            )
+            SELECT variable, season, depth_layer, season_year, source_kind, provider_type,
+                   sum(encounters)::BIGINT AS encounters, sum(records)::BIGINT AS records
+            FROM g SEMI JOIN preferred p
+                 ON p.source_id = g.source_id AND p.variable = g.variable AND p.quantity = g.quantity
+            GROUP BY ALL ORDER BY ALL"""
+    ).df()
+
+
+def comparisons(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> pd.DataFrame:
+    """Differences between two sources of one physical variable in the same cell and period.
+
+    Each source's values are averaged per cell_id x season_year x season x depth layer;
+    cell-periods that both sources describe are paired, and the difference (first minus
+    second) is summarised per variable, source pair and layer: its mean (the offset a
+    delta-change correction would add to the second source) and its sample standard
+    deviation. In-situ sources come first, model and remote-sensing sources second.
+    """
+    refs = ", ".join(f"'{p}'" for p in REFERENCE_PROVIDERS)
+    return con.execute(
+        f"""
+        WITH per_source AS (
+            SELECT variable, source_id, any_value(source_kind) AS source_kind,
+                   any_value(provider_type) AS provider_type, any_value(unit) AS unit,
+                   cell_id, season_year, season, depth_layer, avg(value) AS mean_value
+            FROM observations
+            WHERE variable_kind = 'physical' AND value IS NOT NULL AND cell_id IS NOT NULL
+                  AND {_KEPT}{_year_filter(max_year)}
+            GROUP BY variable, source_id, cell_id, season_year, season, depth_layer
+        ),
+        ranked AS (SELECT *, provider_type IN ({refs}) AS is_reference FROM per_source)
+        SELECT a.variable, a.depth_layer, a.source_id AS source_a, b.source_id AS source_b,
+               a.source_kind AS kind_a, b.source_kind AS kind_b, a.unit,
+               count(*) AS n_cell_periods,
+               avg(a.mean_value - b.mean_value) AS mean_difference,
+               stddev_samp(a.mean_value - b.mean_value) AS sd_difference,
+               min(a.season_year) AS first_year, max(a.season_year) AS last_year
+        FROM ranked a JOIN ranked b
+             ON a.variable = b.variable AND a.cell_id = b.cell_id AND a.season_year = b.season_year
+                AND a.season = b.season AND a.depth_layer IS NOT DISTINCT FROM b.depth_layer
+                AND (a.is_reference < b.is_reference
+                     OR (a.is_reference = b.is_reference AND a.source_id < b.source_id))
+        GROUP BY ALL ORDER BY ALL
+        """
+    ).df()
+
+
+def cell_maps(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
+    """Samples per source kind x season_year x (public) grid cell, for the maps."""
+    return con.execute(
+        """SELECT source_kind, season_year, cell_public AS cell_id, sum(n)::BIGINT AS events
+           FROM audit_cells WHERE effort_bearing AND cell_public IS NOT NULL AND season_year IS NOT NULL
+           GROUP BY ALL ORDER BY ALL"""
+    ).df()
+
+
+def suppressed(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
+    """Confidential effort events and the cells that are never named because of them."""
+    return con.execute(
+        """WITH c AS (SELECT source_kind, season_year, cell_id,
+                             bool_and(confidential) AS all_confidential,
+                             coalesce(sum(n) FILTER (WHERE confidential), 0) AS n_confidential
+                      FROM audit_cells WHERE cell_id IS NOT NULL GROUP BY ALL)
+           SELECT source_kind, count(*) FILTER (WHERE all_confidential) AS cell_years_suppressed,
+                  count(DISTINCT cell_id) FILTER (WHERE all_confidential) AS cells_suppressed,
+                  sum(n_confidential)::BIGINT AS events_suppressed
+           FROM c GROUP BY ALL HAVING sum(n_confidential) > 0 ORDER BY ALL"""
+    ).df()
+
+
+def compute(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame, min_vessels: int,
+            max_year: int | None = None) -> Metrics:
+    """All metrics of one audit.
+
+    Parameters
+    ----------
+    con
+        A store connection with the ``observations`` view.
+    domain_cells
+        The study's domain cells (``cell_id`` column).
+    min_vessels
+        The confidentiality threshold for effort cells.
+    max_year
+        Only season years up to this one (the annual audit); None for all.
+    """
+    build_event_table(con, domain_cells, min_vessels, max_year)
+    n_cells = len(domain_cells)
+    return Metrics(
+        extent=extent(con),
+        coverage=coverage(con, n_cells),
+        layer_events=layer_events(con),
+        stratum_events=stratum_events(con),
+        source_years=source_years(con),
+        bio_providers=bio_providers(con),
+        encounters=encounters(con, max_year),
+        comparisons=comparisons(con, max_year),
+        cell_maps=cell_maps(con),
+        suppressed=suppressed(con),
+        n_domain_cells=n_cells,
+    )

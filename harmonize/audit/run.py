@@ -1,0 +1,221 @@
+"""The coverage audit of a study's store: metrics, findings, JSON and the HTML report."""
+
+from __future__ import annotations
+
+import json
+from collections.abc import Iterable, Sequence
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pandas as pd
+
+from harmonize import __version__
+from harmonize.audit.findings import CODES, SEVERITIES, Finding, all_findings, tolerances
+from harmonize.audit.metrics import Metrics, compute
+from harmonize.contract import CONTRACT_VERSION
+from harmonize.errors import HarmonizeError
+from harmonize.store import Store
+from harmonize.study import Study
+from harmonize.tagging import Grid
+
+#: Shown in the report and the JSON: what this audit is and is not.
+CAUTION = (
+    "harmonize prepares data; it does not assess stocks. This audit describes where and when "
+    "the store holds samples, not the state of any population. Official survey protocols and "
+    "local rules on confidential data prevail."
+)
+
+
+@dataclass
+class AuditResult:
+    """The outcome of :func:`audit`.
+
+    Attributes
+    ----------
+    extent, coverage
+        The contract's extent and coverage tables (with a few extra columns).
+    findings
+        Sorted by severity (errors first).
+    metrics
+        All aggregated tables, for the report.
+    domain_cells
+        The study's domain cells (cell_id, ix, iy, lon, lat).
+    """
+
+    study_name: str
+    generated_at: str
+    year: int | None
+    metrics: Metrics
+    findings: list[Finding]
+    domain_cells: pd.DataFrame
+    settings: dict[str, Any] = field(default_factory=dict)
+
+    @property
+    def extent(self) -> pd.DataFrame:
+        return self.metrics.extent
+
+    @property
+    def coverage(self) -> pd.DataFrame:
+        return self.metrics.coverage
+
+    def codes(self) -> set[str]:
+        """Codes of the findings present."""
+        return {f.code for f in self.findings}
+
+    def has_any(self, codes: Iterable[str]) -> bool:
+        """True when a finding with one of ``codes`` exists."""
+        wanted = set(codes)
+        return any(f.code in wanted for f in self.findings)
+
+    def counts(self) -> dict[str, int]:
+        """Number of findings per severity."""
+        return {s: sum(f.severity == s for f in self.findings) for s in SEVERITIES}
+
+    def suppression(self) -> dict[str, Any]:
+        """Confidential effort cells: the threshold and how many cells are never named."""
+        s = self.metrics.suppressed
+        return {
+            "min_vessels": self.settings.get("min_vessels"),
+            "cells_suppressed": int(s["cells_suppressed"].sum()) if len(s) else 0,
+            "cell_years_suppressed": int(s["cell_years_suppressed"].sum()) if len(s) else 0,
+            "events_suppressed": int(s["events_suppressed"].sum()) if len(s) else 0,
+        }
+
+    def to_json_dict(self) -> dict[str, Any]:
+        """The audit as the contract's JSON object (section 6), plus extra keys."""
+        extent_cols = ["source_kind", "season", "depth_layer", "events", "years"]
+        coverage_cols = ["source_kind", "season_year", "season", "events", "cells_sampled", "coverage_fraction"]
+        ext = self.extent
+        cov = self.coverage
+        return {
+            "study": self.study_name,
+            "generated_at": self.generated_at,
+            "extent": _records(ext, extent_cols + ["first_year", "last_year", "presence_only_events"]),
+            "coverage": _records(cov, coverage_cols + ["strata_sampled", "cells_suppressed",
+                                                      "presence_only_events", "domain_cells"]),
+            "findings": [f.to_dict() for f in self.findings],
+            "audited_year": self.year,
+            "settings": self.settings,
+            "confidentiality": self.suppression(),
+            "source_comparisons": _records(self.metrics.comparisons, list(self.metrics.comparisons.columns)),
+            "caution": CAUTION,
+            "tool_version": __version__,
+            "contract_version": CONTRACT_VERSION,
+        }
+
+    def write_json(self, path: str | Path) -> Path:
+        """Write :meth:`to_json_dict` to ``path`` (UTF-8, indented)."""
+        path = Path(path)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(json.dumps(self.to_json_dict(), indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
+        return path
+
+    def write_html(self, path: str | Path) -> Path:
+        """Write the self-contained HTML report to ``path``."""
+        from harmonize.audit.report import render_html
+
+        path = Path(path)
+        path.parent.mkdir(parents=True, exist_ok=True)
+        path.write_text(render_html(self), encoding="utf-8")
+        return path
+
+
+def _records(frame: pd.DataFrame, columns: Sequence[str]) -> list[dict[str, Any]]:
+    cols = [c for c in columns if c in frame.columns]
+    out = []
+    for row in frame[cols].itertuples(index=False, name=None):
+        out.append({c: _value(v) for c, v in zip(cols, row, strict=True)})
+    return out
+
+
+def _value(v: Any) -> Any:
+    if v is None or (not isinstance(v, str | list) and pd.isna(v)):
+        return None
+    if isinstance(v, np.generic):
+        return v.item()
+    return v
+
+
+def domain_cells(study: Study) -> pd.DataFrame:
+    """The study's grid cells whose centre lies in the domain (cell_id, ix, iy, lon, lat)."""
+    return Grid(study.crs, study.cell_size_km).cells_covering(study.domain)
+
+
+def audit(study: Study, year: int | None = None) -> AuditResult:
+    """Audit the coverage of everything in the study's store.
+
+    Parameters
+    ----------
+    study
+        The study; its store is opened read-only.
+    year
+        Audit this season year against the earlier ones (the annual audit): later years are
+        ignored and findings tied to a year are reported for this year only.
+
+    Returns
+    -------
+    AuditResult
+
+    Raises
+    ------
+    StoreError
+        When the study has no store yet.
+    HarmonizeError
+        When ``year`` is outside the years the store holds.
+    """
+    cells = domain_cells(study)
+    store = Store(study.store_dir)
+    with store.connect() as con:
+        if year is not None:
+            lo, hi = con.execute("SELECT min(season_year), max(season_year) FROM observations").fetchall()[0]
+            if lo is None or not lo <= year <= hi:
+                span = "no records" if lo is None else f"records for season years {lo}-{hi}"
+                raise HarmonizeError(f"cannot audit season year {year}: the store holds {span}; "
+                                     "pass a year inside that range")
+        metrics = compute(con, cells, study.min_vessels, year)
+    settings = {
+        "min_events": study.audit.min_events, "coverage_drop": study.audit.coverage_drop,
+        "min_encounters": study.audit.min_encounters, "min_vessels": study.min_vessels,
+        "cell_size_km": study.cell_size_km, "crs": study.crs, "domain_cells": len(cells),
+        "seasons": {k: list(v) for k, v in study.seasons.items()},
+        "depth_layers": [layer.name for layer in study.depth_layers] + ["near_bottom", "integrated"],
+        "tolerances": tolerances(study),
+    }
+    return AuditResult(
+        study_name=study.name,
+        generated_at=pd.Timestamp.now("UTC").isoformat(timespec="seconds"),
+        year=year,
+        metrics=metrics,
+        findings=all_findings(metrics, study, year),
+        domain_cells=cells,
+        settings=settings,
+    )
+
+
+def parse_codes(text: str | None) -> list[str]:
+    """``"a,b"`` -> ["a", "b"], refusing unknown finding codes.
+
+    Raises
+    ------
+    HarmonizeError
+        Naming the unknown code and the valid ones.
+    """
+    if not text:
+        return []
+    codes = [c.strip() for c in text.split(",") if c.strip()]
+    unknown = [c for c in codes if c not in CODES]
+    if unknown:
+        raise HarmonizeError(f"unknown finding code(s) {', '.join(unknown)}; valid codes are {', '.join(CODES)}")
+    return codes
+
+
+def demo_outputs(study: Study, out_dir: Path) -> dict[str, Path]:
+    """Audit the demo study and write its JSON and HTML report into ``out_dir``."""
+    result = audit(study)
+    out_dir = Path(out_dir)
+    return {
+        "audit JSON": result.write_json(out_dir / "audit.json"),
+        "audit report": result.write_html(out_dir / "audit.html"),
+    }

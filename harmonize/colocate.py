@@ -1,0 +1,180 @@
+"""Co-location: attach gridded cell-period values (SST, bottom temperature...) to sample events.
+
+A sample event (a haul, a tow, a transect segment) gets, for each requested variable, the
+value of the gridded source's event in the same study cell whose period (month or season,
+``[event_start, event_end)``) holds the sample's start time. Fields tagged with the fixed
+layers "surface" or "near_bottom" match every sample whatever its depth layer (a haul's
+sea-surface temperature); fields reduced per study depth layer match the sample's layer.
+A sample whose cell had no valid pixel in that period gets a null value, never a value
+borrowed from a neighbouring cell or period.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Mapping, Sequence
+
+import duckdb
+import pandas as pd
+
+from harmonize.errors import HarmonizeError
+from harmonize.gridded.cf import CANONICAL_VARIABLES
+from harmonize.store import Store
+from harmonize.study import Study
+from harmonize.tagging import NEAR_BOTTOM, Grid
+
+#: Layer tags of 2-D fields: they describe the field, not a study layer, and match any sample.
+FIXED_LAYERS = ("surface", NEAR_BOTTOM)
+COLUMNS = ["source_id", "event_id", "variable", "value", "unit", "gridded_source_id", "gridded_event_id",
+           "n_values", "valid_area_km2", "period_start", "period_end"]
+
+
+def colocate(
+    study: Study,
+    variables: Sequence[str],
+    events: pd.DataFrame | None = None,
+    sources: Mapping[str, str] | None = None,
+) -> pd.DataFrame:
+    """Gridded values of ``variables`` for each sample event, in long form.
+
+    Parameters
+    ----------
+    study
+        The study whose store holds the gridded sources (and, by default, the samples).
+    variables
+        Canonical (CF standard) names of gridded variables, e.g. ["sea_surface_temperature"].
+    events
+        Sample events with source_id, event_id, event_start and either cell_id or lat/lon
+        (optionally depth_layer). None: every non-gridded event in the store.
+    sources
+        Variable -> gridded source_id, to choose one source where several provide it. A
+        variable not named here is taken from every gridded source that has it.
+
+    Returns
+    -------
+    DataFrame
+        One row per (source_id, event_id, variable, gridded_source_id) with columns
+        :data:`COLUMNS`; value, gridded_event_id, n_values and valid_area_km2 are null
+        where the event's cell had no valid value in that period.
+
+    Raises
+    ------
+    HarmonizeError
+        A variable (or a chosen source) has no gridded values in the store.
+    """
+    variables = list(dict.fromkeys(variables))
+    if not variables:
+        raise HarmonizeError("name at least one gridded variable to co-locate, e.g. sea_surface_temperature")
+    sources = dict(sources or {})
+    unknown = sorted(set(sources) - set(variables))
+    if unknown:
+        raise HarmonizeError(f"a source is chosen for '{unknown[0]}', which is not among the variables asked for")
+    store = Store(study.store_dir)
+    with store.connect() as con:
+        available = con.execute(
+            """SELECT variable, source_id, list(DISTINCT depth_layer ORDER BY depth_layer) AS layers
+               FROM observations WHERE source_kind = 'gridded' GROUP BY ALL ORDER BY ALL"""
+        ).df()
+        pairs = _pairs(available, variables, sources)
+        samples = _samples(con, events, study)
+        con.register("_samples", samples)
+        con.register("_pairs", pairs)
+        result = con.sql(
+            """
+            WITH g AS (
+                SELECT o.source_id AS gridded_source_id, o.event_id AS gridded_event_id, o.variable,
+                       o.cell_id, o.event_start AS period_start, o.event_end AS period_end,
+                       o.depth_layer AS g_layer, o.value, o.unit, o.n_values, o.effort AS valid_area_km2
+                FROM observations o JOIN _pairs p
+                  ON o.variable = p.variable AND o.source_id = p.gridded_source_id
+                WHERE o.source_kind = 'gridded'
+            ),
+            wanted AS (SELECT s.*, p.variable, p.gridded_source_id, p.fixed_layer
+                       FROM _samples s CROSS JOIN _pairs p)
+            SELECT w.source_id, w.event_id, w.variable, g.value, g.unit, w.gridded_source_id,
+                   g.gridded_event_id, g.n_values, g.valid_area_km2, g.period_start, g.period_end
+            FROM wanted w LEFT JOIN g
+              ON g.variable = w.variable AND g.gridded_source_id = w.gridded_source_id
+             AND g.cell_id = w.cell_id
+             AND w.event_start >= g.period_start AND w.event_start < g.period_end
+             AND (w.fixed_layer OR g.g_layer = w.depth_layer)
+            ORDER BY w.source_id, w.event_id, w.variable, w.gridded_source_id
+            """
+        ).to_arrow_table().to_pandas()
+    unit = pairs.set_index(["variable", "gridded_source_id"])["unit"]
+    missing = result["unit"].isna()
+    if missing.any():
+        keys = pd.MultiIndex.from_frame(result.loc[missing, ["variable", "gridded_source_id"]])
+        result.loc[missing, "unit"] = unit.reindex(keys).to_numpy()
+    result["n_values"] = result["n_values"].astype("Int64")
+    return result[COLUMNS]
+
+
+def colocate_wide(
+    study: Study,
+    variables: Sequence[str],
+    events: pd.DataFrame | None = None,
+    sources: Mapping[str, str] | None = None,
+) -> pd.DataFrame:
+    """One row per sample event (source_id, event_id), one column per variable.
+
+    Raises
+    ------
+    HarmonizeError
+        When several gridded sources provide a variable and ``sources`` does not choose one.
+    """
+    long = colocate(study, variables, events, sources)
+    per_var = long.groupby("variable")["gridded_source_id"].unique()
+    for variable, ids in per_var.items():
+        if len(ids) > 1:
+            choice = ", ".join(f"'{i}'" for i in sorted(ids))
+            raise HarmonizeError(f"{len(ids)} gridded sources provide '{variable}' ({choice}); choose one with "
+                                 f"sources={{'{variable}': ...}} (CLI: --source {variable}=SOURCE_ID)")
+    wide = long.pivot(index=["source_id", "event_id"], columns="variable", values="value").reset_index()
+    wide.columns.name = None
+    return wide[["source_id", "event_id", *[v for v in dict.fromkeys(variables)]]]
+
+
+def _pairs(available: pd.DataFrame, variables: list[str], sources: Mapping[str, str]) -> pd.DataFrame:
+    """(variable, gridded_source_id, unit, fixed_layer) to look up."""
+    rows = []
+    for variable in variables:
+        have = available[available["variable"] == variable]
+        if have.empty:
+            present = ", ".join(sorted(available["variable"].unique())) or "none"
+            raise HarmonizeError(f"no gridded source in the store has '{variable}'; gridded variables in the store: "
+                                 f"{present}. Ingest a gridded file that maps it in [variables]")
+        if variable in sources:
+            have = have[have["source_id"] == sources[variable]]
+            if have.empty:
+                raise HarmonizeError(f"gridded source '{sources[variable]}' has no '{variable}' in the store")
+        for r in have.itertuples():
+            fixed = set(r.layers) <= set(FIXED_LAYERS) and len(r.layers) == 1
+            rows.append((variable, r.source_id, fixed))
+    pairs = pd.DataFrame(rows, columns=["variable", "gridded_source_id", "fixed_layer"])
+    pairs["unit"] = [CANONICAL_VARIABLES[v].unit if v in CANONICAL_VARIABLES else None for v in pairs["variable"]]
+    return pairs
+
+
+def _samples(con: duckdb.DuckDBPyConnection, events: pd.DataFrame | None, study: Study) -> pd.DataFrame:
+    """source_id, event_id, event_start, cell_id, depth_layer of the sample events."""
+    if events is None:
+        return con.sql(
+            """SELECT DISTINCT source_id, event_id, event_start, cell_id, depth_layer
+               FROM observations WHERE source_kind <> 'gridded'"""
+        ).to_arrow_table().to_pandas()
+    need = {"source_id", "event_id", "event_start"}
+    missing = sorted(need - set(events.columns))
+    if missing:
+        raise HarmonizeError(f"the events to co-locate lack column(s) {missing}; they need source_id, event_id, "
+                             "event_start and cell_id (or lat and lon)")
+    ev = events.copy()
+    if "cell_id" not in ev:
+        if not {"lat", "lon"} <= set(ev.columns):
+            raise HarmonizeError("the events to co-locate need cell_id, or lat and lon to find it")
+        ev["cell_id"] = Grid(study.crs, study.cell_size_km).cell_ids(
+            ev["lon"].to_numpy(float), ev["lat"].to_numpy(float)).to_numpy()
+    if "depth_layer" not in ev:
+        ev["depth_layer"] = None
+    ev["event_start"] = pd.to_datetime(ev["event_start"]).astype("datetime64[us]")
+    out = ev[["source_id", "event_id", "event_start", "cell_id", "depth_layer"]].drop_duplicates()
+    return out.astype({"source_id": object, "event_id": object, "cell_id": object, "depth_layer": object})

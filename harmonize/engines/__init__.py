@@ -1,0 +1,79 @@
+"""Execution engines for the heaviest steps: DuckDB on one machine (default) or Dask beyond it.
+
+Two steps can run on Dask (dask.distributed): turning vessel pings into fishing hours per
+cell, and the coverage audit's aggregations over the store. Everything else, and both steps
+by default, runs in DuckDB. The engine is chosen per call (``run(..., engine="dask")``,
+``audit(..., engine="dask")``, the CLI's ``--engine``) or for a whole process with the
+environment variable ``HARMONIZE_ENGINE``; ``HARMONIZE_DASK_SCHEDULER`` points the Dask
+engine at a running cluster. See docs/performance.md for when to switch.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterator
+from contextlib import contextmanager
+from contextvars import ContextVar
+from dataclasses import dataclass
+
+from harmonize.errors import HarmonizeError
+
+#: The engines a step can run on. ``duckdb`` is built in; ``dask`` needs the ``dask`` extra.
+ENGINES = ("duckdb", "dask")
+#: Environment variable choosing the engine for a whole process.
+ENGINE_ENV = "HARMONIZE_ENGINE"
+#: Environment variable naming a running Dask scheduler (e.g. ``tcp://10.0.0.5:8786``).
+SCHEDULER_ENV = "HARMONIZE_DASK_SCHEDULER"
+#: Environment variable naming a scratch folder that the Dask workers can read.
+SCRATCH_ENV = "HARMONIZE_DASK_SCRATCH"
+
+
+@dataclass(frozen=True)
+class EngineChoice:
+    """The engine of the current step and, for Dask, the scheduler address (None = default)."""
+
+    name: str = "duckdb"
+    scheduler: str | None = None
+
+
+_CURRENT: ContextVar[EngineChoice | None] = ContextVar("harmonize_engine", default=None)
+
+
+def check_engine(engine: str | None) -> str:
+    """The engine's name, checked; ``None`` means ``HARMONIZE_ENGINE`` or else ``duckdb``.
+
+    Raises
+    ------
+    HarmonizeError
+        For an unknown engine, or ``dask`` when Dask is not installed (naming the extra).
+    """
+    name = (engine or os.environ.get(ENGINE_ENV) or "duckdb").strip().lower()
+    if name not in ENGINES:
+        raise HarmonizeError(f"unknown engine {name!r}; choose one of {', '.join(ENGINES)}")
+    if name == "dask":
+        try:
+            import dask.dataframe  # noqa: F401
+            import distributed  # noqa: F401
+        except ImportError:
+            raise HarmonizeError(
+                "the dask engine needs Dask and dask.distributed: install them with "
+                "pip install 'harmonize[dask]'"
+            ) from None
+    return name
+
+
+@contextmanager
+def engine_scope(engine: str | None = None, scheduler: str | None = None) -> Iterator[EngineChoice]:
+    """Run the steps inside the ``with`` block on ``engine`` (see :func:`check_engine`)."""
+    choice = EngineChoice(check_engine(engine), scheduler)
+    token = _CURRENT.set(choice)
+    try:
+        yield choice
+    finally:
+        _CURRENT.reset(token)
+
+
+def current_engine() -> EngineChoice:
+    """The engine chosen by the enclosing :func:`engine_scope`, else by the environment."""
+    choice = _CURRENT.get()
+    return choice if choice is not None else EngineChoice(check_engine(None))

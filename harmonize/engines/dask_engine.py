@@ -1,0 +1,469 @@
+"""Dask (dask.distributed) implementations of the two heaviest steps, equal to the DuckDB ones.
+
+1. **Ping tracks -> fishing hours per cell.** After the one streaming validation pass in
+   DuckDB, the accepted pings are written as parquet in buckets of whole vessels
+   (``vid % n_buckets``). Each bucket is one Dask task: it sorts its vessels' pings by
+   time, finds the neighbours, position jumps, derived speeds, fishing class and attributed
+   hours exactly as :class:`harmonize.adapters.effort.PingReader` does in SQL, and reduces
+   them to partial cell sums. As every vessel lies in one bucket, the distinct vessels of a
+   cell are the sum of the buckets' distinct vessels, so the final reduction is a plain sum
+   over small partial tables.
+2. **The audit's aggregations.** The per-event table (one row per event and its tags),
+   the taxon encounters and the per-source means of physical variables are computed on Dask
+   from the store's live parquet files (one task per file, then a grouped reduction), and
+   handed back to DuckDB, where the small remaining queries of :mod:`harmonize.audit.metrics`
+   run unchanged.
+
+The workers must be able to read the files: on a local cluster (the default) they always
+can; on a remote cluster the store and the scratch folder (``HARMONIZE_DASK_SCRATCH``) must
+be on a file system the workers share.
+"""
+
+from __future__ import annotations
+
+import os
+from collections.abc import Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import duckdb
+import numpy as np
+import pandas as pd
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+
+from harmonize.engines import SCHEDULER_ENV
+
+# WGS84 ellipsoid (NIMA TR8350.2, 2000); the same constants as the SQL distance macro
+WGS84_A = 6378137.0
+WGS84_F = 1 / 298.257223563
+_E2 = WGS84_F * (2 - WGS84_F)
+M_PER_NMI = 1852.0  # exact (BIPM SI Brochure, 9th ed. 2019, Table 8)
+_US_PER_H = 3.6e9
+DUPLICATE_FLAG = "probable_duplicate"  # harmonize.twins: a volunteer twin of another record
+
+#: Columns of the accepted-pings parquet the DuckDB stage writes for the Dask stage.
+PING_COLUMNS = ("row", "vid", "t", "lat", "lon", "sog", "gear", "layer", "smin", "smax", "code")
+#: Columns of the partial and final fishing-cell tables (as PingReader._aggregate).
+CELL_KEYS = ["code", "season_year", "season", "gear", "depth_layer"]
+
+
+# ---------------------------------------------------------------------------- the client
+
+@contextmanager
+def dask_client(scheduler: str | None = None) -> Iterator[Any]:
+    """A ``distributed.Client`` for the duration of a step.
+
+    Uses, in this order: the ``scheduler`` address given; the address in the environment
+    variable ``HARMONIZE_DASK_SCHEDULER``; the client already active in this process
+    (``distributed.default_client()``); otherwise a local cluster of threads bound to the
+    loopback interface (no dashboard), closed afterwards.
+    """
+    from distributed import Client, LocalCluster, default_client
+
+    address = scheduler or os.environ.get(SCHEDULER_ENV)
+    if address:
+        client = Client(address)
+        try:
+            yield client
+        finally:
+            client.close()
+        return
+    try:
+        yield default_client()
+        return
+    except ValueError:
+        pass
+    # threads in this process, talking in-process: no socket is opened at all
+    cluster = LocalCluster(n_workers=1, threads_per_worker=os.cpu_count() or 1, processes=False,
+                           dashboard_address=None)
+    client = Client(cluster)
+    try:
+        yield client
+    finally:
+        client.close()
+        cluster.close()
+
+
+# ---------------------------------------------------------------------------- ping tracks
+
+def distance_m(lat1: np.ndarray, lon1: np.ndarray, lat2: np.ndarray, lon2: np.ndarray) -> np.ndarray:
+    """Distance (m) between WGS84 points: the flat-earth formula with the ellipsoid's radii.
+
+    The same formula as the SQL macro of :mod:`harmonize.adapters.effort` (meridional and
+    prime-vertical radii of curvature at the mean latitude); NaN in, NaN out.
+    """
+    mid = np.radians((lat1 + lat2) / 2)
+    w = 1 - _E2 * np.sin(mid) ** 2
+    dlon = np.fmod(lon2 - lon1 + 540.0, 360.0) - 180.0
+    north = WGS84_A * (1 - _E2) / w**1.5 * np.radians(lat2 - lat1)
+    east = WGS84_A / np.sqrt(w) * np.cos(mid) * np.radians(dlon)
+    return np.sqrt(north**2 + east**2)
+
+
+def ping_track(pings: pd.DataFrame, max_speed_kn: float, max_gap_h: float) -> pd.DataFrame:
+    """Neighbours, position jumps, speed, fishing class and attributed hours of each ping.
+
+    ``pings`` holds whole vessels (columns :data:`PING_COLUMNS`; ``t`` a timestamp). The
+    rules are those of ``PingReader._track_sql``: a ping is a position jump (``spike``) when
+    reaching it and leaving it both take more than ``max_speed_kn`` (at a track's end: when
+    the one link is too fast and the next one is not); the neighbours of a jump are joined
+    directly; each ping gets half of each neighbouring interval, capped at ``max_gap_h``;
+    a missing speed is the mean of the speeds of the links within ``max_gap_h``.
+
+    Returns the pings sorted by vessel, time and row, with added columns spike, r_p1, r_n1,
+    sp_in, sp_out, hours, speed and fishing.
+    """
+    df = pings.sort_values(["vid", "t", "row"], kind="stable").reset_index(drop=True)
+    n = len(df)
+    vid = df["vid"].to_numpy()
+    idx = np.arange(n)
+    new = np.ones(n, dtype=bool)
+    new[1:] = vid[1:] != vid[:-1]
+    start = np.maximum.accumulate(np.where(new, idx, 0))
+    end = np.empty(n, dtype=np.int64)  # one past the last ping of the vessel
+    bounds = np.append(np.flatnonzero(new), n)
+    end[:] = np.repeat(bounds[1:], np.diff(bounds))
+    pos, left = idx - start, end - idx - 1
+
+    def has_prev(k: int) -> np.ndarray:
+        return pos >= k
+
+    def has_next(k: int) -> np.ndarray:
+        return left >= k
+
+    def shift(a: np.ndarray, k: int) -> np.ndarray:
+        """Value k pings earlier (k > 0) or later (k < 0) of the same vessel; NaN beyond."""
+        out = np.full(n, np.nan)
+        if k > 0:
+            out[k:] = a[:-k] if k < n else out[k:]
+            out[~has_prev(k)] = np.nan
+        else:
+            out[:k] = a[-k:] if -k < n else out[:k]
+            out[~has_next(-k)] = np.nan
+        return out
+
+    t = df["t"].to_numpy("datetime64[us]").astype(np.int64).astype(float)
+    lat, lon = df["lat"].to_numpy(float), df["lon"].to_numpy(float)
+    row = df["row"].to_numpy(np.int64).astype(float)
+
+    def speed(ta: np.ndarray, la: np.ndarray, oa: np.ndarray, tb: np.ndarray, lb: np.ndarray, ob: np.ndarray) -> np.ndarray:
+        hours = (tb - ta) / _US_PER_H
+        with np.errstate(divide="ignore", invalid="ignore"):
+            return np.where(hours == 0, np.nan, distance_m(la, oa, lb, ob) / M_PER_NMI / hours)
+
+    pt, pla, plo = shift(t, 1), shift(lat, 1), shift(lon, 1)
+    s_in = speed(pt, pla, plo, t, lat, lon)
+    with np.errstate(invalid="ignore"):
+        fast = {k: np.nan_to_num(shift(s_in, k) if k else s_in, nan=-np.inf) > max_speed_kn
+                for k in (2, 1, 0, -1, -2, -3)}
+    f = {"p2": fast[2], "p1": fast[1], "me": fast[0], "n1": fast[-1], "n2": fast[-2], "n3": fast[-3]}
+    link = {("p3", "p2"): "p2", ("p2", "p1"): "p1", ("p1", "me"): "me",
+            ("me", "n1"): "n1", ("n1", "n2"): "n2", ("n2", "n3"): "n3"}
+    h = {"me": np.ones(n, dtype=bool), **{f"p{k}": has_prev(k) for k in (1, 2, 3)},
+         **{f"n{k}": has_next(k) for k in (1, 2, 3)}}
+
+    def spike(p2: str, p1: str, me: str, n1: str, n2: str) -> np.ndarray:
+        both = h[p1] & h[n1]
+        out = np.where(both, f[link[(p1, me)]] & f[link[(me, n1)]], False)
+        only_next = ~both & h[n1]
+        out = np.where(only_next, f[link[(me, n1)]] & h[n2] & ~f[link[(n1, n2)]], out)
+        only_prev = ~both & ~h[n1] & h[p1]
+        return np.where(only_prev, f[link[(p1, me)]] & h[p2] & ~f[link[(p2, p1)]], out)
+
+    is_spike = spike("p2", "p1", "me", "n1", "n2")
+    spike_p1 = spike("p3", "p2", "p1", "me", "n1")
+    spike_n1 = spike("p1", "me", "n1", "n2", "n3")
+
+    t_pe = np.where(spike_p1, shift(t, 2), pt)
+    la_pe = np.where(spike_p1, shift(lat, 2), pla)
+    lo_pe = np.where(spike_p1, shift(lon, 2), plo)
+    t_ne = np.where(spike_n1, shift(t, -2), shift(t, -1))
+    la_ne = np.where(spike_n1, shift(lat, -2), shift(lat, -1))
+    lo_ne = np.where(spike_n1, shift(lon, -2), shift(lon, -1))
+    dt_prev, dt_next = (t - t_pe) / _US_PER_H, (t_ne - t) / _US_PER_H
+    gap = float(max_gap_h)
+    hours = (np.where(np.isnan(t_pe), 0.0, np.minimum(dt_prev, gap)) / 2
+             + np.where(np.isnan(t_ne), 0.0, np.minimum(dt_next, gap)) / 2)
+    s_out = shift(s_in, -1)
+    with np.errstate(invalid="ignore"):
+        sp_prev = np.where(dt_prev <= gap, np.where(spike_p1, speed(t_pe, la_pe, lo_pe, t, lat, lon), s_in), np.nan)
+        sp_next = np.where(dt_next <= gap, np.where(spike_n1, speed(t, lat, lon, t_ne, la_ne, lo_ne), s_out), np.nan)
+    derived = (np.where(np.isnan(sp_prev), sp_next, sp_prev) + np.where(np.isnan(sp_next), sp_prev, sp_next)) / 2
+    sog = df["sog"].to_numpy(float)
+    speed_kn = np.where(np.isnan(sog), derived, sog)
+    with np.errstate(invalid="ignore"):
+        fishing = (speed_kn >= df["smin"].to_numpy(float)) & (speed_kn <= df["smax"].to_numpy(float))
+    return df.assign(spike=is_spike, r_p1=pd.array(np.where(h["p1"], shift(row, 1), np.nan), dtype="Int64"),
+                     r_n1=pd.array(np.where(h["n1"], shift(row, -1), np.nan), dtype="Int64"),
+                     sp_in=s_in, sp_out=s_out, hours=hours, speed=speed_kn, fishing=fishing)
+
+
+def fishing_partial(track: pd.DataFrame, season_names: Sequence[str], season_offsets: Sequence[int]) -> pd.DataFrame:
+    """Partial fishing-cell sums of whole vessels (columns :data:`CELL_KEYS` and sums).
+
+    Only pings classified as fishing, not position jumps, with hours > 0 count, as in
+    ``PingReader._aggregate``.
+    """
+    use = track[track["fishing"].to_numpy() & ~track["spike"].to_numpy() & (track["hours"].to_numpy() > 0)]
+    month = use["t"].dt.month.to_numpy() - 1
+    frame = pd.DataFrame({
+        "code": use["code"].to_numpy(np.int64),
+        "season_year": (use["t"].dt.year.to_numpy() + np.asarray(season_offsets, np.int64)[month]).astype(np.int32),
+        "season": np.asarray(season_names, dtype=object)[month],
+        "gear": use["gear"].to_numpy(object), "depth_layer": use["layer"].to_numpy(object),
+        "hours": use["hours"].to_numpy(float), "vid": use["vid"].to_numpy(),
+        "derived": use["sog"].isna().to_numpy(),
+    })
+    return frame.groupby(CELL_KEYS, sort=False, dropna=False).agg(
+        hours=("hours", "sum"), n_vessels=("vid", "nunique"), n_values=("hours", "size"),
+        speed_derived=("derived", "any")).reset_index()
+
+
+@dataclass
+class TrackResult:
+    """What the Dask ping stage returns to the ping reader."""
+
+    #: Fishing hours per cell (CELL_KEYS, hours, n_vessels, n_values, speed_derived), sorted.
+    cells: pd.DataFrame
+    #: Position jumps: row, r_p1, sp_in, r_n1, sp_out (for the quarantine messages).
+    spikes: pd.DataFrame
+    #: Accepted pings (not jumps) classified as fishing, and those with a derived speed.
+    n_fishing: int
+    n_derived: int
+
+
+def _bucket(paths: Sequence[str], max_speed_kn: float, max_gap_h: float, season_names: Sequence[str],
+            season_offsets: Sequence[int]) -> tuple[pd.DataFrame, pd.DataFrame, int, int]:
+    pings = pa.concat_tables([pq.read_table(p, columns=list(PING_COLUMNS)) for p in paths]).to_pandas()
+    track = ping_track(pings, max_speed_kn, max_gap_h)
+    kept = ~track["spike"].to_numpy()
+    spikes = track.loc[~kept, ["row", "r_p1", "sp_in", "r_n1", "sp_out"]].reset_index(drop=True)
+    return (fishing_partial(track, season_names, season_offsets), spikes,
+            int((track["fishing"].to_numpy() & kept).sum()), int((track["sog"].isna().to_numpy() & kept).sum()))
+
+
+def fishing_hours(buckets: Sequence[Sequence[str]], max_speed_kn: float, max_gap_h: float,
+                  season_names: Sequence[str], season_offsets: Sequence[int],
+                  scheduler: str | None = None) -> TrackResult:
+    """Fishing hours per cell from accepted pings in buckets of whole vessels, on Dask.
+
+    Parameters
+    ----------
+    buckets
+        One list of parquet files per bucket; every vessel's pings lie in one bucket.
+    max_speed_kn, max_gap_h
+        The profile's ``[fishing]`` settings.
+    season_names, season_offsets
+        Season name and season_year offset of each month 1..12 (study seasons).
+    scheduler
+        Address of a Dask scheduler; see :func:`dask_client` for the default.
+
+    Returns
+    -------
+    TrackResult
+    """
+    with dask_client(scheduler) as client:
+        futures = client.map(_bucket, [list(b) for b in buckets], max_speed_kn=max_speed_kn,
+                             max_gap_h=max_gap_h, season_names=list(season_names),
+                             season_offsets=[int(o) for o in season_offsets], pure=False)
+        parts = client.gather(futures)
+    partial = [p[0] for p in parts if len(p[0])]
+    if partial:
+        cells = pd.concat(partial, ignore_index=True).groupby(CELL_KEYS, sort=False, dropna=False).agg(
+            hours=("hours", "sum"), n_vessels=("n_vessels", "sum"), n_values=("n_values", "sum"),
+            speed_derived=("speed_derived", "any")).reset_index()
+    else:
+        cells = pd.DataFrame({c: [] for c in [*CELL_KEYS, "hours", "n_vessels", "n_values", "speed_derived"]})
+    cells = cells.sort_values(CELL_KEYS, kind="stable").reset_index(drop=True)
+    cells = cells.astype({"code": np.int64, "season_year": np.int32, "hours": float, "n_vessels": np.int64,
+                          "n_values": np.int64, "speed_derived": bool})
+    spikes = [p[1] for p in parts if len(p[1])]
+    spike_frame = (pd.concat(spikes, ignore_index=True).sort_values("row").reset_index(drop=True) if spikes else
+                   pd.DataFrame({"row": pd.Series([], dtype=np.int64), "r_p1": pd.Series([], dtype="Int64"),
+                                 "sp_in": pd.Series([], dtype=float), "r_n1": pd.Series([], dtype="Int64"),
+                                 "sp_out": pd.Series([], dtype=float)}))
+    return TrackResult(cells, spike_frame, sum(p[2] for p in parts), sum(p[3] for p in parts))
+
+
+# ---------------------------------------------------------------------------- audit
+
+#: Columns the audit reads from the observation files.
+AUDIT_COLUMNS = ("record_id", "ingest_id", "source_id", "provider_type", "event_id", "season", "depth_layer",
+                 "cell_id", "stratum", "variable", "variable_kind", "quantity", "value", "unit", "n_vessels",
+                 "flags")
+EVENT_KEYS = ["source_id", "source_kind", "provider_type", "event_id", "season_year", "season",
+              "depth_layer", "cell_id", "stratum"]
+ENCOUNTER_KEYS = ["variable", "season", "depth_layer", "season_year", "source_kind", "provider_type"]
+PER_SOURCE_KEYS = ["variable", "source_id", "cell_id", "season_year", "season", "depth_layer"]
+
+
+def _hive_values(path: str) -> dict[str, str]:
+    return dict(part.split("=", 1) for part in Path(path).parts if "=" in part)
+
+
+def read_observation_file(path: str, duplicate_keys: frozenset[str] = frozenset(),
+                          max_year: int | None = None) -> pd.DataFrame:
+    """The audit's columns of one observation file, with the hive partition values.
+
+    Rows that are probable duplicates (the flag in the file, or ``record_id|ingest_id`` in
+    ``duplicate_keys``, the store-wide flags) and rows after ``max_year`` are left out.
+    """
+    names = set(pq.read_schema(path).names)
+    table = pq.read_table(path, columns=[c for c in AUDIT_COLUMNS if c in names])
+    for c in AUDIT_COLUMNS:
+        if c not in names:
+            table = table.append_column(c, pa.nulls(table.num_rows, pa.list_(pa.string()) if c == "flags" else None))
+    hive = _hive_values(path)
+    season_year = int(hive["season_year"]) if hive.get("season_year") not in (None, "NULL", "__HIVE_DEFAULT_PARTITION__") else None
+    if max_year is not None and (season_year is None or season_year > max_year):
+        table = table.slice(0, 0)
+    flags = table["flags"].combine_chunks() if table.num_rows else pa.array([], pa.list_(pa.string()))
+    flagged = np.zeros(table.num_rows, dtype=bool)
+    hit = pc.fill_null(pc.equal(pc.list_flatten(flags), DUPLICATE_FLAG), False).to_numpy(zero_copy_only=False)
+    if hit.any():
+        flagged[pc.list_parent_indices(flags).to_numpy()[hit]] = True
+    frame = table.drop_columns(["flags"]).to_pandas()
+    if duplicate_keys:
+        keys = frame["record_id"].astype(str) + "|" + frame["ingest_id"].astype(str)
+        flagged |= keys.isin(duplicate_keys).to_numpy()
+    frame = frame[~flagged]
+    frame["source_kind"] = hive.get("source_kind")
+    frame["season_year"] = pd.array([season_year] * len(frame), dtype="Int32")
+    return frame.reset_index(drop=True)
+
+
+def _file_partials(path: str, duplicate_keys: frozenset[str], max_year: int | None
+                   ) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    obs = read_observation_file(path, duplicate_keys, max_year)
+    events = obs.assign(effort_bearing=obs["quantity"].ne("presence").fillna(False),
+                        biological=obs["variable_kind"].eq("taxon").fillna(False)).groupby(
+        EVENT_KEYS, dropna=False, sort=False).agg(
+        effort_bearing=("effort_bearing", "any"), biological=("biological", "any"),
+        n_vessels=("n_vessels", "min")).reset_index()
+    taxon = obs[obs["variable_kind"].eq("taxon").fillna(False).to_numpy()]
+    enc = taxon.assign(hit=(taxon["value"] > 0).fillna(False)).groupby(
+        [*ENCOUNTER_KEYS, "source_id", "event_id"], dropna=False, sort=False)["hit"].any().reset_index()
+    phys = obs[(obs["variable_kind"].eq("physical").fillna(False) & obs["value"].notna()
+                & obs["cell_id"].notna()).to_numpy()]
+    per = phys.groupby(PER_SOURCE_KEYS, dropna=False, sort=False).agg(
+        total=("value", "sum"), n=("value", "size"), source_kind=("source_kind", "first"),
+        provider_type=("provider_type", "first"), unit=("unit", "first")).reset_index()
+    return events, enc, per
+
+
+@dataclass
+class AuditTables:
+    """The audit's heavy aggregates, computed on Dask (all small enough for one machine)."""
+
+    #: One row per event: EVENT_KEYS, effort_bearing, biological, n_vessels (min).
+    events: pd.DataFrame
+    #: Taxon encounters: ENCOUNTER_KEYS, encounters, events.
+    encounters: pd.DataFrame
+    #: Mean of each physical variable per source x cell x period x layer: PER_SOURCE_KEYS,
+    #: source_kind, provider_type, unit, mean_value.
+    per_source: pd.DataFrame
+
+
+def audit_tables(paths: Sequence[str], duplicate_keys: frozenset[str] = frozenset(),
+                 max_year: int | None = None, scheduler: str | None = None) -> AuditTables:
+    """The audit's aggregations over the store's live observation files, on Dask.
+
+    One task per file reduces its rows to per-event, per-(event, taxon) and per-cell
+    partials; Dask DataFrame group-bys combine them across files (an event's rows may lie in
+    several files).
+
+    Parameters
+    ----------
+    paths
+        The live parquet files of the store (``Store._live_paths``).
+    duplicate_keys
+        ``record_id|ingest_id`` of rows the store flags ``probable_duplicate``.
+    max_year
+        Leave out season years after this one.
+    scheduler
+        Address of a Dask scheduler; see :func:`dask_client`.
+    """
+    import dask.dataframe as dd
+    from dask import delayed
+
+    with dask_client(scheduler) as client:
+        parts = [delayed(_file_partials, nout=3, pure=True)(p, duplicate_keys, max_year) for p in paths]
+        if not parts:
+            parts = [delayed(_empty_partials, nout=3)()]
+        meta = _empty_partials()
+        ev = dd.from_delayed([p[0] for p in parts], meta=meta[0], verify_meta=False)
+        enc = dd.from_delayed([p[1] for p in parts], meta=meta[1], verify_meta=False)
+        per = dd.from_delayed([p[2] for p in parts], meta=meta[2], verify_meta=False)
+        n_out = max(1, len(paths) // 16)
+        events = ev.groupby(EVENT_KEYS, dropna=False).agg(
+            {"effort_bearing": "max", "biological": "max", "n_vessels": "min"}, split_out=n_out).reset_index()
+        hits = enc.groupby([*ENCOUNTER_KEYS, "source_id", "event_id"], dropna=False).agg(
+            {"hit": "max"}, split_out=n_out).reset_index()
+        per_source = per.groupby(PER_SOURCE_KEYS, dropna=False).agg(
+            {"total": "sum", "n": "sum", "source_kind": "first", "provider_type": "first", "unit": "first"}
+        ).reset_index()
+        events, hits, per_source = client.compute([events, hits, per_source], sync=True)
+    hits["hit"] = hits["hit"].astype(bool)
+    encounters = hits.groupby(ENCOUNTER_KEYS, dropna=False, sort=True).agg(
+        encounters=("hit", "sum"), events=("hit", "size")).reset_index()
+    per_source["mean_value"] = per_source["total"] / per_source["n"]
+    per_source = per_source.drop(columns=["total", "n"])
+    events["n_vessels"] = pd.array(events["n_vessels"], dtype="Int32")
+    return AuditTables(events.reset_index(drop=True), encounters, per_source.reset_index(drop=True))
+
+
+def _empty_partials() -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    text = pd.Series([], dtype=object)
+    events = pd.DataFrame({**{k: text for k in EVENT_KEYS}, "effort_bearing": pd.Series([], dtype=bool),
+                           "biological": pd.Series([], dtype=bool), "n_vessels": pd.Series([], dtype="Int32")})
+    events["season_year"] = pd.Series([], dtype="Int32")
+    enc = pd.DataFrame({**{k: text for k in [*ENCOUNTER_KEYS, "source_id", "event_id"]},
+                        "hit": pd.Series([], dtype=bool)})
+    enc["season_year"] = pd.Series([], dtype="Int32")
+    per = pd.DataFrame({**{k: text for k in PER_SOURCE_KEYS}, "total": pd.Series([], dtype=float),
+                        "n": pd.Series([], dtype=np.int64), "source_kind": text, "provider_type": text,
+                        "unit": text})
+    per["season_year"] = pd.Series([], dtype="Int32")
+    return events, enc, per
+
+
+def duplicate_keys(con: Any) -> frozenset[str]:
+    """``record_id|ingest_id`` of the rows the store flags probable_duplicate (harmonize.twins)."""
+    try:
+        rows = con.execute("SELECT DISTINCT record_id || '|' || ingest_id FROM store_flags WHERE flag = ?",
+                           [DUPLICATE_FLAG]).fetchall()
+    except duckdb.Error:  # a store without the twins tables has no such rows
+        return frozenset()
+    return frozenset(r[0] for r in rows)
+
+
+def audit_metrics(con: Any, paths: Sequence[str], domain_cells: pd.DataFrame, min_vessels: int,
+                  max_year: int | None = None, scheduler: str | None = None) -> Any:
+    """:class:`harmonize.audit.metrics.Metrics` with the heavy aggregations done on Dask.
+
+    The per-event table, the encounters and the per-source physical means come from
+    :func:`audit_tables`; they are registered in ``con`` (a store connection) and the rest
+    of the audit's queries run on them in DuckDB, unchanged.
+    """
+    from harmonize.audit import metrics as m
+
+    tables = audit_tables(paths, duplicate_keys(con), max_year, scheduler)
+    con.register("_dask_audit_events", tables.events)
+    con.register("_dask_per_source", tables.per_source)
+    try:
+        m.build_event_table(con, domain_cells, min_vessels, max_year, events_table="_dask_audit_events")
+        comparisons = m.comparisons(con, max_year, per_source_table="_dask_per_source")
+    finally:
+        con.unregister("_dask_per_source")
+        con.unregister("_dask_audit_events")
+    n_cells = len(domain_cells)
+    return m.Metrics(
+        extent=m.extent(con), coverage=m.coverage(con, n_cells), layer_events=m.layer_events(con),
+        stratum_events=m.stratum_events(con), source_years=m.source_years(con),
+        bio_providers=m.bio_providers(con), encounters=tables.encounters, comparisons=comparisons,
+        cell_maps=m.cell_maps(con), suppressed=m.suppressed(con), n_domain_cells=n_cells,
+    )

@@ -1,0 +1,105 @@
+"""The grid table: cell x season_year x season x depth_layer x variable summaries for gridded models.
+
+One row per (source_kind, cell_id, season_year, season, depth_layer, variable, quantity,
+effort_unit). Values of one event are first summed over life stages, so each event counts
+once per variable; then per group:
+
+- ``events``: sample events (or cell-periods) behind the row;
+- ``total_effort``: summed effort of those events (km2, m3, h ... in ``effort_unit``);
+- ``mean_density``: mean of the events' densities (value / effort);
+- ``share_zero``: share of events where the taxon was recorded or inferred absent
+  (count and biomass only);
+- ``total_value`` and ``mean_value``: for physical measurements and fishing hours.
+
+Densities of different effort units and source kinds are never averaged together. Probable
+twins (``probable_duplicate``) and presence-only records are left out. A group holding any
+confidential fishing value (fewer than ``min_vessels`` vessels) has all its values blanked:
+a sum over the other rows would let a reader work out the hidden one by difference.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pandas as pd
+
+from harmonize.confidentiality import SUPPRESSED_FLAG
+from harmonize.export.metadata import ExportResult, kv_metadata_sql, provenance, write_sidecar
+from harmonize.export.safe_csv import copy_safe_csv
+from harmonize.export.selection import (
+    BASE_VIEW,
+    ExportFilters,
+    duplicate_sql,
+    open_selection,
+    prepare_target,
+    sql_text,
+)
+from harmonize.study import Study
+
+SUFFIXES = (".parquet", ".csv")
+GROUP = ("source_kind", "cell_id", "season_year", "season", "depth_layer", "variable", "variable_kind",
+         "quantity", "unit", "effort_unit")
+
+
+def grid_query() -> str:
+    """The SQL of the grid table over ``export_base``."""
+    group = ", ".join(GROUP)
+    suppressed = f"coalesce(list_contains(flags, {sql_text(SUPPRESSED_FLAG)}), FALSE)"
+    per_event = f"""
+        SELECT {group}, source_id, event_id,
+               sum(value) AS value, max(effort) AS effort, sum(density) AS density,
+               bool_or({suppressed}) AS suppressed
+        FROM {BASE_VIEW}
+        WHERE quantity <> 'presence' AND NOT {duplicate_sql()}
+        GROUP BY {group}, source_id, event_id"""
+    blank = "CASE WHEN count(*) FILTER (WHERE suppressed) > 0 THEN NULL ELSE {} END"
+    return f"""
+        WITH per_event AS ({per_event})
+        SELECT {group},
+               count(*) AS events,
+               {blank.format('sum(effort)')} AS total_effort,
+               {blank.format('avg(density)')} AS mean_density,
+               {blank.format("CASE WHEN any_value(quantity) IN ('count', 'biomass') "
+                             "THEN avg(CASE WHEN value = 0 THEN 1.0 WHEN value > 0 THEN 0.0 END) END")} AS share_zero,
+               {blank.format('sum(value)')} AS total_value,
+               {blank.format('avg(value)')} AS mean_value,
+               count(*) FILTER (WHERE suppressed) AS suppressed_events
+        FROM per_event
+        GROUP BY {group}
+        ORDER BY source_kind, variable, quantity, season_year, season, depth_layer, cell_id"""
+
+
+def read_grid(study: Study, filters: ExportFilters | None = None) -> pd.DataFrame:
+    """The grid table as a DataFrame."""
+    filters = filters or ExportFilters()
+    with open_selection(study, filters) as (con, _counts):
+        return con.sql(grid_query()).to_arrow_table().to_pandas()
+
+
+def export_grid(study: Study, out: str | Path, filters: ExportFilters | None = None) -> ExportResult:
+    """Write the grid table to ``out`` (parquet or CSV by suffix) with its provenance."""
+    path = prepare_target(out, SUFFIXES)
+    filters = filters or ExportFilters()
+    with open_selection(study, filters) as (con, counts):
+        groups_blanked = con.execute(
+            f"""SELECT count(*) FROM (SELECT DISTINCT {', '.join(GROUP)} FROM {BASE_VIEW}
+                WHERE list_contains(flags, {sql_text(SUPPRESSED_FLAG)}) AND quantity <> 'presence'
+                  AND NOT {duplicate_sql()})""").fetchall()[0][0]
+        notes = [
+            "values of one event are summed over life stages before averaging",
+            "densities of different source kinds and effort units are kept in separate rows",
+            "presence-only records and rows flagged probable_duplicate are left out",
+            f"{groups_blanked} rows hold a confidential fishing value (fewer than {study.min_vessels} "
+            "vessels) and have all their values blanked",
+        ]
+        options = {"cell_size_km": study.cell_size_km, "crs": study.crs, "groups_blanked": int(groups_blanked)}
+        meta = provenance(con, study, "grid", filters, counts, options, notes)
+        files = [path]
+        if path.suffix.lower() == ".parquet":
+            target = str(path).replace("'", "''")
+            n = con.execute(f"COPY ({grid_query()}) TO '{target}' "
+                            f"(FORMAT parquet, COMPRESSION zstd, {kv_metadata_sql(meta)})").fetchall()[0][0]
+        else:
+            columns, n = copy_safe_csv(con, grid_query(), path)
+            files.append(write_sidecar(path, meta, columns))
+    return ExportResult("grid", path, int(n), meta, files)

@@ -1,0 +1,225 @@
+"""Which observation rows an export takes: filters, confidentiality and the shared base view.
+
+Every export reads the store through one temporary DuckDB view, ``export_base``: the
+``observations`` view restricted by the user's filters, with the values of fishing-effort
+rows that rest on fewer than ``study.min_vessels`` vessels blanked (the confidentiality rule,
+:mod:`harmonize.confidentiality`), and the offset ``log_effort = ln(effort)`` added. The
+heavy lifting stays in DuckDB so that exports scale with the store, not with memory.
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Iterable, Iterator, Sequence
+from contextlib import contextmanager
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any
+
+import duckdb
+
+from harmonize.confidentiality import SUPPRESSED_FLAG, suppression_sql
+from harmonize.errors import HarmonizeError
+from harmonize.store import Store
+from harmonize.study import Study
+
+SOURCE_KINDS = ("trawl", "plankton", "transect", "opportunistic", "gridded", "effort")
+#: Source kinds whose events are samples of organisms (rows of the wide matrix).
+SAMPLE_KINDS = ("trawl", "plankton", "transect", "opportunistic")
+#: The flag the twin finder sets on volunteer records that repeat another source's record.
+DUPLICATE_FLAG = "probable_duplicate"
+BASE_VIEW = "export_base"
+
+_YEAR_RANGE = re.compile(r"^\s*(\d{4})\s*(?:(?:-|\.\.)\s*(\d{4}))?\s*$")
+
+
+def sql_text(value: str) -> str:
+    """A SQL string literal (single quotes doubled)."""
+    return "'" + str(value).replace("'", "''") + "'"
+
+
+def sql_ident(name: str) -> str:
+    """A quoted SQL identifier (double quotes doubled)."""
+    return '"' + str(name).replace('"', '""') + '"'
+
+
+def _text_list(values: Iterable[str]) -> str:
+    return "(" + ", ".join(sql_text(v) for v in values) + ")"
+
+
+@dataclass(frozen=True)
+class ExportFilters:
+    """What to take from the store; an empty tuple means "all".
+
+    Parameters
+    ----------
+    kinds
+        Source kinds (trawl, plankton, transect, opportunistic, gridded, effort).
+    years
+        Season years (the year each season belongs to; a December winter counts with the
+        following January).
+    seasons, layers
+        Season and depth-layer names from study.toml (layers also near_bottom, integrated).
+    variables
+        Canonical taxon names, physical variable names or fishing_hours.
+    sources
+        Source ids from the profiles.
+    """
+
+    kinds: tuple[str, ...] = ()
+    years: tuple[int, ...] = ()
+    seasons: tuple[str, ...] = ()
+    layers: tuple[str, ...] = ()
+    variables: tuple[str, ...] = ()
+    sources: tuple[str, ...] = field(default=())
+
+    @classmethod
+    def build(cls, kinds: Iterable[str] | str | None = None, years: Iterable[int] | str | None = None,
+              seasons: Iterable[str] | str | None = None, layers: Iterable[str] | str | None = None,
+              variables: Iterable[str] | str | None = None,
+              sources: Iterable[str] | str | None = None) -> ExportFilters:
+        """Filters from lists or comma-separated text (years also as ranges, ``2019-2021``)."""
+        return cls(kinds=_names(kinds), years=parse_years(years), seasons=_names(seasons),
+                   layers=_names(layers), variables=_names(variables), sources=_names(sources))
+
+    def where_sql(self) -> str:
+        """The SQL condition on observation columns (``TRUE`` when nothing is filtered)."""
+        parts = []
+        for column, values in (("source_kind", self.kinds), ("season", self.seasons),
+                               ("depth_layer", self.layers), ("variable", self.variables),
+                               ("source_id", self.sources)):
+            if values:
+                parts.append(f"{column} IN {_text_list(values)}")
+        if self.years:
+            parts.append("season_year IN (" + ", ".join(str(int(y)) for y in self.years) + ")")
+        return " AND ".join(parts) if parts else "TRUE"
+
+    def as_dict(self) -> dict[str, list[Any]]:
+        """The filters as plain lists, for export metadata."""
+        return {"kinds": list(self.kinds), "season_years": list(self.years), "seasons": list(self.seasons),
+                "layers": list(self.layers), "variables": list(self.variables), "sources": list(self.sources)}
+
+    def validate(self, con: duckdb.DuckDBPyConnection, season_names: Sequence[str],
+                 layer_names: Sequence[str]) -> None:
+        """Raise HarmonizeError naming a filter value that can match nothing, and the valid ones."""
+        unknown_kinds = [k for k in self.kinds if k not in SOURCE_KINDS]
+        if unknown_kinds:
+            raise HarmonizeError(f"unknown source kind {unknown_kinds[0]!r} in the export filter; "
+                                 f"choose from {', '.join(SOURCE_KINDS)}")
+        bad = [s for s in self.seasons if s not in season_names]
+        if bad:
+            raise HarmonizeError(f"season {bad[0]!r} is not in study.toml [seasons]; "
+                                 f"choose from {', '.join(season_names)}")
+        valid_layers = [*layer_names, "near_bottom", "integrated"]
+        bad = [s for s in self.layers if s not in valid_layers]
+        if bad:
+            raise HarmonizeError(f"depth layer {bad[0]!r} is not in study.toml; "
+                                 f"choose from {', '.join(valid_layers)}")
+        for column, values, what in (("variable", self.variables, "variable"), ("source_id", self.sources, "source")):
+            if not values:
+                continue
+            present = {r[0] for r in con.execute(
+                f"SELECT DISTINCT {column} FROM observations WHERE {column} IN {_text_list(values)}").fetchall()}
+            missing = [v for v in values if v not in present]
+            if missing:
+                raise HarmonizeError(f"{what} {missing[0]!r} is not in the store; "
+                                     f"'harmonize status' lists what the store holds (names are case-sensitive)")
+
+
+def parse_years(years: Iterable[int] | str | None) -> tuple[int, ...]:
+    """Years from ints or text such as ``"2019-2021,2023"``; raises HarmonizeError on bad text."""
+    if years is None:
+        return ()
+    if isinstance(years, str):
+        out: list[int] = []
+        for part in years.split(","):
+            if not part.strip():
+                continue
+            m = _YEAR_RANGE.match(part)
+            if not m:
+                raise HarmonizeError(f"years filter {part.strip()!r} is not a year or a range such as 2019-2021")
+            first = int(m.group(1))
+            last = int(m.group(2) or first)
+            if last < first:
+                raise HarmonizeError(f"years filter {part.strip()!r} ends before it starts; write it as {last}-{first}")
+            out.extend(range(first, last + 1))
+        return tuple(sorted(set(out)))
+    return tuple(sorted({int(y) for y in years}))
+
+
+def _names(values: Iterable[str] | str | None) -> tuple[str, ...]:
+    if values is None:
+        return ()
+    if isinstance(values, str):
+        values = values.split(",")
+    return tuple(dict.fromkeys(v.strip() for v in values if v and v.strip()))
+
+
+def confidential_sql(min_vessels: int) -> str:
+    """SQL condition: the row's value rests on fewer than ``min_vessels`` vessels."""
+    return f"(n_vessels IS NOT NULL AND n_vessels < {int(min_vessels)})"
+
+
+def duplicate_sql() -> str:
+    """SQL condition: the row is a probable twin of another source's record."""
+    return f"coalesce(list_contains(flags, {sql_text(DUPLICATE_FLAG)}), FALSE)"
+
+
+def define_base(con: duckdb.DuckDBPyConnection, filters: ExportFilters, min_vessels: int) -> None:
+    """Create the temporary view ``export_base`` over ``observations``.
+
+    Columns: the contract's observation columns, with value, density and effort blanked and
+    ``suppressed_confidential`` added to flags where the row is confidential, plus
+    ``log_effort`` (ln(effort); null where effort is null, not positive or suppressed).
+    """
+    conf = confidential_sql(min_vessels)
+    con.execute(
+        f"""CREATE OR REPLACE TEMP VIEW {BASE_VIEW} AS
+            SELECT * REPLACE (
+                       {suppression_sql(min_vessels, 'value')} AS value,
+                       {suppression_sql(min_vessels, 'density')} AS density,
+                       {suppression_sql(min_vessels, 'effort')} AS effort,
+                       CASE WHEN {conf} THEN list_append(flags, {sql_text(SUPPRESSED_FLAG)}) ELSE flags END AS flags),
+                   CASE WHEN {conf} THEN NULL WHEN effort > 0 THEN ln(effort) END AS log_effort
+            FROM observations WHERE {filters.where_sql()}"""
+    )
+
+
+def base_counts(con: duckdb.DuckDBPyConnection, filters: ExportFilters, min_vessels: int) -> dict[str, Any]:
+    """Rows selected, suppressed as confidential and flagged as probable twins, in one scan.
+
+    Also returns ``ingest_ids``: the ingests the selected rows come from.
+    """
+    rows = con.execute(
+        f"""SELECT ingest_id, count(*), count(*) FILTER (WHERE {confidential_sql(min_vessels)}),
+                   count(*) FILTER (WHERE {duplicate_sql()})
+            FROM observations WHERE {filters.where_sql()} GROUP BY ingest_id ORDER BY ingest_id"""
+    ).fetchall()
+    return {"rows_selected": sum(int(r[1]) for r in rows),
+            "rows_suppressed_confidential": sum(int(r[2]) for r in rows),
+            "rows_probable_duplicate": sum(int(r[3]) for r in rows),
+            "ingest_ids": [r[0] for r in rows]}
+
+
+@contextmanager
+def open_selection(study: Study, filters: ExportFilters) -> Iterator[tuple[duckdb.DuckDBPyConnection, dict[str, Any]]]:
+    """A read-only store connection with ``export_base`` defined, and the selection's counts.
+
+    Raises HarmonizeError when a filter names something that does not exist.
+    """
+    with Store(study.store_dir).connect(read_only=True) as con:
+        con.execute("SET enable_progress_bar = false")   # the library never prints
+        filters.validate(con, list(study.seasons), [d.name for d in study.depth_layers])
+        define_base(con, filters, study.min_vessels)
+        yield con, base_counts(con, filters, study.min_vessels)
+
+
+def prepare_target(out: str | Path, suffixes: Sequence[str]) -> Path:
+    """The output path, checked: a known suffix and an existing parent folder."""
+    path = Path(out).expanduser().resolve()
+    if path.suffix.lower() not in suffixes:
+        raise HarmonizeError(f"{path.name}: unknown file type {path.suffix or '(none)'!r}; "
+                             f"name the output with one of {', '.join(suffixes)}")
+    if not path.parent.is_dir():
+        raise HarmonizeError(f"{path.parent} does not exist; create the folder first")
+    return path

@@ -1,0 +1,1 @@
+"""Gridded fields (satellite and ocean-model NetCDF): CF decoding, pixel areas, aggregation."""

@@ -1,0 +1,315 @@
+"""CF conventions: packed values, fill and valid ranges, time axes and calendars, units.
+
+References
+----------
+Eaton et al., "NetCDF Climate and Forecast (CF) Metadata Conventions", version 1.11 (2023):
+section 2.5.1 (missing data: _FillValue, missing_value, valid_min/valid_max/valid_range),
+section 4.3 (vertical coordinates, the ``positive`` attribute), section 4.4 and 4.4.1
+(time units "<unit> since <date>" and calendars, e.g. noleap and 360_day) and section 8.1
+(packed data: unpacked = packed x scale_factor + add_offset; valid_* attributes are in the
+packed type when they have the type of the stored data).
+"""
+
+from __future__ import annotations
+
+import re
+from collections.abc import Mapping
+from dataclasses import dataclass
+from typing import Any
+
+import cftime
+import numpy as np
+
+#: netCDF default fill value of floating-point variables (Unidata netCDF, netcdf.h NC_FILL_FLOAT
+#: and NC_FILL_DOUBLE); CF 2.5.1: data equal to it are missing when no _FillValue is given.
+NETCDF_DEFAULT_FLOAT_FILL = 9.969209968386869e36
+
+CALENDARS = frozenset({
+    "standard", "gregorian", "proleptic_gregorian", "julian", "noleap", "365_day",
+    "all_leap", "366_day", "360_day", "none",
+})
+_SINCE = re.compile(r"^\s*(\w+)\s+since\s+(.+?)\s*$")
+
+
+@dataclass(frozen=True)
+class CanonicalVariable:
+    """A physical variable harmonize knows: CF standard name, canonical unit, plausible range."""
+
+    name: str
+    unit: str
+    dimension: str
+    plausible: tuple[float, float]
+
+
+# Plausible ranges in the canonical unit. Sea water freezes near -1.9 degC at salinity 35 and
+# open-ocean temperatures stay below ~35 degC (common practice); ranges are wide on purpose:
+# they catch unit mistakes (kelvin read as degC), not unusual water.
+_TEMPERATURE_RANGE = (-5.0, 45.0)
+CANONICAL_VARIABLES: dict[str, CanonicalVariable] = {
+    v.name: v
+    for v in (
+        CanonicalVariable("sea_surface_temperature", "degC", "temperature", _TEMPERATURE_RANGE),
+        CanonicalVariable("sea_surface_foundation_temperature", "degC", "temperature", _TEMPERATURE_RANGE),
+        CanonicalVariable("sea_surface_skin_temperature", "degC", "temperature", _TEMPERATURE_RANGE),
+        CanonicalVariable("sea_surface_subskin_temperature", "degC", "temperature", _TEMPERATURE_RANGE),
+        CanonicalVariable("sea_water_temperature", "degC", "temperature", _TEMPERATURE_RANGE),
+        CanonicalVariable("sea_water_potential_temperature", "degC", "temperature", _TEMPERATURE_RANGE),
+        CanonicalVariable("sea_water_temperature_at_sea_floor", "degC", "temperature", _TEMPERATURE_RANGE),
+        CanonicalVariable("sea_water_potential_temperature_at_sea_floor", "degC", "temperature",
+                          _TEMPERATURE_RANGE),
+        # chlorophyll: open ocean 0.01-1, coastal blooms up to ~100 mg m-3 (common practice)
+        CanonicalVariable("mass_concentration_of_chlorophyll_a_in_sea_water", "mg m-3", "concentration",
+                          (0.0, 1000.0)),
+        CanonicalVariable("mass_concentration_of_chlorophyll_in_sea_water", "mg m-3", "concentration",
+                          (0.0, 1000.0)),
+        CanonicalVariable("sea_ice_area_fraction", "1", "fraction", (0.0, 1.0)),
+        CanonicalVariable("sea_water_practical_salinity", "1", "salinity", (0.0, 45.0)),
+        CanonicalVariable("sea_water_practical_salinity_at_sea_floor", "1", "salinity", (0.0, 45.0)),
+    )
+}
+
+# unit spelling -> (scale, offset) to the dimension's canonical unit: canonical = v * scale + offset.
+# 0 degC = 273.15 K exactly (BIPM SI Brochure, 9th ed. 2019, section 2.3.1); 1 ug/L = 1 mg m-3
+# and 1 kg m-3 = 1e6 mg m-3 (SI prefixes); percent = 0.01.
+_KELVIN = (1.0, -273.15)
+_CELSIUS = (1.0, 0.0)
+UNIT_SPELLINGS: dict[str, dict[str, tuple[float, float]]] = {
+    "temperature": {
+        **dict.fromkeys(("K", "kelvin", "Kelvin", "degK", "deg_K", "degrees_K", "degree_K"), _KELVIN),
+        **dict.fromkeys(("degC", "deg_C", "degrees_C", "degree_C", "degree_Celsius", "degrees_Celsius",
+                         "Celsius", "celsius", "C", "°C", "deg C", "degrees C"), _CELSIUS),
+    },
+    "concentration": {
+        **dict.fromkeys(("mg m-3", "mg m^-3", "mg/m3", "mg/m^3", "mg.m-3", "milligram m-3",
+                         "milligrams m-3", "ug L-1", "ug/L", "ug/l", "ug l-1", "µg/L", "µg L-1"),
+                        (1.0, 0.0)),
+        **dict.fromkeys(("kg m-3", "kg/m3", "kg m^-3"), (1e6, 0.0)),
+        **dict.fromkeys(("g m-3", "g/m3", "mg L-1", "mg/L", "mg/l"), (1e3, 0.0)),
+    },
+    "fraction": {
+        **dict.fromkeys(("1", "fraction", "dimensionless"), (1.0, 0.0)),
+        **dict.fromkeys(("%", "percent"), (0.01, 0.0)),
+    },
+    "salinity": dict.fromkeys(("1", "psu", "PSU", "1e-3", "0.001", "pss-78", "PSS-78"), (1.0, 0.0)),
+}
+
+
+def unit_conversion(dimension: str, unit: str) -> tuple[float, float] | None:
+    """(scale, offset) from ``unit`` to the canonical unit of ``dimension``; None if unknown."""
+    table = UNIT_SPELLINGS[dimension]
+    text = " ".join(str(unit).split())
+    if text in table:
+        return table[text]
+    folded = {k.casefold(): v for k, v in table.items() if k not in ("K", "C")}
+    return folded.get(text.casefold())
+
+
+def same_unit(dimension: str, a: str, b: str) -> bool:
+    """Whether two spellings name the same unit (same conversion to canonical)."""
+    ca, cb = unit_conversion(dimension, a), unit_conversion(dimension, b)
+    return ca is not None and ca == cb
+
+
+# ------------------------------------------------------------------ packed values
+@dataclass(frozen=True)
+class Packing:
+    """How the stored numbers of one variable decode (CF 2.5.1 and 8.1).
+
+    ``fill_values`` are compared with the stored (packed) numbers; ``valid_packed`` is the
+    valid interval in stored numbers, ``valid_unpacked`` the one in unpacked numbers (CF
+    8.1: valid_* attributes typed like the stored data are packed, those typed like
+    scale_factor are unpacked).
+    """
+
+    scale_factor: float
+    add_offset: float
+    fill_values: tuple[float, ...]
+    valid_packed: tuple[float, float]
+    valid_unpacked: tuple[float, float]
+    unsigned: bool = False
+
+    @classmethod
+    def from_attrs(cls, attrs: Mapping[str, Any], dtype: np.dtype) -> Packing:
+        """The packing of a variable from its raw attributes and its stored dtype."""
+        dtype = np.dtype(dtype)
+        unsigned = dtype.kind == "i" and str(attrs.get("_Unsigned", "")).lower() == "true"
+        scale = _scalar(attrs.get("scale_factor"), 1.0)
+        offset = _scalar(attrs.get("add_offset"), 0.0)
+        packed_type = attrs.get("scale_factor", attrs.get("add_offset"))
+        fills: list[float] = []
+        for key in ("_FillValue", "missing_value"):
+            if key in attrs:
+                fills += [float(_as_stored(v, dtype, unsigned)) for v in np.atleast_1d(attrs[key])]
+        if "_FillValue" not in attrs and dtype.kind == "f":
+            fills.append(NETCDF_DEFAULT_FLOAT_FILL)
+        lo, hi = -np.inf, np.inf
+        if "valid_range" in attrs:
+            rng = np.atleast_1d(attrs["valid_range"])
+            lo, hi = float(rng[0]), float(rng[-1])
+            ref = rng
+        else:
+            ref = None
+            if "valid_min" in attrs:
+                lo = float(np.atleast_1d(attrs["valid_min"])[0])
+                ref = np.atleast_1d(attrs["valid_min"])
+            if "valid_max" in attrs:
+                hi = float(np.atleast_1d(attrs["valid_max"])[0])
+                ref = np.atleast_1d(attrs["valid_max"])
+        packed_valid, unpacked_valid = (-np.inf, np.inf), (-np.inf, np.inf)
+        if ref is not None:
+            in_unpacked = (
+                packed_type is not None and dtype.kind in "iu"
+                and np.asarray(ref).dtype.kind == "f"
+            )
+            if in_unpacked:
+                unpacked_valid = (lo, hi)
+            else:
+                if unsigned:
+                    lo, hi = (float(_as_stored(v, dtype, True)) for v in (lo, hi))
+                packed_valid = (lo, hi)
+        return cls(scale, offset, tuple(fills), packed_valid, unpacked_valid, unsigned)
+
+    def decode(self, stored: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Unpack stored numbers.
+
+        Returns
+        -------
+        values, fill, invalid
+            float64 unpacked values (NaN where fill or invalid), the mask of fill/missing
+            values (and NaN), and the mask of values outside the valid range (not fill).
+        """
+        raw = np.asarray(stored)
+        if self.unsigned:
+            raw = raw.view(np.dtype(f"u{raw.dtype.itemsize}"))
+        fill = np.zeros(raw.shape, dtype=bool)
+        for fv in self.fill_values:
+            if np.isnan(fv):
+                continue
+            fill |= raw == np.asarray(fv).astype(raw.dtype) if raw.dtype.kind in "iu" else raw == fv
+        if raw.dtype.kind == "f":
+            fill |= np.isnan(raw)
+        values = raw.astype(np.float64)
+        invalid = np.zeros(raw.shape, dtype=bool)
+        lo, hi = self.valid_packed
+        if np.isfinite(lo) or np.isfinite(hi):
+            with np.errstate(invalid="ignore"):
+                invalid |= (values < lo) | (values > hi)
+        if self.scale_factor != 1.0:
+            values *= self.scale_factor
+        if self.add_offset != 0.0:
+            values += self.add_offset
+        lo, hi = self.valid_unpacked
+        if np.isfinite(lo) or np.isfinite(hi):
+            with np.errstate(invalid="ignore"):
+                invalid |= (values < lo) | (values > hi)
+        invalid &= ~fill
+        values[fill | invalid] = np.nan
+        return values, fill, invalid
+
+    def describe_fill(self) -> str:
+        shown = ", ".join(f"{v:g}" for v in self.fill_values)
+        return f"_FillValue/missing_value ({shown})" if shown else "NaN"
+
+
+def _scalar(value: Any, default: float) -> float:
+    if value is None:
+        return default
+    return float(np.atleast_1d(value)[0])
+
+
+def _as_stored(value: Any, dtype: np.dtype, unsigned: bool) -> Any:
+    """A fill/valid attribute as a stored number; with _Unsigned, as the unsigned reading."""
+    if not unsigned:
+        return value
+    return np.asarray(value).astype(dtype).view(np.dtype(f"u{dtype.itemsize}")).item()
+
+
+# ------------------------------------------------------------------ time
+@dataclass(frozen=True)
+class TimeAxis:
+    """Decoded time steps: calendar year and month of each step (in the file's calendar)."""
+
+    year: np.ndarray
+    month: np.ndarray
+    valid: np.ndarray
+    calendar: str
+    units: str
+
+
+def decode_time(values: np.ndarray, units: str, calendar: str | None) -> TimeAxis:
+    """Year and month of CF time values ("days since 2019-01-01", any CF calendar).
+
+    Raises
+    ------
+    ValueError
+        Units that are not "<unit> since <date>", or a calendar CF does not define.
+    """
+    cal = (calendar or "standard").strip().lower()
+    if cal not in CALENDARS or cal == "none":
+        raise ValueError(f"calendar '{calendar}' is not a CF calendar; expected one of "
+                         f"{', '.join(sorted(CALENDARS - {'none'}))}")
+    if not isinstance(units, str) or not _SINCE.match(units):
+        raise ValueError(f"time units '{units}' are not of the CF form '<unit> since <date>'")
+    vals = np.asarray(values, dtype=np.float64).ravel()
+    valid = np.isfinite(vals) & (np.abs(vals) < 1e15)
+    year = np.zeros(vals.shape, dtype=np.int64)
+    month = np.ones(vals.shape, dtype=np.int64)
+    if valid.any():
+        try:
+            dates = cftime.num2date(vals[valid], units, calendar=cal, only_use_cftime_datetimes=True)
+        except (ValueError, TypeError) as exc:
+            raise ValueError(f"time values cannot be decoded with units '{units}' ({exc})") from None
+        # one Python step per time step (not per value): the time axis is short
+        dates = np.atleast_1d(dates)
+        year[valid] = np.fromiter((d.year for d in dates), dtype=np.int64, count=dates.size)
+        month[valid] = np.fromiter((d.month for d in dates), dtype=np.int64, count=dates.size)
+    return TimeAxis(year, month, valid, cal, units)
+
+
+# ------------------------------------------------------------------ axes
+_LAT_UNITS = frozenset({"degrees_north", "degree_north", "degree_N", "degrees_N", "degreeN", "degreesN"})
+_LON_UNITS = frozenset({"degrees_east", "degree_east", "degree_E", "degrees_E", "degreeE", "degreesE"})
+_LAT_NAMES = ("lat", "latitude", "nav_lat", "lat_rho", "lat_t", "y_lat")
+_LON_NAMES = ("lon", "longitude", "nav_lon", "lon_rho", "lon_t", "x_lon")
+
+
+def is_latitude(name: str, attrs: Mapping[str, Any]) -> bool:
+    return (attrs.get("standard_name") == "latitude" or str(attrs.get("units", "")) in _LAT_UNITS
+            or name.lower() in _LAT_NAMES)
+
+
+def is_longitude(name: str, attrs: Mapping[str, Any]) -> bool:
+    return (attrs.get("standard_name") == "longitude" or str(attrs.get("units", "")) in _LON_UNITS
+            or name.lower() in _LON_NAMES)
+
+
+def is_time(name: str, attrs: Mapping[str, Any]) -> bool:
+    units = attrs.get("units")
+    return (str(attrs.get("axis", "")).upper() == "T" or attrs.get("standard_name") == "time"
+            or (isinstance(units, str) and bool(_SINCE.match(units)) and name.lower().startswith("time")))
+
+
+def is_vertical(name: str, attrs: Mapping[str, Any]) -> bool:
+    return (str(attrs.get("axis", "")).upper() == "Z" or "positive" in attrs
+            or attrs.get("standard_name") in ("depth", "height", "depth_below_sea_surface")
+            or name.lower() in ("depth", "deptht", "lev", "z", "level"))
+
+
+def depth_metres(values: np.ndarray, attrs: Mapping[str, Any]) -> np.ndarray:
+    """Depths of a vertical coordinate in metres below the surface (CF 4.3).
+
+    Raises
+    ------
+    ValueError
+        A unit other than metres/centimetres, or a dimensionless (sigma) coordinate.
+    """
+    units = str(attrs.get("units", "m")).strip()
+    factor = {"m": 1.0, "meter": 1.0, "meters": 1.0, "metre": 1.0, "metres": 1.0, "cm": 0.01,
+              "centimeters": 0.01}.get(units)
+    if factor is None:
+        raise ValueError(f"vertical coordinate units '{units}' are not metres; harmonize reads "
+                         "depth levels in m (parametric sigma levels are not supported)")
+    depth = np.asarray(values, dtype=np.float64) * factor
+    if str(attrs.get("positive", "down")).lower() == "up":
+        depth = -depth
+    return depth

@@ -1,0 +1,251 @@
+"""Mutations of valid delimited files and the oracle every fuzzed ingest must satisfy.
+
+A mutation takes the bytes of a valid CSV file and breaks it the way files break in the
+wild: a column deleted or two swapped, a wrong type or a hostile value in a cell, stray
+delimiters and quotes, a byte-order mark, a line in another encoding, blank lines, a
+truncated last line, the header repeated, other line endings. The oracle: harmonize either
+refuses the file with one line naming it, or accounts for every data row
+(rows_read = rows_accepted + rows_quarantined, one quarantine row per rejected row).
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import shutil
+from collections.abc import Mapping
+from dataclasses import dataclass
+from pathlib import Path
+
+from hypothesis import strategies as st
+
+from harmonize.errors import HarmonizeError
+from harmonize.ingest import IngestResult, run
+from harmonize.study import Study
+
+#: Cell values that have broken CSV readers, numeric parsers or SQL before.
+NASTY_VALUES = [
+    "", " ", "NaN", "nan", "inf", "-inf", "Infinity", "1e308", "1e400", "-1e400", "-0", "0",
+    "-1", "-999999", "9" * 400, "0x1F", "1,5", "1.2.3", "١٢٣", "½", "TRUE", "null", "None",
+    "2020-02-30", "1799-12-31", "0001-01-01", "9999-12-31T23:59:59", "2020-06-10T08:00:00+25:00",
+    "2020-06-10T08:00:00Z", "10/06/2020", "\"", "\"\"", "'", ",", ";", "\t", "|", "\\",
+    "\x00", "\r", "=HYPERLINK(\"http://x\")", "+1", "@SUM(A1)", "'; DROP TABLE ingests; --",
+    "\" OR 1=1 --", "Robert'); DROP TABLE quarantine;--", "\u202eevil", "\ufeff", "é", "Ø",
+    "x" * 5000, "🐟",
+]
+
+
+@dataclass(frozen=True)
+class Mutation:
+    """One way to break a file; ``apply`` works on the decoded text's parsed rows or bytes."""
+
+    name: str
+    args: tuple[int | str, ...]
+
+    def __str__(self) -> str:
+        return f"{self.name}{self.args}"
+
+
+def _rows(data: bytes) -> list[list[str]]:
+    return list(csv.reader(io.StringIO(data.decode("utf-8-sig"), newline="")))
+
+
+def _unparse(rows: list[list[str]], newline: str = "\n") -> bytes:
+    buf = io.StringIO(newline="")
+    csv.writer(buf, lineterminator=newline).writerows(rows)
+    return buf.getvalue().encode("utf-8")
+
+
+def _lines(data: bytes) -> list[bytes]:
+    return data.split(b"\n")
+
+
+def _pick(seq_len: int, k: int | str) -> int:
+    return int(k) % max(seq_len, 1)
+
+
+def apply_mutation(data: bytes, m: Mutation) -> bytes:
+    """The bytes of ``data`` broken by mutation ``m`` (deterministic)."""
+    a = m.args
+    if m.name in ("drop_column", "swap_header", "swap_columns", "set_cell", "duplicate_header",
+                  "duplicate_row", "delete_row", "crlf", "blank_rows"):
+        try:
+            rows = _rows(data)
+        except (UnicodeDecodeError, csv.Error):
+            return data  # an earlier mutation made the file unparseable: leave it so
+        if not rows:
+            return data
+        width = len(rows[0])
+        if m.name == "drop_column":
+            j = _pick(width, a[0])
+            return _unparse([r[:j] + r[j + 1:] for r in rows])
+        if m.name == "swap_header":
+            j, k = _pick(width, a[0]), _pick(width, a[1])
+            head = list(rows[0])
+            head[j], head[k] = head[k], head[j]
+            return _unparse([head, *rows[1:]])
+        if m.name == "swap_columns":  # data swapped, header kept: values land in the wrong field
+            j, k = _pick(width, a[0]), _pick(width, a[1])
+            out = [rows[0]]
+            for r in rows[1:]:
+                r = list(r)
+                if max(j, k) < len(r):
+                    r[j], r[k] = r[k], r[j]
+                out.append(r)
+            return _unparse(out)
+        if m.name == "set_cell":
+            i, j = 1 + _pick(len(rows) - 1, a[0]), _pick(width, a[1])
+            if i >= len(rows) or j >= len(rows[i]):
+                return data
+            rows[i] = list(rows[i])
+            rows[i][j] = str(a[2])
+            return _unparse(rows)
+        if m.name == "duplicate_header":
+            i = 1 + _pick(len(rows), a[0])
+            return _unparse(rows[:i] + [rows[0]] + rows[i:])
+        if m.name == "duplicate_row":
+            i = 1 + _pick(len(rows) - 1, a[0])
+            return _unparse(rows[:i + 1] + rows[i:i + 1] + rows[i + 1:])
+        if m.name == "delete_row":
+            i = 1 + _pick(len(rows) - 1, a[0])
+            return _unparse(rows[:i] + rows[i + 1:]) if len(rows) > 2 else data
+        if m.name == "crlf":
+            return _unparse(rows, "\r\n")
+        if m.name == "blank_rows":
+            i = 1 + _pick(len(rows), a[0])
+            return _unparse(rows[:i] + [[], [""] * width] + rows[i:])
+    lines = _lines(data)
+    if m.name in ("stray_delimiter", "stray_quote", "insert_bytes"):
+        i = _pick(len(lines), a[0])
+        line = lines[i]
+        p = _pick(len(line) + 1, a[1])
+        token = {"stray_delimiter": b",", "stray_quote": b'"'}.get(m.name) or str(a[2]).encode("utf-8")
+        lines[i] = line[:p] + token + line[p:]
+        return b"\n".join(lines)
+    if m.name == "bom":
+        return b"\xef\xbb\xbf" + data
+    if m.name == "latin1_line":  # one line re-encoded: a file of mixed encodings
+        i = _pick(len(lines), a[0])
+        lines[i] = lines[i].decode("utf-8", "replace").replace("e", "é", 1).encode("latin-1", "replace")
+        return b"\n".join(lines)
+    if m.name == "truncate":  # the last line cut short (a copy that stopped half-way)
+        body = data.rstrip(b"\n")
+        last = body.rfind(b"\n") + 1
+        cut = last + _pick(len(body) - last, a[0])
+        return body[:max(cut, last + 1)]
+    if m.name == "semicolons":  # a spreadsheet's "CSV" in a locale with decimal commas
+        return data.replace(b",", b";").replace(b".", b",")
+    if m.name == "cr_only":
+        return data.replace(b"\n", b"\r")
+    if m.name == "utf16":
+        return data.decode("utf-8", "replace").encode("utf-16")
+    raise ValueError(f"unknown mutation {m.name}")
+
+
+def mutations() -> st.SearchStrategy[Mutation]:
+    """One mutation, with its positions and values drawn by hypothesis."""
+    idx = st.integers(0, 1000)
+    return st.one_of(
+        st.builds(lambda j: Mutation("drop_column", (j,)), idx),
+        st.builds(lambda j, k: Mutation("swap_header", (j, k)), idx, idx),
+        st.builds(lambda j, k: Mutation("swap_columns", (j, k)), idx, idx),
+        st.builds(lambda i, j, v: Mutation("set_cell", (i, j, v)), idx, idx,
+                  st.one_of(st.sampled_from(NASTY_VALUES), st.text(max_size=30))),
+        st.builds(lambda i: Mutation("duplicate_header", (i,)), idx),
+        st.builds(lambda i: Mutation("duplicate_row", (i,)), idx),
+        st.builds(lambda i: Mutation("delete_row", (i,)), idx),
+        st.builds(lambda i: Mutation("blank_rows", (i,)), idx),
+        st.just(Mutation("crlf", ())),
+        st.builds(lambda i, p: Mutation("stray_delimiter", (i, p)), idx, idx),
+        st.builds(lambda i, p: Mutation("stray_quote", (i, p)), idx, idx),
+        st.builds(lambda i, p, v: Mutation("insert_bytes", (i, p, v)), idx, idx,
+                  st.sampled_from(["\x00", "\ufeff", "\r", "\r\n", '",', ',"', "\u2028", "\x1a"])),
+        st.just(Mutation("bom", ())),
+        st.builds(lambda i: Mutation("latin1_line", (i,)), idx),
+        st.builds(lambda k: Mutation("truncate", (k,)), idx),
+        st.just(Mutation("semicolons", ())),
+        st.just(Mutation("cr_only", ())),
+        st.just(Mutation("utf16", ())),
+    )
+
+
+def mutate_all(data: bytes, ms: list[Mutation]) -> bytes:
+    for m in ms:
+        data = apply_mutation(data, m)
+    return data
+
+
+# ---------------------------------------------------------------------------------- oracle
+@dataclass
+class Outcome:
+    """What one fuzzed ingest did: refused with a message, or accounted for every row."""
+
+    refused: str | None
+    result: IngestResult | None
+
+
+def check_outcome(study: Study, profile: str, inputs: Mapping[str, Path], *, write: bool = False,
+                  replace: bool = True) -> Outcome:
+    """Run one (possibly broken) ingest and assert the reliability contract on it.
+
+    Anything but a HarmonizeError escaping is a bug (the test fails with it). A refusal must
+    be one line naming one of the input files or the profile. A result must account for
+    every row: rows_read = rows_accepted + rows_quarantined per file, one quarantine row per
+    rejected row with a 1-based row number inside the file, a reason code and a one-line
+    message.
+    """
+    try:
+        result = run(study, profile, inputs, write=write, replace=replace)
+    except HarmonizeError as exc:
+        msg = str(exc)
+        assert msg.strip(), "an error without a message"
+        assert "\n" not in msg.strip(), f"the error is not one line: {msg!r}"
+        names = [Path(p).name for p in inputs.values()] + [profile, Path(profile).stem]
+        assert any(n in msg for n in names), f"the error does not name the file: {msg!r}"
+        return Outcome(msg, None)
+    assert_accounted(result)
+    return Outcome(None, result)
+
+
+def assert_accounted(result: IngestResult) -> None:
+    """Every row of every input file accepted or quarantined, with reasons and one-line messages."""
+    q = result.quarantine
+    masked = result.masked
+    for f in result.files:
+        assert f.rows_read == f.rows_accepted + f.rows_quarantined, f
+        assert f.rows_read >= 0 and f.rows_accepted >= 0 and f.rows_quarantined >= 0, f
+        part = q[q["source_file"] == f.path.name] if len(q) else q
+        n_masked = int(masked.loc[masked["source_file"] == f.path.name, "n_values"].sum()) if len(masked) else 0
+        assert len(part) + n_masked == f.rows_quarantined, (f, len(part), n_masked)
+        if len(part):
+            rows = part["source_row"].astype("int64")
+            assert rows.is_unique, f"a row quarantined twice in {f.path.name}"
+            assert rows.between(1, f.rows_read).all(), f"quarantine row numbers outside 1..{f.rows_read}"
+    if len(q):
+        assert q["reason_code"].notna().all() and (q["reason_code"].str.len() > 0).all()
+        msgs = q["message"].astype(str)
+        assert (msgs.str.strip().str.len() > 0).all(), "an empty quarantine message"
+        multi = msgs[msgs.str.contains("\n|\r", regex=True)]
+        assert multi.empty, f"quarantine messages span lines: {multi.head(3).tolist()!r}"
+        for raw in q["raw"].head(50):
+            json.loads(raw)  # the raw row is kept as valid JSON text
+
+
+def write_inputs(folder: Path, originals: Mapping[str, Path], broken: Mapping[str, bytes]) -> dict[str, Path]:
+    """Write the (mutated) inputs of one example into ``folder`` under their original names."""
+    folder.mkdir(parents=True, exist_ok=True)
+    out = {}
+    for role, src in originals.items():
+        target = folder / src.name
+        if role in broken:
+            target.write_bytes(broken[role])
+        else:
+            shutil.copyfile(src, target)
+        out[role] = target
+    return out
+
+
+def reason_counts(result: IngestResult) -> dict[str, int]:
+    return {str(k): int(v) for k, v in result.reasons().items()}
+

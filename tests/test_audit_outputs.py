@@ -1,0 +1,130 @@
+"""The audit's outputs: JSON in the contract's shape, the CLI verb and its exit codes, the HTML report."""
+
+from __future__ import annotations
+
+import json
+import os
+import re
+import shutil
+import subprocess
+import sys
+from pathlib import Path
+
+import pytest
+from audit_browser import find_chromium, load_page
+from audit_stores import build_known_gaps, copy_fixture_study
+
+from harmonize.audit.findings import CODES
+from harmonize.audit.run import CAUTION, audit
+from harmonize.study import Study, load_study
+
+HARMONIZE = Path(sys.executable).parent / "harmonize"
+
+# CONTRACT.md section 6: the keys every object must carry (extra keys are allowed)
+TOP_KEYS = {"study", "generated_at", "extent", "coverage", "findings"}
+EXTENT_KEYS = {"source_kind": str, "season": str, "depth_layer": str, "events": int, "years": int}
+COVERAGE_KEYS = {"source_kind": str, "season_year": int, "season": str, "events": int, "cells_sampled": int,
+                 "coverage_fraction": float}
+FINDING_KEYS = ("code", "severity", "source_kind", "season_year", "season", "depth_layer", "stratum",
+                "variable", "message")
+
+
+@pytest.fixture(scope="module")
+def study(tmp_path_factory: pytest.TempPathFactory) -> Study:
+    s = load_study(copy_fixture_study(tmp_path_factory.mktemp("audit_out") / "study"))
+    build_known_gaps(s)
+    return s
+
+
+def _cli(study: Study, *args: str) -> subprocess.CompletedProcess[str]:
+    return subprocess.run([str(HARMONIZE), "--study", str(study.root), "audit", *args],
+                          capture_output=True, text=True, timeout=300,
+                          env={**os.environ, "COLUMNS": "160"})
+
+
+def test_json_has_the_contract_shape(study: Study, tmp_path: Path) -> None:
+    doc = json.loads(audit(study).write_json(tmp_path / "audit.json").read_text(encoding="utf-8"))
+    assert TOP_KEYS <= set(doc)
+    assert doc["study"] == "Keldmar Sea test study"
+    assert re.match(r"\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d\+00:00$", doc["generated_at"])
+    for item, keys in [(x, EXTENT_KEYS) for x in doc["extent"]] + [(x, COVERAGE_KEYS) for x in doc["coverage"]]:
+        for key, typ in keys.items():
+            assert isinstance(item[key], typ), (key, item)
+    for f in doc["findings"]:
+        assert list(f)[:len(FINDING_KEYS)] == list(FINDING_KEYS)
+        assert f["code"] in CODES and f["severity"] in ("error", "warning", "info")
+        assert isinstance(f["message"], str) and f["message"].endswith(".")
+        assert f["season_year"] is None or isinstance(f["season_year"], int)
+    trawl_winter = [c for c in doc["coverage"] if (c["source_kind"], c["season"]) == ("trawl", "winter")]
+    # the silent winter is an explicit zero row, not a missing one
+    assert [(c["season_year"], c["events"]) for c in trawl_winter] == [
+        (2018, 20), (2019, 20), (2020, 20), (2021, 0), (2022, 20)]
+    assert doc["caution"] == CAUTION
+
+
+def test_cli_fail_on_exit_codes(study: Study, tmp_path: Path) -> None:
+    out_json, out_html = tmp_path / "a.json", tmp_path / "a.html"
+    run = _cli(study, "--fail-on", "no_samples", "--json", str(out_json), "--html", str(out_html))
+    assert run.returncode == 1, run.stderr
+    assert "failing: findings with code(s) no_samples exist" in run.stdout
+    assert out_json.is_file() and out_html.is_file()
+    # the terminal summary lists errors before warnings
+    text = run.stdout
+    assert "2 errors, 9 warnings" in text
+    assert text.index("error") < text.index("warning")
+    # codes the store does not have: exit 0
+    ok = _cli(study, "--fail-on", "thin_samples")
+    assert ok.returncode == 0, ok.stdout + ok.stderr
+    assert _cli(study, "--fail-on", "thin_samples,missing_year").returncode == 1
+    assert _cli(study).returncode == 0
+    bad = _cli(study, "--fail-on", "gaps")
+    assert bad.returncode == 2
+    assert "unknown finding code(s) gaps; valid codes are no_samples" in bad.stderr
+
+
+def test_cli_without_a_store_is_a_usage_error(tmp_path: Path) -> None:
+    empty = load_study(copy_fixture_study(tmp_path / "empty"))
+    run = _cli(empty)
+    assert run.returncode == 2
+    assert "no store" in run.stderr and "harmonize ingest" in run.stderr
+
+
+def test_html_is_self_contained(study: Study, tmp_path: Path) -> None:
+    html = audit(study).write_html(tmp_path / "r.html").read_text(encoding="utf-8")
+    assert "<script" not in html.lower() and "<link" not in html.lower()
+    # the only URL is the SVG namespace, which is a name, not a request
+    assert set(re.findall(r"https?://[^\s\"'<>)]+", html)) == {"http://www.w3.org/2000/svg"}
+    assert not re.search(r"\b(src|href)\s*=\s*[\"'](?!#)", html)
+    assert CAUTION in html
+    # findings table sorted by severity
+    badges = re.findall(r'<span class="badge (error|warning|info)">', html)
+    assert badges == sorted(badges, key=("error", "warning", "info").index) and badges[0] == "error"
+
+
+@pytest.fixture(scope="module")
+def chromium() -> str:
+    return find_chromium()
+
+
+def test_report_renders_in_a_headless_browser(study: Study, chromium: str, tmp_path: Path) -> None:
+    page = audit(study).write_html(tmp_path / "audit.html")
+    shot = tmp_path / "audit.png"
+    loaded = load_page(chromium, page, shot)
+    assert loaded.console_errors == []
+    assert loaded.requests == []
+    assert loaded.title == "Coverage audit: Keldmar Sea test study"
+    assert shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
+    assert loaded.width <= 1200 and loaded.height > 2000  # no horizontal overflow; every section laid out
+    if os.environ.get("HARMONIZE_SCREENSHOT_DIR"):
+        shutil.copy(shot, Path(os.environ["HARMONIZE_SCREENSHOT_DIR"]) / shot.name)
+
+
+def test_the_browser_check_sees_requests_and_console_errors(chromium: str, tmp_path: Path) -> None:
+    # control: the same check on a page that does make a request and log an error
+    page = tmp_path / "bad.html"
+    page.write_text('<!DOCTYPE html><html><head><title>bad</title></head><body>'
+                    '<img src="http://127.0.0.1:9/missing.png"><script>console.error("boom")</script>'
+                    "</body></html>", encoding="utf-8")
+    loaded = load_page(chromium, page, tmp_path / "bad.png")
+    assert "http://127.0.0.1:9/missing.png" in loaded.requests
+    assert any("boom" in e for e in loaded.console_errors)

@@ -22,18 +22,25 @@ def demo(
     with console.status("building the demo") as status:
         run = build_demo(folder, seed, progress=lambda msg: status.update(msg))
     console.print(f"Keldmar Sea demo written to {run.folder}")
-    total_q = 0
+    rows_q = masked = 0
     for item, res in run.ingests:
-        total_q += res.rows_quarantined
-        reasons = ", ".join(f"{k} {v}" for k, v in res.reasons().items())
+        bulk = int(res.masked["n_values"].sum()) if len(res.masked) else 0
+        masked += bulk
+        rows_q += res.rows_quarantined - bulk
+        reasons = ", ".join(f"{k} {fmt_int(v)}" for k, v in res.reasons().items())
+        unit = "values" if bulk else "rows"
         console.print(
-            f"  {item.description}: {fmt_int(res.rows_read)} rows read, {fmt_int(res.rows_accepted)} accepted, "
-            f"{fmt_int(res.rows_quarantined)} quarantined" + (f" ({reasons})" if reasons else ""),
+            f"  {item.description}: {fmt_int(res.rows_read)} {unit} read, {fmt_int(res.rows_accepted)} used, "
+            f"{fmt_int(res.rows_quarantined)} {'masked or ' if bulk else ''}quarantined" + (f" ({reasons})" if reasons else ""),
             markup=False,
         )
-    console.print(f"rows in quarantine: {fmt_int(total_q)}; see 'harmonize --study {folder} quarantine'")
+    console.print(f"rows in quarantine, each with a reason: {fmt_int(rows_q)} "
+                  f"(see 'harmonize --study {folder} quarantine')")
+    if masked:
+        console.print(f"grid values and pings rejected in bulk and counted by reason "
+                      f"(clouds, land, outside the sea, duplicates): {fmt_int(masked)}")
     for line in run.findings:
-        console.print(f"  {line}", markup=False)
+        console.print(f"  {line}" if line.startswith("[") else line, markup=False)
     for name, path in run.outputs.items():
         console.print(f"{name}: {path}")
     if run.skipped:

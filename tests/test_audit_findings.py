@@ -154,3 +154,24 @@ def test_a_source_silent_in_the_audited_year(study: Study) -> None:
     annual = [(f.code, f.details.get("source_id")) for f in audit(study, year=2021).findings if f.code == "missing_year"]
     assert annual == [("missing_year", "old_net")]
     assert "missing_year" not in audit(study).codes()
+
+
+def test_a_protocol_keeps_its_series_across_sources(study) -> None:  # type: ignore[no-untyped-def]
+    # One survey protocol whose 2020 files came through another profile (another source id):
+    # the survey's time series has no gap, so no missing_year (common practice: a survey
+    # series is defined by its protocol, not by who delivered a year's files).
+    import pandas as pd
+    from factories import store_frames
+
+    def hauls(years):  # type: ignore[no-untyped-def]
+        ev = pd.DataFrame({"event_id": [f"h{y}" for y in years], "event_start": [f"{y}-07-01" for y in years],
+                           "lat": 43.2, "lon": -153.0})
+        va = pd.DataFrame({"event_id": ev["event_id"], "variable": "Ostravix keldensis", "value": 1.0})
+        return ev, va
+
+    store_frames(study, *hauls([2018, 2019, 2021]), source_id="survey_main", kind="trawl", protocol="keldmar_bottom_trawl")
+    store_frames(study, *hauls([2020]), source_id="survey_2020_fix", kind="trawl", protocol="keldmar_bottom_trawl")
+    store_frames(study, *hauls([2018, 2020]), source_id="no_protocol_source", kind="trawl")
+    missing = [(f.season_year, f.details) for f in audit(study).findings if f.code == "missing_year"]
+    assert missing == [(2019, {"source_id": "no_protocol_source", "source_ids": ["no_protocol_source"],
+                               "years_with_records": [2018, 2020]})]

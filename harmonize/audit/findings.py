@@ -330,10 +330,13 @@ def coverage_drop(m: Metrics, study: Study, year: int | None) -> list[Finding]:
 
 
 def missing_year(m: Metrics, study: Study, year: int | None) -> list[Finding]:
-    """Sources silent for a season year inside their span (or in the audited year)."""
+    """Series (protocols, or sources without one) silent for a season year inside their span."""
     out: list[Finding] = []
     sy = m.source_years
-    for (source_id, kind), g in sy.groupby(["source_id", "source_kind"], sort=True):
+    for (series, is_protocol, kind), g in sy.groupby(["series", "is_protocol", "source_kind"], sort=True):
+        sources = sorted({s for ids in g["source_ids"] for s in ids})
+        who = (f"Protocol {series} ({kind}; sources {', '.join(sources)})" if is_protocol
+               else f"Source {series} ({kind})")
         years = {int(y) for y in g["season_year"]}
         first, last = min(years), max(years)
         gaps = [y for y in range(first, last + 1) if y not in years]
@@ -344,11 +347,12 @@ def missing_year(m: Metrics, study: Study, year: int | None) -> list[Finding]:
         for y in gaps:
             out.append(Finding(
                 "missing_year", "error",
-                f"Source {source_id} ({kind}) has no records in season year {y}, although it has "
+                f"{who} has no records in season year {y}, although it has "
                 f"records in {_years_text(years)}; ingest that year's files, or record why the "
                 "survey did not run, before fitting a model across those years.",
                 source_kind=str(kind), season_year=y,
-                details={"source_id": source_id, "years_with_records": sorted(years)},
+                details={("protocol" if is_protocol else "source_id"): series, "source_ids": sources,
+                         "years_with_records": sorted(years)},
             ))
     return out
 

@@ -88,6 +88,7 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
         WITH ev AS (
             SELECT hash(source_id, event_id) AS event_key,
                    any_value(source_id) AS source_id, any_value(source_kind) AS source_kind,
+                   any_value(protocol) AS protocol,
                    any_value(provider_type) AS provider_type, any_value(season_year) AS season_year,
                    any_value(season) AS season, any_value(depth_layer) AS depth_layer,
                    any_value(cell_id) AS cell_id, any_value(stratum) AS stratum,
@@ -104,7 +105,7 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
                    d.cell_id IS NOT NULL AS in_domain
             FROM ev LEFT JOIN audit_domain_cells d ON d.cell_id = ev.cell_id
         )
-        SELECT source_id, source_kind, provider_type, season_year, season, depth_layer, cell_id,
+        SELECT source_id, source_kind, protocol, provider_type, season_year, season, depth_layer, cell_id,
                stratum, effort_bearing, biological, confidential, cell_public, in_domain,
                count(*) AS n
         FROM tagged GROUP BY ALL
@@ -195,10 +196,17 @@ def stratum_events(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
 
 
 def source_years(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
-    """Events (of any kind, presence-only included) per source and season year."""
+    """Events (of any kind, presence-only included) per series and season year.
+
+    A series is a protocol when the sources name one (a survey keeps its time series when a
+    year's files come from another vessel or through another profile), else the source.
+    """
     return con.execute(
-        """SELECT source_id, any_value(source_kind) AS source_kind, season_year, sum(n)::BIGINT AS events
-           FROM audit_cells WHERE season_year IS NOT NULL GROUP BY source_id, season_year ORDER BY ALL"""
+        """SELECT coalesce(protocol, source_id) AS series, protocol IS NOT NULL AS is_protocol,
+                  any_value(source_kind) AS source_kind, season_year, sum(n)::BIGINT AS events,
+                  list_sort(list_distinct(list(source_id))) AS source_ids
+           FROM audit_cells WHERE season_year IS NOT NULL
+           GROUP BY coalesce(protocol, source_id), protocol IS NOT NULL, season_year ORDER BY ALL"""
     ).df()
 
 

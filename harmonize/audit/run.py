@@ -211,9 +211,9 @@ def parse_codes(text: str | None) -> list[str]:
     return codes
 
 
-def demo_outputs(study: Study, out_dir: Path) -> dict[str, Path]:
-    """Audit the demo study and write its JSON and HTML report into ``out_dir``."""
-    result = audit(study)
+def demo_outputs(study: Study, out_dir: Path, result: AuditResult | None = None) -> dict[str, Path]:
+    """Audit the demo study (unless ``result`` is given) and write its JSON and HTML report."""
+    result = result if result is not None else audit(study)
     out_dir = Path(out_dir)
     return {
         "audit JSON": result.write_json(out_dir / "audit.json"),

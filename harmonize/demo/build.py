@@ -77,7 +77,17 @@ def _run_optional(study, result: DemoRun, say: Callable[[str], None]) -> None:  
         audit = None
     if audit is not None:
         say("auditing coverage")
-        result.outputs.update(audit.demo_outputs(study, result.folder / "outputs"))
+        audited = audit.audit(study)
+        result.outputs.update(audit.demo_outputs(study, result.folder / "outputs", audited))
+        counts = audited.counts()
+        result.findings.append(
+            "audit: " + ", ".join(f"{n} {sev}{'s' if n != 1 else ''}" for sev, n in counts.items() if n)
+        )
+        order = {"error": 0, "warning": 1, "info": 2}
+        top = sorted(audited.findings, key=lambda f: order.get(f.severity, 3))[:3]
+        result.findings += [f"[{f.severity}] {f.code}: {f.message}" for f in top]
+        if len(audited.findings) > len(top):
+            result.findings.append(f"... and {len(audited.findings) - len(top)} more findings in the audit report")
     try:
         export = importlib.import_module("harmonize.export.run")
     except ModuleNotFoundError:

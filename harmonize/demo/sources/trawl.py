@@ -151,7 +151,7 @@ def _survey(rng: np.random.Generator, year: int, lon0: np.ndarray, lat0: np.ndar
     lat_end = lat + dist_deg * np.cos(heading)
     lon_end = lon + dist_deg * np.sin(heading) / np.cos(np.radians(lat))
     depth = bottom_depth_m(lon, lat)
-    temp = bottom_temperature_c(lon, lat, start.dayofyear.to_numpy(), np.full(n, year)) + rng.normal(0, 0.15, n)
+    temp = bottom_temperature_c(lon, lat, start.day_of_year.to_numpy(), np.full(n, year)) + rng.normal(0, 0.15, n)
     ids = [f"{year}-{i + 1:03d}" for i in range(n)]
     hauls = pd.DataFrame({
         "haul_id": ids, "start_time_utc": start.strftime("%Y-%m-%dT%H:%M"),

@@ -20,6 +20,8 @@ def init(folder: Path = typer.Argument(..., help="The new study folder.")) -> No
     for path in written:
         console.print(f"wrote {path}")
     console.print(
-        "next: draw your domain in domain.geojson, list taxa in taxa.csv, adapt the profile, "
-        f"then 'harmonize --study {folder} check PROFILE --events HAULS --records CATCH'"
+        "next: draw your study area in domain.geojson, list your taxa in taxa.csv and the taxa each "
+        "protocol always records in targets.csv, copy the example profile of your source kind "
+        f"(profiles/example_<kind>.toml), then run 'harmonize --study {folder} check PROFILE FILES' "
+        "until it is clean, and 'ingest'"
     )

@@ -93,8 +93,102 @@ count = "number"
 # net_width_m = 17.0
 '''
 
+_PROVIDER = {"trawl": "agency", "plankton": "agency", "transect": "agency", "opportunistic": "volunteer",
+             "gridded": "remote_sensing", "effort": "industry"}
+_PROTOCOL = {"trawl": "standard_bottom_trawl", "plankton": "standard_plankton_net",
+             "transect": "standard_seabird_strip", "opportunistic": "complete_checklist"}
+# Kind-specific sections with their defaults (see docs/sources/<kind>.md).
+_EXTRA = {
+    "plankton": """\
+[tow]
+# max_speed_m_s = 3.0         # faster distance through the water -> implausible_speed
+[clogging]
+# status_values = ["clogged"] # net_status notes that mean a clogged net
+# min_efficiency = 0.7        # net flowmeter distance / reference flowmeter distance
+""",
+    "transect": """\
+[strip]
+# flying = "snapshot"         # or "continuous": flying birds then get no density
+# max_speed_kn = 30           # faster segments -> implausible_speed
+""",
+    "opportunistic": """\
+[duplicates]                  # a record this close to another source's record is a twin
+# distance_km = 2.0
+# minutes = 60
+""",
+    "gridded": """\
+[variables]                   # file variable = CF standard name
+# analysed_sst = "sea_surface_temperature"
+# chlor_a = "mass_concentration_of_chlorophyll_a_in_sea_water"
+
+[aggregate]
+# period = "month"            # month | season
+# layer = "surface"           # surface | near_bottom | by_layer
+""",
+    "effort": """\
+[fishing]
+# form = "pings"              # pings | logbook (guessed from the columns when absent)
+# speed_min_kn = 2.0          # fishing speed window for bottom trawl (common practice)
+# speed_max_kn = 5.0
+# max_gap_h = 2.0             # a ping gets half of each neighbouring interval, capped
+# pelagic_layer = "epipelagic"
+""",
+}
+
+
+def profile_template(kind: str) -> str:
+    """A commented profile for ``kind``, listing every adapter field from its Table Schema."""
+    from harmonize.adapters.registry import get_adapter
+    from harmonize.contract import fields
+
+    adapter = get_adapter(kind)
+    article = "an" if kind[0] in "aeiou" else "a"
+    lines = [
+        f"# Example profile for {article} {kind} source: {adapter.description}",
+        "# Map your column names onto the adapter's fields; a field you do not map is looked for",
+        "# under its own name. Uncomment what you need. Details: docs/sources/" + kind + ".md",
+        "",
+        "[source]",
+        f'id = "my_{kind}_source"       # unique in the study',
+        f'kind = "{kind}"',
+        f'provider_type = "{_PROVIDER[kind]}"   # agency | volunteer | industry | model | remote_sensing',
+    ]
+    if kind in _PROTOCOL:
+        lines.append(f'protocol = "{_PROTOCOL[kind]}"   # key into targets.csv (zero-filling)')
+    lines += ['timezone = "UTC"              # zone of times written without an offset', ""]
+    units = []
+    # An adapter with several file forms (effort: pings or logbook) lists each form's fields.
+    forms = getattr(adapter, "forms", None)
+    tables = [("rows", schema, form) for form, schema in forms.items()] if forms else [
+        (role, schema, None) for role, schema in adapter.tables.items()]
+    seen: set[str] = set()
+    for i, (role, schema, form) in enumerate(tables):
+        header = "[columns]" if role == "rows" else f"[columns.{role}]"
+        if i == 0 or not form:
+            lines.append(header + "               # adapter field = your column name")
+        if form:
+            lines.append(f"# --- {form} files ---")
+        for spec in fields(schema):
+            if spec.name in seen and form:
+                continue
+            seen.add(spec.name)
+            need = "required" if spec.required else "optional"
+            unit = f", {spec.unit}" if spec.unit and spec.unit not in ("1",) else ""
+            lines.append(f'# {spec.name} = "..."'.ljust(34) + f"# {need}{unit}: {spec.description}")
+            if spec.dimension:
+                article = "an" if spec.dimension[0] in "aeiou" else "a"
+                units.append(f'# {spec.name} = "{spec.unit}"'.ljust(34) + f"# {article} {spec.dimension} unit")
+        lines.append("")
+    if units:
+        lines += ["[units]                       # your units, when not the default shown"] + units + [""]
+    lines += ["[constants]                   # a value for every row when the files lack it", "# field = value", ""]
+    if kind in _EXTRA:
+        lines.append(_EXTRA[kind])
+    return "\n".join(lines).rstrip() + "\n"
+
+
 TAXA_CSV = "taxon,group,aliases,sensitive\n"
-TARGETS_CSV = "protocol,taxon,first_year,last_year\n"
+TARGETS_CSV = "protocol,taxon,first_year,last_year,life_stage\n"
 
 
 def write_starter(folder: str | Path, name: str | None = None) -> list[Path]:
@@ -113,6 +207,8 @@ def write_starter(folder: str | Path, name: str | None = None) -> list[Path]:
         folder / "targets.csv": TARGETS_CSV,
         folder / "domain.geojson": json.dumps(_placeholder_domain(), indent=1),
     }
+    for kind in ("plankton", "transect", "opportunistic", "gridded", "effort"):
+        written[folder / "profiles" / f"example_{kind}.toml"] = profile_template(kind)
     for path, text in written.items():
         if not path.exists():
             path.write_text(text, encoding="utf-8")

@@ -50,6 +50,14 @@ def status(
         if len(alone):
             console.print(f"volunteer records only: {fmt_int(len(alone))} stratum x season cells have no other "
                           "biological records (see 'harmonize twins')", markup=False)
+    masked = store.masked_summary()
+    if len(masked):
+        t3 = Table(title="values rejected in bulk and counted (grid values, pings), by reason", title_justify="left")
+        for col in ("source", "file", "reason", "values"):
+            t3.add_column(col, justify="right" if col == "values" else "left")
+        for r in masked.itertuples():
+            t3.add_row(r.source_id, r.source_file, r.reason_code, fmt_int(int(r.n_values)))
+        console.print(t3)
     if check:
         problems = store.check()
         if problems:

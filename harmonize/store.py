@@ -381,6 +381,16 @@ class Store:
                     FROM observations GROUP BY ALL ORDER BY ALL"""
             ).df()
 
+    def masked_summary(self) -> pd.DataFrame:
+        """Values rejected in bulk (grid values, pings) per source, file and reason."""
+        with self.connect() as con:
+            return con.execute(
+                """SELECT i.source_id, m.source_file, m.reason_code, sum(m.n_values)::BIGINT AS n_values,
+                          any_value(m.message) AS message
+                   FROM quarantine_summary m JOIN ingests i USING (ingest_id)
+                   WHERE i.status = 'complete' GROUP BY ALL ORDER BY ALL"""
+            ).df()
+
     def quarantine(self, ingest_id: str | None = None, reason: str | None = None,
                    source_id: str | None = None, limit: int | None = None) -> pd.DataFrame:
         """Rejected rows of complete ingests (newest ingest first), optionally filtered."""

@@ -27,11 +27,12 @@ from harmonize.contract import observation_sql_columns
 from harmonize.demo.sea import write_study
 
 ROWS_PER_EVENT = 10
+_BLOCK_ROWS = 10_000_000
 KINDS = ("trawl", "plankton", "transect", "effort")
 TAXA = ("Ostravix keldensis", "Lumbrena pallida", "Syrranthus minor", "Pelagon argentea", "Calverion rubrum")
 
 
-def _select_sql(kind: str, n_rows: int, cells: list[str], ingest_id: str) -> str:
+def _select_sql(kind: str, n_rows: int, cells: list[str], ingest_id: str, first_row: int = 0) -> str:
     """SELECT of ``n_rows`` synthetic observation rows of one source kind (contract columns)."""
     k = KINDS.index(kind)
     cells_sql = "[" + ", ".join(f"'{c}'" for c in cells) + "]"
@@ -102,7 +103,7 @@ def _select_sql(kind: str, n_rows: int, cells: list[str], ingest_id: str) -> str
             FROM (SELECT r, r // {ROWS_PER_EVENT} AS e, r % {ROWS_PER_EVENT} AS j,
                          CAST(hash(r // {ROWS_PER_EVENT}, {k}) >> 2 AS BIGINT) AS h1,
                          CAST(hash(r, {k} + 7) >> 2 AS BIGINT) AS h2
-                  FROM range({n_rows}) t(r)))"""
+                  FROM range({first_row}, {first_row + n_rows}) t(r)))"""
 
 
 def make_store(folder: Path, n_rows: int) -> dict[str, Any]:
@@ -123,9 +124,13 @@ def make_store(folder: Path, n_rows: int) -> dict[str, Any]:
         con = duckdb.connect()
         try:
             con.execute("SET preserve_insertion_order = false")
-            con.execute(f"""COPY ({_select_sql(kind, n, cells, ingest_id)}) TO '{staged / "parts"}'
-                            (FORMAT parquet, PARTITION_BY (source_kind, season_year), COMPRESSION zstd,
-                             ROW_GROUP_SIZE 500000, FILENAME_PATTERN 'part-{{uuid}}')""")
+            con.execute("SET memory_limit = '3GB'")
+            # blocks of rows: a partitioned COPY holds every open partition's buffers
+            for r0 in range(0, n, _BLOCK_ROWS):
+                block = _select_sql(kind, min(_BLOCK_ROWS, n - r0), cells, ingest_id, r0)
+                con.execute(f"""COPY ({block}) TO '{staged / "parts"}'
+                                (FORMAT parquet, PARTITION_BY (source_kind, season_year), COMPRESSION zstd,
+                                 ROW_GROUP_SIZE 500000, FILENAME_PATTERN 'part-{{uuid}}', OVERWRITE_OR_IGNORE)""")
         finally:
             con.close()
         now = pd.Timestamp.now("UTC").tz_localize(None)

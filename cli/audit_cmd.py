@@ -26,12 +26,16 @@ def audit_cmd(
                                        help="Exit 1 when a finding with one of these codes exists."),
     year: int | None = typer.Option(None, "--year", help="Audit this season year against the earlier ones."),
     limit: int = typer.Option(40, "--limit", help="How many findings to print."),
+    engine: str | None = typer.Option(None, "--engine", help="duckdb (default) or dask: where the heavy "
+                                      "aggregations run; see docs/performance.md."),
+    scheduler: str | None = typer.Option(None, "--scheduler", metavar="ADDRESS",
+                                         help="Dask scheduler address (tcp://host:8786) for --engine dask."),
 ) -> None:
     """Coverage audit: where the data are thin or missing, before any model is fitted."""
     codes = parse_codes(fail_on)
     study = study_from(ctx)
     with console.status("auditing the store"):
-        result = audit(study, year=year)
+        result = audit(study, year=year, engine=engine, scheduler=scheduler)
     _print(result, limit)
     if json_out is not None:
         console.print(f"audit JSON written to {result.write_json(json_out)}", markup=False)

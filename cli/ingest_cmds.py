@@ -50,6 +50,10 @@ def ingest(
     replace: bool = typer.Option(False, "--replace", help="Supersede an earlier ingest of the same file."),
     show: int = typer.Option(FIRST_PROBLEMS, "--show", help="How many problems to list."),
     strict: bool = typer.Option(False, "--strict", help="Exit 1 when rows went to quarantine."),
+    engine: str | None = typer.Option(None, "--engine", help="duckdb (default) or dask: where ping tracks "
+                                      "become fishing hours; see docs/performance.md."),
+    scheduler: str | None = typer.Option(None, "--scheduler", metavar="ADDRESS",
+                                         help="Dask scheduler address (tcp://host:8786) for --engine dask."),
 ) -> None:
     """Validate, harmonise and write files to the store; print the row accounting.
 
@@ -59,7 +63,8 @@ def ingest(
     adapter, prof = prepare(study, profile)
     any_bad = False
     for inputs in assign_inputs(adapter, prof, files or [], events, records):
-        result = _with_progress(lambda cb, i=inputs: run(study, profile, i, write=True, replace=replace, progress=cb))
+        result = _with_progress(lambda cb, i=inputs: run(study, profile, i, write=True, replace=replace, progress=cb,
+                                                         engine=engine, scheduler=scheduler))
         _print_result(result, show)
         any_bad |= result.rows_quarantined > 0
     raise typer.Exit(1 if (strict and any_bad) else 0)

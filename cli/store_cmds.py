@@ -28,6 +28,12 @@ def status(
     if not store.exists():
         console.print(f"the store of '{study.name}' is empty: nothing ingested yet ('harmonize ingest PROFILE FILES')")
         return
+    # the integrity check runs first: a missing or damaged file would stop the listing below
+    problems = store.check() if check else []
+    for p in problems:
+        console.print(f"integrity problem: {p}", markup=False)
+    if problems:
+        raise typer.Exit(1)
     ingests = store.ingests(include_superseded=all_ingests)
     table = Table(title=f"ingests in {study.name}", title_justify="left")
     for col in ("ingest", "source", "kind", "file", "status", "read", "accepted", "quarantined", "rows written"):
@@ -59,11 +65,6 @@ def status(
             t3.add_row(r.source_id, r.source_file, r.reason_code, fmt_int(int(r.n_values)))
         console.print(t3)
     if check:
-        problems = store.check()
-        if problems:
-            for p in problems:
-                console.print(f"integrity problem: {p}", markup=False)
-            raise typer.Exit(1)
         console.print("integrity check passed: manifest, parquet files and row accounting agree")
 
 

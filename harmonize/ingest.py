@@ -305,6 +305,19 @@ def _list_array(col: pd.Series, typ: pa.DataType) -> pa.Array:
     return arr
 
 
+def _in_store_order(values: pd.DataFrame, events: pd.DataFrame) -> pd.DataFrame:
+    """Values ordered as the store's files are (season_year, event_start, event_id; nulls last).
+
+    :func:`assemble` keeps this order, so :func:`write_partitions` usually finds the rows
+    sorted already and skips reordering them (it checks, and sorts when not).
+    """
+    if not events["event_id"].is_unique:
+        return values.copy()
+    ordered = events.sort_values(["season_year", "event_start", "event_id"], na_position="last", kind="stable")
+    position = pd.Index(ordered["event_id"]).get_indexer(values["event_id"])
+    return values.iloc[np.argsort(position, kind="stable")]
+
+
 def _keep(frame: pd.DataFrame, column: str, computed: pd.Series) -> pd.Series:
     if column in frame and frame[column].notna().any():
         return frame[column].where(frame[column].notna(), computed)
@@ -323,7 +336,7 @@ def assemble(out: AdapterOutput, study: Study, profile: Profile, kind: str, inge
     for col in _VALUE_ARROW.names:
         if col not in va:
             va[col] = None
-    va = va[_VALUE_ARROW.names].copy()
+    va = _in_store_order(va[_VALUE_ARROW.names], ev)
     for col in ("life_stage", "variable", "event_id", "behavior"):
         va[col] = va[col].astype(object).where(va[col].notna(), None)
     for col in ("n_values", "n_vessels"):
@@ -353,9 +366,20 @@ def assemble(out: AdapterOutput, study: Study, profile: Profile, kind: str, inge
             if expr is None:
                 expr = f"v.{col}" if col in _VALUE_ARROW.names else f"e.{col}"
             select.append(f"CAST({expr} AS {typ}) AS \"{col}\"")
-        sql = f"SELECT {', '.join(select)} FROM va v JOIN ev e USING (event_id)"
-        table = con.sql(sql, params=params).to_arrow_table()
-        missing = con.execute("SELECT count(*) FROM va v ANTI JOIN ev e USING (event_id)").fetchall()[0][0]
+        if ev["event_id"].is_unique:
+            # each value's event row, taken by position: the rows stay in the values' order
+            # (the store's order, see _in_store_order), which a hash join would not keep
+            position = pd.Index(ev["event_id"]).get_indexer(va["event_id"])
+            missing = int((position < 0).sum())
+            if missing:
+                raise HarmonizeError(f"internal error: {missing} values have no event; please report this")
+            con.register("ev_rows", ev_tab.take(pa.array(position, pa.int64())))
+            sql = f"SELECT {', '.join(select)} FROM va v POSITIONAL JOIN ev_rows e"
+            table = con.sql(sql, params=params).to_arrow_table()
+        else:
+            sql = f"SELECT {', '.join(select)} FROM va v JOIN ev e USING (event_id)"
+            table = con.sql(sql, params=params).to_arrow_table()
+            missing = con.execute("SELECT count(*) FROM va v ANTI JOIN ev e USING (event_id)").fetchall()[0][0]
     finally:
         con.close()
     if missing:
@@ -404,10 +428,11 @@ def write_partitions(table: pa.Table, folder: Path) -> None:
         if not all(k is not None and _PLAIN_PARTITION.fullmatch(k) for k, _, _ in parts):
             _write_partitions_sorted_in_copy(con, table, folder)
             return
-        order = con.sql("SELECT i FROM sort_keys ORDER BY k, y, t, e").to_arrow_table()["i"]
+        order = con.sql("SELECT i FROM sort_keys ORDER BY k, y, t, e, i").to_arrow_table()["i"]
         con.unregister("sort_keys")
         del keys
-        ordered = table.take(order)
+        in_order = np.array_equal(order.to_numpy(), np.arange(table.num_rows))
+        ordered = table if in_order else table.take(order)
         offset = 0
         for kind, year, n in parts:
             target = folder / f"source_kind={kind}" / f"season_year={'__HIVE_DEFAULT_PARTITION__' if year is None else year}"

@@ -145,10 +145,12 @@ class Store:
         return self.db_path.is_file()
 
     @contextmanager
-    def connect(self, read_only: bool = True) -> Iterator[duckdb.DuckDBPyConnection]:
+    def connect(self, read_only: bool = True, view: bool = True) -> Iterator[duckdb.DuckDBPyConnection]:
         """A connection; waits while another process holds the database.
 
-        A read-only connection to a store that does not exist yet raises StoreError.
+        A read-only connection to a store that does not exist yet raises StoreError. With
+        ``view=False`` a read-only connection does not define the observations view (which
+        reads every live parquet file): the integrity check uses it to find bad files.
         """
         if read_only and not self.exists():
             raise StoreError(f"no store at {self.directory}; ingest a file first ('harmonize ingest')")
@@ -156,7 +158,8 @@ class Store:
         con = self._open(read_only)
         try:
             if read_only:
-                self._define_view(con, temporary=True)
+                if view:
+                    self._define_view(con, temporary=True)
             else:
                 con.execute(_SCHEMA_SQL)
                 twins.ensure_tables(con)
@@ -220,7 +223,13 @@ class Store:
                 "hive_types = {'source_kind': VARCHAR, 'season_year': INTEGER}, union_by_name = true)"
             )
             # Files written before a column joined the contract lack it: it reads as null.
-            present = {r[0] for r in con.execute(f"DESCRIBE SELECT * FROM {source}").fetchall()}
+            try:
+                present = {r[0] for r in con.execute(f"DESCRIBE SELECT * FROM {source}").fetchall()}
+            except duckdb.Error as exc:
+                raise StoreError(
+                    f"the store's parquet files cannot be read ({str(exc).splitlines()[0]}); "
+                    "run 'harmonize status --check' to see which files are missing or damaged"
+                ) from None
         else:
             source = "(SELECT 1 LIMIT 0)"
         select = ", ".join(
@@ -417,7 +426,7 @@ class Store:
         found among the accepted rows or in the quarantine.
         """
         problems: list[str] = []
-        with self.connect() as con:
+        with self.connect(view=False) as con:
             files = con.execute(
                 """SELECT f.ingest_id, f.path, f.n_rows FROM observation_files f
                    JOIN ingests i USING (ingest_id) WHERE i.status = 'complete'"""
@@ -430,12 +439,13 @@ class Store:
                 try:
                     actual = con.execute("SELECT count(*) FROM read_parquet(?)", [str(path)]).fetchall()[0][0]
                 except duckdb.Error as exc:
-                    problems.append(f"ingest {ingest_id}: file {rel} is unreadable ({exc})")
+                    problems.append(f"ingest {ingest_id}: file {rel} is unreadable ({str(exc).splitlines()[0]})")
                     continue
                 if actual != n_rows:
                     problems.append(f"ingest {ingest_id}: file {rel} holds {actual} rows, manifest says {n_rows}")
             if problems:
                 return problems
+            self._define_view(con, temporary=True)
             bad = con.execute(
                 """SELECT ingest_id, rows_read, rows_accepted, rows_quarantined FROM ingests
                    WHERE status = 'complete' AND rows_read <> rows_accepted + rows_quarantined"""

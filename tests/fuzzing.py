@@ -24,6 +24,23 @@ from harmonize.errors import HarmonizeError
 from harmonize.ingest import IngestResult, run
 from harmonize.study import Study
 
+FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
+
+#: kind -> (profile in fixtures/keldmar/profiles, role -> valid-but-messy fixture file).
+#: One-table kinds use the role "rows".
+TARGETS: dict[str, tuple[str, dict[str, Path]]] = {
+    "trawl": ("trawl_agency", {"events": FIXTURES / "trawl" / "hauls_messy.csv",
+                               "records": FIXTURES / "trawl" / "catch_messy.csv"}),
+    "plankton": ("plankton_agency", {"events": FIXTURES / "plankton" / "tows_messy.csv",
+                                     "records": FIXTURES / "plankton" / "counts_messy.csv"}),
+    "transect": ("transect_agency", {"events": FIXTURES / "transect" / "segments_messy.csv",
+                                     "records": FIXTURES / "transect" / "birds_messy.csv"}),
+    "opportunistic": ("opportunistic_volunteer", {"rows": FIXTURES / "opportunistic" / "volunteer_messy.csv"}),
+    "darwin_core": ("opportunistic_dwc", {"rows": FIXTURES / "opportunistic" / "portal_occurrences.csv"}),
+    "effort": ("effort_pings", {"rows": FIXTURES / "effort" / "pings_hand.csv"}),
+    "darwin_core_archive": ("opportunistic_dwc", {"rows": FIXTURES / "fuzz" / "dwca_sound.zip"}),
+}
+
 #: Cell values that have broken CSV readers, numeric parsers or SQL before.
 NASTY_VALUES = [
     "", " ", "NaN", "nan", "inf", "-inf", "Infinity", "1e308", "1e400", "-1e400", "-0", "0",
@@ -74,7 +91,7 @@ def apply_mutation(data: bytes, m: Mutation) -> bytes:
             rows = _rows(data)
         except (UnicodeDecodeError, csv.Error):
             return data  # an earlier mutation made the file unparseable: leave it so
-        if not rows:
+        if not rows or not rows[0]:
             return data
         width = len(rows[0])
         if m.name == "drop_column":
@@ -143,31 +160,41 @@ def apply_mutation(data: bytes, m: Mutation) -> bytes:
     raise ValueError(f"unknown mutation {m.name}")
 
 
-def mutations() -> st.SearchStrategy[Mutation]:
-    """One mutation, with its positions and values drawn by hypothesis."""
+def mutations(exclude: frozenset[str] = frozenset()) -> st.SearchStrategy[Mutation]:
+    """One mutation, with its positions and values drawn by hypothesis (minus ``exclude``)."""
     idx = st.integers(0, 1000)
-    return st.one_of(
-        st.builds(lambda j: Mutation("drop_column", (j,)), idx),
-        st.builds(lambda j, k: Mutation("swap_header", (j, k)), idx, idx),
-        st.builds(lambda j, k: Mutation("swap_columns", (j, k)), idx, idx),
-        st.builds(lambda i, j, v: Mutation("set_cell", (i, j, v)), idx, idx,
-                  st.one_of(st.sampled_from(NASTY_VALUES), st.text(max_size=30))),
-        st.builds(lambda i: Mutation("duplicate_header", (i,)), idx),
-        st.builds(lambda i: Mutation("duplicate_row", (i,)), idx),
-        st.builds(lambda i: Mutation("delete_row", (i,)), idx),
-        st.builds(lambda i: Mutation("blank_rows", (i,)), idx),
-        st.just(Mutation("crlf", ())),
-        st.builds(lambda i, p: Mutation("stray_delimiter", (i, p)), idx, idx),
-        st.builds(lambda i, p: Mutation("stray_quote", (i, p)), idx, idx),
-        st.builds(lambda i, p, v: Mutation("insert_bytes", (i, p, v)), idx, idx,
-                  st.sampled_from(["\x00", "\ufeff", "\r", "\r\n", '",', ',"', "\u2028", "\x1a"])),
-        st.just(Mutation("bom", ())),
-        st.builds(lambda i: Mutation("latin1_line", (i,)), idx),
-        st.builds(lambda k: Mutation("truncate", (k,)), idx),
-        st.just(Mutation("semicolons", ())),
-        st.just(Mutation("cr_only", ())),
-        st.just(Mutation("utf16", ())),
-    )
+    where = st.tuples(idx, idx)
+    cells = st.one_of(st.sampled_from(NASTY_VALUES), st.text(max_size=30))
+    if "line_breaks_in_cells" in exclude:
+        cells = cells.filter(lambda v: "\r" not in v and "\n" not in v)
+    strategies = {
+        "drop_column": st.tuples(idx),
+        "swap_header": where,
+        "swap_columns": where,
+        "set_cell": st.tuples(idx, idx, cells),
+        "duplicate_header": st.tuples(idx),
+        "duplicate_row": st.tuples(idx),
+        "delete_row": st.tuples(idx),
+        "blank_rows": st.tuples(idx),
+        "crlf": st.just(()),
+        "stray_delimiter": where,
+        "stray_quote": where,
+        "insert_bytes": st.tuples(idx, idx, st.sampled_from(
+            ["\x00", "\ufeff", "\r", "\r\n", '",', ',"', "\u2028", "\x1a"])),
+        "bom": st.just(()),
+        "latin1_line": st.tuples(idx),
+        "truncate": st.tuples(idx),
+        "semicolons": st.just(()),
+        "cr_only": st.just(()),
+        "utf16": st.just(()),
+    }
+    return st.one_of(*(st.builds(Mutation, st.just(name), args)
+                       for name, args in strategies.items() if name not in exclude))
+
+
+#: Mutations that change where lines begin and end (blank lines, bare carriage returns,
+#: quotes that join lines, line breaks written into a cell).
+LINE_STRUCTURE = frozenset({"blank_rows", "cr_only", "insert_bytes", "stray_quote", "line_breaks_in_cells"})
 
 
 def mutate_all(data: bytes, ms: list[Mutation]) -> bytes:

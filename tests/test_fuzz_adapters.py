@@ -15,7 +15,15 @@ import shutil
 from pathlib import Path
 
 import pytest
-from fuzzing import Mutation, check_outcome, mutate_all, mutations, write_inputs
+from fuzzing import (
+    LINE_STRUCTURE,
+    TARGETS,
+    Mutation,
+    check_outcome,
+    mutate_all,
+    mutations,
+    write_inputs,
+)
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
@@ -24,11 +32,23 @@ from harmonize.study import Study, load_study
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 
-#: kind -> (profile in fixtures/keldmar/profiles, role -> fixture file). One-table kinds use "rows".
-TARGETS: dict[str, tuple[str, dict[str, Path]]] = {
-    "trawl": ("trawl_agency", {"events": FIXTURES / "trawl" / "hauls_messy.csv",
-                               "records": FIXTURES / "trawl" / "catch_messy.csv"}),
-}
+#: The kinds fuzzed here (each with its profile and messy fixture files in fuzzing.TARGETS).
+FUZZED = ["trawl", "plankton", "transect", "opportunistic", "darwin_core", "effort"]
+#: Mutations left out for a kind, with the reason. The effort reader (DuckDB's CSV reader)
+#: numbers rejected lines physically but good rows by record, so blank lines and bare
+#: carriage returns shift row numbers; the corpus case bare_carriage_return_mid_line keeps
+#: that known bug in view (strict xfail) until it is fixed.
+EXCLUDED: dict[str, frozenset[str]] = {"effort": LINE_STRUCTURE}
+#: Kinds whose committed ingests are fuzzed through the store's integrity check. Transect
+#: waits for a fix: a segment whose only bird row is malformed is stored with no observation
+#: row (corpus case records_last_line_cut, strict xfail).
+COMMITTED = [k for k in FUZZED if k != "transect"]
+
+
+def _draw_mutations(data: st.DataObject, kind: str, max_size: int) -> list[Mutation]:
+    strategy = mutations(EXCLUDED.get(kind, frozenset()))
+    return data.draw(st.lists(strategy, min_size=1, max_size=max_size), label="mutations")
+
 
 _FIXTURE_SETTINGS = settings(suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])
 
@@ -46,29 +66,28 @@ def _broken_inputs(study: Study, kind: str, role: str, ms: list[Mutation]) -> di
     return write_inputs(study.root / "inputs" / kind, originals, {role: broken})
 
 
-@pytest.mark.parametrize("kind", sorted(TARGETS))
+@pytest.mark.parametrize("kind", FUZZED)
 @_FIXTURE_SETTINGS
-@given(data=st.data(), ms=st.lists(mutations(), min_size=1, max_size=4))
+@given(data=st.data())
 def test_broken_file_is_refused_in_one_line_or_every_row_is_accounted_for(
-    fuzz_study: Study, kind: str, data: st.DataObject, ms: list[Mutation]
+    fuzz_study: Study, kind: str, data: st.DataObject
 ) -> None:
     profile, originals = TARGETS[kind]
     role = data.draw(st.sampled_from(sorted(originals)), label="role")
+    ms = _draw_mutations(data, kind, 4)
     inputs = _broken_inputs(fuzz_study, kind, role, ms)
     check_outcome(fuzz_study, profile, inputs, write=False)
 
 
-@pytest.mark.parametrize("kind", sorted(TARGETS))
+@pytest.mark.parametrize("kind", COMMITTED)
 @settings(_FIXTURE_SETTINGS, max_examples=max(5, settings().max_examples // 4))
-@given(data=st.data(), ms=st.lists(mutations(), min_size=1, max_size=3))
-def test_broken_file_committed_leaves_a_sound_store(
-    fuzz_study: Study, kind: str, data: st.DataObject, ms: list[Mutation]
-) -> None:
+@given(data=st.data())
+def test_broken_file_committed_leaves_a_sound_store(fuzz_study: Study, kind: str, data: st.DataObject) -> None:
     # The same property through the store: what is committed passes the integrity check,
     # which traces every input row to the observations or the quarantine.
     profile, originals = TARGETS[kind]
     role = data.draw(st.sampled_from(sorted(originals)), label="role")
-    inputs = _broken_inputs(fuzz_study, kind, role, ms)
+    inputs = _broken_inputs(fuzz_study, kind, role, _draw_mutations(data, kind, 3))
     outcome = check_outcome(fuzz_study, profile, inputs, write=True, replace=True)
     store = Store(fuzz_study.store_dir)
     if outcome.result is not None:

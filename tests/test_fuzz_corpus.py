@@ -13,9 +13,9 @@ import tomllib
 from pathlib import Path
 
 import pytest
-from fuzzing import check_outcome, reason_counts, write_inputs
-from test_fuzz_adapters import TARGETS
+from fuzzing import TARGETS, check_outcome, reason_counts, write_inputs
 
+from harmonize.store import Store
 from harmonize.study import Study
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
@@ -31,18 +31,33 @@ def test_every_corpus_file_has_a_case() -> None:
     assert files == set(CASES)
 
 
-@pytest.mark.parametrize("name", sorted(CASES))
+#: Cases that still fail, with the reason; strict: a fix makes the test fail until removed here.
+KNOWN_BUGS = {
+    "bare_carriage_return_mid_line": "effort reader: a bare CR splits a line and two rows get one row number",
+    "records_last_line_cut": "transect: a segment whose only bird row is malformed is stored with no observation row",
+}
+
+
+@pytest.mark.parametrize("name", [
+    pytest.param(n, marks=pytest.mark.xfail(strict=True, reason=KNOWN_BUGS[n])) if n in KNOWN_BUGS else n
+    for n in sorted(CASES)
+])
 def test_corpus_case(study: Study, tmp_path: Path, name: str) -> None:
     case = CASES[name]
     profile, originals = TARGETS[case["kind"]]
     broken = next((FIXTURES / "fuzz" / case["kind"]).glob(f"{name}.*"))
     inputs = write_inputs(tmp_path / "in", originals, {case["role"]: broken.read_bytes()})
-    outcome = check_outcome(study, profile, inputs)
+    outcome = check_outcome(study, profile, inputs, write=bool(case.get("commit")))
+    if case.get("commit"):
+        assert outcome.result is not None, outcome.refused
+        assert Store(study.store_dir).check() == []
     if "refused" in case:
         assert outcome.refused is not None, f"{name} was accepted"
         assert case["refused"] in outcome.refused
         return
     assert outcome.result is not None, outcome.refused
+    if case.get("accounted"):  # the oracle of check_outcome is the whole expectation
+        return
     if case.get("same_as_base"):
         base = check_outcome(study, profile, write_inputs(tmp_path / "base", originals, {})).result
         assert base is not None
@@ -54,3 +69,5 @@ def test_corpus_case(study: Study, tmp_path: Path, name: str) -> None:
     reasons = reason_counts(outcome.result)
     for code, n in case["reasons"].items():
         assert reasons.get(code, 0) == n, (code, reasons)
+    if "written" in case:
+        assert outcome.result.records_written == case["written"]

@@ -10,7 +10,7 @@ from typing import ClassVar
 
 import pandas as pd
 
-from harmonize.adapters.reading import RawTable, Rejections
+from harmonize.adapters.reading import RawTable, Rejections, coerce_fields, read_table
 from harmonize.contract import fields
 from harmonize.profile import Profile
 from harmonize.study import Study
@@ -84,6 +84,22 @@ class Adapter(ABC):
     def table_fields(self) -> dict[str, set[str]]:
         """Field names per table role, for profile validation."""
         return {role: {f.name for f in fields(schema)} for role, schema in self.tables.items()}
+
+    def read_fields(
+        self, inputs: Mapping[str, Path], profile: Profile, rejections: Rejections
+    ) -> tuple[dict[str, RawTable], dict[str, pd.DataFrame]]:
+        """Read each of the adapter's tables as text and type its fields.
+
+        Returns the raw tables and the typed field frames by role; bad cells and malformed
+        lines go to ``rejections``.
+        """
+        raw: dict[str, RawTable] = {}
+        typed: dict[str, pd.DataFrame] = {}
+        for role, schema in self.tables.items():
+            table, malformed = read_table(inputs[role], profile, role)
+            raw[role] = table
+            typed[role] = coerce_fields(table, fields(schema), profile, rejections, schema, malformed)
+        return raw, typed
 
     @abstractmethod
     def read(

@@ -5,7 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 
-from harmonize.adapters.reading import Rejections, closest_names
+from harmonize.adapters.reading import Rejections, _short, closest_names
 from harmonize.errors import ReasonCode
 from harmonize.study import Study, normalise_name, taxon_lookup
 from harmonize.tagging import inside_domain, normalise_lon
@@ -45,7 +45,9 @@ def resolve_taxa(names: pd.Series, study: Study) -> tuple[pd.Series, np.ndarray,
     # a catch file repeats a few dozen names millions of times: normalise each distinct one
     codes, distinct_names = pd.factorize(names, use_na_sentinel=True)
     per_name = normalise_name(pd.Series(distinct_names, dtype=object)).map(lookup).astype("string")
-    canonical = pd.Series(per_name.to_numpy()[codes], index=names.index, dtype="string")
+    # every name null (e.g. all rows malformed): nothing to look up, and codes are all -1
+    mapped = per_name.to_numpy()[codes] if len(per_name) else np.full(len(codes), pd.NA, dtype=object)
+    canonical = pd.Series(mapped, index=names.index, dtype="string")
     canonical[codes < 0] = pd.NA
     unknown = (canonical.isna() & names.notna()).to_numpy()
     messages = pd.Series(pd.NA, index=names.index, dtype="string")
@@ -57,7 +59,7 @@ def resolve_taxa(names: pd.Series, study: Study) -> tuple[pd.Series, np.ndarray,
         for name in distinct:
             options = list(dict.fromkeys(lookup.get(c.casefold(), c) for c in close.get(name, [])))
             hint = f"; closest known: {', '.join(options)}" if options else "; add it (or an alias) to the taxa list"
-            per_name[name] = f"taxon '{name}' is not in the taxa list{hint}"
+            per_name[name] = f"taxon '{_short(name, 80)}' is not in the taxa list{hint}"
             first[name] = options[0] if options else None
         messages[unknown] = names[unknown].map(per_name)
         best[unknown] = names[unknown].map(first)

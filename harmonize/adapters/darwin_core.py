@@ -20,6 +20,7 @@ from __future__ import annotations
 import csv
 import io
 import zipfile
+import zlib
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
@@ -274,7 +275,7 @@ class _MemberReader:
                             self.path, f"member '{name}' unpacks to more than its declared or allowed size; "
                             "the archive is refused (possible decompression bomb)")
                     chunks.append(block)
-        except (zipfile.BadZipFile, OSError, EOFError) as exc:
+        except (zipfile.BadZipFile, OSError, EOFError, zlib.error) as exc:  # zlib: damaged deflate data
             raise InputFileError(self.path, f"member '{name}' cannot be read ({exc})") from None
         return b"".join(chunks)
 
@@ -435,7 +436,8 @@ def _join_events(
     orphans = [(int(i) + 1, f"occurrence row {i + 1} of {member} points to event '{coreid.iloc[i]}', "
                             "which is not in the event core") for i in lost]
     ev_terms = [c for c in events.columns if c not in ("id", MEMBER_COLUMN, ROW_COLUMN)]
-    lookup = events.set_index("id")[ev_terms]
+    # blank ids (malformed core rows) repeat and join no occurrence: left out of the lookup
+    lookup = events[events["id"] != ""].set_index("id")[ev_terms]
     joined = lookup.reindex(coreid.to_numpy())
     out = occ.copy()
     for col in ev_terms:

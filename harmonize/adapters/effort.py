@@ -47,6 +47,7 @@ from harmonize.adapters.reading import (
 )
 from harmonize.adapters.registry import register
 from harmonize.contract import FieldSpec, fields
+from harmonize.engines import current_engine
 from harmonize.errors import ConfigError, InputFileError, ReasonCode
 from harmonize.privacy import pseudonymise, study_salt
 from harmonize.profile import Profile
@@ -604,15 +605,19 @@ class PingReader:
         self._checks(con)
         con.unregister("cells")
         self.progress("fishing time", 4, 5)
-        con.execute(self._track_sql())
-        cells_df = self._aggregate(con)
+        engine = current_engine()
+        if engine.name == "dask":
+            cells_df, fishing, derived = self._track_on_dask(con, engine.scheduler)
+        else:
+            con.execute(self._track_sql())
+            cells_df = self._aggregate(con)
+            fishing, derived = con.execute(
+                "SELECT count(*) FILTER (WHERE fishing), count(*) FILTER (WHERE sog IS NULL) FROM track WHERE NOT spike"
+            ).fetchall()[0]
         events, values = effort_output(cells_df, self.study, self.grid, contact)
         quarantine, masked = self._quarantine(con, malformed)
         n_bad = len(quarantine) + int(masked["n_values"].sum() if len(masked) else 0)
         files = [InputFile("rows", self.path, file_sha256(self.path), n_rows, n_rows - n_bad, n_bad)]
-        fishing, derived = con.execute(
-            "SELECT count(*) FILTER (WHERE fishing), count(*) FILTER (WHERE sog IS NULL) FROM track WHERE NOT spike"
-        ).fetchall()[0]
         self.notes.append(f"{fishing:,} of {n_rows - n_bad:,} accepted pings classified as fishing "
                           f"({derived:,} with a speed derived from positions)")
         self.progress("done", 5, 5)
@@ -773,6 +778,41 @@ class PingReader:
                                 WINDOW w AS (PARTITION BY vid ORDER BY t, row))))))
         """
 
+    def _track_on_dask(self, con: duckdb.DuckDBPyConnection, scheduler: str | None) -> tuple[pd.DataFrame, int, int]:
+        """The track and fishing-cell steps on Dask (harmonize.engines.dask_engine).
+
+        The accepted pings go to parquet in buckets of whole vessels, under
+        ``HARMONIZE_DASK_SCRATCH`` (a folder the workers can read) or a temporary folder; the
+        position jumps come back as the table ``track`` the quarantine step reads.
+        Returns the cells (as :meth:`_aggregate`), the fishing pings and the derived speeds.
+        """
+        from harmonize.engines import scratch_parent
+        from harmonize.engines.dask_engine import fishing_hours
+
+        scratch = Path(tempfile.mkdtemp(prefix="harmonize-pings-", dir=scratch_parent()))
+        try:
+            n = con.execute("SELECT count(*) FROM q WHERE reason IS NULL").fetchall()[0][0]
+            buckets = max(2, min(512, n // 1_000_000))  # about a million pings per Dask task
+            target = _sql_text(str(scratch / "pings"))
+            con.execute(f"""
+                COPY (SELECT row, vid, t, lat, lon, sog, gear, layer, smin, smax, code, vid % {buckets} AS bucket
+                      FROM q ANTI JOIN back USING (row) ANTI JOIN dups USING (row) WHERE q.reason IS NULL)
+                TO {target} (FORMAT parquet, PARTITION_BY (bucket))""")
+            folders = sorted(p for p in (scratch / "pings").glob("bucket=*") if p.is_dir())
+            files = [sorted(str(f) for f in d.glob("*.parquet")) for d in folders]
+            names = [self.study.month_to_season[m] for m in range(1, 13)]
+            offsets = season_year_offsets(self.study.seasons)[1:].tolist()
+            result = fishing_hours(files, self.settings.max_speed_kn, self.settings.max_gap_h, names, offsets,
+                                   scheduler)
+        finally:
+            shutil.rmtree(scratch, ignore_errors=True)
+        con.register("dask_spikes", result.spikes)
+        con.execute("CREATE TEMP TABLE track AS SELECT row, r_p1, sp_in, r_n1, sp_out, true AS spike FROM dask_spikes")
+        con.unregister("dask_spikes")
+        cells = result.cells
+        ix, iy = decode_cells(cells["code"].to_numpy(np.int64))
+        return cells.assign(ix=ix, iy=iy).drop(columns="code"), result.n_fishing, result.n_derived
+
     def _malformed(self, con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
         """Rows DuckDB could not split into the header's columns (data row, message)."""
         empty = pd.DataFrame({"data_row": pd.Series([], dtype="int64"), "error": pd.Series([], dtype=str)})
@@ -831,22 +871,25 @@ class PingReader:
         iso = "'%Y-%m-%dT%H:%M:%SZ'"
         con.execute(f"""
             CREATE TEMP VIEW rejected AS
-            SELECT row, reason, message FROM q WHERE reason IS NOT NULL
+            -- one reason per ping (a ping can break several rules): the first in this order
+            SELECT row, arg_min(reason, prio) AS reason, arg_min(message, prio) AS message FROM (
+            SELECT row, reason, message, 1 AS prio FROM q WHERE reason IS NOT NULL
             UNION ALL
             SELECT row, '{ReasonCode.TIME_BACKWARDS}',
                    printf('time %s is out of sequence for this vessel: the pings before and after it in the '
                           'file (rows %d and %d) are at %s and %s; a clock or typing error?',
-                          strftime(t, {iso}), r0, r1, strftime(t0, {iso}), strftime(t1, {iso})) FROM back
+                          strftime(t, {iso}), r0, r1, strftime(t0, {iso}), strftime(t1, {iso})), 2 FROM back
             UNION ALL
             SELECT row, '{ReasonCode.DUPLICATE_RECORD}',
                    CASE WHEN same THEN printf('exact duplicate of row %d (same vessel, time and position)', r0)
                         ELSE printf('same vessel and time as row %d but another position or speed; only the '
-                                    'first is kept', r0) END FROM dups
+                                    'first is kept', r0) END, 3 FROM dups
             UNION ALL
             SELECT row, '{ReasonCode.IMPLAUSIBLE_SPEED}',
                    printf('position jump: reaching this ping from row %d takes %.1f knots and leaving it for row %d '
                           '%.1f knots, above the %s-knot limit; a bad position fix?',
-                          r_p1, sp_in, r_n1, sp_out, '{s.max_speed_kn:g}') FROM track WHERE spike
+                          r_p1, sp_in, r_n1, sp_out, '{s.max_speed_kn:g}'), 4 FROM track WHERE spike
+            ) GROUP BY row
         """)
         vcol = _sql_text(self.found.get("vessel_id", "vessel_id"))
         typed = [(f, e) for f, e in (("time", f"strftime(q.t, {iso})"), ("lat", "q.lat"), ("lon", "q.lon"),

@@ -29,9 +29,11 @@ from harmonize.adapters.reading import (
     NA_TOKENS,
     RawTable,
     Rejections,
+    _short,
     coerce_fields,
     parse_times,
     read_table,
+    resolve_columns,
 )
 from harmonize.adapters.registry import register
 from harmonize.contract import fields
@@ -143,7 +145,7 @@ class OpportunisticAdapter(Adapter):
         count, not_count, fractional = parse_counts(rows["count"])
         label = _label(prof, "count")
         rej.add("rows", pos[not_count], ReasonCode.BAD_TYPE,
-                [f"{label} holds '{v}'; expected a whole number, or X for present but not counted"
+                [f"{label} holds '{_short(v)}'; expected a whole number, or X for present but not counted"
                  for v in rows["count"][not_count]])
         rej.add("rows", pos[fractional], ReasonCode.BAD_TYPE,
                 [f"{label} holds {v:g}; a count must be a whole number" for v in count[fractional]])
@@ -155,7 +157,7 @@ class OpportunisticAdapter(Adapter):
         present = status.map(_STATUS).astype("boolean").to_numpy(dtype=object, na_value=None)
         bad_status = status.notna().to_numpy() & pd.isna(present)
         rej.add("rows", pos[bad_status], ReasonCode.BAD_TYPE,
-                [f"{_label(prof, 'occurrence_status')} holds '{v}'; expected present or absent "
+                [f"{_label(prof, 'occurrence_status')} holds '{_short(v)}'; expected present or absent "
                  "(or detected / notDetected)" for v in rows["occurrence_status"][bad_status]])
         absent = np.array([p is False for p in present]) | (count == 0)
         contradiction = absent & (count > 0)
@@ -177,6 +179,10 @@ class OpportunisticAdapter(Adapter):
                               "sighting position")
 
         observer_id = pseudonymise(rows["observer"], study_salt(study.root))
+        # the raw rows kept in the quarantine carry the pseudonym, never the name
+        observer_col = resolve_columns(work, fields(SCHEMA), prof).get("observer")
+        if observer_col is not None and observer_col in raw.frame:
+            raw.frame = raw.frame.assign(**{observer_col: observer_id.fillna("").to_numpy(dtype=object)})
         rec = pd.DataFrame({
             "pos": pos, "time": rows["time"], "lat": lat, "lon": lon, "observer_id": observer_id,
             "checklist": rows["checklist_id"].str.strip(), "complete": rows["complete"].fillna(False).astype(bool),

@@ -31,9 +31,8 @@ from harmonize.adapters.common import (
     resolve_taxa,
     zero_fill,
 )
-from harmonize.adapters.reading import Rejections, coerce_fields, read_table
+from harmonize.adapters.reading import Rejections
 from harmonize.adapters.registry import register
-from harmonize.contract import fields
 from harmonize.errors import ConfigError, ReasonCode
 from harmonize.profile import Profile
 from harmonize.study import Study
@@ -123,12 +122,11 @@ class PlanktonAdapter(Adapter):
     ) -> AdapterOutput:
         rules = TowRules.from_profile(profile)
         rej = Rejections()
-        ev_raw, ev_bad = read_table(inputs["events"], profile, "events")
-        rc_raw, rc_bad = read_table(inputs["records"], profile, "records")
+        raw, typed = self.read_fields(inputs, profile, rej)
+        ev_raw, rc_raw = raw["events"], raw["records"]
+        ev, rc = typed["events"], typed["records"]
         if progress:
             progress("read", 1, 3)
-        ev = coerce_fields(ev_raw, fields("plankton_events"), profile, rej, "plankton_events", ev_bad)
-        rc = coerce_fields(rc_raw, fields("plankton_records"), profile, rej, "plankton_records", rc_bad)
         if progress:
             progress("validate", 2, 3)
 

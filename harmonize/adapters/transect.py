@@ -41,8 +41,6 @@ from harmonize.adapters.plankton import flag_tuples
 from harmonize.adapters.reading import (
     RawTable,
     Rejections,
-    coerce_fields,
-    read_table,
     resolve_columns,
 )
 from harmonize.adapters.registry import register
@@ -117,12 +115,11 @@ class TransectAdapter(Adapter):
     ) -> AdapterOutput:
         rules = StripRules.from_profile(profile)
         rej = Rejections()
-        ev_raw, ev_bad = read_table(inputs["events"], profile, "events")
-        rc_raw, rc_bad = read_table(inputs["records"], profile, "records")
+        raw, typed = self.read_fields(inputs, profile, rej)
+        ev_raw, rc_raw = raw["events"], raw["records"]
+        ev, rc = typed["events"], typed["records"]
         if progress:
             progress("read", 1, 3)
-        ev = coerce_fields(ev_raw, fields("transect_events"), profile, rej, "transect_events", ev_bad)
-        rc = coerce_fields(rc_raw, fields("transect_records"), profile, rej, "transect_records", rc_bad)
         observer_id = pseudonymise(ev["observer"], study_salt(study.root))
         _hide_observers(ev_raw, rc_raw, profile, study)
         if progress:

@@ -23,7 +23,7 @@ from harmonize.adapters.common import (
     resolve_taxa,
     zero_fill,
 )
-from harmonize.adapters.reading import Rejections, coerce_fields, read_table, resolve_columns
+from harmonize.adapters.reading import Rejections, resolve_columns
 from harmonize.adapters.registry import register
 from harmonize.contract import fields
 from harmonize.errors import ReasonCode
@@ -66,12 +66,11 @@ class TrawlAdapter(Adapter):
         progress: ProgressCallback | None = None,
     ) -> AdapterOutput:
         rej = Rejections()
-        ev_raw, ev_bad = read_table(inputs["events"], profile, "events")
-        rc_raw, rc_bad = read_table(inputs["records"], profile, "records")
+        raw, typed = self.read_fields(inputs, profile, rej)
+        ev_raw, rc_raw = raw["events"], raw["records"]
+        ev, rc = typed["events"], typed["records"]
         if progress:
             progress("read", 1, 3)
-        ev = coerce_fields(ev_raw, fields("trawl_events"), profile, rej, "trawl_events", ev_bad)
-        rc = coerce_fields(rc_raw, fields("trawl_records"), profile, rej, "trawl_records", rc_bad)
         if progress:
             progress("validate", 2, 3)
 
@@ -94,6 +93,15 @@ class TrawlAdapter(Adapter):
         # its taxon (when known) is never zero-filled for that haul.
         lost = ~rc_ok & rc["event_id"].isin(ev["event_id"][ev_alive]).to_numpy()
         incomplete = set(rc["event_id"][lost].dropna())
+        # A quarantined catch row with no readable haul id (a malformed line, an empty id)
+        # may belong to any haul: no haul's catch is known complete, so no absence is inferred.
+        unattributed = int((~rc_ok & rc["event_id"].isna().to_numpy()).sum())
+        notes = []
+        if unattributed:
+            incomplete = set(hauls["event_id"])
+            notes.append(f"{rc_raw.path.name}: {unattributed} quarantined catch row(s) have no readable haul id, "
+                         "so no haul's catch is known complete and no zeros were inferred; fix those rows "
+                         "and ingest again with --replace")
         blocked = pd.DataFrame({"event_id": rc["event_id"][lost], "variable": taxon.fillna(guess)[lost]}).dropna()
 
         catch = pd.DataFrame({
@@ -104,13 +112,23 @@ class TrawlAdapter(Adapter):
             "count": rc["count"][rc_ok],
             "row": np.flatnonzero(rc_ok) + 1,
         })
+        if unattributed:
+            # a haul none of whose catch rows could be read has no known catch at all (not
+            # even "nothing caught"): it is quarantined rather than stored without its catch
+            unknown_catch = ~hauls["event_id"].isin(catch["event_id"]).to_numpy()
+            rej.add("events", hauls["source_row"].to_numpy()[unknown_catch] - 1, ReasonCode.MISSING_VALUE,
+                    f"none of this haul's catch rows could be read, and {unattributed} catch row(s) in "
+                    f"{rc_raw.path.name} have no readable haul id, so its catch is unknown; fix the catch "
+                    "file and ingest again with --replace")
+            flags = [f for f, known in zip(flags, ~unknown_catch, strict=True) if known]
+            hauls = hauls[~unknown_catch].reset_index(drop=True)
         values = _catch_values(catch)
         # the protocol records the quantities the catch file has a column for
         provided = resolve_columns(rc_raw, fields("trawl_records"), profile)
         quantities = [(q, u) for q, u, col in (("biomass", "kg", "weight"), ("count", "1", "count"))
                       if col in provided or col in profile.constants]
         zeros = zero_fill(
-            hauls.assign(year=hauls["event_start"].dt.year)[["event_id", "year"]],
+            hauls.assign(year=hauls["event_start"].dt.year)[["event_id", "year"]].iloc[:0 if unattributed else None],
             catch[["event_id", "variable", "life_stage"]],
             blocked, study, profile.protocol, quantities,
         )
@@ -127,7 +145,7 @@ class TrawlAdapter(Adapter):
         ]
         if progress:
             progress("convert", 3, 3)
-        return finish([ev_raw, rc_raw], rej, hauls.drop(columns=["bottom_temperature"]), values)
+        return finish([ev_raw, rc_raw], rej, hauls.drop(columns=["bottom_temperature"]), values, notes)
 
     @staticmethod
     def _hauls(ev: pd.DataFrame, study: Study, rej: Rejections) -> tuple[pd.DataFrame, list[list[str]]]:

@@ -57,7 +57,7 @@ def _year_filter(max_year: int | None) -> str:
 
 
 def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame,
-                      min_vessels: int, max_year: int | None = None) -> None:
+                      min_vessels: int, max_year: int | None = None, events_table: str | None = None) -> None:
     """Create the temporary table ``audit_cells``: events counted per tag combination and cell.
 
     One pass over the observations reduces them to one row per event (grouped on a 64-bit
@@ -77,15 +77,17 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
         Effort events with fewer distinct vessels are confidential.
     max_year
         Leave out season years after this one (the annual audit).
+    events_table
+        A table already holding one row per event (source_id, source_kind, protocol,
+        provider_type, season_year, season, depth_layer, cell_id, stratum, effort_bearing,
+        biological, n_vessels), computed elsewhere by the same rules (the Dask engine,
+        :mod:`harmonize.engines.dask_engine`); None computes it here.
     """
     con.register("_audit_domain_cells", domain_cells[["cell_id"]])
     con.execute("CREATE OR REPLACE TEMP TABLE audit_domain_cells AS SELECT DISTINCT cell_id FROM _audit_domain_cells")
     con.unregister("_audit_domain_cells")
     confidential = f"(n_vessels IS NOT NULL AND n_vessels < {int(min_vessels)})"
-    con.execute(
-        f"""
-        CREATE OR REPLACE TEMP TABLE audit_cells AS
-        WITH ev AS (
+    ev_sql = f"""
             SELECT hash(source_id, event_id) AS event_key,
                    any_value(source_id) AS source_id, any_value(source_kind) AS source_kind,
                    any_value(protocol) AS protocol,
@@ -97,7 +99,17 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
                    min(n_vessels) AS n_vessels
             FROM observations
             WHERE {_KEPT}{_year_filter(max_year)}
-            GROUP BY event_key
+            GROUP BY event_key"""
+    if events_table is not None:
+        ev_sql = f"""
+            SELECT source_id, source_kind, protocol, provider_type, CAST(season_year AS INTEGER) AS season_year,
+                   season, depth_layer, cell_id, stratum, effort_bearing, biological,
+                   CAST(n_vessels AS INTEGER) AS n_vessels
+            FROM {events_table}"""
+    con.execute(
+        f"""
+        CREATE OR REPLACE TEMP TABLE audit_cells AS
+        WITH ev AS ({ev_sql}
         ),
         tagged AS (
             SELECT ev.*, {confidential} AS confidential,
@@ -223,22 +235,30 @@ def bio_providers(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
 _PREFERENCE = "CASE quantity WHEN 'count' THEN 0 WHEN 'presence' THEN 1 WHEN 'biomass' THEN 2 ELSE 3 END"
 
 
-def encounters(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> pd.DataFrame:
+def encounters(con: duckdb.DuckDBPyConnection, max_year: int | None = None,
+               records_table: str | None = None) -> pd.DataFrame:
     """Taxon records and encounters (records with a value above zero) by taxon and place in time.
 
     Grouped by variable, season, depth layer, season_year, source kind and provider type.
     A source that stores a taxon under several quantities (count and biomass of one
     catch) is counted in one of them only: count, else presence, else biomass. Each life
-    stage or behaviour recorded is a record of its own.
+    stage or behaviour recorded is a record of its own. ``records_table`` holds the
+    records and encounters per group computed elsewhere (the Dask engine).
     """
-    return con.execute(
-        f"""WITH g AS (
+    g_sql = f"""
                 SELECT variable, season, depth_layer, season_year, source_kind, provider_type,
                        source_id, quantity, count(*) AS records,
                        count(*) FILTER (WHERE value > 0) AS encounters
                 FROM observations
                 WHERE variable_kind = 'taxon' AND {_KEPT}{_year_filter(max_year)}
-                GROUP BY ALL
+                GROUP BY ALL"""
+    if records_table is not None:
+        g_sql = f"""
+                SELECT variable, season, depth_layer, CAST(season_year AS INTEGER) AS season_year, source_kind,
+                       provider_type, source_id, quantity, records, encounters
+                FROM {records_table}"""
+    return con.execute(
+        f"""WITH g AS ({g_sql}
             ),
             preferred AS (
                 SELECT source_id, variable, arg_min(quantity, {_PREFERENCE}) AS quantity
@@ -252,7 +272,8 @@ def encounters(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> p
     ).df()
 
 
-def comparisons(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> pd.DataFrame:
+def comparisons(con: duckdb.DuckDBPyConnection, max_year: int | None = None,
+                per_source_table: str | None = None) -> pd.DataFrame:
     """Differences between two sources of one physical variable in the same cell and period.
 
     Each source's values are averaged per cell_id x season_year x season x depth layer;
@@ -260,18 +281,25 @@ def comparisons(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> 
     second) is summarised per variable, source pair and layer: its mean (the offset a
     delta-change correction would add to the second source) and its sample standard
     deviation. In-situ sources come first, model and remote-sensing sources second.
+    ``per_source_table`` holds the per-source means computed elsewhere (the Dask engine).
     """
     refs = ", ".join(f"'{p}'" for p in REFERENCE_PROVIDERS)
-    return con.execute(
-        f"""
-        WITH per_source AS (
+    per_source = f"""
             SELECT variable, source_id, any_value(source_kind) AS source_kind,
                    any_value(provider_type) AS provider_type, any_value(unit) AS unit,
                    cell_id, season_year, season, depth_layer, avg(value) AS mean_value
             FROM observations
             WHERE variable_kind = 'physical' AND value IS NOT NULL AND cell_id IS NOT NULL
                   AND {_KEPT}{_year_filter(max_year)}
-            GROUP BY variable, source_id, cell_id, season_year, season, depth_layer
+            GROUP BY variable, source_id, cell_id, season_year, season, depth_layer"""
+    if per_source_table is not None:
+        per_source = f"""
+            SELECT variable, source_id, source_kind, provider_type, unit, cell_id,
+                   CAST(season_year AS INTEGER) AS season_year, season, depth_layer, mean_value
+            FROM {per_source_table}"""
+    return con.execute(
+        f"""
+        WITH per_source AS ({per_source}
         ),
         ranked AS (SELECT *, provider_type IN ({refs}) AS is_reference FROM per_source)
         SELECT a.variable, a.depth_layer, a.source_id AS source_a, b.source_id AS source_b,

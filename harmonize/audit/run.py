@@ -15,6 +15,7 @@ from harmonize import __version__
 from harmonize.audit.findings import CODES, SEVERITIES, Finding, all_findings, tolerances
 from harmonize.audit.metrics import Metrics, compute
 from harmonize.contract import CONTRACT_VERSION
+from harmonize.engines import EngineChoice, check_engine, current_engine
 from harmonize.errors import HarmonizeError
 from harmonize.store import Store
 from harmonize.study import Study
@@ -143,7 +144,8 @@ def domain_cells(study: Study) -> pd.DataFrame:
     return Grid(study.crs, study.cell_size_km).cells_covering(study.domain)
 
 
-def audit(study: Study, year: int | None = None) -> AuditResult:
+def audit(study: Study, year: int | None = None, engine: str | None = None,
+          scheduler: str | None = None) -> AuditResult:
     """Audit the coverage of everything in the study's store.
 
     Parameters
@@ -153,6 +155,11 @@ def audit(study: Study, year: int | None = None) -> AuditResult:
     year
         Audit this season year against the earlier ones (the annual audit): later years are
         ignored and findings tied to a year are reported for this year only.
+    engine
+        "duckdb" or "dask": where the heavy aggregations run (default: ``HARMONIZE_ENGINE``
+        or "duckdb"); the result is the same (see :mod:`harmonize.engines`).
+    scheduler
+        Address of a Dask scheduler for ``engine="dask"`` (default: a local cluster).
 
     Returns
     -------
@@ -174,7 +181,14 @@ def audit(study: Study, year: int | None = None) -> AuditResult:
                 span = "no records" if lo is None else f"records for season years {lo}-{hi}"
                 raise HarmonizeError(f"cannot audit season year {year}: the store holds {span}; "
                                      "pass a year inside that range")
-        metrics = compute(con, cells, study.min_vessels, year)
+        choice = current_engine() if engine is None else EngineChoice(check_engine(engine), scheduler)
+        if choice.name == "dask":
+            from harmonize.engines.dask_engine import audit_metrics
+
+            metrics = audit_metrics(con, store._live_paths(con), cells, study.min_vessels, year,
+                                    scheduler or choice.scheduler)
+        else:
+            metrics = compute(con, cells, study.min_vessels, year)
     settings = {
         "min_events": study.audit.min_events, "coverage_drop": study.audit.coverage_drop,
         "min_encounters": study.audit.min_encounters, "min_vessels": study.min_vessels,

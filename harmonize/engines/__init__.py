@@ -77,3 +77,20 @@ def current_engine() -> EngineChoice:
     """The engine chosen by the enclosing :func:`engine_scope`, else by the environment."""
     choice = _CURRENT.get()
     return choice if choice is not None else EngineChoice(check_engine(None))
+
+
+def scratch_parent() -> str | None:
+    """The folder named by ``HARMONIZE_DASK_SCRATCH`` (checked), or None for the system default.
+
+    Raises
+    ------
+    HarmonizeError
+        When the variable names something that is not an existing folder.
+    """
+    value = os.environ.get(SCRATCH_ENV)
+    if not value:
+        return None
+    if not os.path.isdir(value):
+        raise HarmonizeError(f"{SCRATCH_ENV}={value} is not an existing folder; create it on a file system "
+                             "every Dask worker can read, or unset the variable")
+    return value

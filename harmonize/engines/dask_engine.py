@@ -9,7 +9,7 @@
    cell are the sum of the buckets' distinct vessels, so the final reduction is a plain sum
    over small partial tables.
 2. **The audit's aggregations.** The per-event table (one row per event and its tags),
-   the taxon encounters and the per-source means of physical variables are computed on Dask
+   the taxon record counts and the per-source means of physical variables are computed on Dask
    from the store's live parquet files (one task per file, then a grouped reduction), and
    handed back to DuckDB, where the small remaining queries of :mod:`harmonize.audit.metrics`
    run unchanged.
@@ -292,12 +292,15 @@ def fishing_hours(buckets: Sequence[Sequence[str]], max_speed_kn: float, max_gap
 # ---------------------------------------------------------------------------- audit
 
 #: Columns the audit reads from the observation files.
-AUDIT_COLUMNS = ("record_id", "ingest_id", "source_id", "provider_type", "event_id", "season", "depth_layer",
-                 "cell_id", "stratum", "variable", "variable_kind", "quantity", "value", "unit", "n_vessels",
-                 "flags")
-EVENT_KEYS = ["source_id", "source_kind", "provider_type", "event_id", "season_year", "season",
-              "depth_layer", "cell_id", "stratum"]
-ENCOUNTER_KEYS = ["variable", "season", "depth_layer", "season_year", "source_kind", "provider_type"]
+AUDIT_COLUMNS = ("record_id", "ingest_id", "source_id", "protocol", "provider_type", "event_id", "season",
+                 "depth_layer", "cell_id", "stratum", "variable", "variable_kind", "quantity", "value", "unit",
+                 "n_vessels", "flags")
+#: Tags of an event (one value per event; the audit takes any of its rows' values).
+EVENT_TAGS = ["source_kind", "protocol", "provider_type", "season_year", "season", "depth_layer", "cell_id",
+              "stratum"]
+#: Keys of the taxon records table the encounters are counted from.
+RECORD_KEYS = ["variable", "season", "depth_layer", "season_year", "source_kind", "provider_type", "source_id",
+               "quantity"]
 PER_SOURCE_KEYS = ["variable", "source_id", "cell_id", "season_year", "season", "depth_layer"]
 
 
@@ -310,7 +313,8 @@ def read_observation_file(path: str, duplicate_keys: frozenset[str] = frozenset(
     """The audit's columns of one observation file, with the hive partition values.
 
     Rows that are probable duplicates (the flag in the file, or ``record_id|ingest_id`` in
-    ``duplicate_keys``, the store-wide flags) and rows after ``max_year`` are left out.
+    ``duplicate_keys``, the store-wide flags) and rows after ``max_year`` are left out, as
+    the audit's SQL leaves them out.
     """
     names = set(pq.read_schema(path).names)
     table = pq.read_table(path, columns=[c for c in AUDIT_COLUMNS if c in names])
@@ -318,7 +322,8 @@ def read_observation_file(path: str, duplicate_keys: frozenset[str] = frozenset(
         if c not in names:
             table = table.append_column(c, pa.nulls(table.num_rows, pa.list_(pa.string()) if c == "flags" else None))
     hive = _hive_values(path)
-    season_year = int(hive["season_year"]) if hive.get("season_year") not in (None, "NULL", "__HIVE_DEFAULT_PARTITION__") else None
+    raw_year = hive.get("season_year")
+    season_year = None if raw_year in (None, "NULL", "__HIVE_DEFAULT_PARTITION__") else int(raw_year)
     if max_year is not None and (season_year is None or season_year > max_year):
         table = table.slice(0, 0)
     flags = table["flags"].combine_chunks() if table.num_rows else pa.array([], pa.list_(pa.string()))
@@ -338,31 +343,32 @@ def read_observation_file(path: str, duplicate_keys: frozenset[str] = frozenset(
 
 def _file_partials(path: str, duplicate_keys: frozenset[str], max_year: int | None
                    ) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
+    """Per-event, per-record-group and per-cell partial aggregates of one file."""
     obs = read_observation_file(path, duplicate_keys, max_year)
-    events = obs.assign(effort_bearing=obs["quantity"].ne("presence").fillna(False),
-                        biological=obs["variable_kind"].eq("taxon").fillna(False)).groupby(
-        EVENT_KEYS, dropna=False, sort=False).agg(
-        effort_bearing=("effort_bearing", "any"), biological=("biological", "any"),
-        n_vessels=("n_vessels", "min")).reset_index()
+    flagged = obs.assign(effort_bearing=obs["quantity"].ne("presence").fillna(False).astype(bool),
+                         biological=obs["variable_kind"].eq("taxon").fillna(False).astype(bool))
+    events = flagged.groupby(["source_id", "event_id"], dropna=False, sort=False).agg(
+        **{t: (t, "first") for t in EVENT_TAGS}, effort_bearing=("effort_bearing", "max"),
+        biological=("biological", "max"), n_vessels=("n_vessels", "min")).reset_index()
     taxon = obs[obs["variable_kind"].eq("taxon").fillna(False).to_numpy()]
-    enc = taxon.assign(hit=(taxon["value"] > 0).fillna(False)).groupby(
-        [*ENCOUNTER_KEYS, "source_id", "event_id"], dropna=False, sort=False)["hit"].any().reset_index()
+    records = taxon.assign(hit=(taxon["value"] > 0).fillna(False).astype(np.int64)).groupby(
+        RECORD_KEYS, dropna=False, sort=False).agg(records=("hit", "size"), encounters=("hit", "sum")).reset_index()
     phys = obs[(obs["variable_kind"].eq("physical").fillna(False) & obs["value"].notna()
                 & obs["cell_id"].notna()).to_numpy()]
     per = phys.groupby(PER_SOURCE_KEYS, dropna=False, sort=False).agg(
         total=("value", "sum"), n=("value", "size"), source_kind=("source_kind", "first"),
         provider_type=("provider_type", "first"), unit=("unit", "first")).reset_index()
-    return events, enc, per
+    return events, records, per
 
 
 @dataclass
 class AuditTables:
-    """The audit's heavy aggregates, computed on Dask (all small enough for one machine)."""
+    """The audit's heavy aggregates, computed on Dask (small enough for one machine)."""
 
-    #: One row per event: EVENT_KEYS, effort_bearing, biological, n_vessels (min).
+    #: One row per event: source_id, event_id, EVENT_TAGS, effort_bearing, biological, n_vessels (min).
     events: pd.DataFrame
-    #: Taxon encounters: ENCOUNTER_KEYS, encounters, events.
-    encounters: pd.DataFrame
+    #: Taxon records and encounters (value > 0) per RECORD_KEYS.
+    records: pd.DataFrame
     #: Mean of each physical variable per source x cell x period x layer: PER_SOURCE_KEYS,
     #: source_kind, provider_type, unit, mean_value.
     per_source: pd.DataFrame
@@ -372,7 +378,7 @@ def audit_tables(paths: Sequence[str], duplicate_keys: frozenset[str] = frozense
                  max_year: int | None = None, scheduler: str | None = None) -> AuditTables:
     """The audit's aggregations over the store's live observation files, on Dask.
 
-    One task per file reduces its rows to per-event, per-(event, taxon) and per-cell
+    One task per file reduces its rows to per-event, per-record-group and per-cell
     partials; Dask DataFrame group-bys combine them across files (an event's rows may lie in
     several files).
 
@@ -396,39 +402,40 @@ def audit_tables(paths: Sequence[str], duplicate_keys: frozenset[str] = frozense
             parts = [delayed(_empty_partials, nout=3)()]
         meta = _empty_partials()
         ev = dd.from_delayed([p[0] for p in parts], meta=meta[0], verify_meta=False)
-        enc = dd.from_delayed([p[1] for p in parts], meta=meta[1], verify_meta=False)
+        rec = dd.from_delayed([p[1] for p in parts], meta=meta[1], verify_meta=False)
         per = dd.from_delayed([p[2] for p in parts], meta=meta[2], verify_meta=False)
         n_out = max(1, len(paths) // 16)
-        events = ev.groupby(EVENT_KEYS, dropna=False).agg(
-            {"effort_bearing": "max", "biological": "max", "n_vessels": "min"}, split_out=n_out).reset_index()
-        hits = enc.groupby([*ENCOUNTER_KEYS, "source_id", "event_id"], dropna=False).agg(
-            {"hit": "max"}, split_out=n_out).reset_index()
+        events = ev.groupby(["source_id", "event_id"], dropna=False).agg(
+            {**dict.fromkeys(EVENT_TAGS, "first"), "effort_bearing": "max", "biological": "max",
+             "n_vessels": "min"}, split_out=n_out).reset_index()
+        records = rec.groupby(RECORD_KEYS, dropna=False).agg({"records": "sum", "encounters": "sum"}).reset_index()
         per_source = per.groupby(PER_SOURCE_KEYS, dropna=False).agg(
             {"total": "sum", "n": "sum", "source_kind": "first", "provider_type": "first", "unit": "first"}
         ).reset_index()
-        events, hits, per_source = client.compute([events, hits, per_source], sync=True)
-    hits["hit"] = hits["hit"].astype(bool)
-    encounters = hits.groupby(ENCOUNTER_KEYS, dropna=False, sort=True).agg(
-        encounters=("hit", "sum"), events=("hit", "size")).reset_index()
+        events, records, per_source = client.compute([events, records, per_source], sync=True)
     per_source["mean_value"] = per_source["total"] / per_source["n"]
     per_source = per_source.drop(columns=["total", "n"])
+    events = events.astype({"effort_bearing": bool, "biological": bool})
     events["n_vessels"] = pd.array(events["n_vessels"], dtype="Int32")
-    return AuditTables(events.reset_index(drop=True), encounters, per_source.reset_index(drop=True))
+    return AuditTables(events.reset_index(drop=True), records.reset_index(drop=True),
+                       per_source.reset_index(drop=True))
 
 
 def _empty_partials() -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
-    text = pd.Series([], dtype=object)
-    events = pd.DataFrame({**{k: text for k in EVENT_KEYS}, "effort_bearing": pd.Series([], dtype=bool),
-                           "biological": pd.Series([], dtype=bool), "n_vessels": pd.Series([], dtype="Int32")})
-    events["season_year"] = pd.Series([], dtype="Int32")
-    enc = pd.DataFrame({**{k: text for k in [*ENCOUNTER_KEYS, "source_id", "event_id"]},
-                        "hit": pd.Series([], dtype=bool)})
-    enc["season_year"] = pd.Series([], dtype="Int32")
-    per = pd.DataFrame({**{k: text for k in PER_SOURCE_KEYS}, "total": pd.Series([], dtype=float),
-                        "n": pd.Series([], dtype=np.int64), "source_kind": text, "provider_type": text,
-                        "unit": text})
-    per["season_year"] = pd.Series([], dtype="Int32")
-    return events, enc, per
+    def text() -> pd.Series:
+        return pd.Series([], dtype=object)
+
+    year = pd.Series([], dtype="Int32")
+    events = pd.DataFrame({"source_id": text(), "event_id": text(),
+                           **{t: (year if t == "season_year" else text()) for t in EVENT_TAGS},
+                           "effort_bearing": pd.Series([], dtype=bool), "biological": pd.Series([], dtype=bool),
+                           "n_vessels": pd.Series([], dtype="Int32")})
+    records = pd.DataFrame({**{k: (year if k == "season_year" else text()) for k in RECORD_KEYS},
+                            "records": pd.Series([], dtype=np.int64), "encounters": pd.Series([], dtype=np.int64)})
+    per = pd.DataFrame({**{k: (year if k == "season_year" else text()) for k in PER_SOURCE_KEYS},
+                        "total": pd.Series([], dtype=float), "n": pd.Series([], dtype=np.int64),
+                        "source_kind": text(), "provider_type": text(), "unit": text()})
+    return events, records, per
 
 
 def duplicate_keys(con: Any) -> frozenset[str]:
@@ -445,25 +452,28 @@ def audit_metrics(con: Any, paths: Sequence[str], domain_cells: pd.DataFrame, mi
                   max_year: int | None = None, scheduler: str | None = None) -> Any:
     """:class:`harmonize.audit.metrics.Metrics` with the heavy aggregations done on Dask.
 
-    The per-event table, the encounters and the per-source physical means come from
-    :func:`audit_tables`; they are registered in ``con`` (a store connection) and the rest
-    of the audit's queries run on them in DuckDB, unchanged.
+    The per-event table, the taxon record counts and the per-source physical means come
+    from :func:`audit_tables`; they are registered in ``con`` (a store connection) and the
+    rest of the audit's queries run on them in DuckDB, unchanged.
     """
     from harmonize.audit import metrics as m
 
     tables = audit_tables(paths, duplicate_keys(con), max_year, scheduler)
-    con.register("_dask_audit_events", tables.events)
-    con.register("_dask_per_source", tables.per_source)
+    registered = {"_dask_audit_events": tables.events, "_dask_audit_records": tables.records,
+                  "_dask_per_source": tables.per_source}
+    for name, frame in registered.items():
+        con.register(name, frame)
     try:
         m.build_event_table(con, domain_cells, min_vessels, max_year, events_table="_dask_audit_events")
+        encounters = m.encounters(con, max_year, records_table="_dask_audit_records")
         comparisons = m.comparisons(con, max_year, per_source_table="_dask_per_source")
     finally:
-        con.unregister("_dask_per_source")
-        con.unregister("_dask_audit_events")
+        for name in registered:
+            con.unregister(name)
     n_cells = len(domain_cells)
     return m.Metrics(
         extent=m.extent(con), coverage=m.coverage(con, n_cells), layer_events=m.layer_events(con),
         stratum_events=m.stratum_events(con), source_years=m.source_years(con),
-        bio_providers=m.bio_providers(con), encounters=tables.encounters, comparisons=comparisons,
+        bio_providers=m.bio_providers(con), encounters=encounters, comparisons=comparisons,
         cell_maps=m.cell_maps(con), suppressed=m.suppressed(con), n_domain_cells=n_cells,
     )

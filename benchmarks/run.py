@@ -235,14 +235,16 @@ def bench_gridded(quick: bool, work: Path) -> dict[str, Any]:
     """Gridded ingest of a packed NetCDF file larger than the memory the process may use.
 
     The child runs under a hard address-space limit (``RLIMIT_AS``) smaller than the file;
-    the ingest's own budget is ``[aggregate] chunk_mb``. The baseline reads every value of
-    the file once, block by block, with netCDF4 (the least any tool must do).
+    the ingest's own budget is ``[aggregate] chunk_mb``. The address space counts memory that
+    is reserved but never used (thread arenas, DuckDB's allocator), so the cap sits just
+    under the file size; the peak resident memory is the figure to read. The baseline reads
+    every value of the file once, block by block, with netCDF4 (the least any tool must do).
     """
     from benchmarks.gridded_memory import PROFILE, write_file
     from harmonize.demo.sea import write_study
 
     # 720 x 960 int16 values per 2-day time step (1.3 MiB)
-    steps, limit_mb, chunk_mb = (800, 1024, 64) if quick else (2400, 1536, 64)
+    steps, limit_mb, chunk_mb = (800, 1024, 64) if quick else (2400, 3072, 64)
     folder = work / "gridded"
     write_study(folder)
     (folder / "profiles" / "bench_sst.toml").write_text(PROFILE.format(chunk_mb=chunk_mb), encoding="utf-8")

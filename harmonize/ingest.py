@@ -166,7 +166,7 @@ def store_output(
     shas = {f.role: f.sha256 for f in out.files}
     inputs_sha = inputs_sha256 or _digest(sorted(shas.items()))
     config_sha = config_sha256 or _digest([profile.fingerprint, study.fingerprint, CONTRACT_VERSION])
-    ingest_id = f"{started:%Y%m%dT%H%M%S}-{uuid.uuid4().hex[:8]}"
+    ingest_id = f"{started:%Y%m%dT%H%M%S%f}-{uuid.uuid4().hex[:8]}"  # sorts by start time
     table = assemble(out, study, profile, kind, ingest_id)
     zero_filled = int(pa.compute.sum(table["zero_filled"]).as_py() or 0)
     result = IngestResult("checked", profile.source_id, kind, None, out.files, table.num_rows,

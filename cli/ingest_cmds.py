@@ -81,6 +81,19 @@ def _with_progress(job):  # type: ignore[no-untyped-def]
         return job(callback)
 
 
+def _print_without_values(result: IngestResult) -> None:
+    """Accepted events that give no observation row (kept apart in the store), when there are any."""
+    empty = result.events_without_values
+    if empty.empty:
+        return
+    flags = empty["flags"].explode()
+    incomplete = flags[flags.astype("string").str.endswith("_incomplete").fillna(False)].index.nunique()
+    kept = "would be kept" if result.status == "checked" else "kept"
+    lost = f", {fmt_int(incomplete)} of them lost records to quarantine" if incomplete else ""
+    console.print(f"accepted events without any observation row: {fmt_int(len(empty))}{lost} "
+                  f"({kept} in the store's events_without_values)", markup=False)
+
+
 def _print_result(result: IngestResult, show: int) -> None:
     if result.status == "unchanged":
         for note in result.notes:
@@ -96,6 +109,7 @@ def _print_result(result: IngestResult, show: int) -> None:
     written = "would be written" if result.status == "checked" else "written"
     console.print(f"observation rows {written}: {fmt_int(result.records_written)} "
                   f"(of which inferred zeros: {fmt_int(result.records_zero_filled)})")
+    _print_without_values(result)
     if result.ingest_id:
         console.print(f"ingest id: {result.ingest_id}")
     if result.superseded:

@@ -42,6 +42,11 @@ def status(
         table.add_row(r.ingest_id, r.source_id, r.source_kind, r.file_name, r.status, fmt_int(r.rows_read),
                       fmt_int(r.rows_accepted), fmt_int(r.rows_quarantined), fmt_int(r.records_written))
     console.print(table)
+    empty = store.events_without_values()
+    if len(empty):
+        by_source = ", ".join(f"{s} {fmt_int(n)}" for s, n in empty["source_id"].value_counts().sort_index().items())
+        console.print(f"accepted events without any observation row: {fmt_int(len(empty))} ({by_source}); "
+                      "they are in the store's events_without_values table", markup=False)
     summary = store.summary()
     if len(summary):
         t2 = Table(title="observation rows by kind, season year, season and depth layer", title_justify="left")

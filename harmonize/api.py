@@ -37,11 +37,17 @@ Names = Iterable[str] | str | None
 
 @dataclass
 class StoreStatus:
-    """What the store holds: its ingests and observation rows by kind, year, season and layer."""
+    """What the store holds: its ingests and observation rows by kind, year, season and layer.
+
+    ``events_without_values`` holds the accepted events that yield no observation row (an
+    empty haul under a profile without a zero-filling protocol, a segment whose bird rows
+    were all quarantined), one row per event (see :meth:`harmonize.store.Store.events_without_values`).
+    """
 
     ingests: pd.DataFrame
     summary: pd.DataFrame
     problems: list[str] = field(default_factory=list)
+    events_without_values: pd.DataFrame = field(default_factory=pd.DataFrame)
 
     def __getitem__(self, key: str) -> Any:
         return getattr(self, key)
@@ -105,7 +111,7 @@ class StudyHandle:
     def status(self, check: bool = False, include_superseded: bool = False) -> StoreStatus:
         """Ingests and rows by kind, season year, season and layer (``harmonize status``)."""
         return StoreStatus(self.store.ingests(include_superseded=include_superseded), self.store.summary(),
-                           self.store.check() if check else [])
+                           self.store.check() if check else [], self.store.events_without_values())
 
     def quarantine(self, reason: str | None = None, ingest_id: str | None = None, source_id: str | None = None,
                    limit: int | None = None) -> pd.DataFrame:

@@ -42,6 +42,8 @@ class IngestResult:
     superseded: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
     masked: pd.DataFrame = field(default_factory=pd.DataFrame)
+    #: accepted events that yield no observation row (see :func:`events_without_values`)
+    events_without_values: pd.DataFrame = field(default_factory=pd.DataFrame)
 
     @property
     def rows_read(self) -> int:
@@ -172,6 +174,8 @@ def store_output(
     result = IngestResult("checked", profile.source_id, kind, None, out.files, table.num_rows,
                           zero_filled, out.quarantine, notes=out.notes)
     result.masked = out.masked
+    no_values = events_without_values(out, study, profile, kind)
+    result.events_without_values = no_values.to_pandas()
     if not write:
         return result
 
@@ -201,7 +205,8 @@ def store_output(
                 raise DuplicateIngestError(_duplicate_message(previous, main_name))
             return list(previous["ingest_id"])
 
-        superseded = store.commit(record, files, staged, out.quarantine, [], on_conflict, masked=out.masked)
+        superseded = store.commit(record, files, staged, out.quarantine, [], on_conflict, masked=out.masked,
+                                  events_without_values=no_values)
     finally:
         store.discard(staged)
     result.status, result.ingest_id, result.superseded = "complete", ingest_id, superseded
@@ -386,6 +391,43 @@ def assemble(out: AdapterOutput, study: Study, profile: Profile, kind: str, inge
         raise HarmonizeError(f"internal error: {missing} values have no event; please report this")
     validate_observations(table.slice(0, 0).to_pandas() if table.num_rows == 0 else _sample(table))
     return table
+
+
+_NO_VALUES_ARROW = pa.schema([
+    ("source_id", pa.string()), ("source_kind", pa.string()), ("provider_type", pa.string()),
+    ("protocol", pa.string()), ("event_id", pa.string()), ("event_start", pa.timestamp("us")),
+    ("event_end", pa.timestamp("us")), ("year", pa.int32()), ("season", pa.string()),
+    ("season_year", pa.int32()), ("depth_layer", pa.string()), ("lat", pa.float64()), ("lon", pa.float64()),
+    ("cell_id", pa.string()), ("stratum", pa.string()), ("depth_min_m", pa.float64()),
+    ("depth_max_m", pa.float64()), ("bottom_depth_m", pa.float64()), ("effort", pa.float64()),
+    ("effort_unit", pa.string()), ("observer_id", pa.string()), ("flags", pa.list_(pa.string())),
+    ("source_file", pa.string()), ("source_row", pa.int64()),
+])
+
+
+def events_without_values(out: AdapterOutput, study: Study, profile: Profile, kind: str) -> pa.Table:
+    """The accepted events that yield no observation row, tagged, one row per event.
+
+    An empty haul under a profile without a zero-filling protocol, or a segment whose bird
+    rows all went to quarantine, is accepted but has no value: the store keeps it in its
+    ``events_without_values`` table so that its input row stays accounted for. Columns:
+    :data:`harmonize.store.EVENTS_WITHOUT_VALUES_COLUMNS` but ingest_id; ``flags`` are the
+    event's flags (e.g. catch_incomplete, counts_incomplete when records were rejected).
+    """
+    events = out.events
+    lonely = events[~events["event_id"].isin(out.values["event_id"])] if len(events) else events
+    if lonely.empty:
+        return _NO_VALUES_ARROW.empty_table()
+    ev = tag_events(lonely, study)  # tags are per event: tagging the few alone gives the same tags
+    for col, value in (("source_id", profile.source_id), ("source_kind", kind),
+                       ("provider_type", profile.provider_type), ("protocol", profile.protocol),
+                       ("source_file", Path(_main_file(out)).name)):
+        ev[col] = value
+    for col in _NO_VALUES_ARROW.names:
+        if col not in ev:
+            ev[col] = None
+    ev["source_row"] = pd.array(ev["source_row"], dtype="Int64")
+    return _to_arrow(ev, _NO_VALUES_ARROW)
 
 
 def _sample(table: pa.Table, n: int = 200_000) -> pd.DataFrame:

@@ -4,6 +4,10 @@ Observation rows live in a hive-partitioned parquet dataset under ``store/observ
 (source_kind=.../season_year=.../*.parquet). The database holds the manifest of live
 parquet files, the ingests, the quarantine and an ``observations`` view over the live files.
 
+Accepted events that yield no observation row (a haul with no catch under a profile without
+a zero-filling protocol, a segment whose bird rows were all quarantined) are kept in the
+``events_without_values`` table, so that every input row stays accounted for.
+
 Crash safety: an ingest writes its parquet files into ``store/staging/<ingest_id>/``
 without any lock, then, holding the database's write lock, moves them into place and
 records them in one transaction. Files that are not in the manifest are never read, so a
@@ -24,6 +28,7 @@ from pathlib import Path
 
 import duckdb
 import pandas as pd
+import pyarrow as pa
 
 from harmonize import __version__, twins
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns
@@ -33,7 +38,19 @@ DB_NAME = "harmonized.duckdb"
 OBSERVATIONS_DIR = "observations"
 STAGING_DIR = "staging"
 PARTITION_COLUMNS = ("source_kind", "season_year")
+#: Version of the store's tables (store_meta key ``store_version``); a store without the key
+#: is version 1. 2: the ``events_without_values`` table. A writer brings an older store up to
+#: date (the tables are created when missing); readers of an older store see no such events.
+STORE_VERSION = 2
 _LOCK_RE = re.compile(r"\(PID (\d+)\)")
+
+#: Columns of ``events_without_values``, in table order (see docs/store.md).
+EVENTS_WITHOUT_VALUES_COLUMNS = (
+    "ingest_id", "source_id", "source_kind", "provider_type", "protocol", "event_id", "event_start",
+    "event_end", "year", "season", "season_year", "depth_layer", "lat", "lon", "cell_id", "stratum",
+    "depth_min_m", "depth_max_m", "bottom_depth_m", "effort", "effort_unit", "observer_id", "flags",
+    "source_file", "source_row",
+)
 
 _SCHEMA_SQL = """
 CREATE TABLE IF NOT EXISTS store_meta (key VARCHAR PRIMARY KEY, value VARCHAR);
@@ -81,6 +98,33 @@ CREATE TABLE IF NOT EXISTS quarantine_summary (
     reason_code VARCHAR NOT NULL,
     n_values BIGINT NOT NULL,
     message VARCHAR NOT NULL
+);
+CREATE TABLE IF NOT EXISTS events_without_values (
+    ingest_id VARCHAR NOT NULL,
+    source_id VARCHAR NOT NULL,
+    source_kind VARCHAR NOT NULL,
+    provider_type VARCHAR,
+    protocol VARCHAR,
+    event_id VARCHAR,
+    event_start TIMESTAMP,
+    event_end TIMESTAMP,
+    year INTEGER,
+    season VARCHAR,
+    season_year INTEGER,
+    depth_layer VARCHAR,
+    lat DOUBLE,
+    lon DOUBLE,
+    cell_id VARCHAR,
+    stratum VARCHAR,
+    depth_min_m DOUBLE,
+    depth_max_m DOUBLE,
+    bottom_depth_m DOUBLE,
+    effort DOUBLE,
+    effort_unit VARCHAR,
+    observer_id VARCHAR,
+    flags VARCHAR[],
+    source_file VARCHAR,
+    source_row BIGINT
 );
 CREATE TABLE IF NOT EXISTS observation_files (
     ingest_id VARCHAR NOT NULL,
@@ -201,6 +245,17 @@ class Store:
                 f"the store at {self.directory} uses contract version {row[0][0]}, this harmonize "
                 f"{__version__} writes version {CONTRACT_VERSION}"
             )
+        # the tables of _SCHEMA_SQL exist now (created when missing): record the store version
+        found = con.execute("SELECT value FROM store_meta WHERE key = 'store_version'").fetchall()
+        version = int(found[0][0]) if found else 1
+        if version > STORE_VERSION:
+            raise StoreError(
+                f"the store at {self.directory} was written by a newer harmonize (store version {version}, "
+                f"this harmonize {__version__} knows version {STORE_VERSION}); upgrade harmonize"
+            )
+        if version < STORE_VERSION:
+            con.execute("DELETE FROM store_meta WHERE key = 'store_version'")
+            con.execute("INSERT INTO store_meta VALUES ('store_version', ?)", [str(STORE_VERSION)])
 
     def _live_paths(self, con: duckdb.DuckDBPyConnection) -> list[str]:
         rows = con.execute(
@@ -275,12 +330,17 @@ class Store:
         supersede: Sequence[str],
         on_conflict: callable,  # type: ignore[valid-type]
         masked: pd.DataFrame | None = None,
+        events_without_values: pa.Table | None = None,
     ) -> list[str]:
         """Move staged parquet files into place and record the ingest in one transaction.
 
         ``on_conflict(previous)`` is called under the write lock with the ingests that now
         match this one (another process may have committed meanwhile); it returns the ids
         to supersede or raises. Returns the superseded ingest ids.
+
+        ``events_without_values`` (columns :data:`EVENTS_WITHOUT_VALUES_COLUMNS` but
+        ingest_id) are the ingest's accepted events that yield no observation row; they are
+        recorded in the same transaction.
         """
         with self.connect(read_only=False) as con:
             self._remove_leftovers(con)
@@ -335,6 +395,13 @@ class Store:
                     con.register("_incoming_masked", m)
                     con.execute("INSERT INTO quarantine_summary SELECT * FROM _incoming_masked")
                     con.unregister("_incoming_masked")
+                if events_without_values is not None and events_without_values.num_rows:
+                    con.register("_incoming_events", events_without_values)
+                    names = ", ".join(f'"{c}"' for c in EVENTS_WITHOUT_VALUES_COLUMNS[1:])
+                    con.execute(f"INSERT INTO events_without_values (ingest_id, {names}) "
+                                f"SELECT ?, {names} FROM _incoming_events", [record.ingest_id])
+                    con.unregister("_incoming_events")
+                    _crash_point("events_without_values")
                 if record.duplicates is not None:
                     twins.record_settings(con, record.ingest_id, record.source_id, record.duplicates)
                 self._define_view(con, temporary=False)
@@ -400,6 +467,28 @@ class Store:
                    WHERE i.status = 'complete' GROUP BY ALL ORDER BY ALL"""
             ).df()
 
+    def events_without_values(self, ingest_id: str | None = None, source_id: str | None = None) -> pd.DataFrame:
+        """Accepted events of complete ingests that yield no observation row.
+
+        One row per event, with its tags, effort, flags and input row (columns
+        :data:`EVENTS_WITHOUT_VALUES_COLUMNS`); empty for a store written before the table
+        existed (store version 1). Superseded ingests' events are left out, as their
+        observations are.
+        """
+        cols = ", ".join(f'e."{c}"' for c in EVENTS_WITHOUT_VALUES_COLUMNS)
+        with self.connect(view=False) as con:
+            if not _has_table(con, "events_without_values"):
+                return pd.DataFrame({c: pd.Series(dtype=object) for c in EVENTS_WITHOUT_VALUES_COLUMNS})
+            sql = f"""SELECT {cols} FROM events_without_values e JOIN ingests i USING (ingest_id)
+                      WHERE i.status = 'complete'"""
+            params: list[object] = []
+            for col, value in (("e.ingest_id", ingest_id), ("e.source_id", source_id)):
+                if value is not None:
+                    sql += f" AND {col} = ?"
+                    params.append(value)
+            sql += " ORDER BY e.source_kind, e.source_id, e.event_start, e.event_id"
+            return con.execute(sql, params).df()
+
     def quarantine(self, ingest_id: str | None = None, reason: str | None = None,
                    source_id: str | None = None, limit: int | None = None) -> pd.DataFrame:
         """Rejected rows of complete ingests (newest ingest first), optionally filtered."""
@@ -464,14 +553,31 @@ class Store:
                    WHERE i.status = 'complete' GROUP BY ALL HAVING i.records_written <> coalesce(sum(f.n_rows), 0)"""
             ).fetchall()
             problems += [f"ingest {i}: records_written {a} but {b} rows in its files" for i, a, b in bad]
+            if _has_table(con, "events_without_values"):
+                # an event is either in the observations or among the events without values
+                both = con.execute(
+                    """SELECT e.ingest_id, e.event_id FROM events_without_values e
+                       JOIN ingests i USING (ingest_id)
+                       WHERE i.status = 'complete' AND EXISTS (SELECT 1 FROM observations_base o
+                             WHERE o.ingest_id = e.ingest_id AND o.event_id = e.event_id)
+                       ORDER BY ALL LIMIT 20"""
+                ).fetchall()
+                problems += [f"ingest {i}: event {e} is among the events without values but has observation rows"
+                             for i, e in both]
             problems += self._row_accounting(con)
         return problems
 
     @staticmethod
     def _row_accounting(con: duckdb.DuckDBPyConnection) -> list[str]:
-        """Every data row 1..rows_read of each row-traced input file is accepted or quarantined."""
+        """Every data row 1..rows_read of each row-traced input file is accepted or quarantined.
+
+        Accepted rows are found in the observations (events row, records rows) and, for
+        accepted events that yield no observation row, in ``events_without_values``.
+        """
+        no_values = ("UNION SELECT ingest_id, source_file, source_row FROM events_without_values "
+                     "WHERE source_row IS NOT NULL" if _has_table(con, "events_without_values") else "")
         rows = con.execute(
-            """
+            f"""
             WITH files AS (
                 SELECT f.ingest_id, f.role, f.file_name, f.rows_read
                 FROM ingest_files f JOIN ingests i USING (ingest_id)
@@ -485,6 +591,7 @@ class Store:
                 FROM observations o JOIN files f ON f.ingest_id = o.ingest_id AND f.role IN ('records', 'rows')
                 UNION
                 SELECT ingest_id, source_file, source_row FROM quarantine
+                {no_values}
             )
             SELECT f.ingest_id, f.file_name, f.rows_read, count(DISTINCT s.row) AS found
             FROM files f LEFT JOIN seen s ON s.ingest_id = f.ingest_id AND s.file_name = f.file_name
@@ -494,6 +601,10 @@ class Store:
         ).fetchall()
         return [f"ingest {i}: {name} has {n} data rows but only {k} are accepted or quarantined"
                 for i, name, n, k in rows]
+
+
+def _has_table(con: duckdb.DuckDBPyConnection, name: str) -> bool:
+    return bool(con.execute("SELECT count(*) FROM duckdb_tables() WHERE table_name = ?", [name]).fetchall()[0][0])
 
 
 def _crash_point(name: str) -> None:

@@ -40,6 +40,21 @@ def test_open_ingest_status_quarantine_and_observations(study_dir: Path, tmp_pat
         hz.export("xls", tmp_path / "x.xls")
 
 
+def test_status_lists_events_without_values(study_dir: Path) -> None:
+    # Without a protocol, haul H010 (no catch row) yields no observation row.
+    text = (study_dir / "profiles" / "trawl_agency.toml").read_text()
+    (study_dir / "profiles" / "trawl_bare.toml").write_text(text.replace('protocol = "keldmar_bottom_trawl"\n', ""))
+    hz = open_study(study_dir)
+    checked = hz.check("trawl_bare", events="hauls_messy.csv", records="catch_messy.csv")
+    assert list(checked[0].events_without_values["event_id"]) == ["H010"]
+    done = hz.ingest("trawl_bare", events="hauls_messy.csv", records="catch_messy.csv")
+    status = hz.status(check=True)
+    assert status.problems == []
+    empty = status["events_without_values"]
+    assert list(zip(empty["ingest_id"], empty["event_id"], empty["source_row"], strict=True)) == [
+        (done[0].ingest_id, "H010", 10)]
+
+
 def test_audit_through_the_api(study_dir: Path) -> None:
     pytest.importorskip("harmonize.audit.run")
     hz = open_study(study_dir)

@@ -74,3 +74,23 @@ def test_missing_file_and_wrong_arguments(study_dir: Path) -> None:
     assert out.returncode == 2 and "a trawl source reads two tables; pass --events FILE --records FILE" in out.stderr
     out = harmonize(*args, "check", "no_such_profile", "x.csv")
     assert out.returncode == 2 and "no such profile; profiles in the study:" in out.stderr
+
+
+def test_ingest_and_status_count_events_without_values(study_dir: Path) -> None:
+    # Without a protocol, haul H010 (no catch row) yields no observation row.
+    text = (study_dir / "profiles" / "trawl_agency.toml").read_text()
+    (study_dir / "profiles" / "trawl_bare.toml").write_text(text.replace('protocol = "keldmar_bottom_trawl"\n', ""))
+    args = ["--study", str(study_dir)]
+    files = ["--events", str(study_dir / "hauls_messy.csv"), "--records", str(study_dir / "catch_messy.csv")]
+    ingest = harmonize(*args, "ingest", "trawl_bare", *files)
+    assert ingest.returncode == 0, ingest.stderr
+    assert "observation rows written: 15" in ingest.stdout
+    assert "accepted events without any observation row: 1 (kept in the store's events_without_values)" in ingest.stdout
+    status = harmonize(*args, "status", "--check")
+    assert status.returncode == 0 and "integrity check passed" in status.stdout
+    assert "accepted events without any observation row: 1 (keldmar_trawl 1)" in status.stdout
+    # with the protocol every haul has values (zeros): no such line
+    plain = harmonize(*args, "ingest", "--replace", "trawl_agency", *files)
+    assert plain.returncode == 0, plain.stderr
+    assert "without any observation row" not in plain.stdout
+    assert "without any observation row" not in harmonize(*args, "status").stdout

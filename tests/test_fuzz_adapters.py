@@ -39,10 +39,9 @@ FUZZED = ["trawl", "plankton", "transect", "opportunistic", "darwin_core", "effo
 #: carriage returns shift row numbers; the corpus case bare_carriage_return_mid_line keeps
 #: that known bug in view (strict xfail) until it is fixed.
 EXCLUDED: dict[str, frozenset[str]] = {"effort": LINE_STRUCTURE}
-#: Kinds whose committed ingests are fuzzed through the store's integrity check. Transect
-#: waits for a fix: a segment whose only bird row is malformed is stored with no observation
-#: row (corpus case records_last_line_cut, strict xfail).
-COMMITTED = [k for k in FUZZED if k != "transect"]
+#: Kinds whose committed ingests are fuzzed through the store's integrity check (an accepted
+#: event that yields no observation row is traced through events_without_values).
+COMMITTED = FUZZED
 
 
 def _draw_mutations(data: st.DataObject, kind: str, max_size: int) -> list[Mutation]:
@@ -66,14 +65,14 @@ def _broken_inputs(study: Study, kind: str, role: str, ms: list[Mutation]) -> di
     return write_inputs(study.root / "inputs" / kind, originals, {role: broken})
 
 
-@pytest.mark.parametrize("kind", [
-    pytest.param(k, marks=pytest.mark.xfail(
-        strict=False,
-        reason="known defect, found by this test on some runs: after delimiter damage (semicolons) "
-               "the effort reader can quarantine one ping twice; tracked in docs/reliability.md"))
-    if k == "effort" else k
-    for k in FUZZED
-])
+#: known defect, found by these tests on some runs (tracked in docs/reliability.md)
+_PING_TWICE = pytest.mark.xfail(
+    strict=False,
+    reason="known defect, found by this test on some runs: after delimiter damage (semicolons) "
+           "the effort reader can quarantine one ping twice; tracked in docs/reliability.md")
+
+
+@pytest.mark.parametrize("kind", [pytest.param(k, marks=_PING_TWICE) if k == "effort" else k for k in FUZZED])
 @_FIXTURE_SETTINGS
 @given(data=st.data())
 def test_broken_file_is_refused_in_one_line_or_every_row_is_accounted_for(
@@ -86,12 +85,7 @@ def test_broken_file_is_refused_in_one_line_or_every_row_is_accounted_for(
     check_outcome(fuzz_study, profile, inputs, write=False)
 
 
-@pytest.mark.xfail(
-    strict=False,
-    reason="known defect, found by this test on some runs: an accepted event whose records were all "
-           "rejected yields no observation row, so status --check reports its row as unaccounted; "
-           "tracked in docs/reliability.md")
-@pytest.mark.parametrize("kind", COMMITTED)
+@pytest.mark.parametrize("kind", [pytest.param(k, marks=_PING_TWICE) if k == "effort" else k for k in COMMITTED])
 @settings(_FIXTURE_SETTINGS, max_examples=max(5, settings().max_examples // 4))
 @given(data=st.data())
 def test_broken_file_committed_leaves_a_sound_store(fuzz_study: Study, kind: str, data: st.DataObject) -> None:

@@ -5,6 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import duckdb
+import pandas as pd
 import pytest
 
 from harmonize import Store, load_study, run
@@ -62,4 +63,82 @@ def test_reingest_is_a_noop_and_replace_supersedes(study_dir: Path) -> None:
     with store.connect() as con:
         live = con.execute("SELECT DISTINCT ingest_id FROM observations").fetchall()
     assert live == [(third.ingest_id,)]
+    assert store.check() == []
+
+
+def _without_protocol(study_dir: Path) -> str:
+    """A copy of the trawl profile with no zero-filling protocol (profiles/trawl_bare.toml)."""
+    text = (study_dir / "profiles" / "trawl_agency.toml").read_text()
+    assert 'protocol = "keldmar_bottom_trawl"\n' in text
+    (study_dir / "profiles" / "trawl_bare.toml").write_text(text.replace('protocol = "keldmar_bottom_trawl"\n', ""))
+    return "trawl_bare"
+
+
+def test_empty_haul_without_protocol_is_kept_without_values(study_dir: Path) -> None:
+    # H010 has no catch row and no bottom temperature; with no protocol nothing is inferred
+    # for it, so it yields no observation row: a real empty haul, kept in events_without_values.
+    study = load_study(study_dir)
+    result = run(study, _without_protocol(study_dir), _inputs(study_dir))
+    assert list(result.events_without_values["event_id"]) == ["H010"]
+    store = Store(study.store_dir)
+    assert store.check() == []
+    empty = store.events_without_values()
+    assert len(empty) == 1
+    h010 = empty.iloc[0]
+    assert (h010["ingest_id"], h010["source_id"], h010["source_kind"], h010["event_id"]) == (
+        result.ingest_id, "keldmar_trawl", "trawl", "H010")
+    assert (h010["source_file"], h010["source_row"], list(h010["flags"])) == ("hauls_messy.csv", 10, [])
+    assert h010["protocol"] is None
+    assert (h010["year"], h010["season"], h010["season_year"], h010["depth_layer"]) == (2020, "summer", 2020, "near_bottom")
+    assert h010["event_start"] == pd.Timestamp("2020-06-15 08:00")
+    # 70 fathoms (1 fathom = 1.8288 m exactly, international yard and pound agreement 1959)
+    assert h010["bottom_depth_m"] == pytest.approx(70 * 1.8288)
+    # area swept = towed distance x wing spread: 0.025 degree of latitude (about 2.78 km) x 20 m
+    assert h010["effort_unit"] == "km2" and h010["effort"] == pytest.approx(2.7785 * 0.020, rel=1e-3)
+    assert h010["lat"] == pytest.approx(44.0125) and h010["lon"] == pytest.approx(-150.5)
+    assert h010["cell_id"] is not None
+    with store.connect() as con:
+        assert con.execute("SELECT count(*) FROM observations WHERE event_id = 'H010'").fetchall()[0][0] == 0
+
+
+def test_replace_supersedes_events_without_values(study_dir: Path) -> None:
+    study = load_study(study_dir)
+    profile = _without_protocol(study_dir)
+    first = run(study, profile, _inputs(study_dir))
+    store = Store(study.store_dir)
+    assert list(store.events_without_values()["event_id"]) == ["H010"]
+    # the corrected catch file gives H010 a catch: the new ingest has no event without values,
+    # and the superseded ingest's H010 is no longer read
+    catch = study_dir / "catch_messy.csv"
+    catch.write_text(catch.read_text().replace("H099,keld cod", "H010,keld cod"))
+    second = run(study, profile, _inputs(study_dir), replace=True)
+    assert second.superseded == [first.ingest_id] and second.events_without_values.empty
+    assert store.events_without_values().empty
+    assert store.check() == []
+    # a replace that empties H010 again brings it back, under the new ingest only
+    catch.write_text(catch.read_text().replace("H010,keld cod", "H099,keld cod"))
+    third = run(study, profile, _inputs(study_dir), replace=True)
+    empty = store.events_without_values()
+    assert list(zip(empty["ingest_id"], empty["event_id"], strict=True)) == [(third.ingest_id, "H010")]
+    assert store.check() == []
+
+
+def test_store_without_the_events_without_values_table_still_opens(study_dir: Path) -> None:
+    # A store written before the table existed (store version 1): readers see no such
+    # events and the check passes; the next writer adds the table and records version 2.
+    study = load_study(study_dir)
+    run(study, "trawl_agency", _inputs(study_dir))
+    store = Store(study.store_dir)
+    con = duckdb.connect(str(store.db_path))
+    con.execute("DROP TABLE events_without_values")
+    con.execute("DELETE FROM store_meta WHERE key = 'store_version'")
+    con.close()
+    assert store.events_without_values().empty
+    assert list(store.events_without_values().columns)[:3] == ["ingest_id", "source_id", "source_kind"]
+    assert store.check() == []
+    run(study, _without_protocol(study_dir), {"events": study_dir / "hauls_messy.csv",
+                                              "records": study_dir / "catch_messy.csv"}, replace=True)
+    with store.connect() as c:
+        assert c.execute("SELECT value FROM store_meta WHERE key = 'store_version'").fetchall() == [("2",)]
+    assert list(store.events_without_values()["event_id"]) == ["H010"]
     assert store.check() == []

@@ -16,9 +16,10 @@ from harmonize import Store, load_study
 BIN = Path(sys.executable).parent / "harmonize"
 
 
-def _ingest(study_dir: Path, env: dict[str, str] | None = None) -> subprocess.CompletedProcess[str]:
+def _ingest(study_dir: Path, env: dict[str, str] | None = None,
+            profile: str = "trawl_agency") -> subprocess.CompletedProcess[str]:
     return subprocess.run(
-        [str(BIN), "--study", str(study_dir), "ingest", "trawl_agency",
+        [str(BIN), "--study", str(study_dir), "ingest", profile,
          "--events", str(study_dir / "hauls_messy.csv"), "--records", str(study_dir / "catch_messy.csv")],
         capture_output=True, text=True, timeout=120, env={**os.environ, **(env or {})},
     )
@@ -48,6 +49,36 @@ def test_killed_ingest_leaves_all_or_nothing(study_dir: Path, point: str) -> Non
     if point != "after_commit":
         staging = store.directory / "staging"
         assert not staging.is_dir() or list(staging.iterdir()) == []
+
+
+@pytest.mark.parametrize("point", ["moving", "before_transaction", "events_without_values", "before_commit",
+                                   "after_commit"])
+def test_killed_ingest_with_an_empty_haul_leaves_all_or_nothing(study_dir: Path, point: str) -> None:
+    # Without a protocol, haul H010 (no catch row) yields no observation row: it is written to
+    # events_without_values in the ingest's transaction, so a kill leaves it with the ingest or not at all.
+    text = (study_dir / "profiles" / "trawl_agency.toml").read_text()
+    (study_dir / "profiles" / "trawl_bare.toml").write_text(text.replace('protocol = "keldmar_bottom_trawl"\n', ""))
+    killed = _ingest(study_dir, {"HARMONIZE_CRASH_AT": point}, profile="trawl_bare")
+    assert killed.returncode == -9  # SIGKILL
+    store = Store(load_study(study_dir).store_dir)
+    committed = point == "after_commit"
+    if store.exists():
+        assert store.check() == []
+        assert len(store.ingests(include_superseded=False)) == int(committed)
+        assert list(store.events_without_values()["event_id"]) == (["H010"] if committed else [])
+        with store.connect() as con:  # not even rows of an ingest that never committed
+            n = con.execute("SELECT count(*) FROM events_without_values").fetchall()[0][0]
+        assert n == int(committed)
+    else:
+        assert not committed
+    rerun = _ingest(study_dir, profile="trawl_bare")
+    assert rerun.returncode == 0, rerun.stderr
+    assert ("nothing to do" in rerun.stdout) == committed
+    assert ("accepted events without any observation row: 1" in rerun.stdout) == (not committed)
+    assert store.check() == []
+    assert list(store.events_without_values()["event_id"]) == ["H010"]
+    with store.connect() as con:
+        assert con.execute("SELECT count(*) FROM observations").fetchall()[0][0] == 15
 
 
 def test_second_writer_is_told_the_store_is_busy(study_dir: Path) -> None:

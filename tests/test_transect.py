@@ -242,3 +242,33 @@ def test_reingest_is_a_noop_and_ids_are_stable(transect_dir: Path) -> None:
     assert checked.records_written == first.records_written == len(_observations(transect_dir))
     again = run(study, "transect_agency", _inputs(transect_dir))
     assert again.status == "unchanged" and again.ingest_id == first.ingest_id
+
+
+def test_segment_whose_only_bird_row_is_malformed_is_kept_without_values(study_dir: Path) -> None:
+    # B's only bird row is cut short: no segment can claim it, so no segment's counts are
+    # known complete (flag counts_incomplete, no inferred zeros) and B yields no value. It is
+    # kept in events_without_values, so its events row stays accounted for.
+    (study_dir / "s.csv").write_text(
+        "SEG,T_START,T_END,LAT1,LON1,LAT2,LON2,DIST_NM,STRIP_M,OBSERVER\n"
+        "A,2022-11-05T08:00,2022-11-05T08:10,43.0,-152.0,43.0,-151.95,,300,Oskar Thelin\n"
+        "B,2022-11-05T08:10,2022-11-05T08:20,43.0,-151.95,43.02,-151.92,,300,Maren Lindqvist\n")
+    (study_dir / "b.csv").write_text("SEG,SPECIES,N,FLYING\nA,pale gull,4,N\nB,keld\n")
+    study = load_study(study_dir)
+    result = run(study, "transect_agency", {"events": study_dir / "s.csv", "records": study_dir / "b.csv"})
+    assert [(f.rows_read, f.rows_accepted, f.rows_quarantined) for f in result.files] == [(2, 2, 0), (2, 1, 1)]
+    assert result.records_written == 1  # A's gull; no zeros
+    assert any("no readable segment id" in n for n in result.notes)
+    store = Store(study.store_dir)
+    assert store.check() == []
+    empty = store.events_without_values()
+    assert list(empty["event_id"]) == ["B"]
+    b = empty.iloc[0]
+    assert list(b["flags"]) == ["counts_incomplete"]
+    assert (b["source_file"], b["source_row"], b["season"], b["season_year"]) == ("s.csv", 2, "autumn", 2022)
+    # strip area = geodesic length (geographiclib, Karney 2013) x 300 m
+    length_km = WGS84.Inverse(43.0, -151.95, 43.02, -151.92)["s12"] / 1000
+    assert (b["effort_unit"], b["effort"]) == ("km2", pytest.approx(length_km * 0.3, rel=1e-9))
+    # the observer is a pseudonym, never the name
+    assert b["observer_id"] == pseudonymise(pd.Series(["Maren Lindqvist"]), study_salt(study.root))[0]
+    gull = _observations(study_dir).iloc[0]
+    assert (gull["event_id"], gull["value"], list(gull["flags"])) == ("A", 4.0, ["counts_incomplete"])

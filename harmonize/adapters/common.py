@@ -166,3 +166,10 @@ def zero_fill(
     zeros = pairs[["event_id", "variable", "life_stage"]].merge(q, how="cross")
     zeros["value"] = 0.0
     return zeros[cols].reset_index(drop=True)
+
+
+def unattributed_note(file_name: str, n: int, record: str, event: str) -> str:
+    """The ingest note for quarantined records that no event can claim."""
+    return (f"{file_name}: {n} quarantined {record} row(s) have no readable {event} id, so no {event}'s "
+            f"counts are known complete: every {event} is flagged counts_incomplete and no zeros were "
+            "inferred; fix those rows and ingest again with --replace")

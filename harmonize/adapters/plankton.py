@@ -29,6 +29,7 @@ from harmonize.adapters.common import (
     reject_outside_domain,
     reject_records_of_events,
     resolve_taxa,
+    unattributed_note,
     zero_fill,
 )
 from harmonize.adapters.reading import Rejections
@@ -147,6 +148,10 @@ class PlanktonAdapter(Adapter):
         lost = ~rc_ok & rc["event_id"].isin(ev["event_id"][ev_alive]).to_numpy()
         incomplete = rc["event_id"][lost].dropna().unique()
         blocked = pd.DataFrame({"event_id": rc["event_id"][lost], "variable": taxon.fillna(guess)[lost]})
+        # A quarantined count row with no readable tow id (a malformed line, an empty id) may
+        # belong to any tow: no tow's counts are known complete, so no absence is inferred.
+        unattributed = int((~rc_ok & rc["event_id"].isna().to_numpy()).sum())
+        notes = [unattributed_note(rc_raw.path.name, unattributed, "count", "tow")] if unattributed else []
         # A count without a stage could be any stage: no stage of that taxon is inferred absent.
         staged_taxa = set(study.targets.loc[study.targets["life_stage"].notna(), "taxon"])
         unstaged = rc_ok & stage.isna().to_numpy() & taxon.isin(staged_taxa).fillna(False).to_numpy()
@@ -163,18 +168,18 @@ class PlanktonAdapter(Adapter):
         })
         values = _count_values(counts)
         zeros = zero_fill(
-            tows.assign(year=tows["event_start"].dt.year)[["event_id", "year"]],
+            tows.assign(year=tows["event_start"].dt.year)[["event_id", "year"]].iloc[:0 if unattributed else None],
             counts[["event_id", "variable", "life_stage"]], blocked, study, profile.protocol, [("count", "1")],
         )
         zeros = zeros.assign(variable_kind="taxon", zero_filled=True, flags=[()] * len(zeros),
                              source_record_rows=[()] * len(zeros), n_values=0)
         values = pd.concat([values, zeros], ignore_index=True)
         values["n_vessels"] = pd.NA
-        flags["counts_incomplete"] = tows["event_id"].isin(incomplete).to_numpy()
+        flags["counts_incomplete"] = tows["event_id"].isin(incomplete).to_numpy() | (unattributed > 0)
         tows["flags"] = flag_tuples(flags)
         if progress:
             progress("convert", 3, 3)
-        return finish([ev_raw, rc_raw], rej, tows, values)
+        return finish([ev_raw, rc_raw], rej, tows, values, notes)
 
 
 def normalise_life_stage(stage: pd.Series) -> pd.Series:

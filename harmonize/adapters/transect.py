@@ -35,6 +35,7 @@ from harmonize.adapters.common import (
     reject_outside_domain,
     reject_records_of_events,
     resolve_taxa,
+    unattributed_note,
     zero_fill,
 )
 from harmonize.adapters.plankton import flag_tuples
@@ -139,6 +140,10 @@ class TransectAdapter(Adapter):
         lost = ~rc_ok & rc["event_id"].isin(ev["event_id"][ev_alive]).to_numpy()
         incomplete = rc["event_id"][lost].dropna().unique()
         blocked = pd.DataFrame({"event_id": rc["event_id"][lost], "variable": taxon.fillna(guess)[lost]}).dropna()
+        # A quarantined bird row with no readable segment id (a malformed line, an empty id)
+        # may belong to any segment: no segment's counts are known complete, no absence is inferred.
+        unattributed = int((~rc_ok & rc["event_id"].isna().to_numpy()).sum())
+        notes = [unattributed_note(rc_raw.path.name, unattributed, "bird", "segment")] if unattributed else []
 
         # Without an in_flight column the source does not tell flying birds apart: no behavior.
         split = "in_flight" in resolve_columns(rc_raw, fields("transect_records"), profile) or "in_flight" in profile.constants
@@ -155,6 +160,7 @@ class TransectAdapter(Adapter):
         })
         values = _bird_values(birds)
         events_year = segments.assign(year=segments["event_start"].dt.year)[["event_id", "year"]]
+        events_year = events_year.iloc[:0] if unattributed else events_year
         parts = []
         for b in ((ON_WATER, IN_FLIGHT) if split else (None,)):
             seen = birds if b is None else birds[birds["behavior"] == b]
@@ -172,11 +178,12 @@ class TransectAdapter(Adapter):
         if continuous.any():
             values.loc[continuous, "flags"] = pd.Series(
                 [(*f, "flying_not_snapshot") for f in values["flags"][continuous]], index=values.index[continuous], dtype=object)
-        flags["counts_incomplete"] = segments["event_id"].isin(incomplete).to_numpy()
+        flags["counts_incomplete"] = segments["event_id"].isin(incomplete).to_numpy() | (unattributed > 0)
         segments["flags"] = flag_tuples(flags)
         if progress:
             progress("convert", 3, 3)
-        return finish([ev_raw, rc_raw], rej, segments, values)
+        return finish([ev_raw, rc_raw], rej, segments, values, notes)
+
 
 
 def _hide_observers(ev_raw: RawTable, rc_raw: RawTable, profile: Profile, study: Study) -> None:

@@ -137,12 +137,16 @@ def wide_sql(taxa: Sequence[str], physical: Sequence[str], covariate_columns: Se
                any_value(bottom_depth_m) AS bottom_depth_m,
                max(effort) FILTER (WHERE {sampled}) AS effort,
                any_value(effort_unit) FILTER (WHERE {sampled} AND effort IS NOT NULL) AS effort_unit,
-               max(log_effort) FILTER (WHERE {sampled}) AS log_effort,
-               string_agg(DISTINCT variable, '|' ORDER BY variable)
-                   FILTER (WHERE quantity = 'presence' AND NOT {dup}) AS detected_presence_only
+               max(log_effort) FILTER (WHERE {sampled}) AS log_effort
         FROM {BASE_VIEW} WHERE {_samples_sql()} AND ({where}) GROUP BY source_id, event_id"""
-    parts = [f"WITH ev AS ({events})"]
-    joins = []
+    # presence-only taxa from the (few) presence rows alone: a DISTINCT, ordered aggregate
+    # over every row of the selection costs more than the rest of the event table
+    presence = f"""
+        SELECT source_id, event_id, string_agg(DISTINCT variable, '|' ORDER BY variable) AS detected_presence_only
+        FROM {BASE_VIEW} WHERE {_samples_sql()} AND quantity = 'presence' AND NOT {dup} AND ({where})
+        GROUP BY source_id, event_id"""
+    parts = [f"WITH ev AS ({events}), pr AS ({presence})"]
+    joins = ["LEFT JOIN pr USING (source_id, event_id)"]
     if taxa:
         measure = "CASE WHEN effort IS NOT NULL THEN density ELSE value END"
         parts.append(f""", tx AS (FROM (SELECT source_id, event_id, {key} AS k, sum({measure}) AS m
@@ -157,7 +161,7 @@ def wide_sql(taxa: Sequence[str], physical: Sequence[str], covariate_columns: Se
         joins.append("LEFT JOIN ph USING (source_id, event_id)")
     if covariate_columns:
         joins.append(f"LEFT JOIN {_COVARIATES_VIEW} USING (source_id, event_id)")
-    cols = [f"ev.{sql_ident(c)}" for c in EVENT_COLUMNS]
+    cols = [f"pr.{sql_ident(c)}" if c == "detected_presence_only" else f"ev.{sql_ident(c)}" for c in EVENT_COLUMNS]
     cols += [sql_ident(c) for c in (*physical, *covariate_columns, *taxa)]
     return (" ".join(parts) + f" SELECT {', '.join(cols)} FROM ev {' '.join(joins)} "
             "ORDER BY ev.source_id, ev.event_start, ev.event_id")
@@ -449,7 +453,7 @@ def _write_parquet_runs(con: Any, runs: list[str], path: Path, meta: dict[str, A
         schema = schema.set(i, schema.field(i).with_nullable(False))
     n = 0
     with pq.ParquetWriter(path, schema.with_metadata({PARQUET_KEY: json.dumps(meta, default=str)}),
-                          compression="zstd") as writer:
+                          compression="zstd", compression_level=3) as writer:   # DuckDB's zstd level
         for sql in runs:
             reader = con.sql(sql).to_arrow_reader(_BATCH_ROWS)
             for batch in reader:

@@ -33,6 +33,9 @@ def export_cmd(
     by_life_stage: bool = typer.Option(False, "--by-life-stage", help="wide: one column per taxon and life stage."),
     generalise_deg: float = typer.Option(0.1, "--generalise-deg",
                                          help="dwca: rounding (degrees) of events with a sensitive taxon."),
+    memory_limit: str | None = typer.Option(
+        None, "--memory-limit",
+        help="wide: DuckDB working memory, e.g. 4GB (default: HARMONIZE_EXPORT_MEMORY_LIMIT, else 2GB)."),
 ) -> None:
     """Export the store: long, wide, grid, gpkg or dwca, with the filters given."""
     if fmt not in EXPORTERS:
@@ -42,7 +45,7 @@ def export_cmd(
     filters = ExportFilters.build(",".join(kind) if kind else None, years, seasons, layers, variables, sources)
     options: dict[str, object] = {}
     if fmt == "wide":
-        options = {"quantity": quantity, "by_life_stage": by_life_stage}
+        options = {"quantity": quantity, "by_life_stage": by_life_stage, "memory_limit": memory_limit}
     elif fmt == "dwca":
         options = {"generalise_deg": generalise_deg}
     result = export(study, fmt, out, filters, **options)

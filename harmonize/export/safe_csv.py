@@ -41,12 +41,13 @@ def write_safe_csv(frame: pd.DataFrame, path: str | Path) -> None:
 
 
 def copy_safe_csv(con: duckdb.DuckDBPyConnection, query: str, path: str | Path,
-                  list_separator: str = "|") -> tuple[list[tuple[str, str]], int]:
+                  list_separator: str = "|", header: bool = True) -> tuple[list[tuple[str, str]], int]:
     """Stream the result of ``query`` to a UTF-8 CSV file with DuckDB, text cells neutralised.
 
     List columns are joined with ``list_separator`` first (CSV has no lists); timestamps are
     written as ``YYYY-MM-DD HH:MM:SS`` (UTC in harmonize). Returns the (column, type) pairs
-    of the file, for its metadata, and the number of rows written.
+    of the file, for its metadata, and the number of rows written. Without ``header`` the
+    file holds the rows only (a continuation of another file written with the same query).
     """
     described = con.execute(f"DESCRIBE ({query})").fetchall()
     select: list[str] = []
@@ -68,7 +69,7 @@ def copy_safe_csv(con: duckdb.DuckDBPyConnection, query: str, path: str | Path,
             columns.append((name, t))
     target = str(path).replace("'", "''")
     written = con.execute(
-        f"COPY (SELECT {', '.join(select)} FROM ({query})) TO '{target}' (FORMAT csv, HEADER true)").fetchall()
+        f"COPY (SELECT {', '.join(select)} FROM ({query})) TO '{target}' (FORMAT csv, HEADER {str(header).lower()})").fetchall()
     return columns, int(written[0][0])
 
 

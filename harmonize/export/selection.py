@@ -9,7 +9,11 @@ heavy lifting stays in DuckDB so that exports scale with the store, not with mem
 
 from __future__ import annotations
 
+import os
 import re
+import shutil
+import tempfile
+import uuid
 from collections.abc import Iterable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -29,6 +33,10 @@ SAMPLE_KINDS = ("trawl", "plankton", "transect", "opportunistic")
 #: The flag the twin finder sets on volunteer records that repeat another source's record.
 DUPLICATE_FLAG = "probable_duplicate"
 BASE_VIEW = "export_base"
+#: DuckDB working memory of an export (its pivots and sorts spill to disk beyond it).
+DEFAULT_MEMORY_LIMIT = "2GB"
+#: Environment variable overriding :data:`DEFAULT_MEMORY_LIMIT` (DuckDB size text: "4GB", "512MB").
+MEMORY_LIMIT_ENV = "HARMONIZE_EXPORT_MEMORY_LIMIT"
 
 _YEAR_RANGE = re.compile(r"^\s*(\d{4})\s*(?:(?:-|\.\.)\s*(\d{4}))?\s*$")
 
@@ -212,6 +220,45 @@ def open_selection(study: Study, filters: ExportFilters) -> Iterator[tuple[duckd
         filters.validate(con, list(study.seasons), [d.name for d in study.depth_layers])
         define_base(con, filters, study.min_vessels)
         yield con, base_counts(con, filters, study.min_vessels)
+
+
+def export_memory_limit(memory_limit: str | None = None) -> str:
+    """The memory limit of an export: the one given, else ``HARMONIZE_EXPORT_MEMORY_LIMIT``, else 2GB."""
+    text = memory_limit or os.environ.get(MEMORY_LIMIT_ENV) or DEFAULT_MEMORY_LIMIT
+    return str(text).strip()
+
+
+@contextmanager
+def bounded_memory(con: duckdb.DuckDBPyConnection, store_dir: Path, memory_limit: str | None = None) -> Iterator[Path]:
+    """Give ``con`` a memory limit and a private spill folder inside the store's staging folder.
+
+    DuckDB spills its hash tables and sorts to the folder beyond the limit. The folder
+    (``store/staging/export-<id>/``, marked with this process's id so that the store's next
+    writer removes it should this process die) is deleted afterwards, and the connection's
+    settings are reset. Where the store folder cannot be written, a system temporary folder
+    is used. Raises HarmonizeError when the limit is not a size DuckDB understands.
+    """
+    limit = export_memory_limit(memory_limit)
+    try:
+        spill = Store(store_dir).staging_dir(f"export-{uuid.uuid4().hex[:12]}")
+    except OSError:
+        spill = Path(tempfile.mkdtemp(prefix="harmonize-export-"))
+    try:
+        try:
+            con.execute(f"SET memory_limit = {sql_text(limit)}")
+        except duckdb.Error:
+            raise HarmonizeError(
+                f"export memory limit {limit!r} is not a size; write it as DuckDB does, e.g. \"2GB\" or "
+                f"\"512MB\" (argument memory_limit or the environment variable {MEMORY_LIMIT_ENV})") from None
+        con.execute(f"SET temp_directory = {sql_text(str(spill))}")
+        yield spill
+    finally:
+        for setting in ("memory_limit", "temp_directory"):
+            try:
+                con.execute(f"RESET {setting}")
+            except duckdb.Error:
+                pass   # the connection is closing anyway
+        shutil.rmtree(spill, ignore_errors=True)
 
 
 def prepare_target(out: str | Path, suffixes: Sequence[str]) -> Path:

@@ -4,9 +4,11 @@ from __future__ import annotations
 
 import hashlib
 import json
+import queue
 import re
+import threading
 import uuid
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -169,20 +171,21 @@ def store_output(
     inputs_sha = inputs_sha256 or _digest(sorted(shas.items()))
     config_sha = config_sha256 or _digest([profile.fingerprint, study.fingerprint, CONTRACT_VERSION])
     ingest_id = f"{started:%Y%m%dT%H%M%S%f}-{uuid.uuid4().hex[:8]}"  # sorts by start time
-    table = assemble(out, study, profile, kind, ingest_id)
-    zero_filled = int(pa.compute.sum(table["zero_filled"]).as_py() or 0)
-    result = IngestResult("checked", profile.source_id, kind, None, out.files, table.num_rows,
-                          zero_filled, out.quarantine, notes=out.notes)
+    blocks = assemble_blocks(out, study, profile, kind, ingest_id)
+    result = IngestResult("checked", profile.source_id, kind, None, out.files, 0, 0, out.quarantine, notes=out.notes)
     result.masked = out.masked
     no_values = events_without_values(out, study, profile, kind)
     result.events_without_values = no_values.to_pandas()
     if not write:
+        for block in blocks:
+            result.records_written += block.num_rows
+            result.records_zero_filled += _zero_filled(block)
         return result
 
     store = Store(study.store_dir)
     staged = store.staging_dir(ingest_id)
     try:
-        write_partitions(table, staged / "parts")
+        result.records_written, result.records_zero_filled = write_blocks(blocks, staged / "parts")
         files = [{"role": f.role, "file_name": f.path.name, "file_sha256": f.sha256, "rows_read": f.rows_read,
                   "rows_accepted": f.rows_accepted, "rows_quarantined": f.rows_quarantined} for f in out.files]
         main_file = next(f for f in out.files if f.path == main)
@@ -192,7 +195,7 @@ def store_output(
             inputs_sha256=inputs_sha, config_sha256=config_sha, started_at=started,
             finished_at=pd.Timestamp.now("UTC").tz_localize(None), rows_read=result.rows_read,
             rows_accepted=result.rows_accepted, rows_quarantined=result.rows_quarantined,
-            records_written=table.num_rows, records_zero_filled=zero_filled,
+            records_written=result.records_written, records_zero_filled=result.records_zero_filled,
             profile_file=profile.path.name, duplicates=twin_settings(profile, kind),
         )
 
@@ -298,6 +301,10 @@ def _to_arrow(frame: pd.DataFrame, schema: pa.Schema) -> pa.Table:
 
 def _list_array(col: pd.Series, typ: pa.DataType) -> pa.Array:
     """A list column from cells that are lists, tuples or arrays; any other cell becomes []."""
+    if isinstance(col.dtype, pd.ArrowDtype) and pa.types.is_list(col.dtype.pyarrow_dtype):
+        # an Arrow list column already: no Python list per row
+        arr = pa.array(col).cast(typ)
+        return pa.compute.if_else(arr.is_null(), pa.scalar([], type=typ), arr) if arr.null_count else arr
     values = col.to_numpy(dtype=object)
     try:  # lists and arrays convert in C++; None, NaN and pd.NA become nulls
         arr = pa.array(values, type=typ, from_pandas=True)
@@ -310,49 +317,56 @@ def _list_array(col: pd.Series, typ: pa.DataType) -> pa.Array:
     return arr
 
 
-def _in_store_order(values: pd.DataFrame, events: pd.DataFrame) -> pd.DataFrame:
-    """Values ordered as the store's files are (season_year, event_start, event_id; nulls last).
-
-    :func:`assemble` keeps this order, so :func:`write_partitions` usually finds the rows
-    sorted already and skips reordering them (it checks, and sorts when not).
-    """
-    if not events["event_id"].is_unique:
-        return values.copy()
-    ordered = events.sort_values(["season_year", "event_start", "event_id"], na_position="last", kind="stable")
-    position = pd.Index(ordered["event_id"]).get_indexer(values["event_id"])
-    return values.iloc[np.argsort(position, kind="stable")]
-
-
 def _keep(frame: pd.DataFrame, column: str, computed: pd.Series) -> pd.Series:
     if column in frame and frame[column].notna().any():
         return frame[column].where(frame[column].notna(), computed)
     return computed
 
 
+#: Observation rows made (and written) per block: memory holds one block of rows, not all of them.
+BLOCK_ROWS = 250_000
+#: Rows of the assembled output checked against the contract (pandera), spread over the blocks.
+SAMPLE_ROWS = 200_000
+
+
 def assemble(out: AdapterOutput, study: Study, profile: Profile, kind: str, ingest_id: str) -> pa.Table:
-    """Join tagged events and values into observation rows, in contract column order."""
+    """Join tagged events and values into observation rows, in contract column order.
+
+    The whole output as one table; :func:`assemble_blocks` gives the same rows block by block.
+    """
+    blocks = list(assemble_blocks(out, study, profile, kind, ingest_id))
+    return pa.concat_tables(blocks) if len(blocks) > 1 else blocks[0]
+
+
+def assemble_blocks(out: AdapterOutput, study: Study, profile: Profile, kind: str, ingest_id: str,
+                    block_rows: int | None = None) -> Iterator[pa.Table]:
+    """Observation rows in blocks of at most ``block_rows`` rows (default :data:`BLOCK_ROWS`), in store order.
+
+    Yields at least one table (an empty one when there are no values). The blocks, put end
+    to end, are the rows :func:`assemble` returns; a block is made only when the previous one
+    has been consumed, so a caller that writes each block holds one block of rows at a time.
+    Values are kept as Arrow columns (strings dictionary-encoded when the adapter gave
+    categoricals) until their block is made.
+    """
+    block_rows = block_rows or BLOCK_ROWS
     ev = tag_events(out.events, study)
     ev = ev.rename(columns={"flags": "event_flags"})
     for col in _EVENT_ARROW.names:
         if col not in ev:
             ev[col] = None
     ev_tab = _to_arrow(ev, _EVENT_ARROW)  # flags that are not lists become []
-    va = out.values.rename(columns={"flags": "value_flags"})
-    for col in _VALUE_ARROW.names:
-        if col not in va:
-            va[col] = None
-    va = _in_store_order(va[_VALUE_ARROW.names], ev)
-    for col in ("life_stage", "variable", "event_id", "behavior"):
-        va[col] = va[col].astype(object).where(va[col].notna(), None)
-    for col in ("n_values", "n_vessels"):
-        va[col] = pd.array(va[col], dtype="Int32")
-    va["no_effort"] = va["no_effort"].fillna(False).astype(bool)
-    va_tab = _to_arrow(va, _VALUE_ARROW)
-
+    va_tab = _values_to_arrow(out.values)
+    unique = ev["event_id"].is_unique
+    if unique:
+        # each value's event row, found by integer code when the adapter gave categoricals
+        position = _event_positions(pd.Index(ev["event_id"]), out.values["event_id"])
+        missing = int((position < 0).sum())
+        if missing:
+            raise HarmonizeError(f"internal error: {missing} values have no event; please report this")
+        order = _store_order(position, ev)
+    del ev
     con = duckdb.connect()
     try:
-        con.register("ev", ev_tab)
-        con.register("va", va_tab)
         cols = dict(observation_sql_columns())
         params = [ingest_id, profile.source_id, kind, profile.provider_type, profile.protocol, Path(_main_file(out)).name]
         exprs = {
@@ -371,26 +385,37 @@ def assemble(out: AdapterOutput, study: Study, profile: Profile, kind: str, inge
             if expr is None:
                 expr = f"v.{col}" if col in _VALUE_ARROW.names else f"e.{col}"
             select.append(f"CAST({expr} AS {typ}) AS \"{col}\"")
-        if ev["event_id"].is_unique:
-            # each value's event row, taken by position: the rows stay in the values' order
-            # (the store's order, see _in_store_order), which a hash join would not keep
-            position = pd.Index(ev["event_id"]).get_indexer(va["event_id"])
-            missing = int((position < 0).sum())
+        if not unique:
+            # a hash join over all rows (events whose ids repeat are rare and small)
+            con.register("ev", ev_tab)
+            con.register("va", _decoded(va_tab))
+            table = con.sql(f"SELECT {', '.join(select)} FROM va v JOIN ev e USING (event_id)", params=params).to_arrow_table()
+            missing = con.execute("SELECT count(*) FROM va v ANTI JOIN ev e USING (event_id)").fetchall()[0][0]
             if missing:
                 raise HarmonizeError(f"internal error: {missing} values have no event; please report this")
-            con.register("ev_rows", ev_tab.take(pa.array(position, pa.int64())))
-            sql = f"SELECT {', '.join(select)} FROM va v POSITIONAL JOIN ev_rows e"
-            table = con.sql(sql, params=params).to_arrow_table()
-        else:
-            sql = f"SELECT {', '.join(select)} FROM va v JOIN ev e USING (event_id)"
-            table = con.sql(sql, params=params).to_arrow_table()
-            missing = con.execute("SELECT count(*) FROM va v ANTI JOIN ev e USING (event_id)").fetchall()[0][0]
+            con.unregister("va")
+            del va_tab
+            starts = range(0, max(table.num_rows, 1), block_rows)
+            for i in starts:
+                block = table.slice(i, block_rows)
+                _validate_block(block, len(starts), i)
+                yield block
+            return
+        # each block: its values (taken in store order) beside their event rows, by position;
+        # the POSITIONAL JOIN keeps that order, which a hash join would not
+        sql = f"SELECT {', '.join(select)} FROM va v POSITIONAL JOIN ev_rows e"
+        starts = range(0, max(len(order), 1), block_rows)
+        for i in starts:
+            take = pa.array(order[i:i + block_rows], pa.int64())
+            con.register("va", _decoded(va_tab.take(take)))
+            con.register("ev_rows", ev_tab.take(pa.array(position[take.to_numpy()], pa.int64())))
+            block = con.sql(sql, params=params).to_arrow_table()
+            con.unregister("va")
+            con.unregister("ev_rows")
+            _validate_block(block, len(starts), i)
+            yield block
     finally:
         con.close()
-    if missing:
-        raise HarmonizeError(f"internal error: {missing} values have no event; please report this")
-    validate_observations(table.slice(0, 0).to_pandas() if table.num_rows == 0 else _sample(table))
-    return table
 
 
 _NO_VALUES_ARROW = pa.schema([
@@ -430,7 +455,80 @@ def events_without_values(out: AdapterOutput, study: Study, profile: Profile, ki
     return _to_arrow(ev, _NO_VALUES_ARROW)
 
 
-def _sample(table: pa.Table, n: int = 200_000) -> pd.DataFrame:
+def _values_to_arrow(values: pd.DataFrame) -> pa.Table:
+    """The adapter's values as Arrow columns of :data:`_VALUE_ARROW` (absent columns: defaults).
+
+    Categorical text columns stay dictionary-encoded (one integer code per row) until
+    :func:`_decoded`; Arrow-backed columns convert without copying; lists become list columns.
+    """
+    n = len(values)
+    arrays = []
+    for fld in _VALUE_ARROW:
+        name = "flags" if fld.name == "value_flags" else fld.name
+        col = values[name] if name in values else pd.Series([None] * n, dtype=object, index=values.index)
+        if name == "no_effort":
+            col = col.fillna(False).astype(bool)
+        elif name in ("n_values", "n_vessels"):
+            col = pd.Series(pd.array(col, dtype="Int32"))
+        if isinstance(col.dtype, pd.CategoricalDtype) and pa.types.is_string(fld.type):
+            arr = pa.array(col, from_pandas=True)
+            arr = pa.DictionaryArray.from_arrays(arr.indices, arr.dictionary.cast(fld.type))
+        elif pa.types.is_list(fld.type):
+            arr = _list_array(col, fld.type)
+        else:
+            arr = _to_arrow(pd.DataFrame({fld.name: col}), pa.schema([fld])).column(0)
+        arrays.append(arr)
+    return pa.Table.from_arrays(arrays, names=_VALUE_ARROW.names)
+
+
+def _decoded(table: pa.Table) -> pa.Table:
+    """The table with dictionary-encoded columns turned back into plain ones (of :data:`_VALUE_ARROW`)."""
+    arrays = []
+    for fld, col in zip(_VALUE_ARROW, table.columns, strict=True):
+        if pa.types.is_dictionary(col.type):
+            col = pa.chunked_array([c.dictionary_decode() for c in col.chunks], type=fld.type)
+        arrays.append(col)
+    return pa.Table.from_arrays(arrays, schema=_VALUE_ARROW)
+
+
+def _event_positions(events: pd.Index, ids: pd.Series) -> np.ndarray:
+    """Position in ``events`` of each value's event id (-1 where none); by code for categoricals."""
+    if isinstance(ids.dtype, pd.CategoricalDtype):
+        codes = ids.cat.codes.to_numpy()
+        per_category = np.append(events.get_indexer(ids.cat.categories), -1)
+        return per_category[np.where(codes < 0, len(per_category) - 1, codes)].astype(np.int64)
+    return events.get_indexer(ids).astype(np.int64)
+
+
+def _store_order(position: np.ndarray, events: pd.DataFrame) -> np.ndarray:
+    """Order of the values (by their event's position) in which the store's files hold them.
+
+    Events sort by season_year, event_start, event_id (nulls last); values of one event keep
+    their order. :func:`write_partitions` then finds each block sorted already.
+    """
+    ordered = events.reset_index(drop=True).sort_values(["season_year", "event_start", "event_id"],
+                                                        na_position="last", kind="stable")
+    rank = np.empty(len(events), dtype=np.int64)
+    rank[ordered.index.to_numpy()] = np.arange(len(events))
+    return np.argsort(rank[position], kind="stable")
+
+
+def _validate_block(block: pa.Table, n_blocks: int, start: int) -> None:
+    """Check a block (or a sample of it: :data:`SAMPLE_ROWS` in all) against the contract."""
+    if block.num_rows == 0:
+        validate_observations(block.slice(0, 0).to_pandas())
+        return
+    per_block = max(1_000, SAMPLE_ROWS // n_blocks)
+    if block.num_rows <= per_block:
+        validate_observations(block.to_pandas())
+    elif per_block >= 20_000:
+        validate_observations(_sample(block, per_block))
+    else:  # one slice at a seeded random place
+        at = int(np.random.default_rng(start).integers(0, block.num_rows - per_block + 1))
+        validate_observations(block.slice(at, per_block).to_pandas())
+
+
+def _sample(table: pa.Table, n: int = SAMPLE_ROWS) -> pd.DataFrame:
     # The contract check runs on the whole table when it is small, on a sample otherwise;
     # the SQL above already fixes every column's type.
     if table.num_rows > n:
@@ -486,6 +584,48 @@ def write_partitions(table: pa.Table, folder: Path) -> None:
             offset += n
     finally:
         con.close()
+
+
+def _zero_filled(block: pa.Table) -> int:
+    return int(pa.compute.sum(block["zero_filled"]).as_py() or 0)
+
+
+def write_blocks(blocks: Iterable[pa.Table], folder: Path) -> tuple[int, int]:
+    """Write blocks of observation rows with :func:`write_partitions`, on a writer thread.
+
+    The next block is made while the last one is written (both mostly in DuckDB, outside
+    the GIL); at most two blocks wait at once. Each block becomes its own file(s) in its
+    partition(s). Returns (rows written, zero-filled rows written). An error of either side
+    is raised here.
+    """
+    waiting: queue.Queue[pa.Table | None] = queue.Queue(maxsize=1)
+    errors: list[BaseException] = []
+
+    def writer() -> None:
+        while (block := waiting.get()) is not None:
+            if not errors:  # after an error, drain without writing
+                try:
+                    write_partitions(block, folder)
+                except BaseException as exc:  # noqa: BLE001  (re-raised by the caller below)
+                    errors.append(exc)
+
+    thread = threading.Thread(target=writer, name="harmonize-writer", daemon=True)
+    thread.start()
+    rows = zeros = 0
+    try:
+        for block in blocks:
+            if errors:
+                break
+            rows += block.num_rows
+            zeros += _zero_filled(block)
+            waiting.put(block)
+            del block
+    finally:
+        waiting.put(None)
+        thread.join()
+    if errors:
+        raise errors[0]
+    return rows, zeros
 
 
 def _write_partitions_sorted_in_copy(con: duckdb.DuckDBPyConnection, table: pa.Table, folder: Path) -> None:

@@ -139,33 +139,78 @@ def zero_fill(
     DataFrame with event_id, variable, life_stage, quantity, unit, value (0.0).
     """
     cols = ["event_id", "variable", "life_stage", "quantity", "unit", "value"]
-    targets = study.targets[study.targets["protocol"] == protocol] if protocol else study.targets.iloc[:0]
-    if targets.empty or events.empty or not quantities:
+    rows, targets = zero_pairs(events, caught, blocked, study, protocol)
+    if not rows.size or not quantities:
         return pd.DataFrame({c: [] for c in cols})
-    pairs = events[["event_id", "year"]].merge(
-        targets.rename(columns={"taxon": "variable"})[["variable", "life_stage", "first_year", "last_year"]],
-        how="cross",
-    )
-    year = pairs["year"].astype("int64")
-    valid = (pairs["first_year"].isna() | (year >= pairs["first_year"].fillna(0))) & (
-        pairs["last_year"].isna() | (year <= pairs["last_year"].fillna(9999))
-    )
-    pairs = pairs[valid.to_numpy()]
-    # a target without a stage is met by a catch of any stage; a staged target only by that stage
-    any_stage = caught[["event_id", "variable"]].drop_duplicates().assign(_hit=True)
-    staged = caught[["event_id", "variable", "life_stage"]].dropna().drop_duplicates().assign(_hit_stage=True)
-    pairs = pairs.merge(any_stage, on=["event_id", "variable"], how="left")
-    pairs = pairs.merge(staged, on=["event_id", "variable", "life_stage"], how="left")
-    met = np.where(pairs["life_stage"].isna(), pairs["_hit"].notna(), pairs["_hit_stage"].notna())
-    pairs = pairs[~met]
+    q = len(quantities)
+    pair = np.repeat(np.arange(rows.size), q)
+    return pd.DataFrame({
+        "event_id": events["event_id"].to_numpy()[rows[pair]],
+        "variable": targets["taxon"].to_numpy()[pair],
+        "life_stage": targets["life_stage"].to_numpy()[pair],
+        "quantity": np.tile([qu for qu, _ in quantities], rows.size),
+        "unit": np.tile([u for _, u in quantities], rows.size),
+        "value": 0.0,
+    })[cols]
+
+
+def zero_pairs(
+    events: pd.DataFrame,
+    caught: pd.DataFrame,
+    blocked: pd.DataFrame,
+    study: Study,
+    protocol: str | None,
+) -> tuple[np.ndarray, pd.DataFrame]:
+    """The (event, target) pairs of :func:`zero_fill`, as integer positions.
+
+    Returns the events row of each inferred zero and the target row (one row per pair:
+    taxon, life_stage, first_year, last_year), in the order of events then targets.
+    Matching is by integer code: ids and names are looked up once per distinct value (once
+    per category when a column is categorical), not once per row.
+    """
+    targets = study.targets[study.targets["protocol"] == protocol] if protocol else study.targets.iloc[:0]
+    targets = targets.reset_index(drop=True)
+    if targets.empty or events.empty:
+        return np.array([], dtype=np.int64), targets.iloc[:0]
+    ev_code, ev_ids = pd.factorize(events["event_id"])
+    ev_ids = pd.Index(ev_ids)
+    taxa = pd.Index(targets["taxon"].unique())
+    t_taxon = taxa.get_indexer(targets["taxon"])
+    c_ev, c_var = _codes_in(caught["event_id"], ev_ids), _codes_in(caught["variable"], taxa)
+    seen = (c_ev >= 0) & (c_var >= 0)
+    hit = np.zeros((len(ev_ids), len(taxa)), dtype=bool)
+    hit[c_ev[seen], c_var[seen]] = True
+    closed = np.zeros_like(hit)  # (event, taxon) pairs of quarantined records of a known taxon
     if len(blocked):
-        pairs = pairs.merge(blocked[["event_id", "variable"]].drop_duplicates().assign(_blocked=True),
-                            on=["event_id", "variable"], how="left")
-        pairs = pairs[pairs["_blocked"].isna()]
-    q = pd.DataFrame(quantities, columns=["quantity", "unit"])
-    zeros = pairs[["event_id", "variable", "life_stage"]].merge(q, how="cross")
-    zeros["value"] = 0.0
-    return zeros[cols].reset_index(drop=True)
+        b_ev, b_var = _codes_in(blocked["event_id"], ev_ids), _codes_in(blocked["variable"], taxa)
+        ok = (b_ev >= 0) & (b_var >= 0)
+        closed[b_ev[ok], b_var[ok]] = True
+    year = events["year"].to_numpy(dtype=np.int64)
+    first = targets["first_year"].astype("Float64").fillna(0).to_numpy(dtype=float)
+    last = targets["last_year"].astype("Float64").fillna(9999).to_numpy(dtype=float)
+    zero = np.zeros((len(events), len(targets)), dtype=bool)
+    for t in range(len(targets)):  # a loop over the protocol's few targets
+        v = t_taxon[t]
+        stage = targets["life_stage"].iloc[t]
+        if pd.isna(stage):  # a target without a stage is met by a catch of any stage
+            met = hit[:, v]
+        else:  # a staged target only by that stage
+            same = seen & (c_var == v) & (_codes_in(caught["life_stage"], pd.Index([stage])) == 0)
+            met = np.zeros(len(ev_ids), dtype=bool)
+            met[c_ev[same]] = True
+        zero[:, t] = (year >= first[t]) & (year <= last[t]) & ~met[ev_code] & ~closed[ev_code, v]
+    rows, pair_target = np.nonzero(zero)  # row-major: events, then targets (a cross join's order)
+    return rows.astype(np.int64), targets.iloc[pair_target].reset_index(drop=True)
+
+
+def _codes_in(values: pd.Series, index: pd.Index) -> np.ndarray:
+    """Position of each value in ``index`` (-1 where absent or null); by category when categorical."""
+    if isinstance(values.dtype, pd.CategoricalDtype):
+        per_category = np.append(index.get_indexer(values.cat.categories), -1)
+        codes = values.cat.codes.to_numpy()
+        return per_category[np.where(codes < 0, len(per_category) - 1, codes)]
+    found = index.get_indexer(values)
+    return np.where(values.isna().to_numpy(), -1, found)
 
 
 def unattributed_note(file_name: str, n: int, record: str, event: str) -> str:

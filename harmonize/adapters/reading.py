@@ -45,14 +45,27 @@ class RawTable:
     role: str
     frame: pd.DataFrame
     sha256: str
+    #: Data rows of the file, once :meth:`keep_only` has dropped the text of the others.
+    rows: int | None = None
 
     @property
     def n_rows(self) -> int:
-        return len(self.frame)
+        return len(self.frame) if self.rows is None else self.rows
+
+    def keep_only(self, keep: np.ndarray) -> None:
+        """Drop the text of the rows not in the mask ``keep`` (the file's row count stays).
+
+        Adapters call it once every rejection is known, with the rejected rows: the
+        quarantine needs their raw text, and the text of all other rows is memory spent.
+        """
+        n = self.n_rows
+        positions = np.flatnonzero(keep)
+        self.frame = self.frame.iloc[positions].set_axis(pd.Index(positions), axis=0)
+        self.rows = n
 
     def raw_json(self, positions: np.ndarray) -> list[str]:
         """The rows at ``positions`` as JSON objects keyed by the provider's column names."""
-        sub = self.frame.iloc[positions]
+        sub = self.frame.iloc[positions] if self.rows is None else self.frame.loc[positions]
         return [json.dumps(rec, ensure_ascii=False) for rec in sub.to_dict("records")]
 
 
@@ -208,7 +221,9 @@ def _read_csv_arrow(path: Path, profile: Profile) -> pd.DataFrame | None:
         return None
     body = table.slice(1)
     # Arrow-backed text columns: a tenth of the memory of one Python str per cell
-    return pd.DataFrame({name: pd.Series(body.column(i).to_pandas(), dtype=pd.StringDtype("pyarrow", na_value=np.nan))
+    # (wrapped without copying: no Python string is made per cell)
+    text = pd.StringDtype("pyarrow", na_value=np.nan)
+    return pd.DataFrame({name: pd.Series(pd.arrays.ArrowStringArray(body.column(i).combine_chunks(), dtype=text))
                          for i, name in enumerate(header)})
 
 

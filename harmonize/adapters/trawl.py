@@ -21,7 +21,7 @@ from harmonize.adapters.common import (
     reject_outside_domain,
     reject_records_of_events,
     resolve_taxa,
-    zero_fill,
+    zero_pairs,
 )
 from harmonize.adapters.reading import Rejections, resolve_columns
 from harmonize.adapters.registry import register
@@ -104,40 +104,45 @@ class TrawlAdapter(Adapter):
                          "and ingest again with --replace")
         blocked = pd.DataFrame({"event_id": rc["event_id"][lost], "variable": taxon.fillna(guess)[lost]}).dropna()
 
+        # the catch rows that stay, with haul, taxon and life stage as integer codes
         catch = pd.DataFrame({
-            "event_id": rc["event_id"][rc_ok],
-            "variable": taxon[rc_ok],
-            "life_stage": rc["life_stage"][rc_ok].str.casefold(),
-            "weight": rc["weight"][rc_ok],
-            "count": rc["count"][rc_ok],
+            "event_id": pd.Categorical(rc["event_id"][rc_ok]),
+            "variable": pd.Categorical(taxon[rc_ok]),
+            "life_stage": _folded_categorical(rc["life_stage"][rc_ok]),
+            "weight": rc["weight"][rc_ok].to_numpy(float),
+            "count": rc["count"][rc_ok].to_numpy(float),
             "row": np.flatnonzero(rc_ok) + 1,
         })
+        del taxon, guess
         if unattributed:
             # a haul none of whose catch rows could be read has no known catch at all (not
             # even "nothing caught"): it is quarantined rather than stored without its catch
-            unknown_catch = ~hauls["event_id"].isin(catch["event_id"]).to_numpy()
+            present = catch["event_id"].cat.categories[np.unique(catch["event_id"].cat.codes.to_numpy())]
+            unknown_catch = ~hauls["event_id"].isin(present).to_numpy()
             rej.add("events", hauls["source_row"].to_numpy()[unknown_catch] - 1, ReasonCode.MISSING_VALUE,
                     f"none of this haul's catch rows could be read, and {unattributed} catch row(s) in "
                     f"{rc_raw.path.name} have no readable haul id, so its catch is unknown; fix the catch "
                     "file and ingest again with --replace")
             flags = [f for f, known in zip(flags, ~unknown_catch, strict=True) if known]
             hauls = hauls[~unknown_catch].reset_index(drop=True)
+        # every rejection is known: only the rejected rows' text is needed (for the quarantine)
+        for table in (ev_raw, rc_raw):
+            table.keep_only(rej.mask(table.role, table.n_rows))
+        haul_ids = pd.Index(hauls["event_id"])
+        catch["event_id"] = catch["event_id"].cat.set_categories(haul_ids)
         values = _catch_values(catch)
         # the protocol records the quantities the catch file has a column for
         provided = resolve_columns(rc_raw, fields("trawl_records"), profile)
         quantities = [(q, u) for q, u, col in (("biomass", "kg", "weight"), ("count", "1", "count"))
                       if col in provided or col in profile.constants]
-        zeros = zero_fill(
+        zeros = _zero_values(
             hauls.assign(year=hauls["event_start"].dt.year)[["event_id", "year"]].iloc[:0 if unattributed else None],
-            catch[["event_id", "variable", "life_stage"]],
-            blocked, study, profile.protocol, quantities,
+            catch[["event_id", "variable", "life_stage"]], blocked, study, profile.protocol, quantities, haul_ids,
         )
-        zeros = zeros.assign(variable_kind="taxon", zero_filled=True,
-                             flags=[[] for _ in range(len(zeros))],
-                             source_record_rows=[[] for _ in range(len(zeros))], n_values=0)
-        temps = _temperature_values(hauls)
-        values = pd.concat([values, zeros, temps], ignore_index=True)
-        values["n_vessels"] = pd.NA
+        del catch
+        temps = _temperature_values(hauls, haul_ids)
+        values = _concat_values([values, zeros, temps])
+        values["n_vessels"] = pd.Series(pd.NA, index=values.index, dtype="Int32")
 
         hauls["flags"] = [
             f + (["catch_incomplete"] if e in incomplete else [])
@@ -243,12 +248,21 @@ class TrawlAdapter(Adapter):
 
 
 def _catch_values(catch: pd.DataFrame) -> pd.DataFrame:
-    """Long rows (biomass, count) per haul x taxon x life stage; several rows are summed."""
+    """Long rows (biomass, count) per haul x taxon x life stage; several rows are summed.
+
+    Key columns may be text or categoricals; groups are numbered from integer codes (nulls
+    are a group of their own) in order of first appearance, and the key columns of the
+    result keep their dtype. Lists (rows, flags) are Arrow list columns, not Python lists.
+    """
     keys = ["event_id", "variable", "life_stage"]
-    # one integer code per group (nulls are a group of their own), then numpy reductions:
-    # a pandas groupby over three string keys with Python aggregations was the slowest step
-    # of a large trawl ingest (see BENCHMARKS.md)
-    codes = catch.groupby(keys, dropna=False, sort=False).ngroup().to_numpy(np.int64)
+    # one integer code per group, then numpy reductions: a pandas groupby over three string
+    # keys with Python aggregations was the slowest step of a large trawl ingest
+    combined = np.zeros(len(catch), dtype=np.int64)
+    for key in keys:
+        code, width = _key_codes(catch[key])
+        combined = combined * width + code
+    codes, _ = pd.factorize(combined)
+    codes = codes.astype(np.int64)
     n_groups = int(codes.max()) + 1 if codes.size else 0
     first = np.full(n_groups, codes.size, dtype=np.int64)
     np.minimum.at(first, codes, np.arange(codes.size))
@@ -256,8 +270,7 @@ def _catch_values(catch: pd.DataFrame) -> pd.DataFrame:
     # rows of each group in file order, as one list per group (built by Arrow, not in Python)
     order = np.argsort(codes, kind="stable")
     offsets = np.concatenate([[0], np.cumsum(n)]).astype(np.int64)
-    rows = pa.ListArray.from_arrays(pa.array(offsets), pa.array(catch["row"].to_numpy(np.int64)[order]))
-    rows = pd.Series(rows.to_pandas(), dtype=object)
+    rows = pa.ListArray.from_arrays(pa.array(offsets.astype(np.int32)), pa.array(catch["row"].to_numpy(np.int64)[order]))
     head = catch.iloc[first][keys].reset_index(drop=True)
 
     def total(col: str) -> np.ndarray:
@@ -266,31 +279,103 @@ def _catch_values(catch: pd.DataFrame) -> pd.DataFrame:
         sums = np.bincount(codes, weights=np.nan_to_num(v), minlength=n_groups)
         return np.where(seen, sums, np.nan)  # min_count=1: a group without any value stays null
 
-    agg = head.assign(weight=total("weight"), count=total("count"), rows=rows, n=n)
     parts = []
     for quantity, unit, col in (("biomass", "kg", "weight"), ("count", "1", "count")):
-        part = agg[agg[col].notna()]
-        parts.append(pd.DataFrame({
-            "event_id": part["event_id"], "variable": part["variable"], "life_stage": part["life_stage"],
-            "quantity": quantity, "unit": unit, "value": part[col].astype(float),
-            "variable_kind": "taxon", "zero_filled": False,
-            "flags": _MERGED_FLAGS[(part["n"].to_numpy() > 1).astype(int)],
-            "source_record_rows": part["rows"], "n_values": part["n"],
-        }))
+        value = total(col)
+        keep = np.flatnonzero(~np.isnan(value))
+        part = head.iloc[keep].reset_index(drop=True)
+        parts.append(part.assign(
+            quantity=quantity, unit=unit, value=value[keep],
+            variable_kind="taxon", zero_filled=False,
+            flags=_arrow_series(_merged_flags(n[keep] > 1)),
+            source_record_rows=_arrow_series(rows.take(pa.array(keep))),
+            n_values=n[keep], no_effort=False,
+        ))
     return pd.concat(parts, ignore_index=True)
 
 
-#: flags of a value built from one catch row, and from several (shared, never mutated)
-_MERGED_FLAGS = np.array([[], ["merged_rows"]], dtype=object)
+def _key_codes(column: pd.Series) -> tuple[np.ndarray, int]:
+    """Integer code of each value (0 = null) and the number of codes, for a grouping key."""
+    if isinstance(column.dtype, pd.CategoricalDtype):
+        return column.cat.codes.to_numpy().astype(np.int64) + 1, len(column.cat.categories) + 1
+    code, uniques = pd.factorize(column, use_na_sentinel=True)
+    return code.astype(np.int64) + 1, len(uniques) + 1
 
 
-def _temperature_values(hauls: pd.DataFrame) -> pd.DataFrame:
+def _folded_categorical(text: pd.Series) -> pd.Categorical:
+    """Case-folded text as a categorical: each distinct text is folded once."""
+    code, uniques = pd.factorize(text, use_na_sentinel=True)
+    folded = pd.Categorical(pd.Series(uniques, dtype="string").str.casefold())
+    per_unique = np.append(folded.codes, -1)
+    return pd.Categorical.from_codes(per_unique[np.where(code < 0, len(per_unique) - 1, code)],
+                                     dtype=folded.dtype)
+
+
+def _arrow_series(array: pa.Array) -> pd.Series:
+    """An Arrow array (e.g. a list column) as a pandas Series, without Python objects per row."""
+    return pd.Series(pd.arrays.ArrowExtensionArray(array))
+
+
+def _merged_flags(merged: np.ndarray) -> pa.Array:
+    """["merged_rows"] where a value sums several catch rows, [] elsewhere (an Arrow list column)."""
+    offsets = np.concatenate([[0], np.cumsum(merged)]).astype(np.int32)
+    return pa.ListArray.from_arrays(pa.array(offsets), pa.repeat(pa.scalar("merged_rows"), int(merged.sum())))
+
+
+def _no_lists(n: int, value_type: pa.DataType) -> pa.Array:
+    """``n`` empty lists (an Arrow list column)."""
+    return pa.ListArray.from_arrays(pa.array(np.zeros(n + 1, dtype=np.int32)), pa.array([], value_type))
+
+
+def _zero_values(events: pd.DataFrame, caught: pd.DataFrame, blocked: pd.DataFrame, study: Study,
+                 protocol: str | None, quantities: list[tuple[str, str]], haul_ids: pd.Index) -> pd.DataFrame:
+    """Inferred zeros (see :func:`~harmonize.adapters.common.zero_fill`) with categorical keys."""
+    rows, targets = zero_pairs(events, caught, blocked, study, protocol)
+    if not quantities:
+        rows, targets = rows[:0], targets.iloc[:0]
+    q = len(quantities) or 1
+    pair = np.repeat(np.arange(rows.size), q)
+    n = pair.size
+    codes = haul_ids.get_indexer(events["event_id"].to_numpy()[rows[pair]]) if n else np.array([], dtype=np.int64)
+    return pd.DataFrame({
+        "event_id": pd.Categorical.from_codes(codes, categories=haul_ids),
+        "variable": pd.Categorical(targets["taxon"].to_numpy()[pair]),
+        "life_stage": pd.Categorical(targets["life_stage"].to_numpy()[pair]),
+        "quantity": np.tile([qu for qu, _ in quantities], rows.size) if quantities else np.array([], dtype=object),
+        "unit": np.tile([u for _, u in quantities], rows.size) if quantities else np.array([], dtype=object),
+        "value": np.zeros(n),
+        "variable_kind": "taxon", "zero_filled": True,
+        "flags": _arrow_series(_no_lists(n, pa.string())),
+        "source_record_rows": _arrow_series(_no_lists(n, pa.int64())),
+        "n_values": np.zeros(n, dtype=np.int64), "no_effort": False,
+    })
+
+
+def _concat_values(parts: list[pd.DataFrame]) -> pd.DataFrame:
+    """Concatenate value frames; text columns become categoricals sharing their categories."""
+    parts = [p for p in parts if len(p)] or parts[:1]
+    for col in ("event_id", "variable", "life_stage", "quantity", "unit", "variable_kind"):
+        cats = [p[col].astype("category").cat.categories for p in parts]
+        union = pd.Index(pd.unique(np.concatenate([c.to_numpy(dtype=object) for c in cats])), dtype=object) \
+            if cats else pd.Index([], dtype=object)
+        if col == "event_id" and isinstance(parts[0][col].dtype, pd.CategoricalDtype):
+            union = parts[0][col].cat.categories  # the hauls, shared by every part
+        for p in parts:
+            p[col] = p[col].astype("category").cat.set_categories(union)
+    return pd.concat(parts, ignore_index=True)
+
+
+def _temperature_values(hauls: pd.DataFrame, haul_ids: pd.Index) -> pd.DataFrame:
     """Bottom temperature measured at the haul, as a physical variable (CF standard name)."""
     t = hauls[hauls["bottom_temperature"].notna()]
+    n = len(t)
     return pd.DataFrame({
-        "event_id": t["event_id"], "variable": "sea_water_temperature_at_sea_floor",
-        "variable_kind": "physical", "life_stage": pd.NA, "quantity": "measurement",
-        "value": t["bottom_temperature"].astype(float), "unit": "degC", "zero_filled": False,
-        "flags": [[] for _ in range(len(t))], "source_record_rows": [[] for _ in range(len(t))],
-        "n_values": 1, "no_effort": True,
+        "event_id": pd.Categorical.from_codes(haul_ids.get_indexer(t["event_id"]), categories=haul_ids),
+        "variable": "sea_water_temperature_at_sea_floor",
+        "variable_kind": "physical", "life_stage": pd.Series(pd.NA, index=range(n), dtype=object),
+        "quantity": "measurement",
+        "value": t["bottom_temperature"].to_numpy(float), "unit": "degC", "zero_filled": False,
+        "flags": _arrow_series(_no_lists(n, pa.string())),
+        "source_record_rows": _arrow_series(_no_lists(n, pa.int64())),
+        "n_values": np.ones(n, dtype=np.int64), "no_effort": True,
     })

@@ -222,6 +222,7 @@ def test_zero_fill_by_codes_equals_merges(data: st.DataObject) -> None:
                            "variable": data.draw(st.lists(st.sampled_from(taxa + ["D d"]), min_size=m, max_size=m)),
                            "life_stage": data.draw(st.lists(st.sampled_from([None, "adult", "larva"]),
                                                             min_size=m, max_size=m))})
+    caught = caught.astype({"event_id": "str", "variable": "str", "life_stage": object})  # text even when empty
     b = data.draw(st.integers(0, 3))
     blocked = pd.DataFrame({"event_id": data.draw(st.lists(st.sampled_from(["E0", "E1"]), min_size=b, max_size=b)),
                             "variable": data.draw(st.lists(st.sampled_from(taxa), min_size=b, max_size=b))})

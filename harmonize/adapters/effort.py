@@ -557,8 +557,8 @@ class PingReader:
         now = (pd.Timestamp.now("UTC").tz_localize(None) + pd.Timedelta(days=1)).isoformat()
         checks: list[tuple[str, str, str]] = [  # (condition, reason, message SQL)
             ("nf IS NOT NULL", ReasonCode.BAD_TYPE,
-             f"printf('row has %d fields where the header has %d columns; check delimiters and quotes', "
-             f"nf, {len(self.columns)})")]
+             f"printf('row has a different number of fields than the header (%d instead of %d); "
+             f"check delimiters and quotes', nf, {len(self.columns)})")]
         missing = {
             "vessel_id": "vessel_id_txt IS NULL OR " + self._is_na("vessel_id_txt"),
             "time": "time_txt IS NULL OR (t IS NULL AND " + self._is_na("time_txt") + ")",
@@ -880,10 +880,15 @@ class PingReader:
         if [c.strip().lstrip("\ufeff") for c in names] != self.columns:
             return False  # DuckDB read another header (renamed or split columns)
         self.colref = {c: _ident(d) for c, d in zip(self.columns, names, strict=True)}
+        # Cheap tests first (string comparisons): a cell whose first byte is a quote; a first
+        # cell that is empty or starts with whitespace (every whitespace byte sorts before '!'),
+        # and only then the costly test that every cell is blank.
         blank = " AND ".join(f"coalesce(trim({_ident(d)}, {_sql_text(_BLANK_CHARS)}), '') = ''" for d in names)
-        quoted = " OR ".join(f"starts_with({_ident(d)}, '\"')" for d in names)
+        quoted = " OR ".join(f"({_ident(d)} >= '\"' AND {_ident(d)} < '#')" for d in names)
+        first = _ident(names[0])
+        odd = f"CASE WHEN {quoted} THEN true WHEN {first} IS NULL OR {first} < '!' THEN {blank} ELSE false END"
         sql = self._stage1_sql(_csv_source(self.path, self.profile, self.delimiter), "row_number() OVER ()",
-                               f"CAST(NULL AS INTEGER) AS nf, ({blank}) OR {quoted} AS odd")
+                               f"CAST(NULL AS INTEGER) AS nf, {odd} AS odd")
         try:
             con.execute(f"CREATE TABLE p AS {sql}")
         except duckdb.Error:

@@ -6,6 +6,7 @@ from __future__ import annotations
 import json
 import shutil
 from pathlib import Path
+from unittest import mock
 
 import duckdb
 import numpy as np
@@ -311,3 +312,62 @@ def test_demo_fleet(tmp_path: Path) -> None:
     assert (obs["n_vessels"] < 3).any() and (obs["n_vessels"] >= 3).any()
     assert set(obs.loc[obs["gear"] == "OTM", "depth_layer"]) == {"epipelagic"}
     assert Store(study.store_dir).check() == []
+
+
+def _quarantined(result) -> list[tuple[int, str, str]]:  # type: ignore[no-untyped-def]
+    q = result.quarantine
+    return list(zip(q["source_row"].astype(int), q["reason_code"], q["message"], strict=True))
+
+
+def test_fast_reader_and_line_reader_number_rows_alike(ping_study: Path) -> None:
+    """A well-formed file stays on DuckDB's fast path; the line reader gives the same result."""
+    from harmonize.adapters.effort import PingReader
+
+    lines = (FIXTURES / "effort" / "pings_hand.csv").read_text().splitlines()
+    clean = [line for line in lines if not line.endswith(",extra")]  # the row with a field too many
+    assert len(clean) == len(lines) - 1
+    (ping_study / "clean.csv").write_text("\n".join(clean) + "\n")
+    study = load_study(ping_study)
+    with mock.patch.object(PingReader, "_read_lines", side_effect=AssertionError("left the fast path")):
+        fast = run(study, "effort_pings", {"rows": ping_study / "clean.csv"}, write=False)
+    with mock.patch.object(PingReader, "_read_fast", return_value=False):
+        slow = run(study, "effort_pings", {"rows": ping_study / "clean.csv"}, write=False)
+    assert (fast.rows_read, fast.rows_accepted, fast.rows_quarantined) == (30, 20, 10)
+    assert _quarantined(fast) == _quarantined(slow)
+    assert fast.quarantine["raw"].tolist() == slow.quarantine["raw"].tolist()
+    assert fast.records_written == slow.records_written == 4
+
+
+@pytest.mark.parametrize("block_rows", [100_000, 4, 1])
+def test_rows_are_counted_as_a_person_counts_them(ping_study: Path, block_rows: int) -> None:
+    """Blank lines, lines of delimiters and rows that cannot be split, in blocks of any size."""
+    lines = (FIXTURES / "effort" / "pings_hand.csv").read_text().splitlines()
+    semi = [line.replace(",", ";") for line in lines[2:4]]  # data rows 2 and 3
+    text = "\n".join([lines[0], ",,,,,", lines[1], "", semi[0], " , ,", "", semi[1], "\r", *lines[4:]]) + "\n"
+    (ping_study / "odd.csv").write_text(text)
+    with mock.patch("harmonize.adapters.effort.FALLBACK_BLOCK_ROWS", block_rows):
+        result = run(load_study(ping_study), "effort_pings", {"rows": ping_study / "odd.csv"}, write=False)
+    assert (result.rows_read, result.rows_accepted, result.rows_quarantined) == (31, 18, 13)
+    got = {row: reason for row, reason, _ in _quarantined(result)}
+    # the hand-worked rows of test_hand_worked_track keep their numbers; rows 2 and 3 are added
+    assert got == {2: "bad_type", 3: "bad_type", 7: "time_backwards", 10: "duplicate_record", 12: "bad_type",
+                   19: "implausible_speed", 21: "outside_domain", 22: "future_time", 23: "implausible_speed",
+                   28: "missing_value", 29: "bad_type", 30: "unknown_gear", 31: "bad_time"}
+    msg = {row: m for row, _, m in _quarantined(result)}
+    assert msg[2] == ("row has a different number of fields than the header (1 instead of 6); "
+                      "check delimiters and quotes")
+    assert "rows 6 and 8" in msg[7]
+    assert json.loads(result.quarantine["raw"].iloc[0])["note"].startswith("row text withheld")
+
+
+def test_messages_quote_cells_on_one_line_cut_to_60_characters(ping_study: Path) -> None:
+    lines = (FIXTURES / "effort" / "pings_hand.csv").read_text().splitlines()
+    lines[2] = lines[2].replace(",3.2,OTB", ',"3.\r\n2",OTB')
+    lines[3] = lines[3].replace(",OTB", "," + "Z" * 500)
+    (ping_study / "cells.csv").write_text("\n".join(lines) + "\n")
+    result = run(load_study(ping_study), "effort_pings", {"rows": ping_study / "cells.csv"}, write=False)
+    assert result.rows_read == 31
+    msg = {row: m for row, _, m in _quarantined(result)}
+    assert msg[2] == "speed_kn (column 'sog') holds '3.\\r\\n2', which is not a number"
+    assert f"gear '{'Z' * 57}...' is not a known gear code" in msg[3]
+    assert len(msg[3]) < 250

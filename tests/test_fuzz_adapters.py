@@ -16,7 +16,6 @@ from pathlib import Path
 
 import pytest
 from fuzzing import (
-    LINE_STRUCTURE,
     TARGETS,
     Mutation,
     check_outcome,
@@ -34,11 +33,9 @@ FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 
 #: The kinds fuzzed here (each with its profile and messy fixture files in fuzzing.TARGETS).
 FUZZED = ["trawl", "plankton", "transect", "opportunistic", "darwin_core", "effort"]
-#: Mutations left out for a kind, with the reason. The effort reader (DuckDB's CSV reader)
-#: numbers rejected lines physically but good rows by record, so blank lines and bare
-#: carriage returns shift row numbers; the corpus case bare_carriage_return_mid_line keeps
-#: that known bug in view (strict xfail) until it is fixed.
-EXCLUDED: dict[str, frozenset[str]] = {"effort": LINE_STRUCTURE}
+#: Mutations left out for a kind, with the reason (none at present: the effort reader numbers
+#: rows as the other readers do since it falls back to the line reader on any odd line).
+EXCLUDED: dict[str, frozenset[str]] = {}
 #: Kinds whose committed ingests are fuzzed through the store's integrity check (an accepted
 #: event that yields no observation row is traced through events_without_values).
 COMMITTED = FUZZED
@@ -65,14 +62,7 @@ def _broken_inputs(study: Study, kind: str, role: str, ms: list[Mutation]) -> di
     return write_inputs(study.root / "inputs" / kind, originals, {role: broken})
 
 
-#: known defect, found by these tests on some runs (tracked in docs/reliability.md)
-_PING_TWICE = pytest.mark.xfail(
-    strict=False,
-    reason="known defect, found by this test on some runs: after delimiter damage (semicolons) "
-           "the effort reader can quarantine one ping twice; tracked in docs/reliability.md")
-
-
-@pytest.mark.parametrize("kind", [pytest.param(k, marks=_PING_TWICE) if k == "effort" else k for k in FUZZED])
+@pytest.mark.parametrize("kind", FUZZED)
 @_FIXTURE_SETTINGS
 @given(data=st.data())
 def test_broken_file_is_refused_in_one_line_or_every_row_is_accounted_for(
@@ -85,7 +75,7 @@ def test_broken_file_is_refused_in_one_line_or_every_row_is_accounted_for(
     check_outcome(fuzz_study, profile, inputs, write=False)
 
 
-@pytest.mark.parametrize("kind", [pytest.param(k, marks=_PING_TWICE) if k == "effort" else k for k in COMMITTED])
+@pytest.mark.parametrize("kind", COMMITTED)
 @settings(_FIXTURE_SETTINGS, max_examples=max(5, settings().max_examples // 4))
 @given(data=st.data())
 def test_broken_file_committed_leaves_a_sound_store(fuzz_study: Study, kind: str, data: st.DataObject) -> None:

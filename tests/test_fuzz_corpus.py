@@ -33,7 +33,6 @@ def test_every_corpus_file_has_a_case() -> None:
 
 #: Cases that still fail, with the reason; strict: a fix makes the test fail until removed here.
 KNOWN_BUGS = {
-    "bare_carriage_return_mid_line": "effort reader: a bare CR splits a line and two rows get one row number",
 }
 
 

@@ -12,6 +12,13 @@ the number of distinct vessels. Ping files are the largest inputs: everything ru
 DuckDB SQL (window functions over vessel and time), streaming with bounded memory; only
 the domain test and the grid cell of each position run in numpy, batch by batch.
 
+Rows are numbered as every other reader of harmonize numbers them (``reading.LineReader``):
+data rows as a person counts them, the header excluded, blank lines and lines made only of
+delimiters not counted. DuckDB's fast CSV reader is used for well-formed files; when it
+rejects a line, fails, or meets a row it reads differently (all cells blank, a cell that
+starts with a quote it did not take as quoting), the file is read again by the line reader,
+streamed block by block into a temporary parquet file that the ping SQL then reads.
+
 Logbook form (one row per haul with start and end time and position): fishing hours =
 haul duration, split over the grid cells the straight tow line crosses in the study's
 equal-area grid CRS, in proportion to the length in each cell (constant towing speed).
@@ -38,10 +45,12 @@ from harmonize import units
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback, finish
 from harmonize.adapters.common import reject_outside_domain
 from harmonize.adapters.reading import (
+    LineReader,
     RawTable,
     Rejections,
     coerce_fields,
     file_sha256,
+    read_header,
     read_table,
     resolve_columns,
 )
@@ -395,15 +404,21 @@ def _guess_form(columns: list[str], profile: Profile) -> str:
     return "logbook" if {"start_time", "end_time"} <= has else "pings"
 
 
-def _csv_source(path: Path, profile: Profile) -> str:
-    """A DuckDB table expression reading every column of the file as text."""
+def _csv_source(path: Path, profile: Profile, delimiter: str | None = None, rejects: bool = True) -> str:
+    """A DuckDB table expression reading every column of the file as text.
+
+    The delimiter (the line reader's), quote and escape characters are given, not sniffed,
+    so that DuckDB splits lines as the line reader does.
+    """
     quoted = "'" + str(path).replace("'", "''") + "'"
     if path.suffix.lower() == ".parquet":
         return f"read_parquet({quoted})"
-    opts = ["all_varchar = true", "header = true", "store_rejects = true",
-            "rejects_table = 'ping_rejects'", "rejects_scan = 'ping_reject_scans'"]
-    if profile.delimiter:
-        opts.append("delim = '" + profile.delimiter.replace("'", "''") + "'")
+    opts = ["all_varchar = true", "header = true", "quote = '\"'", "escape = '\"'"]
+    if rejects:
+        opts += ["store_rejects = true", "rejects_table = 'ping_rejects'", "rejects_scan = 'ping_reject_scans'"]
+    delimiter = delimiter or profile.delimiter
+    if delimiter:
+        opts.append("delim = '" + delimiter.replace("'", "''") + "'")
     elif path.suffix.lower() in (".tsv", ".tab"):
         opts.append("delim = '\t'")
     enc = profile.encoding.lower().replace("_", "-")
@@ -415,8 +430,11 @@ def _csv_source(path: Path, profile: Profile) -> str:
 
 
 def _file_columns(path: Path, profile: Profile) -> list[str]:
+    """The header of the file: as the line reader reads it (text) or the parquet schema."""
     if path.stat().st_size == 0:
         raise InputFileError(path, "the file is empty; expected a header row and data rows")
+    if path.suffix.lower() != ".parquet":
+        return read_header(path, profile)[0]
     con = duckdb.connect()
     try:
         rel = con.sql(f"SELECT * FROM {_csv_source(path, profile)} LIMIT 0")
@@ -430,6 +448,21 @@ def _file_columns(path: Path, profile: Profile) -> list[str]:
 
 def _sql_text(value: str) -> str:
     return "'" + value.replace("'", "''") + "'"
+
+
+#: A cell quoted in a message: at most 60 characters (line breaks are escaped afterwards).
+CELL_MACRO = "CREATE OR REPLACE TEMP MACRO cell_txt(x) AS CASE WHEN length(x) > 60 THEN left(x, 57) || '...' ELSE x END;"
+#: Characters of a whitespace-only cell (as Python's str.strip removes them, ASCII part).
+_BLANK_CHARS = " \t\n\r\x0b\x0c"
+#: Data rows per block written by the line reader's fallback (bounded memory).
+FALLBACK_BLOCK_ROWS = 100_000
+#: The raw row of a row that could not be split: its text may identify a vessel.
+_WITHHELD = '{"note": "row text withheld: it may identify a vessel"}'
+
+
+def _one_line(text: str) -> str:
+    """A message with its control characters (line breaks, NUL, bidi overrides) escaped."""
+    return text if text.isprintable() else "".join(c if c.isprintable() else ascii(c)[1:-1] for c in text)
 
 
 def _ident(name: str) -> str:
@@ -449,10 +482,20 @@ class PingReader:
         self.path, self.profile, self.study, self.settings = path, profile, study, settings
         self.progress = progress or (lambda stage, done, total: None)
         self.specs = {s.name: s for s in fields("effort_pings")}
-        empty = RawTable(path, "rows", pd.DataFrame(columns=columns), "")
-        self.found = resolve_columns(empty, list(self.specs.values()), profile)
+        self.columns = columns
+        self.found = self._resolve(columns)
+        #: file column -> SQL expression naming it in the table being read
+        self.colref: dict[str, str] = {c: _ident(c) for c in columns}
+        self.delimiter: str | None = None
+        if path.suffix.lower() != ".parquet":
+            self.delimiter = read_header(path, profile)[1]
         self.grid = Grid(study.crs, study.cell_size_km)
         self.notes: list[str] = []
+        self.line_reader = False  # True when the file was read by the line reader
+
+    def _resolve(self, columns: list[str]) -> dict[str, str]:
+        empty = RawTable(self.path, "rows", pd.DataFrame(columns=columns), "")
+        return resolve_columns(empty, list(self.specs.values()), self.profile)
 
     # -- SQL building blocks
     def _label(self, name: str) -> str:
@@ -464,7 +507,7 @@ class PingReader:
     def _raw(self, name: str) -> str:
         """The field's text as read (a constant of the profile, or NULL when absent)."""
         if name in self.found:
-            return f"CAST({_ident(self.found[name])} AS VARCHAR)"
+            return f"CAST({self.colref[self.found[name]]} AS VARCHAR)"
         if name in self.profile.constants:
             return _sql_text(str(self.profile.constants[name]))
         return "CAST(NULL AS VARCHAR)"
@@ -502,11 +545,20 @@ class PingReader:
                               f"'{unit}' is not a known speed unit; use one of {', '.join(units.known_units('speed'))}")
         return float(units.to_canonical(np.array([1.0]), "speed", unit)[0])
 
-    def _stage1_sql(self) -> str:
-        """Typed pings with the first problem of each row (reason, message, raw)."""
+    def _stage1_sql(self, src: str, rownum: str, extra: str) -> str:
+        """Typed pings with the first problem of each row (reason, message, raw).
+
+        ``src`` is the table read, ``rownum`` the SQL of the data row number and ``extra``
+        the SQL of two more columns: ``nf`` (the number of fields of a row that could not be
+        split into the header's columns, else NULL) and ``odd`` (a row the fast reader read
+        differently from the line reader).
+        """
         s = self.settings
         now = (pd.Timestamp.now("UTC").tz_localize(None) + pd.Timedelta(days=1)).isoformat()
-        checks: list[tuple[str, str, str]] = []  # (condition, reason, message SQL)
+        checks: list[tuple[str, str, str]] = [  # (condition, reason, message SQL)
+            ("nf IS NOT NULL", ReasonCode.BAD_TYPE,
+             f"printf('row has a different number of fields than the header (%d instead of %d); "
+             f"check delimiters and quotes', nf, {len(self.columns)})")]
         missing = {
             "vessel_id": "vessel_id_txt IS NULL OR " + self._is_na("vessel_id_txt"),
             "time": "time_txt IS NULL OR (t IS NULL AND " + self._is_na("time_txt") + ")",
@@ -520,52 +572,47 @@ class PingReader:
                            _sql_text(f"{self._label(f)} is empty; a {desc[:1].lower()}{desc[1:]} is required")))
         checks.append(("t IS NULL", ReasonCode.BAD_TIME,
                        f"printf('%s holds ''%s'', which is not a date-time (expected e.g. 2021-06-14T08:30:00Z)', "
-                       f"{_sql_text(self._label('time'))}, left(time_txt, 60))"))
+                       f"{_sql_text(self._label('time'))}, cell_txt(time_txt))"))
         for f, col in (("lat", "lat"), ("lon", "lon_in"), ("speed_kn", "sog")):
             na = "" if f != "speed_kn" else f" AND NOT {self._is_na('speed_kn_txt')}"
             checks.append((f"{f}_txt IS NOT NULL AND {col} IS NULL{na}", ReasonCode.BAD_TYPE,
-                           f"printf('%s holds ''%s'', which is not a number', {_sql_text(self._label(f))}, left({f}_txt, 60))"))
+                           f"printf('%s holds ''%s'', which is not a number', {_sql_text(self._label(f))}, cell_txt({f}_txt))"))
             checks.append((f"NOT isfinite({col})", ReasonCode.OUT_OF_RANGE,
                            _sql_text(f"{self._label(f)} is not a finite number")))
         checks.append(("lat < -90 OR lat > 90", ReasonCode.OUT_OF_RANGE,
                        f"printf('%s = %s is outside the allowed range (-90 to 90); are latitude and longitude swapped?', "
-                       f"{_sql_text(self._label('lat'))}, lat_txt)"))
+                       f"{_sql_text(self._label('lat'))}, cell_txt(lat_txt))"))
         checks.append(("lon_in < -180 OR lon_in > 360", ReasonCode.OUT_OF_RANGE,
-                       f"printf('%s = %s is outside the allowed range (-180 to 360)', {_sql_text(self._label('lon'))}, lon_txt)"))
+                       f"printf('%s = %s is outside the allowed range (-180 to 360)', {_sql_text(self._label('lon'))}, cell_txt(lon_txt))"))
         checks.append(("sog < 0", ReasonCode.OUT_OF_RANGE,
-                       f"printf('%s = %s is negative; a speed over ground is >= 0', {_sql_text(self._label('speed_kn'))}, speed_kn_txt)"))
+                       f"printf('%s = %s is negative; a speed over ground is >= 0', {_sql_text(self._label('speed_kn'))}, cell_txt(speed_kn_txt))"))
         checks.append((f"sog > {s.max_speed_kn!r}", ReasonCode.IMPLAUSIBLE_SPEED,
                        f"printf('%s = %s (%.1f knots) is above %s knots, faster than fishing vessels go; "
                        f"check the value or the unit ([units] speed_kn)', {_sql_text(self._label('speed_kn'))}, "
-                       f"speed_kn_txt, sog, {_sql_text(f'{s.max_speed_kn:g}')})"))
+                       f"cell_txt(speed_kn_txt), sog, {_sql_text(f'{s.max_speed_kn:g}')})"))
         checks.append((f"t > TIMESTAMP '{now}'", ReasonCode.FUTURE_TIME,
                        f"printf('%s = %s lies in the future; check the clock or the time zone ([source] timezone)', "
-                       f"{_sql_text(self._label('time'))}, time_txt)"))
+                       f"{_sql_text(self._label('time'))}, cell_txt(time_txt))"))
         reason = "CASE " + " ".join(f"WHEN {c} THEN '{r}'" for c, r, _ in checks) + " END"
         message = "CASE " + " ".join(f"WHEN reason = '{r}' AND ({c}) THEN {m}" for c, r, m in checks) + " END"
         # the mapped fields of a rejected row, as text (the vessel id is added, hashed, later)
         raw_fields = [(self.found[f], f"{f}_txt") for f in ("time", "lat", "lon", "speed_kn", "gear") if f in self.found]
         raw = "json_object(" + ", ".join(f"{_sql_text(c)}, {e}" for c, e in raw_fields) + ")" if raw_fields else "NULL"
-        src = _csv_source(self.path, self.profile)
-        if self.path.suffix.lower() == ".parquet":
-            src = src[:-1] + ", file_row_number = true)"
-            rownum = "file_row_number + 1"
-        else:
-            rownum = "row_number() OVER ()"
+        raw = f"CASE WHEN nf IS NOT NULL THEN {_sql_text(_WITHHELD)} ELSE {raw} END"
         texts = ", ".join(f"{self._raw(f)} AS {f}_txt" for f in self.specs)
         return f"""
             SELECT row, CASE WHEN reason IS NULL OR reason <> '{ReasonCode.MISSING_VALUE}' THEN vessel_id_txt END AS v_raw,
-                   t, lat, lon, sog, gear_txt AS gear_raw, reason,
+                   t, lat, lon, sog, gear_txt AS gear_raw, reason, odd,
                    CASE WHEN reason IS NOT NULL THEN {message} END AS message,
                    CASE WHEN reason IS NOT NULL THEN {raw} END AS raw
             FROM (
                 SELECT *, {reason} AS reason FROM (
                     SELECT *, lon_in - 360.0 * floor((lon_in + 180.0) / 360.0) AS lon FROM (
-                        SELECT row, vessel_id_txt, gear_txt, time_txt, lat_txt, lon_txt, speed_kn_txt,
+                        SELECT row, nf, odd, vessel_id_txt, gear_txt, time_txt, lat_txt, lon_txt, speed_kn_txt,
                                {self._time_sql('time_txt')} AS t,
                                TRY_CAST(lat_txt AS DOUBLE) AS lat, TRY_CAST(lon_txt AS DOUBLE) AS lon_in,
                                TRY_CAST(speed_kn_txt AS DOUBLE) * {self._speed_factor()!r} AS sog
-                        FROM (SELECT CAST({rownum} AS BIGINT) AS row, {texts} FROM {src}))))"""
+                        FROM (SELECT CAST({rownum} AS BIGINT) AS row, {texts}, {extra} FROM {src}))))"""
 
     # -- the pipeline
     def run(self) -> AdapterOutput:
@@ -579,7 +626,8 @@ class PingReader:
             con.execute("SET preserve_insertion_order = true")  # row numbers follow the file
             con.execute(f"SET TimeZone = {_sql_text(self.profile.timezone)}")
             con.execute(DISTANCE_MACRO)
-            return self._run(con)
+            con.execute(CELL_MACRO)
+            return self._run(con, tmp)
         except duckdb.Error as exc:
             raise InputFileError(self.path, f"cannot be read ({str(exc).splitlines()[0]}); "
                                  "check the delimiter, quoting and encoding") from None
@@ -587,13 +635,11 @@ class PingReader:
             con.close()
             shutil.rmtree(tmp, ignore_errors=True)
 
-    def _run(self, con: duckdb.DuckDBPyConnection) -> AdapterOutput:
+    def _run(self, con: duckdb.DuckDBPyConnection, tmp: Path) -> AdapterOutput:
         self.progress("reading pings", 0, 5)
-        con.execute(f"CREATE TABLE p AS {self._stage1_sql()}")
-        malformed = self._malformed(con)
-        if len(malformed):
-            self._renumber(con, malformed)
-        n_rows = con.execute("SELECT count(*) FROM p").fetchall()[0][0] + len(malformed)
+        if not self._read_fast(con):
+            self._read_lines(con, tmp / "lines.parquet")
+        n_rows = con.execute("SELECT count(*) FROM p").fetchall()[0][0]
         if n_rows == 0:
             raise InputFileError(self.path, "the file has a header but no data rows")
 
@@ -615,7 +661,7 @@ class PingReader:
                 "SELECT count(*) FILTER (WHERE fishing), count(*) FILTER (WHERE sog IS NULL) FROM track WHERE NOT spike"
             ).fetchall()[0]
         events, values = effort_output(cells_df, self.study, self.grid, contact)
-        quarantine, masked = self._quarantine(con, malformed)
+        quarantine, masked = self._quarantine(con)
         n_bad = len(quarantine) + int(masked["n_values"].sum() if len(masked) else 0)
         files = [InputFile("rows", self.path, file_sha256(self.path), n_rows, n_rows - n_bad, n_bad)]
         self.notes.append(f"{fishing:,} of {n_rows - n_bad:,} accepted pings classified as fishing "
@@ -646,7 +692,7 @@ class PingReader:
     def _checks(self, con: duckdb.DuckDBPyConnection) -> None:
         """Gear, domain, out-of-sequence times and duplicates (tables q, back, dups)."""
         unknown_gear = ("printf('gear ''%s'' is not a known gear code; add a [fishing.gears.\"%s\"] table "
-                        "with contact = \"bottom\" or \"pelagic\" to the profile', p.gear_raw, upper(trim(p.gear_raw)))")
+                        "with contact = \"bottom\" or \"pelagic\" to the profile', cell_txt(p.gear_raw), cell_txt(upper(trim(p.gear_raw))))")
         outside = ("printf('position (%.4f, %.4f) lies outside the study domain; check for swapped "
                    "latitude/longitude or a sign error', p.lat, p.lon)")
         con.execute(f"""
@@ -813,31 +859,80 @@ class PingReader:
         ix, iy = decode_cells(cells["code"].to_numpy(np.int64))
         return cells.assign(ix=ix, iy=iy).drop(columns="code"), result.n_fishing, result.n_derived
 
-    def _malformed(self, con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
-        """Rows DuckDB could not split into the header's columns (data row, message)."""
-        empty = pd.DataFrame({"data_row": pd.Series([], dtype="int64"), "error": pd.Series([], dtype=str)})
-        if self.path.suffix.lower() == ".parquet":
-            return empty
-        try:
-            rej = con.sql("SELECT line, error_message FROM ping_rejects ORDER BY line").df()
-        except duckdb.CatalogException:
-            return empty
-        rej = rej.drop_duplicates("line")
-        # the header is line 1, so data row = line - 1 (blank lines are not counted by the
-        # reader's data rows but are by its line numbers: files with both are rare)
-        return pd.DataFrame({"data_row": rej["line"].astype("int64") - 1, "error": rej["error_message"].astype(str)})
+    def _read_fast(self, con: duckdb.DuckDBPyConnection) -> bool:
+        """Table ``p`` by DuckDB's CSV reader; False (and no table) when the line reader must read the file.
 
-    @staticmethod
-    def _renumber(con: duckdb.DuckDBPyConnection, malformed: pd.DataFrame) -> None:
-        """Give the good rows their data row numbers when malformed rows were left out."""
-        bad = np.sort(malformed["data_row"].to_numpy())
-        j = np.arange(1, bad.size + 1)
-        con.register("gaps", pa.table({"g": bad - j, "n": j}))
-        con.execute("""CREATE TABLE p2 AS SELECT p.* REPLACE (p.row + coalesce(m.n, 0) AS row)
-                       FROM p ASOF LEFT JOIN gaps m ON p.row > m.g ORDER BY p.row""")
-        con.execute("DROP TABLE p")
-        con.execute("ALTER TABLE p2 RENAME TO p")
-        con.unregister("gaps")
+        DuckDB numbers rejected lines physically but good rows by record, and reads lines
+        made only of delimiters as rows: any rejected line, any such row, a cell starting
+        with a quote that was not taken as quoting, or a read error sends the file to the
+        line reader, which numbers rows as every other reader does.
+        """
+        if self.path.suffix.lower() == ".parquet":
+            src = _csv_source(self.path, self.profile)[:-1] + ", file_row_number = true)"
+            sql = self._stage1_sql(src, "file_row_number + 1", "CAST(NULL AS INTEGER) AS nf, false AS odd")
+            con.execute(f"CREATE TABLE p AS {sql}")
+            return True
+        try:
+            probe = con.sql(f"SELECT * FROM {_csv_source(self.path, self.profile, self.delimiter, rejects=False)} LIMIT 0")
+            names = list(probe.columns)
+        except duckdb.Error:
+            return False
+        if [c.strip().lstrip("\ufeff") for c in names] != self.columns:
+            return False  # DuckDB read another header (renamed or split columns)
+        self.colref = {c: _ident(d) for c, d in zip(self.columns, names, strict=True)}
+        # Cheap tests first (string comparisons): a cell whose first byte is a quote; a first
+        # cell that is empty or starts with whitespace (every whitespace byte sorts before '!'),
+        # and only then the costly test that every cell is blank.
+        blank = " AND ".join(f"coalesce(trim({_ident(d)}, {_sql_text(_BLANK_CHARS)}), '') = ''" for d in names)
+        quoted = " OR ".join(f"({_ident(d)} >= '\"' AND {_ident(d)} < '#')" for d in names)
+        first = _ident(names[0])
+        odd = f"CASE WHEN {quoted} THEN true WHEN {first} IS NULL OR {first} < '!' THEN {blank} ELSE false END"
+        sql = self._stage1_sql(_csv_source(self.path, self.profile, self.delimiter), "row_number() OVER ()",
+                               f"CAST(NULL AS INTEGER) AS nf, {odd} AS odd")
+        try:
+            con.execute(f"CREATE TABLE p AS {sql}")
+        except duckdb.Error:
+            return False
+        rejected = con.execute("SELECT count(*) FROM ping_rejects").fetchall()[0][0]
+        if rejected or con.execute("SELECT count(*) FROM p WHERE odd").fetchall()[0][0]:
+            con.execute("DROP TABLE p")
+            return False
+        return True
+
+    def _read_lines(self, con: duckdb.DuckDBPyConnection, target: Path) -> None:
+        """Table ``p`` from the line reader, streamed block by block through a parquet file.
+
+        Columns are stored by position (``c0``, ``c1`` ...) with the data row number and,
+        for a row that cannot be split into the header's columns, its number of fields
+        (its cells are left null: the row is quarantined with its text withheld).
+        """
+        import pyarrow.parquet as pq
+
+        self.line_reader = True
+        with LineReader(self.path, self.profile) as reader:
+            if reader.header != self.columns:
+                self.columns = reader.header
+                self.found = self._resolve(reader.header)
+            names = [f"c{i}" for i in range(reader.width)]
+            schema = pa.schema([("row", pa.int64()), ("nf", pa.int32())] + [(n, pa.string()) for n in names])
+            with pq.ParquetWriter(str(target), schema, compression="zstd") as writer:
+                for block in reader.blocks(FALLBACK_BLOCK_ROWS):
+                    n = len(block.rows)
+                    bad = np.zeros(n, dtype=bool)
+                    nf = np.zeros(n, dtype=np.int32)
+                    if block.malformed:
+                        at = np.array([m[0] for m in block.malformed], dtype=np.int64) - block.first_row
+                        bad[at] = True
+                        nf[at] = [m[2] for m in block.malformed]
+                    cells = [pa.array(col, pa.string(), mask=bad) for col in zip(*block.rows, strict=True)]
+                    rows = pa.array(np.arange(block.first_row, block.first_row + n, dtype=np.int64))
+                    writer.write_table(pa.Table.from_arrays([rows, pa.array(nf, mask=~bad), *cells], schema=schema))
+        # the first of repeated (empty) names wins, as in the header lookup
+        self.colref = {}
+        for i, c in enumerate(self.columns):
+            self.colref.setdefault(c, names[i])
+        sql = self._stage1_sql(f"read_parquet({_sql_text(str(target))})", "row", "nf, false AS odd")
+        con.execute(f"CREATE TABLE p AS {sql}")
 
     def _locate(self, con: duckdb.DuckDBPyConnection) -> pa.Table:
         """Cell code per row (in table order): OUTSIDE outside the domain, null without a position."""
@@ -864,7 +959,7 @@ class PingReader:
         ix, iy = decode_cells(df["code"].to_numpy(np.int64))
         return df.assign(ix=ix, iy=iy).drop(columns="code")
 
-    def _quarantine(self, con: duckdb.DuckDBPyConnection, malformed: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:
+    def _quarantine(self, con: duckdb.DuckDBPyConnection) -> tuple[pd.DataFrame, pd.DataFrame]:
         """Rejected pings one by one (up to the limit), the rest counted per reason."""
         s = self.settings
         limit = s.quarantine_rows
@@ -903,20 +998,10 @@ class PingReader:
             LEFT JOIN (SELECT DISTINCT vid, vessel FROM vmap) vmap ON q.vid = vmap.vid
             ORDER BY r.row
         """).to_arrow_table().to_pandas()
-        if len(malformed):
-            mal = pd.DataFrame({
-                "source_file": name, "source_row": malformed["data_row"].to_numpy(),
-                "reason_code": str(ReasonCode.BAD_TYPE),
-                "message": [f"the row cannot be split into the header's columns ({e.split(';')[0].strip()}); "
-                            "check delimiters and quotes" for e in malformed["error"]],
-                "raw": '{"note": "row text withheld: it may identify a vessel"}',
-            })
-            rows = pd.concat([mal, rows], ignore_index=True).sort_values("source_row", kind="stable")
+        rows["message"] = rows["message"].map(_one_line)  # at most `limit` rows
         keep = rows.iloc[:limit].reset_index(drop=True)
         keep["n_problems"] = 1
         counts = dict(con.execute("SELECT reason, count(*) FROM rejected GROUP BY reason").fetchall())
-        if len(malformed):
-            counts[str(ReasonCode.BAD_TYPE)] = counts.get(str(ReasonCode.BAD_TYPE), 0) + len(malformed)
         listed = keep["reason_code"].value_counts().to_dict()
         masked = [
             {"source_file": name, "reason_code": code, "n_values": int(n - listed.get(code, 0)),

@@ -7,12 +7,13 @@ adapter's Table Schema with pandera, and every failure becomes a quarantine entr
 
 from __future__ import annotations
 
+import codecs
 import csv
 import difflib
 import hashlib
 import io
 import json
-from collections.abc import Iterable, Mapping, Sequence
+from collections.abc import Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
@@ -106,57 +107,188 @@ def read_table(path: Path, profile: Profile, role: str) -> tuple[RawTable, list[
     if fast is not None:
         _check_header_names(path, list(fast.columns))
         return RawTable(path, role, fast, sha), []
-    data = path.read_bytes()
-    if not data.strip():
-        raise InputFileError(path, "the file is empty; expected a header row and data rows")
-    encoding = "utf-8-sig" if profile.encoding.lower().replace("_", "-") in ("utf-8", "utf8") else profile.encoding
-    try:
-        text = data.decode(encoding)
-    except UnicodeDecodeError as exc:
-        line = data.count(b"\n", 0, exc.start) + 1
-        hint = ("\"utf-16\"; the file starts with a UTF-16 byte-order mark"
-                if data[:2] in (b"\xff\xfe", b"\xfe\xff") else "\"latin-1\"")
-        raise InputFileError(
-            path,
-            f"is not valid {profile.encoding} text (byte 0x{data[exc.start]:02x} at offset {exc.start}); "
-            f"re-save it as UTF-8 or set [source] encoding in the profile (e.g. {hint}); "
-            f"the first such byte is on line {line}",
-        ) from None
-    delimiter = profile.delimiter or _sniff_delimiter(text, path)
-    csv.field_size_limit(MAX_FIELD_CHARS)
-    reader = csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
-    try:
-        header = next(reader)
-        while not any(c.strip() for c in header):
-            header = next(reader)
-    except StopIteration:
-        raise InputFileError(path, "the file has no header row") from None
-    except csv.Error as exc:
-        raise InputFileError(path, f"the header row cannot be read ({exc})") from None
-    header = [h.strip().lstrip("\ufeff") for h in header]
-    _check_header_names(path, header)
-    dupes = sorted({h for h in header if header.count(h) > 1 and h})
-    if dupes:
-        raise InputFileError(path, f"column name(s) {dupes} appear more than once in the header")
-    width = len(header)
-    rows: list[list[str]] = []
-    malformed: list[tuple[int, str]] = []
-    try:
-        for cells in reader:
-            if not cells or not any(c.strip() for c in cells):
-                continue  # blank lines are not data rows
-            if len(cells) != width:
-                malformed.append((len(rows) + 1, delimiter.join(cells)))
-                cells = [""] * width
-            rows.append(cells)
-    except csv.Error as exc:
-        raise InputFileError(
-            path, f"cannot be parsed as CSV after data row {len(rows)} ({exc}); check quoting"
-        ) from None
+    with LineReader(path, profile) as reader:
+        rows: list[list[str]] = []
+        malformed: list[tuple[int, str]] = []
+        for block in reader.blocks():
+            rows.extend(block.rows)
+            malformed.extend((row, text) for row, text, _ in block.malformed)
+        header = reader.header
     if not rows:
         raise InputFileError(path, "the file has a header but no data rows")
     frame = pd.DataFrame(rows, columns=header, dtype=object)
     return RawTable(path, role, frame, sha), malformed
+
+
+@dataclass
+class LineBlock:
+    """Consecutive data rows read by :class:`LineReader`.
+
+    ``rows`` holds one list of cells per data row, as many cells as the header; a malformed
+    row (another number of fields) keeps its place with every cell empty and is listed in
+    ``malformed`` as (1-based data row, raw text, number of fields found).
+    """
+
+    first_row: int
+    rows: list[list[str]]
+    malformed: list[tuple[int, str, int]]
+
+
+class LineReader:
+    """The line-by-line reader of delimited text: the reference for row numbers.
+
+    Data rows are numbered as a person counts them: the first non-blank row is the header,
+    and a row whose cells are all blank (an empty line, a line of spaces, a line made only
+    of delimiters) is not a data row and takes no number. A quoted cell may span lines; a
+    bare carriage return ends a line, as a line feed does. The file is read in a streaming
+    way (one line at a time, rows handed out in blocks), so memory stays bounded whatever
+    its size; a line longer than ``MAX_LINE_BYTES`` characters is refused.
+
+    Raises
+    ------
+    InputFileError
+        Empty file, undecodable text, no header, a header name spanning lines or repeated,
+        text that cannot be parsed as CSV (a field over ``MAX_FIELD_CHARS``).
+    """
+
+    def __init__(self, path: Path, profile: Profile) -> None:
+        self.path = Path(path)
+        self.profile = profile
+        self.encoding = ("utf-8-sig" if profile.encoding.lower().replace("_", "-") in ("utf-8", "utf8")
+                         else profile.encoding)
+        self._fh = open(self.path, "rb")  # noqa: SIM115 (closed by close())
+        self._text = io.TextIOWrapper(self._fh, encoding=self.encoding, newline="")
+        self._line = 0
+        self._rows = 0
+        try:
+            self.delimiter = profile.delimiter or _sniff_delimiter(self._head(), self.path)
+            csv.field_size_limit(MAX_FIELD_CHARS)
+            self._reader = csv.reader(self._lines(), delimiter=self.delimiter)
+            self.header = self._read_header()
+        except BaseException:
+            self.close()
+            raise
+        self.width = len(self.header)
+
+    def __enter__(self) -> LineReader:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    def close(self) -> None:
+        """Close the file."""
+        self._text.close()
+        self._fh.close()
+
+    def _head(self) -> str:
+        """The first lines of the text, to find the delimiter (the stream is rewound)."""
+        with open(self.path, "rb") as fh:
+            head = fh.read(_HEAD_BYTES)
+        if not head.strip() and len(head) < _HEAD_BYTES:
+            raise InputFileError(self.path, "the file is empty; expected a header row and data rows")
+        try:
+            return head.decode(self.encoding)
+        except UnicodeDecodeError as exc:
+            if exc.start < len(head) - 4:  # not a character cut by the end of the window
+                self._undecodable()
+            return head[:exc.start].decode(self.encoding, errors="ignore")
+
+    def _lines(self):  # type: ignore[no-untyped-def]
+        """Physical lines of the text (line ends kept), refusing one that is too long."""
+        try:
+            while line := self._text.readline(MAX_LINE_BYTES + 1):
+                self._line += 1
+                if len(line) > MAX_LINE_BYTES:
+                    raise InputFileError(
+                        self.path,
+                        f"line {self._line} is longer than {MAX_LINE_BYTES / 2**20:g} MiB; this is not a "
+                        "delimited text file with one record per line (check the line endings, or that "
+                        "the right file was given)",
+                    )
+                yield line
+        except UnicodeDecodeError:
+            self._undecodable()
+
+    def _undecodable(self) -> None:
+        """Refuse the file, naming its first byte that is not valid text in its encoding."""
+        # plain UTF-8 for utf-8-sig: a byte-order mark is valid UTF-8, and offsets stay file offsets
+        decoder = codecs.getincrementaldecoder("utf-8" if self.encoding == "utf-8-sig" else self.encoding)()
+        offset = 0
+        lines = 1
+        first = b""
+        with open(self.path, "rb") as fh:
+            while block := fh.read(1 << 20):
+                first = first or block[:2]
+                pending = decoder.getstate()[0]
+                try:
+                    decoder.decode(block)
+                except UnicodeDecodeError as exc:
+                    data = pending + block
+                    at = offset - len(pending) + exc.start
+                    lines += data.count(b"\n", 0, exc.start) - pending.count(b"\n")
+                    hint = ("\"utf-16\"; the file starts with a UTF-16 byte-order mark"
+                            if first in (b"\xff\xfe", b"\xfe\xff") else "\"latin-1\"")
+                    raise InputFileError(
+                        self.path,
+                        f"is not valid {self.profile.encoding} text (byte 0x{data[exc.start]:02x} at offset "
+                        f"{at}); re-save it as UTF-8 or set [source] encoding in the profile (e.g. {hint}); "
+                        f"the first such byte is on line {lines}",
+                    ) from None
+                offset += len(block)
+                lines += block.count(b"\n")
+        raise InputFileError(self.path, f"is not valid {self.profile.encoding} text; re-save it as UTF-8 "
+                                        "or set [source] encoding in the profile")
+
+    def _read_header(self) -> list[str]:
+        try:
+            header = next(self._reader)
+            while not any(c.strip() for c in header):
+                header = next(self._reader)
+        except StopIteration:
+            raise InputFileError(self.path, "the file has no header row") from None
+        except csv.Error as exc:
+            raise InputFileError(self.path, f"the header row cannot be read ({exc})") from None
+        header = [h.strip().lstrip("\ufeff") for h in header]
+        _check_header_names(self.path, header)
+        dupes = sorted({h for h in header if header.count(h) > 1 and h})
+        if dupes:
+            raise InputFileError(self.path, f"column name(s) {dupes} appear more than once in the header")
+        return header
+
+    def blocks(self, size: int = 100_000) -> Iterator[LineBlock]:
+        """The data rows, ``size`` at a time."""
+        width = self.width
+        rows: list[list[str]] = []
+        malformed: list[tuple[int, str, int]] = []
+        first = self._rows + 1
+        try:
+            for cells in self._reader:
+                if not cells or not any(c.strip() for c in cells):
+                    continue  # blank lines are not data rows
+                self._rows += 1
+                if len(cells) != width:
+                    malformed.append((self._rows, self.delimiter.join(cells), len(cells)))
+                    cells = [""] * width
+                rows.append(cells)
+                if len(rows) >= size:
+                    yield LineBlock(first, rows, malformed)
+                    rows, malformed, first = [], [], self._rows + 1
+        except csv.Error as exc:
+            raise InputFileError(
+                self.path, f"cannot be parsed as CSV after data row {self._rows} ({exc}); check quoting"
+            ) from None
+        if rows:
+            yield LineBlock(first, rows, malformed)
+
+
+def read_header(path: Path, profile: Profile) -> tuple[list[str], str]:
+    """The header of a delimited text file and its delimiter, as :class:`LineReader` reads them.
+
+    Reads only the first lines. Raises InputFileError as :class:`LineReader` does.
+    """
+    with LineReader(path, profile) as reader:
+        return reader.header, reader.delimiter
 
 
 #: Bytes read to find the delimiter and the header's width before the fast reader runs.

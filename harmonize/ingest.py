@@ -430,6 +430,21 @@ _NO_VALUES_ARROW = pa.schema([
 ])
 
 
+def _has_values(event_ids: pd.Series, value_ids: pd.Series) -> np.ndarray:
+    """Whether each event id occurs among the values' event ids.
+
+    The values' ids are reduced to their distinct ids first (by category code when
+    categorical): comparing every value row (millions, a few per event) costs seconds and
+    a Python string per row.
+    """
+    if isinstance(value_ids.dtype, pd.CategoricalDtype):
+        codes = value_ids.cat.codes.to_numpy()
+        present = value_ids.cat.categories[np.unique(codes[codes >= 0])]
+    else:
+        present = pd.unique(value_ids.dropna())
+    return event_ids.isin(np.asarray(present, dtype=object)).to_numpy()
+
+
 def events_without_values(out: AdapterOutput, study: Study, profile: Profile, kind: str) -> pa.Table:
     """The accepted events that yield no observation row, tagged, one row per event.
 
@@ -440,7 +455,7 @@ def events_without_values(out: AdapterOutput, study: Study, profile: Profile, ki
     event's flags (e.g. catch_incomplete, counts_incomplete when records were rejected).
     """
     events = out.events
-    lonely = events[~events["event_id"].isin(out.values["event_id"])] if len(events) else events
+    lonely = events[~_has_values(events["event_id"], out.values["event_id"])] if len(events) else events
     if lonely.empty:
         return _NO_VALUES_ARROW.empty_table()
     ev = tag_events(lonely, study)  # tags are per event: tagging the few alone gives the same tags

@@ -249,3 +249,18 @@ def test_keep_only_keeps_rejected_rows_raw_text(tmp_path: Path) -> None:
     table.keep_only(np.array([False, True, True, False]))
     assert table.n_rows == 4 and len(table.frame) == 2
     assert table.raw_json(np.array([1, 2])) == before == ['{"haul": "H2", "taxon": "b"}', '{"haul": "H3", "taxon": "c, d"}']
+
+
+@settings(max_examples=60, deadline=None)
+@given(events=st.lists(st.sampled_from(["H1", "H2", "H3", "H 4", "H;5"]), max_size=6),
+       values=st.lists(st.one_of(st.none(), st.sampled_from(["H1", "H3", "H;5", "X9"])), max_size=12))
+def test_events_without_values_lookup_equals_plain_isin(events: list[str], values: list[str | None]) -> None:
+    # The distinct-id lookup behind events_without_values gives what a row-by-row isin gives,
+    # for plain text ids and for categorical ones (the trawl adapter's coded catch keys).
+    from harmonize.ingest import _has_values
+
+    ev = pd.Series(events, dtype="str")
+    va = pd.Series(values, dtype="str")
+    expected = [e in {v for v in values if v is not None} for e in events]
+    assert _has_values(ev, va).tolist() == expected
+    assert _has_values(ev, va.astype("category")).tolist() == expected

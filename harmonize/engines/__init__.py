@@ -22,7 +22,7 @@ from harmonize.errors import HarmonizeError
 ENGINES = ("duckdb", "dask")
 #: Environment variable choosing the engine for a whole process.
 ENGINE_ENV = "HARMONIZE_ENGINE"
-#: Environment variable naming a running Dask scheduler (e.g. ``tcp://10.0.0.5:8786``).
+#: Environment variable naming a running Dask scheduler (e.g. ``tcp://scheduler-host:8786``).
 SCHEDULER_ENV = "HARMONIZE_DASK_SCHEDULER"
 #: Environment variable naming a scratch folder that the Dask workers can read.
 SCRATCH_ENV = "HARMONIZE_DASK_SCRATCH"

@@ -18,6 +18,7 @@ import pandas as pd
 import pyarrow as pa
 
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
+from harmonize.adapters.common import codes_in, distinct_present
 from harmonize.adapters.registry import get_adapter
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns, validate_observations
 from harmonize.engines import engine_scope
@@ -359,7 +360,7 @@ def assemble_blocks(out: AdapterOutput, study: Study, profile: Profile, kind: st
     unique = ev["event_id"].is_unique
     if unique:
         # each value's event row, found by integer code when the adapter gave categoricals
-        position = _event_positions(pd.Index(ev["event_id"]), out.values["event_id"])
+        position = codes_in(out.values["event_id"], pd.Index(ev["event_id"])).astype(np.int64)
         missing = int((position < 0).sum())
         if missing:
             raise HarmonizeError(f"internal error: {missing} values have no event; please report this")
@@ -430,21 +431,6 @@ _NO_VALUES_ARROW = pa.schema([
 ])
 
 
-def _has_values(event_ids: pd.Series, value_ids: pd.Series) -> np.ndarray:
-    """Whether each event id occurs among the values' event ids.
-
-    The values' ids are reduced to their distinct ids first (by category code when
-    categorical): comparing every value row (millions, a few per event) costs seconds and
-    a Python string per row.
-    """
-    if isinstance(value_ids.dtype, pd.CategoricalDtype):
-        codes = value_ids.cat.codes.to_numpy()
-        present = value_ids.cat.categories[np.unique(codes[codes >= 0])]
-    else:
-        present = pd.unique(value_ids.dropna())
-    return event_ids.isin(np.asarray(present, dtype=object)).to_numpy()
-
-
 def events_without_values(out: AdapterOutput, study: Study, profile: Profile, kind: str) -> pa.Table:
     """The accepted events that yield no observation row, tagged, one row per event.
 
@@ -455,7 +441,9 @@ def events_without_values(out: AdapterOutput, study: Study, profile: Profile, ki
     event's flags (e.g. catch_incomplete, counts_incomplete when records were rejected).
     """
     events = out.events
-    lonely = events[~_has_values(events["event_id"], out.values["event_id"])] if len(events) else events
+    if events.empty:
+        return _NO_VALUES_ARROW.empty_table()
+    lonely = events[~events["event_id"].isin(distinct_present(out.values["event_id"])).to_numpy()]
     if lonely.empty:
         return _NO_VALUES_ARROW.empty_table()
     ev = tag_events(lonely, study)  # tags are per event: tagging the few alone gives the same tags
@@ -504,15 +492,6 @@ def _decoded(table: pa.Table) -> pa.Table:
             col = pa.chunked_array([c.dictionary_decode() for c in col.chunks], type=fld.type)
         arrays.append(col)
     return pa.Table.from_arrays(arrays, schema=_VALUE_ARROW)
-
-
-def _event_positions(events: pd.Index, ids: pd.Series) -> np.ndarray:
-    """Position in ``events`` of each value's event id (-1 where none); by code for categoricals."""
-    if isinstance(ids.dtype, pd.CategoricalDtype):
-        codes = ids.cat.codes.to_numpy()
-        per_category = np.append(events.get_indexer(ids.cat.categories), -1)
-        return per_category[np.where(codes < 0, len(per_category) - 1, codes)].astype(np.int64)
-    return events.get_indexer(ids).astype(np.int64)
 
 
 def _store_order(position: np.ndarray, events: pd.DataFrame) -> np.ndarray:

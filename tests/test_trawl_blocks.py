@@ -254,13 +254,13 @@ def test_keep_only_keeps_rejected_rows_raw_text(tmp_path: Path) -> None:
 @settings(max_examples=60, deadline=None)
 @given(events=st.lists(st.sampled_from(["H1", "H2", "H3", "H 4", "H;5"]), max_size=6),
        values=st.lists(st.one_of(st.none(), st.sampled_from(["H1", "H3", "H;5", "X9"])), max_size=12))
-def test_events_without_values_lookup_equals_plain_isin(events: list[str], values: list[str | None]) -> None:
-    # The distinct-id lookup behind events_without_values gives what a row-by-row isin gives,
-    # for plain text ids and for categorical ones (the trawl adapter's coded catch keys).
-    from harmonize.ingest import _has_values
+def test_distinct_present_equals_the_set_of_values(events: list[str], values: list[str | None]) -> None:
+    # The distinct-id lookup behind events_without_values and the trawl adapter gives what a
+    # row-by-row isin gives, for plain text ids and for categorical ones (coded catch keys).
+    from harmonize.adapters.common import distinct_present
 
     ev = pd.Series(events, dtype="str")
     va = pd.Series(values, dtype="str")
     expected = [e in {v for v in values if v is not None} for e in events]
-    assert _has_values(ev, va).tolist() == expected
-    assert _has_values(ev, va.astype("category")).tolist() == expected
+    assert ev.isin(distinct_present(va)).tolist() == expected
+    assert ev.isin(distinct_present(va.astype("category"))).tolist() == expected

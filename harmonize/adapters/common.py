@@ -117,6 +117,7 @@ def zero_fill(
     study: Study,
     protocol: str | None,
     quantities: list[tuple[str, str]],
+    event_categories: pd.Index | None = None,
 ) -> pd.DataFrame:
     """Zero rows for target taxa of the protocol that an event did not record.
 
@@ -133,6 +134,8 @@ def zero_fill(
         The profile's protocol (key into targets.csv); None means no zero-filling.
     quantities
         (quantity, unit) pairs the protocol records, e.g. [("biomass", "kg"), ("count", "1")].
+    event_categories
+        When given (the events' ids), ``event_id`` is returned as a categorical over them.
 
     Returns
     -------
@@ -144,8 +147,13 @@ def zero_fill(
         return pd.DataFrame({c: [] for c in cols})
     q = len(quantities)
     pair = np.repeat(np.arange(rows.size), q)
+    if event_categories is None:
+        event_id = events["event_id"].to_numpy()[rows[pair]]
+    else:  # codes looked up once per event, not once per zero
+        codes = event_categories.get_indexer(events["event_id"])[rows[pair]]
+        event_id = pd.Categorical.from_codes(codes, categories=event_categories)
     return pd.DataFrame({
-        "event_id": events["event_id"].to_numpy()[rows[pair]],
+        "event_id": event_id,
         "variable": targets["taxon"].to_numpy()[pair],
         "life_stage": targets["life_stage"].to_numpy()[pair],
         "quantity": np.tile([qu for qu, _ in quantities], rows.size),
@@ -176,13 +184,13 @@ def zero_pairs(
     ev_ids = pd.Index(ev_ids)
     taxa = pd.Index(targets["taxon"].unique())
     t_taxon = taxa.get_indexer(targets["taxon"])
-    c_ev, c_var = _codes_in(caught["event_id"], ev_ids), _codes_in(caught["variable"], taxa)
+    c_ev, c_var = codes_in(caught["event_id"], ev_ids), codes_in(caught["variable"], taxa)
     seen = (c_ev >= 0) & (c_var >= 0)
     hit = np.zeros((len(ev_ids), len(taxa)), dtype=bool)
     hit[c_ev[seen], c_var[seen]] = True
     closed = np.zeros_like(hit)  # (event, taxon) pairs of quarantined records of a known taxon
     if len(blocked):
-        b_ev, b_var = _codes_in(blocked["event_id"], ev_ids), _codes_in(blocked["variable"], taxa)
+        b_ev, b_var = codes_in(blocked["event_id"], ev_ids), codes_in(blocked["variable"], taxa)
         ok = (b_ev >= 0) & (b_var >= 0)
         closed[b_ev[ok], b_var[ok]] = True
     year = events["year"].to_numpy(dtype=np.int64)
@@ -195,7 +203,7 @@ def zero_pairs(
         if pd.isna(stage):  # a target without a stage is met by a catch of any stage
             met = hit[:, v]
         else:  # a staged target only by that stage
-            same = seen & (c_var == v) & (_codes_in(caught["life_stage"], pd.Index([stage])) == 0)
+            same = seen & (c_var == v) & (codes_in(caught["life_stage"], pd.Index([stage])) == 0)
             met = np.zeros(len(ev_ids), dtype=bool)
             met[c_ev[same]] = True
         zero[:, t] = (year >= first[t]) & (year <= last[t]) & ~met[ev_code] & ~closed[ev_code, v]
@@ -203,7 +211,7 @@ def zero_pairs(
     return rows.astype(np.int64), targets.iloc[pair_target].reset_index(drop=True)
 
 
-def _codes_in(values: pd.Series, index: pd.Index) -> np.ndarray:
+def codes_in(values: pd.Series, index: pd.Index) -> np.ndarray:
     """Position of each value in ``index`` (-1 where absent or null); by category when categorical."""
     if isinstance(values.dtype, pd.CategoricalDtype):
         per_category = np.append(index.get_indexer(values.cat.categories), -1)
@@ -213,8 +221,27 @@ def _codes_in(values: pd.Series, index: pd.Index) -> np.ndarray:
     return np.where(values.isna().to_numpy(), -1, found)
 
 
-def unattributed_note(file_name: str, n: int, record: str, event: str) -> str:
+def distinct_present(values: pd.Series) -> np.ndarray:
+    """The distinct non-null values of a column (by category code when categorical, so a
+    column of millions of rows is never compared row by row as text)."""
+    if isinstance(values.dtype, pd.CategoricalDtype):
+        codes = values.cat.codes.to_numpy()
+        return np.asarray(values.cat.categories[np.unique(codes[codes >= 0])], dtype=object)
+    return np.asarray(pd.unique(values.dropna()), dtype=object)
+
+
+def unattributed_records(kept: np.ndarray, event_ids: pd.Series) -> int:
+    """Quarantined record rows with no readable event id (a malformed line, an empty id).
+
+    Such a row may belong to any event, so no event's records are known complete: the
+    adapters flag every event incomplete and infer no zero (see :func:`unattributed_note`).
+    """
+    return int((~kept & event_ids.isna().to_numpy()).sum())
+
+
+def unattributed_note(file_name: str, n: int, record: str, event: str,
+                      what: str = "counts", flag: str = "counts_incomplete") -> str:
     """The ingest note for quarantined records that no event can claim."""
     return (f"{file_name}: {n} quarantined {record} row(s) have no readable {event} id, so no {event}'s "
-            f"counts are known complete: every {event} is flagged counts_incomplete and no zeros were "
+            f"{what} can be known complete: every {event} is flagged {flag} and no zeros were "
             "inferred; fix those rows and ingest again with --replace")

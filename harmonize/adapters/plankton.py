@@ -30,6 +30,7 @@ from harmonize.adapters.common import (
     reject_records_of_events,
     resolve_taxa,
     unattributed_note,
+    unattributed_records,
     zero_fill,
 )
 from harmonize.adapters.reading import Rejections
@@ -150,7 +151,7 @@ class PlanktonAdapter(Adapter):
         blocked = pd.DataFrame({"event_id": rc["event_id"][lost], "variable": taxon.fillna(guess)[lost]})
         # A quarantined count row with no readable tow id (a malformed line, an empty id) may
         # belong to any tow: no tow's counts are known complete, so no absence is inferred.
-        unattributed = int((~rc_ok & rc["event_id"].isna().to_numpy()).sum())
+        unattributed = unattributed_records(rc_ok, rc["event_id"])
         notes = [unattributed_note(rc_raw.path.name, unattributed, "count", "tow")] if unattributed else []
         # A count without a stage could be any stage: no stage of that taxon is inferred absent.
         staged_taxa = set(study.targets.loc[study.targets["life_stage"].notna(), "taxon"])

@@ -36,6 +36,7 @@ from harmonize.adapters.common import (
     reject_records_of_events,
     resolve_taxa,
     unattributed_note,
+    unattributed_records,
     zero_fill,
 )
 from harmonize.adapters.plankton import flag_tuples
@@ -142,7 +143,7 @@ class TransectAdapter(Adapter):
         blocked = pd.DataFrame({"event_id": rc["event_id"][lost], "variable": taxon.fillna(guess)[lost]}).dropna()
         # A quarantined bird row with no readable segment id (a malformed line, an empty id)
         # may belong to any segment: no segment's counts are known complete, no absence is inferred.
-        unattributed = int((~rc_ok & rc["event_id"].isna().to_numpy()).sum())
+        unattributed = unattributed_records(rc_ok, rc["event_id"])
         notes = [unattributed_note(rc_raw.path.name, unattributed, "bird", "segment")] if unattributed else []
 
         # Without an in_flight column the source does not tell flying birds apart: no behavior.

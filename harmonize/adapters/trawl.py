@@ -18,10 +18,13 @@ import pyproj
 
 from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
 from harmonize.adapters.common import (
+    distinct_present,
     reject_outside_domain,
     reject_records_of_events,
     resolve_taxa,
-    zero_pairs,
+    unattributed_note,
+    unattributed_records,
+    zero_fill,
 )
 from harmonize.adapters.reading import Rejections, resolve_columns
 from harmonize.adapters.registry import register
@@ -95,13 +98,12 @@ class TrawlAdapter(Adapter):
         incomplete = set(rc["event_id"][lost].dropna())
         # A quarantined catch row with no readable haul id (a malformed line, an empty id)
         # may belong to any haul: no haul's catch is known complete, so no absence is inferred.
-        unattributed = int((~rc_ok & rc["event_id"].isna().to_numpy()).sum())
+        unattributed = unattributed_records(rc_ok, rc["event_id"])
         notes = []
         if unattributed:
             incomplete = set(hauls["event_id"])
-            notes.append(f"{rc_raw.path.name}: {unattributed} quarantined catch row(s) have no readable haul id, "
-                         "so no haul's catch is known complete and no zeros were inferred; fix those rows "
-                         "and ingest again with --replace")
+            notes.append(unattributed_note(rc_raw.path.name, unattributed, "catch", "haul",
+                                           what="catch", flag="catch_incomplete"))
         blocked = pd.DataFrame({"event_id": rc["event_id"][lost], "variable": taxon.fillna(guess)[lost]}).dropna()
 
         # the catch rows that stay, with haul, taxon and life stage as integer codes
@@ -117,8 +119,7 @@ class TrawlAdapter(Adapter):
         if unattributed:
             # a haul none of whose catch rows could be read has no known catch at all (not
             # even "nothing caught"): it is quarantined rather than stored without its catch
-            present = catch["event_id"].cat.categories[np.unique(catch["event_id"].cat.codes.to_numpy())]
-            unknown_catch = ~hauls["event_id"].isin(present).to_numpy()
+            unknown_catch = ~hauls["event_id"].isin(distinct_present(catch["event_id"])).to_numpy()
             rej.add("events", hauls["source_row"].to_numpy()[unknown_catch] - 1, ReasonCode.MISSING_VALUE,
                     f"none of this haul's catch rows could be read, and {unattributed} catch row(s) in "
                     f"{rc_raw.path.name} have no readable haul id, so its catch is unknown; fix the catch "
@@ -329,26 +330,16 @@ def _no_lists(n: int, value_type: pa.DataType) -> pa.Array:
 
 def _zero_values(events: pd.DataFrame, caught: pd.DataFrame, blocked: pd.DataFrame, study: Study,
                  protocol: str | None, quantities: list[tuple[str, str]], haul_ids: pd.Index) -> pd.DataFrame:
-    """Inferred zeros (see :func:`~harmonize.adapters.common.zero_fill`) with categorical keys."""
-    rows, targets = zero_pairs(events, caught, blocked, study, protocol)
-    if not quantities:
-        rows, targets = rows[:0], targets.iloc[:0]
-    q = len(quantities) or 1
-    pair = np.repeat(np.arange(rows.size), q)
-    n = pair.size
-    codes = haul_ids.get_indexer(events["event_id"].to_numpy()[rows[pair]]) if n else np.array([], dtype=np.int64)
-    return pd.DataFrame({
-        "event_id": pd.Categorical.from_codes(codes, categories=haul_ids),
-        "variable": pd.Categorical(targets["taxon"].to_numpy()[pair]),
-        "life_stage": pd.Categorical(targets["life_stage"].to_numpy()[pair]),
-        "quantity": np.tile([qu for qu, _ in quantities], rows.size) if quantities else np.array([], dtype=object),
-        "unit": np.tile([u for _, u in quantities], rows.size) if quantities else np.array([], dtype=object),
-        "value": np.zeros(n),
-        "variable_kind": "taxon", "zero_filled": True,
-        "flags": _arrow_series(_no_lists(n, pa.string())),
-        "source_record_rows": _arrow_series(_no_lists(n, pa.int64())),
-        "n_values": np.zeros(n, dtype=np.int64), "no_effort": False,
-    })
+    """Inferred zeros (:func:`~harmonize.adapters.common.zero_fill`) with categorical haul ids
+    and the value columns as Arrow arrays."""
+    zeros = zero_fill(events, caught, blocked, study, protocol, quantities, event_categories=haul_ids)
+    n = len(zeros)
+    return zeros.assign(
+        variable_kind="taxon", zero_filled=True,
+        flags=_arrow_series(_no_lists(n, pa.string())),
+        source_record_rows=_arrow_series(_no_lists(n, pa.int64())),
+        n_values=np.zeros(n, dtype=np.int64), no_effort=False,
+    )
 
 
 def _concat_values(parts: list[pd.DataFrame]) -> pd.DataFrame:

@@ -477,7 +477,7 @@ class Store:
         """
         cols = ", ".join(f'e."{c}"' for c in EVENTS_WITHOUT_VALUES_COLUMNS)
         with self.connect(view=False) as con:
-            if not _has_table(con, "events_without_values"):
+            if not twins.has_table(con, "events_without_values"):
                 return pd.DataFrame({c: pd.Series(dtype=object) for c in EVENTS_WITHOUT_VALUES_COLUMNS})
             sql = f"""SELECT {cols} FROM events_without_values e JOIN ingests i USING (ingest_id)
                       WHERE i.status = 'complete'"""
@@ -553,7 +553,7 @@ class Store:
                    WHERE i.status = 'complete' GROUP BY ALL HAVING i.records_written <> coalesce(sum(f.n_rows), 0)"""
             ).fetchall()
             problems += [f"ingest {i}: records_written {a} but {b} rows in its files" for i, a, b in bad]
-            if _has_table(con, "events_without_values"):
+            if twins.has_table(con, "events_without_values"):
                 # an event is either in the observations or among the events without values
                 both = con.execute(
                     """SELECT e.ingest_id, e.event_id FROM events_without_values e
@@ -575,7 +575,7 @@ class Store:
         accepted events that yield no observation row, in ``events_without_values``.
         """
         no_values = ("UNION SELECT ingest_id, source_file, source_row FROM events_without_values "
-                     "WHERE source_row IS NOT NULL" if _has_table(con, "events_without_values") else "")
+                     "WHERE source_row IS NOT NULL" if twins.has_table(con, "events_without_values") else "")
         rows = con.execute(
             f"""
             WITH files AS (
@@ -601,10 +601,6 @@ class Store:
         ).fetchall()
         return [f"ingest {i}: {name} has {n} data rows but only {k} are accepted or quarantined"
                 for i, name, n, k in rows]
-
-
-def _has_table(con: duckdb.DuckDBPyConnection, name: str) -> bool:
-    return bool(con.execute("SELECT count(*) FROM duckdb_tables() WHERE table_name = ?", [name]).fetchall()[0][0])
 
 
 def _crash_point(name: str) -> None:

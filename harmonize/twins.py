@@ -154,14 +154,15 @@ def record_settings(con: duckdb.DuckDBPyConnection, ingest_id: str, source_id: s
                 [ingest_id, source_id, settings.distance_km, settings.minutes, settings.rank])
 
 
-def _has_table(con: duckdb.DuckDBPyConnection, name: str) -> bool:
+def has_table(con: duckdb.DuckDBPyConnection, name: str) -> bool:
+    """Whether the database holds a table of that name (stores written by older versions may not)."""
     return bool(con.execute("SELECT count(*) FROM duckdb_tables() WHERE table_name = ?", [name]).fetchall()[0][0])
 
 
 def flagged_view_sql(con: duckdb.DuckDBPyConnection, base: str) -> str:
     """SELECT for the observations view: ``base`` with the store-wide flags added to ``flags``."""
     cols = [c for c, _ in observation_sql_columns()]
-    if not _has_table(con, "store_flags"):
+    if not has_table(con, "store_flags"):
         return f"SELECT * FROM {base}"
     plain = ", ".join(f'"{c}"' for c in cols)
     select = ", ".join(
@@ -288,7 +289,7 @@ def refresh(con: duckdb.DuckDBPyConnection, base: str = "observations_base") -> 
 
 def twins_frame(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
     """The twins with both records' taxon, time and position, for people to review."""
-    if not _has_table(con, "twins"):
+    if not has_table(con, "twins"):
         return pd.DataFrame(columns=["record_id", "twin_record_id", "source_id", "twin_source_id",
                                      "variable", "distance_km", "minutes"])
     return con.execute("""

@@ -40,6 +40,7 @@ import duckdb
 import numpy as np
 import pandas as pd
 import pyarrow as pa
+import pyarrow.parquet as pq
 
 from harmonize import units
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback, finish
@@ -50,6 +51,7 @@ from harmonize.adapters.reading import (
     Rejections,
     coerce_fields,
     file_sha256,
+    one_line,
     read_header,
     read_table,
     resolve_columns,
@@ -460,11 +462,6 @@ FALLBACK_BLOCK_ROWS = 100_000
 _WITHHELD = '{"note": "row text withheld: it may identify a vessel"}'
 
 
-def _one_line(text: str) -> str:
-    """A message with its control characters (line breaks, NUL, bidi overrides) escaped."""
-    return text if text.isprintable() else "".join(c if c.isprintable() else ascii(c)[1:-1] for c in text)
-
-
 def _ident(name: str) -> str:
     return '"' + name.replace('"', '""') + '"'
 
@@ -491,7 +488,6 @@ class PingReader:
             self.delimiter = read_header(path, profile)[1]
         self.grid = Grid(study.crs, study.cell_size_km)
         self.notes: list[str] = []
-        self.line_reader = False  # True when the file was read by the line reader
 
     def _resolve(self, columns: list[str]) -> dict[str, str]:
         empty = RawTable(self.path, "rows", pd.DataFrame(columns=columns), "")
@@ -906,9 +902,6 @@ class PingReader:
         for a row that cannot be split into the header's columns, its number of fields
         (its cells are left null: the row is quarantined with its text withheld).
         """
-        import pyarrow.parquet as pq
-
-        self.line_reader = True
         with LineReader(self.path, self.profile) as reader:
             if reader.header != self.columns:
                 self.columns = reader.header
@@ -998,7 +991,7 @@ class PingReader:
             LEFT JOIN (SELECT DISTINCT vid, vessel FROM vmap) vmap ON q.vid = vmap.vid
             ORDER BY r.row
         """).to_arrow_table().to_pandas()
-        rows["message"] = rows["message"].map(_one_line)  # at most `limit` rows
+        rows["message"] = rows["message"].map(one_line)  # at most `limit` rows
         keep = rows.iloc[:limit].reset_index(drop=True)
         keep["n_problems"] = 1
         counts = dict(con.execute("SELECT reason, count(*) FROM rejected GROUP BY reason").fetchall())

@@ -781,10 +781,12 @@ def _fmt(value: Any) -> str:
 def _short(value: Any, limit: int = 60) -> str:
     """A cell as shown in a message: at most ``limit`` characters, on one line."""
     text = str(value)
-    text = text if len(text) <= limit else text[: limit - 3] + "..."
-    if not text.isprintable():  # line breaks, NUL, bidi overrides: shown escaped
-        text = "".join(c if c.isprintable() else ascii(c)[1:-1] for c in text)
-    return text
+    return one_line(text if len(text) <= limit else text[: limit - 3] + "...")
+
+
+def one_line(text: str) -> str:
+    """The text with its control characters (line breaks, NUL, bidi overrides) shown escaped."""
+    return text if text.isprintable() else "".join(c if c.isprintable() else ascii(c)[1:-1] for c in text)
 
 
 def closest_names(unknown: Iterable[str], known: Sequence[str], n: int = 3) -> dict[str, list[str]]:

@@ -167,18 +167,6 @@ def wide_sql(taxa: Sequence[str], physical: Sequence[str], covariate_columns: Se
             "ORDER BY ev.source_id, ev.event_start, ev.event_id")
 
 
-def wide_query(con: Any, quantity: str = "count", by_life_stage: bool = False,
-               covariate_columns: Sequence[str] = ()) -> tuple[str, list[str], list[str]]:
-    """The SQL of the wide table over ``export_base`` (one pass), its taxon columns and covariate columns.
-
-    ``covariate_columns`` are the columns of the temporary view ``export_linked_covariates``
-    (keyed by source_id, event_id) to join, when such a view was registered.
-    """
-    taxa, physical = wide_columns(con, quantity, by_life_stage)
-    sql = wide_sql(taxa, physical, covariate_columns, quantity, by_life_stage)
-    return sql, taxa, [*physical, *covariate_columns]
-
-
 def wide_run_rows(run_rows: int | None = None) -> int:
     """Selection rows per run: the number given, else ``HARMONIZE_WIDE_RUN_ROWS``, else 5 million."""
     if run_rows is None:

@@ -7,6 +7,7 @@ from pathlib import Path
 import duckdb
 import pandas as pd
 import pytest
+from geographiclib.geodesic import Geodesic
 
 from harmonize import Store, load_study, run
 from harmonize.errors import DuplicateIngestError
@@ -93,8 +94,10 @@ def test_empty_haul_without_protocol_is_kept_without_values(study_dir: Path) -> 
     assert h010["event_start"] == pd.Timestamp("2020-06-15 08:00")
     # 70 fathoms (1 fathom = 1.8288 m exactly, international yard and pound agreement 1959)
     assert h010["bottom_depth_m"] == pytest.approx(70 * 1.8288)
-    # area swept = towed distance x wing spread: 0.025 degree of latitude (about 2.78 km) x 20 m
-    assert h010["effort_unit"] == "km2" and h010["effort"] == pytest.approx(2.7785 * 0.020, rel=1e-3)
+    # area swept = geodesic tow length (geographiclib, Karney 2013, "Algorithms for geodesics")
+    # x wing spread (20 m); the tow runs from 44.0000N to 44.0250N along 150.5W
+    tow_km = Geodesic.WGS84.Inverse(44.0, -150.5, 44.025, -150.5)["s12"] / 1000
+    assert h010["effort_unit"] == "km2" and h010["effort"] == pytest.approx(tow_km * 0.020, rel=1e-9)
     assert h010["lat"] == pytest.approx(44.0125) and h010["lon"] == pytest.approx(-150.5)
     assert h010["cell_id"] is not None
     with store.connect() as con:

@@ -150,7 +150,7 @@ def test_occurrence_core_archive_without_header_and_with_quotes(tmp_path: Path) 
     frame = table.table.frame
     assert frame["recordedBy"].tolist() == ["Vell, Ann", ""]
     assert frame["occurrenceStatus"].tolist() == ["present", "present"]
-    assert table.malformed == [(2, "o2,Aukelle minima")]
+    assert table.malformed == [(2, "o2,Aukelle minima", 2)]
     assert "ExtendedMeasurementOrFact" in table.notes[0]
 
 

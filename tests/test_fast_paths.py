@@ -101,7 +101,7 @@ def test_malformed_rows_fall_back_with_row_numbers(tmp_path: Path) -> None:
     profile = _profile(tmp_path)
     assert reading._read_csv_arrow(path, profile) is None
     table, malformed = read_table(path, profile, "events")
-    assert [r for r, _ in malformed] == [2, 3]
+    assert malformed == [(2, "2", 1), (3, "3,c,extra", 3)]  # (data row, text, fields found)
     assert table.frame["id"].tolist() == ["1", "", "", "4"]
 
 

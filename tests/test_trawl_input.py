@@ -75,6 +75,19 @@ def test_clean_file_gives_expected_rows(study_dir: Path) -> None:
     assert result.records_zero_filled == 10
 
 
+def test_row_split_with_another_delimiter_names_both_field_counts(study_dir: Path) -> None:
+    # A catch line written with semicolons reads as one field; the message says how many
+    # fields the row has and how many the header has, as the ping reader's message does.
+    study = load_study(study_dir)
+    catch = CATCH + "A2;keld cod;500;1\n"
+    result = run(study, "trawl_basic", _write(study_dir, catch=catch), write=False)
+    q = result.quarantine
+    bad = q[q["source_file"] == "c.csv"]
+    assert list(zip(bad["source_row"], bad["reason_code"], bad["message"], strict=True)) == [
+        (2, "bad_type", "row has a different number of fields than the header (1 instead of 4); "
+                        "check delimiters and quotes")]
+
+
 def test_missing_column_names_file_profile_and_columns(study_dir: Path) -> None:
     study = load_study(study_dir)
     inputs = _write(study_dir, hauls=HAULS.replace("WING_M", "WIDTH"))

@@ -85,7 +85,7 @@ class DwcTable:
     """
 
     table: RawTable
-    malformed: list[tuple[int, str]] = field(default_factory=list)
+    malformed: list[tuple[int, str, int]] = field(default_factory=list)
     orphans: list[tuple[int, str]] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
 
@@ -359,7 +359,7 @@ def _index(path: Path, value: str | None, what: str) -> int:
 
 
 def _parse_member(path: Path, reader: _MemberReader, spec: _FileSpec,
-                  header_names: bool = False) -> tuple[pd.DataFrame, list[tuple[int, str]]]:
+                  header_names: bool = False) -> tuple[pd.DataFrame, list[tuple[int, str, int]]]:
     """One data file as strings, columns named by term (plus id/coreid, member and row)."""
     data = reader.read(spec.location)
     encoding = "utf-8-sig" if spec.encoding.replace("_", "-").lower() in ("utf-8", "utf8") else spec.encoding
@@ -392,11 +392,11 @@ def _parse_member(path: Path, reader: _MemberReader, spec: _FileSpec,
         if spec.id_index is not None:
             columns.setdefault(spec.id_index, "id")
         width = max([*columns, spec.id_index or 0]) + 1 if columns else 0
-    malformed: list[tuple[int, str]] = []
+    malformed: list[tuple[int, str, int]] = []
     fixed = rows
     for i, cells in enumerate(rows):
         if len(cells) < width or (header_names and len(cells) != width):
-            malformed.append((i + 1, spec.delimiter.join(cells)))
+            malformed.append((i + 1, spec.delimiter.join(cells), len(cells)))
             fixed[i] = [""] * width
     grid = pd.DataFrame(fixed, dtype=object) if fixed else pd.DataFrame(columns=range(width), dtype=object)
     frame = pd.DataFrame({name: grid[idx] if idx in grid else "" for idx, name in columns.items()},
@@ -414,9 +414,9 @@ def _parse_member(path: Path, reader: _MemberReader, spec: _FileSpec,
 
 
 def _join_events(
-    path: Path, events: pd.DataFrame, ev_bad: list[tuple[int, str]],
-    occ: pd.DataFrame, occ_bad: list[tuple[int, str]],
-) -> tuple[pd.DataFrame, list[tuple[int, str]], list[tuple[int, str]]]:
+    path: Path, events: pd.DataFrame, ev_bad: list[tuple[int, str, int]],
+    occ: pd.DataFrame, occ_bad: list[tuple[int, str, int]],
+) -> tuple[pd.DataFrame, list[tuple[int, str]], list[tuple[int, str, int]]]:
     """Occurrences with their event's terms filled in, then one row per event without any."""
     ids = events["id"].astype(str).str.strip()
     dup = ids[ids.duplicated() & (ids != "")]
@@ -430,7 +430,7 @@ def _join_events(
     coreid = occ["coreid"].astype(str).str.strip() if "coreid" in occ else occ["id"].astype(str).str.strip()
     known = coreid.isin(set(ids[ids != ""]))
     malformed_rows = np.zeros(len(occ), dtype=bool)
-    malformed_rows[[r - 1 for r, _ in occ_bad]] = True
+    malformed_rows[[r - 1 for r, *_ in occ_bad]] = True
     lost = np.flatnonzero(~known.to_numpy() & ~malformed_rows)
     member = occ[MEMBER_COLUMN].iloc[0] if len(occ) else "the occurrence file"
     orphans = [(int(i) + 1, f"occurrence row {i + 1} of {member} points to event '{coreid.iloc[i]}', "
@@ -457,6 +457,6 @@ def _join_events(
                 bare[col] = ""
         out = pd.concat([out, bare[out.columns]], ignore_index=True)
     n_occ = len(occ)
-    ev_bad_text = dict(ev_bad)
-    malformed = list(occ_bad) + [(n_occ + k + 1, ev_bad_text[r]) for k, r in enumerate(bare_rows) if r in ev_bad_text]
+    ev_bad_text = {r: (text, n_fields) for r, text, n_fields in ev_bad}
+    malformed = list(occ_bad) + [(n_occ + k + 1, *ev_bad_text[r]) for k, r in enumerate(bare_rows) if r in ev_bad_text]
     return out.fillna("").astype(object), orphans, malformed

@@ -279,7 +279,7 @@ class OpportunisticAdapter(Adapter):
                  "only the first is kept" for k, o in zip(hit["key"], of, strict=True)])
 
 
-def _load(path: Path, profile: Profile, rej: Rejections) -> tuple[RawTable, RawTable, Profile, list[str], list[tuple[int, str]]]:
+def _load(path: Path, profile: Profile, rej: Rejections) -> tuple[RawTable, RawTable, Profile, list[str], list[tuple[int, str, int]]]:
     """The file as text (for the quarantine), a working copy to type, and the effective profile."""
     notes: list[str] = []
     if darwin_core.is_archive(path):

@@ -78,11 +78,11 @@ def file_sha256(path: Path) -> str:
     return digest.hexdigest()
 
 
-def read_table(path: Path, profile: Profile, role: str) -> tuple[RawTable, list[tuple[int, str]]]:
+def read_table(path: Path, profile: Profile, role: str) -> tuple[RawTable, list[tuple[int, str, int]]]:
     """Read a CSV/TSV (or parquet) file as strings.
 
-    Returns the table and the malformed lines (1-based data row, raw text) whose number of
-    fields differs from the header; those rows stay in the table (all cells empty except
+    Returns the table and the malformed lines (1-based data row, raw text, number of fields
+    found) whose number of fields differs from the header; those rows stay in the table (all cells empty except
     a marker) so that the caller quarantines them and the row numbering stays intact.
 
     Raises
@@ -109,10 +109,10 @@ def read_table(path: Path, profile: Profile, role: str) -> tuple[RawTable, list[
         return RawTable(path, role, fast, sha), []
     with LineReader(path, profile) as reader:
         rows: list[list[str]] = []
-        malformed: list[tuple[int, str]] = []
+        malformed: list[tuple[int, str, int]] = []
         for block in reader.blocks():
             rows.extend(block.rows)
-            malformed.extend((row, text) for row, text, _ in block.malformed)
+            malformed.extend(block.malformed)
         header = reader.header
     if not rows:
         raise InputFileError(path, "the file has a header but no data rows")
@@ -540,7 +540,7 @@ def coerce_fields(
     profile: Profile,
     rejections: Rejections,
     schema_name: str,
-    malformed: Sequence[tuple[int, str]] = (),
+    malformed: Sequence[tuple[int, str, int]] = (),
 ) -> pd.DataFrame:
     """Typed, unit-converted field frame of a table, with bad cells sent to ``rejections``.
 
@@ -550,11 +550,11 @@ def coerce_fields(
     found = resolve_columns(table, specs, profile)
     n = table.n_rows
     if malformed:
-        pos = np.array([r - 1 for r, _ in malformed])
+        pos = np.array([r - 1 for r, *_ in malformed])
         rejections.add(
             table.role, pos, ReasonCode.BAD_TYPE,
-            [f"row has a different number of fields than the header ({len(table.frame.columns)} columns); "
-             "check delimiters and quotes" for _ in malformed],
+            [f"row has a different number of fields than the header ({n_fields} instead of "
+             f"{len(table.frame.columns)}); check delimiters and quotes" for _, _, n_fields in malformed],
         )
     out: dict[str, pd.Series] = {}
     for spec in specs:

@@ -112,6 +112,9 @@ _EXTRA = {
 # max_speed_kn = 30           # faster segments -> implausible_speed
 """,
     "opportunistic": """\
+[presence]
+# tokens = ["present"]        # words in the count column meaning "present, not counted"
+
 [duplicates]                  # a record this close to another source's record is a twin
 # distance_km = 2.0
 # minutes = 60

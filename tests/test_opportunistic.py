@@ -62,7 +62,7 @@ def test_complete_checklists_carry_effort_and_zeros_incidental_records_do_not(st
     obs = _observations(study_dir)
     assert set(obs["provider_type"]) == {"volunteer"}
     by = {(e, v): r for e, v, r in zip(obs["event_id"], obs["variable"], obs.itertuples(), strict=True)}
-    # L1: complete, 90 minutes -> effort 1.5 h; 12 fulmars -> 8 per hour; pale gull "X" -> presence
+    # L1: complete, 90 minutes -> effort 1.5 h; 12 fulmars -> 8 per hour; pale gull "noted" (the profile's [presence] token) -> presence
     fulmar = by[("L1", "Procellix keldica")]
     assert (fulmar.quantity, fulmar.value, fulmar.effort, fulmar.effort_unit) == ("count", 12.0, 1.5, "h")
     assert fulmar.density == pytest.approx(8.0)
@@ -113,11 +113,49 @@ def test_reingest_is_a_noop(study_dir: Path, messy: Path) -> None:
 
 
 def test_parse_counts() -> None:
-    values, bad, fractional = parse_counts(pd.Series(["3", "X", "x", "", None, "0", "many", "2.5", "-1", " 12 "]))
+    text = pd.Series(["3", "seen", "SEEN", "", None, "0", "many", "2.5", "-1", " 12 ", "present"])
+    values, bad, fractional = parse_counts(text, ("seen",))
     np.testing.assert_array_equal(values[[0, 5, 8, 9]], [3.0, 0.0, -1.0, 12.0])
-    assert np.isnan(values[[1, 2, 3, 4, 6]]).all()
-    assert bad.tolist() == [False] * 6 + [True] + [False] * 3
-    assert fractional.tolist() == [False] * 7 + [True] + [False] * 2
+    assert np.isnan(values[[1, 2, 3, 4, 6, 10]]).all()
+    # "present" is not a marker once the profile names its own
+    assert bad.tolist() == [False] * 6 + [True] + [False] * 3 + [True]
+    assert fractional.tolist() == [False] * 7 + [True] + [False] * 3
+
+
+def test_default_presence_token_is_the_word_present_and_no_single_letter() -> None:
+    values, bad, _ = parse_counts(pd.Series(["present", " Present ", "X", "x", "+"]))
+    assert np.isnan(values[:2]).all() and bad.tolist() == [False, False, True, True, True]
+
+
+PRESENCE_CASES = [
+    ('[presence]\ntokens = "noted"\n', "presence.tokens.*list of non-empty words"),
+    ('[presence]\ntokens = []\n', "presence.tokens.*list of non-empty words"),
+    ('[presence]\ntokens = ["noted", " "]\n', "presence.tokens.*list of non-empty words"),
+    ('[presence]\ntokens = ["0"]\n', "presence.tokens.*'0' is a number"),
+    ('[presence]\ntoken = ["noted"]\n', "presence.token.*unknown key; expected 'tokens'"),
+]
+
+
+@pytest.mark.parametrize(("section", "match"), PRESENCE_CASES)
+def test_bad_presence_section_is_a_config_error(study_dir: Path, messy: Path, section: str, match: str) -> None:
+    profile = study_dir / "profiles" / f"{PROFILE}.toml"
+    text = profile.read_text()
+    start, end = text.index("[presence]"), text.index("[plausibility]")
+    profile.write_text(text[:start] + section + "\n" + text[end:])
+    with pytest.raises(ConfigError, match=match):
+        run(load_study(study_dir), PROFILE, {"rows": messy}, write=False)
+
+
+def test_a_providers_own_marker_is_refused_until_the_profile_maps_it(study_dir: Path) -> None:
+    data = study_dir / "marks.csv"
+    data.write_text(HEADER_ROW + "d1,,2021-11-14T09:30,44.5,-152.0,Ann Vell,keld fulmar,X,,,\n")
+    profile = study_dir / "profiles" / f"{PROFILE}.toml"
+    result = run(load_study(study_dir), PROFILE, {"rows": data}, write=False)
+    assert result.rows_quarantined == 1
+    message = result.quarantine["message"].iloc[0]
+    assert "'X'" in message and "'noted'" in message and "[presence] tokens" in message
+    profile.write_text(profile.read_text().replace('tokens = ["noted"]', 'tokens = ["noted", "X"]'))
+    assert run(load_study(study_dir), PROFILE, {"rows": data}, write=False).rows_quarantined == 0
 
 
 def test_effort_text_and_units() -> None:
@@ -169,7 +207,7 @@ def test_day_first_dates_with_slashes_are_not_read_as_intervals(study_dir: Path)
     profile = study_dir / "profiles" / f"{PROFILE}.toml"
     profile.write_text(profile.read_text().replace('timezone = "UTC"', 'timezone = "UTC"\ndayfirst = true'))
     data = study_dir / "slashes.csv"
-    data.write_text(HEADER_ROW + "d1,,14/11/2021 09:30,44.5,-152.0,Ann Vell,keld fulmar,X,,,\n")
+    data.write_text(HEADER_ROW + "d1,,14/11/2021 09:30,44.5,-152.0,Ann Vell,keld fulmar,noted,,,\n")
     result = run(load_study(study_dir), PROFILE, {"rows": data})
     assert result.rows_quarantined == 0
     obs = _observations(study_dir)

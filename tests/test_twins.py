@@ -148,7 +148,7 @@ def test_shared_checklists_and_consecutive_checklists(study_dir: Path) -> None:
     flagged = _flagged(study)
     assert flagged == {"vol:P1": False, "vol:P2": True, "vol:P3": False}
     # a counted record is kept before a presence-only one, whatever the order
-    rows = ["c1,,2022-11-05T08:05,43.5001,-152.0,Cal Dunmore,keld fulmar,X,,,"]
+    rows = ["c1,,2022-11-05T08:05,43.5001,-152.0,Cal Dunmore,keld fulmar,noted,,,"]
     run(study, PROFILE, {"rows": _volunteers(study_dir, rows, "incidental.csv")})
     twins = _twins(study)
     assert len(twins) == 2 and not _flagged(study)["vol:P1"]

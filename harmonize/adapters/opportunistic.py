@@ -48,25 +48,37 @@ SCHEMA = "opportunistic_rows"
 #: Checklists longer than 5 h or 5 km are flagged "long_effort": analyses of checklist data
 #: commonly keep only shorter ones (Johnston et al. 2021, cited above; thresholds from memory).
 LONG_EFFORT_H = 5.0
-LONG_EFFORT_KM = 5.0
+LONG_ROUTE_KM = 5.0
 #: Records dated before this are refused unless the profile sets [plausibility] earliest
 #: (typed years such as 0019 or 1019; common practice).
 DEFAULT_EARLIEST = "1900-01-01"
-_PRESENT_WORDS = frozenset({"x", "present", "+"})
+#: The word that means "present, not counted" when the profile names no other: ours, and plain
+#: English. A provider's own marker is mapped with [presence] tokens in the profile.
+DEFAULT_PRESENCE_TOKENS = ("present",)
 _STATUS = {"present": True, "detected": True, "absent": False, "notdetected": False, "not detected": False}
 _EFFORT_UNITS_H = {"min": 1 / 60, "mins": 1 / 60, "minute": 1 / 60, "minutes": 1 / 60, "h": 1.0,
                    "hr": 1.0, "hrs": 1.0, "hour": 1.0, "hours": 1.0}
 
 
-def parse_counts(text: pd.Series) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Counts from text: a number, or "X" / empty for present-not-counted.
+def parse_counts(
+    text: pd.Series, presence_tokens: tuple[str, ...] = DEFAULT_PRESENCE_TOKENS
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Counts from text: a number, or empty / a presence token for present-not-counted.
+
+    Parameters
+    ----------
+    text
+        The count column as text.
+    presence_tokens
+        Markers meaning "present, not counted" (compared without case and surrounding blanks).
 
     Returns (count as float with NaN where not counted, not-a-count mask, not-whole mask).
     Negative numbers are returned as numbers; the caller rejects them.
     """
     t = text.astype("string").str.strip()
     folded = t.str.casefold()
-    blank = (t.isna() | folded.isin(NA_TOKENS) | folded.isin(_PRESENT_WORDS)).to_numpy()
+    tokens = [tok.strip().casefold() for tok in presence_tokens]
+    blank = (t.isna() | folded.isin(NA_TOKENS) | folded.isin(tokens)).to_numpy()
     values = pd.to_numeric(t.mask(blank), errors="coerce").to_numpy(dtype=float, na_value=np.nan)
     bad = ~blank & np.isnan(values)
     fractional = np.isfinite(values) & (values % 1 != 0)
@@ -114,6 +126,7 @@ class OpportunisticAdapter(Adapter):
     ) -> AdapterOutput:
         twin_settings(profile, self.kind)  # a bad [duplicates] section fails before any reading
         earliest = _earliest(profile)
+        presence_tokens = _presence_tokens(profile)
         rej = Rejections()
         raw, work, prof, notes, extra = _load(Path(inputs["rows"]), profile, rej)
         if progress:
@@ -142,10 +155,12 @@ class OpportunisticAdapter(Adapter):
         rej.add("rows", pos[dup], ReasonCode.DUPLICATE_RECORD,
                 [f"record '{r}' appears earlier in the file; only the first row is kept" for r in rows["record_id"][dup]])
 
-        count, not_count, fractional = parse_counts(rows["count"])
+        count, not_count, fractional = parse_counts(rows["count"], presence_tokens)
         label = _label(prof, "count")
+        marker = " or ".join(f"'{tok}'" for tok in presence_tokens)
         rej.add("rows", pos[not_count], ReasonCode.BAD_TYPE,
-                [f"{label} holds '{_short(v)}'; expected a whole number, or X for present but not counted"
+                [f"{label} holds '{_short(v)}'; expected a whole number, or empty or {marker} for present but "
+                 "not counted (map your provider's marker with [presence] tokens in the profile)"
                  for v in rows["count"][not_count]])
         rej.add("rows", pos[fractional], ReasonCode.BAD_TYPE,
                 [f"{label} holds {v:g}; a count must be a whole number" for v in count[fractional]])
@@ -345,6 +360,23 @@ def _earliest(profile: Profile) -> pd.Timestamp:
         raise ConfigError(profile.path, "plausibility.earliest", f"'{value}' is not a date (expected e.g. 2015-01-01)") from None
 
 
+def _presence_tokens(profile: Profile) -> tuple[str, ...]:
+    """The profile's markers for "present, not counted" ([presence] tokens), or the default."""
+    sec = profile.section("presence")
+    unknown = sorted(set(sec) - {"tokens"})
+    if unknown:
+        raise ConfigError(profile.path, f"presence.{unknown[0]}", "unknown key; expected 'tokens'")
+    tokens = sec.get("tokens", list(DEFAULT_PRESENCE_TOKENS))
+    if not isinstance(tokens, list) or not tokens or not all(isinstance(t, str) and t.strip() for t in tokens):
+        raise ConfigError(profile.path, "presence.tokens",
+                          f"expected a list of non-empty words, e.g. [\"present\", \"seen\"], got {tokens!r}")
+    numeric = [t for t in tokens if pd.notna(pd.to_numeric(t.strip(), errors="coerce"))]
+    if numeric:
+        raise ConfigError(profile.path, "presence.tokens",
+                          f"'{numeric[0]}' is a number and would hide a count; a presence marker must not be one")
+    return tuple(t.strip() for t in tokens)
+
+
 def _event_keys(rec: pd.DataFrame) -> pd.Series:
     """Checklist id where given; otherwise one event per observer, time and place."""
     content = pd.util.hash_pandas_object(
@@ -383,7 +415,7 @@ def _events(live: pd.DataFrame) -> pd.DataFrame:
             f.append("checklist_inconsistent")
         if c and not np.isfinite(d):
             f.append("effort_missing")
-        if c and ((np.isfinite(d) and d > LONG_EFFORT_H) or (np.isfinite(km) and km > LONG_EFFORT_KM)):
+        if c and ((np.isfinite(d) and d > LONG_EFFORT_H) or (np.isfinite(km) and km > LONG_ROUTE_KM)):
             f.append("long_effort")
         if dated:
             f.append("date_only")

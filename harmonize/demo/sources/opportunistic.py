@@ -29,6 +29,9 @@ _RATE_PER_H = {"Procellix keldica": 6.0, "Larivox pallens": 4.0, "Aukelle minima
 _OBSERVERS = ["Ilse Varrow", "Tam Brekke", "Odo Selvin", "Runa Maelis", "Pell Haskard", "Vigo Anstrel",
               "Sela Dunmorrow", "Kasimir Feld", "Yrsa Tolland", "Bram Oakhurst"]
 
+#: The invented app's marker for a bird noted but not counted (mapped in its profile).
+PRESENCE_MARK = "seen"
+
 APP_PROFILE = """\
 # Volunteer seabird records from a birding app (invented): complete checklists and incidental sightings.
 [source]
@@ -47,9 +50,12 @@ lon = "lon"
 observer = "observer"
 taxon = "species"
 count = "number"
-complete = "all_species_reported"
-duration_min = "effort_minutes"
-distance_km = "effort_km"
+complete = "full_list"
+duration_min = "watch_min"
+distance_km = "route_km"
+
+[presence]
+tokens = ["seen"]            # the app writes "seen" for a bird noted but not counted
 
 [plausibility]
 earliest = "2015-01-01"     # the app was launched in 2015
@@ -127,7 +133,7 @@ def _app_year(rng: np.random.Generator, year: int, agency: pd.DataFrame) -> pd.D
             n = rng.poisson(rate)
             if n == 0:
                 continue
-            number = "X" if rng.random() < 0.1 else str(n)
+            number = PRESENCE_MARK if rng.random() < 0.1 else str(n)
             rows.append((f"{year}-C{i + 1:03d}", start[i], lat[i], lon[i], observer[i], rng.choice(_NAMES[taxon]),
                          number, "true", minutes[i], 0.0))
     # incidental sightings scattered over the sea
@@ -136,7 +142,7 @@ def _app_year(rng: np.random.Generator, year: int, agency: pd.DataFrame) -> pd.D
     itime = pd.Timestamp(f"{year}-01-01") + pd.to_timedelta(rng.uniform(0, 365 * 24 * 60, n_inc), unit="min")
     for j in range(n_inc):
         taxon = SEABIRDS[rng.integers(0, 3)]
-        number = "X" if rng.random() < 0.4 else str(rng.integers(1, 6))
+        number = PRESENCE_MARK if rng.random() < 0.4 else str(rng.integers(1, 6))
         rows.append(("", itime[j], ilat[j], ilon[j], rng.choice(_OBSERVERS), rng.choice(_NAMES[taxon]), number,
                      "", np.nan, np.nan))
     # volunteers on the survey's route report some of the agency's birds again
@@ -151,9 +157,9 @@ def _app_year(rng: np.random.Generator, year: int, agency: pd.DataFrame) -> pd.D
             rows.append(("", t, la, lo, rng.choice(_OBSERVERS), taxon, str(int(count)), "", np.nan, np.nan))
     else:  # no agency survey: two volunteers on one boat report the same birds
         for r in rows[:6]:
-            rows.append(("", r[1] + pd.Timedelta(minutes=10), r[2] + 0.002, r[3], "Bram Oakhurst", r[5], "X", "", np.nan, np.nan))
+            rows.append(("", r[1] + pd.Timedelta(minutes=10), r[2] + 0.002, r[3], "Bram Oakhurst", r[5], PRESENCE_MARK, "", np.nan, np.nan))
     frame = pd.DataFrame(rows, columns=["checklist", "observed_at", "lat", "lon", "observer", "species", "number",
-                                        "all_species_reported", "effort_minutes", "effort_km"])
+                                        "full_list", "watch_min", "route_km"])
     frame["observed_at"] = pd.to_datetime(frame["observed_at"]).dt.strftime("%Y-%m-%dT%H:%M")
     frame["lat"] = frame["lat"].round(5)
     frame["lon"] = frame["lon"].round(5)
@@ -196,12 +202,12 @@ def _write_archive(rng: np.random.Generator, path: Path, app: pd.DataFrame) -> N
     if len(lists):
         first = lists[lists["checklist"] == lists["checklist"].iloc[0]]
         start = pd.Timestamp(first["observed_at"].iloc[0])
-        end = start + pd.Timedelta(minutes=float(first["effort_minutes"].iloc[0]))
+        end = start + pd.Timedelta(minutes=float(first["watch_min"].iloc[0]))
         eid = "SW-2022-APP"
         events.append((eid, f"{start:%Y-%m-%dT%H:%MZ}/{end:%Y-%m-%dT%H:%MZ}", str(first["lat"].iloc[0]),
                        str(first["lon"].iloc[0]), first["observer"].iloc[0], "copied from a birding app"))
         for k, (name, number) in enumerate(zip(first["species"], first["number"], strict=True)):
-            occ.append((eid, f"{eid}-{k + 1}", name, "" if number == "X" else number, "present"))
+            occ.append((eid, f"{eid}-{k + 1}", name, "" if number == PRESENCE_MARK else number, "present"))
     ev = pd.DataFrame(events, columns=["eventID", "eventDate", "decimalLatitude", "decimalLongitude", "recordedBy",
                                        "samplingProtocol"])
     oc = pd.DataFrame(occ, columns=["id", "occurrenceID", "scientificName", "individualCount", "occurrenceStatus"])

@@ -10,6 +10,8 @@ from rich.table import Table
 from rich.text import Text
 
 from harmonize.audit.run import AuditResult, audit, parse_codes
+from harmonize.audit.since import Since
+from harmonize.errors import HarmonizeError
 
 _STYLE = {"error": "bold red", "warning": "yellow", "info": "cyan"}
 
@@ -30,13 +32,22 @@ def audit_cmd(
                                       "aggregations run; see docs/performance.md."),
     scheduler: str | None = typer.Option(None, "--scheduler", metavar="ADDRESS",
                                          help="Dask scheduler address (tcp://host:8786) for --engine dask."),
+    since: Path | None = typer.Option(None, "--since", metavar="PREVIOUS.json",
+                                      help="Compare with a previous audit JSON: what changed since the last audit."),
+    fail_on_new: str | None = typer.Option(None, "--fail-on-new", metavar="CODE[,CODE]",
+                                           help="Exit 1 when a finding with one of these codes is new since --since."),
 ) -> None:
     """Coverage audit: where the data are thin or missing, before any model is fitted."""
     codes = parse_codes(fail_on)
+    new_codes = parse_codes(fail_on_new)
+    if new_codes and since is None:
+        raise HarmonizeError("--fail-on-new needs --since PREVIOUS.json: new findings are those the previous audit did not have")
     study = study_from(ctx)
     with console.status("auditing the store"):
-        result = audit(study, year=year, engine=engine, scheduler=scheduler)
+        result = audit(study, year=year, engine=engine, scheduler=scheduler, since=since)
     _print(result, limit)
+    if result.since is not None:
+        print_since(result.since)
     if json_out is not None:
         console.print(f"audit JSON written to {result.write_json(json_out)}", markup=False)
     if html_out is not None:
@@ -46,6 +57,26 @@ def audit_cmd(
         hit = sorted(result.codes() & set(codes))
         console.print(f"failing: findings with code(s) {', '.join(hit)} exist (--fail-on {fail_on})", markup=False)
         raise typer.Exit(1)
+    if new_codes and result.since is not None and result.since.new_codes() & set(new_codes):
+        hit = sorted(result.since.new_codes() & set(new_codes))
+        console.print(f"failing: new findings with code(s) {', '.join(hit)} since the previous audit "
+                      f"(--fail-on-new {fail_on_new})", markup=False)
+        raise typer.Exit(1)
+
+
+def print_since(since: Since) -> None:
+    """What changed since the previous audit, in a few lines."""
+    c = since.counts()
+    console.print(f"since the audit of {since.previous_generated_at}: {len(since.ingests_added)} ingest(s) added, "
+                  f"{len(since.ingests_superseded)} superseded by corrections; findings {c['new']} new, "
+                  f"{c['resolved']} resolved, {c['severity changed']} with another severity", markup=False)
+    for r in since.effects[since.effects["revises_earlier_year"]].itertuples(index=False):
+        n = "an unknown number of" if r.values_changed is None or r.values_changed != r.values_changed \
+            else f"{int(r.values_changed):,}"
+        console.print(f"  corrected {r.file_name} ({r.source_id}) changed values in season year {r.season_year}, "
+                      f"which the previous audit had seen: {n} rows with a changed value", markup=False)
+    for note in since.notes:
+        console.print(f"  note: {note}", markup=False)
 
 
 def _print(result: AuditResult, limit: int) -> None:

@@ -382,6 +382,10 @@ def render_html(result: AuditResult) -> str:
         ("Agreement between sources", "sources", _comparisons(result)),
         ("Confidential fishing data", "confidentiality", _confidentiality(result)),
     ]
+    if result.since is not None:  # the comparison with a previous audit comes first
+        from harmonize.audit.since import render_since_html
+
+        sections.insert(0, ("Since the last audit", "since", render_since_html(result.since)))
     nav = " · ".join(f'<a href="#{anchor}">{_e(title)}</a>' for title, anchor, _ in sections)
     body = "".join(f'<section id="{anchor}"><h2>{_e(title)}</h2>{html}</section>' for title, anchor, html in sections)
     thresholds = (f"Thresholds (study.toml [audit]): at least {st.get('min_events')} samples per season x layer "

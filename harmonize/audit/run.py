@@ -14,6 +14,16 @@ import pandas as pd
 from harmonize import __version__
 from harmonize.audit.findings import CODES, SEVERITIES, Finding, all_findings, tolerances
 from harmonize.audit.metrics import Metrics, compute
+from harmonize.audit.since import (
+    AUDIT_FORMAT,
+    AUDIT_SCHEMA_VERSION,
+    Since,
+    check_previous,
+    compare,
+    finding_key,
+    load_previous,
+    store_basis,
+)
 from harmonize.contract import CONTRACT_VERSION
 from harmonize.engines import EngineChoice, check_engine, current_engine
 from harmonize.errors import HarmonizeError
@@ -52,6 +62,10 @@ class AuditResult:
     findings: list[Finding]
     domain_cells: pd.DataFrame
     settings: dict[str, Any] = field(default_factory=dict)
+    #: What the next audit compares with (:func:`harmonize.audit.since.store_basis`).
+    basis: dict[str, Any] = field(default_factory=dict)
+    #: The comparison with a previous audit, when one was given (``audit(since=...)``).
+    since: Since | None = None
 
     @property
     def extent(self) -> pd.DataFrame:
@@ -90,13 +104,15 @@ class AuditResult:
         coverage_cols = ["source_kind", "season_year", "season", "events", "cells_sampled", "coverage_fraction"]
         ext = self.extent
         cov = self.coverage
-        return {
+        out = {
+            "format": AUDIT_FORMAT,
+            "schema_version": AUDIT_SCHEMA_VERSION,
             "study": self.study_name,
             "generated_at": self.generated_at,
             "extent": _records(ext, extent_cols + ["first_year", "last_year", "presence_only_events"]),
             "coverage": _records(cov, coverage_cols + ["strata_sampled", "cells_suppressed",
                                                       "presence_only_events", "domain_cells"]),
-            "findings": [f.to_dict() for f in self.findings],
+            "findings": [{**f.to_dict(), "key": finding_key(f)} for f in self.findings],
             "audited_year": self.year,
             "settings": self.settings,
             "confidentiality": self.suppression(),
@@ -104,7 +120,11 @@ class AuditResult:
             "caution": CAUTION,
             "tool_version": __version__,
             "contract_version": CONTRACT_VERSION,
+            **self.basis,
         }
+        if self.since is not None:
+            out["since_last_audit"] = self.since.to_json_dict()
+        return out
 
     def write_json(self, path: str | Path) -> Path:
         """Write :meth:`to_json_dict` to ``path`` (UTF-8, indented)."""
@@ -145,7 +165,7 @@ def domain_cells(study: Study) -> pd.DataFrame:
 
 
 def audit(study: Study, year: int | None = None, engine: str | None = None,
-          scheduler: str | None = None) -> AuditResult:
+          scheduler: str | None = None, since: str | Path | dict[str, Any] | None = None) -> AuditResult:
     """Audit the coverage of everything in the study's store.
 
     Parameters
@@ -160,6 +180,9 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
         or "duckdb"); the result is the same (see :mod:`harmonize.engines`).
     scheduler
         Address of a Dask scheduler for ``engine="dask"`` (default: a local cluster).
+    since
+        A previous audit JSON of this study (its path, or the parsed object): the result then
+        holds what changed since (``result.since``, :mod:`harmonize.audit.since`).
 
     Returns
     -------
@@ -170,8 +193,13 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
     StoreError
         When the study has no store yet.
     HarmonizeError
-        When ``year`` is outside the years the store holds.
+        When ``year`` is outside the years the store holds, or ``since`` is not an audit JSON
+        of this study in this version's format.
     """
+    previous = None
+    if since is not None:
+        previous = (check_previous(since, "the previous audit", study.name) if isinstance(since, dict)
+                    else load_previous(since, study.name))
     cells = domain_cells(study)
     store = Store(study.store_dir)
     with store.connect() as con:
@@ -189,6 +217,9 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
                                     scheduler or choice.scheduler)
         else:
             metrics = compute(con, cells, study.min_vessels, year)
+        basis = store_basis(con, len(cells), year)
+        findings = all_findings(metrics, study, year)
+        compared = None if previous is None else compare(previous, basis, findings, con, store.directory)
     settings = {
         "min_events": study.audit.min_events, "coverage_drop": study.audit.coverage_drop,
         "min_encounters": study.audit.min_encounters, "min_vessels": study.min_vessels,
@@ -202,9 +233,11 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
         generated_at=pd.Timestamp.now("UTC").isoformat(timespec="seconds"),
         year=year,
         metrics=metrics,
-        findings=all_findings(metrics, study, year),
+        findings=findings,
         domain_cells=cells,
         settings=settings,
+        basis=basis,
+        since=compared,
     )
 
 

@@ -33,6 +33,7 @@ def store_frames(
     provider_type: str = "agency",
     protocol: str | None = None,
     file_name: str | None = None,
+    replace: bool = False,
 ) -> IngestResult:
     """Commit hand-made events and values to the study's store as one ingest.
 
@@ -62,4 +63,4 @@ def store_frames(
     out = AdapterOutput(events=ev, values=va, quarantine=empty_q, files=files)
     profile = Profile(path=study.root / "profiles" / f"{source_id}.toml", source_id=source_id, kind=kind,
                       provider_type=provider_type, protocol=protocol, raw={"source": {"id": source_id}})
-    return store_output(study, profile, kind, out)
+    return store_output(study, profile, kind, out, replace=replace)

@@ -41,6 +41,8 @@ def demo(
                       f"(clouds, land, outside the sea, duplicates): {fmt_int(masked)}")
     for line in run.findings:
         console.print(f"  {line}" if line.startswith("[") else line, markup=False)
+    for line in run.planning:
+        console.print(line, markup=False)
     for name, path in run.outputs.items():
         console.print(f"{name}: {path}")
     if run.skipped:

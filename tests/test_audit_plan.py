@@ -218,3 +218,19 @@ def test_cli_plan_writes_csv_gpkg_json_and_refuses_bad_arguments(aligned_study: 
         res = subprocess.run([*run, *bad], capture_output=True, text=True, timeout=120)
         assert res.returncode == 2, res.stdout
         assert message in res.stderr and res.stderr.strip().count("\n") == 0
+
+
+def test_the_report_maps_the_plan(aligned_study: Path) -> None:
+    from harmonize.audit.report import render_html
+    from harmonize.audit.run import audit
+
+    _hauls(aligned_study, [(IX0 + 2 + k, IY0) for k in range(4)])
+    study = load_study(aligned_study)
+    result = audit(study)
+    result.plan = plan_samples(study, "trawl", 5, seasons=["summer"])
+    html = render_html(result)
+    assert "Where 5 more samples would help most" in html
+    assert html.count('fill="#D55E00"><title>') == 5  # one marker per proposed station
+    for cell in result.plan.stations["cell_id"]:
+        assert cell in html
+    assert result.to_json_dict()["sampling_plan"]["n_samples"] == 5

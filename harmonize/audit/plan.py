@@ -103,6 +103,8 @@ class Plan:
     n_domain_cells: int
     notes: list[str] = field(default_factory=list)
     criterion: str = CRITERION
+    #: Every domain cell (cell_id, ix, iy, stratum, sampled), for the map.
+    domain: pd.DataFrame | None = None
 
     def coverage(self) -> tuple[float, float]:
         """Share of the planned strata's domain cells sampled before and after the plan."""
@@ -373,6 +375,7 @@ def plan_samples(study: Study, source_kind: str, n_samples: int, *, seasons: Seq
     cells = cells.merge(depth, on="cell_id", how="left")
     cells["bottom_depth_m"] = cells["bottom_depth_m"].astype(float)
     cells["sampled"] = cells["cell_id"].isin(sampled)
+    domain = cells[["cell_id", "ix", "iy", "stratum", "sampled"]].copy()
     if allowed is not None:
         cells = cells[cells["stratum"].isin(allowed)].reset_index(drop=True)
     eligible = np.ones(len(cells), bool)
@@ -401,4 +404,50 @@ def plan_samples(study: Study, source_kind: str, n_samples: int, *, seasons: Seq
     if cells.empty:
         raise HarmonizeError("no domain cell lies in the allowed strata; check --stratum")
     stations, more = propose(cells, request.n_samples, request.min_distance_km, request.keep, request.seed)
-    return Plan(request, stations, stratum_table(cells, stations), n_domain_cells=len(cells), notes=notes + more)
+    return Plan(request, stations, stratum_table(cells, stations), n_domain_cells=len(cells), notes=notes + more,
+                domain=domain)
+
+
+# ----------------------------------------------------------------------------- the report section
+def render_plan_html(plan: Plan) -> str:
+    """"Where N more samples would help most": a map of the plan and coverage per stratum (HTML fragment)."""
+    from html import escape
+
+    r = plan.request
+    parts = [f'<p class="lead">{len(plan.stations)} added {escape(r.source_kind)} samples in '
+             f'{escape(", ".join(r.seasons))} ({escape(", ".join(r.depth_layers))}), against the samples of '
+             f'season year {r.season_year}. {escape(plan.criterion)}</p>']
+    d = plan.domain
+    if d is not None and len(d):
+        ix0, ix1, iy0, iy1 = int(d["ix"].min()), int(d["ix"].max()), int(d["iy"].min()), int(d["iy"].max())
+        width, height = ix1 - ix0 + 1, iy1 - iy0 + 1
+        scale = max(2.0, min(420 / width, 420 / height))
+
+        def path(frame: pd.DataFrame) -> str:
+            return "".join(f"M{ix - ix0} {iy1 - iy}h1v1h-1z" for ix, iy in zip(frame["ix"], frame["iy"], strict=True))
+
+        ix, iy = Grid.parse(plan.stations["cell_id"]) if len(plan.stations) else (np.array([], int), np.array([], int))
+        marks = "".join(
+            f'<circle cx="{x - ix0 + 0.5}" cy="{iy1 - y + 0.5}" r="0.45" fill="#D55E00"><title>{int(k)}: '
+            f'{escape(str(s))} {escape(str(c))}</title></circle>'
+            for x, y, k, s, c in zip(ix, iy, plan.stations["rank"], plan.stations["stratum"], plan.stations["cell_id"],
+                                     strict=True))
+        parts.append(
+            '<div class="legend"><span><span class="swatch" style="background:#e3e7ec"></span>domain</span>'
+            f'<span><span class="swatch" style="background:#4292c6"></span>sampled in {r.season_year}</span>'
+            '<span><span class="swatch" style="background:#D55E00;border-radius:6px"></span>proposed</span></div>'
+            f'<svg xmlns="http://www.w3.org/2000/svg" width="{width * scale:.0f}" height="{height * scale:.0f}" '
+            f'viewBox="0 0 {width} {height}" role="img" aria-label="sampling plan">'
+            f'<path d="{path(d)}" fill="#e3e7ec" shape-rendering="crispEdges"/>'
+            f'<path d="{path(d[d["sampled"]])}" fill="#4292c6" shape-rendering="crispEdges"/>{marks}</svg>')
+    rows = "".join(
+        f"<tr><td>{escape(str(s.stratum))}</td><td class=\"num\">{s.domain_cells:,}</td>"
+        f"<td class=\"num\">{s.area_share:.0%}</td><td class=\"num\">{s.cells_sampled_before:,}</td>"
+        f"<td class=\"num\">{s.proposed:,}</td><td class=\"num\">{s.cells_sampled_after:,}</td>"
+        f"<td class=\"num\">{s.share_sampled_before:.1%} → {s.share_sampled_after:.1%}</td></tr>"
+        for s in plan.strata.itertuples(index=False))
+    parts.append('<table><thead><tr><th>stratum</th><th class="num">domain cells</th><th class="num">area share</th>'
+                 '<th class="num">sampled before</th><th class="num">added</th><th class="num">sampled after</th>'
+                 f'<th class="num">share of the stratum\'s cells</th></tr></thead><tbody>{rows}</tbody></table>')
+    parts += [f'<p class="note">{escape(n)}</p>' for n in plan.notes]
+    return "".join(parts)

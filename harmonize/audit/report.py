@@ -386,6 +386,11 @@ def render_html(result: AuditResult) -> str:
         from harmonize.audit.since import render_since_html
 
         sections.insert(0, ("Since the last audit", "since", render_since_html(result.since)))
+    if result.plan is not None:
+        from harmonize.audit.plan import render_plan_html
+
+        sections.append((f"Where {len(result.plan.stations)} more samples would help most", "plan",
+                         render_plan_html(result.plan)))
     nav = " · ".join(f'<a href="#{anchor}">{_e(title)}</a>' for title, anchor, _ in sections)
     body = "".join(f'<section id="{anchor}"><h2>{_e(title)}</h2>{html}</section>' for title, anchor, html in sections)
     thresholds = (f"Thresholds (study.toml [audit]): at least {st.get('min_events')} samples per season x layer "

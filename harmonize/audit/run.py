@@ -66,6 +66,8 @@ class AuditResult:
     basis: dict[str, Any] = field(default_factory=dict)
     #: The comparison with a previous audit, when one was given (``audit(since=...)``).
     since: Since | None = None
+    #: A sampling plan to show in the report (:func:`harmonize.audit.plan.plan_samples`), if set.
+    plan: Any = None
 
     @property
     def extent(self) -> pd.DataFrame:
@@ -124,6 +126,8 @@ class AuditResult:
         }
         if self.since is not None:
             out["since_last_audit"] = self.since.to_json_dict()
+        if self.plan is not None:
+            out["sampling_plan"] = self.plan.to_json_dict()
         return out
 
     def write_json(self, path: str | Path) -> Path:

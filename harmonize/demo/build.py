@@ -83,7 +83,6 @@ def build_demo(folder: str | Path, seed: int = DEFAULT_SEED,
     if correction is not None:
         _ingest(study, folder, correction, result, say, replace=True)
     _run_optional(study, result, say, previous)
-    _plan(study, result, say)
     return result
 
 
@@ -133,12 +132,12 @@ def _corrected_delivery(folder: Path, planned: list[DemoInput]) -> DemoInput | N
                      f"bottom-trawl survey {CORRECTED_YEAR}, corrected delivery ({len(rows)} catch weights fixed)")
 
 
-def _plan(study, result: DemoRun, say: Callable[[str], None]) -> None:  # type: ignore[no-untyped-def]
+def _plan(study, result: DemoRun, say: Callable[[str], None]):  # type: ignore[no-untyped-def]
     """Where PLAN_SAMPLES added summer trawl hauls would help most, against the CORRECTED_YEAR survey."""
     try:
         planning = importlib.import_module("harmonize.audit.plan")
     except ModuleNotFoundError:
-        return
+        return None
     say("planning added samples")
     plan = planning.plan_samples(study, "trawl", PLAN_SAMPLES, seasons=["summer"], depth_layers=["near_bottom"],
                                  season_year=CORRECTED_YEAR, min_distance_km=30.0)
@@ -154,7 +153,9 @@ def _plan(study, result: DemoRun, say: Callable[[str], None]) -> None:  # type: 
         f"plan: {len(plan.stations)} added summer trawl hauls against the {CORRECTED_YEAR} survey go {where}; "
         f"share of the domain's cells sampled {before:.1%} -> {after:.1%} "
         f"(harmonize --study {result.folder} plan trawl {PLAN_SAMPLES} --season summer --layer near_bottom "
-        f"--year {CORRECTED_YEAR} --min-distance 30)")
+        f"--year {CORRECTED_YEAR} --min-distance 30; map: 'Where {PLAN_SAMPLES} more samples would help most' "
+        "in the audit report)")
+    return plan
 
 
 def _run_optional(study, result: DemoRun, say: Callable[[str], None],  # type: ignore[no-untyped-def]
@@ -167,6 +168,7 @@ def _run_optional(study, result: DemoRun, say: Callable[[str], None],  # type: i
     if audit is not None:
         say("auditing coverage")
         audited = audit.audit(study, since=previous)
+        audited.plan = _plan(study, result, say)
         result.outputs.update(audit.demo_outputs(study, result.folder / "outputs", audited))
         if audited.since is not None:
             _since_lines(audited.since, result)

@@ -168,10 +168,10 @@ def _run_optional(study, result: DemoRun, say: Callable[[str], None],  # type: i
     if audit is not None:
         say("auditing coverage")
         audited = audit.audit(study, since=previous)
-        audited.plan = _plan(study, result, say)
-        result.outputs.update(audit.demo_outputs(study, result.folder / "outputs", audited))
         if audited.since is not None:
             _since_lines(audited.since, result)
+        audited.plan = _plan(study, result, say)
+        result.outputs.update(audit.demo_outputs(study, result.folder / "outputs", audited))
         counts = audited.counts()
         result.findings.append(
             "audit: " + ", ".join(f"{n} {sev}{'s' if n != 1 else ''}" for sev, n in counts.items() if n)

@@ -315,7 +315,8 @@ def compare(previous: Mapping[str, Any], basis: Mapping[str, Any], findings: Seq
                 "earlier_year": (info["source_id"], y) in seen_before,
                 "events_change": int(get(a, "events") - get(b, "events")),
                 "rows_change": int(get(a, "rows") - get(b, "rows")),
-                "effort_change": get(a, "effort") - get(b, "effort"),
+                # rounded: sums of the same efforts in another order differ in the last bits
+                "effort_change": round(get(a, "effort") - get(b, "effort"), 9),
                 "effort_unit": (a.at[y, "effort_unit"] if y in a.index else b.at[y, "effort_unit"]),
                 "values_changed": (int(changed.get(y, 0)) if changed is not None else None) if old else None,
                 "values_differ": bool(old) and digest_a != digest_b,
@@ -404,6 +405,7 @@ def _e(value: object) -> str:
 
 
 def _signed(x: float, digits: int = 0) -> str:
+    x = round(float(x), digits) + 0.0  # no "-0" or "+0.00" from the last bits of a sum
     return f"{x:+,.{digits}f}" if x else "0"
 
 

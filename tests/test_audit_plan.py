@@ -14,8 +14,10 @@ import pyproj
 import pytest
 import shapely
 from factories import store_frames
+from hypothesis import given
+from hypothesis import strategies as st
 
-from harmonize.audit.plan import plan_samples
+from harmonize.audit.plan import plan_samples, propose
 from harmonize.errors import HarmonizeError
 from harmonize.study import load_study
 
@@ -234,3 +236,22 @@ def test_the_report_maps_the_plan(aligned_study: Path) -> None:
     for cell in result.plan.stations["cell_id"]:
         assert cell in html
     assert result.to_json_dict()["sampling_plan"]["n_samples"] == 5
+
+
+@given(sizes=st.lists(st.integers(1, 40), min_size=1, max_size=5), n=st.integers(1, 60), seed=st.integers(0, 2**32 - 1))
+def test_from_no_samples_every_stratum_ends_within_one_of_its_share(sizes: list[int], n: int, seed: int) -> None:
+    """Proportional allocation (Cochran 1977, ch. 5): n_s within 1 of n x (cells of s / all cells)."""
+    n = min(n, sum(sizes))
+    rows = [{"cell_id": f"s{i}_{k}", "lon": -154.0 + 0.3 * i, "lat": 42.0 + 0.2 * k, "stratum": f"s{i}",
+             "sampled": False, "eligible": True, "bottom_depth_m": float("nan")}
+            for i, size in enumerate(sizes) for k in range(size)]
+    cells = pd.DataFrame(rows)
+    stations, notes = propose(cells, n, seed=seed)
+    assert len(stations) == n and not notes and stations["cell_id"].is_unique
+    counts = stations["stratum"].value_counts()
+    for i, size in enumerate(sizes):
+        assert abs(int(counts.get(f"s{i}", 0)) - n * size / sum(sizes)) < 1
+    # the allocation does not depend on the order of the cells
+    shuffled = cells.sample(frac=1.0, random_state=seed % 2**31).reset_index(drop=True)
+    again, _ = propose(shuffled, n, seed=seed)
+    assert again["stratum"].value_counts().sort_index().equals(counts.sort_index())

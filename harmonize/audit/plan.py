@@ -72,7 +72,7 @@ class PlanRequest:
     depth_layers: tuple[str, ...]
     season_year: int
     strata: tuple[str, ...] | None = None
-    depth_range_m: tuple[float, float] | None = None
+    depth_range_m: tuple[float | None, float | None] | None = None
     min_distance_km: float = 0.0
     keep: tuple[str, ...] = ()
     seed: int = 0
@@ -369,8 +369,8 @@ def plan_samples(study: Study, source_kind: str, n_samples: int, *, seasons: Seq
                WHERE bottom_depth_m IS NOT NULL AND cell_id IS NOT NULL GROUP BY cell_id""").df()
     request = PlanRequest(source_kind, int(n_samples), season_names, layer_names, int(season_year),
                           None if allowed is None else tuple(allowed),
-                          None if depth_range_m is None else (float("nan") if lo is None else float(lo),
-                                                              float("nan") if hi is None else float(hi)),
+                          None if depth_range_m is None else (None if lo is None else float(lo),
+                                                              None if hi is None else float(hi)),
                           float(min_distance_km), tuple(dict.fromkeys(keep)), int(seed))
     cells = cells.merge(depth, on="cell_id", how="left")
     cells["bottom_depth_m"] = cells["bottom_depth_m"].astype(float)

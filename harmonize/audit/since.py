@@ -98,7 +98,8 @@ def store_basis(con: duckdb.DuckDBPyConnection, n_domain_cells: int, max_year: i
     by_ingest = {k: g[["role", "file_name", "file_sha256"]].to_dict(orient="records")
                  for k, g in files.groupby("ingest_id", sort=False)}
     out_ingests = [{**row, "files": by_ingest.get(row["ingest_id"], [])} for row in _plain(ingests)]
-    return {"ingests": out_ingests, "ingest_years": _plain(years), "layer_coverage": _plain(layers)}
+    return {"ingests": out_ingests, "ingest_years": _plain(years), "layer_coverage": _plain(layers),
+            "audited_year": max_year}
 
 
 def _plain(frame: pd.DataFrame) -> list[dict[str, Any]]:
@@ -267,6 +268,11 @@ def compare(previous: Mapping[str, Any], basis: Mapping[str, Any], findings: Seq
         The store folder (parquet paths in the manifest are relative to it).
     """
     notes: list[str] = []
+    if previous.get("audited_year") != basis.get("audited_year"):
+        def scope(y: Any) -> str:
+            return "every season year" if y is None else f"season year {y}"
+        notes.append(f"the previous audit covered {scope(previous.get('audited_year'))}, this one "
+                     f"{scope(basis.get('audited_year'))}: findings tied to a year differ for that reason too")
     prev_ids = [str(i["ingest_id"]) for i in previous["ingests"]]
     prev_info = {str(i["ingest_id"]): i for i in previous["ingests"]}
     now_ids = [str(i["ingest_id"]) for i in basis["ingests"]]

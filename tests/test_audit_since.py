@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import hashlib
 import json
 import os
 import random
@@ -49,7 +50,7 @@ def two_audits(study: Study, tmp_path: Path) -> dict:
     for k in (0, 5, 9):
         corrected[k] += 0.5
     _survey(study, 2021, cells.iloc[:31], corrected, replace=True)
-    return {"first": first, "first_path": first_path, "cells": cells}
+    return {"first": first, "first_path": first_path, "cells": cells, "store_dir": study.store_dir}
 
 
 def test_the_json_carries_what_the_comparison_needs(two_audits: dict) -> None:
@@ -60,6 +61,19 @@ def test_the_json_carries_what_the_comparison_needs(two_audits: dict) -> None:
     years = {(r["season_year"]): (r["events"], r["rows"], r["effort"]) for r in data["ingest_years"]}
     assert years == {2018: (30, 30, 30.0), 2019: (30, 30, 30.0), 2021: (30, 30, 30.0)}
     assert all(f["key"] == finding_key(f) for f in data["findings"])
+    # the value digest, recomputed here from the stored rows with Python's hashlib: the xor of
+    # md5(record_id|value to 17 significant digits), bytes read little-endian
+    first_ingest = data["ingests"][0]["ingest_id"]
+    study_store = Path(two_audits["store_dir"])
+    with duckdb.connect(str(study_store / "harmonized.duckdb"), read_only=True) as con:
+        paths = [str(study_store / r[0]) for r in con.execute(
+            "SELECT path FROM observation_files WHERE ingest_id = ?", [first_ingest]).fetchall()]
+    rows = pd.concat([pd.read_parquet(p, columns=["record_id", "value"]) for p in paths])
+    digest = 0
+    for rid, value in zip(rows["record_id"], rows["value"], strict=True):
+        digest ^= int.from_bytes(hashlib.md5(f"{rid}|{value:.17g}".encode()).digest(), "little")
+    recorded = next(r["value_digest"] for r in data["ingest_years"] if r["ingest_id"] == first_ingest)
+    assert recorded == str(digest)
     assert data["layer_coverage"] == [{"source_kind": "trawl", "season": "summer", "depth_layer": "near_bottom",
                                        "events": 90, "cells_sampled": 30, "coverage_fraction": 30 / 165}]
 

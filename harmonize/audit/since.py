@@ -5,8 +5,9 @@ Every audit JSON carries what the next comparison needs (its *basis*, see :func:
 - ``format`` ("harmonize-audit") and ``schema_version`` (:data:`AUDIT_SCHEMA_VERSION`);
 - ``ingests``: the complete ingests the audit covered, with their file names and sha256;
 - ``ingest_years``: per ingest and season year, the events, observation rows, summed effort
-  and a digest of the values (bit-xor of a hash of each row's record_id and value, so
-  the order of rows does not matter);
+  and a digest of the values (bit-xor of the md5 of each row's record_id and value written
+  with 17 significant digits: the order of rows does not matter, and the digest does not
+  change with the DuckDB version, as its ``hash()`` may);
 - ``layer_coverage``: per source kind x season x depth layer, samples and domain cells sampled
   (all audited years together), by the audit's own event table;
 - a ``key`` on each finding: its location (code, source kind, season year, season, depth
@@ -79,7 +80,7 @@ def store_basis(con: duckdb.DuckDBPyConnection, n_domain_cells: int, max_year: i
                 SELECT ingest_id, any_value(source_id) AS source_id, any_value(source_kind) AS source_kind,
                        season_year, count(*) AS n_rows, max(effort) AS effort,
                        any_value(effort_unit) AS effort_unit,
-                       bit_xor(hash(record_id, value)) AS digest
+                       bit_xor(md5_number(record_id || '|' || coalesce(printf('%.17g', value), 'null'))) AS digest
                 FROM observations {year_filter}
                 GROUP BY ingest_id, source_id, event_id, season_year)
             SELECT ingest_id, any_value(source_id) AS source_id, any_value(source_kind) AS source_kind,

@@ -219,6 +219,12 @@ def _years_frame(rows: Sequence[Mapping[str, Any]]) -> pd.DataFrame:
     return pd.DataFrame(list(rows), columns=cols)
 
 
+def _file_names(info: Mapping[str, Any]) -> str | None:
+    """The ingest's input files ("hauls.csv + catch.csv"), else its main file name."""
+    names = [str(f["file_name"]) for f in info.get("files") or [] if f.get("file_name")]
+    return " + ".join(dict.fromkeys(names)) if names else info.get("file_name")
+
+
 def _live_successor(ingest_id: str, table: pd.DataFrame) -> str | None:
     """Follow superseded_by from ``ingest_id`` to the complete ingest that replaces it now."""
     status = dict(zip(table["ingest_id"], table["status"], strict=True))
@@ -317,7 +323,7 @@ def compare(previous: Mapping[str, Any], basis: Mapping[str, Any], findings: Seq
             digest_b = b.at[y, "value_digest"] if y in b.index else None
             rows.append({
                 "change": "corrected" if old else "added", "source_id": info["source_id"],
-                "source_kind": info["source_kind"], "file_name": info.get("file_name"), "ingest_id": new,
+                "source_kind": info["source_kind"], "file_name": _file_names(info), "ingest_id": new,
                 "replaces": old, "season_year": int(y),
                 "earlier_year": (info["source_id"], y) in seen_before,
                 "events_change": int(get(a, "events") - get(b, "events")),

@@ -131,7 +131,8 @@ class Plan:
 
         path = Path(path)
         path.parent.mkdir(parents=True, exist_ok=True)
-        write_safe_csv(self.stations, path)
+        # no sample anywhere yet: the distance to the nearest one is blank, not "inf"
+        write_safe_csv(self.stations.replace([np.inf, -np.inf], np.nan), path)
         return path
 
     def write_gpkg(self, path: str | Path, study: Study) -> Path:

@@ -145,7 +145,7 @@ class Plan:
         path = Path(path)
         path.parent.mkdir(parents=True, exist_ok=True)
         path.unlink(missing_ok=True)
-        st = self.stations
+        st = self.stations.replace([np.inf, -np.inf], np.nan)
         points = gpd.GeoDataFrame(st, geometry=shapely.points(st["lon"].to_numpy(float), st["lat"].to_numpy(float)),
                                   crs="EPSG:4326")
         points.to_file(path, layer="proposed_stations", driver="GPKG", engine="pyogrio")

@@ -11,15 +11,11 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from harmonize.config_spec import KINDS, PROVIDER_TYPES, SOURCE, check_known, profile_spec
 from harmonize.errors import ConfigError
 from harmonize.study import Study, resolve_inside
 
-KINDS = ("trawl", "plankton", "transect", "opportunistic", "gridded", "effort")
-PROVIDER_TYPES = ("agency", "volunteer", "industry", "model", "remote_sensing")
-_SOURCE_KEYS = {
-    "id", "kind", "provider_type", "protocol", "timezone", "encoding", "delimiter",
-    "dayfirst", "time_format", "description",
-}
+__all__ = ["KINDS", "PROVIDER_TYPES", "Profile", "find_profile", "load_profile", "peek_kind"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -102,13 +98,13 @@ def load_profile(path: str | Path, study: Study, table_fields: Mapping[str, set[
     src = raw.get("source")
     if not isinstance(src, Mapping):
         raise ConfigError(path, "[source]", "section is missing; it needs id, kind and provider_type")
-    unknown = sorted(set(src) - _SOURCE_KEYS)
-    if unknown:
-        raise ConfigError(path, f"source.{unknown[0]}", f"unknown key; expected one of {sorted(_SOURCE_KEYS)}")
+    check_known(path, src, SOURCE, ("source",))
     source_id = _text(path, src, "id")
     kind = _text(path, src, "kind")
     if kind not in KINDS:
         raise ConfigError(path, "source.kind", f"'{kind}' is not a source kind; expected one of {', '.join(KINDS)}")
+    # every section and key must be known: a misspelt [unit] would silently keep the default units
+    check_known(path, raw, profile_spec(kind))
     provider_type = _text(path, src, "provider_type")
     if provider_type not in PROVIDER_TYPES:
         raise ConfigError(

@@ -5,9 +5,14 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+from harmonize.config_spec import KINDS, schema_file_name, shipped_schema
 from harmonize.errors import HarmonizeError
 
+#: Folder of a study that holds the JSON Schemas of its configuration files (for editors).
+SCHEMA_DIR = "schemas"
+
 STUDY_TOML = '''\
+#:schema ./schemas/study.schema.json
 # study.toml: one study, many sources. Paths are relative to this folder.
 # Edit the values below; 'harmonize check' tells you when something is wrong.
 
@@ -58,6 +63,7 @@ min_vessels = 3               # fishing-effort cells with fewer vessels are supp
 '''
 
 TRAWL_PROFILE = '''\
+#:schema ../schemas/profile-trawl.schema.json
 # A profile maps one provider's files onto the trawl adapter's fields.
 # Fields not listed under [columns.*] are looked for under their own names.
 
@@ -144,6 +150,7 @@ def profile_template(kind: str) -> str:
     adapter = get_adapter(kind)
     article = "an" if kind[0] in "aeiou" else "a"
     lines = [
+        schema_line(kind),
         f"# Example profile for {article} {kind} source: {adapter.description}",
         "# Map your column names onto the adapter's fields; a field you do not map is looked for",
         "# under its own name. Uncomment what you need. Details: docs/sources/" + kind + ".md",
@@ -187,6 +194,12 @@ def profile_template(kind: str) -> str:
     return "\n".join(lines).rstrip() + "\n"
 
 
+def schema_line(kind: str | None) -> str:
+    """The first line of a study.toml (kind None) or profile: where editors find its JSON Schema."""
+    prefix = "./" if kind is None else "../"
+    return f"#:schema {prefix}{SCHEMA_DIR}/{schema_file_name(kind)}"
+
+
 TAXA_CSV = "taxon,group,aliases,sensitive\n"
 TARGETS_CSV = "protocol,taxon,first_year,last_year,life_stage\n"
 
@@ -209,6 +222,11 @@ def write_starter(folder: str | Path, name: str | None = None) -> list[Path]:
     }
     for kind in ("plankton", "transect", "opportunistic", "gridded", "effort"):
         written[folder / "profiles" / f"example_{kind}.toml"] = profile_template(kind)
+    # the JSON Schemas the #:schema lines point to: editors validate while the user types
+    (folder / SCHEMA_DIR).mkdir(exist_ok=True)
+    for kind in (None, *KINDS):
+        name = schema_file_name(kind)
+        written[folder / SCHEMA_DIR / name] = shipped_schema(name)
     for path, text in written.items():
         if not path.exists():
             path.write_text(text, encoding="utf-8")

@@ -18,7 +18,7 @@ import pandas as pd
 import pyarrow as pa
 
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
-from harmonize.adapters.common import codes_in, distinct_present
+from harmonize.adapters.common import codes_in, distinct_present, swapped_position_notes
 from harmonize.adapters.registry import get_adapter
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns, validate_observations
 from harmonize.engines import engine_scope
@@ -173,7 +173,8 @@ def store_output(
     config_sha = config_sha256 or _digest([profile.fingerprint, study.fingerprint, CONTRACT_VERSION])
     ingest_id = f"{started:%Y%m%dT%H%M%S%f}-{uuid.uuid4().hex[:8]}"  # sorts by start time
     blocks = assemble_blocks(out, study, profile, kind, ingest_id)
-    result = IngestResult("checked", profile.source_id, kind, None, out.files, 0, 0, out.quarantine, notes=out.notes)
+    notes = list(out.notes) + swapped_position_notes(study, out.positions)
+    result = IngestResult("checked", profile.source_id, kind, None, out.files, 0, 0, out.quarantine, notes=notes)
     result.masked = out.masked
     no_values = events_without_values(out, study, profile, kind)
     result.events_without_values = no_values.to_pandas()

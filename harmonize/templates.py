@@ -97,6 +97,11 @@ count = "number"
 
 [constants]                   # a value for every row when the files lack it
 # net_width_m = 17.0
+
+[formats]                     # how your files write a field, when not as decimal numbers
+# start_lat = "degrees_minutes"          # 41°50.159'N, 41 50.159 N, -41 50.159
+# start_lon = "degrees_minutes_seconds"  # 153°02'30"W, 153 02 30 W
+# date and time in two columns: in [columns.events] write start_time = ["DATE", "TIME"]
 '''
 
 _PROVIDER = {"trawl": "agency", "plankton": "agency", "transect": "agency", "opportunistic": "volunteer",
@@ -189,9 +194,38 @@ def profile_template(kind: str) -> str:
     if units:
         lines += ["[units]                       # your units, when not the default shown"] + units + [""]
     lines += ["[constants]                   # a value for every row when the files lack it", "# field = value", ""]
+    lines += _formats_lines(kind, tables)
     if kind in _EXTRA:
         lines.append(_EXTRA[kind])
     return "\n".join(lines).rstrip() + "\n"
+
+
+def _formats_lines(kind: str, tables: list) -> list[str]:
+    """The [formats] section of a template: the kind's coordinate and fraction fields."""
+    from harmonize.contract import fields
+    from harmonize.profile import FORMATS_KINDS, JOINED_KINDS
+
+    if kind not in FORMATS_KINDS:
+        return []
+    lines = ["[formats]                     # how your files write a field, when not as decimal numbers"]
+    times = []
+    for role, schema, _form in tables:
+        for spec in fields(schema):
+            if spec.unit in ("degree_north", "degree_east"):
+                dm, dms = (("41°50.159'N", "41°50'09\"N") if spec.unit == "degree_north"
+                           else ("153°02.5'W", "153°02'30\"W"))
+                lines.append(f'# {spec.name} = "degrees_minutes"'.ljust(42)
+                             + f"# {dm}; or degrees_minutes_seconds ({dms})")
+            elif spec.type == "number" and spec.unit == "1" and spec.maximum == 1:
+                lines.append(f'# {spec.name} = "percent"'.ljust(42)
+                             + "# 25 means 25 %; 1/4, 25% and 0.25 are always read")
+            elif spec.type == "datetime" and kind in JOINED_KINDS:
+                times.append((role, spec.name))
+    if times:
+        role, name = times[0]
+        table = "[columns]" if role == "rows" else f"[columns.{role}]"
+        lines.append(f'# date and time in two columns: in {table} write {name} = ["DATE", "TIME"]')
+    return lines + [""]
 
 
 def schema_line(kind: str | None) -> str:

@@ -94,6 +94,7 @@ class HarmonizeGroup(TyperGroup):
 
     def main(self, args: Sequence[str] | None = None, prog_name: str | None = None,
              complete_var: str | None = None, standalone_mode: bool = True, **extra: Any) -> Any:
+        args = _optional_values(list(sys.argv[1:] if args is None else args))
         try:
             rv = super().main(args=args, prog_name=prog_name or "harmonize", complete_var=complete_var,
                               standalone_mode=False, **extra)
@@ -111,6 +112,26 @@ class HarmonizeGroup(TyperGroup):
         if standalone_mode:
             sys.exit(code)
         return code
+
+
+#: Options that take a value which may be left out: (verb, option) -> the value meant then.
+#: ``audit --json`` alone writes the audit JSON to stdout, as ``audit --json -`` does.
+OPTIONAL_VALUES = {("audit", "--json"): "-"}
+
+
+def _optional_values(args: list[str]) -> list[str]:
+    out: list[str] = []
+    verb = None
+    for i, arg in enumerate(args):
+        out.append(arg)
+        if verb is None and arg in {v for v, _ in OPTIONAL_VALUES} and (i == 0 or args[i - 1] != "--study"):
+            verb = arg
+        value = OPTIONAL_VALUES.get((verb, arg)) if verb else None
+        if value is not None:
+            nxt = args[i + 1] if i + 1 < len(args) else None
+            if nxt is None or (nxt.startswith("-") and nxt != "-"):
+                out.append(value)
+    return out
 
 
 app = typer.Typer(

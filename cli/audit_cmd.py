@@ -34,7 +34,7 @@ def register(app: typer.Typer) -> None:
 
 def audit_cmd(
     ctx: typer.Context,
-    json_out: Path | None = typer.Option(None, "--json", metavar="[OUT]", is_flag=False, flag_value="-",
+    json_out: Path | None = typer.Option(None, "--json", metavar="[OUT]",
                                          help="Write the audit as JSON to OUT; alone or with '-': on stdout, "
                                               "and nothing else there."),
     html_out: Path | None = typer.Option(None, "--html", metavar="OUT",

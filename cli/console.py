@@ -18,11 +18,12 @@ from pathlib import Path
 from typing import TYPE_CHECKING, Any
 
 import typer
-from rich.console import Console
 
 from harmonize import __version__
 
 if TYPE_CHECKING:
+    from rich.console import Console
+
     from harmonize.study import Study
 
 #: Version of the JSON documents the verbs print with --json (docs/cli.md). Grows, never changes meaning.
@@ -36,6 +37,8 @@ CAUTION = (
 
 
 def _console(stderr: bool) -> Console:
+    from rich.console import Console  # rich loads when something is printed, not for --help
+
     stream = sys.stderr if stderr else sys.stdout
     terminal = stream.isatty()
     # Not a terminal (a pipe, a file, a test runner): no wrapping, no truncation, no colour.

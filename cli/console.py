@@ -137,32 +137,29 @@ def fmt_int(n: int) -> str:
 
 # ------------------------------------------------------------------ JSON and '-'
 def _plain(value: Any) -> Any:
-    """JSON-ready value: paths as text, NaN as null, numpy scalars as Python numbers."""
+    """JSON-ready value: paths as text, NaN and NaT as null, numpy values as Python values."""
     if isinstance(value, Mapping):
         return {str(k): _plain(v) for k, v in value.items()}
     if isinstance(value, list | tuple | set | frozenset):
         return [_plain(v) for v in value]
+    if value is None or isinstance(value, bool | str):
+        return value
     if isinstance(value, Path):
         return str(value)
+    if "pandas" in sys.modules:  # only a verb that read data has pandas values to convert
+        import pandas as pd
+
+        if pd.api.types.is_scalar(value) and pd.isna(value):
+            return None
+    if hasattr(value, "tolist"):  # numpy scalar or array (a list column such as flags)
+        return _plain(value.tolist())
     if isinstance(value, datetime | date):
         return value.isoformat()
-    if hasattr(value, "item") and not isinstance(value, str | bytes):  # numpy scalar
-        try:
-            value = value.item()
-        except (ValueError, TypeError):
-            return str(value)
     if isinstance(value, float) and not math.isfinite(value):
         return None
-    if value is not None and not isinstance(value, str | int | float | bool):
-        try:
-            import pandas as pd
-
-            if pd.isna(value):
-                return None
-        except (ImportError, TypeError, ValueError):
-            pass
-        return str(value)
-    return value
+    if isinstance(value, int | float):
+        return value
+    return str(value)
 
 
 def emit_json(command: str, payload: Mapping[str, Any], exit_code: int = 0) -> None:

@@ -101,7 +101,8 @@ class HarmonizeGroup(TyperGroup):
             code = rv if isinstance(rv, int) else EXIT_OK
         except click_exceptions.UsageError as exc:
             where = exc.ctx.command_path if exc.ctx is not None else "harmonize"
-            _error(f"error: {exc.format_message()} (see '{where} --help')")
+            message = exc.format_message().replace("Value error, ", "")  # typer's coercion prefix
+            _error(f"error: {message} (see '{where} --help')")
             code = EXIT_USAGE
         except click_exceptions.ClickException as exc:
             _error(f"error: {exc.format_message()}")

@@ -29,6 +29,31 @@ PROVIDER_TYPES = ("agency", "volunteer", "industry", "model", "remote_sensing")
 COORDINATE_FORMATS = ("decimal", "degrees_minutes", "degrees_minutes_seconds")
 #: How a provider writes a fraction field such as split_fraction ([formats] in a profile).
 FRACTION_FORMATS = ("decimal", "percent")
+#: Kinds whose files are read by harmonize.adapters.reading.coerce_fields, which applies [formats]
+FORMATS_KINDS = ("trawl", "plankton", "transect", "opportunistic")
+#: Kinds that take a date-time field from two columns ([date column, time column])
+JOINED_KINDS = ("trawl", "plankton", "transect")
+
+
+def is_coordinate(unit: str | None) -> bool:
+    """A latitude or longitude field (its Table Schema unit)."""
+    return unit in ("degree_north", "degree_east")
+
+
+def is_fraction(type_: str, unit: str | None, maximum: float | None) -> bool:
+    """A share of something (split_fraction): a number of unit 1, at most 1."""
+    return type_ == "number" and unit == "1" and maximum == 1
+
+
+@dataclass(frozen=True)
+class FieldInfo:
+    """What the schemas need to know of an adapter field."""
+
+    name: str
+    description: str = ""
+    type: str = "string"
+    unit: str | None = None
+    maximum: float | None = None
 
 
 # ----------------------------------------------------------------------------- the vocabulary
@@ -253,42 +278,58 @@ def section_keys(kind: str, section: str) -> frozenset[str]:
     return frozenset(spec.keys) if isinstance(spec, Table) else frozenset()
 
 
-def profile_spec(kind: str, table_fields: Mapping[str, Sequence[tuple[str, str]]] | None = None) -> Table:
+def profile_spec(kind: str, table_fields: Mapping[str, Sequence[FieldInfo]] | None = None) -> Table:
     """The profile definition of one kind.
 
-    ``table_fields`` (role -> [(field, description)]) names the adapter's fields; without it
-    [columns], [units], [constants] and [formats] accept any field name (the adapter checks them).
+    ``table_fields`` (role -> fields) names the adapter's fields; without it [columns], [units],
+    [constants] and [formats] accept any field name (the loaders check them against the adapter).
     """
-    fields: dict[str, str] = {}
+    fields: dict[str, FieldInfo] = {}
     for specs in (table_fields or {}).values():
-        for name, desc in specs:
-            fields.setdefault(name, desc)
+        for info in specs:
+            fields.setdefault(info.name, info)
+    any_format = _text("How the provider writes the field.",
+                       enum=tuple(dict.fromkeys(COORDINATE_FORMATS + FRACTION_FORMATS)))
+
+    def column(info: FieldInfo) -> Value:
+        if info.type == "datetime" and kind in JOINED_KINDS:
+            return Value(COLUMN.type, info.description, any_of=COLUMN.any_of)
+        return _text(info.description)
 
     def per_field(value: Value, description: str) -> Table | Map:
         if not fields:
             return Map(value, description)
-        return Table({n: Value(value.type, d, enum=value.enum, items=value.items, any_of=value.any_of)
-                      for n, d in sorted(fields.items())}, description)
+        return Table({n: Value(value.type, f.description, enum=value.enum, items=value.items, any_of=value.any_of)
+                      for n, f in sorted(fields.items())}, description)
 
     if table_fields and set(table_fields) != {"rows"}:
         columns: Table | Map = Table({
-            role: Table({n: Value(COLUMN.type, d, any_of=COLUMN.any_of) for n, d in specs},
-                        f"The {role} table: adapter field = provider column.")
+            role: Table({f.name: column(f) for f in specs}, f"The {role} table: adapter field = provider column.")
             for role, specs in table_fields.items()
         }, "Adapter field = provider column name, per table.")
+    elif fields:
+        columns = Table({n: column(f) for n, f in sorted(fields.items())}, "Adapter field = provider column name.")
     else:
-        columns = per_field(COLUMN, "Adapter field = provider column name.")
+        columns = Map(COLUMN, "Adapter field = provider column name.")
     sections: dict[str, Value | Table | Map | TableArray] = {
         "source": SOURCE,
         "columns": columns,
         "units": per_field(_text("Provider unit of the field."), "Provider unit of a field, when not the default."),
         "constants": per_field(Value("any", "Value of the field for every row."),
                                "A field's value for every row, when the files lack it."),
-        "formats": per_field(_text("How the provider writes the field.",
-                                   enum=tuple(dict.fromkeys(COORDINATE_FORMATS + FRACTION_FORMATS))),
-                             "How the provider writes a field: coordinates in degrees and minutes, "
-                             "fractions in percent."),
     }
+    # the loader (no fields given) lets [formats] through for every kind: profile.py then says
+    # which kinds read it, a clearer message than "unknown section"
+    if kind in FORMATS_KINDS or not fields:
+        description = "How the provider writes a field: coordinates in degrees and minutes, fractions in percent."
+        if fields:
+            formats: Table | Map = Table({
+                n: _text(f.description, enum=COORDINATE_FORMATS if is_coordinate(f.unit) else FRACTION_FORMATS)
+                for n, f in sorted(fields.items())
+                if is_coordinate(f.unit) or is_fraction(f.type, f.unit, f.maximum)}, description)
+        else:
+            formats = Map(any_format, description)
+        sections["formats"] = formats
     sections.update(KIND_SECTIONS[kind])
     return Table(sections, f"A {kind} profile: how one provider's files map onto the {kind} adapter.",
                  required=("source",))
@@ -340,7 +381,7 @@ def study_json_schema() -> dict[str, Any]:
     return out
 
 
-def profile_json_schema(kind: str, table_fields: Mapping[str, Sequence[tuple[str, str]]] | None) -> dict[str, Any]:
+def profile_json_schema(kind: str, table_fields: Mapping[str, Sequence[FieldInfo]] | None) -> dict[str, Any]:
     """JSON Schema of a profile of ``kind`` (the adapter's fields listed when given)."""
     out = {"$schema": SCHEMA_DIALECT, "$id": f"harmonize:profile-{kind}.schema.json",
            "title": f"harmonize {kind} profile"}
@@ -353,21 +394,21 @@ def schema_file_name(kind: str | None) -> str:
     return "study.schema.json" if kind is None else f"profile-{kind}.schema.json"
 
 
-def adapter_fields(kind: str) -> dict[str, list[tuple[str, str]]]:
-    """Role -> [(field, description)] of the kind's adapter (imports the adapters)."""
+def adapter_fields(kind: str) -> dict[str, list[FieldInfo]]:
+    """Role -> fields of the kind's adapter (imports the adapters)."""
     from harmonize.adapters.registry import get_adapter
     from harmonize.contract import fields
 
     adapter = get_adapter(kind)
     forms = getattr(adapter, "forms", None)
     tables = {"rows": list(forms.values())} if forms else {role: [schema] for role, schema in adapter.tables.items()}
-    out: dict[str, list[tuple[str, str]]] = {}
+    out: dict[str, list[FieldInfo]] = {}
     for role, schemas in tables.items():
-        seen: dict[str, str] = {}
+        seen: dict[str, FieldInfo] = {}
         for schema in schemas:
             for spec in fields(schema):
-                seen.setdefault(spec.name, spec.description)
-        out[role] = list(seen.items())
+                seen.setdefault(spec.name, FieldInfo(spec.name, spec.description, spec.type, spec.unit, spec.maximum))
+        out[role] = list(seen.values())
     return out
 
 

@@ -14,7 +14,9 @@ from typing import Any
 
 from harmonize.config_spec import (
     COORDINATE_FORMATS,
+    FORMATS_KINDS,
     FRACTION_FORMATS,
+    JOINED_KINDS,
     KINDS,
     PROVIDER_TYPES,
     SOURCE,
@@ -24,12 +26,7 @@ from harmonize.config_spec import (
 from harmonize.errors import ConfigError
 from harmonize.study import Study, resolve_inside
 
-#: Kinds whose files are read by harmonize.adapters.reading.coerce_fields, which applies [formats]
-FORMATS_KINDS = ("trawl", "plankton", "transect", "opportunistic")
-#: Kinds that take a date-time field from two columns
-JOINED_KINDS = ("trawl", "plankton", "transect")
-
-__all__ = ["KINDS", "PROVIDER_TYPES", "Profile", "find_profile", "load_profile", "peek_kind"]
+__all__ = ["FORMATS_KINDS", "JOINED_KINDS", "KINDS", "PROVIDER_TYPES", "Profile", "find_profile", "load_profile", "peek_kind"]
 
 
 @dataclass(frozen=True, eq=False)

@@ -5,7 +5,15 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
-from harmonize.config_spec import KINDS, schema_file_name, shipped_schema
+from harmonize.config_spec import (
+    FORMATS_KINDS,
+    JOINED_KINDS,
+    KINDS,
+    is_coordinate,
+    is_fraction,
+    schema_file_name,
+    shipped_schema,
+)
 from harmonize.errors import HarmonizeError
 
 #: Folder of a study that holds the JSON Schemas of its configuration files (for editors).
@@ -203,7 +211,6 @@ def profile_template(kind: str) -> str:
 def _formats_lines(kind: str, tables: list) -> list[str]:
     """The [formats] section of a template: the kind's coordinate and fraction fields."""
     from harmonize.contract import fields
-    from harmonize.profile import FORMATS_KINDS, JOINED_KINDS
 
     if kind not in FORMATS_KINDS:
         return []
@@ -211,12 +218,12 @@ def _formats_lines(kind: str, tables: list) -> list[str]:
     times = []
     for role, schema, _form in tables:
         for spec in fields(schema):
-            if spec.unit in ("degree_north", "degree_east"):
+            if is_coordinate(spec.unit):
                 dm, dms = (("41°50.159'N", "41°50'09\"N") if spec.unit == "degree_north"
                            else ("153°02.5'W", "153°02'30\"W"))
                 lines.append(f'# {spec.name} = "degrees_minutes"'.ljust(42)
                              + f"# {dm}; or degrees_minutes_seconds ({dms})")
-            elif spec.type == "number" and spec.unit == "1" and spec.maximum == 1:
+            elif is_fraction(spec.type, spec.unit, spec.maximum):
                 lines.append(f'# {spec.name} = "percent"'.ljust(42)
                              + "# 25 means 25 %; 1/4, 25% and 0.25 are always read")
             elif spec.type == "datetime" and kind in JOINED_KINDS:

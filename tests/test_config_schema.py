@@ -62,6 +62,17 @@ def test_schemas_refuse_what_the_loaders_refuse() -> None:
     assert not trawl.is_valid({**base, "unit": {"weight": "g"}})
     assert not trawl.is_valid({**base, "units": {"wieght": "g"}})  # fields come from the Table Schema
     assert trawl.is_valid({**base, "columns": {"events": {"start_time": ["DATE", "TIME"]}}})
+    assert not trawl.is_valid({**base, "columns": {"events": {"event_id": ["A", "B"]}}})  # date-time fields only
+    assert trawl.is_valid({**base, "formats": {"start_lat": "degrees_minutes_seconds"}})
+    assert not trawl.is_valid({**base, "formats": {"start_lat": "percent"}})
+    assert not trawl.is_valid({**base, "formats": {"net_width_m": "percent"}})
+    plankton = jsonschema.Draft202012Validator(_schema(schema_file_name("plankton")))
+    p_base = {"source": {"id": "x", "kind": "plankton", "provider_type": "agency"}}
+    assert plankton.is_valid({**p_base, "formats": {"split_fraction": "percent", "lat": "degrees_minutes"}})
+    assert not plankton.is_valid({**p_base, "formats": {"split_fraction": "degrees_minutes"}})
+    effort = jsonschema.Draft202012Validator(_schema(schema_file_name("effort")))
+    e_base = {"source": {"id": "x", "kind": "effort", "provider_type": "industry"}}
+    assert not effort.is_valid({**e_base, "formats": {"lat": "degrees_minutes"}})  # read by its own reader
     assert not trawl.is_valid({**base, "source": {**base["source"], "provider_type": "friend"}})
 
 

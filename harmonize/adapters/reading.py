@@ -25,7 +25,7 @@ import pandera.errors
 
 from harmonize import units
 from harmonize.adapters.provider_formats import parse_angles, parse_fractions
-from harmonize.config_spec import COORDINATE_FORMATS, FRACTION_FORMATS
+from harmonize.config_spec import COORDINATE_FORMATS, FRACTION_FORMATS, is_coordinate, is_fraction
 from harmonize.contract import FieldSpec, pandera_schema
 from harmonize.errors import ConfigError, InputFileError, ReasonCode
 from harmonize.profile import Profile
@@ -727,15 +727,14 @@ def _typed(
 
 
 def _is_fraction(spec: FieldSpec) -> bool:
-    """A share of something (split_fraction): unit 1, at most 1."""
-    return spec.type == "number" and spec.unit == "1" and spec.maximum == 1
+    return is_fraction(spec.type, spec.unit, spec.maximum)
 
 
 def _check_format(spec: FieldSpec, fmt: str, profile: Profile) -> None:
     """The profile's [formats] entry must suit the field (ConfigError naming the key)."""
     if fmt == "decimal":
         return
-    if spec.unit in ("degree_north", "degree_east"):
+    if is_coordinate(spec.unit):
         allowed = COORDINATE_FORMATS
     elif _is_fraction(spec):
         allowed = FRACTION_FORMATS

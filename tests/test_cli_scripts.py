@@ -245,3 +245,15 @@ def test_the_command_module_does_not_import_heavy_libraries() -> None:
     started = time.perf_counter()
     subprocess.run([sys.executable, "-m", "harmonize", "--version"], capture_output=True, timeout=60)
     assert time.perf_counter() - started < 30  # a smoke bound only; benchmarks/startup.py measures the ratio
+
+
+def test_light_copies_agree_with_the_library() -> None:
+    # the command lists these without importing the heavy modules that define them
+    from harmonize.cli.demo_cmd import DEFAULT_SEED
+
+    from harmonize.demo.build import DEFAULT_SEED as BUILD_SEED
+    from harmonize.export import FORMATS
+    from harmonize.export.run import EXPORTERS
+
+    assert DEFAULT_SEED == BUILD_SEED
+    assert tuple(EXPORTERS) == FORMATS

@@ -3,64 +3,112 @@
 from __future__ import annotations
 
 from pathlib import Path
+from typing import TYPE_CHECKING, Literal
 
 import typer
-from harmonize.cli.console import CAUTION, console, fmt_int, study_from
-from rich.table import Table
-from rich.text import Text
+from harmonize.cli.console import (
+    CAUTION,
+    console,
+    consoles,
+    fmt_int,
+    is_stdout,
+    say,
+    status,
+    study_from,
+    study_option,
+)
 
-from harmonize.audit.run import AuditResult, audit, parse_codes
-from harmonize.audit.since import Since
+from harmonize.engines import ENGINES
 from harmonize.errors import HarmonizeError
+
+Engine = Literal[ENGINES]  # type: ignore[valid-type]
+
+if TYPE_CHECKING:
+    from harmonize.audit.run import AuditResult
+    from harmonize.audit.since import Since
 
 _STYLE = {"error": "bold red", "warning": "yellow", "info": "cyan"}
 
 
 def register(app: typer.Typer) -> None:
-    app.command("audit")(audit_cmd)
+    app.command("audit", short_help="Coverage audit of the store.")(audit_cmd)
 
 
 def audit_cmd(
     ctx: typer.Context,
-    json_out: Path | None = typer.Option(None, "--json", help="Write the audit as JSON to this file."),
-    html_out: Path | None = typer.Option(None, "--html", help="Write the self-contained HTML report to this file."),
+    json_out: Path | None = typer.Option(None, "--json", metavar="[OUT]",
+                                         help="Write the audit as JSON to OUT; alone or with '-': on stdout, "
+                                              "and nothing else there."),
+    html_out: Path | None = typer.Option(None, "--html", metavar="OUT",
+                                         help="Write the self-contained HTML report to OUT ('-' for stdout)."),
     fail_on: str | None = typer.Option(None, "--fail-on", metavar="CODE[,CODE]",
                                        help="Exit 1 when a finding with one of these codes exists."),
-    year: int | None = typer.Option(None, "--year", help="Audit this season year against the earlier ones."),
-    limit: int = typer.Option(40, "--limit", help="How many findings to print."),
-    engine: str | None = typer.Option(None, "--engine", help="duckdb (default) or dask: where the heavy "
-                                      "aggregations run; see docs/performance.md."),
+    year: int | None = typer.Option(None, "--year", metavar="YEAR", help="Audit this season year against the earlier ones."),
+    limit: int = typer.Option(40, "--limit", metavar="N", help="How many findings to print."),
+    engine: Engine | None = typer.Option(None, "--engine",
+                                      help="Where the heavy aggregations run (default duckdb; see docs/performance.md)."),
     scheduler: str | None = typer.Option(None, "--scheduler", metavar="ADDRESS",
                                          help="Dask scheduler address (tcp://host:8786) for --engine dask."),
     since: Path | None = typer.Option(None, "--since", metavar="PREVIOUS.json",
                                       help="Compare with a previous audit JSON: what changed since the last audit."),
     fail_on_new: str | None = typer.Option(None, "--fail-on-new", metavar="CODE[,CODE]",
                                            help="Exit 1 when a finding with one of these codes is new since --since."),
+    study_dir: Path | None = study_option(),
 ) -> None:
-    """Coverage audit: where the data are thin or missing, before any model is fitted."""
+    """Coverage audit: where the data are thin or missing, before any model is fitted.
+
+    With --fail-on, exit 1 when findings with those codes exist.
+
+    \b
+    Examples:
+      harmonize audit --html audit.html --json audit.json
+      harmonize audit --json | jq '.findings[] | select(.severity == "error")'
+      harmonize audit --fail-on no_samples,missing_year --year 2023
+      harmonize audit --since last_year/audit.json --fail-on-new no_samples --html audit.html
+    """
+    from harmonize.audit.run import audit, parse_codes
+
+    if is_stdout(json_out) and is_stdout(html_out):
+        raise typer.BadParameter("--json and --html cannot both write to stdout")
+    consoles.json = is_stdout(json_out) or is_stdout(html_out)
     codes = parse_codes(fail_on)
     new_codes = parse_codes(fail_on_new)
     if new_codes and since is None:
         raise HarmonizeError("--fail-on-new needs --since PREVIOUS.json: new findings are those the previous audit did not have")
-    study = study_from(ctx)
-    with console.status("auditing the store"):
+    study = study_from(ctx, study_dir)
+    with status("auditing the store"):
         result = audit(study, year=year, engine=engine, scheduler=scheduler, since=since)
     _print(result, limit)
     if result.since is not None:
         print_since(result.since)
+    failing = bool(codes and result.has_any(codes))
     if json_out is not None:
-        console.print(f"audit JSON written to {result.write_json(json_out)}", markup=False)
+        if is_stdout(json_out):
+            import json
+            import sys
+
+            # the same document as the file: the contract's audit JSON with tool and contract versions
+            sys.stdout.write(json.dumps(result.to_json_dict(), indent=2, ensure_ascii=False) + "\n")
+        else:
+            say(f"audit JSON written to {result.write_json(json_out)}")
     if html_out is not None:
-        console.print(f"audit report written to {result.write_html(html_out)}", markup=False)
+        if is_stdout(html_out):
+            import sys
+
+            from harmonize.audit.report import render_html
+
+            sys.stdout.write(render_html(result))
+        else:
+            say(f"audit report written to {result.write_html(html_out)}")
     console.print(CAUTION, style="dim")
-    if codes and result.has_any(codes):
+    if failing:
         hit = sorted(result.codes() & set(codes))
-        console.print(f"failing: findings with code(s) {', '.join(hit)} exist (--fail-on {fail_on})", markup=False)
+        say(f"failing: findings with code(s) {', '.join(hit)} exist (--fail-on {fail_on})")
         raise typer.Exit(1)
     if new_codes and result.since is not None and result.since.new_codes() & set(new_codes):
         hit = sorted(result.since.new_codes() & set(new_codes))
-        console.print(f"failing: new findings with code(s) {', '.join(hit)} since the previous audit "
-                      f"(--fail-on-new {fail_on_new})", markup=False)
+        say(f"failing: new findings with code(s) {', '.join(hit)} since the previous audit "
+            f"(--fail-on-new {fail_on_new})")
         raise typer.Exit(1)
 
 
@@ -80,6 +128,9 @@ def print_since(since: Since) -> None:
 
 
 def _print(result: AuditResult, limit: int) -> None:
+    from rich.table import Table
+    from rich.text import Text
+
     cov = result.coverage
     if cov.empty:
         console.print("the store holds no samples to audit")

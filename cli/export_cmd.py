@@ -2,59 +2,107 @@
 
 from __future__ import annotations
 
+import shutil
+import sys
+import tempfile
 from pathlib import Path
+from typing import Literal
 
 import typer
-from harmonize.cli.console import console, fmt_int, study_from
+from harmonize.cli.console import (
+    consoles,
+    emit_json,
+    err_console,
+    fmt_int,
+    is_stdout,
+    json_option,
+    say,
+    study_from,
+    study_option,
+)
 
-from harmonize.export.metadata import CAUTION
-from harmonize.export.run import EXPORTERS, export
-from harmonize.export.selection import ExportFilters
+from harmonize.export import FORMATS
+
+ExportFormat = Literal[FORMATS]  # type: ignore[valid-type]
+Quantity = Literal["count", "biomass"]
 
 _UNITS = {"long": "observation rows", "wide": "events", "grid": "rows", "gpkg": "event points",
           "dwca": "events"}
+#: The file written when OUT is '-' (then streamed to stdout): CSV for the tables.
+_STDOUT_NAME = {"long": "export.csv", "wide": "export.csv", "grid": "export.csv", "gpkg": "export.gpkg",
+                "dwca": "export.zip"}
 
 
 def register(app: typer.Typer) -> None:
-    app.command("export")(export_cmd)
+    app.command("export", short_help="Write the store for models, GIS or a data portal.")(export_cmd)
 
 
 def export_cmd(
     ctx: typer.Context,
-    fmt: str = typer.Argument(..., metavar="FORMAT", help=f"One of: {', '.join(EXPORTERS)}."),
-    out: Path = typer.Argument(..., help="Output file (.parquet or .csv for long/wide/grid, .gpkg, .zip)."),
-    kind: list[str] = typer.Option(None, "--kind", help="Source kind(s); repeat or comma-separate."),
-    years: str | None = typer.Option(None, "--years", help="Season years, e.g. 2019-2021,2023."),
-    seasons: str | None = typer.Option(None, "--seasons", help="Season names, comma-separated."),
-    layers: str | None = typer.Option(None, "--layers", help="Depth layers, comma-separated."),
-    variables: str | None = typer.Option(None, "--variables", help="Taxa or variables, comma-separated."),
-    sources: str | None = typer.Option(None, "--sources", help="Source ids, comma-separated."),
-    quantity: str = typer.Option("count", "--quantity", help="wide: count or biomass in the taxon columns."),
+    fmt: ExportFormat = typer.Argument(..., metavar="FORMAT",
+                              help="The export format."),
+    out: Path = typer.Argument(..., metavar="OUT", help="Output file: .parquet or .csv for long, wide and grid; "
+                               ".gpkg; .zip for dwca. '-' writes to stdout (CSV for the tables)."),
+    kind: list[str] = typer.Option(None, "--kind", metavar="KIND[,KIND]", help="Source kind(s); repeat or comma-separate."),
+    years: str | None = typer.Option(None, "--years", metavar="YEARS", help="Season years, e.g. 2019-2021,2023."),
+    seasons: str | None = typer.Option(None, "--seasons", metavar="SEASON[,SEASON]", help="Season names."),
+    layers: str | None = typer.Option(None, "--layers", metavar="LAYER[,LAYER]", help="Depth layers."),
+    variables: str | None = typer.Option(None, "--variables", metavar="NAME[,NAME]", help="Taxa or variables."),
+    sources: str | None = typer.Option(None, "--sources", metavar="SOURCE_ID[,SOURCE_ID]", help="Source ids."),
+    quantity: Quantity = typer.Option("count", "--quantity",
+                                 help="wide: the quantity in the taxon columns."),
     by_life_stage: bool = typer.Option(False, "--by-life-stage", help="wide: one column per taxon and life stage."),
-    generalise_deg: float = typer.Option(0.1, "--generalise-deg",
-                                         help="dwca: rounding (degrees) of events with a sensitive taxon."),
+    generalise_deg: float = typer.Option(0.1, "--generalise-deg", metavar="DEGREES",
+                                         help="dwca: rounding of the positions of events with a sensitive taxon."),
     memory_limit: str | None = typer.Option(
-        None, "--memory-limit",
+        None, "--memory-limit", metavar="SIZE",
         help="wide: DuckDB working memory, e.g. 4GB (default: HARMONIZE_EXPORT_MEMORY_LIMIT, else 2GB)."),
+    study_dir: Path | None = study_option(),
+    as_json: bool = json_option(),
 ) -> None:
-    """Export the store: long, wide, grid, gpkg or dwca, with the filters given."""
-    if fmt not in EXPORTERS:
-        console.print(f"unknown export format {fmt!r}; choose from {', '.join(EXPORTERS)}", markup=False)
-        raise typer.Exit(2)
-    study = study_from(ctx)
+    """Export the store with the filters given.
+
+    \b
+    Examples:
+      harmonize export long obs.parquet --kind trawl,plankton --years 2019-2023
+      harmonize export wide samples.csv --quantity biomass
+      harmonize export grid - --kind effort | head
+      harmonize export dwca archive.zip --json
+    """
+    if as_json and is_stdout(out):
+        raise typer.BadParameter("--json prints its document on stdout; give OUT as a file, not '-'")
+    consoles.json = as_json or is_stdout(out)
+    from harmonize.export.metadata import CAUTION
+    from harmonize.export.run import export
+    from harmonize.export.selection import ExportFilters
+
+    study = study_from(ctx, study_dir)
     filters = ExportFilters.build(",".join(kind) if kind else None, years, seasons, layers, variables, sources)
     options: dict[str, object] = {}
     if fmt == "wide":
         options = {"quantity": quantity, "by_life_stage": by_life_stage, "memory_limit": memory_limit}
     elif fmt == "dwca":
         options = {"generalise_deg": generalise_deg}
+    if is_stdout(out):
+        with tempfile.TemporaryDirectory(prefix="harmonize-export-") as tmp:
+            result = export(study, fmt, Path(tmp) / _STDOUT_NAME[fmt], filters, **options)
+            with open(result.path, "rb") as fh:
+                shutil.copyfileobj(fh, sys.stdout.buffer)
+            sys.stdout.flush()
+        err_console.print(f"wrote {fmt_int(result.rows)} {_UNITS[fmt]} to stdout (the metadata sidecar is "
+                          "written only beside a file)", markup=False)
+        return
     result = export(study, fmt, out, filters, **options)
-    console.print(f"wrote {fmt_int(result.rows)} {_UNITS[fmt]} to {result.path}", markup=False)
+    say(f"wrote {fmt_int(result.rows)} {_UNITS[fmt]} to {result.path}")
     for extra in result.files[1:]:
-        console.print(f"metadata: {extra}", markup=False)
+        say(f"metadata: {extra}")
     suppressed = result.metadata["confidentiality"]["rows_suppressed"]
     if suppressed:
-        console.print(f"{fmt_int(suppressed)} fishing values suppressed (fewer than {study.min_vessels} vessels)")
+        say(f"{fmt_int(suppressed)} fishing values suppressed (fewer than {study.min_vessels} vessels)")
     for note in result.notes:
-        console.print(f"note: {note}", markup=False)
-    console.print(CAUTION, markup=False)
+        say(f"note: {note}")
+    say(CAUTION)
+    if as_json:
+        emit_json("export", {"study": study.name, "export_format": fmt, "path": str(result.path), "rows": result.rows,
+                             "files": [str(f) for f in result.files], "notes": list(result.notes),
+                             "rows_suppressed": suppressed, "metadata": result.metadata})

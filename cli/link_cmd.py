@@ -5,30 +5,50 @@ from __future__ import annotations
 from pathlib import Path
 
 import typer
-from harmonize.cli.console import CAUTION, console, fmt_int, study_from
-from rich.table import Table
+from harmonize.cli.console import (
+    CAUTION,
+    console,
+    consoles,
+    fmt_int,
+    is_stdout,
+    say,
+    study_from,
+    study_option,
+    write_csv_out,
+)
 
-from harmonize.colocate import colocate, colocate_wide
 from harmonize.errors import HarmonizeError
-from harmonize.export.safe_csv import write_safe_csv
 
 
 def register(app: typer.Typer) -> None:
-    app.command("colocate")(colocate_cmd)
+    app.command("colocate", short_help="Attach gridded values to sample events.")(colocate_cmd)
 
 
 def colocate_cmd(
     ctx: typer.Context,
-    variables: list[str] = typer.Argument(..., help="Gridded variables (CF standard names), e.g. sea_surface_temperature."),
-    source: list[str] = typer.Option([], "--source", help="VARIABLE=SOURCE_ID: take a variable from this gridded source."),
-    csv: Path | None = typer.Option(None, "--csv", help="Write the values to this CSV file."),
+    variables: list[str] = typer.Argument(..., metavar="VARIABLE...",
+                                          help="Gridded variables (CF standard names), e.g. sea_surface_temperature."),
+    source: list[str] = typer.Option([], "--source", metavar="VARIABLE=SOURCE_ID",
+                                     help="Take a variable from this gridded source; repeat per variable."),
+    csv: Path | None = typer.Option(None, "--csv", metavar="OUT", help="Write the values to this CSV file ('-' for stdout)."),
     wide: bool = typer.Option(False, "--wide", help="One row per event, one column per variable (needs one source per variable)."),
+    study_dir: Path | None = study_option(),
 ) -> None:
     """Attach to each sample event the gridded value of its cell and period (and layer).
 
     Prints how many events of each source found a value; exit 1 when none did.
+
+    \b
+    Examples:
+      harmonize colocate sea_surface_temperature
+      harmonize colocate sea_surface_temperature --source sea_surface_temperature=sst_sat --csv sst.csv
     """
-    study = study_from(ctx)
+    consoles.json = is_stdout(csv)
+    from rich.table import Table
+
+    from harmonize.colocate import colocate, colocate_wide
+
+    study = study_from(ctx, study_dir)
     chosen = {}
     for item in source:
         variable, sep, source_id = item.partition("=")
@@ -47,7 +67,8 @@ def colocate_cmd(
     console.print(table)
     if csv is not None:
         out = colocate_wide(study, variables, sources=chosen) if wide else long
-        write_safe_csv(out, csv)
-        console.print(f"written: {csv} ({fmt_int(len(out))} rows)")
+        write_csv_out(out, csv)
+        if not is_stdout(csv):
+            say(f"written: {csv} ({fmt_int(len(out))} rows)")
     console.print("Values are cell-period means of the gridded source, not measurements at the sample. " + CAUTION)
     raise typer.Exit(0 if summary["found"].sum() > 0 else 1)

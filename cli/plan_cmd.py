@@ -2,18 +2,28 @@
 
 from __future__ import annotations
 
-import json
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import typer
-from harmonize.cli.console import CAUTION, console, study_from
-from rich.table import Table
+from harmonize.cli.console import (
+    CAUTION,
+    console,
+    consoles,
+    emit_json,
+    is_stdout,
+    say,
+    study_from,
+    study_option,
+    write_csv_out,
+)
 
-from harmonize.audit.plan import Plan, plan_samples
+if TYPE_CHECKING:
+    from harmonize.audit.plan import Plan
 
 
 def register(app: typer.Typer) -> None:
-    app.command("plan")(plan_cmd)
+    app.command("plan", short_help="Where N added samples would close coverage gaps most.")(plan_cmd)
 
 
 def _split(text: str | None) -> list[str] | None:
@@ -38,30 +48,57 @@ def plan_cmd(
     keep: str | None = typer.Option(None, "--keep", metavar="CELL[,CELL]",
                                     help="Cells that must be in the plan (placed first, counted in N)."),
     seed: int = typer.Option(0, "--seed", help="Breaks exact ties; the same seed gives the same plan."),
-    csv: Path | None = typer.Option(None, "--csv", help="Write the proposed stations to this CSV file."),
-    gpkg: Path | None = typer.Option(None, "--gpkg", help="Write stations, cells and coverage to this GeoPackage."),
-    json_out: Path | None = typer.Option(None, "--json", help="Write the plan as JSON to this file."),
+    csv: Path | None = typer.Option(None, "--csv", metavar="OUT",
+                                    help="Write the proposed stations to this CSV file ('-' for stdout)."),
+    gpkg: Path | None = typer.Option(None, "--gpkg", metavar="OUT",
+                                     help="Write stations, cells and coverage to this GeoPackage."),
+    json_out: Path | None = typer.Option(None, "--json", metavar="[OUT]",
+                                         help="Write the plan as JSON to OUT; '-' prints it on stdout and nothing else."),
+    study_dir: Path | None = study_option(),
 ) -> None:
-    """Where to sample next: the cells where N more samples would close the coverage gaps most."""
-    study = study_from(ctx)
+    """Where to sample next: the cells where N more samples would close the coverage gaps most.
+
+    \b
+    Examples:
+      harmonize plan trawl 20 --season summer --csv stations.csv
+      harmonize plan plankton 10 --stratum "Vossa Bank" --min-distance 30 --gpkg plan.gpkg
+      harmonize plan trawl 5 --json -
+    """
+    import json
+
+    from harmonize.audit.plan import plan_samples
+
+    if is_stdout(csv) and is_stdout(json_out):
+        raise typer.BadParameter("--csv and --json cannot both write to stdout")
+    consoles.json = is_stdout(csv) or is_stdout(json_out)
+    study = study_from(ctx, study_dir)
     depth = None if depth_min is None and depth_max is None else (depth_min, depth_max)
     plan = plan_samples(study, kind, n, seasons=_split(season), depth_layers=_split(layer), season_year=year,
                         strata=_split(stratum), depth_range_m=depth, min_distance_km=min_distance,
                         keep=_split(keep) or (), seed=seed)
     print_plan(plan)
     if csv is not None:
-        console.print(f"proposed stations written to {plan.write_csv(csv)}", markup=False)
+        if is_stdout(csv):
+            # no sample anywhere yet: the distance to the nearest one is blank, not inf
+            write_csv_out(plan.stations.replace([float("inf"), float("-inf")], float("nan")), csv)
+        else:
+            say(f"proposed stations written to {plan.write_csv(csv)}")
     if gpkg is not None:
-        console.print(f"GeoPackage written to {plan.write_gpkg(gpkg, study)}", markup=False)
+        say(f"GeoPackage written to {plan.write_gpkg(gpkg, study)}")
     if json_out is not None:
+        if is_stdout(json_out):
+            emit_json("plan", plan.to_json_dict())
+            return
         json_out.parent.mkdir(parents=True, exist_ok=True)
         json_out.write_text(json.dumps(plan.to_json_dict(), indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
-        console.print(f"plan JSON written to {json_out}", markup=False)
+        say(f"plan JSON written to {json_out}")
     console.print(CAUTION, style="dim")
 
 
 def print_plan(plan: Plan) -> None:
     """The plan as two tables: the stations, and coverage per stratum before and after."""
+    from rich.table import Table
+
     r = plan.request
     console.print(f"plan: {len(plan.stations)} added {r.source_kind} samples in {', '.join(r.seasons)} "
                   f"({', '.join(r.depth_layers)}), against the samples of season year {r.season_year}", markup=False)

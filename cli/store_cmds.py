@@ -1,38 +1,66 @@
-"""status and quarantine: what the store holds and what it refused."""
+"""status: what the store holds (quarantine is in quarantine_cmd.py)."""
 
 from __future__ import annotations
 
 from pathlib import Path
 
 import typer
-from harmonize.cli.console import console, fmt_int, study_from
-from rich.table import Table
-
-from harmonize.store import Store
-from harmonize.twins import volunteer_only
+from harmonize.cli.console import (
+    console,
+    consoles,
+    emit_json,
+    fmt_int,
+    json_option,
+    records,
+    study_from,
+    study_option,
+)
 
 
 def register(app: typer.Typer) -> None:
-    app.command("status")(status)
-    app.command("quarantine")(quarantine)
+    app.command("status", short_help="What the store holds.")(status)
 
 
 def status(
     ctx: typer.Context,
     check: bool = typer.Option(False, "--check", help="Verify the manifest against the parquet files and the invariants."),
     all_ingests: bool = typer.Option(False, "--all", help="List superseded ingests too."),
+    study_dir: Path | None = study_option(),
+    as_json: bool = json_option(),
 ) -> None:
-    """What the store holds: ingests, and rows by kind, year, season and layer."""
-    study = study_from(ctx)
+    """What the store holds: ingests, and rows by kind, year, season and layer.
+
+    With --check, exit 1 when the store fails its integrity check.
+
+    \b
+    Examples:
+      harmonize status
+      harmonize status --check
+      harmonize status --study my-study --json
+    """
+    consoles.json = as_json
+    from rich.table import Table
+
+    from harmonize.store import Store
+    from harmonize.twins import volunteer_only
+
+    study = study_from(ctx, study_dir)
     store = Store(study.store_dir)
     if not store.exists():
         console.print(f"the store of '{study.name}' is empty: nothing ingested yet ('harmonize ingest PROFILE FILES')")
+        if as_json:
+            emit_json("status", {"study": study.name, "store": str(study.store_dir), "empty": True, "ingests": [],
+                                 "summary": [], "events_without_values": 0, "masked": [], "volunteer_only_cells": 0,
+                                 "integrity_problems": [] if check else None})
         return
     # the integrity check runs first: a missing or damaged file would stop the listing below
     problems = store.check() if check else []
     for p in problems:
         console.print(f"integrity problem: {p}", markup=False)
     if problems:
+        if as_json:
+            emit_json("status", {"study": study.name, "store": str(study.store_dir), "empty": False,
+                                 "integrity_problems": [str(p) for p in problems]}, 1)
         raise typer.Exit(1)
     ingests = store.ingests(include_superseded=all_ingests)
     table = Table(title=f"ingests in {study.name}", title_justify="left")
@@ -48,6 +76,7 @@ def status(
         console.print(f"accepted events without any observation row: {fmt_int(len(empty))} ({by_source}); "
                       "they are in the store's events_without_values table", markup=False)
     summary = store.summary()
+    alone: list = []
     if len(summary):
         t2 = Table(title="observation rows by kind, season year, season and depth layer", title_justify="left")
         for col in ("kind", "season year", "season", "layer", "events", "rows", "inferred zeros"):
@@ -71,32 +100,9 @@ def status(
         console.print(t3)
     if check:
         console.print("integrity check passed: manifest, parquet files and row accounting agree")
-
-
-def quarantine(
-    ctx: typer.Context,
-    csv: Path | None = typer.Option(None, "--csv", help="Write all matching rows to this CSV file."),
-    reason: str | None = typer.Option(None, "--reason", help="Only this reason code."),
-    ingest: str | None = typer.Option(None, "--ingest", help="Only this ingest id."),
-    source: str | None = typer.Option(None, "--source", help="Only this source id."),
-    limit: int = typer.Option(50, "--limit", help="How many rows to print."),
-) -> None:
-    """Rejected rows with their reasons (complete ingests only)."""
-    study = study_from(ctx)
-    store = Store(study.store_dir)
-    rows = store.quarantine(ingest_id=ingest, reason=reason, source_id=source)
-    if csv is not None:
-        from harmonize.export.safe_csv import write_safe_csv
-
-        write_safe_csv(rows, csv)
-        console.print(f"wrote {fmt_int(len(rows))} quarantined rows to {csv}")
-        return
-    if rows.empty:
-        console.print("no quarantined rows")
-        return
-    counts = rows["reason_code"].value_counts()
-    console.print("quarantined rows by reason: " + ", ".join(f"{k} {fmt_int(v)}" for k, v in counts.items()))
-    for r in rows.head(limit).itertuples():
-        console.print(f"{r.source_id}  {r.source_file} row {r.source_row}: [{r.reason_code}] {r.message}", markup=False)
-    if len(rows) > limit:
-        console.print(f"... and {fmt_int(len(rows) - limit)} more; use --csv OUT for all of them")
+    if as_json:
+        emit_json("status", {
+            "study": study.name, "store": str(study.store_dir), "empty": False,
+            "ingests": records(ingests), "summary": records(summary), "events_without_values": len(empty),
+            "masked": records(masked), "volunteer_only_cells": len(alone),
+            "integrity_problems": [] if check else None})

@@ -5,33 +5,61 @@ from __future__ import annotations
 from pathlib import Path
 
 import typer
-from harmonize.cli.console import CAUTION, console, fmt_int, study_from
-from rich.table import Table
-
-from harmonize.export.safe_csv import write_safe_csv
-from harmonize.store import Store
-from harmonize.twins import twins_frame, volunteer_only
+from harmonize.cli.console import (
+    CAUTION,
+    console,
+    consoles,
+    emit_json,
+    fmt_int,
+    is_stdout,
+    json_option,
+    records,
+    say,
+    study_from,
+    study_option,
+    write_csv_out,
+)
 
 
 def register(app: typer.Typer) -> None:
-    app.command("twins")(twins_cmd)
+    app.command("twins", short_help="Probable duplicates across sources.")(twins_cmd)
 
 
 def twins_cmd(
     ctx: typer.Context,
-    csv: Path | None = typer.Option(None, "--csv", help="Write every twin (both records side by side) to this CSV file."),
-    limit: int = typer.Option(20, "--limit", help="How many twins to print."),
+    csv: Path | None = typer.Option(None, "--csv", metavar="OUT", help="Write every twin (both records side by side) "
+                                    "to this CSV file ('-' for stdout)."),
+    limit: int = typer.Option(20, "--limit", metavar="N", help="How many twins to print."),
+    study_dir: Path | None = study_option(),
+    as_json: bool = json_option(),
 ) -> None:
-    """Probable duplicates across sources: each flagged record with the record it repeats."""
-    study = study_from(ctx)
+    """Probable duplicates across sources: each flagged record with the record it repeats.
+
+    \b
+    Examples:
+      harmonize twins
+      harmonize twins --csv twins.csv
+      harmonize twins --json
+    """
+    consoles.json = as_json or is_stdout(csv)
+    from rich.table import Table
+
+    from harmonize.store import Store
+    from harmonize.twins import twins_frame, volunteer_only
+
+    study = study_from(ctx, study_dir)
     with Store(study.store_dir).connect() as con:
         pairs = twins_frame(con)
         alone = volunteer_only(con)
     if csv is not None:
-        write_safe_csv(pairs, csv)
-        console.print(f"wrote {fmt_int(len(pairs))} twins to {csv}")
+        write_csv_out(pairs, csv)
+        if not is_stdout(csv):
+            say(f"wrote {fmt_int(len(pairs))} twins to {csv}")
+    if as_json:
+        emit_json("twins", {"study": study.name, "twins": records(pairs), "volunteer_only": records(alone)})
+        return
     if pairs.empty:
-        console.print("no probable duplicates in the store")
+        say("no probable duplicates in the store")
     else:
         counts = pairs.groupby(["source_id", "twin_source_id"]).size()
         table = Table(title="records flagged probable_duplicate, by source and the source of their twin",
@@ -42,14 +70,14 @@ def twins_cmd(
             table.add_row(src, twin, fmt_int(int(n)))
         console.print(table)
         for r in pairs.head(limit).itertuples():
-            console.print(f"{r.source_id} {r.event_id} {r.variable} ({r.quantity} {r.value:g}) repeats "
-                          f"{r.twin_source_id} {r.twin_event_id} ({r.twin_quantity} {r.twin_value:g}): "
-                          f"{r.distance_km:.2f} km, {r.minutes:.0f} min apart", markup=False)
-        console.print("Rule: a volunteer record yields to a better-ranked record of the same taxon within its "
-                      "profile's [duplicates] windows (rank, then counted before presence-only, then the "
-                      "earlier record); nothing is deleted. See docs/sources/opportunistic.md.", markup=False)
+            say(f"{r.source_id} {r.event_id} {r.variable} ({r.quantity} {r.value:g}) repeats "
+                f"{r.twin_source_id} {r.twin_event_id} ({r.twin_quantity} {r.twin_value:g}): "
+                f"{r.distance_km:.2f} km, {r.minutes:.0f} min apart")
+        say("Rule: a volunteer record yields to a better-ranked record of the same taxon within its "
+            "profile's [duplicates] windows (rank, then counted before presence-only, then the "
+            "earlier record); nothing is deleted. See docs/sources/opportunistic.md.")
     if len(alone):
-        console.print(f"strata x seasons with volunteer records only: {fmt_int(len(alone))} "
-                      f"(e.g. {alone['stratum'].iloc[0]} {alone['season'].iloc[0]} {alone['season_year'].iloc[0]}); "
-                      "there the opportunistic design carries the whole model")
-    console.print(CAUTION)
+        say(f"strata x seasons with volunteer records only: {fmt_int(len(alone))} "
+            f"(e.g. {alone['stratum'].iloc[0]} {alone['season'].iloc[0]} {alone['season_year'].iloc[0]}); "
+            "there the opportunistic design carries the whole model")
+    say(CAUTION)

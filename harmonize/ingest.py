@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import logging
 import queue
 import re
 import threading
@@ -18,7 +19,7 @@ import pandas as pd
 import pyarrow as pa
 
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
-from harmonize.adapters.common import codes_in, distinct_present
+from harmonize.adapters.common import codes_in, distinct_present, swapped_position_notes
 from harmonize.adapters.registry import get_adapter
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns, validate_observations
 from harmonize.engines import engine_scope
@@ -28,6 +29,8 @@ from harmonize.store import IngestRecord, Store
 from harmonize.study import Study
 from harmonize.tagging import Grid, assign_strata, normalise_lon, tag_depth_layer, tag_season
 from harmonize.twins import twin_settings
+
+logger = logging.getLogger(__name__)
 
 
 @dataclass
@@ -135,14 +138,20 @@ def run(
         previous = store.previous_ingests(prof.source_id, [main_name], inputs_sha)
         same = previous[(previous["inputs_sha256"] == inputs_sha) & (previous["config_sha256"] == config_sha)]
         if len(same):
+            logger.info("%s: already ingested with this configuration; nothing to do", main_name)
             return IngestResult("unchanged", prof.source_id, adapter.kind, str(same["ingest_id"].iloc[-1]), [],
                                 notes=[f"{main_name} was already ingested with this configuration (ingest {same['ingest_id'].iloc[-1]}); nothing to do"])
         if len(previous) and not replace:
             raise DuplicateIngestError(_duplicate_message(previous, main_name))
 
     started = pd.Timestamp.now("UTC").tz_localize(None)
+    logger.info("reading %s with profile %s (%s adapter)", ", ".join(Path(p).name for p in inputs.values()),
+                prof.path.name, adapter.kind)
     with engine_scope(engine, scheduler):
         out = adapter.read(inputs, prof, study, progress)
+    logger.info("%s: %d rows read, %d accepted, %d quarantined", main_name, sum(f.rows_read for f in out.files),
+                sum(f.rows_accepted for f in out.files), sum(f.rows_quarantined for f in out.files))
+    logger.debug("input sha256 %s, configuration sha256 %s", inputs_sha, config_sha)
     return store_output(study, prof, adapter.kind, out, write=write, replace=replace,
                         inputs_sha256=inputs_sha, config_sha256=config_sha, started=started)
 
@@ -173,7 +182,8 @@ def store_output(
     config_sha = config_sha256 or _digest([profile.fingerprint, study.fingerprint, CONTRACT_VERSION])
     ingest_id = f"{started:%Y%m%dT%H%M%S%f}-{uuid.uuid4().hex[:8]}"  # sorts by start time
     blocks = assemble_blocks(out, study, profile, kind, ingest_id)
-    result = IngestResult("checked", profile.source_id, kind, None, out.files, 0, 0, out.quarantine, notes=out.notes)
+    notes = list(out.notes) + swapped_position_notes(study, out.positions)
+    result = IngestResult("checked", profile.source_id, kind, None, out.files, 0, 0, out.quarantine, notes=notes)
     result.masked = out.masked
     no_values = events_without_values(out, study, profile, kind)
     result.events_without_values = no_values.to_pandas()
@@ -211,6 +221,7 @@ def store_output(
 
         superseded = store.commit(record, files, staged, out.quarantine, [], on_conflict, masked=out.masked,
                                   events_without_values=no_values)
+        logger.info("ingest %s committed: %d observation rows", ingest_id, result.records_written)
     finally:
         store.discard(staged)
     result.status, result.ingest_id, result.superseded = "complete", ingest_id, superseded

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import difflib
 import hashlib
 import json
 import tomllib
@@ -11,15 +12,21 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
 
+from harmonize.config_spec import (
+    COORDINATE_FORMATS,
+    FORMATS_KINDS,
+    FRACTION_FORMATS,
+    JOINED_KINDS,
+    KINDS,
+    PROVIDER_TYPES,
+    SOURCE,
+    check_known,
+    profile_spec,
+)
 from harmonize.errors import ConfigError
 from harmonize.study import Study, resolve_inside
 
-KINDS = ("trawl", "plankton", "transect", "opportunistic", "gridded", "effort")
-PROVIDER_TYPES = ("agency", "volunteer", "industry", "model", "remote_sensing")
-_SOURCE_KEYS = {
-    "id", "kind", "provider_type", "protocol", "timezone", "encoding", "delimiter",
-    "dayfirst", "time_format", "description",
-}
+__all__ = ["FORMATS_KINDS", "JOINED_KINDS", "KINDS", "PROVIDER_TYPES", "Profile", "find_profile", "load_profile", "peek_kind"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -36,9 +43,12 @@ class Profile:
     delimiter: str | None = None
     dayfirst: bool = False
     time_format: str | None = None
-    columns: Mapping[str, Mapping[str, str]] = field(default_factory=dict)
+    #: adapter field -> provider column, or (date column, time column) for a date-time field
+    columns: Mapping[str, Mapping[str, str | tuple[str, str]]] = field(default_factory=dict)
     units: Mapping[str, str] = field(default_factory=dict)
     constants: Mapping[str, Any] = field(default_factory=dict)
+    #: adapter field -> how the provider writes it (config_spec.COORDINATE_FORMATS, FRACTION_FORMATS)
+    formats: Mapping[str, str] = field(default_factory=dict)
     raw: Mapping[str, Any] = field(default_factory=dict)
 
     @property
@@ -53,7 +63,7 @@ class Profile:
             raise ConfigError(self.path, f"[{name}]", "expected a table ([...] section)")
         return value
 
-    def column_map(self, table: str) -> Mapping[str, str]:
+    def column_map(self, table: str) -> Mapping[str, str | tuple[str, str]]:
         """Adapter field -> provider column for one table ("events", "records" or "rows")."""
         return self.columns.get(table, {})
 
@@ -102,13 +112,13 @@ def load_profile(path: str | Path, study: Study, table_fields: Mapping[str, set[
     src = raw.get("source")
     if not isinstance(src, Mapping):
         raise ConfigError(path, "[source]", "section is missing; it needs id, kind and provider_type")
-    unknown = sorted(set(src) - _SOURCE_KEYS)
-    if unknown:
-        raise ConfigError(path, f"source.{unknown[0]}", f"unknown key; expected one of {sorted(_SOURCE_KEYS)}")
+    check_known(path, src, SOURCE, ("source",))
     source_id = _text(path, src, "id")
     kind = _text(path, src, "kind")
     if kind not in KINDS:
         raise ConfigError(path, "source.kind", f"'{kind}' is not a source kind; expected one of {', '.join(KINDS)}")
+    # every section and key must be known: a misspelt [unit] would silently keep the default units
+    check_known(path, raw, profile_spec(kind))
     provider_type = _text(path, src, "provider_type")
     if provider_type not in PROVIDER_TYPES:
         raise ConfigError(
@@ -142,13 +152,32 @@ def load_profile(path: str | Path, study: Study, table_fields: Mapping[str, set[
     constants = raw.get("constants", {})
     if not isinstance(constants, Mapping):
         raise ConfigError(path, "[constants]", "expected field = value pairs")
+    formats = raw.get("formats", {})
+    if not isinstance(formats, Mapping) or not all(isinstance(v, str) for v in formats.values()):
+        raise ConfigError(path, "[formats]", "expected field = \"format\" pairs, e.g. start_lat = \"degrees_minutes\"")
+    known_formats = tuple(dict.fromkeys(COORDINATE_FORMATS + FRACTION_FORMATS))
+    for key, value in formats.items():
+        if value not in known_formats:
+            raise ConfigError(path, f"formats.{key}", f"'{value}' is not a format; expected one of {', '.join(known_formats)}")
+    joined = sorted(f"columns.{t}.{k}" if t != "rows" else f"columns.{k}"
+                    for t, m in columns.items() for k, v in m.items() if isinstance(v, tuple))
+    if kind not in FORMATS_KINDS and (formats or joined):
+        key = f"formats.{next(iter(formats))}" if formats else joined[0]
+        raise ConfigError(path, key, f"[formats] and date and time in two columns are read for "
+                          f"{', '.join(FORMATS_KINDS[:-1])} and {FORMATS_KINDS[-1]} files only; "
+                          f"convert this {kind} file's column first")
+    if kind not in JOINED_KINDS and joined:
+        raise ConfigError(path, joined[0], f"date and time in two columns are joined for {', '.join(JOINED_KINDS)} "
+                          f"files only; map one column holding date and time")
     if all_fields:
-        for section, mapping in (("units", units), ("constants", constants)):
+        for section, mapping in (("units", units), ("constants", constants), ("formats", formats)):
             for key in mapping:
                 if key not in all_fields:
+                    close = difflib.get_close_matches(key, sorted(all_fields), n=1)
+                    hint = f"; did you mean '{close[0]}'?" if close else ";"
                     raise ConfigError(
                         path, f"{section}.{key}",
-                        f"'{key}' is not a field of the {kind} adapter; fields: {', '.join(sorted(all_fields))}",
+                        f"'{key}' is not a field of the {kind} adapter{hint} fields: {', '.join(sorted(all_fields))}",
                     )
 
     return Profile(
@@ -165,6 +194,7 @@ def load_profile(path: str | Path, study: Study, table_fields: Mapping[str, set[
         columns=columns,
         units=dict(units),
         constants=dict(constants),
+        formats=dict(formats),
         raw=raw,
     )
 
@@ -227,7 +257,12 @@ def _read_columns(
     return out
 
 
-def _column_name(path: Path, key: str, value: Any) -> str:
+def _column_name(path: Path, key: str, value: Any) -> str | tuple[str, str]:
+    if isinstance(value, list):
+        # a date-time written in two columns: [date column, time column], joined with a space
+        if len(value) != 2 or not all(isinstance(v, str) and v.strip() for v in value):
+            raise ConfigError(path, key, f"expected a column name, or [\"date column\", \"time column\"], got {value!r}")
+        return (value[0], value[1])
     if not isinstance(value, str) or not value.strip():
         raise ConfigError(path, key, f"expected the provider's column name as text, got {value!r}")
     return value

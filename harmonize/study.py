@@ -17,6 +17,7 @@ import pyproj
 import shapely
 from shapely.geometry import shape
 
+from harmonize.config_spec import STUDY, check_known
 from harmonize.errors import ConfigError
 
 STUDY_FILE = "study.toml"
@@ -128,6 +129,8 @@ def load_study(root: str | Path = ".") -> Study:
     except UnicodeDecodeError:
         raise ConfigError(path, None, "is not UTF-8 text") from None
 
+    # every section and key must be known: a misspelt [season] would silently keep the defaults
+    check_known(path, raw, STUDY)
     reader = _Reader(path, raw)
     sec = reader.table("study")
     name = reader.string(sec, "study.name")

@@ -5,9 +5,22 @@ from __future__ import annotations
 import json
 from pathlib import Path
 
+from harmonize.config_spec import (
+    FORMATS_KINDS,
+    JOINED_KINDS,
+    KINDS,
+    is_coordinate,
+    is_fraction,
+    schema_file_name,
+    shipped_schema,
+)
 from harmonize.errors import HarmonizeError
 
+#: Folder of a study that holds the JSON Schemas of its configuration files (for editors).
+SCHEMA_DIR = "schemas"
+
 STUDY_TOML = '''\
+#:schema ./schemas/study.schema.json
 # study.toml: one study, many sources. Paths are relative to this folder.
 # Edit the values below; 'harmonize check' tells you when something is wrong.
 
@@ -58,6 +71,7 @@ min_vessels = 3               # fishing-effort cells with fewer vessels are supp
 '''
 
 TRAWL_PROFILE = '''\
+#:schema ../schemas/profile-trawl.schema.json
 # A profile maps one provider's files onto the trawl adapter's fields.
 # Fields not listed under [columns.*] are looked for under their own names.
 
@@ -91,6 +105,11 @@ count = "number"
 
 [constants]                   # a value for every row when the files lack it
 # net_width_m = 17.0
+
+[formats]                     # how your files write a field, when not as decimal numbers
+# start_lat = "degrees_minutes"          # 41°50.159'N, 41 50.159 N, -41 50.159
+# start_lon = "degrees_minutes_seconds"  # 153°02'30"W, 153 02 30 W
+# date and time in two columns: in [columns.events] write start_time = ["DATE", "TIME"]
 '''
 
 _PROVIDER = {"trawl": "agency", "plankton": "agency", "transect": "agency", "opportunistic": "volunteer",
@@ -147,6 +166,7 @@ def profile_template(kind: str) -> str:
     adapter = get_adapter(kind)
     article = "an" if kind[0] in "aeiou" else "a"
     lines = [
+        schema_line(kind),
         f"# Example profile for {article} {kind} source: {adapter.description}",
         "# Map your column names onto the adapter's fields; a field you do not map is looked for",
         "# under its own name. Uncomment what you need. Details: docs/sources/" + kind + ".md",
@@ -185,9 +205,43 @@ def profile_template(kind: str) -> str:
     if units:
         lines += ["[units]                       # your units, when not the default shown"] + units + [""]
     lines += ["[constants]                   # a value for every row when the files lack it", "# field = value", ""]
+    lines += _formats_lines(kind, tables)
     if kind in _EXTRA:
         lines.append(_EXTRA[kind])
     return "\n".join(lines).rstrip() + "\n"
+
+
+def _formats_lines(kind: str, tables: list) -> list[str]:
+    """The [formats] section of a template: the kind's coordinate and fraction fields."""
+    from harmonize.contract import fields
+
+    if kind not in FORMATS_KINDS:
+        return []
+    lines = ["[formats]                     # how your files write a field, when not as decimal numbers"]
+    times = []
+    for role, schema, _form in tables:
+        for spec in fields(schema):
+            if is_coordinate(spec.unit):
+                dm, dms = (("41°50.159'N", "41°50'09\"N") if spec.unit == "degree_north"
+                           else ("153°02.5'W", "153°02'30\"W"))
+                lines.append(f'# {spec.name} = "degrees_minutes"'.ljust(42)
+                             + f"# {dm}; or degrees_minutes_seconds ({dms})")
+            elif is_fraction(spec.type, spec.unit, spec.maximum):
+                lines.append(f'# {spec.name} = "percent"'.ljust(42)
+                             + "# 25 means 25 %; 1/4, 25% and 0.25 are always read")
+            elif spec.type == "datetime" and kind in JOINED_KINDS:
+                times.append((role, spec.name))
+    if times:
+        role, name = times[0]
+        table = "[columns]" if role == "rows" else f"[columns.{role}]"
+        lines.append(f'# date and time in two columns: in {table} write {name} = ["DATE", "TIME"]')
+    return lines + [""]
+
+
+def schema_line(kind: str | None) -> str:
+    """The first line of a study.toml (kind None) or profile: where editors find its JSON Schema."""
+    prefix = "./" if kind is None else "../"
+    return f"#:schema {prefix}{SCHEMA_DIR}/{schema_file_name(kind)}"
 
 
 TAXA_CSV = "taxon,group,aliases,sensitive\n"
@@ -212,6 +266,11 @@ def write_starter(folder: str | Path, name: str | None = None) -> list[Path]:
     }
     for kind in ("plankton", "transect", "opportunistic", "gridded", "effort"):
         written[folder / "profiles" / f"example_{kind}.toml"] = profile_template(kind)
+    # the JSON Schemas the #:schema lines point to: editors validate while the user types
+    (folder / SCHEMA_DIR).mkdir(exist_ok=True)
+    for kind in (None, *KINDS):
+        name = schema_file_name(kind)
+        written[folder / SCHEMA_DIR / name] = shipped_schema(name)
     for path, text in written.items():
         if not path.exists():
             path.write_text(text, encoding="utf-8")

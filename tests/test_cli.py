@@ -1,18 +1,23 @@
-"""The real harmonize command in a subprocess: exit codes, one-line errors, no tracebacks."""
+"""The harmonize command through typer's test runner: exit codes, one-line errors, no tracebacks."""
 
 from __future__ import annotations
 
-import os
-import subprocess
-import sys
+from dataclasses import dataclass
 from pathlib import Path
 
-BIN = Path(sys.executable).parent / "harmonize"
+from cli_runner import run_cli
 
 
-def harmonize(*args: str, cwd: Path | None = None, env: dict[str, str] | None = None) -> subprocess.CompletedProcess[str]:
-    return subprocess.run([str(BIN), *args], capture_output=True, text=True, cwd=cwd, timeout=120,
-                          env={**os.environ, "COLUMNS": "200", **(env or {})})
+@dataclass
+class Done:
+    returncode: int
+    stdout: str
+    stderr: str
+
+
+def harmonize(*args: str, env: dict[str, str] | None = None) -> Done:
+    result = run_cli(*args, env=env)
+    return Done(result.exit_code, result.stdout, result.stderr)
 
 
 def test_help_lists_every_verb() -> None:
@@ -61,6 +66,7 @@ def test_check_and_ingest_the_messy_fixture(study_dir: Path) -> None:
     assert status.returncode == 0 and "integrity check passed" in status.stdout
     q = harmonize(*args, "quarantine", "--reason", "unknown_taxon")
     assert "catch_messy.csv row 3: [unknown_taxon] taxon 'Syranthus minor' is not in the taxa list; closest known: Syrranthus minor" in q.stdout
+    assert "see 'harmonize quarantine'" not in check.stdout  # check lists the rows itself
     csv_out = study_dir / "rejected.csv"
     assert harmonize(*args, "quarantine", "--csv", str(csv_out)).returncode == 0
     assert len(csv_out.read_text().strip().splitlines()) == 1 + 11

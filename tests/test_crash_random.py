@@ -36,8 +36,7 @@ from harmonize.adapters.registry import list_adapters
 list_adapters()
 print("ready", flush=True)
 sys.stdin.readline()
-sys.argv = ["harmonize", *sys.argv[1:]]
-main()
+main(sys.argv[1:])
 """
 
 

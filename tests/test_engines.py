@@ -205,7 +205,7 @@ def test_cli_engine_option(study_dir: Path) -> None:
     cmd = [harmonize, "--study", str(study_dir), "ingest", "effort_pings", str(study_dir / "pings_hand.csv")]
     bad = subprocess.run([*cmd, "--engine", "spark"], capture_output=True, text=True)
     assert bad.returncode == 2
-    assert "unknown engine 'spark'; choose one of duckdb, dask" in bad.stderr
+    assert "Invalid value for '--engine': 'spark' is not one of 'duckdb', 'dask'." in bad.stderr
     good = subprocess.run([*cmd, "--engine", "dask"], capture_output=True, text=True)
     assert good.returncode == 0, good.stderr
     audit_run = subprocess.run([harmonize, "--study", str(study_dir), "audit", "--engine", "dask"],

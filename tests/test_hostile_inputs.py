@@ -21,11 +21,10 @@ import sys
 import textwrap
 import zipfile
 from pathlib import Path
-from unittest import mock
 
 import duckdb
 import pytest
-from harmonize.cli.app import main
+from cli_runner import run_cli
 
 from harmonize.store import Store
 from harmonize.study import load_study
@@ -36,15 +35,9 @@ META_OK = (DWCA / "meta.xml").read_text()
 
 
 def cli(capsys: pytest.CaptureFixture[str], *args: str) -> tuple[int, str, str]:
-    """Run the harmonize command in this process: (exit code, stdout, stderr)."""
-    with mock.patch.object(sys, "argv", ["harmonize", *args]):
-        try:
-            main()
-            code = 0
-        except SystemExit as exc:
-            code = exc.code if isinstance(exc.code, int) else (0 if exc.code is None else 1)
-    out = capsys.readouterr()
-    return code, out.out, out.err
+    """Run the harmonize command in this process (typer's runner): (exit code, stdout, stderr)."""
+    result = run_cli(*args)
+    return result.exit_code, result.stdout, result.stderr
 
 
 def assert_refused(result: tuple[int, str, str], *needles: str) -> str:

@@ -42,7 +42,7 @@ def test_fixture_study_loads(study_dir: Path) -> None:
         ('domain = "domain.geojson"', 'domain = "nowhere.geojson"', r"study\.domain: file 'nowhere\.geojson' does not exist"),
         ('list = "taxa.csv"', 'list = "missing.csv"', r"taxa\.list: file 'missing\.csv' does not exist"),
         ('name = "Keldmar Sea test study"\n', "", r"study\.name: is missing"),
-        ("[study]", "[studdy]", r"\[study\]: section is missing"),
+        ("[study]", "[studdy]", r"studdy: unknown section \[studdy\]; did you mean 'study'\? Valid names at the top level: study, seasons,"),
         ("near_bottom_m = 10", "near_bottom_m = 10\nnear_bottom_m = 5", r"study\.toml: is not valid TOML"),
     ],
 )

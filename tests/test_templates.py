@@ -41,3 +41,17 @@ def test_init_refuses_to_overwrite(tmp_path: Path) -> None:
     write_starter(tmp_path / "s")
     with pytest.raises(Exception, match="already exists"):
         write_starter(tmp_path / "s")
+
+
+@pytest.mark.parametrize("kind", KINDS)
+def test_templates_show_the_provider_format_options(tmp_path: Path, kind: str) -> None:
+    write_starter(tmp_path / "s")
+    text = (tmp_path / "s" / "profiles" / f"example_{kind}.toml").read_text()
+    if kind in ("gridded", "effort"):  # read by their own readers, without [formats]
+        assert "[formats]" not in text
+        return
+    assert "[formats]" in text and '= "degrees_minutes"' in text and "degrees_minutes_seconds" in text
+    if kind == "plankton":
+        assert '# split_fraction = "percent"' in text and "1/4, 25% and 0.25 are always read" in text
+    if kind != "opportunistic":
+        assert 'write ' in text and '= ["DATE", "TIME"]' in text

@@ -8,6 +8,7 @@ from dataclasses import dataclass, field
 from pathlib import Path
 from typing import ClassVar
 
+import numpy as np
 import pandas as pd
 
 from harmonize.adapters.reading import RawTable, Rejections, coerce_fields, read_table
@@ -62,6 +63,8 @@ class AdapterOutput:
     quarantine: pd.DataFrame
     files: list[InputFile]
     notes: list[str] = field(default_factory=list)
+    #: (file name, latitudes, longitudes) of the positions read, for the swapped-coordinates note
+    positions: list[tuple[str, np.ndarray, np.ndarray]] = field(default_factory=list)
     #: For inputs whose "rows" are grid values or pings: values rejected in bulk and counted,
     #: not stored one by one (columns source_file, reason_code, n_values, message). They are
     #: part of the file's rows_quarantined.
@@ -138,5 +141,6 @@ def finish(
         values=values.reset_index(drop=True),
         quarantine=rejections.to_frame(tables),
         files=files,
+        positions=list(rejections.positions),
         notes=list(notes or []),
     )

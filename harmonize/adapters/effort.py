@@ -44,7 +44,7 @@ import pyarrow.parquet as pq
 
 from harmonize import units
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback, finish
-from harmonize.adapters.common import reject_outside_domain
+from harmonize.adapters.common import reject_outside_domain, swapped_position_notes
 from harmonize.adapters.reading import (
     LineReader,
     RawTable,
@@ -576,7 +576,7 @@ class PingReader:
             checks.append((f"NOT isfinite({col})", ReasonCode.OUT_OF_RANGE,
                            _sql_text(f"{self._label(f)} is not a finite number")))
         checks.append(("lat < -90 OR lat > 90", ReasonCode.OUT_OF_RANGE,
-                       f"printf('%s = %s is outside the allowed range (-90 to 90); are latitude and longitude swapped?', "
+                       f"printf('%s = %s is outside the allowed range (-90 to 90)', "
                        f"{_sql_text(self._label('lat'))}, cell_txt(lat_txt))"))
         checks.append(("lon_in < -180 OR lon_in > 360", ReasonCode.OUT_OF_RANGE,
                        f"printf('%s = %s is outside the allowed range (-180 to 360)', {_sql_text(self._label('lon'))}, cell_txt(lon_txt))"))
@@ -646,6 +646,10 @@ class PingReader:
         self.progress("tracks", 3, 5)
         self._checks(con)
         con.unregister("cells")
+        # once per file, with a count: positions that would lie inside the domain swapped (not port pings)
+        off = con.execute(f"SELECT lat, lon FROM q WHERE reason IN ('{ReasonCode.OUTSIDE_DOMAIN}', "
+                          f"'{ReasonCode.OUT_OF_RANGE}') AND lat IS NOT NULL AND lon IS NOT NULL").fetchnumpy()
+        self.notes += swapped_position_notes(self.study, [(self.path.name, off["lat"], off["lon"])])
         self.progress("fishing time", 4, 5)
         engine = current_engine()
         if engine.name == "dask":
@@ -689,8 +693,7 @@ class PingReader:
         """Gear, domain, out-of-sequence times and duplicates (tables q, back, dups)."""
         unknown_gear = ("printf('gear ''%s'' is not a known gear code; add a [fishing.gears.\"%s\"] table "
                         "with contact = \"bottom\" or \"pelagic\" to the profile', cell_txt(p.gear_raw), cell_txt(upper(trim(p.gear_raw))))")
-        outside = ("printf('position (%.4f, %.4f) lies outside the study domain; check for swapped "
-                   "latitude/longitude or a sign error', p.lat, p.lon)")
+        outside = "printf('position (%.4f, %.4f) lies outside the study domain', p.lat, p.lon)"
         con.execute(f"""
             CREATE TABLE q AS
             SELECT p.row, vm.vid, p.t, p.lat, p.lon, p.sog, g.gear, g.layer, g.smin, g.smax,

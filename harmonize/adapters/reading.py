@@ -24,6 +24,8 @@ import pandas as pd
 import pandera.errors
 
 from harmonize import units
+from harmonize.adapters.provider_formats import parse_angles, parse_fractions
+from harmonize.config_spec import COORDINATE_FORMATS, FRACTION_FORMATS, is_coordinate, is_fraction
 from harmonize.contract import FieldSpec, pandera_schema
 from harmonize.errors import ConfigError, InputFileError, ReasonCode
 from harmonize.profile import Profile
@@ -421,6 +423,8 @@ class Rejections:
 
     def __init__(self) -> None:
         self._parts: list[pd.DataFrame] = []
+        #: (file name, latitudes, longitudes) of every position read, rejected rows included
+        self.positions: list[tuple[str, np.ndarray, np.ndarray]] = []
 
     def add(
         self,
@@ -497,8 +501,10 @@ class Rejections:
 
 def resolve_columns(
     table: RawTable, specs: Sequence[FieldSpec], profile: Profile
-) -> dict[str, str]:
+) -> dict[str, Any]:
     """Adapter field -> file column for the fields this file provides.
+
+    A date-time field the profile maps to two columns ([date, time]) gives a tuple of both.
 
     A field the profile maps must exist in the file; an unmapped field is looked for under
     its own name (case-insensitive). A required field with neither column nor constant is
@@ -511,17 +517,23 @@ def resolve_columns(
     found: dict[str, str] = {}
     for spec in specs:
         if spec.name in mapping:
-            col = mapping[spec.name]
-            actual = col if col in columns else by_fold.get(col.casefold())
-            if actual is None:
-                close = difflib.get_close_matches(col, columns, n=3)
-                hint = f" (closest: {', '.join(close)})" if close else ""
-                raise InputFileError(
-                    table.path,
-                    f"column '{col}', which {profile.path.name} {section} maps to field "
-                    f"'{spec.name}', is not in the file{hint}; columns are: {', '.join(columns)}",
-                )
-            found[spec.name] = actual
+            wanted = mapping[spec.name]
+            if isinstance(wanted, tuple) and spec.type != "datetime":
+                raise ConfigError(profile.path, f"{section[1:-1]}.{spec.name}",
+                                  "two columns (date, time) can be joined for a date-time field only")
+            actual_cols = []
+            for col in (wanted if isinstance(wanted, tuple) else (wanted,)):
+                actual = col if col in columns else by_fold.get(col.casefold())
+                if actual is None:
+                    close = difflib.get_close_matches(col, columns, n=3)
+                    hint = f" (closest: {', '.join(close)})" if close else ""
+                    raise InputFileError(
+                        table.path,
+                        f"column '{col}', which {profile.path.name} {section} maps to field "
+                        f"'{spec.name}', is not in the file{hint}; columns are: {', '.join(columns)}",
+                    )
+                actual_cols.append(actual)
+            found[spec.name] = actual_cols[0] if len(actual_cols) == 1 else tuple(actual_cols)
         elif spec.name.casefold() in by_fold:
             found[spec.name] = by_fold[spec.name.casefold()]
         elif spec.required and spec.name not in profile.constants:
@@ -558,7 +570,17 @@ def coerce_fields(
         )
     out: dict[str, pd.Series] = {}
     for spec in specs:
-        if spec.name in found:
+        if spec.name in found and isinstance(found[spec.name], tuple):
+            # date and time in two columns: "2021-06-14" + "08:30" -> "2021-06-14 08:30"
+            date_col, time_col = found[spec.name]
+            day = table.frame[date_col].astype("string").str.strip()
+            clock = table.frame[time_col].astype("string").str.strip()
+            day, clock = day.mask(_na_tokens(day)), clock.mask(_na_tokens(clock))
+            text = (day + " " + clock.fillna("")).str.strip()
+            null = day.isna()
+            text = text.mask(null)
+            label = f"{spec.name} (columns '{date_col}' + '{time_col}')"
+        elif spec.name in found:
             col = found[spec.name]
             text = table.frame[col].astype("string").str.strip()
             null = _na_tokens(text)
@@ -574,6 +596,10 @@ def coerce_fields(
         out[spec.name] = _typed(text, null, spec, label, table, profile, rejections)
     frame = pd.DataFrame(out, index=pd.RangeIndex(n))
     _check_constraints(frame, specs, found, table, rejections, schema_name, profile)
+    for spec in specs:  # lat/lon, start_lat/start_lon, end_lat/end_lon
+        if spec.name.endswith("lat") and spec.name[:-3] + "lon" in frame and spec.name in found:
+            rejections.positions.append((table.path.name, frame[spec.name].to_numpy(dtype=float, na_value=np.nan),
+                                         frame[spec.name[:-3] + "lon"].to_numpy(dtype=float, na_value=np.nan)))
     return frame
 
 
@@ -641,12 +667,22 @@ def _typed(
 ) -> pd.Series:
     role = table.role
     if spec.type in ("number", "integer"):
+        fmt = profile.formats.get(spec.name, "decimal")
+        _check_format(spec, fmt, profile)
+        if fmt in ("degrees_minutes", "degrees_minutes_seconds"):
+            values, bad, messages = parse_angles(text, fmt, "lat" if spec.unit == "degree_north" else "lon")
+            if bad.any():
+                rejections.add(role, np.flatnonzero(bad), ReasonCode.BAD_TYPE, [f"{label}: {m}" for m in messages])
+            return values
         values = to_float(text)
+        if _is_fraction(spec):
+            values = parse_fractions(text, values, fmt)
         bad = (~null & values.isna()).to_numpy()
         if bad.any():
+            what = "a number, a fraction such as 1/4 or a percentage such as 25%" if _is_fraction(spec) else "a number"
             rejections.add(
                 role, np.flatnonzero(bad), ReasonCode.BAD_TYPE,
-                [f"{label} holds '{_short(v)}', which is not a number" for v in text[bad]],
+                [f"{label} holds '{_short(v)}', which is not {what}" for v in text[bad]],
             )
         infinite = np.isinf(values.to_numpy())
         if infinite.any():
@@ -688,6 +724,25 @@ def _typed(
             rejections.add(role, np.flatnonzero(future), ReasonCode.BAD_TIME, f"{label} lies in the future")
         return values
     return text.astype("string")
+
+
+def _is_fraction(spec: FieldSpec) -> bool:
+    return is_fraction(spec.type, spec.unit, spec.maximum)
+
+
+def _check_format(spec: FieldSpec, fmt: str, profile: Profile) -> None:
+    """The profile's [formats] entry must suit the field (ConfigError naming the key)."""
+    if fmt == "decimal":
+        return
+    if is_coordinate(spec.unit):
+        allowed = COORDINATE_FORMATS
+    elif _is_fraction(spec):
+        allowed = FRACTION_FORMATS
+    else:
+        allowed = ("decimal",)
+    if fmt not in allowed:
+        raise ConfigError(profile.path, f"formats.{spec.name}",
+                          f"'{fmt}' does not apply to {spec.name}; expected one of {', '.join(allowed)}")
 
 
 def parse_times(text: pd.Series, profile: Profile) -> tuple[pd.Series, np.ndarray, np.ndarray]:
@@ -762,12 +817,11 @@ def _check_constraints(
                 given = profile.units.get(spec.name) or (spec.unit if spec.unit not in (None, "1", "degree_north", "degree_east") else "")
                 unit = f" {given}" if given else ""
                 canon = f" {spec.unit}" if spec.unit not in (None, "1", "degree_north", "degree_east") else ""
-                hint = ""
-                if spec.name.endswith("lat"):
-                    hint = "; are latitude and longitude swapped?"
+                # whether latitude and longitude look swapped is told once per file, with a count,
+                # where the swapped position falls inside the domain (ingest.store_output)
                 rejections.add(
                     table.role, pos, ReasonCode.OUT_OF_RANGE,
-                    [f"{label} = {v}{unit} is outside the allowed range ({spec.range_text()}{canon}){hint}" for v in shown],
+                    [f"{label} = {v}{unit} is outside the allowed range ({spec.range_text()}{canon})" for v in shown],
                 )
 
 

@@ -53,6 +53,51 @@ m_per_rev = 0.26873        # flowmeter rotor constant from its calibration
 status_values = ["clogged", "net clogged"]
 """
 
+# A second provider, a university larval survey on Vossa Bank in summer 2021-2023, sends its
+# files as they come off the ship: positions in degrees and decimal minutes with hemisphere
+# letters, date and time in two columns, split fractions written 1/4. The profile reads them
+# as they are ([formats] and a two-column time).
+BANK_PROFILE = """\
+#:schema ../schemas/profile-plankton.schema.json
+# Vossa Bank larval survey (invented university cruise): the files as the ship writes them.
+[source]
+id = "vossa_larvae"
+kind = "plankton"
+provider_type = "agency"
+protocol = "keldmar_plankton_net"
+timezone = "UTC"
+
+[columns.events]
+event_id = "Station"
+time = ["Date", "Time (UTC)"]   # date and time in two columns
+lat = "Latitude"
+lon = "Longitude"
+depth_min_m = "Top (m)"
+depth_max_m = "Bottom (m)"
+bottom_depth_m = "Sounding (m)"
+mouth_diameter_m = "Ring (cm)"
+flowmeter_revs = "Flowmeter"
+
+[columns.records]
+event_id = "Station"
+taxon = "Species"
+life_stage = "Stage"
+count = "Counted"
+split_fraction = "Split"        # 1/4, 1/2, 1/8 as written on the sorting sheet
+
+[units]
+mouth_diameter_m = "cm"
+
+[constants]
+m_per_rev = 0.26873
+
+[formats]
+lat = "degrees_minutes"          # 43°12.345'N
+lon = "degrees_minutes"          # 151°30.120'W
+"""
+BANK_YEARS = (2021, 2022, 2023)
+BANK_STATIONS = 8
+
 # taxon as written (variants), stage, individuals per m3 at the best depth (spring, autumn), best depth m
 _TAXA = [
     (["Copelix marina", "copelix", "COPELIX MARINA"], "adult", (60.0, 25.0), 30.0),
@@ -82,7 +127,53 @@ def generate(folder: Path, rng: np.random.Generator) -> list[DemoInput]:
     pd.concat(counts, ignore_index=True).to_csv(rc_path, index=False)
     return [DemoInput("profiles/plankton_keldmar.toml",
                       {"events": str(ev_path.relative_to(folder)), "records": str(rc_path.relative_to(folder))},
-                      f"plankton tows {YEARS[0]}-{YEARS[-1]}")]
+                      f"plankton tows {YEARS[0]}-{YEARS[-1]}"),
+            _bank_survey(folder, out, rng)]
+
+
+def _degrees_minutes(value: np.ndarray, positive: str, negative: str) -> list[str]:
+    """Degrees and decimal minutes with a hemisphere letter, as a ship's log writes them."""
+    whole = np.floor(np.abs(value)).astype(int)
+    minutes = (np.abs(value) - whole) * 60
+    return [f"{d}°{m:06.3f}'{positive if v >= 0 else negative}" for d, m, v in zip(whole, minutes, value, strict=True)]
+
+
+def _bank_survey(folder: Path, out: Path, rng: np.random.Generator) -> DemoInput:
+    """The university's summer tows on Vossa Bank, in the provider's own formats."""
+    (folder / "profiles" / "plankton_vossa_larvae.toml").write_text(BANK_PROFILE, encoding="utf-8")
+    lon0, lat0 = random_points_in_domain(rng, BANK_STATIONS, strata=("Vossa Bank",))
+    tows, counts = [], []
+    for year in BANK_YEARS:
+        t, c = _cruise(rng, year, "summer", pd.Timestamp(f"{year}-07-02"), 12, lon0, lat0)
+        t["tow_id"] = [f"VB{year % 100:02d}-{i + 1}" for i in range(len(t))]
+        c["tow_id"] = c["tow_id"].map(dict(zip(_cruise_ids(year, "summer", len(t)), t["tow_id"], strict=True)))
+        tows.append(t)
+        counts.append(c)
+    t = pd.concat(tows, ignore_index=True)
+    c = pd.concat(counts, ignore_index=True)
+    start = pd.to_datetime(t["start_utc"])
+    sheet = pd.DataFrame({
+        "Station": t["tow_id"], "Date": start.dt.strftime("%Y-%m-%d"), "Time (UTC)": start.dt.strftime("%H:%M"),
+        "Latitude": _degrees_minutes(t["lat"].to_numpy(), "N", "S"),
+        "Longitude": _degrees_minutes(t["lon"].to_numpy(), "E", "W"),
+        "Top (m)": t["depth_top_m"], "Bottom (m)": t["depth_bottom_m"], "Sounding (m)": t["water_depth_m"],
+        "Ring (cm)": t["ring_cm"], "Flowmeter": t["flowmeter_revs"],
+    })
+    split = c["split"].map(lambda v: "" if v == "" else f"1/{round(1 / float(v))}")
+    sorting = pd.DataFrame({"Station": c["tow_id"], "Species": c["taxon"], "Stage": c["stage"],
+                            "Counted": c["n_counted"], "Split": split})
+    ev_path, rc_path = out / "vossa_larvae_stations.csv", out / "vossa_larvae_counts.csv"
+    sheet.to_csv(ev_path, index=False)
+    sorting.to_csv(rc_path, index=False)
+    return DemoInput("profiles/plankton_vossa_larvae.toml",
+                     {"events": str(ev_path.relative_to(folder)), "records": str(rc_path.relative_to(folder))},
+                     f"Vossa Bank larval survey {BANK_YEARS[0]}-{BANK_YEARS[-1]} (degree-minute positions, "
+                     "date and time apart, 1/4 splits)")
+
+
+def _cruise_ids(year: int, season: str, n: int) -> list[str]:
+    """The tow ids _cruise gives (``2021SU01`` ...)."""
+    return [f"{year}{season[:2].upper()}{i + 1:02d}" for i in range(n)]
 
 
 def _cruise(rng: np.random.Generator, year: int, season: str, first: pd.Timestamp, days: int,
@@ -105,7 +196,7 @@ def _cruise(rng: np.random.Generator, year: int, season: str, first: pd.Timestam
     ring_cm = rng.choice([50, 60, 60], n)
     area = np.pi * (ring_cm / 100) ** 2 / 4
     volume = revs * ROTOR_M_PER_REV * area
-    ids = [f"{year}{season[:2].upper()}{i + 1:02d}" for i in range(n)]
+    ids = _cruise_ids(year, season, n)
     tows = pd.DataFrame({
         "tow_id": ids, "start_utc": start.strftime("%Y-%m-%dT%H:%M"),
         "end_utc": (start + pd.to_timedelta(minutes, unit="min")).strftime("%Y-%m-%dT%H:%M"),

@@ -1,0 +1,445 @@
+"""Every table and key of study.toml and of the profiles: one definition, two uses.
+
+The definition below is what ``load_study`` and ``load_profile`` check first (an unknown
+section or key is a ``ConfigError`` naming the closest valid name), and what the JSON Schemas
+shipped in ``harmonize/schemas/config/`` are generated from (``python -m harmonize.config_spec``
+rewrites them; a test checks they are current). Editors with TOML schema support read the
+``#:schema`` line that ``harmonize init`` writes at the top of each file.
+
+This module is light: it imports neither pandas nor the adapters.
+"""
+
+from __future__ import annotations
+
+import difflib
+import json
+from collections.abc import Mapping, Sequence
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+from harmonize.errors import ConfigError
+
+SCHEMA_DIALECT = "https://json-schema.org/draft/2020-12/schema"
+SCHEMA_FOLDER = "config"  # inside the harmonize.schemas package
+KINDS = ("trawl", "plankton", "transect", "opportunistic", "gridded", "effort")
+PROVIDER_TYPES = ("agency", "volunteer", "industry", "model", "remote_sensing")
+
+#: How a provider writes a coordinate field ([formats] in a profile).
+COORDINATE_FORMATS = ("decimal", "degrees_minutes", "degrees_minutes_seconds")
+#: How a provider writes a fraction field such as split_fraction ([formats] in a profile).
+FRACTION_FORMATS = ("decimal", "percent")
+#: Kinds whose files are read by harmonize.adapters.reading.coerce_fields, which applies [formats]
+FORMATS_KINDS = ("trawl", "plankton", "transect", "opportunistic")
+#: Kinds that take a date-time field from two columns ([date column, time column])
+JOINED_KINDS = ("trawl", "plankton", "transect")
+
+
+def is_coordinate(unit: str | None) -> bool:
+    """A latitude or longitude field (its Table Schema unit)."""
+    return unit in ("degree_north", "degree_east")
+
+
+def is_fraction(type_: str, unit: str | None, maximum: float | None) -> bool:
+    """A share of something (split_fraction): a number of unit 1, at most 1."""
+    return type_ == "number" and unit == "1" and maximum == 1
+
+
+@dataclass(frozen=True)
+class FieldInfo:
+    """What the schemas need to know of an adapter field."""
+
+    name: str
+    description: str = ""
+    type: str = "string"
+    unit: str | None = None
+    maximum: float | None = None
+
+
+# ----------------------------------------------------------------------------- the vocabulary
+@dataclass(frozen=True)
+class Value:
+    """A leaf value: TOML string, number, integer, boolean, array or any."""
+
+    type: str
+    description: str = ""
+    enum: tuple[Any, ...] | None = None
+    items: str | None = None  # item type of an array
+    minimum: float | None = None
+    exclusive_minimum: float | None = None
+    maximum: float | None = None
+    default: Any = None
+    any_of: tuple[Value | Table, ...] = ()
+
+    def json_schema(self) -> dict[str, Any]:
+        if self.any_of:
+            out: dict[str, Any] = {"anyOf": [v.json_schema() for v in self.any_of]}
+        elif self.type == "any":
+            out = {}
+        else:
+            out = {"type": self.type}
+        if self.items:
+            out["items"] = {"type": self.items}
+        for key, value in (("enum", list(self.enum) if self.enum else None), ("minimum", self.minimum),
+                           ("exclusiveMinimum", self.exclusive_minimum), ("maximum", self.maximum),
+                           ("default", self.default)):
+            if value is not None:
+                out[key] = value
+        if self.description:
+            out["description"] = self.description
+        return out
+
+
+@dataclass(frozen=True)
+class Table:
+    """A TOML table whose keys are all known (an unknown key is an error)."""
+
+    keys: Mapping[str, Value | Table | Map | TableArray]
+    description: str = ""
+    required: tuple[str, ...] = ()
+
+    def json_schema(self) -> dict[str, Any]:
+        out: dict[str, Any] = {"type": "object",
+                               "properties": {k: v.json_schema() for k, v in self.keys.items()},
+                               "additionalProperties": False}
+        if self.required:
+            out["required"] = list(self.required)
+        if self.description:
+            out["description"] = self.description
+        return out
+
+
+@dataclass(frozen=True)
+class Map:
+    """A TOML table with keys the user chooses (season names, field names, gear codes)."""
+
+    value: Value | Table
+    description: str = ""
+    key_description: str = ""
+
+    def json_schema(self) -> dict[str, Any]:
+        out: dict[str, Any] = {"type": "object", "additionalProperties": self.value.json_schema()}
+        if self.description:
+            out["description"] = self.description
+        return out
+
+
+@dataclass(frozen=True)
+class TableArray:
+    """An array of tables ([[name]])."""
+
+    item: Table
+    description: str = ""
+
+    def json_schema(self) -> dict[str, Any]:
+        out: dict[str, Any] = {"type": "array", "items": self.item.json_schema(), "minItems": 1}
+        if self.description:
+            out["description"] = self.description
+        return out
+
+
+def _num(description: str, **kw: Any) -> Value:
+    return Value("number", description, **kw)
+
+
+def _text(description: str, **kw: Any) -> Value:
+    return Value("string", description, **kw)
+
+
+# ----------------------------------------------------------------------------- study.toml
+STUDY = Table({
+    "study": Table({
+        "name": _text("Name of the study."),
+        "crs": _text("Projected equal-area CRS in metres for the grid cells, e.g. EPSG:6933."),
+        "cell_size_km": _num("Side of a square grid cell (km).", exclusive_minimum=0),
+        "domain": _text("GeoJSON polygon(s), lon/lat WGS84; records outside go to quarantine."),
+        "strata": _text("Optional GeoJSON polygons, each with a property \"stratum\"."),
+    }, "Space: name, CRS, grid and domain.", required=("name", "crs", "cell_size_km", "domain")),
+    "seasons": Map(Value("array", "Months (1..12) of the season; every month exactly once.", items="integer"),
+                   "Season name = list of months; default: DJF, MAM, JJA, SON."),
+    "depth_layers": TableArray(Table({
+        "name": _text("Layer name (not near_bottom or integrated)."),
+        "top_m": _num("Top of the layer, metres below the surface.", minimum=0),
+        "bottom_m": _num("Bottom of the layer, metres below the surface.", exclusive_minimum=0),
+    }, required=("name", "top_m", "bottom_m")), "Depth layers, contiguous from 0 m."),
+    "depth": Table({
+        "near_bottom_m": _num("A sample within this distance above the bottom is tagged near_bottom.",
+                              exclusive_minimum=0, default=10),
+    }, "Depth tagging."),
+    "taxa": Table({
+        "list": _text("CSV of taxa: taxon, group, aliases (|-separated), sensitive."),
+        "targets": _text("CSV of zero-filling targets: protocol, taxon, first_year, last_year, life_stage."),
+    }, "Taxa and zero-filling targets.", required=("list",)),
+    "audit": Table({
+        "min_events": _num("Fewer events in a cell of the audit -> thin_samples.", exclusive_minimum=0, default=5),
+        "coverage_drop": _num("Coverage below this share of the median of earlier years -> coverage_drop.",
+                              exclusive_minimum=0, default=0.5),
+        "min_encounters": _num("Fewer non-zero records of a taxon in a season x layer -> few_encounters.",
+                               exclusive_minimum=0, default=10),
+        "tolerance": Map(_num("Tolerance in the variable's canonical unit.", exclusive_minimum=0),
+                         "Per physical variable: how far two sources may disagree (source_disagreement)."),
+    }, "Thresholds of the coverage audit."),
+    "confidentiality": Table({
+        "min_vessels": _num("Fishing-effort cells with fewer vessels are suppressed in outputs.",
+                            exclusive_minimum=0, default=3),
+    }, "Disclosure rules."),
+}, "study.toml: one study, many sources.", required=("study", "depth_layers", "taxa"))
+
+
+# ----------------------------------------------------------------------------- profiles
+SOURCE = Table({
+    "id": _text("Source id, unique in the study."),
+    "kind": _text("Source kind (adapter).", enum=KINDS),
+    "provider_type": _text("Who provides the data.", enum=PROVIDER_TYPES),
+    "protocol": _text("Key into targets.csv (zero-filling)."),
+    "timezone": _text("IANA zone of times written without an offset.", default="UTC"),
+    "encoding": _text("Text encoding of the files.", default="utf-8"),
+    "delimiter": _text("Field delimiter (guessed when absent)."),
+    "dayfirst": Value("boolean", "Dates such as 03/04/2021 are day first.", default=False),
+    "time_format": _text("strftime format of the times (ISO 8601 when absent)."),
+    "description": _text("Free text about the source."),
+}, "Who the provider is and how its files are written.", required=("id", "kind", "provider_type"))
+
+#: A provider column name, or [date column, time column] for a date-time field.
+COLUMN = Value("string", any_of=(
+    _text("The provider's column name."),
+    Value("array", "Date column and time column, joined with a space (date-time fields only).",
+          items="string"),
+))
+
+_COMMON_SECTIONS = ("source", "columns", "units", "constants", "formats")
+
+#: Kind-specific sections (see docs/sources/<kind>.md).
+KIND_SECTIONS: dict[str, dict[str, Table | Map]] = {
+    "trawl": {},
+    "plankton": {
+        "tow": Table({"max_speed_m_s": _num("Faster distance through the water -> implausible_speed.",
+                                            exclusive_minimum=0, default=3.0)}, "Tow plausibility."),
+        "clogging": Table({
+            "status_values": Value("array", "net_status notes that mean a clogged net.", items="string"),
+            "min_efficiency": _num("Lowest filtration efficiency (net / reference flowmeter distance).",
+                                   exclusive_minimum=0, maximum=1),
+        }, "Clogged-net rules."),
+    },
+    "transect": {
+        "strip": Table({
+            "flying": _text("How flying birds were counted.", enum=("snapshot", "continuous"), default="snapshot"),
+            "max_speed_kn": _num("Faster segments -> implausible_speed.", exclusive_minimum=0, default=30),
+        }, "Strip-transect rules."),
+    },
+    "opportunistic": {
+        "presence": Table({"tokens": Value("array", "Words in the count column meaning 'present, not counted' "
+                                                    "(default [\"present\"]; compared without case).",
+                                           items="string")},
+                          "Markers for a record noted but not counted."),
+        "plausibility": Table({"earliest": _text("Records before this date are bad_time.")},
+                              "Plausibility of volunteer records."),
+        "duplicates": Table({
+            "distance_km": _num("Twin window in space (km).", exclusive_minimum=0, default=2.0),
+            "minutes": _num("Twin window in time (minutes).", exclusive_minimum=0, default=60),
+            "rank": Value("integer", "Rank of this source among twins (0 = kept first).", minimum=0),
+        }, "Cross-source duplicates."),
+    },
+    "gridded": {
+        "variables": Map(Value("string", any_of=(
+            _text("CF standard name of the variable."),
+            Table({"name": _text("CF standard name."),
+                   "unit": _text("Unit, checked against the file's units attribute."),
+                   "force_unit": _text("Unit that replaces the file's units attribute.")}),
+        )), "File variable = CF standard name."),
+        "aggregate": Table({
+            "period": _text("Aggregation period.", enum=("month", "season"), default="month"),
+            "layer": _text("Layer mode of 3-D fields.", enum=("surface", "near_bottom", "by_layer"),
+                           default="surface"),
+            "chunk_mb": _num("Block size read at a time (MB).", exclusive_minimum=0),
+        }, "How grid values are aggregated."),
+    },
+    "effort": {
+        "fishing": Table({
+            "form": _text("Pings or logbook (guessed from the columns when absent).", enum=("pings", "logbook")),
+            "speed_min_kn": _num("Lower end of the fishing speed window (knots).", exclusive_minimum=0, default=2.0),
+            "speed_max_kn": _num("Upper end of the fishing speed window (knots).", exclusive_minimum=0, default=5.0),
+            "max_gap_h": _num("Each half-interval a ping gets is capped at max_gap_h / 2.", exclusive_minimum=0,
+                              default=2.0),
+            "max_speed_kn": _num("Faster pings -> implausible_speed.", exclusive_minimum=0),
+            "pelagic_layer": _text("Depth layer of pelagic gears."),
+            "quarantine_rows": Value("integer", "How many rejected pings are kept row by row.", minimum=0),
+            "memory_limit": _text("DuckDB working memory of the ping ingest, e.g. 2GB."),
+            "gears": Map(Table({
+                "speed_min_kn": _num("Lower end of this gear's speed window (knots).", exclusive_minimum=0),
+                "speed_max_kn": _num("Upper end of this gear's speed window (knots).", exclusive_minimum=0),
+                "contact": _text("Where the gear fishes.", enum=("bottom", "pelagic")),
+                "layer": _text("Depth layer of this gear."),
+            }), "Per-gear overrides: [fishing.gears.CODE]."),
+        }, "Fishing-effort rules."),
+    },
+}
+
+
+def section_keys(kind: str, section: str) -> frozenset[str]:
+    """The keys of a closed kind-specific section (for adapters that check their own sections)."""
+    spec = KIND_SECTIONS[kind][section]
+    return frozenset(spec.keys) if isinstance(spec, Table) else frozenset()
+
+
+def profile_spec(kind: str, table_fields: Mapping[str, Sequence[FieldInfo]] | None = None) -> Table:
+    """The profile definition of one kind.
+
+    ``table_fields`` (role -> fields) names the adapter's fields; without it [columns], [units],
+    [constants] and [formats] accept any field name (the loaders check them against the adapter).
+    """
+    fields: dict[str, FieldInfo] = {}
+    for specs in (table_fields or {}).values():
+        for info in specs:
+            fields.setdefault(info.name, info)
+    any_format = _text("How the provider writes the field.",
+                       enum=tuple(dict.fromkeys(COORDINATE_FORMATS + FRACTION_FORMATS)))
+
+    def column(info: FieldInfo) -> Value:
+        if info.type == "datetime" and kind in JOINED_KINDS:
+            return Value(COLUMN.type, info.description, any_of=COLUMN.any_of)
+        return _text(info.description)
+
+    def per_field(value: Value, description: str) -> Table | Map:
+        if not fields:
+            return Map(value, description)
+        return Table({n: Value(value.type, f.description, enum=value.enum, items=value.items, any_of=value.any_of)
+                      for n, f in sorted(fields.items())}, description)
+
+    if table_fields and set(table_fields) != {"rows"}:
+        columns: Table | Map = Table({
+            role: Table({f.name: column(f) for f in specs}, f"The {role} table: adapter field = provider column.")
+            for role, specs in table_fields.items()
+        }, "Adapter field = provider column name, per table.")
+    elif fields:
+        columns = Table({n: column(f) for n, f in sorted(fields.items())}, "Adapter field = provider column name.")
+    else:
+        columns = Map(COLUMN, "Adapter field = provider column name.")
+    sections: dict[str, Value | Table | Map | TableArray] = {
+        "source": SOURCE,
+        "columns": columns,
+        "units": per_field(_text("Provider unit of the field."), "Provider unit of a field, when not the default."),
+        "constants": per_field(Value("any", "Value of the field for every row."),
+                               "A field's value for every row, when the files lack it."),
+    }
+    # the loader (no fields given) lets [formats] through for every kind: profile.py then says
+    # which kinds read it, a clearer message than "unknown section"
+    if kind in FORMATS_KINDS or not fields:
+        description = "How the provider writes a field: coordinates in degrees and minutes, fractions in percent."
+        if fields:
+            formats: Table | Map = Table({
+                n: _text(f.description, enum=COORDINATE_FORMATS if is_coordinate(f.unit) else FRACTION_FORMATS)
+                for n, f in sorted(fields.items())
+                if is_coordinate(f.unit) or is_fraction(f.type, f.unit, f.maximum)}, description)
+        else:
+            formats = Map(any_format, description)
+        sections["formats"] = formats
+    sections.update(KIND_SECTIONS[kind])
+    return Table(sections, f"A {kind} profile: how one provider's files map onto the {kind} adapter.",
+                 required=("source",))
+
+
+# ----------------------------------------------------------------------------- checking
+def check_known(path: Path | str, raw: Mapping[str, Any], spec: Table, where: tuple[str, ...] = ()) -> None:
+    """Raise ConfigError for the first unknown section or key of ``raw`` under ``spec``.
+
+    The message names the file, the key, the closest valid name and the valid ones. Types and
+    values are left to the loaders, which know what each key means.
+    """
+    _walk(path, raw, spec, where)
+
+
+def _walk(path: Path | str, raw: Any, spec: Value | Table | Map | TableArray, where: tuple[str, ...]) -> None:
+    if isinstance(spec, Table) and isinstance(raw, Mapping):
+        for key, value in raw.items():
+            if key not in spec.keys:
+                _unknown(path, where, str(key), list(spec.keys), value)
+            _walk(path, value, spec.keys[key], (*where, str(key)))
+    elif isinstance(spec, Map) and isinstance(raw, Mapping):
+        for key, value in raw.items():
+            _walk(path, value, spec.value, (*where, str(key)))
+    elif isinstance(spec, TableArray) and isinstance(raw, list):
+        for i, item in enumerate(raw, start=1):
+            _walk(path, item, spec.item, (*where[:-1], f"{where[-1]}[{i}]") if where else (f"[{i}]",))
+    elif isinstance(spec, Value) and spec.any_of and isinstance(raw, Mapping):
+        for option in spec.any_of:
+            if isinstance(option, Table):
+                _walk(path, raw, option, where)
+
+
+def _unknown(path: Path | str, where: tuple[str, ...], key: str, valid: list[str], value: Any) -> None:
+    is_section = isinstance(value, Mapping) or (isinstance(value, list) and value and isinstance(value[0], Mapping))
+    dotted = ".".join((*where, key))
+    what = f"unknown section [{dotted}]" if is_section else "unknown key"
+    close = difflib.get_close_matches(key, valid, n=1, cutoff=0.5)
+    hint = f"; did you mean '{close[0]}'?" if close else "."
+    place = f"in [{'.'.join(where)}]" if where else "at the top level"
+    raise ConfigError(path, dotted, f"{what}{hint} Valid names {place}: {', '.join(valid)}")
+
+
+# ----------------------------------------------------------------------------- JSON Schema
+def study_json_schema() -> dict[str, Any]:
+    """JSON Schema of study.toml."""
+    out = {"$schema": SCHEMA_DIALECT, "$id": "harmonize:study.schema.json", "title": "harmonize study.toml"}
+    out.update(STUDY.json_schema())
+    return out
+
+
+def profile_json_schema(kind: str, table_fields: Mapping[str, Sequence[FieldInfo]] | None) -> dict[str, Any]:
+    """JSON Schema of a profile of ``kind`` (the adapter's fields listed when given)."""
+    out = {"$schema": SCHEMA_DIALECT, "$id": f"harmonize:profile-{kind}.schema.json",
+           "title": f"harmonize {kind} profile"}
+    out.update(profile_spec(kind, table_fields).json_schema())
+    return out
+
+
+def schema_file_name(kind: str | None) -> str:
+    """File name of the schema of study.toml (kind None) or of a kind's profile."""
+    return "study.schema.json" if kind is None else f"profile-{kind}.schema.json"
+
+
+def adapter_fields(kind: str) -> dict[str, list[FieldInfo]]:
+    """Role -> fields of the kind's adapter (imports the adapters)."""
+    from harmonize.adapters.registry import get_adapter
+    from harmonize.contract import fields
+
+    adapter = get_adapter(kind)
+    forms = getattr(adapter, "forms", None)
+    tables = {"rows": list(forms.values())} if forms else {role: [schema] for role, schema in adapter.tables.items()}
+    out: dict[str, list[FieldInfo]] = {}
+    for role, schemas in tables.items():
+        seen: dict[str, FieldInfo] = {}
+        for schema in schemas:
+            for spec in fields(schema):
+                seen.setdefault(spec.name, FieldInfo(spec.name, spec.description, spec.type, spec.unit, spec.maximum))
+        out[role] = list(seen.values())
+    return out
+
+
+def generated_schemas() -> dict[str, str]:
+    """File name -> JSON text of every configuration schema (study.toml and each kind's profile)."""
+    docs = {schema_file_name(None): study_json_schema()}
+    for kind in KINDS:
+        docs[schema_file_name(kind)] = profile_json_schema(kind, adapter_fields(kind))
+    return {name: json.dumps(doc, indent=1, ensure_ascii=False) + "\n" for name, doc in docs.items()}
+
+
+def shipped_schema(name: str) -> str:
+    """Text of a shipped configuration schema."""
+    from importlib import resources
+
+    return resources.files("harmonize.schemas").joinpath(SCHEMA_FOLDER, name).read_text(encoding="utf-8")
+
+
+def _write_shipped() -> None:  # pragma: no cover - a maintainer's tool
+    from importlib import resources
+
+    folder = Path(str(resources.files("harmonize.schemas"))) / SCHEMA_FOLDER
+    folder.mkdir(exist_ok=True)
+    for name, text in generated_schemas().items():
+        (folder / name).write_text(text, encoding="utf-8")
+        print(folder / name)  # noqa: T201 - maintainer's tool, not the library
+
+
+if __name__ == "__main__":  # pragma: no cover
+    _write_shipped()

@@ -132,7 +132,7 @@ PRESENCE_CASES = [
     ('[presence]\ntokens = []\n', "presence.tokens.*list of non-empty words"),
     ('[presence]\ntokens = ["noted", " "]\n', "presence.tokens.*list of non-empty words"),
     ('[presence]\ntokens = ["0"]\n', "presence.tokens.*'0' is a number"),
-    ('[presence]\ntoken = ["noted"]\n', "presence.token.*unknown key; expected 'tokens'"),
+    ('[presence]\ntoken = ["noted"]\n', "presence.token.*did you mean 'tokens'"),
 ]
 
 

@@ -18,6 +18,7 @@ import shapely
 from shapely.geometry import shape
 
 from harmonize.errors import ConfigError
+from harmonize.taxonomy import HIERARCHY_COLUMNS, validate_hierarchy
 
 STUDY_FILE = "study.toml"
 RESERVED_LAYERS = ("near_bottom", "integrated")
@@ -400,6 +401,7 @@ def _read_taxa(path: Path) -> pd.DataFrame:
             path, "taxa.list", f"sensitive must be true or false, got '{df['sensitive'][bad].iloc[0]}'"
         )
     df["sensitive"] = sensitive.isin(["true", "yes", "1"])
+    df = validate_hierarchy(df, path)
     # Every name and alias must point to one taxon only.
     keys = _taxon_keys(df)
     clash = keys[keys["key"].duplicated(keep=False)].drop_duplicates(["key", "taxon"])
@@ -408,7 +410,7 @@ def _read_taxa(path: Path) -> pd.DataFrame:
         k = clash.iloc[0]["key"]
         owners = sorted(clash[clash["key"] == k]["taxon"])
         raise ConfigError(path, "taxa.list", f"name '{k}' is given to more than one taxon: {owners}")
-    return df[["taxon", "group", "aliases", "sensitive"]].reset_index(drop=True)
+    return df[["taxon", "group", "aliases", "sensitive", *HIERARCHY_COLUMNS]].reset_index(drop=True)
 
 
 def _taxon_keys(taxa: pd.DataFrame) -> pd.DataFrame:

@@ -33,6 +33,13 @@ def export_cmd(
     by_life_stage: bool = typer.Option(False, "--by-life-stage", help="wide: one column per taxon and life stage."),
     generalise_deg: float = typer.Option(0.1, "--generalise-deg",
                                          help="dwca: rounding (degrees) of events with a sensitive taxon."),
+    taxon_level: str | None = typer.Option(
+        None, "--taxon-level", metavar="RANK",
+        help="long/wide/dwca: roll taxa up to their ancestor of this rank (taxa.csv rank/parent)."),
+    consistent_taxa: bool = typer.Option(
+        False, "--consistent-taxa",
+        help="long/wide/dwca: roll each taxon up to the finest level recorded the same way in every selected "
+             "year and source."),
     memory_limit: str | None = typer.Option(
         None, "--memory-limit",
         help="wide: DuckDB working memory, e.g. 4GB (default: HARMONIZE_EXPORT_MEMORY_LIMIT, else 2GB)."),
@@ -42,7 +49,8 @@ def export_cmd(
         console.print(f"unknown export format {fmt!r}; choose from {', '.join(EXPORTERS)}", markup=False)
         raise typer.Exit(2)
     study = study_from(ctx)
-    filters = ExportFilters.build(",".join(kind) if kind else None, years, seasons, layers, variables, sources)
+    filters = ExportFilters.build(",".join(kind) if kind else None, years, seasons, layers, variables, sources,
+                                  taxon_level=taxon_level, consistent_taxa=consistent_taxa)
     options: dict[str, object] = {}
     if fmt == "wide":
         options = {"quantity": quantity, "by_life_stage": by_life_stage, "memory_limit": memory_limit}
@@ -55,6 +63,13 @@ def export_cmd(
     suppressed = result.metadata["confidentiality"]["rows_suppressed"]
     if suppressed:
         console.print(f"{fmt_int(suppressed)} fishing values suppressed (fewer than {study.min_vessels} vessels)")
+    rollup = result.metadata["counts"].get("taxon_rollup") or {}
+    if rollup:
+        rolled = rollup.get("rolled_into", {})
+        console.print(f"taxa rolled up: {len(rolled)} into {len(set(rolled.values()))} "
+                      f"({', '.join(sorted(set(rolled.values()))) or 'none'}); "
+                      f"{fmt_int(rollup.get('values_left_out_incomplete', 0))} values left out because not every "
+                      "member was recorded at the event", markup=False)
     for note in result.notes:
         console.print(f"note: {note}", markup=False)
     console.print(CAUTION, markup=False)

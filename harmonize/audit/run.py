@@ -12,8 +12,16 @@ import numpy as np
 import pandas as pd
 
 from harmonize import __version__
-from harmonize.audit.findings import CODES, SEVERITIES, Finding, all_findings, tolerances
+from harmonize.audit.findings import (
+    CODES,
+    SEVERITIES,
+    Finding,
+    all_findings,
+    sort_findings,
+    tolerances,
+)
 from harmonize.audit.metrics import Metrics, compute
+from harmonize.audit.readiness import ModelReadiness, model_readiness, readiness_findings
 from harmonize.contract import CONTRACT_VERSION
 from harmonize.engines import EngineChoice, check_engine, current_engine
 from harmonize.errors import HarmonizeError
@@ -52,6 +60,7 @@ class AuditResult:
     findings: list[Finding]
     domain_cells: pd.DataFrame
     settings: dict[str, Any] = field(default_factory=dict)
+    readiness: ModelReadiness | None = None
 
     @property
     def extent(self) -> pd.DataFrame:
@@ -101,6 +110,7 @@ class AuditResult:
             "settings": self.settings,
             "confidentiality": self.suppression(),
             "source_comparisons": _records(self.metrics.comparisons, list(self.metrics.comparisons.columns)),
+            "model_readiness": self.readiness.to_json_dict() if self.readiness is not None else None,
             "caution": CAUTION,
             "tool_version": __version__,
             "contract_version": CONTRACT_VERSION,
@@ -189,6 +199,7 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
                                     scheduler or choice.scheduler)
         else:
             metrics = compute(con, cells, study.min_vessels, year)
+        readiness = model_readiness(con, study, year)
     settings = {
         "min_events": study.audit.min_events, "coverage_drop": study.audit.coverage_drop,
         "min_encounters": study.audit.min_encounters, "min_vessels": study.min_vessels,
@@ -202,9 +213,10 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
         generated_at=pd.Timestamp.now("UTC").isoformat(timespec="seconds"),
         year=year,
         metrics=metrics,
-        findings=all_findings(metrics, study, year),
+        findings=sort_findings(all_findings(metrics, study, year) + readiness_findings(readiness)),
         domain_cells=cells,
         settings=settings,
+        readiness=readiness,
     )
 
 

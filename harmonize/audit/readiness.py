@@ -38,6 +38,7 @@ import pandas as pd
 
 from harmonize.audit.findings import Finding
 from harmonize.audit.metrics import ALL_BIOLOGICAL
+from harmonize.errors import HarmonizeError
 from harmonize.study import Study
 from harmonize.taxonomy import (
     RANKS,
@@ -152,7 +153,10 @@ def readiness_table(con: duckdb.DuckDBPyConnection, targets: Mapping[str, str], 
 
 
 def sparse_taxa(table: pd.DataFrame, min_encounters: int, hierarchy: Hierarchy) -> pd.DataFrame:
-    """Taxa below ``min_encounters`` in every source kind x season x layer, with what to do."""
+    """Taxa below ``min_encounters`` in every source kind x season x layer, with what to do.
+
+    One row per taxon, describing its best cell (most encounters and presence-only records).
+    """
     cols = ["taxon", "encounters", "best_source_kind", "best_season", "best_depth_layer", "samples",
             "presence_only_records", "parent", "advice"]
     if table.empty:
@@ -161,7 +165,6 @@ def sparse_taxa(table: pd.DataFrame, min_encounters: int, hierarchy: Hierarchy) 
     best = present.sort_values(["taxon", "present", "samples"], ascending=[True, False, False]) \
         .drop_duplicates("taxon")
     best = best[best["present"] < int(min_encounters)]
-    presence = table.groupby("taxon")["presence_only_records"].sum()
     parent_of = {n: hierarchy.names[p] for n, p in zip(hierarchy.names, hierarchy.parent, strict=True) if p >= 0}
     rows = []
     for r in best.itertuples(index=False):
@@ -170,7 +173,7 @@ def sparse_taxa(table: pd.DataFrame, min_encounters: int, hierarchy: Hierarchy) 
             "merge it with related taxa (give it a parent in taxa.csv) or drop it"
         rows.append({"taxon": r.taxon, "encounters": int(r.encounters), "best_source_kind": r.source_kind,
                      "best_season": r.season, "best_depth_layer": r.depth_layer, "samples": int(r.samples),
-                     "presence_only_records": int(presence.get(r.taxon, 0)), "parent": parent,
+                     "presence_only_records": int(r.presence_only_records), "parent": parent,
                      "advice": f"{SPARSE_ADVICE}; {how}"})
     return pd.DataFrame(rows, columns=cols)
 
@@ -193,7 +196,7 @@ def model_readiness(con: duckdb.DuckDBPyConnection, study: Study, max_year: int 
         Count taxa at the finest level recorded the same way in every year and source.
     """
     if taxon_level is not None and taxon_level.strip().casefold() not in RANKS:
-        raise ValueError(f"taxon level {taxon_level!r} is not a rank; choose from {', '.join(RANKS)}")
+        raise HarmonizeError(f"taxon level {taxon_level!r} is not a rank; choose from {', '.join(RANKS)}")
     hierarchy = Hierarchy.from_taxa(study.taxa)
     recorded = recorded_groups(con, max_year)
     changes = resolution_changes(recorded, hierarchy)
@@ -240,15 +243,14 @@ def readiness_findings(readiness: ModelReadiness) -> list[Finding]:
         ))
     need = readiness.min_encounters
     for r in readiness.too_sparse.itertuples(index=False):
-        where = (f"{r.best_source_kind} samples in {r.best_season}, {r.best_depth_layer or 'no depth layer'}"
-                 if r.encounters else "any source kind, season or layer")
-        pres = f" (and {r.presence_only_records} presence-only records)" if r.presence_only_records else ""
+        pres = f" and {r.presence_only_records} presence-only records" if r.presence_only_records else ""
         out.append(Finding(
             "few_encounters", "warning",
-            f"{r.taxon} is encountered at most {r.encounters} times in {where}{pres}, all years together; "
-            f"the study asks for at least {need} per source kind x season x layer, so it is {r.advice}. "
-            "See the model readiness table.",
-            source_kind=r.best_source_kind if r.encounters else ALL_BIOLOGICAL,
+            f"{r.taxon} has at most {r.encounters} encounters in {r.samples} samples{pres} in any one source "
+            f"kind x season x layer (best: {r.best_source_kind} in {r.best_season}, "
+            f"{r.best_depth_layer or 'no depth layer'}), all years together; the study asks for at least {need}, "
+            f"so it is {r.advice}. See the model readiness table.",
+            source_kind=str(r.best_source_kind),
             season=None if pd.isna(r.best_season) else str(r.best_season),
             depth_layer=None if pd.isna(r.best_depth_layer) else str(r.best_depth_layer), variable=str(r.taxon),
             details={"encounters": int(r.encounters), "min_encounters": need, "samples": int(r.samples),
@@ -276,7 +278,8 @@ def readiness_html(readiness: ModelReadiness | None) -> str:
     sparse = readiness.too_sparse
     if len(sparse):
         items = "".join(f"<li><b>{_e(r.taxon)}</b>: at most {r.encounters} encounters"
-                        f"{' (' + _e(r.best_source_kind) + ', ' + _e(r.best_season) + ', ' + _e(r.best_depth_layer) + ')' if r.encounters else ''}"
+                        f"{f' and {r.presence_only_records} presence-only records' if r.presence_only_records else ''}"
+                        f" ({_e(r.best_source_kind)}, {_e(r.best_season)}, {_e(r.best_depth_layer)})"
                         f" — {_e(r.advice)}</li>" for r in sparse.itertuples(index=False))
         parts.append(f"<h3>Too sparse to model alone: merge, roll up or drop ({len(sparse)})</h3><ul>{items}</ul>")
     else:

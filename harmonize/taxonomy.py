@@ -8,7 +8,9 @@ them is a flat list, as before.
 Rules checked when the study is read (one-line :class:`~harmonize.errors.ConfigError` each):
 a parent exists in taxa.csv, no taxon is its own ancestor (no cycles), ranks descend (a
 taxon's rank is below the rank of its nearest ranked ancestor), a taxon_id names one taxon
-only, and a kingdom agrees with the kingdom of the ancestors.
+only, and a kingdom agrees with the kingdom of the ancestors. A taxon with a sensitive
+descendant is marked sensitive too, so that a roll-up never moves a sensitive taxon's
+records out of the sensitive-taxon rules.
 
 This module is the one place that knows the hierarchy. Everything that rolls taxa up
 (exports, the audit's ``resolution_change`` finding and model-readiness table) asks it for
@@ -92,7 +94,20 @@ def validate_hierarchy(df: pd.DataFrame, path: str | Path) -> pd.DataFrame:
         raise ConfigError(path, _KEY, f"taxon_id '{dup.iloc[0]}' is given to more than one taxon: {owners}; "
                                       "an identifier names one taxon")
     df["kingdom"] = _inherit_kingdom(parent_pos, df["kingdom"].to_numpy(dtype=object), names, path)
+    if "sensitive" in df and df["sensitive"].dtype == bool:
+        df["sensitive"] = _sensitive_upwards(parent_pos, df["sensitive"].to_numpy())
     return df
+
+
+def _sensitive_upwards(parent: np.ndarray, sensitive: np.ndarray) -> np.ndarray:
+    """A taxon with a sensitive descendant is sensitive too: its records (its own, or rolled
+    up from that descendant) may locate the sensitive taxon."""
+    out = sensitive.astype(bool).copy()
+    cur = np.where(out, parent, -1)
+    while (cur >= 0).any():
+        out[cur[cur >= 0]] = True
+        cur = np.where(cur >= 0, parent[np.maximum(cur, 0)], -1)
+    return out
 
 
 def _rank_positions(ranks: pd.Series) -> np.ndarray:

@@ -136,3 +136,10 @@ def test_coarsest_of_two_targets(study_dir: Path) -> None:
     h = Hierarchy.from_taxa(_taxa(study_dir))
     out = coarsest_targets(h, {"Keldora alba": "Keldora"}, {"Keldora alba": "Keldidae", "Keldora": "Keldidae"})
     assert out == {"Keldora alba": "Keldidae", "Keldora": "Keldidae"}
+
+
+def test_ancestors_of_a_sensitive_taxon_are_sensitive(study_dir: Path) -> None:
+    _write(study_dir, HIERARCHY_CSV.replace("Keldora nigra,fish,,false", "Keldora nigra,fish,,true"))
+    taxa = load_study(study_dir).taxa.set_index("taxon")["sensitive"]
+    # the species, its genus, family and kingdom; not its sister species nor an unrelated taxon
+    assert taxa[taxa].index.tolist() == ["Animalia keldica", "Keldidae", "Keldora", "Keldora nigra"]

@@ -227,7 +227,7 @@ def readiness_findings(readiness: ModelReadiness) -> list[Finding]:
     for r in readiness.resolution_changes.itertuples(index=False):
         kinds = list(r.source_kinds)
         finer = ", ".join(r.finer)
-        rank = f" (--taxon-level {r.rank})" if r.rank else ""
+        rank = f", or --taxon-level {r.rank}" if r.rank else ""
         out.append(Finding(
             "resolution_change", "warning",
             f"{r.taxon} is recorded as itself in {_years(r.own_years)} ({', '.join(r.own_sources)}) and through "

@@ -100,3 +100,23 @@ def test_cli_wide_consistent_taxa(study: Study, tmp_path: Path) -> None:
                           "--taxon-level", "genra"], capture_output=True, text=True, timeout=120)
     assert res.returncode == 2 and "taxon level 'genra' is not a rank" in res.stderr
     assert len(res.stderr.strip().splitlines()) == 1
+
+
+def test_dwca_carries_taxon_id_as_scientific_name_id(study: Study, tmp_path: Path) -> None:
+    import csv
+    import io
+    import zipfile
+
+    def occurrences(filters: ExportFilters) -> list[dict[str, str]]:
+        out = tmp_path / "a.zip"
+        export(study, "dwca", out, filters)
+        with zipfile.ZipFile(out) as zf:
+            text = zf.read("occurrence.txt").decode("utf-8")
+        return list(csv.DictReader(io.StringIO(text), delimiter="\t", quoting=csv.QUOTE_NONE))
+
+    ids = {(r["scientificName"], r["scientificNameID"]) for r in occurrences(ExportFilters())}
+    # tests/rollup_store.py: taxon ids urn:test:<name>; Ostravix keldensis has none
+    assert ("Keldora alba", "urn:test:alba") in ids and ("Keldora", "urn:test:keldora") in ids
+    assert ("Ostravix keldensis", "") in ids
+    rolled = {r["scientificName"] for r in occurrences(ExportFilters(taxon_level="genus"))}
+    assert "Keldora" in rolled and "Keldora alba" not in rolled

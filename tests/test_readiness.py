@@ -42,6 +42,8 @@ def test_sparse_taxa_are_listed_and_a_common_one_is_not(study: Study) -> None:
     # records: its best cell, 2 against 1)
     assert "Ostravix keldensis" not in sparse.index
     assert sparse.loc["Keldora", "encounters"] == 2
+    # as recorded, the genus's samples are the hauls of the years it was recorded: H1, H2, H3
+    assert sparse.loc["Keldora", "samples"] == 3
     assert sparse.loc["Keldora alba", "encounters"] == 3
     nigra = sparse.loc["Keldora nigra"]
     assert (nigra["best_source_kind"], nigra["encounters"], nigra["presence_only_records"]) == ("opportunistic", 0, 2)

@@ -121,9 +121,19 @@ def readiness_table(con: duckdb.DuckDBPyConnection, targets: Mapping[str, str], 
                 FROM observations o LEFT JOIN _readiness_targets m ON m.taxon = o.variable
                 WHERE o.variable_kind = 'taxon' AND {_KEPT}{_year_filter(max_year)}
             ),
-            samples AS (
-                SELECT source_kind, season, depth_layer, count(DISTINCT ev) AS samples
+            samples_per_year AS (
+                SELECT source_kind, season, depth_layer, season_year, count(DISTINCT ev) AS n
                 FROM t WHERE sampled GROUP BY ALL
+            ),
+            -- a taxon's samples: those of the season years in which the kind recorded it at all
+            samples AS (
+                SELECT y.taxon, y.source_kind, y.season, y.depth_layer, sum(s.n) AS samples
+                FROM (SELECT DISTINCT taxon, source_kind, season, depth_layer, season_year FROM t) y
+                JOIN samples_per_year s
+                     ON s.source_kind = y.source_kind AND s.season IS NOT DISTINCT FROM y.season
+                        AND s.depth_layer IS NOT DISTINCT FROM y.depth_layer
+                        AND s.season_year IS NOT DISTINCT FROM y.season_year
+                GROUP BY ALL
             ),
             per_taxon AS (
                 SELECT taxon, source_kind, season, depth_layer,
@@ -137,7 +147,7 @@ def readiness_table(con: duckdb.DuckDBPyConnection, targets: Mapping[str, str], 
             SELECT p.taxon, p.source_kind, p.season, p.depth_layer, coalesce(s.samples, 0) AS samples,
                    p.encounters, p.years_with_encounters, p.first_year, p.last_year, p.presence_only_records
             FROM per_taxon p LEFT JOIN samples s
-                 ON s.source_kind = p.source_kind AND s.season IS NOT DISTINCT FROM p.season
+                 ON s.taxon = p.taxon AND s.source_kind = p.source_kind AND s.season IS NOT DISTINCT FROM p.season
                     AND s.depth_layer IS NOT DISTINCT FROM p.depth_layer
             ORDER BY ALL""").df()
     finally:

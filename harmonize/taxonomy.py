@@ -69,6 +69,8 @@ def validate_hierarchy(df: pd.DataFrame, path: str | Path) -> pd.DataFrame:
             df[col] = ""
         df[col] = df[col].fillna("").astype(str).str.strip()
     df["rank"] = df["rank"].str.casefold()
+    if df.empty:
+        return df
     bad = ~df["rank"].isin(("", *RANKS))
     if bad.any():
         i = int(np.flatnonzero(bad)[0])

@@ -120,3 +120,11 @@ def test_dwca_carries_taxon_id_as_scientific_name_id(study: Study, tmp_path: Pat
     assert ("Ostravix keldensis", "") in ids
     rolled = {r["scientificName"] for r in occurrences(ExportFilters(taxon_level="genus"))}
     assert "Keldora" in rolled and "Keldora alba" not in rolled
+
+
+def test_a_targets_own_record_keeps_its_id(study: Study) -> None:
+    plain = read_long(study).set_index(["event_id", "variable", "quantity"])["record_id"]
+    rolled = read_long(study, ExportFilters(taxon_level="genus"))
+    k = rolled[rolled["variable"] == "Keldora"].set_index(["event_id", "variable", "quantity"])["record_id"]
+    assert k.loc[("H1", "Keldora", "count")] == plain.loc[("H1", "Keldora", "count")]
+    assert k.loc[("H4", "Keldora", "count")] not in set(plain)

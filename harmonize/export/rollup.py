@@ -20,7 +20,8 @@ recorded consistently. Rules (docs/exports.md has a worked example):
 
 Rolled rows carry the flag ``taxon_rolled_up`` when they combine a taxon other than the
 target, ``zero_filled`` only when every member was inferred, and a new ``record_id``
-(a digest of the members' ids).
+(a digest of the members' ids; a target's own record alone keeps its id). Coverage is
+checked per life stage: members recorded with different life stages do not cover each other.
 """
 
 from __future__ import annotations
@@ -110,7 +111,9 @@ def _aggregate(column: str) -> str:
         "value": "CASE WHEN quantity = 'presence' THEN max(value) ELSE sum(value) END",
         "density": "sum(density)",
         "zero_filled": "bool_and(zero_filled)",
-        "record_id": "md5(target || ':' || string_agg(record_id, '|' ORDER BY record_id))",
+        # a target's own record alone keeps its id; a combination gets a digest of its members' ids
+        "record_id": ("CASE WHEN count(*) = 1 AND bool_and(variable = target) THEN min(record_id) "
+                      "ELSE md5(target || ':' || string_agg(record_id, '|' ORDER BY record_id)) END"),
         "ingest_id": "CASE WHEN count(DISTINCT ingest_id) = 1 THEN min(ingest_id) END",
         "source_file": "CASE WHEN count(DISTINCT source_file) = 1 THEN min(source_file) END",
         "source_row": "CASE WHEN count(*) = 1 THEN min(source_row) END",

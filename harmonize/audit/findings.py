@@ -443,7 +443,11 @@ def source_disagreement(m: Metrics, study: Study) -> list[Finding]:
 
 
 def all_findings(m: Metrics, study: Study, year: int | None = None) -> list[Finding]:
-    """Every finding of the audit, sorted by severity, code and place.
+    """The findings computed from the metrics, sorted by severity, code and place.
+
+    ``few_encounters`` and ``resolution_change`` come from :mod:`harmonize.audit.readiness`
+    (they need the taxa hierarchy and a pass over the store); :func:`harmonize.audit.run.audit`
+    adds them.
 
     Parameters
     ----------

@@ -96,70 +96,86 @@ def _year_filter(max_year: int | None) -> str:
     return "" if max_year is None else f" AND o.season_year <= {int(max_year)}"
 
 
-def recorded_groups(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> pd.DataFrame:
-    """(variable, season_year, source_id, source_kind) holding taxon records (zeros included)."""
+def taxon_places(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> pd.DataFrame:
+    """Where each taxon has records (zeros included): one row per distinct variable, source_id,
+    source_kind, season, depth_layer and season_year (a small table; one pass over the store)."""
     return con.execute(
-        f"""SELECT DISTINCT o.variable, o.season_year, o.source_id, o.source_kind FROM observations o
-            WHERE o.variable_kind = 'taxon' AND {_KEPT}{_year_filter(max_year)}""").df()
+        f"""SELECT DISTINCT o.variable, o.source_id, o.source_kind, o.season, o.depth_layer, o.season_year
+            FROM observations o WHERE o.variable_kind = 'taxon' AND {_KEPT}{_year_filter(max_year)}""").df()
+
+
+def recorded_groups(places: pd.DataFrame) -> pd.DataFrame:
+    """(variable, season_year, source_id, source_kind) holding taxon records, from :func:`taxon_places`."""
+    return places[["variable", "season_year", "source_id", "source_kind"]].drop_duplicates()
+
+
+_PLACE = ["source_kind", "season", "depth_layer"]
+
+
+def _keys(frame: pd.DataFrame, year: bool = True) -> pd.DataFrame:
+    """Join keys with one dtype whatever the frame's nulls: text as objects, years as Int64."""
+    frame = frame.copy()
+    for col in ("taxon", *_PLACE):
+        if col in frame:
+            frame[col] = frame[col].astype(object).where(frame[col].notna(), None)
+    if year and "season_year" in frame:
+        frame["season_year"] = frame["season_year"].astype("Int64")
+    return frame
 
 
 def readiness_table(con: duckdb.DuckDBPyConnection, targets: Mapping[str, str], min_encounters: int,
-                    max_year: int | None = None) -> pd.DataFrame:
+                    places: pd.DataFrame, max_year: int | None = None) -> pd.DataFrame:
     """Samples, encounters, share of zeros and years with encounters per taxon x kind x season x layer.
 
     ``targets`` maps a stored taxon to the taxon it is counted as (others count as
-    themselves). Probable twins are left out, as everywhere in the audit.
+    themselves); ``places`` comes from :func:`taxon_places`. Samples are read from the
+    audit's event table ``audit_cells`` (:func:`harmonize.audit.metrics.build_event_table`,
+    which must exist on ``con``): events with effort that hold taxon records. Probable twins
+    are left out, as everywhere in the audit.
     """
+    per_year = con.execute(
+        """SELECT source_kind, season, depth_layer, season_year, sum(n)::BIGINT AS n
+           FROM audit_cells WHERE effort_bearing AND biological GROUP BY ALL""").df()
+    taxon_years = places.assign(taxon=places["variable"].map(lambda v: targets.get(v, v)))
+    taxon_years = taxon_years[["taxon", *_PLACE, "season_year"]].drop_duplicates()
+    # a taxon's samples: those of the season years in which the kind recorded it at all
+    samples = (_keys(taxon_years).merge(_keys(per_year), on=[*_PLACE, "season_year"], how="left")
+               .groupby(["taxon", *_PLACE], dropna=False)["n"].sum().rename("samples").reset_index())
     con.register("_readiness_targets", pd.DataFrame({"taxon": list(targets), "target": list(targets.values())},
                                                     dtype=object))
     try:
-        frame = con.execute(f"""
-            WITH t AS (
-                SELECT coalesce(m.target, o.variable) AS taxon, o.source_kind, o.season, o.depth_layer,
-                       o.season_year, hash(o.source_id, o.event_id) AS ev, o.quantity <> 'presence' AS sampled,
-                       o.value > 0 AS positive
+        # one row per taxon present at an event, grouped on a hash of the event key (far cheaper
+        # than the two strings, as in metrics.build_event_table), over present rows only
+        present = con.execute(f"""
+            WITH present AS (
+                SELECT coalesce(m.target, o.variable) AS taxon, hash(o.source_id, o.event_id) AS ev,
+                       any_value(o.source_kind) AS source_kind, any_value(o.season) AS season,
+                       any_value(o.depth_layer) AS depth_layer, any_value(o.season_year) AS season_year,
+                       bool_or(o.quantity <> 'presence') AS in_sample
                 FROM observations o LEFT JOIN _readiness_targets m ON m.taxon = o.variable
-                WHERE o.variable_kind = 'taxon' AND {_KEPT}{_year_filter(max_year)}
-            ),
-            samples_per_year AS (
-                SELECT source_kind, season, depth_layer, season_year, count(DISTINCT ev) AS n
-                FROM t WHERE sampled GROUP BY ALL
-            ),
-            -- a taxon's samples: those of the season years in which the kind recorded it at all
-            samples AS (
-                SELECT y.taxon, y.source_kind, y.season, y.depth_layer, sum(s.n) AS samples
-                FROM (SELECT DISTINCT taxon, source_kind, season, depth_layer, season_year FROM t) y
-                JOIN samples_per_year s
-                     ON s.source_kind = y.source_kind AND s.season IS NOT DISTINCT FROM y.season
-                        AND s.depth_layer IS NOT DISTINCT FROM y.depth_layer
-                        AND s.season_year IS NOT DISTINCT FROM y.season_year
-                GROUP BY ALL
-            ),
-            per_taxon AS (
-                SELECT taxon, source_kind, season, depth_layer,
-                       count(DISTINCT ev) FILTER (WHERE sampled AND positive) AS encounters,
-                       count(DISTINCT season_year) FILTER (WHERE sampled AND positive) AS years_with_encounters,
-                       min(season_year) FILTER (WHERE sampled AND positive) AS first_year,
-                       max(season_year) FILTER (WHERE sampled AND positive) AS last_year,
-                       count(DISTINCT ev) FILTER (WHERE NOT sampled) AS presence_only_records
-                FROM t GROUP BY ALL
+                WHERE o.variable_kind = 'taxon' AND (o.value > 0 OR o.quantity = 'presence')
+                      AND {_KEPT}{_year_filter(max_year)}
+                GROUP BY coalesce(m.target, o.variable), ev
             )
-            SELECT p.taxon, p.source_kind, p.season, p.depth_layer, coalesce(s.samples, 0) AS samples,
-                   p.encounters, p.years_with_encounters, p.first_year, p.last_year, p.presence_only_records
-            FROM per_taxon p LEFT JOIN samples s
-                 ON s.taxon = p.taxon AND s.source_kind = p.source_kind AND s.season IS NOT DISTINCT FROM p.season
-                    AND s.depth_layer IS NOT DISTINCT FROM p.depth_layer
-            ORDER BY ALL""").df()
+            SELECT taxon, source_kind, season, depth_layer,
+                   count(*) FILTER (WHERE in_sample) AS encounters,
+                   count(DISTINCT season_year) FILTER (WHERE in_sample) AS years_with_encounters,
+                   min(season_year) FILTER (WHERE in_sample) AS first_year,
+                   max(season_year) FILTER (WHERE in_sample) AS last_year,
+                   count(*) FILTER (WHERE NOT in_sample) AS presence_only_records
+            FROM present GROUP BY ALL""").df()
     finally:
         con.unregister("_readiness_targets")
+    frame = _keys(samples).merge(_keys(present, year=False), on=["taxon", *_PLACE], how="left")
     for col in ("samples", "encounters", "years_with_encounters", "presence_only_records"):
-        frame[col] = frame[col].astype("int64")
+        frame[col] = frame[col].fillna(0).astype("int64")
     for col in ("first_year", "last_year"):
         frame[col] = frame[col].astype("Int64")
-    samples = frame["samples"].where(frame["samples"] > 0)
-    frame["share_zeros"] = 1.0 - frame["encounters"] / samples
+    samples_known = frame["samples"].where(frame["samples"] > 0)
+    frame["share_zeros"] = 1.0 - frame["encounters"] / samples_known
     frame["enough"] = frame["encounters"] + frame["presence_only_records"] >= int(min_encounters)
-    return frame[TABLE_COLUMNS]
+    return frame.sort_values(["taxon", *_PLACE], kind="stable", na_position="last")[TABLE_COLUMNS] \
+        .reset_index(drop=True)
 
 
 def sparse_taxa(table: pd.DataFrame, min_encounters: int, hierarchy: Hierarchy) -> pd.DataFrame:
@@ -195,7 +211,9 @@ def model_readiness(con: duckdb.DuckDBPyConnection, study: Study, max_year: int 
     Parameters
     ----------
     con
-        A store connection with the ``observations`` view.
+        A store connection with the ``observations`` view; the audit's event table
+        ``audit_cells`` is used when the audit built it (with the same ``max_year``), else
+        built here.
     study
         The study (taxa hierarchy, ``[audit] min_encounters``).
     max_year
@@ -208,7 +226,13 @@ def model_readiness(con: duckdb.DuckDBPyConnection, study: Study, max_year: int 
     if taxon_level is not None and taxon_level.strip().casefold() not in RANKS:
         raise HarmonizeError(f"taxon level {taxon_level!r} is not a rank; choose from {', '.join(RANKS)}")
     hierarchy = Hierarchy.from_taxa(study.taxa)
-    recorded = recorded_groups(con, max_year)
+    if not _has_event_table(con):
+        from harmonize.audit.metrics import build_event_table
+        from harmonize.audit.run import domain_cells
+
+        build_event_table(con, domain_cells(study), study.min_vessels, max_year)
+    places = taxon_places(con, max_year)
+    recorded = recorded_groups(places)
     changes = resolution_changes(recorded, hierarchy)
     maps = []
     if taxon_level:
@@ -217,10 +241,15 @@ def model_readiness(con: duckdb.DuckDBPyConnection, study: Study, max_year: int 
         maps.append(consistent_targets(recorded, hierarchy))
     targets = coarsest_targets(hierarchy, *maps) if maps else {}
     need = study.audit.min_encounters
-    table = readiness_table(con, targets, need, max_year)
+    table = readiness_table(con, targets, need, places, max_year)
     return ModelReadiness(table, sparse_taxa(table, need, hierarchy), changes, need,
                           taxon_level.strip().casefold() if taxon_level else None, consistent_taxa,
                           {t: x for t, x in sorted(targets.items()) if t != x})
+
+
+def _has_event_table(con: duckdb.DuckDBPyConnection) -> bool:
+    return bool(con.execute("SELECT count(*) FROM duckdb_tables() WHERE table_name = 'audit_cells' "
+                            "AND temporary").fetchall()[0][0])
 
 
 # --------------------------------------------------------------------------- findings

@@ -117,9 +117,10 @@ def _aggregate(column: str) -> str:
         "ingest_id": "CASE WHEN count(DISTINCT ingest_id) = 1 THEN min(ingest_id) END",
         "source_file": "CASE WHEN count(DISTINCT source_file) = 1 THEN min(source_file) END",
         "source_row": "CASE WHEN count(*) = 1 THEN min(source_row) END",
-        "flags": (f"CASE WHEN bool_or(variable <> target) THEN list_append(list_distinct(flatten("
-                  f"list(coalesce(flags, []::VARCHAR[])))), '{ROLLED_FLAG}') ELSE list_distinct(flatten("
-                  "list(coalesce(flags, []::VARCHAR[])))) END"),
+        # sorted, so that an export is the same file at every run
+        "flags": (f"CASE WHEN bool_or(variable <> target) THEN list_append(list_sort(list_distinct(flatten("
+                  f"list(coalesce(flags, []::VARCHAR[]))))), '{ROLLED_FLAG}') ELSE list_sort(list_distinct(flatten("
+                  "list(coalesce(flags, []::VARCHAR[]))))) END"),
     }
     if column in _KEYS:
         return c

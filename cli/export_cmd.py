@@ -54,6 +54,13 @@ def export_cmd(
     by_life_stage: bool = typer.Option(False, "--by-life-stage", help="wide: one column per taxon and life stage."),
     generalise_deg: float = typer.Option(0.1, "--generalise-deg", metavar="DEGREES",
                                          help="dwca: rounding of the positions of events with a sensitive taxon."),
+    taxon_level: str | None = typer.Option(
+        None, "--taxon-level", metavar="RANK",
+        help="long/wide/dwca: roll taxa up to their ancestor of this rank (taxa.csv rank/parent)."),
+    consistent_taxa: bool = typer.Option(
+        False, "--consistent-taxa",
+        help="long/wide/dwca: roll each taxon up to the finest level recorded the same way in every selected "
+             "year and source."),
     memory_limit: str | None = typer.Option(
         None, "--memory-limit", metavar="SIZE",
         help="wide: DuckDB working memory, e.g. 4GB (default: HARMONIZE_EXPORT_MEMORY_LIMIT, else 2GB)."),
@@ -68,6 +75,7 @@ def export_cmd(
       harmonize export wide samples.csv --quantity biomass
       harmonize export grid - --kind effort | head
       harmonize export dwca archive.zip --json
+      harmonize export wide samples.csv --consistent-taxa
     """
     if as_json and is_stdout(out):
         raise typer.BadParameter("--json prints its document on stdout; give OUT as a file, not '-'")
@@ -77,7 +85,8 @@ def export_cmd(
     from harmonize.export.selection import ExportFilters
 
     study = study_from(ctx, study_dir)
-    filters = ExportFilters.build(",".join(kind) if kind else None, years, seasons, layers, variables, sources)
+    filters = ExportFilters.build(",".join(kind) if kind else None, years, seasons, layers, variables, sources,
+                                  taxon_level=taxon_level, consistent_taxa=consistent_taxa)
     options: dict[str, object] = {}
     if fmt == "wide":
         options = {"quantity": quantity, "by_life_stage": by_life_stage, "memory_limit": memory_limit}
@@ -99,6 +108,13 @@ def export_cmd(
     suppressed = result.metadata["confidentiality"]["rows_suppressed"]
     if suppressed:
         say(f"{fmt_int(suppressed)} fishing values suppressed (fewer than {study.min_vessels} vessels)")
+    rollup = result.metadata["counts"].get("taxon_rollup") or {}
+    if rollup:
+        rolled = rollup.get("rolled_into", {})
+        say(f"taxa rolled up: {len(rolled)} into {len(set(rolled.values()))} "
+                      f"({', '.join(sorted(set(rolled.values()))) or 'none'}); "
+                      f"{fmt_int(rollup.get('values_left_out_incomplete', 0))} values left out because not every "
+                      "member was recorded at the event")
     for note in result.notes:
         say(f"note: {note}")
     say(CAUTION)

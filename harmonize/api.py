@@ -120,19 +120,26 @@ class StudyHandle:
 
     @staticmethod
     def filters(kinds: Names = None, years: Iterable[int] | str | None = None, seasons: Names = None,
-                layers: Names = None, variables: Names = None, sources: Names = None) -> ExportFilters:
-        """Export filters from lists or comma-separated text (years also ``"2019-2021"``)."""
-        return ExportFilters.build(kinds, years, seasons, layers, variables, sources)
+                layers: Names = None, variables: Names = None, sources: Names = None,
+                taxon_level: str | None = None, consistent_taxa: bool = False) -> ExportFilters:
+        """Export filters from lists or comma-separated text (years also ``"2019-2021"``).
+
+        ``taxon_level`` (a rank) and ``consistent_taxa`` roll taxa up (see
+        :mod:`harmonize.export.rollup`).
+        """
+        return ExportFilters.build(kinds, years, seasons, layers, variables, sources, taxon_level, consistent_taxa)
 
     def observations(self, kinds: Names = None, years: Iterable[int] | str | None = None, seasons: Names = None,
                      layers: Names = None, variables: Names = None, sources: Names = None,
-                     columns: list[str] | None = None, limit: int | None = None) -> pd.DataFrame:
+                     columns: list[str] | None = None, limit: int | None = None, taxon_level: str | None = None,
+                     consistent_taxa: bool = False) -> pd.DataFrame:
         """The long table (observations plus ``log_effort``) for the filters, as a DataFrame.
 
         Fishing values resting on fewer than the study's ``min_vessels`` vessels are blanked,
         as in every export. For very large selections prefer :meth:`export` to parquet.
         """
-        return read_long(self.study, self.filters(kinds, years, seasons, layers, variables, sources), columns, limit)
+        return read_long(self.study, self.filters(kinds, years, seasons, layers, variables, sources, taxon_level,
+                                                  consistent_taxa), columns, limit)
 
     def wide(self, quantity: str = "count", by_life_stage: bool = False, **filters: Any) -> pd.DataFrame:
         """The event x taxon table (see :mod:`harmonize.export.wide`) as a DataFrame."""
@@ -145,7 +152,7 @@ class StudyHandle:
     # ------------------------------------------------------------------ outputs
     def export(self, fmt: str, out: str | Path, *, kinds: Names = None, years: Iterable[int] | str | None = None,
                seasons: Names = None, layers: Names = None, variables: Names = None, sources: Names = None,
-               **options: Any) -> ExportResult:
+               taxon_level: str | None = None, consistent_taxa: bool = False, **options: Any) -> ExportResult:
         """Write an export (``harmonize export FORMAT OUT``): long, wide, grid, gpkg or dwca.
 
         A relative ``out`` is taken from the current folder. ``options`` go to the format
@@ -153,8 +160,8 @@ class StudyHandle:
         """
         if fmt not in EXPORTERS:
             raise HarmonizeError(f"unknown export format {fmt!r}; choose from {', '.join(EXPORTERS)}")
-        return export(self.study, fmt, out, self.filters(kinds, years, seasons, layers, variables, sources),
-                      **options)
+        return export(self.study, fmt, out, self.filters(kinds, years, seasons, layers, variables, sources,
+                                                         taxon_level, consistent_taxa), **options)
 
     def audit(self, **options: Any) -> Any:
         """The coverage audit (``harmonize audit``) as an object with DataFrames and findings.
@@ -168,6 +175,21 @@ class StudyHandle:
                 raise
             raise HarmonizeError("the coverage audit is not part of this installation of harmonize") from None
         return module.audit(self.study, **options)
+
+    def model_readiness(self, taxon_level: str | None = None, consistent_taxa: bool = False,
+                        year: int | None = None) -> Any:
+        """Which taxa the data can carry (see :mod:`harmonize.audit.readiness`).
+
+        Returns a ``ModelReadiness``: ``table`` (per taxon x source kind x season x layer:
+        samples, encounters, share of zeros, years with encounters), ``too_sparse`` (taxa
+        below ``[audit] min_encounters`` everywhere: merge, roll up or drop) and
+        ``resolution_changes``. ``taxon_level`` (a rank) or ``consistent_taxa`` count taxa
+        rolled up as the exports would; ``year`` ignores later season years.
+        """
+        from harmonize.audit.readiness import model_readiness
+
+        with Store(self.study.store_dir).connect(read_only=True) as con:
+            return model_readiness(con, self.study, year, taxon_level, consistent_taxa)
 
 
 def open_study(path: str | Path = ".") -> StudyHandle:

@@ -19,6 +19,7 @@ from shapely.geometry import shape
 
 from harmonize.config_spec import STUDY, check_known
 from harmonize.errors import ConfigError
+from harmonize.taxonomy import HIERARCHY_COLUMNS, validate_hierarchy
 
 STUDY_FILE = "study.toml"
 RESERVED_LAYERS = ("near_bottom", "integrated")
@@ -403,6 +404,7 @@ def _read_taxa(path: Path) -> pd.DataFrame:
             path, "taxa.list", f"sensitive must be true or false, got '{df['sensitive'][bad].iloc[0]}'"
         )
     df["sensitive"] = sensitive.isin(["true", "yes", "1"])
+    df = validate_hierarchy(df, path)
     # Every name and alias must point to one taxon only.
     keys = _taxon_keys(df)
     clash = keys[keys["key"].duplicated(keep=False)].drop_duplicates(["key", "taxon"])
@@ -411,7 +413,7 @@ def _read_taxa(path: Path) -> pd.DataFrame:
         k = clash.iloc[0]["key"]
         owners = sorted(clash[clash["key"] == k]["taxon"])
         raise ConfigError(path, "taxa.list", f"name '{k}' is given to more than one taxon: {owners}")
-    return df[["taxon", "group", "aliases", "sensitive"]].reset_index(drop=True)
+    return df[["taxon", "group", "aliases", "sensitive", *HIERARCHY_COLUMNS]].reset_index(drop=True)
 
 
 def _taxon_keys(taxa: pd.DataFrame) -> pd.DataFrame:

@@ -58,13 +58,15 @@ bottom_m = 11000
 near_bottom_m = 10            # samples within this distance above the bottom are "near_bottom"
 
 [taxa]
-list = "taxa.csv"             # taxon, group, aliases (|-separated), sensitive (true/false)
+list = "taxa.csv"             # taxon, group, aliases (|-separated), sensitive (true/false);
+                              # optional rank, parent (a taxon of the file), taxon_id, kingdom
 targets = "targets.csv"       # protocol, taxon, first_year, last_year: zero-filling rules
 
 [audit]
 min_events = 5                # fewer events in a cell of the audit -> thin_samples
 coverage_drop = 0.5           # coverage below this share of earlier years' median -> coverage_drop
-min_encounters = 10           # fewer non-zero records of a taxon -> few_encounters
+min_encounters = 10           # a taxon below this many encounters in every kind x season x layer
+                              # is too sparse to model alone -> few_encounters
 
 [confidentiality]
 min_vessels = 3               # fishing-effort cells with fewer vessels are suppressed in outputs
@@ -244,7 +246,7 @@ def schema_line(kind: str | None) -> str:
     return f"#:schema {prefix}{SCHEMA_DIR}/{schema_file_name(kind)}"
 
 
-TAXA_CSV = "taxon,group,aliases,sensitive\n"
+TAXA_CSV = "taxon,group,aliases,sensitive,rank,parent,taxon_id,kingdom\n"
 TARGETS_CSV = "protocol,taxon,first_year,last_year,life_stage\n"
 
 

@@ -97,9 +97,12 @@ def test_coverage_fraction_and_season_year(tiny: Study) -> None:
     thin = sorted((f.season, f.details["events"]) for f in result.findings if f.code == "thin_samples")
     assert thin == [("spring", 1), ("winter", 4)]
     # a catch stored as count and biomass is one record, not two
-    few = sorted((f.season, f.details["encounters"], f.details["records"])
+    # one few_encounters finding per taxon, at its best season x layer (winter: 4 of 4 hauls)
+    few = sorted((f.season, f.details["encounters"], f.details["samples"])
                  for f in result.findings if f.code == "few_encounters")
-    assert few == [("spring", 1, 1), ("winter", 4, 4)]
+    assert few == [("winter", 4, 4)]
+    table = result.readiness.table.set_index("season")
+    assert (table.loc["spring", "encounters"], table.loc["spring", "samples"]) == (1, 1)
 
 
 def test_confidential_effort_cells_are_not_named(tiny: Study, tmp_path: Path) -> None:

@@ -75,10 +75,18 @@ def test_coverage_drop_against_the_median_of_earlier_years(known: tuple[Study, K
 
 def test_few_encounters_counts_non_zero_records(known: tuple[Study, KnownGaps]) -> None:
     study, _ = known
-    f = next(f for f in audit(study).findings if f.code == "few_encounters")
-    # three hauls caught it; 4 x 20 + 8 summer hauls recorded it (zeros included)
-    assert f.details["encounters"] == 3 and f.details["records"] == 4 * 20 + 8
+    result = audit(study)
+    f = next(f for f in result.findings if f.code == "few_encounters")
+    # three hauls caught it, out of 4 x 20 + 8 summer hauls (samples)
+    assert f.details["encounters"] == 3 and f.details["samples"] == 4 * 20 + 8
     assert f.details["min_encounters"] == 10
+    assert "too sparse to model alone: merge, roll up or drop" in f.message
+    # one finding per sparse taxon; the per-cell numbers are in the readiness table
+    row = result.readiness.table.set_index(["taxon", "source_kind", "season"]).loc[
+        ("Syrranthus minor", "trawl", "summer")]
+    # the first summer haul of the first three years caught it (tests/audit_stores.py)
+    assert (row["samples"], row["encounters"], row["years_with_encounters"]) == (88, 3, 3)
+    assert row["share_zeros"] == pytest.approx(1 - 3 / 88)
 
 
 def test_probable_duplicates_are_not_counted(known: tuple[Study, KnownGaps]) -> None:

@@ -22,14 +22,18 @@ missing_year (error)
     A source has no records in a season year between its first and last year (with
     ``--year Y``: also when it had records in Y-1 and none in Y).
 few_encounters (warning)
-    A taxon has fewer than ``[audit] min_encounters`` non-zero records in a season x depth
-    layer, all years together (one quantity per source: count, else presence, else biomass).
+    A taxon has fewer than ``[audit] min_encounters`` encounters in every source kind x
+    season x depth layer, all years together: too sparse to model alone (one finding per
+    taxon; the per-cell counts are in the model readiness table, :mod:`harmonize.audit.readiness`).
 volunteer_only (warning)
     Every biological event in a season x depth layer, or every encounter of a taxon
     there, comes from volunteer providers.
 source_disagreement (warning; info where no tolerance is known)
     Two sources of one physical variable, paired by cell, season year, season and depth
     layer, differ on average by more than the variable's tolerance.
+resolution_change (warning)
+    A taxon is recorded as itself in some season years or sources and through its finer
+    taxa (taxa.csv parents) in others; built by :mod:`harmonize.audit.readiness`.
 
 Tolerances live in study.toml, ``[audit.tolerance]`` (variable = tolerance in the
 variable's canonical unit), and fall back to :data:`DEFAULT_TOLERANCES`.
@@ -50,7 +54,7 @@ from harmonize.study import Study
 from harmonize.tagging import season_year_offsets
 
 CODES = ("no_samples", "thin_samples", "coverage_drop", "missing_year", "few_encounters",
-         "volunteer_only", "source_disagreement")
+         "volunteer_only", "source_disagreement", "resolution_change")
 SEVERITIES = ("error", "warning", "info")
 #: Kinds that describe where fishing happened, not where anyone sampled.
 EFFORT_KINDS = ("effort",)
@@ -357,30 +361,6 @@ def missing_year(m: Metrics, study: Study, year: int | None) -> list[Finding]:
     return out
 
 
-def few_encounters(m: Metrics, study: Study) -> list[Finding]:
-    """Taxa with too few encounters in a season x layer to fit."""
-    need = study.audit.min_encounters
-    enc = m.encounters
-    if enc.empty:
-        return []
-    g = (enc.groupby(["variable", "season", "depth_layer"], dropna=False)
-         .agg(encounters=("encounters", "sum"), records=("records", "sum"),
-              kinds=("source_kind", lambda s: sorted(set(s))))
-         .reset_index())
-    g = g[g["encounters"] < need]
-    return [Finding(
-        "few_encounters", "warning",
-        f"{r.variable} was encountered in only {int(r.encounters)} of {int(r.records)} "
-        f"{'/'.join(r.kinds)} records in {_layer(_str(r.depth_layer))} in {r.season} (all years; the "
-        f"study asks for at least {need}); too few to fit it there, so pool seasons or layers "
-        "or leave it out of that part of the model.",
-        source_kind=r.kinds[0] if len(r.kinds) == 1 else ALL_BIOLOGICAL, season=_str(r.season),
-        depth_layer=_str(r.depth_layer), variable=str(r.variable),
-        details={"encounters": int(r.encounters), "records": int(r.records), "min_encounters": need,
-                 "source_kinds": r.kinds},
-    ) for r in g.itertuples(index=False)]
-
-
 def volunteer_only(m: Metrics, study: Study) -> list[Finding]:
     """Season x layer combinations (or taxa in them) described only by volunteers."""
     out: list[Finding] = []
@@ -463,7 +443,11 @@ def source_disagreement(m: Metrics, study: Study) -> list[Finding]:
 
 
 def all_findings(m: Metrics, study: Study, year: int | None = None) -> list[Finding]:
-    """Every finding of the audit, sorted by severity, code and place.
+    """The findings computed from the metrics, sorted by severity, code and place.
+
+    ``few_encounters`` and ``resolution_change`` come from :mod:`harmonize.audit.readiness`
+    (they need the taxa hierarchy and a pass over the store); :func:`harmonize.audit.run.audit`
+    adds them.
 
     Parameters
     ----------
@@ -475,7 +459,7 @@ def all_findings(m: Metrics, study: Study, year: int | None = None) -> list[Find
         With a year, findings tied to a season year are reported for that year only.
     """
     found = (no_samples(m, study, year) + thin_samples(m, study, year) + coverage_drop(m, study, year)
-             + missing_year(m, study, year) + few_encounters(m, study) + volunteer_only(m, study)
+             + missing_year(m, study, year) + volunteer_only(m, study)
              + source_disagreement(m, study))
     return sort_findings(found)
 

@@ -12,6 +12,7 @@ import pandas as pd
 from harmonize import __version__
 from harmonize.audit.findings import CODES
 from harmonize.audit.metrics import ALL_BIOLOGICAL
+from harmonize.audit.readiness import readiness_html
 
 if TYPE_CHECKING:
     from harmonize.audit.run import AuditResult
@@ -33,9 +34,10 @@ CODE_HELP = {
     "thin_samples": "fewer samples than the study's minimum in a season x layer of a year",
     "coverage_drop": "share of domain cells sampled fell below the study's fraction of the earlier median",
     "missing_year": "a source has no records for a year inside its span",
-    "few_encounters": "a taxon was encountered too few times in a season x layer to fit",
+    "few_encounters": "a taxon is encountered too few times in every season x layer to model it alone",
     "volunteer_only": "a season x layer (or a taxon there) is described only by volunteers",
     "source_disagreement": "two sources of a physical variable differ in the same cells and periods",
+    "resolution_change": "a taxon is recorded as itself in some years or sources and as its finer taxa in others",
 }
 
 _CSS = """
@@ -380,6 +382,7 @@ def render_html(result: AuditResult) -> str:
         ("Coverage through time", "coverage", _coverage(result)),
         ("Sampled cells per year", "maps", _maps(result)),
         ("Agreement between sources", "sources", _comparisons(result)),
+        ("Model readiness of taxa", "readiness", readiness_html(result.readiness)),
         ("Confidential fishing data", "confidentiality", _confidentiality(result)),
     ]
     if result.since is not None:  # the comparison with a previous audit comes first

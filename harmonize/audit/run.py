@@ -12,8 +12,16 @@ import numpy as np
 import pandas as pd
 
 from harmonize import __version__
-from harmonize.audit.findings import CODES, SEVERITIES, Finding, all_findings, tolerances
+from harmonize.audit.findings import (
+    CODES,
+    SEVERITIES,
+    Finding,
+    all_findings,
+    sort_findings,
+    tolerances,
+)
 from harmonize.audit.metrics import Metrics, compute
+from harmonize.audit.readiness import ModelReadiness, model_readiness, readiness_findings
 from harmonize.audit.since import (
     AUDIT_FORMAT,
     AUDIT_SCHEMA_VERSION,
@@ -68,6 +76,7 @@ class AuditResult:
     since: Since | None = None
     #: A sampling plan to show in the report (:func:`harmonize.audit.plan.plan_samples`), if set.
     plan: Any = None
+    readiness: ModelReadiness | None = None
 
     @property
     def extent(self) -> pd.DataFrame:
@@ -119,6 +128,7 @@ class AuditResult:
             "settings": self.settings,
             "confidentiality": self.suppression(),
             "source_comparisons": _records(self.metrics.comparisons, list(self.metrics.comparisons.columns)),
+            "model_readiness": self.readiness.to_json_dict() if self.readiness is not None else None,
             "caution": CAUTION,
             "tool_version": __version__,
             "contract_version": CONTRACT_VERSION,
@@ -221,8 +231,9 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
                                     scheduler or choice.scheduler)
         else:
             metrics = compute(con, cells, study.min_vessels, year)
+        readiness = model_readiness(con, study, year)
         basis = store_basis(con, len(cells), year)
-        findings = all_findings(metrics, study, year)
+        findings = sort_findings(all_findings(metrics, study, year) + readiness_findings(readiness))
         compared = None if previous is None else compare(previous, basis, findings, con, store.directory)
     settings = {
         "min_events": study.audit.min_events, "coverage_drop": study.audit.coverage_drop,
@@ -242,6 +253,7 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
         settings=settings,
         basis=basis,
         since=compared,
+        readiness=readiness,
     )
 
 

@@ -25,20 +25,40 @@ STRATA = {
     "Thorne Deep": [(-152.0, 41.0), (-148.0, 41.0), (-148.0, 44.0), (-152.0, 44.0), (-152.0, 41.0)],
 }
 
-# taxon, group, aliases, sensitive
+# taxon, group, aliases, sensitive, rank, parent (all invented; taxon ids are made-up URNs)
 TAXA = [
-    ("Ostravix keldensis", "fish", "keld cod|OSTRA KEL|Ostravix keldensi", False),
-    ("Lumbrena pallida", "fish", "pale lumb|LUMB PAL", False),
-    ("Syrranthus minor", "fish", "lesser syrranth", False),
-    ("Pelagon argentea", "fish", "silver pelagon", False),
-    ("Calverion rubrum", "invertebrate", "red calverion", True),
-    ("Copelix marina", "zooplankton", "copelix", False),
-    ("Thysseia borealis", "zooplankton", "keld krill", False),
-    ("Nauplia keldica", "zooplankton", "", False),
-    ("Procellix keldica", "seabird", "keld fulmar", False),
-    ("Larivox pallens", "seabird", "pale gull", False),
-    ("Aukelle minima", "seabird", "little aukelle", True),
+    ("Ostravix", "fish", "", False, "genus", ""),
+    ("Ostravix keldensis", "fish", "keld cod|OSTRA KEL|Ostravix keldensi", False, "species", "Ostravix"),
+    ("Lumbrena", "fish", "", False, "genus", ""),
+    ("Lumbrena pallida", "fish", "pale lumb|LUMB PAL", False, "species", "Lumbrena"),
+    ("Syrranthus", "fish", "", False, "genus", ""),
+    ("Syrranthus minor", "fish", "lesser syrranth", False, "species", "Syrranthus"),
+    ("Pelagon", "fish", "", False, "genus", ""),
+    ("Pelagon argentea", "fish", "silver pelagon", False, "species", "Pelagon"),
+    # The identification change planted in the trawl survey: the genus Vossaria was recorded
+    # as one taxon until SPLIT_YEAR - 1 and as two species from SPLIT_YEAR on.
+    ("Vossaria", "fish", "vossaria spp", False, "genus", ""),
+    ("Vossaria borealis", "fish", "northern vossaria", False, "species", "Vossaria"),
+    ("Vossaria australis", "fish", "southern vossaria", False, "species", "Vossaria"),
+    # A rare deep-water fish, caught in about one haul a year: too sparse to model alone.
+    ("Bathyra thornensis", "fish", "thorne bathyra", False, "species", ""),
+    ("Calverion", "invertebrate", "", False, "genus", ""),
+    ("Calverion rubrum", "invertebrate", "red calverion", True, "species", "Calverion"),
+    # no genus row: the plankton lab writes "copelix" for the species (an alias below)
+    ("Copelix marina", "zooplankton", "copelix", False, "species", ""),
+    ("Thysseia", "zooplankton", "", False, "genus", ""),
+    ("Thysseia borealis", "zooplankton", "keld krill", False, "species", "Thysseia"),
+    ("Nauplia", "zooplankton", "", False, "genus", ""),
+    ("Nauplia keldica", "zooplankton", "", False, "species", "Nauplia"),
+    ("Procellix", "seabird", "", False, "genus", ""),
+    ("Procellix keldica", "seabird", "keld fulmar", False, "species", "Procellix"),
+    ("Larivox", "seabird", "", False, "genus", ""),
+    ("Larivox pallens", "seabird", "pale gull", False, "species", "Larivox"),
+    ("Aukelle", "seabird", "", False, "genus", ""),
+    ("Aukelle minima", "seabird", "little aukelle", True, "species", "Aukelle"),
 ]
+#: First season year in which the trawl survey tells the two Vossaria species apart.
+SPLIT_YEAR = 2021
 # protocol, taxon, first_year, last_year, life_stage
 TARGETS = [
     ("keldmar_bottom_trawl", "Ostravix keldensis", "", "", ""),
@@ -46,6 +66,10 @@ TARGETS = [
     ("keldmar_bottom_trawl", "Syrranthus minor", "2019", "", ""),
     ("keldmar_bottom_trawl", "Pelagon argentea", "", "", ""),
     ("keldmar_bottom_trawl", "Calverion rubrum", "", "", ""),
+    ("keldmar_bottom_trawl", "Bathyra thornensis", "", "", ""),
+    ("keldmar_bottom_trawl", "Vossaria", "", str(SPLIT_YEAR - 1), ""),
+    ("keldmar_bottom_trawl", "Vossaria borealis", str(SPLIT_YEAR), "", ""),
+    ("keldmar_bottom_trawl", "Vossaria australis", str(SPLIT_YEAR), "", ""),
     ("keldmar_plankton_net", "Copelix marina", "", "", "adult"),
     ("keldmar_plankton_net", "Thysseia borealis", "", "", "adult"),
     ("keldmar_plankton_net", "Thysseia borealis", "", "", "larva"),
@@ -130,7 +154,9 @@ def write_study(folder: Path) -> None:
     strata = {"type": "FeatureCollection",
               "features": [_polygon_feature(r, {"stratum": n}) for n, r in STRATA.items()]}
     (folder / "strata.geojson").write_text(json.dumps(strata), encoding="utf-8")
-    lines = ["taxon,group,aliases,sensitive"] + [f"{t},{g},{a},{str(s).lower()}" for t, g, a, s in TAXA]
+    lines = ["taxon,group,aliases,sensitive,rank,parent,taxon_id,kingdom"] + [
+        f"{t},{g},{a},{str(s).lower()},{r},{p},urn:keldmar:taxon:{i + 1},{'' if p else 'Animalia'}"
+        for i, (t, g, a, s, r, p) in enumerate(TAXA)]
     (folder / "taxa.csv").write_text("\n".join(lines) + "\n", encoding="utf-8")
     lines = ["protocol,taxon,first_year,last_year,life_stage"] + [",".join(r) for r in TARGETS]
     (folder / "targets.csv").write_text("\n".join(lines) + "\n", encoding="utf-8")

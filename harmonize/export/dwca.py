@@ -153,6 +153,8 @@ _OCCURRENCE_COLUMNS = [
     Column("occurrenceID", _clean(_occurrence_key())),
     Column("basisOfRecord", "'HumanObservation'"),
     Column("scientificName", _clean("variable")),
+    # the user's authority identifier of the taxon (taxa.csv taxon_id), empty where none is given
+    Column("scientificNameID", _clean("(SELECT t.taxon_id FROM dwca_taxon_ids t WHERE t.taxon = variable)")),
     Column("lifeStage", _clean("life_stage")),
     Column("occurrenceStatus", "CASE WHEN bool_or(quantity = 'presence' OR value > 0) THEN 'present' ELSE 'absent' END"),
     Column("individualCount", "CAST(CASE WHEN max(value) FILTER (WHERE quantity = 'count') = "
@@ -270,6 +272,10 @@ def export_dwca(study: Study, out: str | Path, filters: ExportFilters | None = N
     with open_selection(study, filters) as (con, counts), \
             tempfile.TemporaryDirectory(dir=path.parent, prefix=".dwca-") as tmp:
         folder = Path(tmp)
+        con.register("_dwca_taxon_ids", study.taxa[["taxon", "taxon_id"]])
+        con.execute("CREATE OR REPLACE TEMP TABLE dwca_taxon_ids AS "
+                    "SELECT taxon, nullif(taxon_id, '') AS taxon_id FROM _dwca_taxon_ids")
+        con.unregister("_dwca_taxon_ids")
         written: dict[str, int] = {}
         for name, sql in (("event", _events_sql(study, generalise_deg)), ("occurrence", _occurrences_sql()),
                           ("emof", _emof_sql())):

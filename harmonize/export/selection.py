@@ -72,6 +72,9 @@ class ExportFilters:
         Canonical taxon names, physical variable names or fishing_hours.
     sources
         Source ids from the profiles.
+    taxon_level, consistent_taxa
+        Roll taxa up to their ancestor of this rank, and/or to the finest level recorded
+        consistently across the selected years and sources (:mod:`harmonize.export.rollup`).
     """
 
     kinds: tuple[str, ...] = ()
@@ -80,15 +83,19 @@ class ExportFilters:
     layers: tuple[str, ...] = ()
     variables: tuple[str, ...] = ()
     sources: tuple[str, ...] = field(default=())
+    taxon_level: str | None = None
+    consistent_taxa: bool = False
 
     @classmethod
     def build(cls, kinds: Iterable[str] | str | None = None, years: Iterable[int] | str | None = None,
               seasons: Iterable[str] | str | None = None, layers: Iterable[str] | str | None = None,
               variables: Iterable[str] | str | None = None,
-              sources: Iterable[str] | str | None = None) -> ExportFilters:
+              sources: Iterable[str] | str | None = None, taxon_level: str | None = None,
+              consistent_taxa: bool = False) -> ExportFilters:
         """Filters from lists or comma-separated text (years also as ranges, ``2019-2021``)."""
         return cls(kinds=_names(kinds), years=parse_years(years), seasons=_names(seasons),
-                   layers=_names(layers), variables=_names(variables), sources=_names(sources))
+                   layers=_names(layers), variables=_names(variables), sources=_names(sources),
+                   taxon_level=taxon_level or None, consistent_taxa=bool(consistent_taxa))
 
     def where_sql(self) -> str:
         """The SQL condition on observation columns (``TRUE`` when nothing is filtered)."""
@@ -105,7 +112,8 @@ class ExportFilters:
     def as_dict(self) -> dict[str, list[Any]]:
         """The filters as plain lists, for export metadata."""
         return {"kinds": list(self.kinds), "season_years": list(self.years), "seasons": list(self.seasons),
-                "layers": list(self.layers), "variables": list(self.variables), "sources": list(self.sources)}
+                "layers": list(self.layers), "variables": list(self.variables), "sources": list(self.sources),
+                "taxon_level": self.taxon_level, "consistent_taxa": self.consistent_taxa}
 
     def validate(self, con: duckdb.DuckDBPyConnection, season_names: Sequence[str],
                  layer_names: Sequence[str]) -> None:
@@ -219,7 +227,12 @@ def open_selection(study: Study, filters: ExportFilters) -> Iterator[tuple[duckd
         con.execute("SET enable_progress_bar = false")   # the library never prints
         filters.validate(con, list(study.seasons), [d.name for d in study.depth_layers])
         define_base(con, filters, study.min_vessels)
-        yield con, base_counts(con, filters, study.min_vessels)
+        counts = base_counts(con, filters, study.min_vessels)
+        if filters.taxon_level or filters.consistent_taxa:
+            from harmonize.export.rollup import apply_rollup  # the roll-up reads this module
+
+            counts["taxon_rollup"] = apply_rollup(con, study, filters.taxon_level, filters.consistent_taxa)
+        yield con, counts
 
 
 def export_memory_limit(memory_limit: str | None = None) -> str:

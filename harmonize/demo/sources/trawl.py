@@ -1,4 +1,8 @@
-"""Demo bottom-trawl surveys: summer hauls 2018-2023, with the mess real files have."""
+"""Demo bottom-trawl surveys: summer hauls 2018-2023, with the mess real files have.
+
+Planted identification change: the genus Vossaria is recorded as one taxon until
+``SPLIT_YEAR - 1`` and as two species from ``SPLIT_YEAR`` on (see harmonize/demo/sea.py).
+"""
 
 from __future__ import annotations
 
@@ -8,6 +12,7 @@ import numpy as np
 import pandas as pd
 
 from harmonize.demo.sea import (
+    SPLIT_YEAR,
     YEARS,
     DemoInput,
     bottom_depth_m,
@@ -170,6 +175,7 @@ def _survey(rng: np.random.Generator, year: int, lon0: np.ndarray, lat0: np.ndar
             name = rng.choice(_VARIANTS[taxon])
             count = max(1, int(kg[i] / rng.uniform(0.2, 1.5)))
             rows.append((ids[i], name, round(float(kg[i]), 3), count))
+    rows += _vossaria(year, ids, depth, area) + _bathyra(year, ids, depth, area)
     catch = pd.DataFrame(rows, columns=["haul_id", "species", "catch_kg", "catch_n"])
     # Mess: a misspelt name, a duplicated haul line, a catch row for a haul that is not in the file
     if len(catch) > 5:
@@ -179,6 +185,40 @@ def _survey(rng: np.random.Generator, year: int, lon0: np.ndarray, lat0: np.ndar
     if year == 2019:  # a haul whose end time was typed before its start
         hauls.loc[7, "end_time_utc"] = (pd.Timestamp(hauls.loc[7, "start_time_utc"]) - pd.Timedelta(minutes=30)).strftime("%Y-%m-%dT%H:%M")
     return hauls, catch
+
+
+def _vossaria(year: int, ids: list[str], depth: np.ndarray, area: np.ndarray) -> list[tuple]:
+    """Catch rows of the genus Vossaria: one taxon before SPLIT_YEAR, its two species from then on.
+
+    Drawn from a generator of its own (seeded by the year), so that the rest of the survey
+    is the same as without this planted identification change.
+    """
+    rng = np.random.default_rng([year, 61])
+    suit = np.exp(-0.5 * (np.log(depth / 150.0) / 0.7) ** 2)
+    present = rng.random(len(ids)) < 0.7 * suit + 0.03
+    kg = rng.gamma(1.5, 180.0 * suit / 1.5) * area
+    # the northern species prefers shallow water, the southern one deep water
+    north = np.clip(1.2 - depth / 250.0, 0.1, 0.9)
+    rows: list[tuple] = []
+    for i in np.flatnonzero(present & (kg > 0.01)):
+        count = max(1, int(kg[i] / rng.uniform(0.1, 0.6)))
+        if year < SPLIT_YEAR:
+            rows.append((ids[i], rng.choice(["Vossaria", "vossaria spp"]), round(float(kg[i]), 3), count))
+            continue
+        n_north = int(rng.binomial(count, north[i]))
+        for name, n in (("Vossaria borealis", n_north), ("Vossaria australis", count - n_north)):
+            if n > 0:
+                rows.append((ids[i], name, round(float(kg[i]) * n / count, 3), n))
+    return rows
+
+
+def _bathyra(year: int, ids: list[str], depth: np.ndarray, area: np.ndarray) -> list[tuple]:
+    """The rare Bathyra thornensis: one or two of the deepest hauls a year catch a few (own generator)."""
+    rng = np.random.default_rng([year, 67])
+    deep = np.argsort(depth)[::-1][:5]
+    hits = rng.choice(deep, size=1 + int(rng.random() < 0.3), replace=False)
+    return [(ids[i], "thorne bathyra" if rng.random() < 0.5 else "Bathyra thornensis",
+             round(float(rng.uniform(0.4, 2.0) * area[i] * 10), 3), int(rng.integers(1, 4))) for i in hits]
 
 
 def _charter(hauls: pd.DataFrame, catch: pd.DataFrame) -> tuple[pd.DataFrame, pd.DataFrame]:

@@ -251,6 +251,7 @@ _VALUE_ARROW = pa.schema([
     ("zero_filled", pa.bool_()), ("value_flags", pa.list_(pa.string())),
     ("source_record_rows", pa.list_(pa.int64())), ("n_values", pa.int32()), ("n_vessels", pa.int32()),
     ("no_effort", pa.bool_()), ("behavior", pa.string()),
+    ("count_observed", pa.float64()), ("subsample_fraction", pa.float64()), ("provider_record_id", pa.string()),
 ])
 
 

@@ -174,7 +174,8 @@ def test_tiny_blocks_write_the_same_store_as_one_block(study_dir: Path, monkeypa
 
 def _zero_fill_reference(events: pd.DataFrame, caught: pd.DataFrame, blocked: pd.DataFrame,
                          targets: pd.DataFrame, quantities: list[tuple[str, str]]) -> pd.DataFrame:
-    """The merge-based zero_fill before integer codes (commit 8ccd175), for comparison."""
+    """The merge-based zero_fill before integer codes (commit 8ccd175), for comparison, with
+    the shared rule that an unstaged catch blocks the staged zeros of its taxon."""
     pairs = events[["event_id", "year"]].merge(
         targets.rename(columns={"taxon": "variable"})[["variable", "life_stage", "first_year", "last_year"]],
         how="cross")
@@ -186,7 +187,11 @@ def _zero_fill_reference(events: pd.DataFrame, caught: pd.DataFrame, blocked: pd
     staged = caught[["event_id", "variable", "life_stage"]].dropna().drop_duplicates().assign(_hit_stage=True)
     pairs = pairs.merge(any_stage, on=["event_id", "variable"], how="left")
     pairs = pairs.merge(staged, on=["event_id", "variable", "life_stage"], how="left")
-    met = np.where(pairs["life_stage"].isna(), pairs["_hit"].notna(), pairs["_hit_stage"].notna())
+    # a catch without a stage may be any stage: it meets staged targets too (issue 17)
+    unstaged = caught[caught["life_stage"].isna()][["event_id", "variable"]].drop_duplicates().assign(_any=True)
+    pairs = pairs.merge(unstaged, on=["event_id", "variable"], how="left")
+    met = np.where(pairs["life_stage"].isna(), pairs["_hit"].notna(),
+                   pairs["_hit_stage"].notna() | pairs["_any"].notna())
     pairs = pairs[~met]
     if len(blocked):
         pairs = pairs.merge(blocked[["event_id", "variable"]].drop_duplicates().assign(_blocked=True),

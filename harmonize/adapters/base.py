@@ -25,10 +25,13 @@ EVENT_COLUMNS = (
 VALUE_COLUMNS = (
     "event_id", "variable", "variable_kind", "life_stage", "quantity", "value", "unit",
     "zero_filled", "flags", "source_record_rows", "n_values", "n_vessels", "no_effort",
-    "behavior",
+    "behavior", "count_observed", "subsample_fraction", "provider_record_id",
 )
 # behavior (optional, default null): Darwin Core behavior of the counted animals (seabirds
 # "in_flight" / "on_water"); part of the record key, so both can be stored for one taxon.
+# count_observed, subsample_fraction (optional, default null): for a count raised from a
+# subsample, the number counted and the share counted (value = count_observed / fraction).
+# provider_record_id (optional, default null): the provider's id(s) of the records behind a value.
 # no_effort (optional, default False): the value is not sampled by the event's effort (e.g. a
 # temperature measured during a haul); its effort, effort_unit and density stay null.
 

@@ -24,7 +24,14 @@ import pandas as pd
 
 from harmonize.adapters import darwin_core
 from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
-from harmonize.adapters.common import reject_outside_domain, resolve_taxa, zero_fill
+from harmonize.adapters.common import (
+    STAGE_UNRESOLVED,
+    normalise_life_stage,
+    reject_outside_domain,
+    resolve_taxa,
+    stage_unresolved_events,
+    zero_fill,
+)
 from harmonize.adapters.reading import (
     NA_TOKENS,
     RawTable,
@@ -188,8 +195,9 @@ class OpportunisticAdapter(Adapter):
             "checklist": rows["checklist_id"].str.strip(), "complete": rows["complete"].fillna(False).astype(bool),
             "duration_h": duration_h, "distance_km": rows["distance_km"].to_numpy(float),
             "date_only": date_only, "count": count, "absent": absent,
+            "provider_id": rows["record_id"].astype("string").str.strip().replace("", pd.NA),
             "taxon_text": rows["taxon"].str.strip(),
-            "life_stage": rows["life_stage"].str.strip().str.casefold(),
+            "life_stage": normalise_life_stage(rows["life_stage"]),
             "behavior": rows["behavior"].str.strip().str.casefold().str.replace(r"[\s-]+", "_", regex=True),
         })
         rec["key"] = _event_keys(rec)
@@ -245,7 +253,10 @@ class OpportunisticAdapter(Adapter):
                     "can be stored; set [source] protocol to a protocol of targets.csv")
             events = events[~empty]
         incomplete = set(rec["key"][lost])
-        events["flags"] = [f + (["checklist_incomplete"] if e in incomplete else [])
+        unresolved = set(stage_unresolved_events(
+            rec[ok & is_complete].rename(columns={"key": "event_id"}), study, profile.protocol))
+        events["flags"] = [f + ([STAGE_UNRESOLVED] if e in unresolved else [])
+                           + (["checklist_incomplete"] if e in incomplete else [])
                            for f, e in zip(events["flags"], events["event_id"], strict=True)]
         events = events.drop(columns=["complete"])
         if progress:
@@ -406,7 +417,7 @@ def _events(live: pd.DataFrame) -> pd.DataFrame:
 def _values(ok: pd.DataFrame, events: pd.DataFrame) -> pd.DataFrame:
     """Counts (complete checklists) or presences (everything else), one row per taxon x stage x behavior."""
     cols = ["event_id", "variable", "life_stage", "behavior", "quantity", "unit", "value", "variable_kind",
-            "zero_filled", "flags", "source_record_rows", "n_values"]
+            "zero_filled", "flags", "source_record_rows", "n_values", "provider_record_id"]
     if ok.empty:
         return pd.DataFrame({c: [] for c in cols})
     complete = ok["key"].map(events.set_index("event_id")["complete"]).fillna(False).astype(bool)
@@ -416,6 +427,7 @@ def _values(ok: pd.DataFrame, events: pd.DataFrame) -> pd.DataFrame:
     agg = frame.groupby(keys, dropna=False, sort=False).agg(
         total=("count", lambda s: s.sum(min_count=1)), counted=("counted", "sum"), n=("row", "size"),
         rows=("row", list), complete=("complete", "first"),
+        provider_ids=("provider_id", lambda s: "|".join(s.dropna()) or None),
     ).reset_index()
     counts = agg["complete"] & agg["total"].notna()
     flags = []
@@ -429,4 +441,5 @@ def _values(ok: pd.DataFrame, events: pd.DataFrame) -> pd.DataFrame:
         "behavior": agg["behavior"], "quantity": np.where(counts, "count", "presence"), "unit": "1",
         "value": np.where(counts, agg["total"].to_numpy(float), 1.0), "variable_kind": "taxon",
         "zero_filled": False, "flags": flags, "source_record_rows": agg["rows"], "n_values": agg["n"],
+        "provider_record_id": agg["provider_ids"].astype("string"),
     })

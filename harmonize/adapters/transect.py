@@ -32,9 +32,11 @@ import pyproj
 
 from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
 from harmonize.adapters.common import (
+    STAGE_UNRESOLVED,
     reject_outside_domain,
     reject_records_of_events,
     resolve_taxa,
+    stage_unresolved_events,
     unattributed_note,
     unattributed_records,
     zero_fill,
@@ -179,6 +181,9 @@ class TransectAdapter(Adapter):
         if continuous.any():
             values.loc[continuous, "flags"] = pd.Series(
                 [(*f, "flying_not_snapshot") for f in values["flags"][continuous]], index=values.index[continuous], dtype=object)
+        flags[STAGE_UNRESOLVED] = segments["event_id"].isin(stage_unresolved_events(
+            birds.assign(life_stage=pd.Series(pd.NA, index=birds.index, dtype="string")), study,
+            profile.protocol)).to_numpy()
         flags["counts_incomplete"] = segments["event_id"].isin(incomplete).to_numpy() | (unattributed > 0)
         segments["flags"] = flag_tuples(flags)
         if progress:

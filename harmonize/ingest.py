@@ -26,7 +26,14 @@ from harmonize.errors import ConfigError, DuplicateIngestError, HarmonizeError
 from harmonize.profile import Profile, find_profile, load_profile, peek_kind
 from harmonize.store import IngestRecord, Store
 from harmonize.study import Study
-from harmonize.tagging import Grid, assign_strata, normalise_lon, tag_depth_layer, tag_season
+from harmonize.tagging import (
+    Grid,
+    assign_strata,
+    calendar_year,
+    normalise_lon,
+    tag_depth_layer,
+    tag_season,
+)
 from harmonize.twins import twin_settings
 
 
@@ -263,8 +270,8 @@ def tag_events(events: pd.DataFrame, study: Study) -> pd.DataFrame:
     ev = events.copy()
     ev["lon"] = normalise_lon(ev["lon"].to_numpy(float))
     start = pd.to_datetime(ev["event_start"])
-    season, season_year = tag_season(start, study.seasons)
-    ev["year"] = start.dt.year.astype("Int32")
+    season, season_year = tag_season(start, study.seasons, study.timezone)
+    ev["year"] = calendar_year(start, study.timezone)
     ev["season"] = _keep(ev, "season", season)
     ev["season_year"] = _keep(ev, "season_year", season_year)
     on_bottom = ev["on_bottom"].fillna(False).to_numpy(bool) if "on_bottom" in ev else None

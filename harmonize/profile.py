@@ -18,7 +18,7 @@ KINDS = ("trawl", "plankton", "transect", "opportunistic", "gridded", "effort")
 PROVIDER_TYPES = ("agency", "volunteer", "industry", "model", "remote_sensing")
 _SOURCE_KEYS = {
     "id", "kind", "provider_type", "protocol", "timezone", "encoding", "delimiter",
-    "dayfirst", "time_format", "description",
+    "dayfirst", "time_format", "description", "ambiguous_times",
 }
 
 
@@ -36,6 +36,9 @@ class Profile:
     delimiter: str | None = None
     dayfirst: bool = False
     time_format: str | None = None
+    #: how a local time that happens twice at a clock change is read: None (quarantined,
+    #: ambiguous_local_time), "earlier" or "later" (of the two instants; harmonize.clock)
+    ambiguous_times: str | None = None
     columns: Mapping[str, Mapping[str, str]] = field(default_factory=dict)
     units: Mapping[str, str] = field(default_factory=dict)
     constants: Mapping[str, Any] = field(default_factory=dict)
@@ -130,6 +133,11 @@ def load_profile(path: str | Path, study: Study, table_fields: Mapping[str, set[
         "".encode(encoding)
     except LookupError:
         raise ConfigError(path, "source.encoding", f"'{encoding}' is not a text encoding Python knows") from None
+    ambiguous_times = src.get("ambiguous_times")
+    if ambiguous_times is not None and ambiguous_times not in ("earlier", "later"):
+        raise ConfigError(path, "source.ambiguous_times",
+                          f"{ambiguous_times!r} is not known; expected \"earlier\" or \"later\" (which of the two "
+                          "instants a local time that happens twice when the clocks go back means)")
     dayfirst = src.get("dayfirst", False)
     if not isinstance(dayfirst, bool):
         raise ConfigError(path, "source.dayfirst", f"expected true or false, got {dayfirst!r}")
@@ -162,6 +170,7 @@ def load_profile(path: str | Path, study: Study, table_fields: Mapping[str, set[
         delimiter=src.get("delimiter"),
         dayfirst=dayfirst,
         time_format=src.get("time_format"),
+        ambiguous_times=ambiguous_times,
         columns=columns,
         units=dict(units),
         constants=dict(constants),

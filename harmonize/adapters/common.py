@@ -8,7 +8,7 @@ import pandas as pd
 from harmonize.adapters.reading import Rejections, _short, closest_names
 from harmonize.errors import ReasonCode
 from harmonize.study import Study, normalise_name, taxon_lookup
-from harmonize.tagging import inside_domain, normalise_lon
+from harmonize.tagging import inside_domain, normalise_lon, tag_season
 
 #: Plural and variant spellings of life stages, mapped to the singular (common practice).
 LIFE_STAGE_SPELLINGS = {
@@ -130,6 +130,18 @@ def reject_records_of_events(
     return alive
 
 
+def target_years(events: pd.DataFrame, study: Study) -> pd.DataFrame:
+    """event_id and the year in which targets.csv first_year/last_year windows are read: the
+    event's season_year on the study calendar (the year it is stored and exported under),
+    taken from ``season_year`` where the adapter set it (a transect segment's midpoint),
+    else from ``event_start``."""
+    if "season_year" in events and events["season_year"].notna().all():
+        year = events["season_year"]
+    else:
+        year = tag_season(events["event_start"], study.seasons, study.timezone)[1]
+    return pd.DataFrame({"event_id": events["event_id"].to_numpy(), "year": np.asarray(year, dtype=np.int64)})
+
+
 def zero_fill(
     events: pd.DataFrame,
     caught: pd.DataFrame,
@@ -152,7 +164,7 @@ def zero_fill(
     Parameters
     ----------
     events
-        event_id and year of every accepted event.
+        event_id and year of every accepted event (:func:`target_years`: its season year).
     caught
         event_id, variable, life_stage of every accepted record.
     blocked

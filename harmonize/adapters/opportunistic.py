@@ -30,6 +30,7 @@ from harmonize.adapters.common import (
     reject_outside_domain,
     resolve_taxa,
     stage_unresolved_events,
+    target_years,
     zero_fill,
 )
 from harmonize.adapters.reading import (
@@ -43,6 +44,7 @@ from harmonize.adapters.reading import (
     resolve_columns,
 )
 from harmonize.adapters.registry import register
+from harmonize.clock import add_hours
 from harmonize.contract import fields
 from harmonize.errors import ConfigError, ReasonCode
 from harmonize.privacy import pseudonymise, study_salt
@@ -138,7 +140,7 @@ class OpportunisticAdapter(Adapter):
             duration_h = duration_h / 60.0
         end_text = work.frame["_time_end"] if "_time_end" in work.frame else None
         if end_text is not None:
-            interval_end, _, _ = parse_times(end_text.astype("string").str.strip().replace("", pd.NA), prof)
+            interval_end = parse_times(end_text.astype("string").str.strip().replace("", pd.NA), prof)[0]
             span_h = ((interval_end - rows["time"]).dt.total_seconds() / 3600).to_numpy(float, na_value=np.nan)
             duration_h = np.where(np.isnan(duration_h) & (span_h > 0), span_h, duration_h)
         if "samplingEffort" in work.frame and "duration_min" not in prof.column_map("rows"):
@@ -234,7 +236,7 @@ class OpportunisticAdapter(Adapter):
         blocked = pd.DataFrame({"event_id": rec["key"][lost], "variable": rec["guess"][lost]}).dropna()
         complete_events = events[events["complete"]]
         zeros = zero_fill(
-            complete_events.assign(year=complete_events["event_start"].dt.year)[["event_id", "year"]],
+            target_years(complete_events, study),
             rec[ok].rename(columns={"key": "event_id"})[["event_id", "variable", "life_stage"]],
             blocked, study, profile.protocol, [("count", "1")],
         )
@@ -380,8 +382,7 @@ def _events(live: pd.DataFrame) -> pd.DataFrame:
     agg = agg.join(first[["lat", "lon", "observer_id", "pos"]])
     blank_rows = live[live["taxon_text"].isna() | (live["taxon_text"] == "")].drop_duplicates("key").set_index("key")["pos"]
     agg["source_row"] = agg.index.to_series().map(blank_rows).fillna(agg["pos"]).astype("int64") + 1
-    duration = pd.to_timedelta(agg["duration_h"], unit="h")
-    end = (agg["start"] + duration).where(agg["duration_h"].notna())
+    end = add_hours(agg["start"], agg["duration_h"].to_numpy(float))
     end = end.where(end > agg["last"], agg["last"])
     # a record dated to the day only may have been made at any time of that day
     end = end.where(~(agg["date_only"] & agg["duration_h"].isna()), agg["start"] + pd.Timedelta(days=1))

@@ -32,12 +32,14 @@ from harmonize.adapters.common import (
     reject_records_of_events,
     resolve_taxa,
     stage_unresolved_events,
+    target_years,
     unattributed_note,
     unattributed_records,
     zero_fill,
 )
 from harmonize.adapters.reading import Rejections
 from harmonize.adapters.registry import register
+from harmonize.clock import add_hours
 from harmonize.errors import ConfigError, ReasonCode
 from harmonize.profile import Profile
 from harmonize.study import Study
@@ -160,7 +162,7 @@ class PlanktonAdapter(Adapter):
         })
         values = _count_values(counts)
         zeros = zero_fill(
-            tows.assign(year=tows["event_start"].dt.year)[["event_id", "year"]].iloc[:0 if unattributed else None],
+            target_years(tows, study).iloc[:0 if unattributed else None],
             counts[["event_id", "variable", "life_stage"]], blocked, study, profile.protocol, [("count", "1")],
         )
         zeros = zeros.assign(variable_kind="taxon", zero_filled=True, flags=[()] * len(zeros),
@@ -256,7 +258,7 @@ def _tows(ev: pd.DataFrame, study: Study, rej: Rejections, rules: TowRules) -> t
     reject_outside_domain(study, lon[checkable], lat[checkable], pos[checkable], "events", rej, "station")
     alive = ~rej.mask("events", n)
 
-    event_end = end.where(end.notna(), (start + pd.to_timedelta(duration_h, unit="h")).dt.round("us"))
+    event_end = end.where(end.notna(), add_hours(start, duration_h))
     tows = pd.DataFrame({
         "event_id": ev["event_id"],
         "event_start": start,

@@ -37,6 +37,7 @@ from harmonize.adapters.common import (
     reject_records_of_events,
     resolve_taxa,
     stage_unresolved_events,
+    target_years,
     unattributed_note,
     unattributed_records,
     zero_fill,
@@ -48,6 +49,7 @@ from harmonize.adapters.reading import (
     resolve_columns,
 )
 from harmonize.adapters.registry import register
+from harmonize.clock import add_hours
 from harmonize.contract import fields
 from harmonize.errors import ConfigError, ReasonCode
 from harmonize.privacy import pseudonymise, study_salt
@@ -162,7 +164,7 @@ class TransectAdapter(Adapter):
             "row": np.flatnonzero(rc_ok) + 1,
         })
         values = _bird_values(birds)
-        events_year = segments.assign(year=segments["event_start"].dt.year)[["event_id", "year"]]
+        events_year = target_years(segments, study)
         events_year = events_year.iloc[:0] if unattributed else events_year
         parts = []
         for b in ((ON_WATER, IN_FLIGHT) if split else (None,)):
@@ -271,9 +273,9 @@ def _segments(
     reject_outside_domain(study, lon[checkable], lat[checkable], pos[checkable], "events", rej, "segment midpoint")
     alive = ~rej.mask("events", n)
 
-    event_end = end.where(end.notna(), (start + pd.to_timedelta(duration_h, unit="h")).dt.round("us"))
+    event_end = end.where(end.notna(), add_hours(start, duration_h))
     midpoint_time = start + (event_end - start).fillna(pd.Timedelta(0)) / 2
-    season, season_year = tag_season(midpoint_time, study.seasons)
+    season, season_year = tag_season(midpoint_time, study.seasons, study.timezone)
     segments = pd.DataFrame({
         "event_id": ev["event_id"],
         "event_start": start,

@@ -27,12 +27,14 @@ from harmonize.adapters.common import (
     reject_records_of_events,
     resolve_taxa,
     stage_unresolved_events,
+    target_years,
     unattributed_note,
     unattributed_records,
     zero_fill,
 )
 from harmonize.adapters.reading import Rejections, resolve_columns
 from harmonize.adapters.registry import register
+from harmonize.clock import add_hours
 from harmonize.contract import fields
 from harmonize.errors import ReasonCode
 from harmonize.profile import Profile
@@ -147,7 +149,7 @@ class TrawlAdapter(Adapter):
         quantities = [(q, u) for q, u, col in (("biomass", "kg", "weight"), ("count", "1", "count"))
                       if col in provided or col in profile.constants]
         zeros = _zero_values(
-            hauls.assign(year=hauls["event_start"].dt.year)[["event_id", "year"]].iloc[:0 if unattributed else None],
+            target_years(hauls, study).iloc[:0 if unattributed else None],
             catch[["event_id", "variable", "life_stage"]], blocked, study, profile.protocol, quantities, haul_ids,
         )
         unresolved = set(stage_unresolved_events(catch, study, profile.protocol))
@@ -240,7 +242,7 @@ class TrawlAdapter(Adapter):
         on_bottom = ~np.isfinite(gear)
         depth = np.where(on_bottom, bottom, gear)
         safe_h = np.where(alive & np.isfinite(duration_h), duration_h, 0.0)
-        event_end = end.where(end.notna(), start + pd.to_timedelta(safe_h, unit="h").round("s"))
+        event_end = end.where(end.notna(), add_hours(start, safe_h))
         hauls = pd.DataFrame({
             "event_id": ev["event_id"],
             "event_start": start,

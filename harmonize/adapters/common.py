@@ -130,6 +130,16 @@ def reject_records_of_events(
     return alive
 
 
+def catch_unknown(events: pd.DataFrame, lost_event_ids: object, kept_event_ids: pd.Series) -> np.ndarray:
+    """Mask of events that lost records to quarantine and kept none: what they caught or
+    counted is unknown, so no zero is inferred for any target there (docs/audit.md: such an
+    event is not a sample)."""
+    lost = pd.Index(pd.unique(pd.Series(np.asarray(lost_event_ids, dtype=object)).dropna()))
+    kept = pd.Index(distinct_present(kept_event_ids))
+    ids = events["event_id"]
+    return (codes_in(ids, lost) >= 0) & (codes_in(ids, kept) < 0)
+
+
 def target_years(events: pd.DataFrame, study: Study) -> pd.DataFrame:
     """event_id and the year in which targets.csv first_year/last_year windows are read: the
     event's season_year on the study calendar (the year it is stored and exported under),

@@ -27,6 +27,7 @@ import pyarrow as pa
 from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
 from harmonize.adapters.common import (
     STAGE_UNRESOLVED,
+    catch_unknown,
     normalise_life_stage,
     reject_outside_domain,
     reject_records_of_events,
@@ -162,7 +163,8 @@ class PlanktonAdapter(Adapter):
         })
         values = _count_values(counts)
         zeros = zero_fill(
-            target_years(tows, study).iloc[:0 if unattributed else None],
+            target_years(tows[~catch_unknown(tows, incomplete, counts["event_id"])], study)
+            .iloc[:0 if unattributed else None],
             counts[["event_id", "variable", "life_stage"]], blocked, study, profile.protocol, [("count", "1")],
         )
         zeros = zeros.assign(variable_kind="taxon", zero_filled=True, flags=[()] * len(zeros),

@@ -33,6 +33,7 @@ import pyproj
 from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
 from harmonize.adapters.common import (
     STAGE_UNRESOLVED,
+    catch_unknown,
     reject_outside_domain,
     reject_records_of_events,
     resolve_taxa,
@@ -164,7 +165,7 @@ class TransectAdapter(Adapter):
             "row": np.flatnonzero(rc_ok) + 1,
         })
         values = _bird_values(birds)
-        events_year = target_years(segments, study)
+        events_year = target_years(segments[~catch_unknown(segments, incomplete, birds["event_id"])], study)
         events_year = events_year.iloc[:0] if unattributed else events_year
         parts = []
         for b in ((ON_WATER, IN_FLIGHT) if split else (None,)):

@@ -21,6 +21,7 @@ import pyproj
 from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
 from harmonize.adapters.common import (
     STAGE_UNRESOLVED,
+    catch_unknown,
     distinct_present,
     normalise_life_stage,
     reject_outside_domain,
@@ -149,7 +150,8 @@ class TrawlAdapter(Adapter):
         quantities = [(q, u) for q, u, col in (("biomass", "kg", "weight"), ("count", "1", "count"))
                       if col in provided or col in profile.constants]
         zeros = _zero_values(
-            target_years(hauls, study).iloc[:0 if unattributed else None],
+            target_years(hauls[~catch_unknown(hauls, list(incomplete), catch["event_id"])], study)
+            .iloc[:0 if unattributed else None],
             catch[["event_id", "variable", "life_stage"]], blocked, study, profile.protocol, quantities, haul_ids,
         )
         unresolved = set(stage_unresolved_events(catch, study, profile.protocol))

@@ -251,6 +251,8 @@ _EVENT_ARROW = pa.schema([
     ("depth_min_m", pa.float64()), ("depth_max_m", pa.float64()), ("bottom_depth_m", pa.float64()),
     ("effort", pa.float64()), ("effort_unit", pa.string()), ("observer_id", pa.string()),
     ("event_flags", pa.list_(pa.string())), ("source_row", pa.int64()), ("gear", pa.string()),
+    ("track_start_lat", pa.float64()), ("track_start_lon", pa.float64()),
+    ("track_end_lat", pa.float64()), ("track_end_lon", pa.float64()),
 ])
 _VALUE_ARROW = pa.schema([
     ("event_id", pa.string()), ("variable", pa.string()), ("variable_kind", pa.string()),

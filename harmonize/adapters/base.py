@@ -22,6 +22,8 @@ EVENT_COLUMNS = (
     "event_id", "event_start", "event_end", "lat", "lon", "depth_min_m", "depth_max_m",
     "bottom_depth_m", "on_bottom", "effort", "effort_unit", "flags", "source_row", "observer_id",
 )
+# track_start_lat, track_start_lon, track_end_lat, track_end_lon (optional, default null): the
+# start and end positions of an event with a track (tow, segment), for twins and maps.
 VALUE_COLUMNS = (
     "event_id", "variable", "variable_kind", "life_stage", "quantity", "value", "unit",
     "zero_filled", "flags", "source_record_rows", "n_values", "n_vessels", "no_effort",

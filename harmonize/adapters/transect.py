@@ -294,6 +294,10 @@ def _segments(
         "effort_unit": "km2",
         "source_row": pos + 1,
         "observer_id": observer_id,
+        "track_start_lat": np.where(have_end, slat, np.nan),
+        "track_start_lon": np.where(have_end, normalise_lon(slon), np.nan),
+        "track_end_lat": np.where(have_end, elat, np.nan),
+        "track_end_lon": np.where(have_end, normalise_lon(elon), np.nan),
     })[alive].reset_index(drop=True)
     return segments, {"length_given": (~have_end)[alive], "strip_width_default": width_default[alive],
                       "speed_unchecked": ~np.isfinite(speed_kn)[alive]}

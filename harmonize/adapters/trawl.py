@@ -259,6 +259,10 @@ class TrawlAdapter(Adapter):
             "effort_unit": "km2",
             "source_row": pos + 1,
             "observer_id": pd.NA,
+            "track_start_lat": np.where(have_end, slat, np.nan),
+            "track_start_lon": np.where(have_end, normalise_lon(slon), np.nan),
+            "track_end_lat": np.where(have_end, elat, np.nan),
+            "track_end_lon": np.where(have_end, normalise_lon(elon), np.nan),
             "bottom_temperature": ev["bottom_temperature"],
         })[alive].reset_index(drop=True)
         flag_lists = []

@@ -120,9 +120,11 @@ def test_a_store_written_before_the_new_columns_still_opens(study_dir: Path) -> 
     _plankton(study_dir)
     for part in (study_dir / "store" / "observations").rglob("*.parquet"):
         table = pq.read_table(part, partitioning=None)
-        old = table.drop_columns([c for c in ("count_observed", "subsample_fraction", "provider_record_id")
+        old = table.drop_columns([c for c in ("count_observed", "subsample_fraction", "provider_record_id",
+                                              "track_start_lat", "track_start_lon", "track_end_lat", "track_end_lon")
                                   if c in table.column_names])
         pq.write_table(old, part)
     with Store(study_dir / "store").connect(read_only=True) as con:
-        rows = con.sql("SELECT count(*), count(count_observed), count(provider_record_id) FROM observations").fetchall()
-    assert rows[0][0] > 0 and rows[0][1:] == (0, 0)
+        rows = con.sql("SELECT count(*), count(count_observed), count(provider_record_id), count(track_end_lon) "
+                       "FROM observations").fetchall()
+    assert rows[0][0] > 0 and rows[0][1:] == (0, 0, 0)

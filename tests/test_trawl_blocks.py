@@ -23,8 +23,12 @@ from harmonize.adapters.common import zero_fill
 from harmonize.ingest import assemble, prepare, store_output
 
 #: Content digest of the messy trawl fixture's store (observation rows without ingest ids),
-#: made by the implementation before this change (commit 8ccd175: one table, Python lists).
-MESSY_DIGEST = "a3db7e83f7d39f30fcf4d34140224cc4208bd1b643293a5684daec0f9e1b78a7"
+#: made by the implementation before the block-wise change (commit 8ccd175: one table, Python
+#: lists), then renewed once for issue 17, whose changes to this content are deliberate and
+#: tested on their own: new nullable columns (count_observed, subsample_fraction,
+#: provider_record_id, track_*), the tow's track positions, and target windows read in season
+#: years (haul H011 of 2019-12-15 is in season year 2020: no zeros of the 2015-2019 target).
+MESSY_DIGEST = "64a2df5cbcfc27489ec566dadeb9dbbcd82b4a1603f095d4a53556df91b5d579"
 
 
 def _content(study_dir: Path, ingest_id: str | None = None) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:

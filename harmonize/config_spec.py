@@ -154,7 +154,9 @@ STUDY = Table({
         "cell_size_km": _num("Side of a square grid cell (km).", exclusive_minimum=0),
         "domain": _text("GeoJSON polygon(s), lon/lat WGS84; records outside go to quarantine."),
         "strata": _text("Optional GeoJSON polygons, each with a property \"stratum\"."),
-    }, "Space: name, CRS, grid and domain.", required=("name", "crs", "cell_size_km", "domain")),
+        "timezone": _text("IANA zone of the study calendar: seasons, season years and target year windows "
+                          "are computed in it; stored times stay UTC.", default="UTC"),
+    }, "Space: name, CRS, grid and domain; the study calendar's time zone.", required=("name", "crs", "cell_size_km", "domain")),
     "seasons": Map(Value("array", "Months (1..12) of the season; every month exactly once.", items="integer"),
                    "Season name = list of months; default: DJF, MAM, JJA, SON."),
     "depth_layers": TableArray(Table({
@@ -198,6 +200,8 @@ SOURCE = Table({
     "dayfirst": Value("boolean", "Dates such as 03/04/2021 are day first.", default=False),
     "time_format": _text("strftime format of the times (ISO 8601 when absent)."),
     "description": _text("Free text about the source."),
+    "ambiguous_times": _text("A local time that happens twice at a clock change: which of the two instants "
+                             "(absent: quarantined as ambiguous_local_time).", enum=("earlier", "later")),
 }, "Who the provider is and how its files are written.", required=("id", "kind", "provider_type"))
 
 #: A provider column name, or [date column, time column] for a date-time field.

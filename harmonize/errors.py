@@ -28,6 +28,9 @@ class ReasonCode(StrEnum):
     UNKNOWN_GEAR = "unknown_gear"
     # an absence reported outside a complete checklist (opportunistic records)
     ABSENCE_OUTSIDE_CHECKLIST = "absence_outside_checklist"
+    # a local time (no offset) at a clock change: it happens twice, or never (harmonize.clock)
+    AMBIGUOUS_LOCAL_TIME = "ambiguous_local_time"
+    NONEXISTENT_LOCAL_TIME = "nonexistent_local_time"
 
 
 class HarmonizeError(Exception):

@@ -27,7 +27,14 @@ from harmonize.errors import ConfigError, DuplicateIngestError, HarmonizeError
 from harmonize.profile import Profile, find_profile, load_profile, peek_kind
 from harmonize.store import IngestRecord, Store
 from harmonize.study import Study
-from harmonize.tagging import Grid, assign_strata, normalise_lon, tag_depth_layer, tag_season
+from harmonize.tagging import (
+    Grid,
+    assign_strata,
+    calendar_year,
+    normalise_lon,
+    tag_depth_layer,
+    tag_season,
+)
 from harmonize.twins import twin_settings
 
 logger = logging.getLogger(__name__)
@@ -255,6 +262,8 @@ _EVENT_ARROW = pa.schema([
     ("depth_min_m", pa.float64()), ("depth_max_m", pa.float64()), ("bottom_depth_m", pa.float64()),
     ("effort", pa.float64()), ("effort_unit", pa.string()), ("observer_id", pa.string()),
     ("event_flags", pa.list_(pa.string())), ("source_row", pa.int64()), ("gear", pa.string()),
+    ("track_start_lat", pa.float64()), ("track_start_lon", pa.float64()),
+    ("track_end_lat", pa.float64()), ("track_end_lon", pa.float64()),
 ])
 _VALUE_ARROW = pa.schema([
     ("event_id", pa.string()), ("variable", pa.string()), ("variable_kind", pa.string()),
@@ -262,6 +271,7 @@ _VALUE_ARROW = pa.schema([
     ("zero_filled", pa.bool_()), ("value_flags", pa.list_(pa.string())),
     ("source_record_rows", pa.list_(pa.int64())), ("n_values", pa.int32()), ("n_vessels", pa.int32()),
     ("no_effort", pa.bool_()), ("behavior", pa.string()),
+    ("count_observed", pa.float64()), ("subsample_fraction", pa.float64()), ("provider_record_id", pa.string()),
 ])
 
 
@@ -273,8 +283,8 @@ def tag_events(events: pd.DataFrame, study: Study) -> pd.DataFrame:
     ev = events.copy()
     ev["lon"] = normalise_lon(ev["lon"].to_numpy(float))
     start = pd.to_datetime(ev["event_start"])
-    season, season_year = tag_season(start, study.seasons)
-    ev["year"] = start.dt.year.astype("Int32")
+    season, season_year = tag_season(start, study.seasons, study.timezone)
+    ev["year"] = calendar_year(start, study.timezone)
     ev["season"] = _keep(ev, "season", season)
     ev["season_year"] = _keep(ev, "season_year", season_year)
     on_bottom = ev["on_bottom"].fillna(False).to_numpy(bool) if "on_bottom" in ev else None

@@ -43,7 +43,10 @@ class Profile:
     delimiter: str | None = None
     dayfirst: bool = False
     time_format: str | None = None
-    #: adapter field -> provider column, or (date column, time column) for a date-time field
+    #: how a local time that happens twice at a clock change is read: None (quarantined,
+    #: ambiguous_local_time), "earlier" or "later" (of the two instants; harmonize.clock)
+    ambiguous_times: str | None = None
+        #: adapter field -> provider column, or (date column, time column) for a date-time field
     columns: Mapping[str, Mapping[str, str | tuple[str, str]]] = field(default_factory=dict)
     units: Mapping[str, str] = field(default_factory=dict)
     constants: Mapping[str, Any] = field(default_factory=dict)
@@ -140,6 +143,11 @@ def load_profile(path: str | Path, study: Study, table_fields: Mapping[str, set[
         "".encode(encoding)
     except LookupError:
         raise ConfigError(path, "source.encoding", f"'{encoding}' is not a text encoding Python knows") from None
+    ambiguous_times = src.get("ambiguous_times")
+    if ambiguous_times is not None and ambiguous_times not in ("earlier", "later"):
+        raise ConfigError(path, "source.ambiguous_times",
+                          f"{ambiguous_times!r} is not known; expected \"earlier\" or \"later\" (which of the two "
+                          "instants a local time that happens twice when the clocks go back means)")
     dayfirst = src.get("dayfirst", False)
     if not isinstance(dayfirst, bool):
         raise ConfigError(path, "source.dayfirst", f"expected true or false, got {dayfirst!r}")
@@ -191,6 +199,7 @@ def load_profile(path: str | Path, study: Study, table_fields: Mapping[str, set[
         delimiter=src.get("delimiter"),
         dayfirst=dayfirst,
         time_format=src.get("time_format"),
+        ambiguous_times=ambiguous_times,
         columns=columns,
         units=dict(units),
         constants=dict(constants),

@@ -5,6 +5,7 @@ from __future__ import annotations
 import hashlib
 import json
 import tomllib
+import zoneinfo
 from collections.abc import Mapping
 from dataclasses import dataclass, field
 from functools import cached_property
@@ -69,6 +70,9 @@ class Study:
     min_vessels: int = 3
     raw: Mapping[str, Any] = field(default_factory=dict)
     input_digests: Mapping[str, str] = field(default_factory=dict)
+    #: IANA time zone of the study calendar (``[study] timezone``): seasons, season years,
+    #: calendar years and targets.csv year windows are those of the local date there.
+    timezone: str = "UTC"
 
     @property
     def file(self) -> Path:
@@ -152,6 +156,12 @@ def load_study(root: str | Path = ".") -> Study:
         for _, geom in strata:
             shapely.prepare(geom)
 
+    timezone = reader.string(sec, "study.timezone") if "timezone" in sec else "UTC"
+    try:
+        zoneinfo.ZoneInfo(timezone)
+    except (zoneinfo.ZoneInfoNotFoundError, ValueError):
+        raise ConfigError(path, "study.timezone",
+                          f"'{timezone}' is not an IANA time zone (e.g. 'UTC', 'Pacific/Auckland')") from None
     seasons = _read_seasons(reader, raw.get("seasons"))
     layers = _read_layers(reader, raw.get("depth_layers"))
     depth = reader.table("depth", required=False)
@@ -194,6 +204,7 @@ def load_study(root: str | Path = ".") -> Study:
         min_vessels=min_vessels,
         raw=raw,
         input_digests=digests,
+        timezone=timezone,
     )
 
 

@@ -30,6 +30,8 @@ crs = "EPSG:6933"             # equal-area CRS (metres) for the grid cells; EPSG
 cell_size_km = 25             # side of a square grid cell
 domain = "domain.geojson"     # polygon(s) in lon/lat (WGS84); records outside go to quarantine
 # strata = "strata.geojson"   # optional polygons, each with a property "stratum"
+# timezone = "UTC"            # IANA zone of the study calendar: seasons, season years and
+                              # targets.csv year windows follow the local date there
 
 [seasons]                     # every month 1..12 exactly once
 winter = [12, 1, 2]           # a season holding December and January belongs to January's year
@@ -180,7 +182,9 @@ def profile_template(kind: str) -> str:
     ]
     if kind in _PROTOCOL:
         lines.append(f'protocol = "{_PROTOCOL[kind]}"   # key into targets.csv (zero-filling)')
-    lines += ['timezone = "UTC"              # zone of times written without an offset', ""]
+    lines += ['timezone = "UTC"              # zone of times written without an offset',
+              '# ambiguous_times = "earlier"   # a local time that happens twice (clocks going back):',
+              '                              # "earlier" or "later" instant; unset: quarantined', ""]
     units = []
     # An adapter with several file forms (effort: pings or logbook) lists each form's fields.
     forms = getattr(adapter, "forms", None)

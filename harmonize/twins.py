@@ -3,7 +3,13 @@
 The same animal is often reported by an agency survey and a volunteer, or by two
 volunteers of one party. A record of an opportunistic source is a *probable duplicate* when
 a better-ranked record of the same taxon lies within its source's distance and time windows
-(profile ``[duplicates]``; defaults 2.0 km and 60 min, common practice). Nothing is deleted:
+(profile ``[duplicates]``; defaults 2.0 km and 60 min, common practice). The distance to a
+record of an event with a track (a transect segment, a trawl tow) is the distance to the
+nearest point of its track, not to its midpoint. Two counts are twins only when the
+opportunistic count is at most :data:`MAX_COUNT_RATIO` times the other: 200 gulls on a
+checklist are not a repeat of the 1 gull a transect counted. Records are matched one by one,
+so a complete checklist with its own effort keeps every record that no better record
+repeats. Nothing is deleted:
 the record keeps its row, the ``observations`` view adds the flag ``probable_duplicate``, and
 the ``twins`` table links it to its twin.
 
@@ -57,6 +63,9 @@ MAX_DISTANCE_KM = 50.0
 MAX_MINUTES = 7 * 24 * 60.0
 DEFAULT_RANKS = {"agency": 0, "model": 0, "remote_sensing": 0, "industry": 1, "volunteer": 2}
 HIGH_COUNT_MIN_N = 20
+#: A count more than this many times its would-be twin's count is another sighting: two
+#: observers counting one flock usually agree within a factor of two (common practice).
+MAX_COUNT_RATIO = 2.0
 DUPLICATE_FLAG = "probable_duplicate"
 HIGH_COUNT_FLAG = "high_count"
 
@@ -143,6 +152,27 @@ def _distance_sql(a: str, b: str) -> str:
             f"pow({WGS84_A_M * (1 - _E2)!r} / pow({w}, 3) * radians({b}.lat - {a}.lat), 2)) / 1000.0")
 
 
+def _track_distance_sql(a: str, b: str) -> str:
+    """SQL: km from point ``a`` to the nearest point of ``b``'s track (start-end segment), on
+    the tangent plane of the WGS84 ellipsoid at ``a`` (radii as in :func:`local_distance_km`;
+    the nearest point of a straight segment by the clamped projection, common geometry)."""
+    phi = f"radians({a}.lat)"
+    w = f"sqrt(1 - {_E2!r} * pow(sin({phi}), 2))"
+    east = f"{WGS84_A_M!r} / {w} * cos({phi})"
+    north = f"{WGS84_A_M * (1 - _E2)!r} / pow({w}, 3)"
+
+    def xy(lat: str, lon: str) -> tuple[str, str]:
+        return (f"({east} * radians((({lon} - {a}.lon + 540.0) % 360.0) - 180.0))",
+                f"({north} * radians({lat} - {a}.lat))")
+
+    x1, y1 = xy(f"{b}.ty1", f"{b}.tx1")
+    x2, y2 = xy(f"{b}.ty2", f"{b}.tx2")
+    dx, dy = f"({x2} - {x1})", f"({y2} - {y1})"
+    length2 = f"({dx} * {dx} + {dy} * {dy})"
+    t = f"CASE WHEN {length2} > 0 THEN greatest(0.0, least(1.0, -({x1} * {dx} + {y1} * {dy}) / {length2})) ELSE 0.0 END"
+    return f"sqrt(pow({x1} + ({t}) * {dx}, 2) + pow({y1} + ({t}) * {dy}, 2)) / 1000.0"
+
+
 def ensure_tables(con: duckdb.DuckDBPyConnection) -> None:
     """Create the twin tables in a store opened for writing (no-op when they exist)."""
     con.execute(_TABLES_SQL)
@@ -211,7 +241,11 @@ def refresh(con: duckdb.DuckDBPyConnection, base: str = "observations_base") -> 
                coalesce(s.rank, {_RANK_SQL}) AS rank,
                CASE WHEN o.quantity = 'presence' THEN 1 ELSE 0 END AS qorder,
                CASE WHEN list_contains(o.flags, 'date_only') THEN 1 ELSE 0 END AS vague,
-               s.distance_km AS win_km, s.minutes AS win_min, (s.source_id IS NOT NULL AND o.source_kind = 'opportunistic') AS flaggable
+               s.distance_km AS win_km, s.minutes AS win_min, (s.source_id IS NOT NULL AND o.source_kind = 'opportunistic') AS flaggable,
+               o.quantity, o.value, o.track_start_lat AS ty1, o.track_start_lon AS tx1, o.track_end_lat AS ty2,
+               o.track_end_lon AS tx2,
+               (o.track_start_lat IS NOT NULL AND o.track_start_lon IS NOT NULL AND o.track_end_lat IS NOT NULL
+                AND o.track_end_lon IS NOT NULL) AS tracked
         FROM {base} o SEMI JOIN wanted w ON w.variable = o.variable LEFT JOIN _twin_sources s ON s.source_id = o.source_id
         WHERE o.variable_kind = 'taxon' AND NOT coalesce(o.zero_filled, false) AND o.value > 0
           AND o.quantity IN ('count', 'presence', 'biomass') AND o.lat IS NOT NULL AND o.lon IS NOT NULL
@@ -221,6 +255,12 @@ def refresh(con: duckdb.DuckDBPyConnection, base: str = "observations_base") -> 
     ).fetchall()[0]
     if km is None:
         return 0
+    # a record near any point of a track may lie up to half its length from the track's
+    # midpoint (the point that is binned): widen the search by the longest half-track
+    half = con.execute("SELECT coalesce(max(" + _distance_sql("s", "e") + ") / 2, 0) FROM "
+                       "(SELECT ty1 AS lat, tx1 AS lon, ty2, tx2 FROM _twin_cand WHERE tracked) s, "
+                       "LATERAL (SELECT s.ty2 AS lat, s.tx2 AS lon) e").fetchall()[0][0]
+    km = km + float(half) * 1.001 + 1e-6
     # Bins twice the largest window. Each record of an opportunistic source probes exactly the
     # bins its window box touches (about 2 per axis); a degree of latitude is >= 110.57 km and
     # a degree of longitude >= 111.32 cos(lat) km on WGS84, so the boxes below are on the safe
@@ -235,8 +275,9 @@ def refresh(con: duckdb.DuckDBPyConnection, base: str = "observations_base") -> 
         SELECT cid, hash(variable) AS var, CAST(floor(lat / $1) AS BIGINT) AS iy,
                CAST(floor(lon / $2) AS BIGINT) AS ix, CAST(floor(t0 / $3) AS BIGINT) AS it
         FROM _twin_cand""", [lat_bin, lon_bin, time_bin])
-    box_lat = "c.win_km / 110.0"
-    box_lon = f"least(180.0, c.win_km / (111.0 * cos(radians(least(abs(c.lat) + {lat_bin!r}, 89.0)))))"
+    reach = f"(c.win_km + {float(half) * 1.001 + 1e-6!r})"
+    box_lat = f"{reach} / 110.0"
+    box_lon = f"least(180.0, {reach} / (111.0 * cos(radians(least(abs(c.lat) + {lat_bin!r}, 89.0)))))"
     con.execute(f"""
         CREATE OR REPLACE TEMP TABLE _twin_pairs AS
         WITH c AS (SELECT cid, hash(variable) AS var, lat, lon, t0, t1, win_km, win_min FROM _twin_cand WHERE flaggable),
@@ -255,7 +296,8 @@ def refresh(con: duckdb.DuckDBPyConnection, base: str = "observations_base") -> 
         WITH pairs AS (
             SELECT a.record_id, a.ingest_id, b.record_id AS twin_record_id, b.ingest_id AS twin_ingest_id,
                    a.source_id, b.source_id AS twin_source_id, a.variable,
-                   {_distance_sql('a', 'b')} AS distance_km,
+                   CASE WHEN b.tracked THEN {_track_distance_sql('a', 'b')} ELSE {_distance_sql('a', 'b')} END
+                       AS distance_km,
                    greatest(0, b.t0 - a.t1, a.t0 - b.t1) / 60.0 AS minutes,
                    a.win_km, a.win_min, b.rank AS twin_rank
             FROM _twin_pairs p JOIN _twin_cand a ON a.cid = p.a_cid JOIN _twin_cand b ON b.cid = p.b_cid
@@ -263,6 +305,8 @@ def refresh(con: duckdb.DuckDBPyConnection, base: str = "observations_base") -> 
               AND (b.source_id <> a.source_id OR a.observer_id IS NULL OR b.observer_id IS NULL
                    OR a.observer_id <> b.observer_id OR (a.t0 < b.t1 AND b.t0 < a.t1) OR a.t0 = b.t0)
               AND (NOT b.flaggable OR a.qorder + b.qorder > 0 OR (a.t0 < b.t1 AND b.t0 < a.t1) OR a.t0 = b.t0)
+              -- a count far above its would-be twin's is another sighting, not a repeat of it
+              AND NOT (a.quantity = 'count' AND b.quantity = 'count' AND a.value > {MAX_COUNT_RATIO!r} * b.value)
               AND {_OUTRANKS})
         SELECT record_id, ingest_id, twin_record_id, twin_ingest_id, source_id, twin_source_id, variable,
                distance_km, minutes

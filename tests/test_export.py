@@ -103,15 +103,15 @@ def test_wide_matrix_values_and_rules(study: Study, built: ExportStore) -> None:
     wide = read_wide(study).set_index("event_id")
     assert list(wide.index) == ["T4", "T1", "T2", "T3", "V1", "@V2"]   # samples only, by time
     # density = count / area swept, life stages summed: (10 + 4) / 0.05 km2 (arithmetic)
-    assert wide.loc["T1", "Ostravix keldensis"] == pytest.approx(280.0)
-    assert wide.loc["T2", "Ostravix keldensis"] == 0.0          # inferred absence stays 0
-    assert np.isnan(wide.loc["T3", "Calverion rubrum"])         # not recorded stays null
-    assert wide.loc["@V2", "Procellix keldica"] == 5.0          # no effort: the plain value
+    assert wide.loc["T1", "Ostravix keldensis (per km2)"] == pytest.approx(280.0)
+    assert wide.loc["T2", "Ostravix keldensis (per km2)"] == 0.0          # inferred absence stays 0
+    assert np.isnan(wide.loc["T3", "Calverion rubrum (per km2)"])         # not recorded stays null
+    assert wide.loc["@V2", "Procellix keldica (count, no effort)"] == 5.0  # no effort: the plain value
     assert pd.isna(wide.loc["@V2", "effort_unit"])
     # presence-only records are listed as text, never numbers; twins are left out
     assert wide.loc["@V2", "detected_presence_only"] == "Aukelle minima|Larivox pallens"
-    assert "Aukelle minima" not in wide.columns
-    assert np.isnan(wide.loc["@V2", "Larivox pallens"])
+    assert not any(c.startswith("Aukelle minima") for c in wide.columns)
+    assert not any(c.startswith("Larivox pallens") and pd.notna(wide.loc["@V2", c]) for c in wide.columns)
     assert wide.loc["T1", "sea_water_temperature_at_sea_floor"] == 6.5
 
 
@@ -120,19 +120,20 @@ def test_wide_sums_to_long(study: Study, built: ExportStore) -> None:
     long = read_long(study)
     taxa = long[(long["variable_kind"] == "taxon") & (long["quantity"] == "count")
                 & ~long["flags"].map(lambda f: "probable_duplicate" in list(f))]
-    measure = taxa["density"].where(taxa["effort"].notna(), taxa["value"])
-    expected = measure.groupby(taxa["variable"]).sum()
+    measure = taxa["density"].where(taxa["density"].notna(), taxa["value"])
+    unit = ("per " + taxa["effort_unit"]).where(taxa["density"].notna(), "count, no effort")
+    expected = measure.groupby(taxa["variable"] + " (" + unit + ")").sum()
     got = wide[expected.index].sum()
     pd.testing.assert_series_equal(got, expected, check_names=False)
 
 
 def test_wide_by_life_stage_and_biomass(study: Study, built: ExportStore, tmp_path: Path) -> None:
     wide = read_wide(study, by_life_stage=True).set_index("event_id")
-    assert wide.loc["T1", "Ostravix keldensis [juvenile]"] == pytest.approx(4.0 / 0.05)
-    assert wide.loc["T1", "Ostravix keldensis [adult]"] == pytest.approx(10.0 / 0.05)
+    assert wide.loc["T1", "Ostravix keldensis [juvenile] (per km2)"] == pytest.approx(4.0 / 0.05)
+    assert wide.loc["T1", "Ostravix keldensis [adult] (per km2)"] == pytest.approx(10.0 / 0.05)
     result = export_wide(study, tmp_path / "wide.parquet", quantity="biomass")
     table = pd.read_parquet(result.path).set_index("event_id")
-    assert table.loc["T1", "Ostravix keldensis"] == pytest.approx(12.5 / 0.05)
+    assert table.loc["T1", "Ostravix keldensis (kg per km2)"] == pytest.approx(12.5 / 0.05)
     meta = read_export_metadata(result.path)
     assert meta["options"]["quantity"] == "biomass"
     assert meta["options"]["rows_probable_duplicate_excluded"] == 1

@@ -137,8 +137,8 @@ def test_straddling_event_is_one_row_with_all_its_rows(study: Study) -> None:
     assert list(wide["event_id"]) == ["P1", "P2", "P9", "P3", "P4", "P5", "P7"]
     p9 = wide.set_index("event_id").loc["P9"]
     # density = count / volume filtered, summed over both ingests' rows (arithmetic)
-    assert p9["Ostravix keldensis"] == pytest.approx(5.0 / 25.0)
-    assert p9["Pelagon argentea"] == pytest.approx(3.0 / 25.0)
+    assert p9["Ostravix keldensis (per m3)"] == pytest.approx(5.0 / 25.0)
+    assert p9["Pelagon argentea (per m3)"] == pytest.approx(3.0 / 25.0)
     assert p9["event_start"] == pd.Timestamp("2019-05-01 10:00")
     assert wide.set_index("event_id").loc["P5", "detected_presence_only"] == "Pelagon argentea"
     one = read_wide(study, ExportFilters.build(sources="coastal_tows"), run_rows=ONE_PASS)

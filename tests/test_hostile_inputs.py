@@ -311,7 +311,7 @@ def test_names_built_to_break_sql_are_stored_verbatim(tmp_path: Path, capsys: py
     with duckdb.connect() as con:
         wide_cols = [r[0] for r in con.execute("DESCRIBE SELECT * FROM read_csv(?)", [str(tmp_path / "wide.csv")]).fetchall()]
         long_ids = con.execute("SELECT DISTINCT source_id FROM read_parquet(?)", [str(tmp_path / "long.parquet")]).fetchall()
-    assert taxon in wide_cols
+    assert any(c.startswith(taxon + " (") for c in wide_cols)
     assert long_ids == [("keld'mar\"; DROP TABLE ingests; --",)]
     assert Store(load_study(root).store_dir).check() == []
     # the quarantine export keeps the names verbatim too
@@ -357,7 +357,7 @@ def test_study_folder_names_with_glob_and_url_characters_work(tmp_path: Path, ca
         code, _, err = cli(capsys, "--study", str(root), *args)
         assert code == 0, (args, err)
     with Store(root / "store").connect() as con:
-        assert con.execute("SELECT count(*) FROM observations").fetchall()[0][0] == 31
+        assert con.execute("SELECT count(*) FROM observations").fetchall()[0][0] == 29  # H011: season year 2020, outside a 2015-2019 target window
 
 
 def test_study_folder_with_a_question_mark_is_refused(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:

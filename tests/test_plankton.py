@@ -142,7 +142,10 @@ def test_messy_tows_volumes_densities_layers(plankton_dir: Path) -> None:
     # 120 larvae counted in a half split -> 240; 30 adults in a quarter + 10 in a whole -> 130
     assert row.loc[("P001", "Thysseia borealis", "larva"), "value"] == 240
     copelix = row.loc[("P001", "Copelix marina", "adult")]
-    assert copelix["value"] == 130 and sorted(copelix["flags"]) == ["counts_incomplete", "merged_rows", "raised_from_subsample"]
+    assert copelix["value"] == 130 and sorted(copelix["flags"]) == [
+        "counts_incomplete", "merged_rows", "mixed_subsample_fractions", "raised_from_subsample"]
+    # what was counted stays: 30 + 10 = 40 animals, 40 / 130 of the sample (issue 17)
+    assert copelix["count_observed"] == 40 and copelix["subsample_fraction"] == pytest.approx(40 / 130)
     assert list(copelix["source_record_rows"]) == [3, 4]
     assert row.loc[("P002", "Copelix marina", "adult"), "density"] == pytest.approx(512 / expected_volume["P002"])
     assert row.loc[("P003", "Copelix marina", "adult"), "value"] == 3  # "ADULTS" read as adult

@@ -23,8 +23,12 @@ from harmonize.adapters.common import zero_fill
 from harmonize.ingest import assemble, prepare, store_output
 
 #: Content digest of the messy trawl fixture's store (observation rows without ingest ids),
-#: made by the implementation before this change (commit 8ccd175: one table, Python lists).
-MESSY_DIGEST = "a3db7e83f7d39f30fcf4d34140224cc4208bd1b643293a5684daec0f9e1b78a7"
+#: made by the implementation before the block-wise change (commit 8ccd175: one table, Python
+#: lists), then renewed once for issue 17, whose changes to this content are deliberate and
+#: tested on their own: new nullable columns (count_observed, subsample_fraction,
+#: provider_record_id, track_*), the tow's track positions, and target windows read in season
+#: years (haul H011 of 2019-12-15 is in season year 2020: no zeros of the 2015-2019 target).
+MESSY_DIGEST = "64a2df5cbcfc27489ec566dadeb9dbbcd82b4a1603f095d4a53556df91b5d579"
 
 
 def _content(study_dir: Path, ingest_id: str | None = None) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
@@ -174,7 +178,8 @@ def test_tiny_blocks_write_the_same_store_as_one_block(study_dir: Path, monkeypa
 
 def _zero_fill_reference(events: pd.DataFrame, caught: pd.DataFrame, blocked: pd.DataFrame,
                          targets: pd.DataFrame, quantities: list[tuple[str, str]]) -> pd.DataFrame:
-    """The merge-based zero_fill before integer codes (commit 8ccd175), for comparison."""
+    """The merge-based zero_fill before integer codes (commit 8ccd175), for comparison, with
+    the shared rule that an unstaged catch blocks the staged zeros of its taxon."""
     pairs = events[["event_id", "year"]].merge(
         targets.rename(columns={"taxon": "variable"})[["variable", "life_stage", "first_year", "last_year"]],
         how="cross")
@@ -186,7 +191,11 @@ def _zero_fill_reference(events: pd.DataFrame, caught: pd.DataFrame, blocked: pd
     staged = caught[["event_id", "variable", "life_stage"]].dropna().drop_duplicates().assign(_hit_stage=True)
     pairs = pairs.merge(any_stage, on=["event_id", "variable"], how="left")
     pairs = pairs.merge(staged, on=["event_id", "variable", "life_stage"], how="left")
-    met = np.where(pairs["life_stage"].isna(), pairs["_hit"].notna(), pairs["_hit_stage"].notna())
+    # a catch without a stage may be any stage: it meets staged targets too (issue 17)
+    unstaged = caught[caught["life_stage"].isna()][["event_id", "variable"]].drop_duplicates().assign(_any=True)
+    pairs = pairs.merge(unstaged, on=["event_id", "variable"], how="left")
+    met = np.where(pairs["life_stage"].isna(), pairs["_hit"].notna(),
+                   pairs["_hit_stage"].notna() | pairs["_any"].notna())
     pairs = pairs[~met]
     if len(blocked):
         pairs = pairs.merge(blocked[["event_id", "variable"]].drop_duplicates().assign(_blocked=True),

@@ -247,16 +247,18 @@ def test_agency_transects_and_overlapping_volunteers_end_to_end(study_dir: Path)
     with store.connect() as con:
         dup = con.execute("""SELECT o.source_row, o.variable, t.twin_source_id FROM observations o
                              JOIN twins t ON t.record_id = o.record_id AND t.ingest_id = o.ingest_id
-                             WHERE list_contains(o.flags, 'probable_duplicate') ORDER BY o.source_row""").fetchall()
+                             WHERE list_contains(o.flags, 'probable_duplicate') ORDER BY o.source_row, o.variable""").fetchall()
         agency_flagged = con.execute("""SELECT count(*) FROM observations WHERE source_kind = 'transect'
                                         AND list_contains(flags, 'probable_duplicate')""").fetchall()[0][0]
         loose = con.execute("""SELECT count(*) FROM observations WHERE source_kind = 'opportunistic'
                                AND quantity = 'presence' AND (zero_filled OR density IS NOT NULL OR effort IS NOT NULL)""").fetchall()[0][0]
     # V01 (fulmar, 0.7 km, 10 min after segment S01), V02 (gull, 15 min) and the fulmar of the
-    # complete checklist CL9 (1.7 km, overlapping S01) repeat the ship's sightings; V03 (4 h
-    # later) and V04 (33 km north) do not
+    # complete checklist CL9 (1.7 km, overlapping S01) repeat the ship's sightings; so does
+    # its little aukelle (1 bird, 1.4 km from the start of S02's track, where the ship counted
+    # 5: distances are to the nearest point of a track, issue 17); V03 (4 h later) and V04
+    # (33 km north) do not
     assert dup == [(1, "Procellix keldica", "keldmar_seabirds"), (2, "Larivox pallens", "keldmar_seabirds"),
-                   (5, "Procellix keldica", "keldmar_seabirds")]
+                   (5, "Aukelle minima", "keldmar_seabirds"), (5, "Procellix keldica", "keldmar_seabirds")]
     assert agency_flagged == 0 and loose == 0
 
 

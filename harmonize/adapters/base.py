@@ -23,13 +23,18 @@ EVENT_COLUMNS = (
     "event_id", "event_start", "event_end", "lat", "lon", "depth_min_m", "depth_max_m",
     "bottom_depth_m", "on_bottom", "effort", "effort_unit", "flags", "source_row", "observer_id",
 )
+# track_start_lat, track_start_lon, track_end_lat, track_end_lon (optional, default null): the
+# start and end positions of an event with a track (tow, segment), for twins and maps.
 VALUE_COLUMNS = (
     "event_id", "variable", "variable_kind", "life_stage", "quantity", "value", "unit",
     "zero_filled", "flags", "source_record_rows", "n_values", "n_vessels", "no_effort",
-    "behavior",
+    "behavior", "count_observed", "subsample_fraction", "provider_record_id",
 )
 # behavior (optional, default null): Darwin Core behavior of the counted animals (seabirds
 # "in_flight" / "on_water"); part of the record key, so both can be stored for one taxon.
+# count_observed, subsample_fraction (optional, default null): for a count raised from a
+# subsample, the number counted and the share counted (value = count_observed / fraction).
+# provider_record_id (optional, default null): the provider's id(s) of the records behind a value.
 # no_effort (optional, default False): the value is not sampled by the event's effort (e.g. a
 # temperature measured during a haul); its effort, effort_unit and density stay null.
 

@@ -1,4 +1,4 @@
-"""Steps that several adapters share: domain test, taxon names, orphan records, zero-filling."""
+"""Steps that several adapters share: domain test, taxon names, life stages, orphan records, zero-filling."""
 
 from __future__ import annotations
 
@@ -8,7 +8,27 @@ import pandas as pd
 from harmonize.adapters.reading import Rejections, _short, closest_names
 from harmonize.errors import ReasonCode
 from harmonize.study import Study, normalise_name, taxon_lookup
-from harmonize.tagging import inside_domain, normalise_lon
+from harmonize.tagging import inside_domain, normalise_lon, tag_season
+
+#: Plural and variant spellings of life stages, mapped to the singular (common practice).
+LIFE_STAGE_SPELLINGS = {
+    "adults": "adult", "larvae": "larva", "larvas": "larva", "juveniles": "juvenile",
+    "eggs": "egg", "nauplii": "nauplius", "copepodites": "copepodite", "zoeae": "zoea",
+    "zoeas": "zoea", "megalopae": "megalopa", "post-larva": "postlarva", "post-larvae": "postlarva",
+    "postlarvae": "postlarva",
+}
+#: Life-stage words that do not name one stage: a record so marked may hold any stage of its
+#: taxon, like a record without a stage (common practice in catch and count sheets).
+COARSE_LIFE_STAGES = frozenset({"unknown", "unstaged", "undetermined", "mixed", "all", "unsorted"})
+#: Event flag: a record of a taxon with a staged target had no (or a coarse) life stage, so no
+#: staged zero of that taxon was inferred for the event.
+STAGE_UNRESOLVED = "stage_unresolved"
+
+
+def normalise_life_stage(stage: pd.Series) -> pd.Series:
+    """Life stages in lower case and singular ("Larvae" -> "larva"); blanks stay null."""
+    folded = stage.astype("string").str.strip().str.casefold().replace("", pd.NA)
+    return folded.replace(LIFE_STAGE_SPELLINGS).astype("string")
 
 
 def reject_outside_domain(
@@ -140,6 +160,28 @@ def reject_records_of_events(
     return alive
 
 
+def catch_unknown(events: pd.DataFrame, lost_event_ids: object, kept_event_ids: pd.Series) -> np.ndarray:
+    """Mask of events that lost records to quarantine and kept none: what they caught or
+    counted is unknown, so no zero is inferred for any target there (docs/audit.md: such an
+    event is not a sample)."""
+    lost = pd.Index(pd.unique(pd.Series(np.asarray(lost_event_ids, dtype=object)).dropna()))
+    kept = pd.Index(distinct_present(kept_event_ids))
+    ids = events["event_id"]
+    return (codes_in(ids, lost) >= 0) & (codes_in(ids, kept) < 0)
+
+
+def target_years(events: pd.DataFrame, study: Study) -> pd.DataFrame:
+    """event_id and the year in which targets.csv first_year/last_year windows are read: the
+    event's season_year on the study calendar (the year it is stored and exported under),
+    taken from ``season_year`` where the adapter set it (a transect segment's midpoint),
+    else from ``event_start``."""
+    if "season_year" in events and events["season_year"].notna().all():
+        year = events["season_year"]
+    else:
+        year = tag_season(events["event_start"], study.seasons, study.timezone)[1]
+    return pd.DataFrame({"event_id": events["event_id"].to_numpy(), "year": np.asarray(year, dtype=np.int64)})
+
+
 def zero_fill(
     events: pd.DataFrame,
     caught: pd.DataFrame,
@@ -151,10 +193,18 @@ def zero_fill(
 ) -> pd.DataFrame:
     """Zero rows for target taxa of the protocol that an event did not record.
 
+    The one zero-filling rule of every adapter: an event gets a zero for a target (taxon,
+    life stage) of its protocol, within the target's first_year..last_year window, unless
+    it recorded that taxon at that stage (at any stage for an unstaged target), recorded the
+    taxon without a stage or with a coarse one (:data:`COARSE_LIFE_STAGES`: such a record
+    may be any stage, so it blocks every staged zero of its taxon; see
+    :func:`stage_unresolved_events` for the event flag), or lost a record of the taxon to
+    quarantine (``blocked``).
+
     Parameters
     ----------
     events
-        event_id and year of every accepted event.
+        event_id and year of every accepted event (:func:`target_years`: its season year).
     caught
         event_id, variable, life_stage of every accepted record.
     blocked
@@ -223,6 +273,11 @@ def zero_pairs(
         b_ev, b_var = codes_in(blocked["event_id"], ev_ids), codes_in(blocked["variable"], taxa)
         ok = (b_ev >= 0) & (b_var >= 0)
         closed[b_ev[ok], b_var[ok]] = True
+    # a record without a stage (or with a coarse one) may be any stage of its taxon: it
+    # meets every staged target of that taxon, so no staged zero is inferred beside it
+    any_stage = np.zeros_like(hit)
+    unstaged = seen & _coarse_stage(caught["life_stage"])
+    any_stage[c_ev[unstaged], c_var[unstaged]] = True
     year = events["year"].to_numpy(dtype=np.int64)
     first = targets["first_year"].astype("Float64").fillna(0).to_numpy(dtype=float)
     last = targets["last_year"].astype("Float64").fillna(9999).to_numpy(dtype=float)
@@ -234,11 +289,35 @@ def zero_pairs(
             met = hit[:, v]
         else:  # a staged target only by that stage
             same = seen & (c_var == v) & (codes_in(caught["life_stage"], pd.Index([stage])) == 0)
-            met = np.zeros(len(ev_ids), dtype=bool)
+            met = any_stage[:, v].copy()
             met[c_ev[same]] = True
         zero[:, t] = (year >= first[t]) & (year <= last[t]) & ~met[ev_code] & ~closed[ev_code, v]
     rows, pair_target = np.nonzero(zero)  # row-major: events, then targets (a cross join's order)
     return rows.astype(np.int64), targets.iloc[pair_target].reset_index(drop=True)
+
+
+def _coarse_stage(stage: pd.Series) -> np.ndarray:
+    """True where a record's life stage is missing or does not name one stage."""
+    if isinstance(stage.dtype, pd.CategoricalDtype):  # one test per category, not per row
+        per_category = np.append(stage.cat.categories.isin(COARSE_LIFE_STAGES), True)
+        codes = stage.cat.codes.to_numpy()
+        return per_category[np.where(codes < 0, len(per_category) - 1, codes)]
+    return (stage.isna() | stage.isin(COARSE_LIFE_STAGES)).to_numpy(dtype=bool)
+
+
+def stage_unresolved_events(caught: pd.DataFrame, study: Study, protocol: str | None) -> np.ndarray:
+    """Events with a record whose life stage is missing or coarse, of a taxon that the
+    protocol targets by stage: :func:`zero_fill` infers none of that taxon's staged zeros
+    there, and the adapters flag the event ``stage_unresolved``.
+
+    Returns the distinct event ids.
+    """
+    targets = study.targets[study.targets["protocol"] == protocol] if protocol else study.targets.iloc[:0]
+    staged = pd.Index(targets.loc[targets["life_stage"].notna(), "taxon"].unique())
+    if staged.empty or caught.empty:
+        return np.array([], dtype=object)
+    hit = (codes_in(caught["variable"], staged) >= 0) & _coarse_stage(caught["life_stage"])
+    return distinct_present(caught["event_id"][hit])
 
 
 def codes_in(values: pd.Series, index: pd.Index) -> np.ndarray:

@@ -57,13 +57,22 @@ from harmonize.adapters.reading import (
     resolve_columns,
 )
 from harmonize.adapters.registry import register
+from harmonize.clock import sql_local_problem, sql_offset_text, sql_resolved
 from harmonize.contract import FieldSpec, fields
 from harmonize.engines import current_engine
 from harmonize.errors import ConfigError, InputFileError, ReasonCode
 from harmonize.privacy import pseudonymise, study_salt
 from harmonize.profile import Profile
 from harmonize.study import Study
-from harmonize.tagging import NEAR_BOTTOM, Grid, inside_domain, normalise_lon, season_year_offsets
+from harmonize.tagging import (
+    NEAR_BOTTOM,
+    Grid,
+    inside_domain,
+    normalise_lon,
+    season_year_offsets,
+    tag_season,
+)
+from harmonize.tagging import season_sql as study_season_sql
 
 #: Default fishing speed window (knots) for bottom trawls: common practice, supported by
 #: Skaar et al. 2011 and Mills et al. 2007 (otter trawl 1-6 kn, beam trawl 2-8 kn).
@@ -303,12 +312,8 @@ def split_tows_by_cell(
 # ---------------------------------------------------------------------------- seasons
 
 def season_sql(study: Study, column: str) -> tuple[str, str]:
-    """SQL expressions (season name, season_year) of a TIMESTAMP column."""
-    names = [study.month_to_season[m] for m in range(1, 13)]
-    offsets = season_year_offsets(study.seasons)[1:].tolist()
-    names_sql = "[" + ", ".join("'" + n.replace("'", "''") + "'" for n in names) + "]"
-    return (f"({names_sql})[month({column})]",
-            f"CAST(year({column}) + ({offsets})[month({column})] AS INTEGER)")
+    """SQL expressions (season name, season_year) of a UTC TIMESTAMP column, on the study calendar."""
+    return study_season_sql(column, study.seasons, study.timezone)
 
 
 def season_bounds(study: Study, season: pd.Series, season_year: pd.Series) -> tuple[pd.Series, pd.Series]:
@@ -324,6 +329,9 @@ def season_bounds(study: Study, season: pd.Series, season_year: pd.Series) -> tu
     last = np.array([ends[s] for s in season], dtype=np.int64).reshape(-1, 2)
     start = pd.to_datetime(pd.DataFrame({"year": sy + first[:, 0], "month": first[:, 1], "day": 1}))
     end = pd.to_datetime(pd.DataFrame({"year": sy + last[:, 0], "month": last[:, 1], "day": 1})) + pd.DateOffset(months=1)
+    if study.timezone != "UTC":  # local midnights of the study calendar, as UTC instants
+        start, end = (t.dt.tz_localize(study.timezone, ambiguous=np.ones(len(t), bool), nonexistent="shift_forward")
+                      .dt.tz_convert("UTC").dt.tz_localize(None) for t in (start, end))
     return start.astype("datetime64[us]"), end.astype("datetime64[us]")
 
 
@@ -514,7 +522,59 @@ class PingReader:
         tokens = ", ".join(_sql_text(t) for t in _NA)
         return f"(length({text}) <= 5 AND lower(trim({text})) IN ({tokens}))"
 
+    def _local_sql(self, text: str) -> str:
+        """SQL: the wall-clock TIMESTAMP of a time read in the profile's zone (NULL for a time
+        with an offset, and when the profile's zone is UTC, which has no clock changes)."""
+        if self.profile.timezone == "UTC":
+            return "CAST(NULL AS TIMESTAMP)"
+        if self.profile.time_format:
+            return f"try_strptime({text}, {_sql_text(self.profile.time_format)})"
+        if self.profile.dayfirst:
+            fmts = ["%d/%m/%Y %H:%M:%S", "%d/%m/%Y %H:%M", "%d-%m-%Y %H:%M:%S", "%d-%m-%Y %H:%M",
+                    "%d.%m.%Y %H:%M:%S", "%d.%m.%Y %H:%M"]
+            return f"try_strptime({text}, [{', '.join(map(_sql_text, fmts))}])"
+        plain = (f"(strpos(substr({text}, 11), '+') = 0 AND strpos(substr({text}, 11), '-') = 0 "
+                 f"AND right({text}, 1) BETWEEN '0' AND '9')")
+        return f"CASE WHEN {plain} THEN TRY_CAST({text} AS TIMESTAMP) END"
+
     def _time_sql(self, text: str) -> str:
+        """SQL: the UTC TIMESTAMP of a time cell, with harmonize.clock's rule at clock changes
+        (a nonexistent local time is NULL; an ambiguous one is NULL unless the profile's
+        ``ambiguous_times`` picks the earlier or later instant)."""
+        if self.profile.timezone == "UTC":
+            return self._instant_sql(text)
+        local = self._local_sql(text)
+        problem = sql_local_problem(local, self.profile.timezone)
+        choice = self.profile.ambiguous_times
+        resolved = (f"timezone('UTC', {sql_resolved(local, self.profile.timezone, choice)})" if choice
+                    else "CAST(NULL AS TIMESTAMP)")
+        return (f"CASE {problem} WHEN 'nonexistent' THEN CAST(NULL AS TIMESTAMP) WHEN 'ambiguous' THEN {resolved} "
+                f"ELSE {self._instant_sql(text)} END")
+
+    def _clock_sql(self, text: str) -> str:
+        """SQL: 'nonexistent' or 'ambiguous' for a local time at a clock change, else NULL."""
+        if self.profile.timezone == "UTC":
+            return "CAST(NULL AS VARCHAR)"
+        return sql_local_problem(self._local_sql(text), self.profile.timezone)
+
+    def _clock_message_sql(self, kind: str) -> str:
+        """SQL: the sentence of :func:`harmonize.clock.clock_change_message` for ping rows."""
+        zone = self.profile.timezone
+        local = self._local_sql("time_txt")
+        z = _sql_text(zone)
+        before = sql_offset_text(f"timezone({z}, {local} - INTERVAL 3 HOUR)", zone)
+        after = sql_offset_text(f"timezone({z}, {local} + INTERVAL 3 HOUR)", zone)
+        label = _sql_text(self._label("time"))
+        if kind == "ambiguous":
+            return (f"printf('%s holds ''%s'', a local time that happens twice in %s: the clocks went back from %s "
+                    f"to %s on %s; give the time with its offset, or set [source] ambiguous_times = \"earlier\" "
+                    f"or \"later\" in the profile', {label}, cell_txt(time_txt), {z}, {before}, {after}, "
+                    f"strftime({local}, '%Y-%m-%d'))")
+        return (f"printf('%s holds ''%s'', a local time that does not exist in %s: the clocks went forward from %s "
+                f"to %s on %s and skipped it; check the time and the profile''s [source] timezone', {label}, "
+                f"cell_txt(time_txt), {z}, {before}, {after}, strftime({local}, '%Y-%m-%d'))")
+
+    def _instant_sql(self, text: str) -> str:
         fmt = self.profile.time_format
         tz = _sql_text(self.profile.timezone)
         if fmt:
@@ -566,6 +626,10 @@ class PingReader:
             desc = self.specs[f].description.split(";")[0].rstrip(".")
             checks.append((cond, ReasonCode.MISSING_VALUE,
                            _sql_text(f"{self._label(f)} is empty; a {desc[:1].lower()}{desc[1:]} is required")))
+        checks.append(("clock = 'nonexistent'", ReasonCode.NONEXISTENT_LOCAL_TIME,
+                       self._clock_message_sql("nonexistent") if self.profile.timezone != "UTC" else "NULL"))
+        checks.append(("clock = 'ambiguous' AND t IS NULL", ReasonCode.AMBIGUOUS_LOCAL_TIME,
+                       self._clock_message_sql("ambiguous") if self.profile.timezone != "UTC" else "NULL"))
         checks.append(("t IS NULL", ReasonCode.BAD_TIME,
                        f"printf('%s holds ''%s'', which is not a date-time (expected e.g. 2021-06-14T08:30:00Z)', "
                        f"{_sql_text(self._label('time'))}, cell_txt(time_txt))"))
@@ -605,7 +669,7 @@ class PingReader:
                 SELECT *, {reason} AS reason FROM (
                     SELECT *, lon_in - 360.0 * floor((lon_in + 180.0) / 360.0) AS lon FROM (
                         SELECT row, nf, odd, vessel_id_txt, gear_txt, time_txt, lat_txt, lon_txt, speed_kn_txt,
-                               {self._time_sql('time_txt')} AS t,
+                               {self._time_sql('time_txt')} AS t, {self._clock_sql('time_txt')} AS clock,
                                TRY_CAST(lat_txt AS DOUBLE) AS lat, TRY_CAST(lon_txt AS DOUBLE) AS lon_in,
                                TRY_CAST(speed_kn_txt AS DOUBLE) * {self._speed_factor()!r} AS sog
                         FROM (SELECT CAST({rownum} AS BIGINT) AS row, {texts}, {extra} FROM {src}))))"""
@@ -848,7 +912,7 @@ class PingReader:
             names = [self.study.month_to_season[m] for m in range(1, 13)]
             offsets = season_year_offsets(self.study.seasons)[1:].tolist()
             result = fishing_hours(files, self.settings.max_speed_kn, self.settings.max_gap_h, names, offsets,
-                                   scheduler)
+                                   scheduler, timezone=self.study.timezone)
         finally:
             shutil.rmtree(scratch, ignore_errors=True)
         con.register("dask_spikes", result.spikes)
@@ -1103,10 +1167,8 @@ def _read_logbook(path: Path, profile: Profile, study: Study, settings: FishingS
 
 
 def _season_of(study: Study, times: pd.Series) -> tuple[np.ndarray, np.ndarray]:
-    offsets = season_year_offsets(study.seasons)
-    month = times.dt.month.to_numpy(np.int64)
-    season = np.asarray(study.month_to_season)[month]
-    return season.astype(object), (times.dt.year.to_numpy(np.int64) + offsets[month]).astype(np.int64)
+    season, season_year = tag_season(times, study.seasons, study.timezone)
+    return season.to_numpy(dtype=object), season_year.to_numpy(dtype=np.int64)
 
 
 __all__ = [

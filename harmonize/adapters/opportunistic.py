@@ -24,7 +24,15 @@ import pandas as pd
 
 from harmonize.adapters import darwin_core
 from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
-from harmonize.adapters.common import reject_outside_domain, resolve_taxa, zero_fill
+from harmonize.adapters.common import (
+    STAGE_UNRESOLVED,
+    normalise_life_stage,
+    reject_outside_domain,
+    resolve_taxa,
+    stage_unresolved_events,
+    target_years,
+    zero_fill,
+)
 from harmonize.adapters.reading import (
     NA_TOKENS,
     RawTable,
@@ -36,6 +44,7 @@ from harmonize.adapters.reading import (
     resolve_columns,
 )
 from harmonize.adapters.registry import register
+from harmonize.clock import add_hours
 from harmonize.contract import fields
 from harmonize.errors import ConfigError, ReasonCode
 from harmonize.privacy import pseudonymise, study_salt
@@ -144,7 +153,7 @@ class OpportunisticAdapter(Adapter):
             duration_h = duration_h / 60.0
         end_text = work.frame["_time_end"] if "_time_end" in work.frame else None
         if end_text is not None:
-            interval_end, _, _ = parse_times(end_text.astype("string").str.strip().replace("", pd.NA), prof)
+            interval_end = parse_times(end_text.astype("string").str.strip().replace("", pd.NA), prof)[0]
             span_h = ((interval_end - rows["time"]).dt.total_seconds() / 3600).to_numpy(float, na_value=np.nan)
             duration_h = np.where(np.isnan(duration_h) & (span_h > 0), span_h, duration_h)
         if "samplingEffort" in work.frame and "duration_min" not in prof.column_map("rows"):
@@ -203,8 +212,9 @@ class OpportunisticAdapter(Adapter):
             "checklist": rows["checklist_id"].str.strip(), "complete": rows["complete"].fillna(False).astype(bool),
             "duration_h": duration_h, "distance_km": rows["distance_km"].to_numpy(float),
             "date_only": date_only, "count": count, "absent": absent,
+            "provider_id": rows["record_id"].astype("string").str.strip().replace("", pd.NA),
             "taxon_text": rows["taxon"].str.strip(),
-            "life_stage": rows["life_stage"].str.strip().str.casefold(),
+            "life_stage": normalise_life_stage(rows["life_stage"]),
             "behavior": rows["behavior"].str.strip().str.casefold().str.replace(r"[\s-]+", "_", regex=True),
         })
         rec["key"] = _event_keys(rec)
@@ -241,7 +251,7 @@ class OpportunisticAdapter(Adapter):
         blocked = pd.DataFrame({"event_id": rec["key"][lost], "variable": rec["guess"][lost]}).dropna()
         complete_events = events[events["complete"]]
         zeros = zero_fill(
-            complete_events.assign(year=complete_events["event_start"].dt.year)[["event_id", "year"]],
+            target_years(complete_events, study),
             rec[ok].rename(columns={"key": "event_id"})[["event_id", "variable", "life_stage"]],
             blocked, study, profile.protocol, [("count", "1")],
         )
@@ -260,7 +270,10 @@ class OpportunisticAdapter(Adapter):
                     "can be stored; set [source] protocol to a protocol of targets.csv")
             events = events[~empty]
         incomplete = set(rec["key"][lost])
-        events["flags"] = [f + (["checklist_incomplete"] if e in incomplete else [])
+        unresolved = set(stage_unresolved_events(
+            rec[ok & is_complete].rename(columns={"key": "event_id"}), study, profile.protocol))
+        events["flags"] = [f + ([STAGE_UNRESOLVED] if e in unresolved else [])
+                           + (["checklist_incomplete"] if e in incomplete else [])
                            for f, e in zip(events["flags"], events["event_id"], strict=True)]
         events = events.drop(columns=["complete"])
         if progress:
@@ -401,8 +414,7 @@ def _events(live: pd.DataFrame) -> pd.DataFrame:
     agg = agg.join(first[["lat", "lon", "observer_id", "pos"]])
     blank_rows = live[live["taxon_text"].isna() | (live["taxon_text"] == "")].drop_duplicates("key").set_index("key")["pos"]
     agg["source_row"] = agg.index.to_series().map(blank_rows).fillna(agg["pos"]).astype("int64") + 1
-    duration = pd.to_timedelta(agg["duration_h"], unit="h")
-    end = (agg["start"] + duration).where(agg["duration_h"].notna())
+    end = add_hours(agg["start"], agg["duration_h"].to_numpy(float))
     end = end.where(end > agg["last"], agg["last"])
     # a record dated to the day only may have been made at any time of that day
     end = end.where(~(agg["date_only"] & agg["duration_h"].isna()), agg["start"] + pd.Timedelta(days=1))
@@ -438,7 +450,7 @@ def _events(live: pd.DataFrame) -> pd.DataFrame:
 def _values(ok: pd.DataFrame, events: pd.DataFrame) -> pd.DataFrame:
     """Counts (complete checklists) or presences (everything else), one row per taxon x stage x behavior."""
     cols = ["event_id", "variable", "life_stage", "behavior", "quantity", "unit", "value", "variable_kind",
-            "zero_filled", "flags", "source_record_rows", "n_values"]
+            "zero_filled", "flags", "source_record_rows", "n_values", "provider_record_id"]
     if ok.empty:
         return pd.DataFrame({c: [] for c in cols})
     complete = ok["key"].map(events.set_index("event_id")["complete"]).fillna(False).astype(bool)
@@ -448,6 +460,7 @@ def _values(ok: pd.DataFrame, events: pd.DataFrame) -> pd.DataFrame:
     agg = frame.groupby(keys, dropna=False, sort=False).agg(
         total=("count", lambda s: s.sum(min_count=1)), counted=("counted", "sum"), n=("row", "size"),
         rows=("row", list), complete=("complete", "first"),
+        provider_ids=("provider_id", lambda s: "|".join(s.dropna()) or None),
     ).reset_index()
     counts = agg["complete"] & agg["total"].notna()
     flags = []
@@ -461,4 +474,5 @@ def _values(ok: pd.DataFrame, events: pd.DataFrame) -> pd.DataFrame:
         "behavior": agg["behavior"], "quantity": np.where(counts, "count", "presence"), "unit": "1",
         "value": np.where(counts, agg["total"].to_numpy(float), 1.0), "variable_kind": "taxon",
         "zero_filled": False, "flags": flags, "source_record_rows": agg["rows"], "n_values": agg["n"],
+        "provider_record_id": agg["provider_ids"].astype("string"),
     })

@@ -26,15 +26,21 @@ import pyarrow as pa
 
 from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
 from harmonize.adapters.common import (
+    STAGE_UNRESOLVED,
+    catch_unknown,
+    normalise_life_stage,
     reject_outside_domain,
     reject_records_of_events,
     resolve_taxa,
+    stage_unresolved_events,
+    target_years,
     unattributed_note,
     unattributed_records,
     zero_fill,
 )
 from harmonize.adapters.reading import Rejections
 from harmonize.adapters.registry import register
+from harmonize.clock import add_hours
 from harmonize.errors import ConfigError, ReasonCode
 from harmonize.profile import Profile
 from harmonize.study import Study
@@ -45,15 +51,6 @@ from harmonize.tagging import normalise_lon
 #: 5 knots (2.6 m/s) (common practice). A flowmeter distance faster than this over the tow's
 #: duration is a misread counter, a wrong rotor constant or a wrong time.
 MAX_NET_SPEED_M_S = 3.0
-
-#: Plural and variant spellings of life stages, mapped to the singular (common practice).
-LIFE_STAGE_SPELLINGS = {
-    "adults": "adult", "larvae": "larva", "larvas": "larva", "juveniles": "juvenile",
-    "eggs": "egg", "nauplii": "nauplius", "copepodites": "copepodite", "zoeae": "zoea",
-    "zoeas": "zoea", "megalopae": "megalopa", "post-larva": "postlarva", "post-larvae": "postlarva",
-    "postlarvae": "postlarva",
-}
-
 
 def mouth_area_m2(diameter_m: np.ndarray) -> np.ndarray:
     """Area of a round net mouth, A = pi d^2 / 4 (m2)."""
@@ -153,40 +150,34 @@ class PlanktonAdapter(Adapter):
         # belong to any tow: no tow's counts are known complete, so no absence is inferred.
         unattributed = unattributed_records(rc_ok, rc["event_id"])
         notes = [unattributed_note(rc_raw.path.name, unattributed, "count", "tow")] if unattributed else []
-        # A count without a stage could be any stage: no stage of that taxon is inferred absent.
-        staged_taxa = set(study.targets.loc[study.targets["life_stage"].notna(), "taxon"])
-        unstaged = rc_ok & stage.isna().to_numpy() & taxon.isin(staged_taxa).fillna(False).to_numpy()
-        blocked = pd.concat([blocked, pd.DataFrame({"event_id": rc["event_id"][unstaged],
-                                                    "variable": taxon[unstaged]})]).dropna()
+        blocked = blocked.dropna()
 
         counts = pd.DataFrame({
             "event_id": rc["event_id"][rc_ok],
             "variable": taxon[rc_ok],
             "life_stage": stage[rc_ok],
             "count": raised_count(rc["count"][rc_ok].to_numpy(float), rc["split_fraction"][rc_ok].to_numpy(float)),
+            "observed": rc["count"][rc_ok].to_numpy(float),
             "split": rc["split_fraction"][rc_ok].fillna(1.0),
             "row": np.flatnonzero(rc_ok) + 1,
         })
         values = _count_values(counts)
         zeros = zero_fill(
-            tows.assign(year=tows["event_start"].dt.year)[["event_id", "year"]].iloc[:0 if unattributed else None],
+            target_years(tows[~catch_unknown(tows, incomplete, counts["event_id"])], study)
+            .iloc[:0 if unattributed else None],
             counts[["event_id", "variable", "life_stage"]], blocked, study, profile.protocol, [("count", "1")],
         )
         zeros = zeros.assign(variable_kind="taxon", zero_filled=True, flags=[()] * len(zeros),
                              source_record_rows=[()] * len(zeros), n_values=0)
         values = pd.concat([values, zeros], ignore_index=True)
         values["n_vessels"] = pd.NA
+        flags[STAGE_UNRESOLVED] = tows["event_id"].isin(
+            stage_unresolved_events(counts, study, profile.protocol)).to_numpy()
         flags["counts_incomplete"] = tows["event_id"].isin(incomplete).to_numpy() | (unattributed > 0)
         tows["flags"] = flag_tuples(flags)
         if progress:
             progress("convert", 3, 3)
         return finish([ev_raw, rc_raw], rej, tows, values, notes)
-
-
-def normalise_life_stage(stage: pd.Series) -> pd.Series:
-    """Life stages in lower case and singular ("Larvae" -> "larva"); blanks stay null."""
-    folded = stage.astype("string").str.strip().str.casefold()
-    return folded.replace(LIFE_STAGE_SPELLINGS).astype("string")
 
 
 def _tows(ev: pd.DataFrame, study: Study, rej: Rejections, rules: TowRules) -> tuple[pd.DataFrame, dict[str, np.ndarray]]:
@@ -269,7 +260,7 @@ def _tows(ev: pd.DataFrame, study: Study, rej: Rejections, rules: TowRules) -> t
     reject_outside_domain(study, lon[checkable], lat[checkable], pos[checkable], "events", rej, "station")
     alive = ~rej.mask("events", n)
 
-    event_end = end.where(end.notna(), (start + pd.to_timedelta(duration_h, unit="h")).dt.round("us"))
+    event_end = end.where(end.notna(), add_hours(start, duration_h))
     tows = pd.DataFrame({
         "event_id": ev["event_id"],
         "event_start": start,
@@ -291,15 +282,23 @@ def _tows(ev: pd.DataFrame, study: Study, rej: Rejections, rules: TowRules) -> t
 def _count_values(counts: pd.DataFrame) -> pd.DataFrame:
     """One count row per tow x taxon x life stage: raised counts of several rows are summed."""
     keys = ["event_id", "variable", "life_stage"]
-    table = pa.Table.from_pandas(counts[[*keys, "count", "split", "row"]], preserve_index=False)
+    table = pa.Table.from_pandas(counts[[*keys, "count", "observed", "split", "row"]], preserve_index=False)
     agg = table.group_by(keys, use_threads=False).aggregate(
-        [("count", "sum"), ("split", "min"), ("row", "list"), ("row", "count")]).to_pandas()
-    n, min_split = agg["row_count"].to_numpy(), agg["split_min"].to_numpy(float)
+        [("count", "sum"), ("observed", "sum"), ("split", "min"), ("split", "max"), ("row", "list"),
+         ("row", "count")]).to_pandas()
+    n, min_split, max_split = agg["row_count"].to_numpy(), agg["split_min"].to_numpy(float), agg["split_max"].to_numpy(float)
+    raised, observed = agg["count_sum"].to_numpy(float), agg["observed_sum"].to_numpy(float)
+    mixed = min_split != max_split
+    # rows of one split keep it; rows of several splits summed keep the share they add up to
+    with np.errstate(invalid="ignore", divide="ignore"):
+        fraction = np.where(mixed, observed / raised, min_split)
     return pd.DataFrame({
         "event_id": agg["event_id"], "variable": agg["variable"], "life_stage": agg["life_stage"].astype("string"),
-        "quantity": "count", "unit": "1", "value": agg["count_sum"].astype(float), "variable_kind": "taxon",
-        "zero_filled": False, "flags": flag_tuples({"merged_rows": n > 1, "raised_from_subsample": min_split < 1}),
+        "quantity": "count", "unit": "1", "value": raised, "variable_kind": "taxon",
+        "zero_filled": False, "flags": flag_tuples({"merged_rows": n > 1, "raised_from_subsample": min_split < 1,
+                                                    "mixed_subsample_fractions": mixed}),
         "source_record_rows": agg["row_list"], "n_values": n,
+        "count_observed": observed, "subsample_fraction": np.where(np.isfinite(fraction), fraction, np.nan),
     })
 
 

@@ -25,6 +25,7 @@ import pandera.errors
 
 from harmonize import units
 from harmonize.adapters.provider_formats import parse_angles, parse_fractions
+from harmonize.clock import clock_change_message, localize
 from harmonize.config_spec import COORDINATE_FORMATS, FRACTION_FORMATS, is_coordinate, is_fraction
 from harmonize.contract import FieldSpec, pandera_schema
 from harmonize.errors import ConfigError, InputFileError, ReasonCode
@@ -714,7 +715,14 @@ def _typed(
             )
         return values
     if spec.type == "datetime":
-        values, bad, future = parse_times(text, profile)
+        values, bad, future, twice, never = parse_times(text, profile)
+        for mask, reason, kind in ((twice, ReasonCode.AMBIGUOUS_LOCAL_TIME, "ambiguous"),
+                                   (never, ReasonCode.NONEXISTENT_LOCAL_TIME, "nonexistent")):
+            if mask.any():
+                local = pd.to_datetime(text[mask], format=profile.time_format or "mixed", dayfirst=profile.dayfirst)
+                rejections.add(role, np.flatnonzero(mask), reason,
+                               [clock_change_message(label, _short(v), t, profile.timezone, kind)
+                                for v, t in zip(text[mask], local, strict=True)])
         if bad.any():
             rejections.add(
                 role, np.flatnonzero(bad), ReasonCode.BAD_TIME,
@@ -745,12 +753,17 @@ def _check_format(spec: FieldSpec, fmt: str, profile: Profile) -> None:
                           f"'{fmt}' does not apply to {spec.name}; expected one of {', '.join(allowed)}")
 
 
-def parse_times(text: pd.Series, profile: Profile) -> tuple[pd.Series, np.ndarray, np.ndarray]:
-    """Parse date-time strings into naive UTC timestamps.
+def parse_times(text: pd.Series, profile: Profile
+                ) -> tuple[pd.Series, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Parse date-time strings into naive UTC timestamps (microseconds, years 1800-9999).
 
     Strings with an offset (Z, +02:00) are converted to UTC; strings without one are read in
-    the profile's time zone. Returns (timestamps, unparseable mask, future mask).
+    the profile's time zone (:func:`harmonize.clock.localize`). Returns (timestamps,
+    unparseable mask, future mask, ambiguous-local-time mask, nonexistent-local-time mask);
+    a row is in at most one mask.
     """
+    twice = np.zeros(len(text), dtype=bool)
+    never = np.zeros(len(text), dtype=bool)
     present = text.notna().to_numpy()
     has_zone = text.str.contains(r"(?:[zZ]|[+-]\d{2}:?\d{2})$", regex=True).fillna(False).to_numpy()
     out = pd.Series(pd.NaT, index=text.index, dtype="datetime64[us]")
@@ -769,19 +782,16 @@ def parse_times(text: pd.Series, profile: Profile) -> tuple[pd.Series, np.ndarra
         if zoned:
             parsed = parsed.dt.tz_convert("UTC").dt.tz_localize(None)
         elif profile.timezone != "UTC":
-            parsed = (
-                parsed.dt.tz_localize(profile.timezone, ambiguous="NaT", nonexistent="NaT")
-                .dt.tz_convert("UTC")
-                .dt.tz_localize(None)
-            )
+            parsed, amb, non = localize(parsed, profile.timezone, profile.ambiguous_times)
+            twice[sel], never[sel] = amb, non
         out[sel] = parsed.astype("datetime64[us]").to_numpy()
     # Dates before 1800 are typing errors (a lone "-1" parses as year -1), not survey data.
     ancient = (out < pd.Timestamp(EARLIEST_TIME)).fillna(False).to_numpy()
     out = out.mask(ancient)
-    bad = present & out.isna().to_numpy()
+    bad = present & out.isna().to_numpy() & ~twice & ~never
     now = datetime.now(UTC).replace(tzinfo=None) + timedelta(days=1)
     future = (out > pd.Timestamp(now)).fillna(False).to_numpy()
-    return out, bad, future
+    return out, bad, future, twice, never
 
 
 def _check_constraints(

@@ -32,9 +32,13 @@ import pyproj
 
 from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
 from harmonize.adapters.common import (
+    STAGE_UNRESOLVED,
+    catch_unknown,
     reject_outside_domain,
     reject_records_of_events,
     resolve_taxa,
+    stage_unresolved_events,
+    target_years,
     unattributed_note,
     unattributed_records,
     zero_fill,
@@ -46,6 +50,7 @@ from harmonize.adapters.reading import (
     resolve_columns,
 )
 from harmonize.adapters.registry import register
+from harmonize.clock import add_hours
 from harmonize.contract import fields
 from harmonize.errors import ConfigError, ReasonCode
 from harmonize.privacy import pseudonymise, study_salt
@@ -160,7 +165,7 @@ class TransectAdapter(Adapter):
             "row": np.flatnonzero(rc_ok) + 1,
         })
         values = _bird_values(birds)
-        events_year = segments.assign(year=segments["event_start"].dt.year)[["event_id", "year"]]
+        events_year = target_years(segments[~catch_unknown(segments, incomplete, birds["event_id"])], study)
         events_year = events_year.iloc[:0] if unattributed else events_year
         parts = []
         for b in ((ON_WATER, IN_FLIGHT) if split else (None,)):
@@ -179,6 +184,9 @@ class TransectAdapter(Adapter):
         if continuous.any():
             values.loc[continuous, "flags"] = pd.Series(
                 [(*f, "flying_not_snapshot") for f in values["flags"][continuous]], index=values.index[continuous], dtype=object)
+        flags[STAGE_UNRESOLVED] = segments["event_id"].isin(stage_unresolved_events(
+            birds.assign(life_stage=pd.Series(pd.NA, index=birds.index, dtype="string")), study,
+            profile.protocol)).to_numpy()
         flags["counts_incomplete"] = segments["event_id"].isin(incomplete).to_numpy() | (unattributed > 0)
         segments["flags"] = flag_tuples(flags)
         if progress:
@@ -266,9 +274,9 @@ def _segments(
     reject_outside_domain(study, lon[checkable], lat[checkable], pos[checkable], "events", rej, "segment midpoint")
     alive = ~rej.mask("events", n)
 
-    event_end = end.where(end.notna(), (start + pd.to_timedelta(duration_h, unit="h")).dt.round("us"))
+    event_end = end.where(end.notna(), add_hours(start, duration_h))
     midpoint_time = start + (event_end - start).fillna(pd.Timedelta(0)) / 2
-    season, season_year = tag_season(midpoint_time, study.seasons)
+    season, season_year = tag_season(midpoint_time, study.seasons, study.timezone)
     segments = pd.DataFrame({
         "event_id": ev["event_id"],
         "event_start": start,
@@ -286,6 +294,10 @@ def _segments(
         "effort_unit": "km2",
         "source_row": pos + 1,
         "observer_id": observer_id,
+        "track_start_lat": np.where(have_end, slat, np.nan),
+        "track_start_lon": np.where(have_end, normalise_lon(slon), np.nan),
+        "track_end_lat": np.where(have_end, elat, np.nan),
+        "track_end_lon": np.where(have_end, normalise_lon(elon), np.nan),
     })[alive].reset_index(drop=True)
     return segments, {"length_given": (~have_end)[alive], "strip_width_default": width_default[alive],
                       "speed_unchecked": ~np.isfinite(speed_kn)[alive]}

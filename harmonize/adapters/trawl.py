@@ -2,8 +2,10 @@
 
 Area swept a = D x w: distance towed times the effective net width (the swept-area method,
 Sparre and Venema 1998, FAO Fisheries Technical Paper 306/1 Rev. 2, section 13.5). The
-distance is the WGS84 geodesic between start and end positions (pyproj.Geod, Karney 2013);
-without an end position, a given distance; without either, speed x duration.
+distance is the logged distance when the provider gives one (flag distance_logged; a straight
+line between the positions that differs from it by more than 10 % is flagged
+distance_disagrees); otherwise the WGS84 geodesic between start and end positions
+(pyproj.Geod, Karney 2013); without either, speed x duration.
 """
 
 from __future__ import annotations
@@ -18,16 +20,22 @@ import pyproj
 
 from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
 from harmonize.adapters.common import (
+    STAGE_UNRESOLVED,
+    catch_unknown,
     distinct_present,
+    normalise_life_stage,
     reject_outside_domain,
     reject_records_of_events,
     resolve_taxa,
+    stage_unresolved_events,
+    target_years,
     unattributed_note,
     unattributed_records,
     zero_fill,
 )
 from harmonize.adapters.reading import Rejections, resolve_columns
 from harmonize.adapters.registry import register
+from harmonize.clock import add_hours
 from harmonize.contract import fields
 from harmonize.errors import ReasonCode
 from harmonize.profile import Profile
@@ -38,6 +46,11 @@ from harmonize.tagging import normalise_lon
 #: at 3-4 knots (common practice); the window is wide on purpose.
 TOW_SPEED_KN = (0.5, 8.0)
 KM_PER_NMI = 1.852  # exact, by definition of the international nautical mile
+#: A straight start-end line that differs from the logged distance by more than this share of
+#: the logged distance is flagged: a tow that turned, a wrong position or a wrong log (common
+#: practice; survey tows are run straight, so a few percent is usual).
+DISTANCE_TOLERANCE = 0.10
+DISTANCE_LOGGED, DISTANCE_DISAGREES = "distance_logged", "distance_disagrees"
 _GEOD = pyproj.Geod(ellps="WGS84")
 
 
@@ -137,18 +150,25 @@ class TrawlAdapter(Adapter):
         quantities = [(q, u) for q, u, col in (("biomass", "kg", "weight"), ("count", "1", "count"))
                       if col in provided or col in profile.constants]
         zeros = _zero_values(
-            hauls.assign(year=hauls["event_start"].dt.year)[["event_id", "year"]].iloc[:0 if unattributed else None],
+            target_years(hauls[~catch_unknown(hauls, list(incomplete), catch["event_id"])], study)
+            .iloc[:0 if unattributed else None],
             catch[["event_id", "variable", "life_stage"]], blocked, study, profile.protocol, quantities, haul_ids,
         )
+        unresolved = set(stage_unresolved_events(catch, study, profile.protocol))
         del catch
         temps = _temperature_values(hauls, haul_ids)
         values = _concat_values([values, zeros, temps])
         values["n_vessels"] = pd.Series(pd.NA, index=values.index, dtype="Int32")
 
         hauls["flags"] = [
-            f + (["catch_incomplete"] if e in incomplete else [])
+            f + ([STAGE_UNRESOLVED] if e in unresolved else []) + (["catch_incomplete"] if e in incomplete else [])
             for f, e in zip(flags, hauls["event_id"], strict=True)
         ]
+        n_disagree = sum(DISTANCE_DISAGREES in f for f in hauls["flags"])
+        if n_disagree:
+            notes.append(f"{ev_raw.path.name}: {n_disagree} haul(s) have a logged distance and a straight "
+                         f"start-end line that differ by more than {DISTANCE_TOLERANCE:.0%}; the logged distance "
+                         f"is used (flag {DISTANCE_DISAGREES}): check their positions and logs")
         if progress:
             progress("convert", 3, 3)
         return finish([ev_raw, rc_raw], rej, hauls.drop(columns=["bottom_temperature"]), values, notes)
@@ -181,11 +201,16 @@ class TrawlAdapter(Adapter):
             np.where(have_end, slon, 0), np.where(have_end, slat, 0),
             np.where(have_end, elon, 0), np.where(have_end, elat, 0),
         )
-        given_km = ev["distance"].to_numpy(float)
+        logged_km = ev["distance"].to_numpy(float)
+        logged = np.isfinite(logged_km)
         speed_kn = ev["speed"].to_numpy(float)
         derived_km = speed_kn * KM_PER_NMI * duration_h
-        distance_km = np.where(have_end, geo_km, np.where(np.isfinite(given_km), given_km, derived_km))
-        speed_derived = ~have_end & ~np.isfinite(given_km) & np.isfinite(derived_km)
+        # a logged distance follows the tow's real track; the straight line between start and
+        # end positions cuts every turn short, so the log wins when both are given
+        distance_km = np.where(logged, logged_km, np.where(have_end, geo_km, derived_km))
+        speed_derived = ~have_end & ~logged & np.isfinite(derived_km)
+        with np.errstate(invalid="ignore"):
+            disagrees = logged & have_end & (np.abs(geo_km - logged_km) > DISTANCE_TOLERANCE * logged_km)
         no_distance = alive & ~np.isfinite(distance_km)
         rej.add("events", pos[no_distance], ReasonCode.MISSING_VALUE,
                 "distance towed cannot be computed: give end_lat/end_lon, a distance, or speed and duration")
@@ -197,7 +222,9 @@ class TrawlAdapter(Adapter):
         area_km2 = area_swept_km2(distance_km, width_m)
         zero_area = alive & (area_km2 <= 0)
         rej.add("events", pos[zero_area], ReasonCode.BAD_EFFORT,
-                "area swept is 0: start and end positions are the same; check the end position")
+                ["area swept is 0: the logged distance is 0; check the distance column" if lg else
+                 "area swept is 0: start and end positions are the same; check the end position"
+                 for lg in logged[zero_area]])
         alive &= ~zero_area
         with np.errstate(invalid="ignore", divide="ignore"):
             tow_speed = distance_km / KM_PER_NMI / duration_h
@@ -217,7 +244,7 @@ class TrawlAdapter(Adapter):
         on_bottom = ~np.isfinite(gear)
         depth = np.where(on_bottom, bottom, gear)
         safe_h = np.where(alive & np.isfinite(duration_h), duration_h, 0.0)
-        event_end = end.where(end.notna(), start + pd.to_timedelta(safe_h, unit="h").round("s"))
+        event_end = end.where(end.notna(), add_hours(start, safe_h))
         hauls = pd.DataFrame({
             "event_id": ev["event_id"],
             "event_start": start,
@@ -232,16 +259,22 @@ class TrawlAdapter(Adapter):
             "effort_unit": "km2",
             "source_row": pos + 1,
             "observer_id": pd.NA,
+            "track_start_lat": np.where(have_end, slat, np.nan),
+            "track_start_lon": np.where(have_end, normalise_lon(slon), np.nan),
+            "track_end_lat": np.where(have_end, elat, np.nan),
+            "track_end_lon": np.where(have_end, normalise_lon(elon), np.nan),
             "bottom_temperature": ev["bottom_temperature"],
         })[alive].reset_index(drop=True)
         flag_lists = []
-        for derived, given, checked in zip(speed_derived[alive], (~have_end & np.isfinite(given_km))[alive],
-                                           np.isfinite(tow_speed)[alive], strict=True):
+        for derived, given, differs, checked in zip(speed_derived[alive], logged[alive], disagrees[alive],
+                                                    np.isfinite(tow_speed)[alive], strict=True):
             f = []
             if derived:
                 f.append("speed_derived")
             if given:
-                f.append("distance_given")
+                f.append(DISTANCE_LOGGED)
+            if differs:
+                f.append(DISTANCE_DISAGREES)
             if not checked:
                 f.append("speed_unchecked")
             flag_lists.append(f)
@@ -304,9 +337,10 @@ def _key_codes(column: pd.Series) -> tuple[np.ndarray, int]:
 
 
 def _folded_categorical(text: pd.Series) -> pd.Categorical:
-    """Case-folded text as a categorical: each distinct text is folded once."""
+    """Life stages normalised (:func:`~harmonize.adapters.common.normalise_life_stage`) as a
+    categorical: each distinct text is normalised once."""
     code, uniques = pd.factorize(text, use_na_sentinel=True)
-    folded = pd.Categorical(pd.Series(uniques, dtype="string").str.casefold())
+    folded = pd.Categorical(normalise_life_stage(pd.Series(uniques, dtype="string")))
     per_unique = np.append(folded.codes, -1)
     return pd.Categorical.from_codes(per_unique[np.where(code < 0, len(per_unique) - 1, code)],
                                      dtype=folded.dtype)

@@ -70,7 +70,9 @@ DEFAULT_TOLERANCES: dict[str, float] = {
     "sea_surface_temperature": 0.5,
     "sea_water_temperature": 0.5,
     "sea_water_temperature_at_sea_floor": 0.5,
-    "sea_water_salinity": 0.2,
+    # the CF standard names the gridded adapter stores (harmonize.gridded.cf)
+    "sea_water_practical_salinity": 0.2,
+    "sea_water_practical_salinity_at_sea_floor": 0.2,
     "mass_concentration_of_chlorophyll_a_in_sea_water": 0.5,
 }
 

@@ -36,6 +36,7 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from harmonize.engines import SCHEDULER_ENV
+from harmonize.tagging.season import local_times
 
 # WGS84 ellipsoid (NIMA TR8350.2, 2000); the same constants as the SQL distance macro
 WGS84_A = 6378137.0
@@ -202,17 +203,19 @@ def ping_track(pings: pd.DataFrame, max_speed_kn: float, max_gap_h: float) -> pd
                      sp_in=s_in, sp_out=s_out, hours=hours, speed=speed_kn, fishing=fishing)
 
 
-def fishing_partial(track: pd.DataFrame, season_names: Sequence[str], season_offsets: Sequence[int]) -> pd.DataFrame:
+def fishing_partial(track: pd.DataFrame, season_names: Sequence[str], season_offsets: Sequence[int],
+                    timezone: str = "UTC") -> pd.DataFrame:
     """Partial fishing-cell sums of whole vessels (columns :data:`CELL_KEYS` and sums).
 
     Only pings classified as fishing, not position jumps, with hours > 0 count, as in
     ``PingReader._aggregate``.
     """
     use = track[track["fishing"].to_numpy() & ~track["spike"].to_numpy() & (track["hours"].to_numpy() > 0)]
-    month = use["t"].dt.month.to_numpy() - 1
+    local = local_times(use["t"], timezone)  # the study calendar (harmonize.tagging.season)
+    month = local.dt.month.to_numpy() - 1
     frame = pd.DataFrame({
         "code": use["code"].to_numpy(np.int64),
-        "season_year": (use["t"].dt.year.to_numpy() + np.asarray(season_offsets, np.int64)[month]).astype(np.int32),
+        "season_year": (local.dt.year.to_numpy() + np.asarray(season_offsets, np.int64)[month]).astype(np.int32),
         "season": np.asarray(season_names, dtype=object)[month],
         "gear": use["gear"].to_numpy(object), "depth_layer": use["layer"].to_numpy(object),
         "hours": use["hours"].to_numpy(float), "vid": use["vid"].to_numpy(),
@@ -237,18 +240,18 @@ class TrackResult:
 
 
 def _bucket(paths: Sequence[str], max_speed_kn: float, max_gap_h: float, season_names: Sequence[str],
-            season_offsets: Sequence[int]) -> tuple[pd.DataFrame, pd.DataFrame, int, int]:
+            season_offsets: Sequence[int], timezone: str = "UTC") -> tuple[pd.DataFrame, pd.DataFrame, int, int]:
     pings = pa.concat_tables([pq.read_table(p, columns=list(PING_COLUMNS)) for p in paths]).to_pandas()
     track = ping_track(pings, max_speed_kn, max_gap_h)
     kept = ~track["spike"].to_numpy()
     spikes = track.loc[~kept, ["row", "r_p1", "sp_in", "r_n1", "sp_out"]].reset_index(drop=True)
-    return (fishing_partial(track, season_names, season_offsets), spikes,
+    return (fishing_partial(track, season_names, season_offsets, timezone), spikes,
             int((track["fishing"].to_numpy() & kept).sum()), int((track["sog"].isna().to_numpy() & kept).sum()))
 
 
 def fishing_hours(buckets: Sequence[Sequence[str]], max_speed_kn: float, max_gap_h: float,
                   season_names: Sequence[str], season_offsets: Sequence[int],
-                  scheduler: str | None = None) -> TrackResult:
+                  scheduler: str | None = None, timezone: str = "UTC") -> TrackResult:
     """Fishing hours per cell from accepted pings in buckets of whole vessels, on Dask.
 
     Parameters
@@ -261,6 +264,8 @@ def fishing_hours(buckets: Sequence[Sequence[str]], max_speed_kn: float, max_gap
         Season name and season_year offset of each month 1..12 (study seasons).
     scheduler
         Address of a Dask scheduler; see :func:`dask_client` for the default.
+    timezone
+        The study calendar's IANA zone, in which months and years are read.
 
     Returns
     -------
@@ -269,7 +274,7 @@ def fishing_hours(buckets: Sequence[Sequence[str]], max_speed_kn: float, max_gap
     with dask_client(scheduler) as client:
         futures = client.map(_bucket, [list(b) for b in buckets], max_speed_kn=max_speed_kn,
                              max_gap_h=max_gap_h, season_names=list(season_names),
-                             season_offsets=[int(o) for o in season_offsets], pure=False)
+                             season_offsets=[int(o) for o in season_offsets], timezone=timezone, pure=False)
         parts = client.gather(futures)
     partial = [p[0] for p in parts if len(p[0])]
     if partial:

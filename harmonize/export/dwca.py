@@ -12,7 +12,10 @@ document (``eml.xml``, Ecological Metadata Language 2.2.0). What goes where:
   events and are left out.
 - Occurrence extension: one row per event x taxon x life stage; occurrenceStatus "absent"
   where every value is zero (recorded zeros and absences inferred from complete-catch
-  protocols), "present" otherwise. Rows flagged ``probable_duplicate`` are left out.
+  protocols), "present" otherwise. individualCount is the number counted, summed over
+  behaviours (``behavior`` lists the behaviours seen); for a split plankton sample it is the
+  number counted, the raised count being a measurement. catalogNumber carries the provider's
+  record id(s). Rows flagged ``probable_duplicate`` are left out.
 - Extended Measurement or Fact (row type ``http://rs.iobis.org/obis/terms/
   ExtendedMeasurementOrFact``): counts, biomass, densities (value / effort), physical values
   measured at the event and fishing hours. Fishing hours resting on fewer than the study's
@@ -148,6 +151,8 @@ def _occurrence_key() -> str:
     return f"{_event_key()} || ':' || variable || coalesce(':' || life_stage, '')"
 
 
+_COUNTED = "sum(coalesce(count_observed, value)) FILTER (WHERE quantity = 'count')"
+
 _OCCURRENCE_COLUMNS = [
     Column("eventID", _clean(_event_key())),
     Column("occurrenceID", _clean(_occurrence_key())),
@@ -157,11 +162,18 @@ _OCCURRENCE_COLUMNS = [
     Column("scientificNameID", _clean("(SELECT t.taxon_id FROM dwca_taxon_ids t WHERE t.taxon = variable)")),
     Column("lifeStage", _clean("life_stage")),
     Column("occurrenceStatus", "CASE WHEN bool_or(quantity = 'presence' OR value > 0) THEN 'present' ELSE 'absent' END"),
-    Column("individualCount", "CAST(CASE WHEN max(value) FILTER (WHERE quantity = 'count') = "
-                              "round(max(value) FILTER (WHERE quantity = 'count')) "
-                              "THEN max(value) FILTER (WHERE quantity = 'count') END AS BIGINT)", text=False),
+    # the individuals counted, summed over behaviours (birds on the water + birds in flight);
+    # for a split plankton sample the number counted, not the raised number (in the measurements)
+    Column("individualCount", f"CAST(CASE WHEN {_COUNTED} = round({_COUNTED}) THEN {_COUNTED} END AS BIGINT)",
+           text=False),
+    Column("behavior", _clean("nullif(string_agg(DISTINCT behavior, ' | ' ORDER BY behavior) "
+                              "FILTER (WHERE value > 0 OR quantity = 'presence'), '')")),
+    Column("catalogNumber", _clean("nullif(string_agg(DISTINCT provider_record_id, '|' ORDER BY provider_record_id), '')")),
     Column("occurrenceRemarks", "CASE WHEN bool_and(zero_filled) THEN 'absence inferred: a target taxon of a "
-                                "complete-catch protocol that was not in the catch' END"),
+                                "complete-catch protocol that was not in the catch' "
+                                "WHEN bool_or(count_observed IS NOT NULL AND quantity = 'count') THEN "
+                                "'individualCount is the number counted in a subsample; the count raised to the "
+                                "whole sample and the subsample fraction are in the measurements' END"),
 ]
 
 _EMOF_COLUMNS = [
@@ -219,22 +231,44 @@ def _emof_sql() -> str:
     keep = f"source_kind IN ({kinds}) AND NOT {duplicate_sql()}"
     zero_note = "CASE WHEN zero_filled THEN 'inferred zero: target taxon of a complete-catch protocol' END"
     taxon_unit = "CASE WHEN quantity = 'count' THEN 'individuals' ELSE unit END"
+    # an inferred zero of an occurrence that is present (a seabird seen on the water, none
+    # in flight) is left out, so that no taxon is both present and absent at one event
+    present = ("bool_or(value > 0 OR quantity = 'presence') OVER (PARTITION BY source_id, event_id, variable, "
+               "life_stage)")
+    taxa = f"""(SELECT *, {present} AS occurrence_present FROM {BASE_VIEW}
+                WHERE {keep} AND variable_kind = 'taxon')"""
+    shown = "NOT (zero_filled AND occurrence_present)"
+    what = ("CASE quantity WHEN 'count' THEN 'abundance (count of individuals' || "
+            "CASE WHEN count_observed IS NOT NULL THEN ', raised to the whole sample' ELSE '' END || ')' "
+            "ELSE quantity END || coalesce(', ' || replace(behavior, '_', ' '), '')")
     return f"""
         SELECT {_select(_EMOF_COLUMNS)} FROM (
             SELECT source_id, event_id, {_occurrence_key()} AS occurrence_key, record_id AS measurement_id,
-                   CASE quantity WHEN 'count' THEN 'abundance (count of individuals)' ELSE quantity END
-                       AS measurement_type,
+                   {what} AS measurement_type,
                    value AS measurement_value, {taxon_unit} AS measurement_unit,
                    coalesce(protocol, source_kind) AS measurement_method, {zero_note} AS measurement_remarks,
                    variable, life_stage, quantity, 0 AS part
-            FROM {BASE_VIEW} WHERE {keep} AND variable_kind = 'taxon' AND quantity <> 'presence'
+            FROM {taxa} WHERE quantity <> 'presence' AND {shown}
+            UNION ALL
+            SELECT source_id, event_id, {_occurrence_key()}, record_id || ':counted',
+                   'count of individuals in the counted subsample' || coalesce(', ' || replace(behavior, '_', ' '), ''),
+                   count_observed, 'individuals', 'counted in a subsample of the sample', NULL,
+                   variable, life_stage, quantity, 0
+            FROM {taxa} WHERE quantity = 'count' AND count_observed IS NOT NULL AND {shown}
+            UNION ALL
+            SELECT source_id, event_id, {_occurrence_key()}, record_id || ':fraction',
+                   'subsample fraction counted' || coalesce(', ' || replace(behavior, '_', ' '), ''),
+                   subsample_fraction, 'dimensionless', 'share of the sample that was counted', NULL,
+                   variable, life_stage, quantity, 0
+            FROM {taxa} WHERE quantity = 'count' AND subsample_fraction IS NOT NULL AND {shown}
             UNION ALL
             SELECT source_id, event_id, {_occurrence_key()}, record_id || ':density',
-                   CASE quantity WHEN 'count' THEN 'abundance' ELSE quantity END || ' per unit sampling effort',
+                   CASE quantity WHEN 'count' THEN 'abundance' ELSE quantity END || ' per unit sampling effort'
+                       || coalesce(', ' || replace(behavior, '_', ' '), ''),
                    density, {taxon_unit} || '/' || effort_unit,
                    'value divided by the sampling effort of the event (' || effort_unit || ')', {zero_note},
                    variable, life_stage, quantity, 1
-            FROM {BASE_VIEW} WHERE {keep} AND variable_kind = 'taxon' AND density IS NOT NULL
+            FROM {taxa} WHERE density IS NOT NULL AND {shown}
             UNION ALL
             SELECT source_id, event_id, NULL, record_id, variable, value, unit,
                    coalesce(protocol, source_kind), NULL, variable, life_stage, quantity, 2
@@ -291,6 +325,10 @@ def export_dwca(study: Study, out: str | Path, filters: ExportFilters | None = N
             f"{generalise_deg:g} degree (Chapman 2020)",
             f"{facts['fishing_values_withheld']} fishing values resting on fewer than {study.min_vessels} "
             "vessels were withheld",
+            "individualCount is the number of individuals counted, summed over behaviours (e.g. seabirds on the "
+            "water and in flight); for a count of a split subsample it is the number counted, and the count raised "
+            "to the whole sample (count / subsample fraction) and the fraction are measurements of the occurrence",
+            "catalogNumber holds the provider's own record id(s) where the provider gave one",
             "set a licence, creators and contacts in eml.xml before publishing",
         ]
         options = {"generalise_deg": generalise_deg, "files": {FILES[k]: v for k, v in written.items()}, **facts}

@@ -6,9 +6,14 @@ community ecology", Trends Ecol. Evol. 30:766-779). Rules:
 
 - Rows are the events of the sample kinds (trawl, plankton, transect, opportunistic);
   gridded cell-periods and fishing-effort cells are not samples of organisms.
-- A taxon cell holds the event's density (value / effort, summed over life stages unless
-  ``by_life_stage``) for one quantity (count by default), or the plain value where the
-  event has no effort (then ``effort_unit`` is null on that row).
+- A taxon column holds one quantity (count by default) in one unit, never a mix: one column
+  per taxon and effort unit, named by its unit: ``"Taxon (per km2)"`` holds densities (value
+  / effort, summed over life stages unless ``by_life_stage``) of events whose effort is in
+  km2, ``"Taxon (per m3)"`` those in m3, ``"Taxon (per h)"`` those per hour observed; values
+  sampled without effort (an incomplete checklist, seabirds in flight counted continuously)
+  go to ``"Taxon (count, no effort)"`` and never into a density column. Each taxon column's
+  unit is in the metadata (``taxon_units``), the CSV sidecar (CSVW ``titles``, ``unit``) and
+  the parquet field metadata (key ``unit``).
 - Null means "not recorded at this event"; 0 means a recorded or inferred absence
   (complete-catch protocols, ``zero_filled`` in the long table).
 - Presence-only records (quantity ``presence``) never become numbers: their taxa are listed,
@@ -40,7 +45,6 @@ from harmonize.errors import HarmonizeError
 from harmonize.export.metadata import (
     PARQUET_KEY,
     ExportResult,
-    kv_metadata_sql,
     provenance,
     write_sidecar,
 )
@@ -86,15 +90,35 @@ def _taxon_key(by_life_stage: bool) -> str:
     return "variable || coalesce(' [' || life_stage || ']', '')" if by_life_stage else "variable"
 
 
+def _unit_sql(quantity: str) -> str:
+    """SQL: the unit of a taxon row's measure: density per effort unit, or the value without effort."""
+    per = "" if quantity == "count" else "kg "
+    plain = "count" if quantity == "count" else "kg"
+    return f"CASE WHEN density IS NOT NULL THEN '{per}per ' || effort_unit ELSE '{plain}, no effort' END"
+
+
+def _column_sql(quantity: str, by_life_stage: bool) -> str:
+    """SQL: the wide column of a taxon row, e.g. 'Ostravix keldensis (per km2)'."""
+    return f"{_taxon_key(by_life_stage)} || ' (' || {_unit_sql(quantity)} || ')'"
+
+
+def _unit_text(quantity: str, label: str) -> str:
+    """The unit of a column from its label ('per km2' -> '1/km2'; 'kg per m3' -> 'kg/m3')."""
+    if label.endswith(", no effort"):
+        return "1" if quantity == "count" else "kg"
+    return ("1/" if quantity == "count" else "kg/") + label.rsplit("per ", 1)[1]
+
+
 def wide_columns(con: Any, quantity: str = "count", by_life_stage: bool = False) -> tuple[list[str], list[str]]:
-    """The taxon columns and physical covariate columns of the wide table over the whole selection.
+    """The taxon columns (one per taxon and unit) and physical covariate columns of the wide
+    table over the whole selection.
 
     One cheap DISTINCT query each, so that every run of a wide table pivoted in runs has the
     same columns. Raises HarmonizeError on an unknown quantity or a name clash.
     """
     if quantity not in QUANTITIES:
         raise HarmonizeError(f"wide export quantity {quantity!r} is not one of {', '.join(QUANTITIES)}")
-    key = _taxon_key(by_life_stage)
+    key = _column_sql(quantity, by_life_stage)
     taxa = [r[0] for r in con.execute(
         f"SELECT DISTINCT {key} AS k {_taxon_rows(quantity, by_life_stage)} ORDER BY k").fetchall()]
     physical = [r[0] for r in con.execute(
@@ -124,7 +148,7 @@ def wide_sql(taxa: Sequence[str], physical: Sequence[str], covariate_columns: Se
     (every row of an event or none), as the runs of :func:`wide_runs` do.
     """
     dup = duplicate_sql()
-    key = _taxon_key(by_life_stage)
+    key = _column_sql(quantity, by_life_stage)
     sampled = "quantity IN ('count', 'biomass')"
     events = f"""
         SELECT source_id, event_id, any_value(source_kind) AS source_kind,
@@ -148,7 +172,8 @@ def wide_sql(taxa: Sequence[str], physical: Sequence[str], covariate_columns: Se
     parts = [f"WITH ev AS ({events}), pr AS ({presence})"]
     joins = ["LEFT JOIN pr USING (source_id, event_id)"]
     if taxa:
-        measure = "CASE WHEN effort IS NOT NULL THEN density ELSE value END"
+        # the column key carries the unit: a density and a value without effort never share one
+        measure = "CASE WHEN density IS NOT NULL THEN density ELSE value END"
         parts.append(f""", tx AS (FROM (SELECT source_id, event_id, {key} AS k, sum({measure}) AS m
                                       {_taxon_rows(quantity, by_life_stage, where)} GROUP BY ALL)
                           PIVOT (sum(m) FOR k IN ({', '.join(sql_text(t) for t in taxa)})
@@ -401,32 +426,44 @@ def export_wide(study: Study, out: str | Path, filters: ExportFilters | None = N
         runs = [wide_sql(taxa, physical, extra, quantity, by_life_stage, where) for where in wide_runs(con, run_rows)]
         dups = con.execute(f"SELECT count(*) FROM {BASE_VIEW} WHERE {_samples_sql()} AND variable_kind = 'taxon' "
                            f"AND {duplicate_sql()}").fetchall()[0][0]
+        units = {t: _unit_text(quantity, t[t.rindex("(") + 1:-1]) for t in taxa}
         notes += [
-            f"taxon columns hold {quantity} per unit effort (value / effort, in the row's effort_unit); "
-            "where effort_unit is null the event has no effort and the plain value is given",
+            f"one column per taxon and unit: 'Taxon (per km2)' holds {quantity} per unit effort (value / effort) of "
+            "events whose effort is in km2, and so on for each effort unit; 'Taxon (count, no effort)' (or kg) holds "
+            "values sampled without effort, which never enter a density column; each column's unit is in "
+            "options.taxon_units",
             "null = not recorded at the event; 0 = recorded or inferred absence",
             "presence-only records are not numbers: their taxa are listed in detected_presence_only",
             f"{dups} taxon rows flagged probable_duplicate were left out",
         ]
-        options = {"quantity": quantity, "by_life_stage": by_life_stage, "taxon_columns": taxa,
+        options = {"quantity": quantity, "by_life_stage": by_life_stage, "taxon_columns": taxa, "taxon_units": units,
                    "covariate_columns": covs, "rows_probable_duplicate_excluded": int(dups)}
         meta = provenance(con, study, "wide", filters, counts, options, notes)
         files = [path]
         if path.suffix.lower() == ".parquet":
-            if len(runs) == 1:
-                target = str(path).replace("'", "''")
-                n_events = con.execute(f"COPY ({runs[0]}) TO '{target}' "
-                                       f"(FORMAT parquet, COMPRESSION zstd, {kv_metadata_sql(meta)})").fetchall()[0][0]
-            else:
-                n_events = _write_parquet_runs(con, runs, path, meta, spill)
+            # written by Arrow in every case, so that each taxon field carries its unit
+            n_events = _write_parquet_runs(con, runs, path, meta, spill, units)
         else:
             columns, n_events = _write_csv_runs(con, runs, path, spill)
-            files.append(write_sidecar(path, meta, columns))
+            files.append(_with_units(write_sidecar(path, meta, columns), units))
     return ExportResult("wide", path, int(n_events), meta, files)
 
 
-def _write_parquet_runs(con: Any, runs: list[str], path: Path, meta: dict[str, Any], spill: Path) -> int:
-    """Write the runs' tables, in order, into one zstd parquet file carrying ``meta``; returns rows."""
+def _with_units(sidecar: Path, units: dict[str, str]) -> Path:
+    """Add each taxon column's unit to a CSVW sidecar (``titles`` and ``unit`` of the column)."""
+    doc = json.loads(sidecar.read_text(encoding="utf-8"))
+    for col in doc.get("tableSchema", {}).get("columns", []):
+        if col["name"] in units:
+            col["titles"] = col["name"]
+            col["unit"] = units[col["name"]]
+    sidecar.write_text(json.dumps(doc, indent=2, default=str), encoding="utf-8")
+    return sidecar
+
+
+def _write_parquet_runs(con: Any, runs: list[str], path: Path, meta: dict[str, Any], spill: Path,
+                        units: dict[str, str] | None = None) -> int:
+    """Write the runs' tables, in order, into one zstd parquet file carrying ``meta`` and each
+    taxon field's unit (field metadata ``unit``); returns rows."""
     # the column types DuckDB's own parquet writer gives the table, so that the file reads
     # back exactly as a one-pass export (written by DuckDB) does
     probe = spill / "schema.parquet"
@@ -439,14 +476,18 @@ def _write_parquet_runs(con: Any, runs: list[str], path: Path, meta: dict[str, A
     for key in ("source_id", "event_id"):
         i = schema.get_field_index(key)
         schema = schema.set(i, schema.field(i).with_nullable(False))
+    for name, unit in (units or {}).items():
+        i = schema.get_field_index(name)
+        schema = schema.set(i, schema.field(i).with_metadata({"unit": unit}))
     n = 0
     with pq.ParquetWriter(path, schema.with_metadata({PARQUET_KEY: json.dumps(meta, default=str)}),
                           compression="zstd", compression_level=3) as writer:   # DuckDB's zstd level
         for sql in runs:
             reader = con.sql(sql).to_arrow_reader(_BATCH_ROWS)
             for batch in reader:
-                if not batch.schema.equals(schema):
-                    batch = batch.cast(schema)
+                if not batch.schema.equals(schema, check_metadata=True):
+                    batch = pa.RecordBatch.from_arrays(batch.columns, schema=schema) \
+                        if batch.schema.equals(schema) else batch.cast(schema)
                 writer.write_batch(batch)
                 n += batch.num_rows
     return n

@@ -22,7 +22,8 @@ def tag_depth_layer(
     """Depth layer name of each sample.
 
     Rules (in order): a sample whose whole range lies within ``near_bottom_m`` above the
-    bottom depth, or that is known to be on the bottom (``on_bottom``), is "near_bottom";
+    bottom depth and in the lower half of the water column, or that is known to be on the
+    bottom (``on_bottom``), is "near_bottom";
     a point depth d is in the layer with top <= d < bottom; a range is in the layer that
     holds it whole (top <= depth_min and depth_max <= bottom); a range spanning two or
     more layers is "integrated". Depths below the deepest layer or missing give null.
@@ -64,8 +65,12 @@ def tag_depth_layer(
     near = np.zeros(n, dtype=bool)
     if bottom_depth_m is not None:
         bottom = np.asarray(bottom_depth_m, dtype=float)
+        # the range must also lie in the lower half of the water column: at a station shallower
+        # than near_bottom_m a tow from the surface samples the whole column, not the water
+        # over the bottom (common practice)
         with np.errstate(invalid="ignore"):
-            near = np.isfinite(bottom) & np.isfinite(dmin) & (dmin >= bottom - near_bottom_m)
+            near = (np.isfinite(bottom) & np.isfinite(dmin) & (dmin >= bottom - near_bottom_m)
+                    & (dmin >= bottom / 2.0))
     if on_bottom is not None:
         near = near | np.asarray(on_bottom, dtype=bool)
     out[near] = NEAR_BOTTOM

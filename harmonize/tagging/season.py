@@ -1,4 +1,11 @@
-"""Season and season_year from timestamps and the study's month lists."""
+"""The study calendar: season, season_year and calendar year of UTC timestamps, in the study's
+time zone (``[study] timezone``, IANA, default UTC), for pandas and for DuckDB SQL.
+
+Stored times stay UTC; only the calendar (which day, month and year an instant falls on) is
+read in the study's zone, so a haul at 08:00 on 1 December local time in a UTC+13 study is in
+December's season even though it is 30 November in UTC. Every season, season year and
+targets.csv year window of the package comes from here.
+"""
 
 from __future__ import annotations
 
@@ -6,6 +13,8 @@ from collections.abc import Mapping
 
 import numpy as np
 import pandas as pd
+
+UTC = "UTC"
 
 
 def season_year_offsets(seasons: Mapping[str, tuple[int, ...]]) -> np.ndarray:
@@ -26,30 +35,74 @@ def season_year_offsets(seasons: Mapping[str, tuple[int, ...]]) -> np.ndarray:
     return offsets
 
 
+def local_times(times: pd.Series, timezone: str = UTC) -> pd.Series:
+    """Wall-clock times (naive) in ``timezone`` of UTC instants (naive UTC or tz-aware)."""
+    times = pd.Series(times)
+    if not isinstance(times.dtype, pd.DatetimeTZDtype) and not pd.api.types.is_datetime64_dtype(times.dtype):
+        times = pd.to_datetime(times, utc=True)
+    if isinstance(times.dtype, pd.DatetimeTZDtype):
+        return times.dt.tz_convert(timezone).dt.tz_localize(None)
+    if timezone == UTC:
+        return times
+    return times.dt.tz_localize(UTC).dt.tz_convert(timezone).dt.tz_localize(None)
+
+
+def calendar_year(times: pd.Series, timezone: str = UTC) -> pd.Series:
+    """Calendar year (Int32) of each UTC instant on the study calendar; NaT gives null."""
+    return local_times(times, timezone).dt.year.astype("Int32")
+
+
 def tag_season(
-    times: pd.Series, seasons: Mapping[str, tuple[int, ...]]
+    times: pd.Series, seasons: Mapping[str, tuple[int, ...]], timezone: str = UTC
 ) -> tuple[pd.Series, pd.Series]:
     """Season name and season_year for each timestamp.
 
     Parameters
     ----------
     times
-        Timestamps (UTC); NaT gives null season and season_year.
+        Timestamps (UTC: naive or tz-aware); NaT gives null season and season_year.
     seasons
         Season name -> months, every month 1..12 exactly once.
+    timezone
+        IANA zone of the study calendar, in which the month and year are read.
 
     Returns
     -------
     season, season_year
         A string series and an Int32 series aligned with ``times``.
     """
+    local = local_times(times, timezone)
+    local.index = pd.Series(times).index
     names = np.empty(13, dtype=object)
     for name, months in seasons.items():
         names[list(months)] = name
     offsets = season_year_offsets(seasons)
-    valid = times.notna().to_numpy()
-    month = np.where(valid, times.dt.month.fillna(1).to_numpy(dtype=np.int64), 1)
-    year = np.where(valid, times.dt.year.fillna(0).to_numpy(dtype=np.int64), 0)
-    season = pd.Series(np.where(valid, names[month], None), index=times.index, dtype="string")
-    season_year = pd.Series(year + offsets[month], index=times.index, dtype="Int32").where(valid)
+    valid = local.notna().to_numpy()
+    month = np.where(valid, local.dt.month.fillna(1).to_numpy(dtype=np.int64), 1)
+    year = np.where(valid, local.dt.year.fillna(0).to_numpy(dtype=np.int64), 0)
+    season = pd.Series(np.where(valid, names[month], None), index=local.index, dtype="string")
+    season_year = pd.Series(year + offsets[month], index=local.index, dtype="Int32").where(valid)
     return season, season_year
+
+
+def local_sql(column: str, timezone: str = UTC) -> str:
+    """DuckDB expression: the wall-clock TIMESTAMP in ``timezone`` of a UTC TIMESTAMP column."""
+    if timezone == UTC:
+        return column
+    zone = "'" + timezone.replace("'", "''") + "'"
+    # timezone('UTC', naive) reads the wall clock as UTC -> TIMESTAMPTZ; timezone(zone, tz) gives
+    # the wall clock there (DuckDB ICU functions)
+    return f"timezone({zone}, timezone('UTC', CAST({column} AS TIMESTAMP)))"
+
+
+def season_sql(column: str, seasons: Mapping[str, tuple[int, ...]], timezone: str = UTC) -> tuple[str, str]:
+    """DuckDB expressions (season name, season_year) of a UTC TIMESTAMP column: the same
+    rule as :func:`tag_season`."""
+    names = np.empty(13, dtype=object)
+    for name, months in seasons.items():
+        names[list(months)] = name
+    offsets = season_year_offsets(seasons)[1:].tolist()
+    names_sql = "[" + ", ".join("'" + str(n).replace("'", "''") + "'" for n in names[1:]) + "]"
+    local = local_sql(column, timezone)
+    return (f"({names_sql})[month({local})]",
+            f"CAST(year({local}) + ({offsets})[month({local})] AS INTEGER)")

@@ -1,0 +1,127 @@
+"""Event time arithmetic: exact durations, and local wall-clock times at clock changes.
+
+Timestamps are microseconds (``datetime64[us]``, years 1 to 9999), never nanoseconds, whose
+range ends on 2262-04-11. A duration becomes a whole number of microseconds by rounding, not
+truncation: a 20-minute checklist (1/3 h, not exact in binary) from 18:30 ends at 18:50:00.
+
+A local time without an offset is ambiguous when the clocks go back (it happens twice) and
+does not exist when they go forward (it is skipped). Neither is guessed: such times are
+quarantined with a message that names the clock change, unless the profile's ``[source]
+ambiguous_times`` chooses the ``earlier`` or the ``later`` of the two instants (the offset in
+force before or after the change). Every reader (table readers and the ping reader's SQL)
+applies this rule.
+"""
+
+from __future__ import annotations
+
+import datetime as dt
+from zoneinfo import ZoneInfo
+
+import numpy as np
+import pandas as pd
+
+MICROSECONDS_PER_HOUR = 3_600_000_000
+AMBIGUOUS_CHOICES = ("earlier", "later")
+
+
+def add_hours(start: pd.Series, hours: np.ndarray | pd.Series) -> pd.Series:
+    """``start`` plus ``hours``, as whole microseconds rounded to the nearest; NaT where
+    either is missing. Works for any year 1-9999 (no nanosecond timestamps)."""
+    start = pd.Series(start)
+    if not isinstance(start.dtype, pd.DatetimeTZDtype):
+        start = start.astype("datetime64[us]")
+    micros = np.rint(np.asarray(hours, dtype=float) * MICROSECONDS_PER_HOUR)
+    known = np.isfinite(micros)
+    delta = pd.Series(pd.to_timedelta(np.where(known, micros, 0).astype(np.int64), unit="us"),
+                      index=start.index).astype("timedelta64[us]")
+    try:
+        end = start + delta
+    except (OverflowError, pd.errors.OutOfBoundsDatetime):  # a duration running past year 9999
+        end = pd.Series([s + d if pd.notna(s) and s + d <= pd.Timestamp.max.as_unit("us") else pd.NaT
+                         for s, d in zip(start, _safe(delta), strict=True)],
+                        index=start.index, dtype=start.dtype)
+    return end.where(known)
+
+
+def _safe(delta: pd.Series) -> list[pd.Timedelta]:
+    return [pd.Timedelta(d) for d in delta]
+
+
+def localize(naive: pd.Series, zone: str, ambiguous: str | None = None
+             ) -> tuple[pd.Series, np.ndarray, np.ndarray]:
+    """UTC instants (naive, microseconds) of local wall-clock times in ``zone``.
+
+    Returns the instants (NaT where a time is ambiguous and ``ambiguous`` is None, or does
+    not exist), the mask of unresolved ambiguous times and the mask of nonexistent times.
+    """
+    naive = pd.Series(naive).astype("datetime64[us]")
+    n = len(naive)
+    earlier = naive.dt.tz_localize(zone, ambiguous=np.ones(n, dtype=bool), nonexistent="NaT")
+    later = naive.dt.tz_localize(zone, ambiguous=np.zeros(n, dtype=bool), nonexistent="NaT")
+    present = naive.notna().to_numpy()
+    nonexistent = present & earlier.isna().to_numpy()
+    twice = (earlier.notna() & (earlier != later)).to_numpy()
+    chosen = later if ambiguous == "later" else earlier
+    utc = chosen.dt.tz_convert("UTC").dt.tz_localize(None).astype("datetime64[us]")
+    unresolved = twice if ambiguous is None else np.zeros(n, dtype=bool)
+    return utc.mask(unresolved | nonexistent), unresolved, nonexistent
+
+
+def _offset(value: dt.timedelta | None) -> str:
+    minutes = int((value or dt.timedelta()).total_seconds() // 60)
+    sign = "+" if minutes >= 0 else "-"
+    return f"{sign}{abs(minutes) // 60:02d}:{abs(minutes) % 60:02d}"
+
+
+def clock_change_message(label: str, text: str, local: pd.Timestamp, zone: str, kind: str) -> str:
+    """One sentence naming the clock change behind an ambiguous or nonexistent local time.
+
+    ``kind`` is "ambiguous" or "nonexistent". The offsets before and after the change come
+    from the IANA database (zoneinfo): ``fold=0`` is the offset before the change, ``fold=1``
+    the one after it (PEP 495).
+    """
+    wall = local.to_pydatetime()
+    tz = ZoneInfo(zone)
+    before = _offset(wall.replace(tzinfo=tz, fold=0).utcoffset())
+    after = _offset(wall.replace(tzinfo=tz, fold=1).utcoffset())
+    day = wall.date().isoformat()
+    if kind == "ambiguous":
+        return (f"{label} holds '{text}', a local time that happens twice in {zone}: the clocks went back from "
+                f"UTC{before} to UTC{after} on {day}; give the time with its offset, or set [source] "
+                "ambiguous_times = \"earlier\" or \"later\" in the profile")
+    return (f"{label} holds '{text}', a local time that does not exist in {zone}: the clocks went forward from "
+            f"UTC{before} to UTC{after} on {day} and skipped it; check the time and the profile's [source] timezone")
+
+
+def sql_local_problem(local: str, zone: str) -> str:
+    """DuckDB expression: 'nonexistent', 'ambiguous' or NULL for a naive local TIMESTAMP in ``zone``.
+
+    The same rule as :func:`localize`: a wall-clock time that does not come back unchanged
+    through UTC does not exist; one that another instant within two hours also shows
+    happens twice (every clock change of the tz database moves the clocks by at most two
+    hours: common practice, from memory).
+    """
+    z = "'" + zone.replace("'", "''") + "'"
+    utc = f"timezone({z}, {local})"
+    back = f"timezone({z}, {utc})"
+    shifts = ("30 MINUTE", "1 HOUR", "2 HOUR")
+    twice = " OR ".join(f"timezone({z}, {utc} {op} INTERVAL {s}) = {local}" for s in shifts for op in ("+", "-"))
+    return f"CASE WHEN {local} IS NULL THEN NULL WHEN {back} <> {local} THEN 'nonexistent' WHEN {twice} THEN 'ambiguous' END"
+
+
+def sql_offset_text(instant: str, zone: str) -> str:
+    """DuckDB expression: the UTC offset of ``zone`` at a TIMESTAMPTZ, as text 'UTC+01:00'."""
+    z = "'" + zone.replace("'", "''") + "'"
+    minutes = f"CAST(round(epoch(timezone({z}, {instant}) - timezone('UTC', {instant})) / 60) AS INTEGER)"
+    return (f"printf('UTC%s%02d:%02d', CASE WHEN {minutes} < 0 THEN '-' ELSE '+' END, "
+            f"abs({minutes}) // 60, abs({minutes}) % 60)")
+
+
+def sql_resolved(local: str, zone: str, choice: str) -> str:
+    """DuckDB expression: the earlier or later UTC instant (TIMESTAMPTZ) shown as ``local``."""
+    z = "'" + zone.replace("'", "''") + "'"
+    utc = f"timezone({z}, {local})"
+    shifts = ("30 MINUTE", "1 HOUR", "2 HOUR")
+    candidates = ", ".join([utc] + [f"{utc} {op} INTERVAL {s}" for s in shifts for op in ("+", "-")])
+    pick = "list_min" if choice == "earlier" else "list_max"
+    return f"{pick}([x FOR x IN [{candidates}] IF timezone({z}, x) = {local}])"

@@ -362,6 +362,9 @@ def effort_output(
         "n_values": cells["n_values"].astype("int64"), "n_vessels": cells["n_vessels"].astype("int64"),
         "no_effort": False,
     })
+    if "vessel_ids" in cells:
+        # the vessels behind each part: n_vessels merges across files (harmonize.parts)
+        values["vessel_ids"] = cells["vessel_ids"].to_numpy()
     return events, values
 
 
@@ -945,8 +948,9 @@ class PingReader:
         df = con.sql(f"""
             SELECT code, {season_year} AS season_year, {season} AS season, gear, layer AS depth_layer,
                    sum(hours) AS hours, count(DISTINCT vid) AS n_vessels, count(*) AS n_values,
-                   bool_or(sog IS NULL) AS speed_derived
-            FROM track WHERE fishing AND NOT spike AND hours > 0
+                   bool_or(sog IS NULL) AS speed_derived, list_sort(list(DISTINCT vessel)) AS vessel_ids
+            FROM track LEFT JOIN (SELECT DISTINCT vid, vessel FROM vmap) USING (vid)
+            WHERE fishing AND NOT spike AND hours > 0
             GROUP BY ALL ORDER BY ALL
         """).to_arrow_table().to_pandas()
         ix, iy = decode_cells(df["code"].to_numpy(np.int64))
@@ -1087,7 +1091,8 @@ def _read_logbook(path: Path, profile: Profile, study: Study, settings: FishingS
     })
     keys = ["ix", "iy", "season_year", "season", "gear", "depth_layer"]
     cells = frame.groupby(keys, as_index=False, sort=True).agg(
-        hours=("hours", "sum"), n_vessels=("vessel", "nunique"), n_values=("tow", "nunique"))
+        hours=("hours", "sum"), n_vessels=("vessel", "nunique"), n_values=("tow", "nunique"),
+        vessel_ids=("vessel", lambda v: sorted(set(v))))
     cells["speed_derived"] = False
     contact = {r.gear: r.contact for r in gear_rule.values() if r is not None}
     events, values = effort_output(cells, study, grid, contact)

@@ -692,7 +692,9 @@ def _events_and_values(plan: VariablePlan, sums: pd.DataFrame) -> tuple[pd.DataF
     c = sums["cell"].to_numpy()
     layer_names = np.array(plan.layer_names, dtype=object)
     n_steps = periods["n_steps"].to_numpy()[p]
-    effort = sums["sum_w"].to_numpy() / (n_steps * plan.layer_weight[lay])
+    # the mergeable parts (harmonize.parts): a period that spans files merges in the store
+    steps = n_steps * plan.layer_weight[lay]
+    effort = sums["sum_w"].to_numpy() / steps
     mean = sums["sum_wx"].to_numpy() / sums["sum_w"].to_numpy()
     cell_id = cells["cell_id"].to_numpy()[c]
     label = periods["label"].to_numpy()[p]
@@ -733,6 +735,9 @@ def _events_and_values(plan: VariablePlan, sums: pd.DataFrame) -> tuple[pd.DataF
         "n_values": sums["n"].to_numpy(),
         "n_vessels": None,
         "no_effort": False,
+        "part_sum": sums["sum_wx"].to_numpy(),
+        "part_weight": sums["sum_w"].to_numpy(),
+        "part_steps": steps.astype(np.float64),
     })
     return events, values
 

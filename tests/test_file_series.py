@@ -161,3 +161,96 @@ def test_one_file_or_many_in_any_order_give_the_same_store(study_dir: Path, valu
     np.testing.assert_allclose(many["value"], one["value"], rtol=0, atol=1e-9)
     np.testing.assert_allclose(many["effort"], one["effort"], rtol=1e-12)
     assert many["n_values"].tolist() == one["n_values"].tolist()
+
+
+# -------------------------------------------------------------- pings delivered in several files
+PING_HEADER = "vessel,time_utc,lat,lon,sog,gear\n"
+
+
+def _pings(rng: np.random.Generator, n_vessels: int, n_pings: int) -> pd.DataFrame:
+    """Tracks of n_vessels around the cell boundary near -152.094 E, every 20 min, fishing or steaming."""
+    rows = []
+    for v in range(n_vessels):
+        t = pd.Timestamp("2021-06-01T06:00:00Z") + pd.Timedelta(minutes=int(rng.integers(0, 600)))
+        lon = -152.3 + 0.4 * rng.random()
+        lat = 42.8 + 0.2 * rng.random()
+        for _ in range(n_pings):
+            sog = float(rng.choice([3.0, 3.5, 8.0, np.nan]))
+            rows.append((f"V-{v}", t.strftime("%Y-%m-%dT%H:%M:%SZ"), round(lat, 5), round(lon, 5),
+                         "" if np.isnan(sog) else sog, "OTB"))
+            t += pd.Timedelta(minutes=int(rng.choice([10, 20, 30, 200])))
+            lon += float(rng.normal(0, 0.01))
+    frame = pd.DataFrame(rows, columns=["vessel", "time_utc", "lat", "lon", "sog", "gear"])
+    dup = frame.sample(n=3, random_state=int(rng.integers(0, 1000)))  # exact duplicates
+    return pd.concat([frame, dup], ignore_index=True)
+
+
+def _effort_view(study: Study) -> pd.DataFrame:
+    with Store(study.store_dir).connect() as con:
+        return con.execute("""SELECT event_id, value, effort, n_vessels, n_values FROM observations
+                              WHERE source_kind = 'effort' ORDER BY event_id""").df().set_index("event_id")
+
+
+@settings(max_examples=5, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture],
+          phases=[Phase.explicit, Phase.reuse, Phase.generate])
+@given(seed=st.integers(0, 10_000), n_vessels=st.integers(3, 7), n_files=st.integers(2, 4))
+def test_pings_in_one_file_in_vessel_files_or_shuffled_give_the_same_cells(study_dir: Path, seed: int, n_vessels: int,
+                                                                         n_files: int) -> None:
+    """Fishing hours, distinct vessels and the rule of three per cell-period do not depend on
+    how the pings were cut into files (whole tracks per file) or on their row order."""
+    rng = np.random.default_rng(seed)
+    pings = _pings(rng, n_vessels, 12)
+    file_of_vessel = {f"V-{v}": int(rng.integers(0, n_files)) for v in range(n_vessels)}
+    results = {}
+    for case in ("one", "files", "shuffled"):
+        target = study_dir.parent / f"{study_dir.name}-pings-{case}-{seed}"
+        shutil.rmtree(target, ignore_errors=True)
+        shutil.copytree(study_dir, target, ignore=shutil.ignore_patterns("store"))
+        study = load_study(target)
+        if case == "files":
+            parts = [pings[pings["vessel"].map(file_of_vessel) == k] for k in range(n_files)]
+        elif case == "shuffled":
+            parts = [pings.sample(frac=1.0, random_state=seed)]
+        else:
+            parts = [pings]
+        for k, part in enumerate(parts):
+            if part.empty:
+                continue
+            path = target / f"pings_{k}.csv"
+            part.to_csv(path, index=False)
+            run(study, "effort_pings", {"rows": path})
+        results[case] = _effort_view(study)
+    one = results["one"]
+    assert len(one) > 0 and one.index.is_unique
+    for case in ("files", "shuffled"):
+        got = results[case]
+        assert list(got.index) == list(one.index)
+        np.testing.assert_allclose(got["value"], one["value"], rtol=0, atol=1e-9)
+        np.testing.assert_allclose(got["effort"], one["effort"], rtol=0, atol=1e-9)
+        assert got["n_vessels"].tolist() == one["n_vessels"].tolist()
+        assert got["n_values"].tolist() == one["n_values"].tolist()
+    # so the rule of three (fewer than 3 vessels -> suppressed) blanks the same cell-periods
+    assert ((results["files"]["n_vessels"] < 3) == (one["n_vessels"] < 3)).all()
+
+
+def test_vessel_counts_merge_across_files_for_the_rule_of_three(study_dir: Path) -> None:
+    """Three vessels fishing one cell in one season, each in its own daily file: 3 vessels, not 1."""
+    study = load_study(study_dir)
+    for k, vessel in enumerate(["A-1", "B-2", "C-3"]):
+        day = f"2021-06-0{k + 1}"
+        text = PING_HEADER + "".join(f"{vessel},{day}T{h:02d}:00:00Z,42.9,{-152.0 + 0.001 * h},3.0,OTB\n"
+                                     for h in range(8, 12))
+        (study_dir / f"day{k}.csv").write_text(text)
+        run(study, "effort_pings", {"rows": study_dir / f"day{k}.csv"})
+    view = _effort_view(study)
+    assert len(view) == 1
+    # four pings 1 h apart, each gets half of each neighbouring interval (within the
+    # max_gap_h / 2 = 1 h cap): 0.5 + 1 + 1 + 0.5 = 3 h per vessel (hand arithmetic)
+    assert view["value"].iloc[0] == pytest.approx(9.0, abs=1e-12)
+    assert view["n_vessels"].iloc[0] == 3 and view["n_values"].iloc[0] == 12
+    # with the second file replaced by one of vessel A again, two distinct vessels remain
+    (study_dir / "day1.csv").write_text(PING_HEADER + "".join(
+        f"A-1,2021-06-05T{h:02d}:00:00Z,42.9,{-152.0 + 0.001 * h},3.0,OTB\n" for h in range(8, 12)))
+    run(study, "effort_pings", {"rows": study_dir / "day1.csv"}, replace=True)
+    view = _effort_view(study)
+    assert view["n_vessels"].iloc[0] == 2 and view["value"].iloc[0] == pytest.approx(9.0, abs=1e-12)

@@ -223,6 +223,19 @@ def fishing_partial(track: pd.DataFrame, season_names: Sequence[str], season_off
         speed_derived=("derived", "any")).reset_index()
 
 
+def cell_vessels(track: pd.DataFrame, season_names: Sequence[str], season_offsets: Sequence[int]) -> pd.DataFrame:
+    """The distinct (CELL_KEYS, vid) pairs behind :func:`fishing_partial` (the vessels of each cell)."""
+    use = track[track["fishing"].to_numpy() & ~track["spike"].to_numpy() & (track["hours"].to_numpy() > 0)]
+    month = use["t"].dt.month.to_numpy() - 1
+    return pd.DataFrame({
+        "code": use["code"].to_numpy(np.int64),
+        "season_year": (use["t"].dt.year.to_numpy() + np.asarray(season_offsets, np.int64)[month]).astype(np.int32),
+        "season": np.asarray(season_names, dtype=object)[month],
+        "gear": use["gear"].to_numpy(object), "depth_layer": use["layer"].to_numpy(object),
+        "vid": use["vid"].to_numpy(),
+    }).drop_duplicates(ignore_index=True)
+
+
 @dataclass
 class TrackResult:
     """What the Dask ping stage returns to the ping reader."""
@@ -234,16 +247,19 @@ class TrackResult:
     #: Accepted pings (not jumps) classified as fishing, and those with a derived speed.
     n_fishing: int
     n_derived: int
+    #: The distinct (CELL_KEYS, vid) pairs: the vessels behind each cell.
+    vessels: pd.DataFrame | None = None
 
 
 def _bucket(paths: Sequence[str], max_speed_kn: float, max_gap_h: float, season_names: Sequence[str],
-            season_offsets: Sequence[int]) -> tuple[pd.DataFrame, pd.DataFrame, int, int]:
+            season_offsets: Sequence[int]) -> tuple[pd.DataFrame, pd.DataFrame, int, int, pd.DataFrame]:
     pings = pa.concat_tables([pq.read_table(p, columns=list(PING_COLUMNS)) for p in paths]).to_pandas()
     track = ping_track(pings, max_speed_kn, max_gap_h)
     kept = ~track["spike"].to_numpy()
     spikes = track.loc[~kept, ["row", "r_p1", "sp_in", "r_n1", "sp_out"]].reset_index(drop=True)
     return (fishing_partial(track, season_names, season_offsets), spikes,
-            int((track["fishing"].to_numpy() & kept).sum()), int((track["sog"].isna().to_numpy() & kept).sum()))
+            int((track["fishing"].to_numpy() & kept).sum()), int((track["sog"].isna().to_numpy() & kept).sum()),
+            cell_vessels(track, season_names, season_offsets))
 
 
 def fishing_hours(buckets: Sequence[Sequence[str]], max_speed_kn: float, max_gap_h: float,
@@ -286,7 +302,8 @@ def fishing_hours(buckets: Sequence[Sequence[str]], max_speed_kn: float, max_gap
                    pd.DataFrame({"row": pd.Series([], dtype=np.int64), "r_p1": pd.Series([], dtype="Int64"),
                                  "sp_in": pd.Series([], dtype=float), "r_n1": pd.Series([], dtype="Int64"),
                                  "sp_out": pd.Series([], dtype=float)}))
-    return TrackResult(cells, spike_frame, sum(p[2] for p in parts), sum(p[3] for p in parts))
+    vessels = pd.concat([p[4] for p in parts], ignore_index=True) if parts else None
+    return TrackResult(cells, spike_frame, sum(p[2] for p in parts), sum(p[3] for p in parts), vessels)
 
 
 # ---------------------------------------------------------------------------- audit

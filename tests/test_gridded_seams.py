@@ -114,3 +114,99 @@ def test_times_before_1800_are_bad_times_like_in_every_source(study_dir: Path) -
     assert masked.loc["bad_time", "n_values"] == n_pixels
     assert "dated before 1800-01-01, the earliest date harmonize accepts" in masked.loc["bad_time", "message"]
     assert all(e.split("/")[1] >= "2019" for e in out.values["event_id"])
+
+
+# -------------------------------------------------------------- guards
+def _field(study_dir: Path, data: np.ndarray, attrs: dict, lat: np.ndarray = LAT, lon: np.ndarray = LON,
+           lat_bounds: np.ndarray | None = None) -> Path:
+    ds = xr.Dataset({"sst": (("time", "lat", "lon"), data, attrs)}, coords={
+        "time": ("time", np.array([15.0]), {"units": "days since 2019-06-01", "standard_name": "time"}),
+        "lat": ("lat", np.asarray(lat, float), {"units": "degrees_north", "standard_name": "latitude"}),
+        "lon": ("lon", np.asarray(lon, float), {"units": "degrees_east", "standard_name": "longitude"}),
+    })
+    if lat_bounds is not None:
+        ds["lat"].attrs["bounds"] = "lat_bnds"
+        ds["lat_bnds"] = (("lat", "nv"), lat_bounds)
+    path = study_dir / "field.nc"
+    write_raw_netcdf(ds, path)
+    write_profile(study_dir, "model", SST, provider_type="model")
+    return path
+
+
+def _adapter_read(study_dir: Path, path: Path):  # type: ignore[no-untyped-def]
+    study = load_study(study_dir)
+    adapter, prof = prepare(study, "model")
+    return adapter.read({"rows": path}, prof, study)
+
+
+def test_a_latitude_axis_that_is_not_monotonic_is_refused(study_dir: Path) -> None:
+    from harmonize.errors import InputFileError
+
+    lat = LAT.copy()
+    lat[[3, 4]] = lat[[4, 3]]  # two rows swapped
+    path = _field(study_dir, np.full((1, LAT.size, LON.size), 9.0, np.float32), {"units": "degC"}, lat=lat)
+    with pytest.raises(InputFileError, match=r"coordinate axis 'lat' is not monotonic \(42\.85 follows 42\.95 at "
+                                             r"finite position 5 of 10\).*sortby"):
+        _adapter_read(study_dir, path)
+
+
+def test_a_single_latitude_row_without_bounds_is_refused_with_bounds_read(study_dir: Path) -> None:
+    from harmonize.errors import InputFileError
+
+    one = np.array([43.0])
+    data = np.full((1, 1, LON.size), 9.0, np.float32)
+    path = _field(study_dir, data, {"units": "degC"}, lat=one)
+    with pytest.raises(InputFileError, match=r"coordinate axis 'lat' has a single value \(43\) and no bounds"):
+        _adapter_read(study_dir, path)
+    # with bounds 42.95-43.05 the row's area is that band's (pyproj.Geod, Karney 2013)
+    import pyproj
+
+    path = _field(study_dir, data, {"units": "degC"}, lat=one, lat_bounds=np.array([[42.95, 43.05]]))
+    out = _adapter_read(study_dir, path)
+    n = 400
+    lons = np.concatenate([np.linspace(0, 0.1, n), np.linspace(0.1, 0, n)])
+    lats = np.concatenate([np.full(n, 42.95), np.full(n, 43.05)])
+    pixel = abs(pyproj.Geod(ellps="WGS84").polygon_area_perimeter(lons, lats)[0]) / 1e6
+    assert out.events["effort"].sum() == pytest.approx(pixel * LON.size, rel=1e-6)
+
+
+def test_scale_factor_zero_is_refused(study_dir: Path) -> None:
+    from harmonize.errors import InputFileError
+
+    path = _field(study_dir, np.full((1, LAT.size, LON.size), 900, np.int16),
+                  {"units": "degC", "scale_factor": np.float32(0.0), "add_offset": np.float32(0.0)})
+    with pytest.raises(InputFileError, match=r"variable 'sst' has scale_factor = 0: every value would unpack to "
+                                             r"add_offset \(0\)"):
+        _adapter_read(study_dir, path)
+
+
+def test_the_netcdf_default_fill_of_an_integer_variable_is_masked(study_dir: Path) -> None:
+    import netCDF4
+
+    fill = netCDF4.default_fillvals["i2"]  # -32767 (CF 1.11 section 2.5.1)
+    stored = np.full((1, LAT.size, LON.size), 900, np.int16)  # 9.00 degC packed by 0.01
+    stored[0, 0, :] = fill  # one row of land without a _FillValue attribute
+    path = _field(study_dir, stored, {"units": "degC", "scale_factor": np.float32(0.01)})
+    out = _adapter_read(study_dir, path)
+    masked = out.masked.set_index("reason_code")
+    assert masked.loc["missing_value", "n_values"] == LON.size
+    assert "-32767" in masked.loc["missing_value", "message"]
+    assert np.allclose(out.values["value"], 9.0, atol=1e-5)  # never -327.67 degC mixed in
+
+
+def test_a_nan_latitude_costs_its_own_row_only(study_dir: Path) -> None:
+    lat = LAT.copy()
+    lat[4] = np.nan
+    data = np.full((1, LAT.size, LON.size), 9.0, np.float32)
+    with_nan = _adapter_read(study_dir, _field(study_dir, data, {"units": "degC"}, lat=lat))
+    whole = _adapter_read(study_dir, _field(study_dir, data, {"units": "degC"}))
+    # the rows beside the NaN keep their 0.1-degree height: the valid area is the whole
+    # grid's less exactly the NaN row's pixels (band 42.9-43.0 N, pyproj.Geod)
+    import pyproj
+
+    n = 400
+    lons = np.concatenate([np.linspace(0, 0.1, n), np.linspace(0.1, 0, n)])
+    lats = np.concatenate([np.full(n, LAT[4] - 0.05), np.full(n, LAT[4] + 0.05)])
+    row = abs(pyproj.Geod(ellps="WGS84").polygon_area_perimeter(lons, lats)[0]) / 1e6 * LON.size
+    assert with_nan.events["effort"].sum() == pytest.approx(whole.events["effort"].sum() - row, rel=1e-6)
+    assert with_nan.files[0].rows_accepted == (LAT.size - 1) * LON.size

@@ -35,6 +35,7 @@ from harmonize.adapters.registry import register
 from harmonize.errors import ConfigError, InputFileError, ReasonCode
 from harmonize.gridded.aggregate import PERIODS, CellPeriodSums, Periods, assign_periods
 from harmonize.gridded.area import (
+    axis_bounds,
     corners_from_centres,
     edges_from_centres,
     quad_area_km2,
@@ -244,8 +245,8 @@ def regular_geometry(ds: xr.Dataset, lat_name: str, lon_name: str, study: Study,
     lat = np.asarray(ds[lat_name].values, dtype=np.float64)
     lon = np.asarray(ds[lon_name].values, dtype=np.float64)
     lat_b, lon_b = _bounds_of(ds, lat_name), _bounds_of(ds, lon_name)
-    lat_lo, lat_hi = (lat_b[:, 0], lat_b[:, 1]) if lat_b is not None else _pairs(edges_from_centres(lat))
-    lon_lo, lon_hi = (lon_b[:, 0], lon_b[:, 1]) if lon_b is not None else _pairs(edges_from_centres(lon))
+    lat_lo, lat_hi = (lat_b[:, 0], lat_b[:, 1]) if lat_b is not None else axis_bounds(lat)
+    lon_lo, lon_hi = (lon_b[:, 0], lon_b[:, 1]) if lon_b is not None else axis_bounds(lon)
     xmin, ymin, xmax, ymax = study.domain.bounds
     pad_y = float(np.nanmax(np.abs(lat_hi - lat_lo))) if lat.size else 0.0
     pad_x = float(np.nanmax(np.abs(lon_hi - lon_lo))) if lon.size else 0.0
@@ -260,10 +261,6 @@ def regular_geometry(ds: xr.Dataset, lat_name: str, lon_name: str, study: Study,
     area = regular_pixel_area_km2(lat_lo[y0:y1], lat_hi[y0:y1], lon_lo[x0:x1], lon_hi[x0:x1])
     dims = (ds[lat_name].dims[0], ds[lon_name].dims[0])
     return _finish_geometry(dims, (y0, y1, x0, x1), lat.size * lon.size, sub_lon, sub_lat, area, study, grid, extent)
-
-
-def _pairs(edges: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    return edges[:-1], edges[1:]
 
 
 def curvilinear_geometry(lon2: np.ndarray, lat2: np.ndarray, dims: tuple[str, str], study: Study,
@@ -449,7 +446,10 @@ def plan_variable(ds: xr.Dataset, mapping: VariableMapping, settings: GriddedSet
         unit = file_unit
     assert unit is not None
     scale, offset = unit_conversion(target.dimension, unit)  # type: ignore[misc]
-    packing = Packing.from_attrs(var.attrs, var.dtype)
+    try:
+        packing = Packing.from_attrs(var.attrs, var.dtype)
+    except ValueError as exc:
+        raise InputFileError(path, f"variable '{name}' {exc}") from None
     return VariablePlan(mapping, t_dim, z_dim, fixed, time, periods, geometry, packing, unit, scale, offset,
                         level_layer, level_weight, names, layer_weight, depths, early, time_notes)
 
@@ -514,6 +514,8 @@ def _horizontal(ds: xr.Dataset, name: str, dims: list, t_dim: str, z_dim: str | 
         if lat_v.ndim == 1 and lon_v.ndim == 1 and lat_v.dims[0] in dims and lon_v.dims[0] in dims:
             key = ("regular", lat_name, lon_name)
             if key not in cache:
+                for axis in (lat_name, lon_name):
+                    _check_axis(ds, axis, path)
                 cache[key] = regular_geometry(ds, lat_name, lon_name, study, grid)
             return cache[key], lat_v.dims[0], lon_v.dims[0]
         if lat_v.ndim == 2 and lat_v.dims == lon_v.dims and set(lat_v.dims) <= set(dims):
@@ -536,6 +538,27 @@ def _horizontal(ds: xr.Dataset, name: str, dims: list, t_dim: str, z_dim: str | 
     raise InputFileError(path, f"variable '{name}' has no usable horizontal coordinates: no latitude/longitude "
                          "(1-D axes or 2-D fields with CF units degrees_north/degrees_east) and no projected x/y "
                          f"axes with a grid_mapping; name them with [columns] lat and lon in {profile.path.name}")
+
+
+def _check_axis(ds: xr.Dataset, name: str, path: Path) -> None:
+    """Refuse a 1-D coordinate axis whose pixel sizes cannot be known.
+
+    Pixel edges lie half way between neighbouring centres, which needs the finite centres
+    to run one way (strictly increasing or decreasing) and, for a single centre, CF bounds
+    (CF 1.11 section 7.1); anything else would give wrong areas and cells without a word.
+    """
+    values = np.asarray(ds[name].values, np.float64)
+    finite = values[np.isfinite(values)]
+    step = np.diff(finite)
+    if finite.size > 1 and not ((step > 0).all() or (step < 0).all()):
+        bad = np.flatnonzero((np.sign(step) != np.sign(step[0])) | (step == 0))
+        i = int(bad[0]) + 1
+        raise InputFileError(path, f"coordinate axis '{name}' is not monotonic ({finite[i]:g} follows {finite[i - 1]:g} "
+                             f"at finite position {i + 1} of {finite.size}); pixel edges cannot be placed: sort the "
+                             "file along this axis (e.g. with xarray's sortby) or remove repeated values")
+    if values.size == 1 and _bounds_of(ds, name) is None:
+        raise InputFileError(path, f"coordinate axis '{name}' has a single value ({values[0]:g}) and no bounds, so "
+                             "its pixel size is unknown; add CF bounds (a bounds attribute naming a (1, 2) variable)")
 
 
 def _corners_from_bounds(b: np.ndarray) -> np.ndarray:

@@ -254,3 +254,24 @@ def test_vessel_counts_merge_across_files_for_the_rule_of_three(study_dir: Path)
     run(study, "effort_pings", {"rows": study_dir / "day1.csv"}, replace=True)
     view = _effort_view(study)
     assert view["n_vessels"].iloc[0] == 2 and view["value"].iloc[0] == pytest.approx(9.0, abs=1e-12)
+
+
+def test_a_store_written_before_the_parts_still_reads_one_row_per_cell_period(study_dir: Path) -> None:
+    """Parquet files without the part columns (older stores): merged by n_values, still one row."""
+    import pyarrow.parquet as pq
+
+    study = _winter_case(study_dir)
+    exact = _view(study).set_index("event_id")
+    store = Store(study.store_dir)
+    with store.connect() as con:
+        paths = [store.directory / r[0] for r in con.execute("SELECT path FROM observation_files").fetchall()]
+    for path in paths:
+        table = pq.read_table(path)
+        pq.write_table(table.drop_columns([c for c in ("part_sum", "part_weight", "part_steps", "vessel_ids")
+                                           if c in table.column_names]), path)
+    old = _view(study).set_index("event_id")
+    assert list(old.index) == list(exact.index)
+    # every step has the same valid pixels here, so weighting by the count of values is exact
+    np.testing.assert_allclose(old["value"], exact["value"], rtol=0, atol=1e-9)
+    np.testing.assert_allclose(old["effort"], exact["effort"], rtol=1e-12)
+    assert store.check() == []

@@ -30,6 +30,8 @@ with ``--replace`` for exact merges. Other source kinds pass through unchanged.
 
 from __future__ import annotations
 
+import duckdb
+
 from harmonize.contract import observation_sql_columns
 
 #: Kinds whose values span files and are merged across ingests.
@@ -98,3 +100,19 @@ def merged_sql(parts: str) -> str:
               f"WHERE p.source_kind IN ({kinds})")
     return (f"SELECT {plain} FROM {parts} WHERE source_kind NOT IN ({kinds}) UNION ALL "
             f"SELECT {merged} FROM ({joined}) GROUP BY source_kind, source_id, record_id")
+
+
+def ingests_behind(con: duckdb.DuckDBPyConnection, where: str) -> list[str]:
+    """Every ingest whose parts went into the merged rows of ``observations`` selected by ``where``.
+
+    The merged row names one ingest; the provenance of an export lists them all.
+    """
+    kinds = ", ".join(f"'{k}'" for k in MERGED_KINDS)
+    rows = con.execute(
+        f"""SELECT DISTINCT p.ingest_id FROM observation_parts p
+            SEMI JOIN (SELECT source_id, record_id FROM observations
+                       WHERE source_kind IN ({kinds}) AND ({where})) s
+              ON p.source_id = s.source_id AND p.record_id = s.record_id
+            ORDER BY 1"""
+    ).fetchall()
+    return [r[0] for r in rows]

@@ -15,7 +15,7 @@ from hypothesis import strategies as st
 
 from harmonize import load_study, run
 from harmonize.colocate import colocate, colocate_wide
-from harmonize.export.grid import read_grid
+from harmonize.export.grid import export_grid, read_grid
 from harmonize.export.wide import read_wide
 from harmonize.store import Store
 from harmonize.study import Study
@@ -67,6 +67,10 @@ def test_a_season_split_over_two_yearly_files_is_one_mean(study_dir: Path) -> No
     # the effort (valid area per time step) is the pixel area of the cell, as for one step
     assert dict(zip(winter["cell_id"], winter["effort"], strict=True)) == pytest.approx(one_step["effort"])
 
+    # the grid export's provenance lists both files' ingests behind the merged rows
+    written = export_grid(study, study_dir / "grid.csv")
+    ingests = Store(study.store_dir).ingests()
+    assert {i["ingest_id"] for i in written.metadata["ingests"]} == set(ingests["ingest_id"])
     grid = read_grid(study)
     g = grid[(grid["variable"] == "sea_surface_temperature") & (grid["season_year"] == 2020)]
     assert (g["events"] == 1).all() and len(g) == len(winter)

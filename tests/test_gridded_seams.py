@@ -210,3 +210,15 @@ def test_a_nan_latitude_costs_its_own_row_only(study_dir: Path) -> None:
     row = abs(pyproj.Geod(ellps="WGS84").polygon_area_perimeter(lons, lats)[0]) / 1e6 * LON.size
     assert with_nan.events["effort"].sum() == pytest.approx(whole.events["effort"].sum() - row, rel=1e-6)
     assert with_nan.files[0].rows_accepted == (LAT.size - 1) * LON.size
+
+
+def test_a_step_whose_bounds_straddle_two_months_goes_whole_to_its_midpoint(study_dir: Path) -> None:
+    # weekly means: 22-29 January (midpoint 25 Jan 12:00) and 29 January - 5 February
+    # (midpoint 1 February 12:00, by cftime below): the second week is February's, not split
+    units = "days since 2019-01-01"
+    lower = cftime.date2num([cftime.datetime(2019, 1, 22), cftime.datetime(2019, 1, 29)], units, calendar="standard")
+    upper = cftime.date2num([cftime.datetime(2019, 1, 29), cftime.datetime(2019, 2, 5)], units, calendar="standard")
+    mid = cftime.num2date((lower + upper) / 2, units, calendar="standard")
+    assert [(d.month, d.day) for d in mid] == [(1, 25), (2, 1)]
+    out = _read(study_dir, _dataset(upper, [4.0, 6.0], units, "standard", np.stack([lower, upper], axis=1)))
+    assert _month_means(out) == {"2019-01": 4.0, "2019-02": 6.0}

@@ -24,6 +24,24 @@ from harmonize.tagging import NEAR_BOTTOM, Grid
 
 #: Layer tags of 2-D fields: they describe the field, not a study layer, and match any sample.
 FIXED_LAYERS = ("surface", NEAR_BOTTOM)
+#: Aggregate over one gridded source's rows of one variable: true when it is a 2-D field (one
+#: fixed layer tag), whose values then match samples of any depth layer.
+FIXED_LAYER_SQL = ("(count(DISTINCT depth_layer) = 1 AND bool_and(depth_layer IN ("
+                   + ", ".join(f"'{x}'" for x in FIXED_LAYERS) + ")))")
+
+
+def match_sql(sample: str, gridded: str, fixed_layer: str) -> str:
+    """The co-location rule as a SQL join condition (the one rule colocate and the audit use).
+
+    ``sample`` and ``gridded`` are relation aliases with columns cell_id, event_start and
+    depth_layer (and event_end for the gridded one); ``fixed_layer`` a boolean expression,
+    true where the gridded field is 2-D (:data:`FIXED_LAYER_SQL`). A sample matches the
+    gridded cell-period of its own cell whose period ``[event_start, event_end)`` holds the
+    sample's start, in its own depth layer unless the field is 2-D.
+    """
+    s, g = sample, gridded
+    return (f"{g}.cell_id = {s}.cell_id AND {s}.event_start >= {g}.event_start AND {s}.event_start < {g}.event_end "
+            f"AND ({fixed_layer} OR {g}.depth_layer = {s}.depth_layer)")
 COLUMNS = ["source_id", "event_id", "variable", "value", "unit", "gridded_source_id", "gridded_event_id",
            "n_values", "valid_area_km2", "period_start", "period_end"]
 
@@ -71,19 +89,19 @@ def colocate(
     store = Store(study.store_dir)
     with store.connect() as con:
         available = con.execute(
-            """SELECT variable, source_id, list(DISTINCT depth_layer ORDER BY depth_layer) AS layers
-               FROM observations WHERE source_kind = 'gridded' GROUP BY ALL ORDER BY ALL"""
+            f"""SELECT variable, source_id, {FIXED_LAYER_SQL} AS fixed
+                FROM observations WHERE source_kind = 'gridded' GROUP BY ALL ORDER BY ALL"""
         ).df()
         pairs = _pairs(available, variables, sources)
         samples = _samples(con, events, study)
         con.register("_samples", samples)
         con.register("_pairs", pairs)
         result = con.sql(
-            """
+            f"""
             WITH g AS (
                 SELECT o.source_id AS gridded_source_id, o.event_id AS gridded_event_id, o.variable,
-                       o.cell_id, o.event_start AS period_start, o.event_end AS period_end,
-                       o.depth_layer AS g_layer, o.value, o.unit, o.n_values, o.effort AS valid_area_km2
+                       o.cell_id, o.event_start, o.event_end, o.depth_layer, o.value, o.unit, o.n_values,
+                       o.effort AS valid_area_km2
                 FROM observations o JOIN _pairs p
                   ON o.variable = p.variable AND o.source_id = p.gridded_source_id
                 WHERE o.source_kind = 'gridded'
@@ -91,12 +109,11 @@ def colocate(
             wanted AS (SELECT s.*, p.variable, p.gridded_source_id, p.fixed_layer
                        FROM _samples s CROSS JOIN _pairs p)
             SELECT w.source_id, w.event_id, w.variable, g.value, g.unit, w.gridded_source_id,
-                   g.gridded_event_id, g.n_values, g.valid_area_km2, g.period_start, g.period_end
+                   g.gridded_event_id, g.n_values, g.valid_area_km2, g.event_start AS period_start,
+                   g.event_end AS period_end
             FROM wanted w LEFT JOIN g
               ON g.variable = w.variable AND g.gridded_source_id = w.gridded_source_id
-             AND g.cell_id = w.cell_id
-             AND w.event_start >= g.period_start AND w.event_start < g.period_end
-             AND (w.fixed_layer OR g.g_layer = w.depth_layer)
+             AND {match_sql('w', 'g', 'w.fixed_layer')}
             ORDER BY w.source_id, w.event_id, w.variable, w.gridded_source_id
             """
         ).to_arrow_table().to_pandas()
@@ -148,8 +165,7 @@ def _pairs(available: pd.DataFrame, variables: list[str], sources: Mapping[str, 
             if have.empty:
                 raise HarmonizeError(f"gridded source '{sources[variable]}' has no '{variable}' in the store")
         for r in have.itertuples():
-            fixed = set(r.layers) <= set(FIXED_LAYERS) and len(r.layers) == 1
-            rows.append((variable, r.source_id, fixed))
+            rows.append((variable, r.source_id, bool(r.fixed)))
     pairs = pd.DataFrame(rows, columns=["variable", "gridded_source_id", "fixed_layer"])
     pairs["unit"] = [CANONICAL_VARIABLES[v].unit if v in CANONICAL_VARIABLES else None for v in pairs["variable"]]
     return pairs

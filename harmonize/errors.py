@@ -23,7 +23,7 @@ class ReasonCode(StrEnum):
     # added beyond the contract's first list
     REJECTED_EVENT = "rejected_event"
     FUTURE_TIME = "future_time"
-    TIME_BACKWARDS = "time_backwards"
+    TIME_BACKWARDS = "time_backwards"  # no longer given (pings are sorted); kept: codes are never reused
     CLOGGED_NET = "clogged_net"
     UNKNOWN_GEAR = "unknown_gear"
     # an absence reported outside a complete checklist (opportunistic records)

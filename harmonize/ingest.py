@@ -273,6 +273,12 @@ _VALUE_ARROW = pa.schema([
     ("no_effort", pa.bool_()), ("behavior", pa.string()),
     ("count_observed", pa.float64()), ("subsample_fraction", pa.float64()), ("provider_record_id", pa.string()),
 ])
+#: Mergeable parts of a value that spans files (harmonize.parts): written to the parquet files
+#: beside the contract's columns when the adapter gives them; the store's view merges them.
+_PART_ARROW = pa.schema([
+    ("part_sum", pa.float64()), ("part_weight", pa.float64()), ("part_steps", pa.float64()),
+    ("vessel_ids", pa.list_(pa.string())),
+])
 
 
 def tag_events(events: pd.DataFrame, study: Study) -> pd.DataFrame:
@@ -407,6 +413,8 @@ def assemble_blocks(out: AdapterOutput, study: Study, profile: Profile, kind: st
             if expr is None:
                 expr = f"v.{col}" if col in _VALUE_ARROW.names else f"e.{col}"
             select.append(f"CAST({expr} AS {typ}) AS \"{col}\"")
+        # the mergeable parts, when the adapter gives them (gridded and effort sources)
+        select += [f'v."{p.name}"' for p in _PART_ARROW if p.name in out.values]
         if not unique:
             # a hash join over all rows (events whose ids repeat are rare and small)
             con.register("ev", ev_tab)
@@ -480,14 +488,16 @@ def events_without_values(out: AdapterOutput, study: Study, profile: Profile, ki
 
 
 def _values_to_arrow(values: pd.DataFrame) -> pa.Table:
-    """The adapter's values as Arrow columns of :data:`_VALUE_ARROW` (absent columns: defaults).
+    """The adapter's values as Arrow columns of :data:`_VALUE_ARROW` (absent columns: defaults),
+    then the :data:`_PART_ARROW` columns the adapter gives.
 
     Categorical text columns stay dictionary-encoded (one integer code per row) until
     :func:`_decoded`; Arrow-backed columns convert without copying; lists become list columns.
     """
     n = len(values)
     arrays = []
-    for fld in _VALUE_ARROW:
+    schema = _value_schema(values)
+    for fld in schema:
         name = "flags" if fld.name == "value_flags" else fld.name
         col = values[name] if name in values else pd.Series([None] * n, dtype=object, index=values.index)
         if name == "no_effort":
@@ -502,17 +512,24 @@ def _values_to_arrow(values: pd.DataFrame) -> pa.Table:
         else:
             arr = _to_arrow(pd.DataFrame({fld.name: col}), pa.schema([fld])).column(0)
         arrays.append(arr)
-    return pa.Table.from_arrays(arrays, names=_VALUE_ARROW.names)
+    return pa.Table.from_arrays(arrays, names=schema.names)
+
+
+def _value_schema(values: pd.DataFrame | pa.Table) -> pa.Schema:
+    """:data:`_VALUE_ARROW` and the part columns present in ``values``."""
+    names = values.columns if isinstance(values, pd.DataFrame) else values.column_names
+    return pa.schema(list(_VALUE_ARROW) + [p for p in _PART_ARROW if p.name in names])
 
 
 def _decoded(table: pa.Table) -> pa.Table:
-    """The table with dictionary-encoded columns turned back into plain ones (of :data:`_VALUE_ARROW`)."""
+    """The table with dictionary-encoded columns turned back into plain ones (of :func:`_value_schema`)."""
     arrays = []
-    for fld, col in zip(_VALUE_ARROW, table.columns, strict=True):
+    schema = _value_schema(table)
+    for fld, col in zip(schema, table.columns, strict=True):
         if pa.types.is_dictionary(col.type):
             col = pa.chunked_array([c.dictionary_decode() for c in col.chunks], type=fld.type)
         arrays.append(col)
-    return pa.Table.from_arrays(arrays, schema=_VALUE_ARROW)
+    return pa.Table.from_arrays(arrays, schema=schema)
 
 
 def _store_order(position: np.ndarray, events: pd.DataFrame) -> np.ndarray:

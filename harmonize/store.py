@@ -30,7 +30,7 @@ import duckdb
 import pandas as pd
 import pyarrow as pa
 
-from harmonize import __version__, twins
+from harmonize import __version__, parts, twins
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns
 from harmonize.errors import StoreBusyError, StoreError
 
@@ -288,12 +288,17 @@ class Store:
         else:
             source = "(SELECT 1 LIMIT 0)"
         select = ", ".join(
-            f'CAST("{c}" AS {t}) AS "{c}"' if c in present else f'CAST(NULL AS {t}) AS "{c}"' for c, t in cols
+            f'CAST("{c}" AS {t}) AS "{c}"' if c in present else f'CAST(NULL AS {t}) AS "{c}"'
+            for c, t in cols + list(parts.PART_COLUMNS)
         )
         kind = "TEMP VIEW" if temporary else "VIEW"
-        # the parquet rows as written; the observations view adds the store-wide flags
-        # (probable_duplicate, high_count) that harmonize.twins recomputes at each commit
-        con.execute(f"CREATE OR REPLACE {kind} observations_base AS SELECT {select} FROM {source}")
+        # the parquet rows as written (with the mergeable parts of values that span files);
+        # observations_base holds one row per value, the parts of gridded and effort values
+        # merged across the live ingests of their source (harmonize.parts); the observations
+        # view adds the store-wide flags (probable_duplicate, high_count) that harmonize.twins
+        # recomputes at each commit
+        con.execute(f"CREATE OR REPLACE {kind} observation_parts AS SELECT {select} FROM {source}")
+        con.execute(f"CREATE OR REPLACE {kind} observations_base AS {parts.merged_sql('observation_parts')}")
         con.execute(f"CREATE OR REPLACE {kind} observations AS {twins.flagged_view_sql(con, 'observations_base')}")
 
     # ------------------------------------------------------------------ ingest support

@@ -109,11 +109,15 @@ def build_known_gaps(study: Study) -> KnownGaps:
     # ---------------------------------------------------------------- ocean model
     ev_rows, va_rows = [], []
     for year in YEARS:
-        for season, day in (("winter", WINTER_DAY), ("summer", SUMMER_DAY)):
+        for season in ("winter", "summer"):
             for j, cell in enumerate(all_cells.itertuples(index=False)):
                 eid = f"{cell.cell_id}_{year}_{season}"
-                ev_rows.append({"event_id": eid, "event_start": f"{year}-{day}", "lat": cell.lat, "lon": cell.lon,
-                                "cell_id": cell.cell_id, "depth_layer": "near_bottom", "effort": 625.0})
+                # a season mean, as the gridded adapter writes it: period [start, end)
+                start, end = ((f"{year - 1}-12-01", f"{year}-03-01") if season == "winter"
+                              else (f"{year}-06-01", f"{year}-09-01"))
+                ev_rows.append({"event_id": eid, "event_start": start, "event_end": end, "lat": cell.lat,
+                                "lon": cell.lon, "cell_id": cell.cell_id, "depth_layer": "near_bottom",
+                                "effort": 625.0})
                 trawl = trawl_temp.get((cell.cell_id, year, season))
                 if trawl is None:
                     value = 6.0

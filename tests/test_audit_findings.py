@@ -113,10 +113,10 @@ def test_source_disagreement_reports_the_offset_and_spread(known: tuple[Study, K
     assert f.details["mean_difference"] == pytest.approx(np.mean(diffs), abs=1e-9)
     assert f.details["mean_difference"] == pytest.approx(MODEL_OFFSET_C, abs=1e-9)
     assert f.details["sd_difference"] == pytest.approx(np.std(diffs, ddof=1), abs=1e-9)
-    assert f.details["n_cell_periods"] == len(diffs) == 4 * 20 + 4 * 20 + 8
+    assert f.details["n_cell_periods"] == f.details["n_pairs"] == len(diffs) == 4 * 20 + 4 * 20 + 8
     assert f.details["source_a"] == "survey_trawl" and f.details["source_b"] == "ocean_model"
     assert f.details["tolerance"] == 0.5
-    assert "+0.80 degC" in f.message
+    assert "+0.80 degC" in f.message and "168 matched pairs" in f.message
 
 
 def test_tolerance_from_study_toml(known: tuple[Study, KnownGaps], tmp_path: Path) -> None:

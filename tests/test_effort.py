@@ -60,10 +60,10 @@ def test_hand_worked_track(ping_study: Path) -> None:
     study = load_study(ping_study)
     result = run(study, "effort_pings", {"rows": ping_study / "pings_hand.csv"})
     assert result.status == "complete"
-    assert (result.rows_read, result.rows_accepted, result.rows_quarantined) == (31, 20, 11)
+    assert (result.rows_read, result.rows_accepted, result.rows_quarantined) == (31, 21, 10)
     reasons = dict(zip(result.quarantine["source_row"], result.quarantine["reason_code"], strict=True))
+    # bravo's 05:00 (row 7, between its 08:30 and 09:00 pings in the file) is sorted into place
     assert reasons == {
-        7: "time_backwards",      # bravo's 05:00 between its 08:30 and 09:00 pings
         10: "duplicate_record",   # ALPHA-1 10:00 twice
         12: "bad_type",           # one field too many
         19: "implausible_speed",  # DELTA-4 jumps ~178 km in 15 min and back
@@ -77,28 +77,29 @@ def test_hand_worked_track(ping_study: Path) -> None:
     }
     msg = dict(zip(result.quarantine["source_row"], result.quarantine["message"], strict=True))
     assert "exact duplicate of row 9" in msg[10]
-    assert "rows 6 and 8" in msg[7]
     assert "column 'lat' holds 'abc'" in msg[29]
 
     obs = _observations(ping_study)
     got = {(r.gear, r.cell_id, r.depth_layer): (r.value, r.n_vessels, r.n_values) for r in obs.itertuples()}
     # Hand-worked (max_gap_h = 2, so each half-interval is capped at 1 h):
     # E/OTB: ALPHA-1 09:30 0.5 + 10:00 0.5 + 14:30 (1.0 + 0.25) + 15:00 0.25 = 2.5 h (10:30 steams
-    #        at 9.5 kn); bravo 2: 0.25 + 0.5 + 0.25 = 1.0 h at a derived 3.0 kn; DELTA-4:
+    #        at 9.5 kn); bravo 2, sorted 05:00, 08:00, 08:30, 09:00: 05:00 has no speed (its
+    #        only link, 3 h, is longer than max_gap_h) and is not fishing; 08:00 (1.0 capped
+    #        + 0.25) + 08:30 0.5 + 09:00 0.25 = 2.0 h at a derived 3.0 kn; DELTA-4:
     #        08:00 and 08:30 get 0.25 h each once the 08:15 jump is skipped = 0.5 h. CHARLIE-3
-    #        steams slowly (0.8-1.2 kn) and adds nothing. Total 4.0 h from 3 vessels, 9 pings.
+    #        steams slowly (0.8-1.2 kn) and adds nothing. Total 5.0 h from 3 vessels, 9 pings.
     # W/OTB: ALPHA-1 08:00 0.25 + 08:30 0.5 + 09:00 0.5 = 1.25 h.
     # W/TBB: ECHO-5 at 6 kn, inside the profile's 2-8 kn beam-trawl window: 0.5 + 0.5 = 1.0 h.
     # E/OTM: FOXTROT-6, midwater -> the profile's pelagic layer: 0.25 + 0.25 = 0.5 h.
     assert got == {
-        ("OTB", E, "near_bottom"): (4.0, 3, 9),
+        ("OTB", E, "near_bottom"): (5.0, 3, 9),
         ("OTB", W, "near_bottom"): (1.25, 1, 3),
         ("OTM", E, "epipelagic"): (0.5, 1, 2),
         ("TBB", W, "near_bottom"): (1.0, 1, 2),
     }
     row = obs[(obs["gear"] == "OTB") & (obs["cell_id"] == E)].iloc[0]
     assert row["variable"] == "fishing_hours" and row["unit"] == "h" and row["effort_unit"] == "h"
-    assert row["effort"] == 4.0 and row["variable_kind"] == "effort" and row["quantity"] == "measurement"
+    assert row["effort"] == 5.0 and row["variable_kind"] == "effort" and row["quantity"] == "measurement"
     assert list(row["flags"]) == ["speed_derived"]
     assert (row["season"], row["season_year"]) == ("summer", 2021)
     assert row["event_start"] == pd.Timestamp("2021-06-01") and row["event_end"] == pd.Timestamp("2021-09-01")
@@ -236,7 +237,7 @@ def test_suppressed_export(ping_study: Path) -> None:
     assert n == 3
     kept = out[out["value"].notna()]
     assert list(zip(kept["gear"], kept["cell_id"], strict=True)) == [("OTB", E)]
-    assert kept["value"].iloc[0] == 4.0
+    assert kept["value"].iloc[0] == 5.0
     blanked = out[out["value"].isna()]
     assert blanked["effort"].isna().all() and len(blanked) == 3
     assert all("suppressed_confidential" in list(f) for f in blanked["flags"])
@@ -251,9 +252,9 @@ def test_rejects_beyond_the_limit_are_counted(ping_study: Path) -> None:
     (ping_study / "profiles" / "effort_pings.toml").write_text(profile)
     study = load_study(ping_study)
     result = run(study, "effort_pings", {"rows": ping_study / "pings_hand.csv"})
-    assert len(result.quarantine) == 4 and list(result.quarantine["source_row"]) == [7, 10, 12, 19]
-    assert result.masked["n_values"].sum() == 7
-    assert result.rows_quarantined == 11 and result.rows_read == result.rows_accepted + result.rows_quarantined
+    assert len(result.quarantine) == 4 and list(result.quarantine["source_row"]) == [10, 12, 19, 21]
+    assert result.masked["n_values"].sum() == 6
+    assert result.rows_quarantined == 10 and result.rows_read == result.rows_accepted + result.rows_quarantined
     assert result.reasons().to_dict()["implausible_speed"] == 2
     assert Store(study.store_dir).check() == []
 
@@ -264,9 +265,9 @@ def test_parquet_input_gives_the_same_cells(ping_study: Path) -> None:
         column_types={c: pa.string() for c in ("vessel", "time_utc", "lat", "lon", "sog", "gear")}))
     pq.write_table(text, ping_study / "pings.parquet")
     result = run(load_study(ping_study), "effort_pings", {"rows": ping_study / "pings.parquet"})
-    assert (result.rows_read, result.rows_quarantined) == (30, 10)
+    assert (result.rows_read, result.rows_quarantined) == (30, 9)
     got = {(r.gear, r.cell_id): r.value for r in _observations(ping_study).itertuples()}
-    assert got[("OTB", E)] == 4.0 and got[("OTB", W)] == 1.25
+    assert got[("OTB", E)] == 5.0 and got[("OTB", W)] == 1.25
 
 
 def test_local_times_are_stored_in_utc(study_dir: Path) -> None:
@@ -305,8 +306,7 @@ def test_demo_fleet(tmp_path: Path) -> None:
         result = run(study, folder / item.profile, {k: folder / v for k, v in item.inputs.items()})
         assert result.rows_read == result.rows_accepted + result.rows_quarantined
         if "pings" in item.profile:
-            assert result.reasons().to_dict() == {"duplicate_record": 25, "outside_domain": 1,
-                                                  "time_backwards": 1, "bad_type": 1}
+            assert result.reasons().to_dict() == {"duplicate_record": 25, "outside_domain": 1, "bad_type": 1}
     obs = _observations(folder)
     assert set(obs["gear"]) == {"OTB", "TBB", "OTM", "DRB"}
     assert (obs["n_vessels"] < 3).any() and (obs["n_vessels"] >= 3).any()
@@ -332,7 +332,7 @@ def test_fast_reader_and_line_reader_number_rows_alike(ping_study: Path) -> None
         fast = run(study, "effort_pings", {"rows": ping_study / "clean.csv"}, write=False)
     with mock.patch.object(PingReader, "_read_fast", return_value=False):
         slow = run(study, "effort_pings", {"rows": ping_study / "clean.csv"}, write=False)
-    assert (fast.rows_read, fast.rows_accepted, fast.rows_quarantined) == (30, 20, 10)
+    assert (fast.rows_read, fast.rows_accepted, fast.rows_quarantined) == (30, 21, 9)
     assert _quarantined(fast) == _quarantined(slow)
     assert fast.quarantine["raw"].tolist() == slow.quarantine["raw"].tolist()
     assert fast.records_written == slow.records_written == 4
@@ -347,16 +347,15 @@ def test_rows_are_counted_as_a_person_counts_them(ping_study: Path, block_rows: 
     (ping_study / "odd.csv").write_text(text)
     with mock.patch("harmonize.adapters.effort.FALLBACK_BLOCK_ROWS", block_rows):
         result = run(load_study(ping_study), "effort_pings", {"rows": ping_study / "odd.csv"}, write=False)
-    assert (result.rows_read, result.rows_accepted, result.rows_quarantined) == (31, 18, 13)
+    assert (result.rows_read, result.rows_accepted, result.rows_quarantined) == (31, 19, 12)
     got = {row: reason for row, reason, _ in _quarantined(result)}
     # the hand-worked rows of test_hand_worked_track keep their numbers; rows 2 and 3 are added
-    assert got == {2: "bad_type", 3: "bad_type", 7: "time_backwards", 10: "duplicate_record", 12: "bad_type",
+    assert got == {2: "bad_type", 3: "bad_type", 10: "duplicate_record", 12: "bad_type",
                    19: "implausible_speed", 21: "outside_domain", 22: "future_time", 23: "implausible_speed",
                    28: "missing_value", 29: "bad_type", 30: "unknown_gear", 31: "bad_time"}
     msg = {row: m for row, _, m in _quarantined(result)}
     assert msg[2] == ("row has a different number of fields than the header (1 instead of 6); "
                       "check delimiters and quotes")
-    assert "rows 6 and 8" in msg[7]
     assert json.loads(result.quarantine["raw"].iloc[0])["note"].startswith("row text withheld")
 
 

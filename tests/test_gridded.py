@@ -182,8 +182,8 @@ def test_noleap_and_leap_years_put_day_59_in_different_seasons(study_dir: Path) 
     # CF 4.4.1: day 59.5 after 2020-01-01 is 1 March in a no-leap calendar but 29 February in
     # the standard calendar (2020 is a leap year).
     study = load_study(study_dir)
-    lat, lon = np.array([43.0]), np.array([-152.0])
-    data = np.array([1.0, 2.0], np.float32).reshape(2, 1, 1)
+    lat, lon = np.array([43.0, 43.01]), np.array([-152.0, -151.99])  # a single row would need bounds
+    data = np.broadcast_to(np.array([1.0, 2.0], np.float32).reshape(2, 1, 1), (2, 2, 2)).copy()
     write_profile(study_dir, "m", 'tob = { name = "sea_water_temperature_at_sea_floor", unit = "degC" }',
                   period="season", layer="near_bottom")
     attrs = {"units": "degC"}

@@ -370,6 +370,9 @@ def effort_output(
         "n_values": cells["n_values"].astype("int64"), "n_vessels": cells["n_vessels"].astype("int64"),
         "no_effort": False,
     })
+    if "vessel_ids" in cells:
+        # the vessels behind each part: n_vessels merges across files (harmonize.parts)
+        values["vessel_ids"] = cells["vessel_ids"].to_numpy()
     return events, values
 
 
@@ -478,8 +481,9 @@ class PingReader:
     """The ping pipeline of one file, in DuckDB. See the module docstring for the method.
 
     Tables: ``p`` typed pings with the first row-level problem; ``q`` adds the hashed
-    vessel, the gear rule and the grid cell; ``dups`` and ``back`` hold the pings rejected
-    for their time (duplicates first, then lone out-of-sequence times); ``track`` the accepted pings with neighbours, class and hours.
+    vessel, the gear rule and the grid cell; ``dups`` holds the pings rejected as duplicates
+    (same vessel and time); ``track`` the accepted pings, sorted per vessel by time, with
+    neighbours, class and hours.
     """
 
     def __init__(self, path: Path, profile: Profile, study: Study, settings: FishingSettings,
@@ -754,7 +758,7 @@ class PingReader:
         return {r.gear: r.contact for r in rules.values() if r is not None}
 
     def _checks(self, con: duckdb.DuckDBPyConnection) -> None:
-        """Gear, domain, out-of-sequence times and duplicates (tables q, back, dups)."""
+        """Gear, domain and duplicates (tables q, dups)."""
         unknown_gear = ("printf('gear ''%s'' is not a known gear code; add a [fishing.gears.\"%s\"] table "
                         "with contact = \"bottom\" or \"pelagic\" to the profile', cell_txt(p.gear_raw), cell_txt(upper(trim(p.gear_raw))))")
         outside = "printf('position (%.4f, %.4f) lies outside the study domain', p.lat, p.lon)"
@@ -784,20 +788,9 @@ class PingReader:
                 WINDOW w AS (PARTITION BY vid ORDER BY t, row))
             WHERE t = t0
         """)
-        # A lone out-of-sequence time: earlier than the vessel's ping before it in the file or
-        # later than the one after it, while those two are in order with each other. Blocks
-        # of rows in another order (concatenated exports) are simply sorted.
-        con.execute(f"""
-            CREATE TABLE back AS
-            SELECT row, t, t0, t1, r0, r1 FROM (
-                SELECT row, t, lag(t) OVER w AS t0, lead(t) OVER w AS t1,
-                       lag(row) OVER w AS r0, lead(row) OVER w AS r1
-                FROM q ANTI JOIN dups USING (row)
-                WHERE q.vid IS NOT NULL AND q.t IS NOT NULL
-                  AND (q.reason IS NULL OR q.reason IN ('{ReasonCode.OUTSIDE_DOMAIN}', '{ReasonCode.UNKNOWN_GEAR}'))
-                WINDOW w AS (PARTITION BY vid ORDER BY row))
-            WHERE t0 <= t1 AND (t < t0 OR t > t1)
-        """)
+        # Pings in any order are sorted per vessel by time (the track's windows order by vessel,
+        # time and row): an ordinary AIS export interleaves vessels and repeats blocks, and a
+        # ping is not wrong for arriving out of order. A bad clock shows as an impossible jump.
 
     def _track_sql(self) -> str:
         """Neighbours, position jumps, derived speed, fishing class and hours per ping.
@@ -881,7 +874,7 @@ class PingReader:
                                                t AS t_cur, lat AS lat_cur, lon AS lon_cur,
                                                lag(t) OVER w0 AS t_prev, lag(lat) OVER w0 AS lat_prev,
                                                lag(lon) OVER w0 AS lon_prev
-                                        FROM q ANTI JOIN back USING (row) ANTI JOIN dups USING (row)
+                                        FROM q ANTI JOIN dups USING (row)
                                         WHERE q.reason IS NULL
                                         WINDOW w0 AS (PARTITION BY vid ORDER BY t, row)))
                                 WINDOW w AS (PARTITION BY vid ORDER BY t, row))))))
@@ -896,7 +889,7 @@ class PingReader:
         Returns the cells (as :meth:`_aggregate`), the fishing pings and the derived speeds.
         """
         from harmonize.engines import scratch_parent
-        from harmonize.engines.dask_engine import fishing_hours
+        from harmonize.engines.dask_engine import CELL_KEYS, fishing_hours
 
         scratch = Path(tempfile.mkdtemp(prefix="harmonize-pings-", dir=scratch_parent()))
         try:
@@ -905,7 +898,7 @@ class PingReader:
             target = _sql_text(str(scratch / "pings"))
             con.execute(f"""
                 COPY (SELECT row, vid, t, lat, lon, sog, gear, layer, smin, smax, code, vid % {buckets} AS bucket
-                      FROM q ANTI JOIN back USING (row) ANTI JOIN dups USING (row) WHERE q.reason IS NULL)
+                      FROM q ANTI JOIN dups USING (row) WHERE q.reason IS NULL)
                 TO {target} (FORMAT parquet, PARTITION_BY (bucket))""")
             folders = sorted(p for p in (scratch / "pings").glob("bucket=*") if p.is_dir())
             files = [sorted(str(f) for f in d.glob("*.parquet")) for d in folders]
@@ -919,6 +912,18 @@ class PingReader:
         con.execute("CREATE TEMP TABLE track AS SELECT row, r_p1, sp_in, r_n1, sp_out, true AS spike FROM dask_spikes")
         con.unregister("dask_spikes")
         cells = result.cells
+        if result.vessels is not None and len(cells):
+            # the vessels behind each cell (pseudonyms), so n_vessels merges across files
+            con.register("dask_cells", cells)
+            con.register("dask_vessels", result.vessels)
+            keys = ", ".join(CELL_KEYS)
+            cells = con.sql(f"""
+                SELECT c.*, coalesce(v.vessel_ids, []) AS vessel_ids FROM dask_cells c LEFT JOIN (
+                    SELECT {keys}, list_sort(list(DISTINCT m.vessel)) AS vessel_ids FROM dask_vessels d
+                    JOIN (SELECT DISTINCT vid, vessel FROM vmap) m USING (vid) GROUP BY ALL) v USING ({keys})
+                ORDER BY {keys}""").to_arrow_table().to_pandas()
+            con.unregister("dask_cells")
+            con.unregister("dask_vessels")
         ix, iy = decode_cells(cells["code"].to_numpy(np.int64))
         return cells.assign(ix=ix, iy=iy).drop(columns="code"), result.n_fishing, result.n_derived
 
@@ -1012,8 +1017,9 @@ class PingReader:
         df = con.sql(f"""
             SELECT code, {season_year} AS season_year, {season} AS season, gear, layer AS depth_layer,
                    sum(hours) AS hours, count(DISTINCT vid) AS n_vessels, count(*) AS n_values,
-                   bool_or(sog IS NULL) AS speed_derived
-            FROM track WHERE fishing AND NOT spike AND hours > 0
+                   bool_or(sog IS NULL) AS speed_derived, list_sort(list(DISTINCT vessel)) AS vessel_ids
+            FROM track LEFT JOIN (SELECT DISTINCT vid, vessel FROM vmap) USING (vid)
+            WHERE fishing AND NOT spike AND hours > 0
             GROUP BY ALL ORDER BY ALL
         """).to_arrow_table().to_pandas()
         ix, iy = decode_cells(df["code"].to_numpy(np.int64))
@@ -1029,11 +1035,6 @@ class PingReader:
             -- one reason per ping (a ping can break several rules): the first in this order
             SELECT row, arg_min(reason, prio) AS reason, arg_min(message, prio) AS message FROM (
             SELECT row, reason, message, 1 AS prio FROM q WHERE reason IS NOT NULL
-            UNION ALL
-            SELECT row, '{ReasonCode.TIME_BACKWARDS}',
-                   printf('time %s is out of sequence for this vessel: the pings before and after it in the '
-                          'file (rows %d and %d) are at %s and %s; a clock or typing error?',
-                          strftime(t, {iso}), r0, r1, strftime(t0, {iso}), strftime(t1, {iso})), 2 FROM back
             UNION ALL
             SELECT row, '{ReasonCode.DUPLICATE_RECORD}',
                    CASE WHEN same THEN printf('exact duplicate of row %d (same vessel, time and position)', r0)
@@ -1154,7 +1155,8 @@ def _read_logbook(path: Path, profile: Profile, study: Study, settings: FishingS
     })
     keys = ["ix", "iy", "season_year", "season", "gear", "depth_layer"]
     cells = frame.groupby(keys, as_index=False, sort=True).agg(
-        hours=("hours", "sum"), n_vessels=("vessel", "nunique"), n_values=("tow", "nunique"))
+        hours=("hours", "sum"), n_vessels=("vessel", "nunique"), n_values=("tow", "nunique"),
+        vessel_ids=("vessel", lambda v: sorted(set(v))))
     cells["speed_derived"] = False
     contact = {r.gear: r.contact for r in gear_rule.values() if r is not None}
     events, values = effort_output(cells, study, grid, contact)

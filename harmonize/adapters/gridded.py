@@ -30,11 +30,12 @@ import pyproj
 import xarray as xr
 
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
-from harmonize.adapters.reading import file_sha256
+from harmonize.adapters.reading import EARLIEST_TIME, file_sha256
 from harmonize.adapters.registry import register
 from harmonize.errors import ConfigError, InputFileError, ReasonCode
 from harmonize.gridded.aggregate import PERIODS, CellPeriodSums, Periods, assign_periods
 from harmonize.gridded.area import (
+    axis_bounds,
     corners_from_centres,
     edges_from_centres,
     quad_area_km2,
@@ -66,6 +67,7 @@ DEFAULT_CHUNK_MB = 128
 _BYTES_PER_VALUE = 48
 _HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
 HDF5_CHUNK_CACHE_BYTES = 4 * 2**20
+_EARLIEST_YEAR = int(EARLIEST_TIME[:4])
 
 
 # ------------------------------------------------------------------ settings
@@ -243,8 +245,8 @@ def regular_geometry(ds: xr.Dataset, lat_name: str, lon_name: str, study: Study,
     lat = np.asarray(ds[lat_name].values, dtype=np.float64)
     lon = np.asarray(ds[lon_name].values, dtype=np.float64)
     lat_b, lon_b = _bounds_of(ds, lat_name), _bounds_of(ds, lon_name)
-    lat_lo, lat_hi = (lat_b[:, 0], lat_b[:, 1]) if lat_b is not None else _pairs(edges_from_centres(lat))
-    lon_lo, lon_hi = (lon_b[:, 0], lon_b[:, 1]) if lon_b is not None else _pairs(edges_from_centres(lon))
+    lat_lo, lat_hi = (lat_b[:, 0], lat_b[:, 1]) if lat_b is not None else axis_bounds(lat)
+    lon_lo, lon_hi = (lon_b[:, 0], lon_b[:, 1]) if lon_b is not None else axis_bounds(lon)
     xmin, ymin, xmax, ymax = study.domain.bounds
     pad_y = float(np.nanmax(np.abs(lat_hi - lat_lo))) if lat.size else 0.0
     pad_x = float(np.nanmax(np.abs(lon_hi - lon_lo))) if lon.size else 0.0
@@ -259,10 +261,6 @@ def regular_geometry(ds: xr.Dataset, lat_name: str, lon_name: str, study: Study,
     area = regular_pixel_area_km2(lat_lo[y0:y1], lat_hi[y0:y1], lon_lo[x0:x1], lon_hi[x0:x1])
     dims = (ds[lat_name].dims[0], ds[lon_name].dims[0])
     return _finish_geometry(dims, (y0, y1, x0, x1), lat.size * lon.size, sub_lon, sub_lat, area, study, grid, extent)
-
-
-def _pairs(edges: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
-    return edges[:-1], edges[1:]
 
 
 def curvilinear_geometry(lon2: np.ndarray, lat2: np.ndarray, dims: tuple[str, str], study: Study,
@@ -338,6 +336,8 @@ class VariablePlan:
     layer_names: list[str]
     layer_weight: np.ndarray  # total level weight of each layer
     layer_depths: list[tuple[float | None, float | None]]
+    early: np.ndarray  # (T,) steps dated before the earliest date (bad times)
+    time_notes: list[str]
 
     @property
     def n_levels(self) -> int:
@@ -386,12 +386,10 @@ def plan_variable(ds: xr.Dataset, mapping: VariableMapping, settings: GriddedSet
                              "units '<unit> since <date>'); name it with [columns] time = \"...\" in "
                              f"{profile.path.name}, or add a time dimension to the file")
     t_dim = ds[t_name].dims[0]
-    t_attrs = ds[t_name].attrs
-    try:
-        time = decode_time(ds[t_name].values, t_attrs.get("units"), t_attrs.get("calendar"))
-    except ValueError as exc:
-        raise InputFileError(path, f"time coordinate '{t_name}' of '{name}': {exc}") from None
-    periods = assign_periods(time.year, time.month, time.valid, settings.period, study.seasons)
+    time, at, time_notes = _time_steps(ds, t_name, name, path)
+    # the earliest-date rule of the tabular sources (reading.EARLIEST_TIME): older steps are bad times
+    early = at.valid & (at.year < _EARLIEST_YEAR)
+    periods = assign_periods(at.year, at.month, at.valid & ~early, settings.period, study.seasons)
 
     # vertical
     z_name = _coordinate_role(ds, coords, "depth", path, profile)
@@ -448,9 +446,50 @@ def plan_variable(ds: xr.Dataset, mapping: VariableMapping, settings: GriddedSet
         unit = file_unit
     assert unit is not None
     scale, offset = unit_conversion(target.dimension, unit)  # type: ignore[misc]
-    packing = Packing.from_attrs(var.attrs, var.dtype)
+    try:
+        packing = Packing.from_attrs(var.attrs, var.dtype)
+    except ValueError as exc:
+        raise InputFileError(path, f"variable '{name}' {exc}") from None
     return VariablePlan(mapping, t_dim, z_dim, fixed, time, periods, geometry, packing, unit, scale, offset,
-                        level_layer, level_weight, names, layer_weight, depths)
+                        level_layer, level_weight, names, layer_weight, depths, early, time_notes)
+
+
+def _time_steps(ds: xr.Dataset, t_name: str, name: str, path: Path) -> tuple[TimeAxis, TimeAxis, list[str]]:
+    """The decoded time stamps, the time that places each step in a period, and notes.
+
+    With CF time bounds (CF 1.11 section 7.1: the bounds variable named by the coordinate's
+    ``bounds`` attribute, in the coordinate's units and calendar), a step belongs to the
+    period holding the midpoint of its bounds: a monthly mean stamped at the end of its month
+    (upper bound) stays in its own month. A step whose bounds straddle two periods goes whole
+    to the period of its midpoint. Without bounds, the stamp places the step.
+    """
+    t_attrs = ds[t_name].attrs
+    units, calendar = t_attrs.get("units"), t_attrs.get("calendar")
+    stamps = np.asarray(ds[t_name].values, np.float64)
+    try:
+        time = decode_time(stamps, units, calendar)
+    except ValueError as exc:
+        raise InputFileError(path, f"time coordinate '{t_name}' of '{name}': {exc}") from None
+    bname = t_attrs.get("bounds")
+    if not (isinstance(bname, str) and bname in ds.variables):
+        return time, time, []
+    bounds = np.asarray(ds[bname].values, np.float64)
+    if bounds.shape != (stamps.size, 2):
+        raise InputFileError(path, f"time bounds '{bname}' of '{t_name}' have shape {bounds.shape}, expected "
+                             f"({stamps.size}, 2) (CF 7.1: one lower and one upper bound per time step); "
+                             "correct the file or remove its bounds attribute")
+    midpoint = bounds.mean(axis=1)
+    try:
+        at = decode_time(midpoint, units, calendar)
+    except ValueError as exc:
+        raise InputFileError(path, f"time bounds '{bname}' of '{name}': {exc}") from None
+    at = TimeAxis(at.year, at.month, at.valid & time.valid, at.calendar, at.units)
+    notes = [f"'{name}': time steps placed in periods by the midpoint of their bounds '{bname}' (CF 1.11 section 7.1)"]
+    upper = at.valid & (stamps == bounds.max(axis=1))
+    if upper.any():
+        notes.append(f"'{name}': {int(upper.sum())} of {stamps.size} time stamps equal the upper bound of their "
+                     "interval (stamped at its end); each step counts in the period of its midpoint, not of its stamp")
+    return time, at, notes
 
 
 def _horizontal(ds: xr.Dataset, name: str, dims: list, t_dim: str, z_dim: str | None, coords: Mapping[str, str],
@@ -475,6 +514,8 @@ def _horizontal(ds: xr.Dataset, name: str, dims: list, t_dim: str, z_dim: str | 
         if lat_v.ndim == 1 and lon_v.ndim == 1 and lat_v.dims[0] in dims and lon_v.dims[0] in dims:
             key = ("regular", lat_name, lon_name)
             if key not in cache:
+                for axis in (lat_name, lon_name):
+                    _check_axis(ds, axis, path)
                 cache[key] = regular_geometry(ds, lat_name, lon_name, study, grid)
             return cache[key], lat_v.dims[0], lon_v.dims[0]
         if lat_v.ndim == 2 and lat_v.dims == lon_v.dims and set(lat_v.dims) <= set(dims):
@@ -497,6 +538,27 @@ def _horizontal(ds: xr.Dataset, name: str, dims: list, t_dim: str, z_dim: str | 
     raise InputFileError(path, f"variable '{name}' has no usable horizontal coordinates: no latitude/longitude "
                          "(1-D axes or 2-D fields with CF units degrees_north/degrees_east) and no projected x/y "
                          f"axes with a grid_mapping; name them with [columns] lat and lon in {profile.path.name}")
+
+
+def _check_axis(ds: xr.Dataset, name: str, path: Path) -> None:
+    """Refuse a 1-D coordinate axis whose pixel sizes cannot be known.
+
+    Pixel edges lie half way between neighbouring centres, which needs the finite centres
+    to run one way (strictly increasing or decreasing) and, for a single centre, CF bounds
+    (CF 1.11 section 7.1); anything else would give wrong areas and cells without a word.
+    """
+    values = np.asarray(ds[name].values, np.float64)
+    finite = values[np.isfinite(values)]
+    step = np.diff(finite)
+    if finite.size > 1 and not ((step > 0).all() or (step < 0).all()):
+        bad = np.flatnonzero((np.sign(step) != np.sign(step[0])) | (step == 0))
+        i = int(bad[0]) + 1
+        raise InputFileError(path, f"coordinate axis '{name}' is not monotonic ({finite[i]:g} follows {finite[i - 1]:g} "
+                             f"at finite position {i + 1} of {finite.size}); pixel edges cannot be placed: sort the "
+                             "file along this axis (e.g. with xarray's sortby) or remove repeated values")
+    if values.size == 1 and _bounds_of(ds, name) is None:
+        raise InputFileError(path, f"coordinate axis '{name}' has a single value ({values[0]:g}) and no bounds, so "
+                             "its pixel size is unknown; add CF bounds (a bounds attribute naming a (1, 2) variable)")
 
 
 def _corners_from_bounds(b: np.ndarray) -> np.ndarray:
@@ -575,13 +637,14 @@ class MaskCounts:
     outside: int = 0
     below: int = 0
     bad_time: int = 0
+    early: int = 0
     fill: int = 0
     invalid: int = 0
     implausible: int = 0
 
     @property
     def masked(self) -> int:
-        return self.outside + self.below + self.bad_time + self.fill + self.invalid + self.implausible
+        return self.outside + self.below + self.bad_time + self.early + self.fill + self.invalid + self.implausible
 
 
 def _blocks(plan: VariablePlan, chunk_mb: float) -> list[tuple[int, int, int, int]]:
@@ -634,7 +697,9 @@ def reduce_variable(ds: xr.Dataset, plan: VariablePlan, chunk_mb: float, path: P
         step_period = plan.periods.step_period[t0:t1]
         time_ok = step_period >= 0
         n_pix = local.size
-        counts.bad_time += int((~time_ok).sum()) * plan.n_levels * n_pix
+        n_early = int(plan.early[t0:t1].sum())
+        counts.early += n_early * plan.n_levels * n_pix
+        counts.bad_time += (int((~time_ok).sum()) - n_early) * plan.n_levels * n_pix
         counts.below += int(time_ok.sum()) * int((~level_ok).sum()) * n_pix
         region = time_ok[:, None, None] & level_ok[None, :, None]
         fill &= region
@@ -692,7 +757,9 @@ def _events_and_values(plan: VariablePlan, sums: pd.DataFrame) -> tuple[pd.DataF
     c = sums["cell"].to_numpy()
     layer_names = np.array(plan.layer_names, dtype=object)
     n_steps = periods["n_steps"].to_numpy()[p]
-    effort = sums["sum_w"].to_numpy() / (n_steps * plan.layer_weight[lay])
+    # the mergeable parts (harmonize.parts): a period that spans files merges in the store
+    steps = n_steps * plan.layer_weight[lay]
+    effort = sums["sum_w"].to_numpy() / steps
     mean = sums["sum_wx"].to_numpy() / sums["sum_w"].to_numpy()
     cell_id = cells["cell_id"].to_numpy()[c]
     label = periods["label"].to_numpy()[p]
@@ -733,6 +800,9 @@ def _events_and_values(plan: VariablePlan, sums: pd.DataFrame) -> tuple[pd.DataF
         "n_values": sums["n"].to_numpy(),
         "n_vessels": None,
         "no_effort": False,
+        "part_sum": sums["sum_wx"].to_numpy(),
+        "part_weight": sums["sum_w"].to_numpy(),
+        "part_steps": steps.astype(np.float64),
     })
     return events, values
 
@@ -750,6 +820,9 @@ def _masked_rows(plan: VariablePlan, counts: MaskCounts, file_name: str) -> list
          f"'{name}': values on depth levels below the deepest study layer"),
         (ReasonCode.BAD_TIME, counts.bad_time,
          f"'{name}': values of time steps whose time cannot be decoded (missing or non-finite time)"),
+        (ReasonCode.BAD_TIME, counts.early,
+         f"'{name}': values of time steps dated before {EARLIEST_TIME}, the earliest date harmonize accepts "
+         "(as for every source); check the time units and reference date"),
         (ReasonCode.MISSING_VALUE, counts.fill,
          f"'{name}': fill values ({plan.packing.describe_fill()}): land, cloud or no data"),
         (ReasonCode.OUT_OF_RANGE, counts.invalid,
@@ -810,6 +883,7 @@ class GriddedAdapter(Adapter):
                 notes.append(f"{name} -> {plan.mapping.target.name} ({conversion}; {plan.time.calendar} calendar; "
                              f"{plan.time.year.size} time steps; {len(ev):,} cell-{settings.period}s): "
                              f"{counts.used:,} of {plan.n_values:,} values used")
+                notes += plan.time_notes
         events_df = pd.concat(events, ignore_index=True)
         values_df = pd.concat(values, ignore_index=True)
         masked_df = pd.DataFrame(masked, columns=["source_file", "reason_code", "n_values", "message"])

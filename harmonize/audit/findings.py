@@ -420,12 +420,13 @@ def source_disagreement(m: Metrics, study: Study) -> list[Finding]:
         sd_text = "n/a" if pd.isna(sd) else f"{float(sd):.2f}"
         unit = _str(r.unit) or ""
         base = (f"{r.variable} from {r.source_a} ({r.kind_a}) and {r.source_b} ({r.kind_b}) differ by "
-                f"{mean:+.2f} {unit} on average (sd {sd_text}, {int(r.n_cell_periods)} shared cell-periods, "
+                f"{mean:+.2f} {unit} on average over {int(r.n_pairs)} matched pairs, each value beside the other "
+                f"source's value of its own cell and period (sd {sd_text}, {int(r.n_cell_periods)} cell-periods, "
                 f"{_layer(_str(r.depth_layer))})")
         details = {"source_a": r.source_a, "source_b": r.source_b, "kind_b": r.kind_b,
                    "mean_difference": mean, "sd_difference": None if pd.isna(sd) else float(sd),
-                   "n_cell_periods": int(r.n_cell_periods), "unit": unit, "tolerance": tol,
-                   "delta_change_offset": mean}
+                   "n_pairs": int(r.n_pairs), "n_cell_periods": int(r.n_cell_periods), "unit": unit,
+                   "tolerance": tol, "delta_change_offset": mean}
         if tol is None:
             out.append(Finding(
                 "source_disagreement", "info",

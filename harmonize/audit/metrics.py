@@ -24,6 +24,7 @@ from dataclasses import dataclass
 import duckdb
 import pandas as pd
 
+from harmonize.colocate import FIXED_LAYER_SQL, match_sql
 from harmonize.confidentiality import suppression_sql
 
 DUPLICATE_FLAG = "probable_duplicate"
@@ -272,48 +273,60 @@ def encounters(con: duckdb.DuckDBPyConnection, max_year: int | None = None,
     ).df()
 
 
-def comparisons(con: duckdb.DuckDBPyConnection, max_year: int | None = None,
-                per_source_table: str | None = None) -> pd.DataFrame:
-    """Differences between two sources of one physical variable in the same cell and period.
+def comparisons(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> pd.DataFrame:
+    """Offsets between sources of one physical variable, from matched pairs.
 
-    Each source's values are averaged per cell_id x season_year x season x depth layer;
-    cell-periods that both sources describe are paired, and the difference (first minus
-    second) is summarised per variable, source pair and layer: its mean (the offset a
-    delta-change correction would add to the second source) and its sample standard
-    deviation. In-situ sources come first, model and remote-sensing sources second.
-    ``per_source_table`` holds the per-source means computed elsewhere (the Dask engine).
+    Each in-situ value (a physical value of a non-gridded source: a haul's bottom
+    temperature) is paired with the value of each gridded source of the same variable in its
+    own cell and period, by the co-location rule (:func:`harmonize.colocate.match_sql`); two
+    gridded sources are paired where they describe the same cell, period and layer. The
+    difference (first minus second: in-situ first, then model and remote-sensing sources) is
+    summarised per variable, gridded layer and source pair: its mean (the offset a
+    delta-change correction would add to the second source), its sample standard deviation,
+    the number of pairs and of distinct cell-periods. Averaging each source over a season
+    first would report as bias what is only timing (sensors that sampled June against a model
+    mean of June-August).
     """
     refs = ", ".join(f"'{p}'" for p in REFERENCE_PROVIDERS)
-    per_source = f"""
-            SELECT variable, source_id, any_value(source_kind) AS source_kind,
-                   any_value(provider_type) AS provider_type, any_value(unit) AS unit,
-                   cell_id, season_year, season, depth_layer, avg(value) AS mean_value
-            FROM observations
-            WHERE variable_kind = 'physical' AND value IS NOT NULL AND cell_id IS NOT NULL
-                  AND {_KEPT}{_year_filter(max_year)}
-            GROUP BY variable, source_id, cell_id, season_year, season, depth_layer"""
-    if per_source_table is not None:
-        per_source = f"""
-            SELECT variable, source_id, source_kind, provider_type, unit, cell_id,
-                   CAST(season_year AS INTEGER) AS season_year, season, depth_layer, mean_value
-            FROM {per_source_table}"""
+    kept = f"variable_kind = 'physical' AND value IS NOT NULL AND cell_id IS NOT NULL AND {_KEPT}"
     return con.execute(
         f"""
-        WITH per_source AS ({per_source}
+        WITH fields AS (
+            SELECT source_id, variable, {FIXED_LAYER_SQL} AS fixed_layer
+            FROM observations WHERE source_kind = 'gridded' GROUP BY ALL
         ),
-        ranked AS (SELECT *, provider_type IN ({refs}) AS is_reference FROM per_source)
-        SELECT a.variable, a.depth_layer, a.source_id AS source_a, b.source_id AS source_b,
-               a.source_kind AS kind_a, b.source_kind AS kind_b, a.unit,
-               count(*) AS n_cell_periods,
-               avg(a.mean_value - b.mean_value) AS mean_difference,
-               stddev_samp(a.mean_value - b.mean_value) AS sd_difference,
-               min(a.season_year) AS first_year, max(a.season_year) AS last_year
-        FROM ranked a JOIN ranked b
-             ON a.variable = b.variable AND a.cell_id = b.cell_id AND a.season_year = b.season_year
-                AND a.season = b.season AND a.depth_layer IS NOT DISTINCT FROM b.depth_layer
-                AND (a.is_reference < b.is_reference
-                     OR (a.is_reference = b.is_reference AND a.source_id < b.source_id))
-        GROUP BY ALL ORDER BY ALL
+        gridded AS (
+            SELECT source_id, source_kind, provider_type, variable, unit, cell_id, event_start, event_end,
+                   depth_layer, season_year, value, fixed_layer
+            FROM observations JOIN fields USING (source_id, variable)
+            WHERE source_kind = 'gridded' AND {kept}
+        ),
+        in_situ AS (
+            SELECT source_id, source_kind, provider_type, variable, unit, cell_id, event_start, depth_layer,
+                   season_year, value
+            FROM observations WHERE source_kind <> 'gridded' AND event_start IS NOT NULL AND {kept}
+        ),
+        pairs AS (
+            SELECT s.variable, g.depth_layer, s.source_id AS source_a, g.source_id AS source_b,
+                   s.source_kind AS kind_a, g.source_kind AS kind_b, s.unit,
+                   s.value - g.value AS difference, s.season_year,
+                   g.cell_id || '/' || CAST(g.event_start AS VARCHAR) AS cell_period
+            FROM in_situ s JOIN gridded g ON g.variable = s.variable AND {match_sql('s', 'g', 'g.fixed_layer')}
+            UNION ALL
+            SELECT a.variable, b.depth_layer, a.source_id, b.source_id, a.source_kind, b.source_kind, a.unit,
+                   a.value - b.value, a.season_year, b.cell_id || '/' || CAST(b.event_start AS VARCHAR)
+            FROM gridded a JOIN gridded b
+              ON a.variable = b.variable AND a.cell_id = b.cell_id AND a.event_start = b.event_start
+                 AND a.event_end = b.event_end AND a.depth_layer = b.depth_layer
+                 AND ((a.provider_type IN ({refs})) < (b.provider_type IN ({refs}))
+                      OR ((a.provider_type IN ({refs})) = (b.provider_type IN ({refs})) AND a.source_id < b.source_id))
+        )
+        SELECT variable, depth_layer, source_a, source_b, kind_a, kind_b, any_value(unit) AS unit,
+               count(*) AS n_pairs, count(DISTINCT cell_period) AS n_cell_periods,
+               avg(difference) AS mean_difference, stddev_samp(difference) AS sd_difference,
+               min(season_year) AS first_year, max(season_year) AS last_year
+        FROM pairs WHERE TRUE{_year_filter(max_year)}
+        GROUP BY variable, depth_layer, source_a, source_b, kind_a, kind_b ORDER BY ALL
         """
     ).df()
 

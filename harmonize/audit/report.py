@@ -337,14 +337,16 @@ def _comparisons(result: AuditResult) -> str:
         sd = "" if pd.isna(r.sd_difference) else f"{r.sd_difference:.2f}"
         rows.append(f"<tr><td>{_e(r.variable)}</td><td>{_e(r.depth_layer)}</td><td>{_e(r.source_a)} ({_e(r.kind_a)})</td>"
                     f"<td>{_e(r.source_b)} ({_e(r.kind_b)})</td><td class=\"num\">{r.mean_difference:+.2f} {_e(r.unit)}</td>"
-                    f"<td class=\"num\">{sd}</td><td class=\"num\">{int(r.n_cell_periods):,}</td>"
+                    f"<td class=\"num\">{sd}</td><td class=\"num\">{int(r.n_pairs):,}</td>"
+                    f"<td class=\"num\">{int(r.n_cell_periods):,}</td>"
                     f"<td class=\"num\">{int(r.first_year)}–{int(r.last_year)}</td></tr>")
-    return ('<p class="lead">Where two sources describe one physical variable in the same cell, season year, '
-            'season and depth layer, their per-cell means are paired. The mean difference (first minus second) '
-            'is the offset a delta-change correction would add to the second source; its spread says how '
-            'stable that offset is.</p><table><thead><tr><th>variable</th><th>layer</th><th>first source</th>'
+    return ('<p class="lead">Each in-situ value of a physical variable is paired with the gridded value of its '
+            'own cell and period (the rule of co-location; two gridded sources pair where they describe the same '
+            'cell, period and layer). The mean difference of the pairs (first minus second) is the offset a '
+            'delta-change correction would add to the second source; its spread says how stable that offset '
+            'is.</p><table><thead><tr><th>variable</th><th>layer</th><th>first source</th>'
             '<th>second source</th><th class="num">mean difference</th><th class="num">sd</th>'
-            '<th class="num">cell-periods</th><th class="num">years</th></tr></thead>'
+            '<th class="num">pairs</th><th class="num">cell-periods</th><th class="num">years</th></tr></thead>'
             f'<tbody>{"".join(rows)}</tbody></table>')
 
 

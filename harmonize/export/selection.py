@@ -22,6 +22,7 @@ from typing import Any
 
 import duckdb
 
+from harmonize import parts
 from harmonize.confidentiality import SUPPRESSED_FLAG, suppression_sql
 from harmonize.errors import HarmonizeError
 from harmonize.store import Store
@@ -211,10 +212,12 @@ def base_counts(con: duckdb.DuckDBPyConnection, filters: ExportFilters, min_vess
                    count(*) FILTER (WHERE {duplicate_sql()})
             FROM observations WHERE {filters.where_sql()} GROUP BY ingest_id ORDER BY ingest_id"""
     ).fetchall()
+    # a merged gridded or effort row names one of its ingests: list every one behind it
+    ingest_ids = sorted({r[0] for r in rows} | set(parts.ingests_behind(con, filters.where_sql())))
     return {"rows_selected": sum(int(r[1]) for r in rows),
             "rows_suppressed_confidential": sum(int(r[2]) for r in rows),
             "rows_probable_duplicate": sum(int(r[3]) for r in rows),
-            "ingest_ids": [r[0] for r in rows]}
+            "ingest_ids": ingest_ids}
 
 
 @contextmanager

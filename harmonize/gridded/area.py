@@ -55,6 +55,24 @@ def edges_from_centres(centres: np.ndarray) -> np.ndarray:
     return np.concatenate([[c[0] - (mid[0] - c[0])], mid, [c[-1] + (c[-1] - mid[-1])]])
 
 
+def axis_bounds(centres: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """Lower and upper edge of each pixel of a monotonic 1-D axis that may hold NaN centres.
+
+    Each pixel reaches half way to each neighbour; where a neighbour is missing (the end of
+    the axis, or a NaN centre) it reaches as far on that side as on the other, so a NaN
+    centre costs its own row only. A pixel with no finite neighbour gets NaN edges. For an
+    axis without NaN this gives the edges of :func:`edges_from_centres`.
+    """
+    c = np.asarray(centres, dtype=np.float64)
+    half = np.full(c.size + 1, np.nan)  # half step between centre i-1 and i, at index i
+    if c.size > 1:
+        half[1:-1] = (c[1:] - c[:-1]) / 2
+    before, after = half[:-1], half[1:]
+    before = np.where(np.isfinite(before), before, after)
+    after = np.where(np.isfinite(after), after, before)
+    return c - before, c + after
+
+
 def regular_pixel_area_km2(lat_lo: np.ndarray, lat_hi: np.ndarray, lon_lo: np.ndarray,
                            lon_hi: np.ndarray) -> np.ndarray:
     """(ny, nx) pixel areas of a regular lat/lon grid from each row's and column's bounds.

@@ -18,6 +18,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import cftime
+import netCDF4
 import numpy as np
 
 #: netCDF default fill value of floating-point variables (Unidata netCDF, netcdf.h NC_FILL_FLOAT
@@ -130,11 +131,22 @@ class Packing:
 
     @classmethod
     def from_attrs(cls, attrs: Mapping[str, Any], dtype: np.dtype) -> Packing:
-        """The packing of a variable from its raw attributes and its stored dtype."""
+        """The packing of a variable from its raw attributes and its stored dtype.
+
+        Raises
+        ------
+        ValueError
+            A scale_factor of 0 or a non-finite scale_factor or add_offset.
+        """
         dtype = np.dtype(dtype)
         unsigned = dtype.kind == "i" and str(attrs.get("_Unsigned", "")).lower() == "true"
         scale = _scalar(attrs.get("scale_factor"), 1.0)
         offset = _scalar(attrs.get("add_offset"), 0.0)
+        if scale == 0.0 or not np.isfinite(scale):
+            raise ValueError(f"has scale_factor = {scale:g}: every value would unpack to add_offset ({offset:g}); "
+                             "correct the packing attributes of the file")
+        if not np.isfinite(offset):
+            raise ValueError(f"has add_offset = {offset:g}; correct the packing attributes of the file")
         packed_type = attrs.get("scale_factor", attrs.get("add_offset"))
         fills: list[float] = []
         for key in ("_FillValue", "missing_value"):
@@ -142,6 +154,11 @@ class Packing:
                 fills += [float(_as_stored(v, dtype, unsigned)) for v in np.atleast_1d(attrs[key])]
         if "_FillValue" not in attrs and dtype.kind == "f":
             fills.append(NETCDF_DEFAULT_FLOAT_FILL)
+        elif "_FillValue" not in attrs and dtype.kind in "iu" and dtype.itemsize > 1:
+            # CF 1.11 section 2.5.1: without _FillValue the netCDF default fill of the type
+            # marks missing data (netCDF4.default_fillvals; e.g. -32767 for a short). The
+            # library does not assume one for single bytes, nor does harmonize.
+            fills.append(float(_as_stored(netCDF4.default_fillvals[dtype.str[1:]], dtype, unsigned)))
         lo, hi = -np.inf, np.inf
         if "valid_range" in attrs:
             rng = np.atleast_1d(attrs["valid_range"])

@@ -66,30 +66,41 @@ class Grid:
         s = self.cell_size_m
         return self._to_lonlat.transform((ix + 0.5) * s, (iy + 0.5) * s)
 
-    def cells_covering(self, geometry: shapely.Geometry, min_share: float = 0.0) -> pd.DataFrame:
+    def cells_covering(self, geometry: shapely.Geometry) -> pd.DataFrame:
         """Cells whose centre lies in ``geometry`` (WGS84): the study's domain cells.
 
-        Returns a frame with cell_id, ix, iy, lon, lat (cell centre).
+        The centre is tested with :func:`inside_domain`, the test every record passes, so a
+        domain edge is a straight line in longitude/latitude (RFC 7946 section 3.1.1) for
+        cells as for records; testing in the projected grid would bend each edge and count
+        other cells. Returns a frame with cell_id, ix, iy, lon, lat (cell centre).
         """
+        # candidate cells: the projected box of the outline densified in lon/lat (an edge
+        # straight in lon/lat is a curve in the grid CRS and may bulge past its vertices)
+        dense = shapely.segmentize(geometry, 0.05)
         projected = shapely.transform(
-            geometry, lambda xy: np.column_stack(self._to_grid.transform(xy[:, 0], xy[:, 1]))
+            dense, lambda xy: np.column_stack(self._to_grid.transform(xy[:, 0], xy[:, 1]))
         )
         xmin, ymin, xmax, ymax = projected.bounds
         s = self.cell_size_m
-        ixs = np.arange(np.floor(xmin / s), np.floor(xmax / s) + 1, dtype=np.int64)
-        iys = np.arange(np.floor(ymin / s), np.floor(ymax / s) + 1, dtype=np.int64)
+        ixs = np.arange(np.floor(xmin / s) - 1, np.floor(xmax / s) + 2, dtype=np.int64)
+        iys = np.arange(np.floor(ymin / s) - 1, np.floor(ymax / s) + 2, dtype=np.int64)
         gx, gy = np.meshgrid(ixs, iys)
         gx, gy = gx.ravel(), gy.ravel()
-        shapely.prepare(projected)
-        inside = shapely.contains_xy(projected, (gx + 0.5) * s, (gy + 0.5) * s)
-        gx, gy = gx[inside], gy[inside]
         lon, lat = self.cell_centres_lonlat(gx, gy)
+        inside = inside_domain(geometry, normalise_lon(lon), np.asarray(lat, float))
+        gx, gy = gx[inside], gy[inside]
+        lon, lat = normalise_lon(np.asarray(lon)[inside]), np.asarray(lat)[inside]
         ids = ("x" + pd.Series(gx).astype("string") + "_y" + pd.Series(gy).astype("string"))
         return pd.DataFrame({"cell_id": ids.astype(str), "ix": gx, "iy": gy, "lon": lon, "lat": lat})
 
 
 def inside_domain(domain: shapely.Geometry, lon: np.ndarray, lat: np.ndarray) -> np.ndarray:
-    """Boolean mask of WGS84 points inside (or on the edge of) the domain polygon(s)."""
+    """Boolean mask of WGS84 points inside (or on the edge of) the domain polygon(s).
+
+    The one domain test of harmonize (records of every kind, gridded pixels, the audit's
+    domain cells): the polygon's edges are straight lines in longitude/latitude, as GeoJSON
+    defines them (RFC 7946 section 3.1.1).
+    """
     lon = np.asarray(lon, float)
     lat = np.asarray(lat, float)
     ok = np.isfinite(lon) & np.isfinite(lat)

@@ -59,7 +59,9 @@ p.note, .note { color: var(--muted); font-size: 13px; }
 table { border-collapse: collapse; font-size: 13.5px; margin: 6px 0 10px; }
 th, td { padding: 4px 8px; border-bottom: 1px solid var(--rule); vertical-align: top; text-align: left; }
 th { background: var(--panel); font-weight: 600; }
-td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; white-space: nowrap; }
+td.num, th.num { text-align: right; font-variant-numeric: tabular-nums; }
+td.num { white-space: nowrap; }
+td { overflow-wrap: anywhere; }
 table.findings { width: 100%; }
 table.findings td.where { width: 210px; } table.findings td.msg { width: 60%; }
 .badge { display: inline-block; padding: 1px 8px; border-radius: 10px; font-size: 12px; font-weight: 600; color: #fff; }
@@ -77,7 +79,13 @@ table.heat th.row { text-align: left; }
 .swatch { display: inline-block; width: 12px; height: 12px; border-radius: 2px; vertical-align: -1px; margin-right: 4px; }
 details summary { cursor: pointer; color: var(--info); margin: 6px 0; }
 footer { margin-top: 40px; border-top: 1px solid var(--rule); padding-top: 10px; color: var(--muted); font-size: 12.5px; }
-@media print { main { padding: 0; max-width: none; } h2 { break-after: avoid; } details { display: block; } }
+@media (max-width: 900px) { main { padding: 16px 14px 32px; } }
+@media print {
+  main { padding: 0; max-width: none; }
+  h1, h2, h3, summary { break-after: avoid; page-break-after: avoid; }
+  details::details-content { content-visibility: visible; display: contents; }
+  tr, figure, .panel { break-inside: avoid; }
+}
 """
 
 

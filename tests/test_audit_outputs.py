@@ -70,12 +70,12 @@ def test_cli_fail_on_exit_codes(study: Study, tmp_path: Path) -> None:
     assert out_json.is_file() and out_html.is_file()
     # the terminal summary lists errors before warnings
     text = run.stdout
-    assert "2 errors, 9 warnings" in text
+    assert "4 errors, 9 warnings" in text
     assert text.index("error") < text.index("warning")
-    # codes the store does not have: exit 0
-    ok = _cli(study, "--fail-on", "thin_samples")
+    # codes the audit does not find (season year 2020 has no thin samples): exit 0
+    ok = _cli(study, "--year", "2020", "--fail-on", "thin_samples")
     assert ok.returncode == 0, ok.stdout + ok.stderr
-    assert _cli(study, "--fail-on", "thin_samples,missing_year").returncode == 1
+    assert _cli(study, "--year", "2020", "--fail-on", "thin_samples,missing_year").returncode == 1
     assert _cli(study).returncode == 0
     bad = _cli(study, "--fail-on", "gaps")
     assert bad.returncode == 2

@@ -45,6 +45,7 @@ import numpy as np
 import pandas as pd
 
 from harmonize.audit.metrics import ALL_BIOLOGICAL, Metrics
+from harmonize.audit.periods import incomplete_keys
 from harmonize.errors import ConfigError
 from harmonize.study import Study
 from harmonize.tagging import season_year_offsets
@@ -220,6 +221,16 @@ def poisson_cdf(k: np.ndarray | int, mean: np.ndarray | float) -> np.ndarray:
     return out
 
 
+def _complete_only(frame: pd.DataFrame, m: Metrics) -> pd.DataFrame:
+    """Rows (source_kind, season_year, season) outside the incomplete periods of the data's end."""
+    keys = incomplete_keys(m.periods) if len(m.periods) else set()
+    if not keys or frame.empty:
+        return frame
+    inside = [(str(k), int(y), str(s)) in keys for k, y, s in
+              zip(frame["source_kind"], frame["season_year"], frame["season"], strict=True)]
+    return frame[~np.asarray(inside, dtype=bool)]
+
+
 def _evidence_severity(p_chance: float, designed: bool, lost_most: bool = False) -> str:
     """Error when chance does not explain a shortfall (or a planned stratum lost most of its samples).
 
@@ -270,7 +281,7 @@ def no_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
             frame = frame[frame["depth_layer"].notna()]
         if level == "stratum":  # volunteers and fleets choose where they go: no stratum design
             frame = frame[~frame["source_kind"].isin(UNDESIGNED_KINDS)]
-        grid = _usually_sampled_but_not(_history(frame, kind_years, ["season", *extra]))
+        grid = _complete_only(_usually_sampled_but_not(_history(frame, kind_years, ["season", *extra])), m)
         if year is not None:
             grid = grid[grid["season_year"] == year]
         unfinished = (grid["season_year"] == grid["source_kind"].map(last["last_year"])) & (
@@ -360,7 +371,7 @@ def thin_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
                         & ~m.layer_events["source_kind"].isin(EFFORT_KINDS)]
     kind_years = le[["source_kind", "season_year"]].drop_duplicates()
     grid = _history(le, kind_years, ["season", "depth_layer"])
-    thin = grid[(grid["events"] > 0) & (grid["events"] < need)]
+    thin = _complete_only(grid[(grid["events"] > 0) & (grid["events"] < need)], m)
     if year is not None:
         thin = thin[thin["season_year"] == year]
     p_few = poisson_cdf(thin["events"].to_numpy("int64"), thin["earlier_mean"].to_numpy(float))
@@ -388,6 +399,7 @@ def thin_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
     sg = _history(se, kind_years, ["season", "stratum"])
     lost = sg[(sg["events"] > 0) & (sg["earlier_years"] >= 2) & (sg["earlier_sampled"] == sg["earlier_years"])
               & (sg["earlier_mean"] >= need) & (sg["events"] < LOST_MOST * sg["earlier_mean"])]
+    lost = _complete_only(lost, m)
     if year is not None:
         lost = lost[lost["season_year"] == year]
     p_lost = poisson_cdf(lost["events"].to_numpy("int64"), lost["earlier_mean"].to_numpy(float))
@@ -411,6 +423,8 @@ def coverage_drop(m: Metrics, study: Study, year: int | None) -> list[Finding]:
     """Seasons whose share of domain cells fell below the study's fraction of the earlier median."""
     share = study.audit.coverage_drop
     cov = m.coverage[(m.coverage["events"] > 0) & ~m.coverage["source_kind"].isin(EFFORT_KINDS)]
+    if "complete" in cov:  # a season the data do not cover to its end is no drop
+        cov = cov[cov["complete"].astype(bool)]
     out: list[Finding] = []
     for (kind, season), g in cov.groupby(["source_kind", "season"], sort=True):
         g = g.sort_values("season_year")

@@ -19,7 +19,7 @@ Conventions shared by all metrics:
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import duckdb
 import pandas as pd
@@ -50,6 +50,8 @@ class Metrics:
     cell_maps: pd.DataFrame
     suppressed: pd.DataFrame
     n_domain_cells: int
+    #: Incomplete seasons at each source's data end (:mod:`harmonize.audit.periods`).
+    periods: pd.DataFrame = field(default_factory=pd.DataFrame)
 
 
 def _year_filter(max_year: int | None) -> str:

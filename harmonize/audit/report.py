@@ -77,6 +77,7 @@ table.heat th.row { text-align: left; }
 .maps figure { margin: 0; text-align: center; font-size: 12px; color: var(--muted); }
 .legend { display: flex; gap: 14px; flex-wrap: wrap; font-size: 12.5px; color: var(--muted); margin: 4px 0; }
 .swatch { display: inline-block; width: 12px; height: 12px; border-radius: 2px; vertical-align: -1px; margin-right: 4px; }
+tr.incomplete td { color: var(--muted); font-style: italic; }
 details summary { cursor: pointer; color: var(--info); margin: 6px 0; }
 footer { margin-top: 40px; border-top: 1px solid var(--rule); padding-top: 10px; color: var(--muted); font-size: 12.5px; }
 @media (max-width: 900px) { main { padding: 16px 14px 32px; } }
@@ -120,12 +121,22 @@ def _fmt_int(n: object) -> str:
     return "" if n is None or pd.isna(n) else f"{int(n):,}"
 
 
+def _incomplete_years(result: AuditResult) -> list[int]:
+    """Season years that some source's data do not cover to their end."""
+    p = result.metrics.periods
+    return sorted({int(y) for y in p["season_year"]}) if len(p) else []
+
+
 # ----------------------------------------------------------------------------- sections
 def _summary(result: AuditResult) -> str:
     counts = result.counts()
     cov = result.coverage
     years = sorted({int(y) for y in cov["season_year"].dropna()}) if len(cov) else []
     span = f"{years[0]}-{years[-1]}" if years else "none"
+    partial = _incomplete_years(result)
+    if partial and years:
+        whole = [y for y in years if y not in partial]
+        span = (f"{whole[0]}-{whole[-1]}" if whole else "none") + f" ({', '.join(map(str, partial))} incomplete)"
     ext = result.extent
     n_events = int(ext.loc[ext["source_kind"] != ALL_BIOLOGICAL, "events"].sum()) if len(ext) else 0
     kinds = _kinds(ext["source_kind"]) if len(ext) else []
@@ -239,9 +250,19 @@ def _line_chart(sub: pd.DataFrame, seasons: list[str], years: list[int], title: 
         if s.empty:
             continue
         colour = SEASON_COLOURS[i % len(SEASON_COLOURS)]
-        pts = " ".join(f"{sx(y):.1f},{sy(v):.1f}" for y, v in zip(s["season_year"], s["coverage_fraction"], strict=True))
+        done = s[s["complete"].astype(bool)] if "complete" in s else s
+        # the trend line joins complete seasons only; an incomplete one is a grey diamond apart
+        pts = " ".join(f"{sx(y):.1f},{sy(v):.1f}" for y, v in zip(done["season_year"], done["coverage_fraction"],
+                                                                   strict=True))
         parts.append(f'<polyline points="{pts}" fill="none" stroke="{colour}" stroke-width="2"/>')
-        for y, v, n in zip(s["season_year"], s["coverage_fraction"], s["events"], strict=True):
+        for y, v, n, ok in zip(s["season_year"], s["coverage_fraction"], s["events"],
+                               s["complete"] if "complete" in s else [True] * len(s), strict=True):
+            if not ok:
+                cx, cy = sx(y), sy(v)
+                parts.append(f'<path d="M{cx:.1f} {cy - 5:.1f}l5 5l-5 5l-5 -5z" fill="#ffffff" stroke="#5b6675" '
+                             f'stroke-width="1.5"><title>{_e(season)} {int(y)}: incomplete (the data end before '
+                             f"the season does); {v:.1%} of cells, {int(n)} samples so far</title></path>")
+                continue
             fill = colour if n > 0 else "#ffffff"
             parts.append(f'<circle cx="{sx(y):.1f}" cy="{sy(v):.1f}" r="3" fill="{fill}" stroke="{colour}">'
                          f"<title>{_e(season)} {int(y)}: {v:.1%} of cells, {int(n)} samples</title></circle>")
@@ -258,6 +279,10 @@ def _coverage(result: AuditResult) -> str:
     years = list(range(int(cov["season_year"].min()), int(cov["season_year"].max()) + 1))
     legend = "".join(f'<span><span class="swatch" style="background:{SEASON_COLOURS[i % len(SEASON_COLOURS)]}"></span>'
                      f"{_e(s)}</span>" for i, s in enumerate(seasons))
+    if "complete" in cov and not cov["complete"].all():
+        legend += ('<span><svg width="12" height="12" viewBox="0 0 12 12" aria-hidden="true"><path d="M6 1l5 5l-5 5l-5 -5z" '
+                   'fill="#fff" stroke="#5b6675" stroke-width="1.5"/></svg> incomplete season (data end before it '
+                   'does; not joined to the line)</span>')
     sampled_kinds = _kinds(cov.loc[cov["events"] > 0, "source_kind"])
     charts = "".join(f'<div class="panel">{_line_chart(cov[cov["source_kind"] == k], seasons, years, _label(k))}</div>'
                      for k in sampled_kinds)
@@ -268,9 +293,11 @@ def _coverage(result: AuditResult) -> str:
     rows = []
     for r in cov.itertuples(index=False):
         supp = f" ({int(r.cells_suppressed)} not shown)" if r.cells_suppressed else ""
-        style = ' style="color:#b42318"' if r.events == 0 else ""
+        done = bool(getattr(r, "complete", True))
+        style = ' style="color:#b42318"' if r.events == 0 and done else (' class="incomplete"' if not done else "")
+        mark = "" if done else " (incomplete)"
         rows.append(f"<tr{style}><td>{_e(_label(r.source_kind))}</td><td class=\"num\">{int(r.season_year)}</td>"
-                    f"<td>{_e(r.season)}</td><td class=\"num\">{_fmt_int(r.events)}</td>"
+                    f"<td>{_e(r.season)}{mark}</td><td class=\"num\">{_fmt_int(r.events)}</td>"
                     f"<td class=\"num\">{_fmt_int(r.cells_sampled)}{supp}</td>"
                     f"<td class=\"num\">{r.coverage_fraction:.1%}</td><td class=\"num\">{_fmt_int(r.strata_sampled)}</td>"
                     f"<td class=\"num\">{_fmt_int(r.presence_only_events)}</td></tr>")

@@ -14,6 +14,7 @@ import pandas as pd
 from harmonize import __version__
 from harmonize.audit.findings import CODES, SEVERITIES, Finding, all_findings, tolerances
 from harmonize.audit.metrics import Metrics, compute
+from harmonize.audit.periods import incomplete_keys, incomplete_periods, last_samples
 from harmonize.contract import CONTRACT_VERSION
 from harmonize.engines import EngineChoice, check_engine, current_engine
 from harmonize.errors import HarmonizeError
@@ -95,7 +96,8 @@ class AuditResult:
             "generated_at": self.generated_at,
             "extent": _records(ext, extent_cols + ["first_year", "last_year", "presence_only_events"]),
             "coverage": _records(cov, coverage_cols + ["strata_sampled", "cells_suppressed",
-                                                      "presence_only_events", "domain_cells"]),
+                                                      "presence_only_events", "domain_cells", "complete"]),
+            "incomplete_periods": _records(self.metrics.periods, list(self.metrics.periods.columns)),
             "findings": [f.to_dict() for f in self.findings],
             "audited_year": self.year,
             "settings": self.settings,
@@ -189,6 +191,11 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
                                     scheduler or choice.scheduler)
         else:
             metrics = compute(con, cells, study.min_vessels, year)
+        metrics.periods = incomplete_periods(last_samples(con, year), study.seasons)
+    incomplete = incomplete_keys(metrics.periods)
+    metrics.coverage["complete"] = [
+        (k, int(y), s) not in incomplete for k, y, s in
+        zip(metrics.coverage["source_kind"], metrics.coverage["season_year"], metrics.coverage["season"], strict=True)]
     settings = {
         "min_events": study.audit.min_events, "coverage_drop": study.audit.coverage_drop,
         "min_encounters": study.audit.min_encounters, "min_vessels": study.min_vessels,

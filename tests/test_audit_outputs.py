@@ -96,13 +96,13 @@ def test_html_is_self_contained(study: Study, tmp_path: Path) -> None:
     assert set(re.findall(r"https?://[^\s\"'<>)]+", html)) == {"http://www.w3.org/2000/svg"}
     assert not re.search(r"\b(src|href)\s*=\s*[\"'](?!#)", html)
     assert CAUTION in html
-    # findings table sorted by severity
-    badges = re.findall(r'<span class="badge (error|warning|info)">', html)
-    assert badges == sorted(badges, key=("error", "warning", "info").index) and badges[0] == "error"
+    # finding groups sorted by severity, errors first
+    groups = re.findall(r'<details class="group"><summary><span class="badge (error|warning|info)">', html)
+    assert groups == sorted(groups, key=("error", "warning", "info").index) and groups[0] == "error"
 
 
 #: The report's sections, in order (their headings, as a reader sees them).
-SECTIONS = ["Findings", "Which seasons and depth layers the data describe", "Coverage through time",
+SECTIONS = ["What to act on", "Findings", "Which seasons and depth layers the data describe", "Coverage through time",
             "Sampled cells per year", "Agreement between sources", "Confidential fishing data"]
 
 

@@ -10,10 +10,11 @@ import numpy as np
 import pandas as pd
 
 from harmonize import __version__
-from harmonize.audit.findings import CODES
+from harmonize.audit.findings import CODES, Finding
 from harmonize.audit.metrics import ALL_BIOLOGICAL
 
 if TYPE_CHECKING:
+    from harmonize.audit.ranking import FindingGroup
     from harmonize.audit.run import AuditResult
 
 #: Order in which source kinds appear; others follow alphabetically.
@@ -27,6 +28,8 @@ MAX_MAP_YEARS = 12
 #: Map classes: (lowest number of samples in a cell, colour) and their legend.
 MAP_BINS = ((1, "#9ecae1"), (2, "#4292c6"), (5, "#08519c"))
 MAP_LABELS = (("1 sample", "#9ecae1"), ("2-4 samples", "#4292c6"), ("5 or more", "#08519c"))
+
+SEVERITY_WORD = {"error": "error", "warning": "warning", "info": "note"}
 
 CODE_HELP = {
     "no_samples": "a season, layer or stratum usually sampled has no samples that year; or no biological source samples a season x layer at all",
@@ -65,7 +68,11 @@ td { overflow-wrap: anywhere; }
 table.findings { width: 100%; }
 table.findings td.where { width: 210px; } table.findings td.msg { width: 60%; }
 .badge { display: inline-block; padding: 1px 8px; border-radius: 10px; font-size: 12px; font-weight: 600; color: #fff; }
-.badge.error { background: var(--error); } .badge.warning { background: var(--warning); } .badge.info { background: var(--info); }
+.badge.error { background: var(--error); } .badge.warning { background: var(--warning); } .badge.info { background: #5b6675; }
+ol.top { padding-left: 22px; margin: 6px 0; } ol.top li { margin: 0 0 8px; }
+details.group { border-bottom: 1px solid var(--rule); padding: 2px 0; }
+details.group > summary { color: var(--ink); }
+details.group .headline { display: block; color: var(--muted); font-size: 13px; margin-left: 18px; }
 code { font-family: "DejaVu Sans Mono", Consolas, monospace; font-size: 12.5px; background: var(--panel); padding: 0 3px; border-radius: 3px; }
 .grid { display: flex; flex-wrap: wrap; gap: 18px 26px; }
 .panel { break-inside: avoid; }
@@ -154,23 +161,59 @@ def _summary(result: AuditResult) -> str:
     return '<div class="cards">' + "".join(cards) + "</div>"
 
 
-def _findings(result: AuditResult) -> str:
+#: How many groups the top of the report lists: the handful of things to act on.
+TOP_GROUPS = 6
+
+
+def _where(f: Finding) -> str:
+    return " · ".join(_e(x) for x in (
+        _label(f.source_kind) if f.source_kind else None, f.season_year, f.season,
+        f.depth_layer, f"stratum {f.stratum}" if f.stratum else None, f.variable) if x not in (None, ""))
+
+
+def _group_label(g: FindingGroup) -> str:
+    where = " · ".join(_e(x) for x in (_label(g.source_kind) if g.source_kind else None,
+                                        "never sampled" if g.never_sampled else g.depth_layer) if x)
+    return f"<code>{_e(g.code)}</code> {where}"
+
+
+def _member_table(g: FindingGroup) -> str:
+    rows = "".join(f'<tr><td><span class="badge {f.severity}">{_e(SEVERITY_WORD[f.severity])}</span></td>'
+                   f'<td class="where">{_where(f)}</td><td class="msg">{_e(f.message)}</td></tr>' for f in g.findings)
+    return ('<table class="findings"><thead><tr><th>severity</th><th>where</th><th>what to do</th></tr></thead>'
+            f"<tbody>{rows}</tbody></table>")
+
+
+def _top(result: AuditResult, groups: list[FindingGroup]) -> str:
+    """The handful of things to act on: error and warning groups, most at risk first."""
+    act = [g for g in groups if g.severity != "info"][:TOP_GROUPS]
+    if not act:
+        return ('<p class="lead">Nothing to act on: no errors or warnings. The notes below are gaps chance '
+                "explains.</p>")
+    items = []
+    for g in act:
+        items.append(f'<li><span class="badge {g.severity}">{_e(SEVERITY_WORD[g.severity])}</span> '
+                     f'{_group_label(g)} <span class="note">({_n(g.count, "finding")}; '
+                     f"{g.share_at_risk:.0%} of domain x seasons x layers)</span><br>{_e(g.headline())}</li>")
+    return ('<ol class="top">' + "".join(items) + "</ol>")
+
+
+def _findings(result: AuditResult, groups: list[FindingGroup]) -> str:
     if not result.findings:
         return '<p>No findings: every combination the rules check is sampled as expected.</p>'
     rows = []
-    for f in result.findings:
-        where = " · ".join(_e(x) for x in (
-            _label(f.source_kind) if f.source_kind else None, f.season_year, f.season,
-            f.depth_layer, f"stratum {f.stratum}" if f.stratum else None,
-            f.variable) if x not in (None, ""))
-        rows.append(
-            f'<tr><td><span class="badge {f.severity}">{_e(f.severity)}</span></td>'
-            f"<td><code>{_e(f.code)}</code></td><td class=\"where\">{where}</td><td class=\"msg\">{_e(f.message)}</td></tr>")
+    for g in groups:
+        body = _member_table(g)
+        rows.append(f'<details class="group"><summary><span class="badge {g.severity}">{_e(SEVERITY_WORD[g.severity])}'
+                    f"</span> {_group_label(g)} · <b>{g.count}</b> · {g.share_at_risk:.0%} at risk"
+                    f'<span class="headline">{_e(g.headline())}</span></summary>{body}</details>')
     by_code = {c: sum(f.code == c for f in result.findings) for c in CODES}
     legend = "".join(f"<li><code>{c}</code> ({n}): {_e(CODE_HELP[c])}</li>" for c, n in by_code.items() if n)
-    return (f'<ul class="note">{legend}</ul>'
-            '<table class="findings"><thead><tr><th>severity</th><th>code</th><th>where</th>'
-            f'<th>what to do</th></tr></thead><tbody>{"".join(rows)}</tbody></table>')
+    return (f'<p class="lead">{_n(len(result.findings), "finding")} in {_n(len(groups), "group")}: one per code, '
+            "source kind and depth layer, ranked by severity and then by the share of the domain x seasons x "
+            "depth layers they put at risk. Open a group for its findings. Errors are gaps that chance does not "
+            "explain; notes (grey) are gaps the earlier years make likely by chance.</p>"
+            + "".join(rows) + f'<ul class="note">{legend}</ul>')
 
 
 def _extent(result: AuditResult) -> str:
@@ -409,8 +452,10 @@ def render_html(result: AuditResult) -> str:
     scope = (f"Season year {result.year} audited against the earlier years."
              if result.year is not None else "Every season year in the store.")
     when = pd.Timestamp(result.generated_at).strftime("%Y-%m-%d %H:%M UTC")
+    groups = result.groups()
     sections = [
-        ("Findings", "findings", _findings(result)),
+        ("What to act on", "top", _top(result, groups)),
+        ("Findings", "findings", _findings(result, groups)),
         ("Which seasons and depth layers the data describe", "extent", _extent(result)),
         ("Coverage through time", "coverage", _coverage(result)),
         ("Sampled cells per year", "maps", _maps(result)),

@@ -15,12 +15,13 @@ from harmonize import __version__
 from harmonize.audit.findings import CODES, SEVERITIES, Finding, all_findings, tolerances
 from harmonize.audit.metrics import Metrics, compute
 from harmonize.audit.periods import incomplete_keys, incomplete_periods, last_samples
+from harmonize.audit.ranking import FindingGroup, group_findings
 from harmonize.contract import CONTRACT_VERSION
 from harmonize.engines import EngineChoice, check_engine, current_engine
 from harmonize.errors import HarmonizeError
 from harmonize.store import Store
 from harmonize.study import Study
-from harmonize.tagging import Grid
+from harmonize.tagging import Grid, assign_strata
 
 #: Shown in the report and the JSON: what this audit is and is not.
 CAUTION = (
@@ -71,6 +72,17 @@ class AuditResult:
         wanted = set(codes)
         return any(f.code in wanted for f in self.findings)
 
+    def groups(self) -> list[FindingGroup]:
+        """The findings grouped by (code, source kind, layer) and ranked by what they put at risk."""
+        cells = self.domain_cells
+        n = max(len(cells), 1)
+        shares = (cells["stratum"].dropna().value_counts() / n).to_dict() if "stratum" in cells else {}
+        layers = [x for x in self.settings.get("depth_layers", []) if x != "integrated"]
+        enc = self.metrics.encounters
+        n_taxa = int(enc["variable"].nunique()) if len(enc) else 1
+        return group_findings(self.findings, len(self.settings.get("seasons", {})) or 1, len(layers) or 1,
+                              n_taxa, shares)
+
     def counts(self) -> dict[str, int]:
         """Number of findings per severity."""
         return {s: sum(f.severity == s for f in self.findings) for s in SEVERITIES}
@@ -99,6 +111,7 @@ class AuditResult:
                                                       "presence_only_events", "domain_cells", "complete"]),
             "incomplete_periods": _records(self.metrics.periods, list(self.metrics.periods.columns)),
             "findings": [f.to_dict() for f in self.findings],
+            "finding_groups": [dict(g.to_dict(), rank=i + 1) for i, g in enumerate(self.groups())],
             "audited_year": self.year,
             "settings": self.settings,
             "confidentiality": self.suppression(),
@@ -142,8 +155,10 @@ def _value(v: Any) -> Any:
 
 
 def domain_cells(study: Study) -> pd.DataFrame:
-    """The study's grid cells whose centre lies in the domain (cell_id, ix, iy, lon, lat)."""
-    return Grid(study.crs, study.cell_size_km).cells_covering(study.domain)
+    """The study's grid cells whose centre lies in the domain (cell_id, ix, iy, lon, lat, stratum)."""
+    cells = Grid(study.crs, study.cell_size_km).cells_covering(study.domain)
+    cells["stratum"] = assign_strata(study.strata, cells["lon"].to_numpy(), cells["lat"].to_numpy())
+    return cells
 
 
 def audit(study: Study, year: int | None = None, engine: str | None = None,

@@ -181,3 +181,11 @@ def test_a_protocol_keeps_its_series_across_sources(study) -> None:  # type: ign
     missing = [(f.season_year, f.details) for f in audit(study).findings if f.code == "missing_year"]
     assert missing == [(2019, {"source_id": "no_protocol_source", "source_ids": ["no_protocol_source"],
                                "years_with_records": [2018, 2020]})]
+
+
+def test_volunteer_only_counts_samples_and_presence_only_apart(known: tuple[Study, KnownGaps]) -> None:
+    study, _ = known
+    f = next(f for f in audit(study).findings if f.code == "volunteer_only")
+    # 3 presence-only sightings a winter, 2019-2022; the extent matrix shows them as presence-only, not samples
+    assert (f.details["samples"], f.details["presence_only_events"]) == (0, 12)
+    assert "(0 samples and 12 presence-only events)" in f.message

@@ -123,6 +123,10 @@ def _str(value: Any) -> str | None:
     return None if value is None or pd.isna(value) else str(value)
 
 
+def _count(n: int, noun: str) -> str:
+    return f"{n:,} {noun}{'' if n == 1 else 's'}"
+
+
 def _layer(name: str | None) -> str:
     return f"the {name} layer" if name else "samples with no depth layer"
 
@@ -510,18 +514,24 @@ def volunteer_only(m: Metrics, study: Study) -> list[Finding]:
     if not bp.empty:
         is_vol = bp["provider_type"] == VOLUNTEER
         by = bp.assign(vol=bp["events"].where(is_vol, 0)).groupby(["season", "depth_layer"], dropna=False)
+        samples = bp["samples"] if "samples" in bp else bp["events"]
         g = by.agg(events=("events", "sum"), vol=("vol", "sum"), years=("years", "max"),
                    kinds=("source_kind", lambda s: sorted(set(s)))).reset_index()
+        g = g.merge(bp.assign(samples=samples).groupby(["season", "depth_layer"], dropna=False)["samples"].sum()
+                    .reset_index(), on=["season", "depth_layer"], how="left")
         for r in g[(g["events"] > 0) & (g["vol"] == g["events"])].itertuples(index=False):
             flagged.add((_str(r.season), _str(r.depth_layer)))
+            presence = int(r.events) - int(r.samples)
             out.append(Finding(
                 "volunteer_only", "warning",
                 f"Every biological record in {_layer(_str(r.depth_layer))} in {r.season} "
-                f"({int(r.events)} events) comes from volunteers, whose effort is not standardised; "
-                "use a model that accounts for observer effort there, or treat it as presence-only.",
+                f"({_count(int(r.samples), 'sample')} and {_count(presence, 'presence-only event')}) comes "
+                "from volunteers, whose effort is not standardised; use a model that accounts for observer "
+                "effort there, or treat it as presence-only.",
                 source_kind=r.kinds[0] if len(r.kinds) == 1 else ALL_BIOLOGICAL, season=_str(r.season),
                 depth_layer=_str(r.depth_layer),
-                details={"events": int(r.events), "source_kinds": r.kinds},
+                details={"events": int(r.events), "samples": int(r.samples), "presence_only_events": presence,
+                         "source_kinds": r.kinds},
             ))
     enc = m.encounters
     if enc.empty:

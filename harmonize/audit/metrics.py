@@ -225,9 +225,10 @@ def source_years(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
 
 
 def bio_providers(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
-    """Biological events (samples and presence-only) per season x layer x provider type x kind."""
+    """Biological events (samples and presence-only; ``samples`` the first) per season x layer x provider x kind."""
     return con.execute(
         """SELECT season, depth_layer, provider_type, source_kind, sum(n)::BIGINT AS events,
+                  coalesce(sum(n) FILTER (WHERE effort_bearing), 0)::BIGINT AS samples,
                   count(DISTINCT season_year) AS "years"
            FROM audit_cells WHERE biological GROUP BY ALL ORDER BY ALL"""
     ).df()
@@ -321,10 +322,10 @@ def comparisons(con: duckdb.DuckDBPyConnection, max_year: int | None = None,
 
 
 def cell_maps(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
-    """Samples per source kind x season_year x (public) grid cell, for the maps."""
+    """Samples per source kind x season_year x (public) domain cell, for the maps (cells outside the domain never)."""
     return con.execute(
         """SELECT source_kind, season_year, cell_public AS cell_id, sum(n)::BIGINT AS events
-           FROM audit_cells WHERE effort_bearing AND cell_public IS NOT NULL AND season_year IS NOT NULL
+           FROM audit_cells WHERE effort_bearing AND in_domain AND cell_public IS NOT NULL AND season_year IS NOT NULL
            GROUP BY ALL ORDER BY ALL"""
     ).df()
 

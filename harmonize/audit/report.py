@@ -120,6 +120,15 @@ def _shade(t: float) -> tuple[str, str]:
     return "#{:02x}{:02x}{:02x}".format(*rgb), ("#ffffff" if t > 0.55 else "#1d2430")
 
 
+def _what(kind: str, short: bool = False) -> str:
+    """What one counted event of a kind is: biological samples and cell-periods are never added up."""
+    if kind == "gridded":
+        return "cell-periods" if short else "gridded cell-periods"
+    if kind == "effort":
+        return "cell-periods" if short else "fishing cell-periods"
+    return "samples"
+
+
 def _n(count: int, noun: str) -> str:
     return f"{count:,} {noun}{'' if count == 1 else 's'}"
 
@@ -145,14 +154,21 @@ def _summary(result: AuditResult) -> str:
         whole = [y for y in years if y not in partial]
         span = (f"{whole[0]}-{whole[-1]}" if whole else "none") + f" ({', '.join(map(str, partial))} incomplete)"
     ext = result.extent
-    n_events = int(ext.loc[ext["source_kind"] != ALL_BIOLOGICAL, "events"].sum()) if len(ext) else 0
     kinds = _kinds(ext["source_kind"]) if len(ext) else []
     kinds = [k for k in kinds if k != ALL_BIOLOGICAL]
+
+    def total(kind: str, column: str = "events") -> int:
+        return int(ext.loc[ext["source_kind"] == kind, column].sum()) if len(ext) else 0
+
+    # biological samples, gridded cell-periods and fishing cell-periods are never added up
+    counted = [(total(ALL_BIOLOGICAL), "biological samples"), (total("gridded"), "gridded cell-periods"),
+               (total("effort"), "fishing cell-periods"),
+               (total(ALL_BIOLOGICAL, "presence_only_events"), "presence-only events")]
     cards = [
         f'<div class="card error"><b>{counts["error"]}</b><span>errors</span></div>',
         f'<div class="card warning"><b>{counts["warning"]}</b><span>warnings</span></div>',
         f'<div class="card info"><b>{counts["info"]}</b><span>notes</span></div>',
-        f'<div class="card"><b>{n_events:,}</b><span>samples (events)</span></div>',
+        *(f'<div class="card"><b>{n:,}</b><span>{label}</span></div>' for n, label in counted if n),
         f'<div class="card"><b>{len(kinds)}</b><span>source kinds</span></div>',
         f'<div class="card"><b>{_e(span)}</b><span>season years</span></div>',
         f'<div class="card"><b>{result.settings.get("domain_cells", 0):,}</b><span>domain cells of '
@@ -251,8 +267,8 @@ def _extent(result: AuditResult) -> str:
                     cells.append(f"<td{cls}>—</td>")
                     continue
                 bg, fg = _shade(0.15 + 0.85 * years / n_years)
-                cells.append(f'<td style="background:{bg};color:{fg}" title="{events} samples in {years} '
-                             f'season years">{years} yr<br><small>{events:,} ev</small></td>')
+                cells.append(f'<td style="background:{bg};color:{fg}" title="{events} {_what(kind)} in {years} '
+                             f'season years">{years} yr<br><small>{events:,} {_what(kind, short=True)}</small></td>')
             body.append(f'<tr><th class="row">{_e(season)}</th>{"".join(cells)}</tr>')
         panels.append(f'<div class="panel"><h3>{_e(_label(kind))}</h3><table class="heat"><thead><tr>'
                       f'<th></th>{head}</tr></thead><tbody>{"".join(body)}</tbody></table></div>')
@@ -263,7 +279,7 @@ def _extent(result: AuditResult) -> str:
             f'<div class="grid">{"".join(panels)}</div>')
 
 
-def _line_chart(sub: pd.DataFrame, seasons: list[str], years: list[int], title: str) -> str:
+def _line_chart(sub: pd.DataFrame, seasons: list[str], years: list[int], title: str, unit: str = "samples") -> str:
     w, h, left, right, top, bottom = 340, 190, 40, 12, 24, 30
     pw, ph = w - left - right, h - top - bottom
     y0, y1 = years[0], years[-1]
@@ -304,11 +320,11 @@ def _line_chart(sub: pd.DataFrame, seasons: list[str], years: list[int], title: 
                 cx, cy = sx(y), sy(v)
                 parts.append(f'<path d="M{cx:.1f} {cy - 5:.1f}l5 5l-5 5l-5 -5z" fill="#ffffff" stroke="#5b6675" '
                              f'stroke-width="1.5"><title>{_e(season)} {int(y)}: incomplete (the data end before '
-                             f"the season does); {v:.1%} of cells, {int(n)} samples so far</title></path>")
+                             f"the season does); {v:.1%} of cells, {int(n)} {unit} so far</title></path>")
                 continue
             fill = colour if n > 0 else "#ffffff"
             parts.append(f'<circle cx="{sx(y):.1f}" cy="{sy(v):.1f}" r="3" fill="{fill}" stroke="{colour}">'
-                         f"<title>{_e(season)} {int(y)}: {v:.1%} of cells, {int(n)} samples</title></circle>")
+                         f"<title>{_e(season)} {int(y)}: {v:.1%} of cells, {int(n)} {unit}</title></circle>")
     parts.append("</svg>")
     return "".join(parts)
 
@@ -327,7 +343,7 @@ def _coverage(result: AuditResult) -> str:
                    'fill="#fff" stroke="#5b6675" stroke-width="1.5"/></svg> incomplete season (data end before it '
                    'does; not joined to the line)</span>')
     sampled_kinds = _kinds(cov.loc[cov["events"] > 0, "source_kind"])
-    charts = "".join(f'<div class="panel">{_line_chart(cov[cov["source_kind"] == k], seasons, years, _label(k))}</div>'
+    charts = "".join(f'<div class="panel">{_line_chart(cov[cov["source_kind"] == k], seasons, years, _label(k), _what(k))}</div>'
                      for k in sampled_kinds)
     unsampled = [k for k in _kinds(cov["source_kind"]) if k not in sampled_kinds]
     if unsampled:
@@ -340,13 +356,13 @@ def _coverage(result: AuditResult) -> str:
         style = ' style="color:#b42318"' if r.events == 0 and done else (' class="incomplete"' if not done else "")
         mark = "" if done else " (incomplete)"
         rows.append(f"<tr{style}><td>{_e(_label(r.source_kind))}</td><td class=\"num\">{int(r.season_year)}</td>"
-                    f"<td>{_e(r.season)}{mark}</td><td class=\"num\">{_fmt_int(r.events)}</td>"
+                    f"<td>{_e(r.season)}{mark}</td><td class=\"num\">{_fmt_int(r.events)} <small>{_what(r.source_kind, True)}</small></td>"
                     f"<td class=\"num\">{_fmt_int(r.cells_sampled)}{supp}</td>"
                     f"<td class=\"num\">{r.coverage_fraction:.1%}</td><td class=\"num\">{_fmt_int(r.strata_sampled)}</td>"
                     f"<td class=\"num\">{_fmt_int(r.presence_only_events)}</td></tr>")
     table = ('<details><summary>Coverage table (every source kind, season year and season)</summary>'
              '<table><thead><tr><th>source kind</th><th class="num">season year</th><th>season</th>'
-             '<th class="num">samples</th><th class="num">cells sampled</th><th class="num">share of domain</th>'
+             '<th class="num">samples or cell-periods</th><th class="num">cells sampled</th><th class="num">share of domain</th>'
              '<th class="num">strata</th><th class="num">presence-only</th></tr></thead>'
              f'<tbody>{"".join(rows)}</tbody></table></details>')
     return ('<p class="lead">Share of the domain\'s grid cells sampled in each season, by season year. '

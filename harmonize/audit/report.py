@@ -84,6 +84,10 @@ table.heat th.row { text-align: left; }
 .maps figure { margin: 0; text-align: center; font-size: 12px; color: var(--muted); }
 .legend { display: flex; gap: 14px; flex-wrap: wrap; font-size: 12.5px; color: var(--muted); margin: 4px 0; }
 .swatch { display: inline-block; width: 12px; height: 12px; border-radius: 2px; vertical-align: -1px; margin-right: 4px; }
+dl dt { font-weight: 600; margin-top: 8px; } dl dd { margin: 0 0 4px 0; }
+table.strata span.zero { color: var(--error); font-weight: 600; }
+table.strata span.inc, table.effort small { color: var(--muted); font-style: italic; }
+table.prov td { font-size: 12px; } table.prov code { font-size: 11.5px; }
 tr.incomplete td { color: var(--muted); font-style: italic; }
 details summary { cursor: pointer; color: var(--info); margin: 6px 0; }
 footer { margin-top: 40px; border-top: 1px solid var(--rule); padding-top: 10px; color: var(--muted); font-size: 12.5px; }
@@ -127,6 +131,11 @@ def _what(kind: str, short: bool = False) -> str:
     if kind == "effort":
         return "cell-periods" if short else "fishing cell-periods"
     return "samples"
+
+
+def _amount(v: float) -> str:
+    """An effort total with about three significant digits, never in scientific notation."""
+    return f"{v:,.0f}" if abs(v) >= 100 else (f"{v:,.1f}" if abs(v) >= 10 else f"{v:,.2f}")
 
 
 def _n(count: int, noun: str) -> str:
@@ -419,6 +428,152 @@ def _maps(result: AuditResult) -> str:
     return "".join(out)
 
 
+def _table(head: list[tuple[str, bool]], rows: list[list[str]], cls: str = "") -> str:
+    """A plain table: ``head`` is (title, numeric) per column; cells are HTML already escaped."""
+    th = "".join(f'<th{" class=num" if num else ""}>{_e(t)}</th>' for t, num in head)
+    body = "".join("<tr>" + "".join(f'<td{" class=num" if head[i][1] else ""}>{c}</td>' for i, c in enumerate(r))
+                   + "</tr>" for r in rows)
+    return f'<table class="{cls}"><thead><tr>{th}</tr></thead><tbody>{body}</tbody></table>'
+
+
+def _definitions(result: AuditResult) -> str:
+    st = result.settings
+    seasons = st.get("seasons", {})
+    month = ("", "Jan", "Feb", "Mar", "Apr", "May", "Jun", "Jul", "Aug", "Sep", "Oct", "Nov", "Dec")
+    season_text = "; ".join(f"{_e(n)}: {'-'.join(month[m] for m in (ms[0], ms[-1]))}" for n, ms in seasons.items())
+    cross = [n for n, ms in seasons.items() if 12 in ms and 1 in ms]
+    cross_text = (f" The {_e(cross[0])} season spans the turn of the year and belongs to the year of its January: December "
+                  f"2023 is {_e(cross[0])} 2024." if cross else "")
+    bounds = st.get("depth_layer_bounds", {})
+    layer_text = "; ".join(f"{_e(n)} {a:g}-{b:g} m" for n, (a, b) in bounds.items())
+    return (
+        "<dl>"
+        f"<dt>Season year</dt><dd>The year a sample's season belongs to. Seasons: {season_text}.{cross_text} "
+        "A season year the data do not cover to its end (the last files stop inside it) is marked "
+        "<i>incomplete</i>: it is shown apart and left out of trends and drop findings.</dd>"
+        f"<dt>Depth layer</dt><dd>Where in the water a sample was taken: {layer_text}. A sample whose whole depth "
+        f"range lies within {st.get('near_bottom_m', 0):g} m above the sea floor is <i>near_bottom</i> (trawls, "
+        "bottom sensors); one spanning two or more layers is <i>integrated</i>.</dd>"
+        f"<dt>Grid and domain</dt><dd>Squares of {st.get('cell_size_km', 0):g} km on an equal-area map "
+        f"({_e(st.get('crs'))}); the {st.get('domain_cells', 0):,} squares whose centre lies inside the study "
+        "area are the <i>domain cells</i>. Coverage is the share of domain cells with at least one sample; "
+        "records in cells outside the domain are counted as samples but never as domain cells.</dd>"
+        "<dt>What is counted</dt><dd><i>Biological samples</i>: hauls, tows, transect segments and checklists "
+        "with a measure of effort. <i>Gridded cell-periods</i>: a model or satellite value for one cell and one "
+        "month or season. <i>Fishing cell-periods</i>: fishing hours of one cell and period. <i>Presence-only "
+        "events</i>: sightings without effort. These are never added together.</dd>"
+        "</dl>")
+
+
+def _received(result: AuditResult) -> str:
+    r = result.received
+    if r is None or r.by_source.empty:
+        return "<p>No ingests are recorded in the store.</p>"
+    rows = [[_e(x.source_id), _e(x.source_kind), _fmt_int(x.files), _fmt_int(x.rows_read), _fmt_int(x.rows_accepted),
+             _fmt_int(x.rows_quarantined - x.masked_values), _fmt_int(x.masked_values), _fmt_int(x.twins)]
+            for x in r.by_source.itertuples(index=False)]
+    table = _table([("source", False), ("kind", False), ("files", True), ("rows or values read", True),
+                    ("accepted", True), ("rows quarantined", True), ("grid values or pings masked", True),
+                    ("probable twins", True)], rows, "wide")
+    reasons = ""
+    if len(r.reasons):
+        rrows = [[_e(x.source_id), f"<code>{_e(x.reason_code)}</code>", _fmt_int(x.rows), _fmt_int(x.masked_values)]
+                 for x in r.reasons.itertuples(index=False)]
+        reasons = ("<details><summary>Quarantined and masked, by source and reason</summary>"
+                   + _table([("source", False), ("reason", False), ("rows", True), ("values masked", True)], rrows)
+                   + "</details>")
+    return ('<p class="lead">Every row read is either accepted or quarantined with a reason; grid values and '
+            "position pings are masked in bulk (land, cloud, outside the domain) and counted by reason. Probable "
+            "twins are volunteer records of something another source also recorded: kept in the store, left out "
+            f"of every count in this report.</p>{table}{reasons}")
+
+
+def _provenance(result: AuditResult) -> str:
+    r = result.received
+    if r is None or r.ingests.empty:
+        return "<p>No ingests are recorded in the store.</p>"
+    rows = []
+    for x in r.ingests.itertuples(index=False):
+        files = ", ".join(_e(f) for f in (list(x.files) if x.files is not None else []))
+        rows.append([f"<code>{_e(x.ingest_id)}</code>", _e(x.source_id),
+                     _e(pd.Timestamp(x.started_at).strftime("%Y-%m-%d %H:%M")), files,
+                     f"<code>{_e(str(x.config_sha256)[:12])}</code>", f"<code>{_e(str(x.inputs_sha256)[:12])}</code>"])
+    meta = r.store_meta
+    sup = (f" {_n(r.superseded, 'earlier ingest')} {'was' if r.superseded == 1 else 'were'} superseded by a "
+           "re-ingest and {'is' if r.superseded == 1 else 'are'} not counted." if r.superseded else "")
+    return (f'<p class="lead">This report covers {_n(len(r.ingests), "ingest")} of the store '
+            f'(contract version {_e(meta.get("contract_version", "?"))}, created by {_e(meta.get("created_by", "?"))}).'
+            f"{sup} Hashes are SHA-256, first 12 hex digits: the same files and configuration give the same "
+            "hashes, so a later report can show it covers the same data.</p>"
+            "<details><summary>Ingests, files and configuration hashes</summary>"
+            + _table([("ingest", False), ("source", False), ("started (UTC)", False), ("files", False),
+                      ("configuration", False), ("inputs", False)], rows, "prov") + "</details>")
+
+
+EFFORT_LABEL = {"km2": "area (km²)", "m3": "volume filtered (m³)", "h": "hours"}
+
+
+def _effort(result: AuditResult) -> str:
+    r = result.received
+    if r is None or r.effort.empty:
+        return "<p>No sampling effort is recorded.</p>"
+    eff = r.effort
+    partial = set(_incomplete_years(result))
+    years = sorted({int(y) for y in eff["season_year"]})
+    out = []
+    order = {k: i for i, k in enumerate(_kinds(eff["source_kind"]))}
+    eff = eff.assign(_o=eff["source_kind"].map(order)).sort_values(["_o", "effort_unit", "season_year"])
+    for (kind, unit), g in eff.groupby(["source_kind", "effort_unit"], sort=False):
+        vals = dict(zip(g["season_year"].astype(int), g["effort"], strict=True))
+        n = dict(zip(g["season_year"].astype(int), g["events"], strict=True))
+        label = {"trawl": "area swept", "transect": "strip area", "plankton": "volume filtered",
+                 "opportunistic": "hours observed", "effort": "fishing hours"}.get(str(kind), "effort")
+        cells = [f"{_amount(vals[y])}<br><small>{_n(int(n[y]), _what(str(kind), True).rstrip('s'))}</small>"
+                 if y in vals else "—" for y in years]
+        out.append([f"{_e(_label(str(kind)))}: {_e(label)} ({_e(unit)})", *cells])
+    head = [("kind and measure", False)] + [(f"{y}{' *' if y in partial else ''}", True) for y in years]
+    note = " * incomplete season year." if partial else ""
+    return ('<p class="lead">Sampling effort per season year, summed over every sample (one value per haul, tow, '
+            "segment or checklist); fishing hours are the whole fleet's over the domain. Gridded pixel area is not "
+            f"an effort and is left out.{note}</p>" + _table(head, out, "effort"))
+
+
+def _strata_table(result: AuditResult) -> str:
+    se = result.metrics.stratum_events
+    if se.empty:
+        return "<p>No samples carry a stratum (the study has no strata, or none was sampled).</p>"
+    cells = result.domain_cells
+    strata = sorted(cells["stratum"].dropna().unique()) if "stratum" in cells else sorted(se["stratum"].unique())
+    seasons = [s for s in result.settings.get("seasons", {}) if s in set(se["season"])]
+    incomplete = {(str(k), int(y), str(s)) for k, y, s in
+                  zip(result.metrics.periods.get("source_kind", []), result.metrics.periods.get("season_year", []),
+                      result.metrics.periods.get("season", []), strict=True)}
+    out = []
+    for kind in _kinds(se["source_kind"]):
+        if kind in ("gridded", "effort"):
+            continue  # cell-periods cover every stratum by construction; the table is about survey design
+        sub = se[se["source_kind"] == kind]
+        years = list(range(int(sub["season_year"].min()), int(sub["season_year"].max()) + 1))
+        kind_seasons = [s for s in seasons if s in set(sub["season"])]
+        got = {(str(a), str(b), int(c)): int(n) for a, b, c, n in
+               zip(sub["stratum"], sub["season"], sub["season_year"], sub["events"], strict=True)}
+        rows = []
+        for season in kind_seasons:
+            for stratum in strata:
+                vals = []
+                for y in years:
+                    v = got.get((stratum, season, y), 0)
+                    cls = "zero" if v == 0 else ""
+                    if (kind, y, season) in incomplete:
+                        cls = "inc"
+                    vals.append(f'<span class="{cls}">{v:,}</span>' if cls else f"{v:,}")
+                rows.append([_e(season), _e(stratum), *vals])
+        out.append(f"<h3>{_e(_label(kind))}</h3>" + _table([("season", False), ("stratum", False)]
+                                                          + [(str(y), True) for y in years], rows, "strata"))
+    return ('<p class="lead">Samples per stratum, season and season year, for each survey kind. Red zeros are '
+            "strata without a sample that year; grey italics are incomplete seasons.</p>" + "".join(out))
+
+
 def _comparisons(result: AuditResult) -> str:
     comp = result.metrics.comparisons
     if comp.empty:
@@ -472,11 +627,16 @@ def render_html(result: AuditResult) -> str:
     sections = [
         ("What to act on", "top", _top(result, groups)),
         ("Findings", "findings", _findings(result, groups)),
+        ("How this report counts", "definitions", _definitions(result)),
+        ("Data received", "received", _received(result)),
         ("Which seasons and depth layers the data describe", "extent", _extent(result)),
         ("Coverage through time", "coverage", _coverage(result)),
+        ("Coverage by stratum", "strata", _strata_table(result)),
         ("Sampled cells per year", "maps", _maps(result)),
+        ("Effort per year", "effort", _effort(result)),
         ("Agreement between sources", "sources", _comparisons(result)),
         ("Confidential fishing data", "confidentiality", _confidentiality(result)),
+        ("Provenance", "provenance", _provenance(result)),
     ]
     nav = " · ".join(f'<a href="#{anchor}">{_e(title)}</a>' for title, anchor, _ in sections)
     body = "".join(f'<section id="{anchor}"><h2>{_e(title)}</h2>{html}</section>' for title, anchor, html in sections)

@@ -16,6 +16,7 @@ from harmonize.audit.findings import CODES, SEVERITIES, Finding, all_findings, t
 from harmonize.audit.metrics import Metrics, compute
 from harmonize.audit.periods import incomplete_keys, incomplete_periods, last_samples
 from harmonize.audit.ranking import FindingGroup, group_findings
+from harmonize.audit.received import Received, received
 from harmonize.contract import CONTRACT_VERSION
 from harmonize.engines import EngineChoice, check_engine, current_engine
 from harmonize.errors import HarmonizeError
@@ -54,6 +55,8 @@ class AuditResult:
     findings: list[Finding]
     domain_cells: pd.DataFrame
     settings: dict[str, Any] = field(default_factory=dict)
+    #: What the store received, from where, and the effort totals (None: not computed).
+    received: Received | None = None
 
     @property
     def extent(self) -> pd.DataFrame:
@@ -116,6 +119,13 @@ class AuditResult:
             "settings": self.settings,
             "confidentiality": self.suppression(),
             "source_comparisons": _records(self.metrics.comparisons, list(self.metrics.comparisons.columns)),
+            **({"received": _records(self.received.by_source, list(self.received.by_source.columns)),
+                "quarantine_reasons": _records(self.received.reasons, list(self.received.reasons.columns)),
+                "effort_totals": _records(self.received.effort, list(self.received.effort.columns)),
+                "ingests": [{**r, "files": list(r["files"] or [])} for r in
+                            _records(self.received.ingests.astype({"started_at": str}),
+                                     list(self.received.ingests.columns))]}
+               if self.received is not None else {}),
             "caution": CAUTION,
             "tool_version": __version__,
             "contract_version": CONTRACT_VERSION,
@@ -147,6 +157,8 @@ def _records(frame: pd.DataFrame, columns: Sequence[str]) -> list[dict[str, Any]
 
 
 def _value(v: Any) -> Any:
+    if isinstance(v, np.ndarray):
+        v = v.tolist()
     if v is None or (not isinstance(v, str | list) and pd.isna(v)):
         return None
     if isinstance(v, np.generic):
@@ -207,6 +219,7 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
         else:
             metrics = compute(con, cells, study.min_vessels, year)
         metrics.periods = incomplete_periods(last_samples(con, year), study.seasons)
+        accounts = received(con, year)
     incomplete = incomplete_keys(metrics.periods)
     metrics.coverage["complete"] = [
         (k, int(y), s) not in incomplete for k, y, s in
@@ -217,6 +230,8 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
         "cell_size_km": study.cell_size_km, "crs": study.crs, "domain_cells": len(cells),
         "seasons": {k: list(v) for k, v in study.seasons.items()},
         "depth_layers": [layer.name for layer in study.depth_layers] + ["near_bottom", "integrated"],
+        "depth_layer_bounds": {layer.name: [layer.top_m, layer.bottom_m] for layer in study.depth_layers},
+        "near_bottom_m": study.near_bottom_m,
         "tolerances": tolerances(study),
     }
     return AuditResult(
@@ -227,6 +242,7 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
         findings=all_findings(metrics, study, year),
         domain_cells=cells,
         settings=settings,
+        received=accounts,
     )
 
 

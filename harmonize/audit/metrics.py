@@ -322,10 +322,16 @@ def comparisons(con: duckdb.DuckDBPyConnection, max_year: int | None = None,
 
 
 def cell_maps(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
-    """Samples per source kind x season_year x (public) domain cell, for the maps (cells outside the domain never)."""
+    """Samples and presence-only events per source kind x season_year x (public) domain cell, for the maps.
+
+    Cells outside the domain are never listed; ``events`` counts samples, ``presence_only_events``
+    events without effort (a cell with only those is hatched on the maps).
+    """
     return con.execute(
-        """SELECT source_kind, season_year, cell_public AS cell_id, sum(n)::BIGINT AS events
-           FROM audit_cells WHERE effort_bearing AND in_domain AND cell_public IS NOT NULL AND season_year IS NOT NULL
+        """SELECT source_kind, season_year, cell_public AS cell_id,
+                  coalesce(sum(n) FILTER (WHERE effort_bearing), 0)::BIGINT AS events,
+                  coalesce(sum(n) FILTER (WHERE NOT effort_bearing), 0)::BIGINT AS presence_only_events
+           FROM audit_cells WHERE in_domain AND cell_public IS NOT NULL AND season_year IS NOT NULL
            GROUP BY ALL ORDER BY ALL"""
     ).df()
 

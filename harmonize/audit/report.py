@@ -25,9 +25,15 @@ SEASON_COLOURS = ("#0072B2", "#009E73", "#E69F00", "#CC79A7", "#56B4E9", "#D55E0
 #: Sequential scale for counts (light to dark blue).
 SCALE_LOW, SCALE_HIGH = (0xEE, 0xF3, 0xFA), (0x0B, 0x3C, 0x7D)
 MAX_MAP_YEARS = 12
-#: Map classes: (lowest number of samples in a cell, colour) and their legend.
-MAP_BINS = ((1, "#9ecae1"), (2, "#4292c6"), (5, "#08519c"))
-MAP_LABELS = (("1 sample", "#9ecae1"), ("2-4 samples", "#4292c6"), ("5 or more", "#08519c"))
+#: Map classes: (lowest number of samples in a cell, colour) and their legend. Every class and the
+#: presence-only hatching keep a contrast of at least 3:1 against the unsampled colour (WCAG 2.1,
+#: success criterion 1.4.11 non-text contrast); tests/test_audit_maps.py checks it.
+MAP_UNSAMPLED = "#eef1f4"
+MAP_BINS = ((1, "#4f8bc9"), (2, "#2166ac"), (5, "#0b2f66"))
+MAP_LABELS = (("1 sample", "#4f8bc9"), ("2-4 samples", "#2166ac"), ("5 or more", "#0b2f66"))
+MAP_PRESENCE = "#7a3e9d"
+#: Width of one map in CSS pixels: three fit side by side in an 800 px window.
+MAP_WIDTH_PX = 236
 
 SEVERITY_WORD = {"error": "error", "warning": "warning", "info": "note"}
 
@@ -80,8 +86,10 @@ table.heat td { text-align: center; min-width: 92px; border: 2px solid #fff; }
 table.heat td.empty { background: #fbecea; color: var(--error); }
 table.heat td.presence { background: repeating-linear-gradient(135deg, #f3f0fa, #f3f0fa 4px, #e6e0f3 4px, #e6e0f3 8px); color: #4b3b7a; }
 table.heat th.row { text-align: left; }
-.maps { display: flex; flex-wrap: wrap; gap: 6px 10px; align-items: flex-end; }
-.maps figure { margin: 0; text-align: center; font-size: 12px; color: var(--muted); }
+.maps { display: flex; flex-wrap: wrap; gap: 10px 14px; align-items: flex-start; }
+.maps figure { margin: 0; font-size: 12px; color: var(--muted); break-inside: avoid; }
+.maps figure svg { display: block; max-width: 100%; height: auto; }
+.legend svg { vertical-align: -2px; }
 .legend { display: flex; gap: 14px; flex-wrap: wrap; font-size: 12.5px; color: var(--muted); margin: 4px 0; }
 .swatch { display: inline-block; width: 12px; height: 12px; border-radius: 2px; vertical-align: -1px; margin-right: 4px; }
 dl dt { font-weight: 600; margin-top: 8px; } dl dd { margin: 0 0 4px 0; }
@@ -380,30 +388,79 @@ def _coverage(result: AuditResult) -> str:
             f'<div class="legend">{legend}</div><div class="grid">{charts}</div>{table}')
 
 
+def _outline(cells: pd.DataFrame, key: pd.Series, ix0: int, iy1: int, px: float) -> str:
+    """SVG path of the edges between cells of different ``key`` (or a cell and no cell): outlines."""
+    where = dict(zip(zip(cells["ix"], cells["iy"], strict=True), key, strict=True))
+    d = []
+    for (ix, iy), k in where.items():
+        x, y = (ix - ix0) * px, (iy1 - iy) * px
+        # right and top edges of each cell, and left and bottom edges where no cell lies beyond
+        for (nx, ny), seg in (((ix + 1, iy), f"M{x + px:.1f} {y:.1f}v{px:.1f}"),
+                              ((ix, iy + 1), f"M{x:.1f} {y:.1f}h{px:.1f}")):
+            if where.get((nx, ny), None) != k:
+                d.append(seg)
+        if (ix - 1, iy) not in where:
+            d.append(f"M{x:.1f} {y:.1f}v{px:.1f}")
+        if (ix, iy - 1) not in where:
+            d.append(f"M{x:.1f} {y + px:.1f}h{px:.1f}")
+    return "".join(d)
+
+
 def _maps(result: AuditResult) -> str:
     maps = result.metrics.cell_maps
     cells = result.domain_cells
     if maps.empty or cells.empty:
         return "<p>No sampled cells to map.</p>"
-    ix0, ix1, iy0, iy1 = int(cells["ix"].min()), int(cells["ix"].max()), int(cells["iy"].min()), int(cells["iy"].max())
-    known = dict(zip(cells["cell_id"], zip(cells["ix"], cells["iy"], strict=True), strict=True))
-    extra = maps.loc[~maps["cell_id"].isin(known), "cell_id"].unique()
-    if len(extra):
-        from harmonize.tagging import Grid
-
-        ex, ey = Grid.parse(pd.Series(extra))
-        known.update(zip(extra, zip(ex, ey, strict=True), strict=True))
-        ix0, ix1 = min(ix0, int(ex.min())), max(ix1, int(ex.max()))
-        iy0, iy1 = min(iy0, int(ey.min())), max(iy1, int(ey.max()))
+    ix0, ix1 = int(cells["ix"].min()), int(cells["ix"].max())
+    iy0, iy1 = int(cells["iy"].min()), int(cells["iy"].max())
     width, height = ix1 - ix0 + 1, iy1 - iy0 + 1
-    scale = max(1.0, min(130 / width, 130 / height))
-    background = "".join(f"M{ix - ix0} {iy1 - iy}h1v1h-1z" for ix, iy in zip(cells["ix"], cells["iy"], strict=True))
-    bins = MAP_BINS
-    out = [f'<p class="lead">Grid cells ({result.settings.get("cell_size_km", 0):g} km, equal-area grid) '
-           'with at least one sample, per source kind and season year; grey is the rest of the domain.</p>',
-           '<div class="legend">' + "".join(
-               f'<span><span class="swatch" style="background:{c}"></span>{lab}</span>'
-               for lab, c in [*MAP_LABELS, ("domain, not sampled", "#e3e7ec")]) + "</div>"]
+    px = float(min(12.0, max(4.0, MAP_WIDTH_PX / width)))
+    w, h = width * px, height * px
+    pos = {c: ((ix - ix0) * px, (iy1 - iy) * px) for c, ix, iy in zip(cells["cell_id"], cells["ix"], cells["iy"],
+                                                                         strict=True)}
+
+    def squares(ids: Sequence[str]) -> str:
+        return "".join(f"M{pos[c][0]:.1f} {pos[c][1]:.1f}h{px:.1f}v{px:.1f}h{-px:.1f}z" for c in ids if c in pos)
+
+    background = f'<path d="{squares(list(cells["cell_id"]))}" fill="{MAP_UNSAMPLED}"/>'
+    strata = cells["stratum"].fillna("") if "stratum" in cells else pd.Series([""] * len(cells))
+    lines = [f'<path d="{_outline(cells, strata, ix0, iy1, px)}" fill="none" stroke="#1d2430" stroke-width="0.8" '
+             'stroke-dasharray="3 2"/>' if strata.nunique() > 1 else "",
+             f'<path d="{_outline(cells, pd.Series(["d"] * len(cells)), ix0, iy1, px)}" fill="none" '
+             'stroke="#1d2430" stroke-width="1.6"/>']
+    labels = []
+    for name, g in cells.assign(_s=strata.to_numpy()).groupby("_s"):
+        if not name:
+            continue
+        # the label sits on the stratum's cell nearest its mean position, so it lands inside the stratum
+        mx, my = g["ix"].mean(), g["iy"].mean()
+        best = g.iloc[int(((g["ix"] - mx) ** 2 + (g["iy"] - my) ** 2).to_numpy().argmin())]
+        x, y = (best["ix"] - ix0 + 0.5) * px, (iy1 - best["iy"] + 0.5) * px
+        labels.append(f'<text x="{x:.1f}" y="{y + 4:.1f}" text-anchor="middle" font-size="11" font-weight="600" '
+                      f'fill="#1d2430" stroke="#ffffff" stroke-width="3" paint-order="stroke">{_e(name)}</text>')
+    overlay = "".join(lines) + "".join(labels)
+    hatch = (f'<pattern id="hatch" width="5" height="5" patternUnits="userSpaceOnUse" patternTransform="rotate(45)">'
+             f'<rect width="5" height="5" fill="{MAP_UNSAMPLED}"/><line x1="0" y1="0" x2="0" y2="5" '
+             f'stroke="{MAP_PRESENCE}" stroke-width="2"/></pattern>')
+    n_domain = len(cells)
+    partial = {(str(k), int(y)) for k, y in zip(result.metrics.periods.get("source_kind", []),
+                                                 result.metrics.periods.get("season_year", []), strict=True)}
+    sw = ('<svg width="14" height="14" viewBox="0 0 14 14" aria-hidden="true"><rect width="14" height="14" '
+          'fill="{}" stroke="#5b6675" stroke-width="0.5"/></svg>')
+    legend_items = [f"<span>{sw.format(c)} {_e(lab)}</span>" for lab, c in MAP_LABELS]
+    legend_items.append(f"<span>{sw.format(MAP_UNSAMPLED)} domain cell, nothing recorded</span>")
+    legend_items.append('<span><svg width="14" height="14" viewBox="0 0 14 14" aria-hidden="true"><defs>'
+                        + hatch.replace('id="hatch"', 'id="hatch-legend"') + '</defs><rect width="14" height="14" '
+                        'fill="url(#hatch-legend)" stroke="#5b6675" stroke-width="0.5"/></svg> presence-only records'
+                        "</span>")
+    legend_items.append('<span><svg width="22" height="10" aria-hidden="true"><line x1="0" y1="5" x2="22" y2="5" '
+                        'stroke="#1d2430" stroke-width="1.6"/></svg> domain</span>'
+                        '<span><svg width="22" height="10" aria-hidden="true"><line x1="0" y1="5" x2="22" y2="5" '
+                        'stroke="#1d2430" stroke-dasharray="3 2"/></svg> strata</span>')
+    out = [f'<p class="lead">Domain cells ({result.settings.get("cell_size_km", 0):g} km squares of an equal-area '
+           "grid) holding at least one sample, per source kind and season year. Outlines: the domain (solid) "
+           "and its strata (dashed, labelled). Cells outside the domain are never drawn or counted.</p>",
+           f'<div class="legend">{"".join(legend_items)}</div>']
     for kind in _kinds(maps["source_kind"]):
         sub = maps[maps["source_kind"] == kind]
         years = sorted(int(y) for y in sub["season_year"].unique())
@@ -411,22 +468,29 @@ def _maps(result: AuditResult) -> str:
         figs = []
         for y in shown:
             s = sub[sub["season_year"] == y]
-            paths = [f'<path d="{background}" fill="#e3e7ec"/>']
-            ev = s["events"].to_numpy(float)
-            level = np.searchsorted([b[0] for b in bins], ev, side="right") - 1
-            for li, (_, colour) in enumerate(bins):
-                ids = s["cell_id"].to_numpy()[level == li]
-                if len(ids):
-                    d = "".join(f"M{known[c][0] - ix0} {iy1 - known[c][1]}h1v1h-1z" for c in ids)
-                    paths.append(f'<path d="{d}" fill="{colour}"/>')
-            figs.append(f'<figure><svg xmlns="http://www.w3.org/2000/svg" width="{width * scale:.0f}" '
-                        f'height="{height * scale:.0f}" viewBox="0 0 {width} {height}" shape-rendering="crispEdges" '
-                        f'role="img" aria-label="{_e(kind)} {y}">{"".join(paths)}</svg>'
-                        f"<figcaption>{y} · {len(s)} cells</figcaption></figure>")
+            paths = [background]
+            sampled = s[s["events"] > 0]
+            level = np.searchsorted([b[0] for b in MAP_BINS], sampled["events"].to_numpy(float), side="right") - 1
+            for li, (_, colour) in enumerate(MAP_BINS):
+                ids = list(sampled["cell_id"].to_numpy()[level == li])
+                if ids:
+                    paths.append(f'<path d="{squares(ids)}" fill="{colour}"/>')
+            presence = list(s.loc[(s["events"] == 0) & (s["presence_only_events"] > 0), "cell_id"])
+            if presence:
+                paths.append(f'<path d="{squares(presence)}" fill="url(#hatch-{_e(kind)}-{y})"/>')
+            defs = hatch.replace('id="hatch"', f'id="hatch-{_e(kind)}-{y}"') if presence else ""
+            inc = " (incomplete)" if (kind, y) in partial else ""
+            caption = (f"<b>{y}</b>{inc} · {len(sampled):,} of {n_domain:,} cells sampled"
+                       + (f", {len(presence):,} presence-only" if presence else ""))
+            figs.append(f'<figure><svg xmlns="http://www.w3.org/2000/svg" width="{w + 4:.0f}" height="{h + 4:.0f}" '
+                        f'viewBox="-2 -2 {w + 4:.1f} {h + 4:.1f}" role="img" aria-label="{_e(_label(kind))} {y}: '
+                        f'{len(sampled)} of {n_domain} domain cells sampled"><defs>{defs}</defs>'
+                        f'<g shape-rendering="crispEdges">{"".join(paths)}</g>'
+                        f"{overlay}</svg><figcaption>{caption}</figcaption></figure>")
         more = f'<p class="note">Showing the last {len(shown)} of {len(years)} years.</p>' if len(years) > len(shown) else ""
-        out.append(f'<h3>{_e(_label(kind))}</h3><div class="maps">{"".join(figs)}</div>{more}')
+        out.append(f'<h3>{_e(_label(kind))} <span class="note">({_what(kind)})</span></h3>'
+                   f'<div class="maps">{"".join(figs)}</div>{more}')
     return "".join(out)
-
 
 def _table(head: list[tuple[str, bool]], rows: list[list[str]], cls: str = "") -> str:
     """A plain table: ``head`` is (title, numeric) per column; cells are HTML already escaped."""

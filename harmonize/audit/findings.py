@@ -11,13 +11,14 @@ no_samples (error when chance does not explain the gap, else info; see docs/audi
     effort data). In a kind's last year, seasons after the latest one sampled are not
     reported (the year may not be over). Also (warning): a season x depth layer that no
     biological source samples in any year.
-thin_samples (warning)
+thin_samples (error when chance does not explain it, else info; see docs/audit.md)
     A source kind has some, but fewer than ``[audit] min_events``, samples in a
-    season_year x season x depth layer. Not applied to fishing effort.
+    season_year x season x depth layer; or a planned stratum kept less than half of its
+    earlier mean. Not applied to fishing effort, nor to incomplete seasons.
 coverage_drop (warning)
     The share of domain cells a source kind sampled in a season is below
     ``[audit] coverage_drop`` times the median share of its earlier years (at least two).
-    Not applied to fishing effort.
+    Not applied to fishing effort, nor to incomplete seasons (:mod:`harmonize.audit.periods`).
 missing_year (error)
     A source has no records in a season year between its first and last year (with
     ``--year Y``: also when it had records in Y-1 and none in Y).

@@ -98,7 +98,9 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
                    any_value(cell_id) AS cell_id, any_value(stratum) AS stratum,
                    bool_or(quantity <> 'presence') AS effort_bearing,
                    bool_or(variable_kind = 'taxon') AS biological,
-                   min(n_vessels) AS n_vessels
+                   min(n_vessels) AS n_vessels,
+                   any_value(effort) AS effort, any_value(effort_unit) AS effort_unit,
+                   max(event_start) AS event_start
             FROM observations
             WHERE {_KEPT}{_year_filter(max_year)}
             GROUP BY event_key"""
@@ -106,7 +108,9 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
         ev_sql = f"""
             SELECT source_id, source_kind, protocol, provider_type, CAST(season_year AS INTEGER) AS season_year,
                    season, depth_layer, cell_id, stratum, effort_bearing, biological,
-                   CAST(n_vessels AS INTEGER) AS n_vessels
+                   CAST(n_vessels AS INTEGER) AS n_vessels,
+                   CAST(NULL AS DOUBLE) AS effort, CAST(NULL AS VARCHAR) AS effort_unit,
+                   CAST(NULL AS TIMESTAMPTZ) AS event_start
             FROM {events_table}"""
     con.execute(
         f"""
@@ -120,8 +124,8 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
             FROM ev LEFT JOIN audit_domain_cells d ON d.cell_id = ev.cell_id
         )
         SELECT source_id, source_kind, protocol, provider_type, season_year, season, depth_layer, cell_id,
-               stratum, effort_bearing, biological, confidential, cell_public, in_domain,
-               count(*) AS n
+               stratum, effort_bearing, biological, confidential, cell_public, in_domain, effort_unit,
+               count(*) AS n, sum(effort) AS effort_total, max(event_start) AS last_start
         FROM tagged GROUP BY ALL
         """
     )

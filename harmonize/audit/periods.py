@@ -27,12 +27,25 @@ import pandas as pd
 
 from harmonize.audit.metrics import _KEPT, _year_filter
 from harmonize.tagging import season_year_offsets
+from harmonize.twins import has_table
 
 COLUMNS = ["source_kind", "source_id", "season_year", "season", "status"]
 
 
 def last_samples(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> pd.DataFrame:
-    """The last sample time per source x season year x season (one small aggregate)."""
+    """The last sample time per source x season year x season.
+
+    Read from the audit's event table when it holds the times (DuckDB engine); otherwise
+    one aggregate over the observations.
+    """
+    if has_table(con, "audit_cells") and con.execute(
+            "SELECT count(last_start) FROM audit_cells").fetchall()[0][0]:
+        return con.execute(
+            """SELECT source_kind, source_id, CAST(season_year AS INTEGER) AS season_year, season,
+                      max(last_start) AS last_start
+               FROM audit_cells WHERE season_year IS NOT NULL AND season IS NOT NULL
+               GROUP BY ALL ORDER BY ALL"""
+        ).df()
     return con.execute(
         f"""SELECT source_kind, source_id, CAST(season_year AS INTEGER) AS season_year, season,
                    max(event_start) AS last_start

@@ -82,16 +82,22 @@ def received(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> Rec
     meta = (dict(con.execute("SELECT key, value FROM store_meta").fetchall())
             if has_table(con, "store_meta") else {})
     excluded = ", ".join(f"'{k}'" for k in EFFORT_TOTAL_EXCLUDED)
+    if has_table(con, "audit_cells") and con.execute(
+            "SELECT count(*) FILTER (WHERE effort_unit IS NOT NULL) FROM audit_cells").fetchall()[0][0]:
+        # the audit's event pass already holds one effort value per event: no second pass
+        events = f"""SELECT source_kind, season_year, effort_unit, n, effort_total AS effort FROM audit_cells
+                     WHERE effort_total IS NOT NULL AND effort_unit IS NOT NULL AND season_year IS NOT NULL
+                           AND source_kind NOT IN ({excluded})"""
+    else:  # (the Dask engine's event table carries no effort) one pass over the events
+        events = f"""SELECT any_value(source_kind) AS source_kind, any_value(season_year) AS season_year,
+                            any_value(effort_unit) AS effort_unit, 1 AS n, any_value(effort) AS effort
+                     FROM observations
+                     WHERE effort IS NOT NULL AND effort_unit IS NOT NULL AND season_year IS NOT NULL
+                           AND source_kind NOT IN ({excluded}) AND {_KEPT}{_year_filter(max_year)}
+                     GROUP BY hash(source_id, event_id)"""
     effort = con.execute(
-        f"""WITH ev AS (
-                SELECT any_value(source_kind) AS source_kind, any_value(season_year) AS season_year,
-                       any_value(effort) AS effort, any_value(effort_unit) AS effort_unit
-                FROM observations
-                WHERE effort IS NOT NULL AND effort_unit IS NOT NULL AND season_year IS NOT NULL
-                      AND source_kind NOT IN ({excluded}) AND {_KEPT}{_year_filter(max_year)}
-                GROUP BY hash(source_id, event_id))
-            SELECT source_kind, CAST(season_year AS INTEGER) AS season_year, effort_unit,
-                   count(*)::BIGINT AS events, sum(effort) AS effort
-            FROM ev GROUP BY ALL ORDER BY ALL"""
+        f"""SELECT source_kind, CAST(season_year AS INTEGER) AS season_year, effort_unit,
+                   sum(n)::BIGINT AS events, sum(effort) AS effort
+            FROM ({events}) GROUP BY ALL ORDER BY ALL"""
     ).df()
     return Received(by_source, reasons, ingests, superseded, meta, effort)

@@ -104,6 +104,7 @@ footer { margin-top: 40px; border-top: 1px solid var(--rule); padding-top: 10px;
   main { padding: 0; max-width: none; }
   h1, h2, h3, summary { break-after: avoid; page-break-after: avoid; }
   details::details-content { content-visibility: visible; display: contents; }
+  details > summary { list-style: none; } details > summary::-webkit-details-marker { display: none; }
   tr, figure, .panel { break-inside: avoid; }
 }
 """
@@ -284,13 +285,15 @@ def _extent(result: AuditResult) -> str:
                     cells.append(f"<td{cls}>—</td>")
                     continue
                 bg, fg = _shade(0.15 + 0.85 * years / n_years)
+                extra = f"<br><small>+{presence:,} presence-only</small>" if presence else ""
                 cells.append(f'<td style="background:{bg};color:{fg}" title="{events} {_what(kind)} in {years} '
-                             f'season years">{years} yr<br><small>{events:,} {_what(kind, short=True)}</small></td>')
+                             f'season years">{years} yr<br><small>{_n(events, _what(kind, short=True).rstrip("s"))}</small>'
+                             f"{extra}</td>")
             body.append(f'<tr><th class="row">{_e(season)}</th>{"".join(cells)}</tr>')
         panels.append(f'<div class="panel"><h3>{_e(_label(kind))}</h3><table class="heat"><thead><tr>'
                       f'<th></th>{head}</tr></thead><tbody>{"".join(body)}</tbody></table></div>')
     return ('<p class="lead">Season x depth layer: in how many season years each combination was sampled '
-            '(darker = more years) and how many samples (ev) it holds. Red dashes in the first panel are '
+            '(darker = more years) and how many samples (or, for gridded and fishing data, cell-periods) it holds. Red dashes in the first panel are '
             'combinations no biological source samples: a model fitted there only extrapolates. Hatched cells hold '
             'presence-only records (encounters without a measure of sampling effort).</p>'
             f'<div class="grid">{"".join(panels)}</div>')

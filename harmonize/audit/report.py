@@ -60,10 +60,10 @@ h3 { font-size: 15px; margin: 18px 0 6px; }
 p.lead { color: var(--muted); margin: 0 0 14px; }
 p.note, .note { color: var(--muted); font-size: 13px; }
 .caution { border-left: 4px solid var(--warning); background: #fff7e8; padding: 10px 14px; margin: 14px 0 18px; }
-.cards { display: flex; flex-wrap: wrap; gap: 12px; margin: 12px 0 4px; }
-.card { background: var(--panel); border: 1px solid var(--rule); border-radius: 6px; padding: 8px 12px; min-width: 108px; }
-.card b { display: block; font-size: 22px; line-height: 1.2; }
-.card span { color: var(--muted); font-size: 13px; }
+.cards { display: flex; flex-wrap: wrap; gap: 8px; margin: 10px 0 4px; }
+.card { background: var(--panel); border: 1px solid var(--rule); border-radius: 6px; padding: 5px 10px; min-width: 84px; }
+.card b { display: block; font-size: 18px; line-height: 1.2; }
+.card span { color: var(--muted); font-size: 12px; }
 .card.error b { color: var(--error); } .card.warning b { color: var(--warning); } .card.info b { color: var(--info); }
 table { border-collapse: collapse; font-size: 13.5px; margin: 6px 0 10px; }
 th, td { padding: 4px 8px; border-bottom: 1px solid var(--rule); vertical-align: top; text-align: left; }

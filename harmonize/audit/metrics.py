@@ -19,7 +19,7 @@ Conventions shared by all metrics:
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import duckdb
 import pandas as pd
@@ -51,6 +51,8 @@ class Metrics:
     cell_maps: pd.DataFrame
     suppressed: pd.DataFrame
     n_domain_cells: int
+    #: Incomplete seasons at each source's data end (:mod:`harmonize.audit.periods`).
+    periods: pd.DataFrame = field(default_factory=pd.DataFrame)
 
 
 def _year_filter(max_year: int | None) -> str:
@@ -97,7 +99,9 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
                    any_value(cell_id) AS cell_id, any_value(stratum) AS stratum,
                    bool_or(quantity <> 'presence') AS effort_bearing,
                    bool_or(variable_kind = 'taxon') AS biological,
-                   min(n_vessels) AS n_vessels
+                   min(n_vessels) AS n_vessels,
+                   any_value(effort) AS effort, any_value(effort_unit) AS effort_unit,
+                   max(event_start) AS event_start
             FROM observations
             WHERE {_KEPT}{_year_filter(max_year)}
             GROUP BY event_key"""
@@ -105,7 +109,9 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
         ev_sql = f"""
             SELECT source_id, source_kind, protocol, provider_type, CAST(season_year AS INTEGER) AS season_year,
                    season, depth_layer, cell_id, stratum, effort_bearing, biological,
-                   CAST(n_vessels AS INTEGER) AS n_vessels
+                   CAST(n_vessels AS INTEGER) AS n_vessels,
+                   CAST(NULL AS DOUBLE) AS effort, CAST(NULL AS VARCHAR) AS effort_unit,
+                   CAST(NULL AS TIMESTAMPTZ) AS event_start
             FROM {events_table}"""
     con.execute(
         f"""
@@ -119,8 +125,8 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
             FROM ev LEFT JOIN audit_domain_cells d ON d.cell_id = ev.cell_id
         )
         SELECT source_id, source_kind, protocol, provider_type, season_year, season, depth_layer, cell_id,
-               stratum, effort_bearing, biological, confidential, cell_public, in_domain,
-               count(*) AS n
+               stratum, effort_bearing, biological, confidential, cell_public, in_domain, effort_unit,
+               count(*) AS n, sum(effort) AS effort_total, max(event_start) AS last_start
         FROM tagged GROUP BY ALL
         """
     )
@@ -224,9 +230,10 @@ def source_years(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
 
 
 def bio_providers(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
-    """Biological events (samples and presence-only) per season x layer x provider type x kind."""
+    """Biological events (samples and presence-only; ``samples`` the first) per season x layer x provider x kind."""
     return con.execute(
         """SELECT season, depth_layer, provider_type, source_kind, sum(n)::BIGINT AS events,
+                  coalesce(sum(n) FILTER (WHERE effort_bearing), 0)::BIGINT AS samples,
                   count(DISTINCT season_year) AS "years"
            FROM audit_cells WHERE biological GROUP BY ALL ORDER BY ALL"""
     ).df()
@@ -332,10 +339,16 @@ def comparisons(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> 
 
 
 def cell_maps(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
-    """Samples per source kind x season_year x (public) grid cell, for the maps."""
+    """Samples and presence-only events per source kind x season_year x (public) domain cell, for the maps.
+
+    Cells outside the domain are never listed; ``events`` counts samples, ``presence_only_events``
+    events without effort (a cell with only those is hatched on the maps).
+    """
     return con.execute(
-        """SELECT source_kind, season_year, cell_public AS cell_id, sum(n)::BIGINT AS events
-           FROM audit_cells WHERE effort_bearing AND cell_public IS NOT NULL AND season_year IS NOT NULL
+        """SELECT source_kind, season_year, cell_public AS cell_id,
+                  coalesce(sum(n) FILTER (WHERE effort_bearing), 0)::BIGINT AS events,
+                  coalesce(sum(n) FILTER (WHERE NOT effort_bearing), 0)::BIGINT AS presence_only_events
+           FROM audit_cells WHERE in_domain AND cell_public IS NOT NULL AND season_year IS NOT NULL
            GROUP BY ALL ORDER BY ALL"""
     ).df()
 

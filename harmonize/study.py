@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import difflib
 import hashlib
 import json
 import tomllib
@@ -20,6 +21,8 @@ from shapely.geometry import shape
 from harmonize.errors import ConfigError
 
 STUDY_FILE = "study.toml"
+#: Keys of [confidentiality] (harmonize.disclosure.CONFIG_KEYS; kept here so study.py imports no output code).
+CONFIDENTIALITY_KEYS = ("min_vessels", "generalise_deg")
 RESERVED_LAYERS = ("near_bottom", "integrated")
 METEOROLOGICAL_SEASONS: dict[str, tuple[int, ...]] = {
     # WMO practice: DJF, MAM, JJA, SON.
@@ -65,6 +68,7 @@ class Study:
     targets: pd.DataFrame
     audit: AuditSettings = field(default_factory=AuditSettings)
     min_vessels: int = 3
+    generalise_deg: float = 0.1
     raw: Mapping[str, Any] = field(default_factory=dict)
     input_digests: Mapping[str, str] = field(default_factory=dict)
 
@@ -172,7 +176,13 @@ def load_study(root: str | Path = ".") -> Study:
         min_encounters=int(reader.number(aud, "audit.min_encounters", default=10, positive=True)),
     )
     conf = reader.table("confidentiality", required=False)
+    reader.known_keys(conf, "confidentiality", CONFIDENTIALITY_KEYS)
     min_vessels = int(reader.number(conf, "confidentiality.min_vessels", default=3, positive=True))
+    generalise_deg = reader.number(conf, "confidentiality.generalise_deg", default=0.1, positive=True)
+    if generalise_deg > 1:
+        raise ConfigError(path, "confidentiality.generalise_deg",
+                          f"expected a rounding of at most 1 degree (Chapman 2020 uses 1, 0.1, 0.01 or 0.001), "
+                          f"got {generalise_deg!r}")
 
     return Study(
         root=root,
@@ -188,6 +198,7 @@ def load_study(root: str | Path = ".") -> Study:
         targets=targets,
         audit=audit,
         min_vessels=min_vessels,
+        generalise_deg=generalise_deg,
         raw=raw,
         input_digests=digests,
     )
@@ -209,6 +220,16 @@ class _Reader:
         if not isinstance(value, Mapping):
             raise ConfigError(self.path, f"[{key}]", "expected a table ([...] section)")
         return value
+
+    def known_keys(self, sec: Mapping[str, Any], section: str, valid: tuple[str, ...]) -> None:
+        """Raise ConfigError naming the first key of ``[section]`` not in ``valid``, the closest
+        valid name and all valid names."""
+        for key in sec:
+            if key not in valid:
+                close = difflib.get_close_matches(str(key), valid, n=1, cutoff=0.5)
+                hint = f"did you mean '{close[0]}'? " if close else ""
+                raise ConfigError(self.path, f"{section}.{key}",
+                                  f"is not a known key of [{section}]; {hint}valid keys: {', '.join(valid)}")
 
     def _get(self, sec: Mapping[str, Any], key: str) -> Any:
         return sec.get(key.rsplit(".", 1)[-1])

@@ -18,6 +18,13 @@ CAUTION = (
 )
 
 
+def warn_precise(min_vessels: int) -> None:
+    """The warning every command prints when asked for --precise output."""
+    from harmonize.disclosure import PRECISE_WARNING
+
+    err_console.print("WARNING: " + PRECISE_WARNING.format(n=min_vessels), style="bold red", markup=False)
+
+
 def study_from(ctx: typer.Context) -> Study:
     return load_study(Path(ctx.obj["study"]))
 

@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import typer
-from harmonize.cli.console import console, fmt_int, study_from
+from harmonize.cli.console import console, fmt_int, study_from, warn_precise
 
 from harmonize.export.metadata import CAUTION
 from harmonize.export.run import EXPORTERS, export
@@ -31,8 +31,17 @@ def export_cmd(
     sources: str | None = typer.Option(None, "--sources", help="Source ids, comma-separated."),
     quantity: str = typer.Option("count", "--quantity", help="wide: count or biomass in the taxon columns."),
     by_life_stage: bool = typer.Option(False, "--by-life-stage", help="wide: one column per taxon and life stage."),
-    generalise_deg: float = typer.Option(0.1, "--generalise-deg",
-                                         help="dwca: rounding (degrees) of events with a sensitive taxon."),
+    generalise_deg: float | None = typer.Option(
+        None, "--generalise-deg",
+        help="Rounding (degrees) of events with a sensitive taxon (default: [confidentiality] generalise_deg, 0.1)."),
+    fishing_aggregate: bool = typer.Option(
+        False, "--fishing-aggregate",
+        help="Sum fishing effort to coarser cells or whole season years until 3 vessels contribute "
+             "(see docs/exports.md, What is withheld and why)."),
+    precise: bool = typer.Option(
+        False, "--precise",
+        help="INTERNAL USE ONLY: include fishing rows of fewer than min_vessels vessels and exact positions of "
+             "sensitive taxa; recorded in the export's provenance."),
     memory_limit: str | None = typer.Option(
         None, "--memory-limit",
         help="wide: DuckDB working memory, e.g. 4GB (default: HARMONIZE_EXPORT_MEMORY_LIMIT, else 2GB)."),
@@ -42,19 +51,17 @@ def export_cmd(
         console.print(f"unknown export format {fmt!r}; choose from {', '.join(EXPORTERS)}", markup=False)
         raise typer.Exit(2)
     study = study_from(ctx)
+    if precise:
+        warn_precise(study.min_vessels)
     filters = ExportFilters.build(",".join(kind) if kind else None, years, seasons, layers, variables, sources)
     options: dict[str, object] = {}
     if fmt == "wide":
         options = {"quantity": quantity, "by_life_stage": by_life_stage, "memory_limit": memory_limit}
-    elif fmt == "dwca":
-        options = {"generalise_deg": generalise_deg}
-    result = export(study, fmt, out, filters, **options)
+    result = export(study, fmt, out, filters, precise=precise, fishing_aggregate=fishing_aggregate,
+                    generalise_deg=generalise_deg, **options)
     console.print(f"wrote {fmt_int(result.rows)} {_UNITS[fmt]} to {result.path}", markup=False)
     for extra in result.files[1:]:
         console.print(f"metadata: {extra}", markup=False)
-    suppressed = result.metadata["confidentiality"]["rows_suppressed"]
-    if suppressed:
-        console.print(f"{fmt_int(suppressed)} fishing values suppressed (fewer than {study.min_vessels} vessels)")
     for note in result.notes:
         console.print(f"note: {note}", markup=False)
     console.print(CAUTION, markup=False)

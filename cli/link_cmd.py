@@ -5,10 +5,11 @@ from __future__ import annotations
 from pathlib import Path
 
 import typer
-from harmonize.cli.console import CAUTION, console, fmt_int, study_from
+from harmonize.cli.console import CAUTION, console, fmt_int, study_from, warn_precise
 from rich.table import Table
 
 from harmonize.colocate import colocate, colocate_wide
+from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
 from harmonize.export.safe_csv import write_safe_csv
 
@@ -23,19 +24,24 @@ def colocate_cmd(
     source: list[str] = typer.Option([], "--source", help="VARIABLE=SOURCE_ID: take a variable from this gridded source."),
     csv: Path | None = typer.Option(None, "--csv", help="Write the values to this CSV file."),
     wide: bool = typer.Option(False, "--wide", help="One row per event, one column per variable (needs one source per variable)."),
+    precise: bool = typer.Option(False, "--precise", help="INTERNAL USE ONLY: include fishing cell-periods of "
+                                 "fewer than min_vessels vessels and sensitive events at their exact cell."),
 ) -> None:
     """Attach to each sample event the gridded value of its cell and period (and layer).
 
     Prints how many events of each source found a value; exit 1 when none did.
     """
     study = study_from(ctx)
+    if precise:
+        warn_precise(study.min_vessels)
+    rules = Disclosure.for_study(study, precise=precise)
     chosen = {}
     for item in source:
         variable, sep, source_id = item.partition("=")
         if not sep or not variable or not source_id:
             raise HarmonizeError(f"--source '{item}' is not VARIABLE=SOURCE_ID")
         chosen[variable.strip()] = source_id.strip()
-    long = colocate(study, variables, sources=chosen)
+    long = colocate(study, variables, sources=chosen, disclosure=rules)
     table = Table(title="gridded values attached to sample events", title_justify="left")
     for col in ("events of", "variable", "from", "events", "with a value"):
         table.add_column(col, justify="right" if col in ("events", "with a value") else "left")
@@ -46,7 +52,7 @@ def colocate_cmd(
         table.add_row(r.source_id, r.variable, r.gridded_source_id, fmt_int(r.events), fmt_int(int(r.found)))
     console.print(table)
     if csv is not None:
-        out = colocate_wide(study, variables, sources=chosen) if wide else long
+        out = colocate_wide(study, variables, sources=chosen, disclosure=rules) if wide else long
         write_safe_csv(out, csv)
         console.print(f"written: {csv} ({fmt_int(len(out))} rows)")
     console.print("Values are cell-period means of the gridded source, not measurements at the sample. " + CAUTION)

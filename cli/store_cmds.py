@@ -5,7 +5,7 @@ from __future__ import annotations
 from pathlib import Path
 
 import typer
-from harmonize.cli.console import console, fmt_int, study_from
+from harmonize.cli.console import console, fmt_int, study_from, warn_precise
 from rich.table import Table
 
 from harmonize.store import Store
@@ -80,16 +80,24 @@ def quarantine(
     ingest: str | None = typer.Option(None, "--ingest", help="Only this ingest id."),
     source: str | None = typer.Option(None, "--source", help="Only this source id."),
     limit: int = typer.Option(50, "--limit", help="How many rows to print."),
+    precise: bool = typer.Option(False, "--precise", help="INTERNAL USE ONLY: keep the raw text of rejected fishing "
+                                 "rows and of rows naming a sensitive taxon in the CSV."),
 ) -> None:
     """Rejected rows with their reasons (complete ingests only)."""
+    from harmonize.disclosure import Disclosure, public_quarantine_rows
+
     study = study_from(ctx)
-    store = Store(study.store_dir)
-    rows = store.quarantine(ingest_id=ingest, reason=reason, source_id=source)
+    if precise:
+        warn_precise(study.min_vessels)
+    rows = public_quarantine_rows(study, Disclosure.for_study(study, precise=precise),
+                                  ingest_id=ingest, reason=reason, source_id=source)
     if csv is not None:
         from harmonize.export.safe_csv import write_safe_csv
 
         write_safe_csv(rows, csv)
-        console.print(f"wrote {fmt_int(len(rows))} quarantined rows to {csv}")
+        withheld = int(rows["withheld"].notna().sum())
+        console.print(f"wrote {fmt_int(len(rows))} quarantined rows to {csv} ({fmt_int(withheld)} with raw text "
+                      "withheld: fishing rows locate one vessel, others name a sensitive taxon)", markup=False)
         return
     if rows.empty:
         console.print("no quarantined rows")

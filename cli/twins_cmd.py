@@ -5,12 +5,13 @@ from __future__ import annotations
 from pathlib import Path
 
 import typer
-from harmonize.cli.console import CAUTION, console, fmt_int, study_from
+from harmonize.cli.console import CAUTION, console, fmt_int, study_from, warn_precise
 from rich.table import Table
 
+from harmonize.disclosure import Disclosure, public_twins
 from harmonize.export.safe_csv import write_safe_csv
 from harmonize.store import Store
-from harmonize.twins import twins_frame, volunteer_only
+from harmonize.twins import volunteer_only
 
 
 def register(app: typer.Typer) -> None:
@@ -21,15 +22,21 @@ def twins_cmd(
     ctx: typer.Context,
     csv: Path | None = typer.Option(None, "--csv", help="Write every twin (both records side by side) to this CSV file."),
     limit: int = typer.Option(20, "--limit", help="How many twins to print."),
+    precise: bool = typer.Option(False, "--precise", help="INTERNAL USE ONLY: exact positions of records of "
+                                 "sensitive taxa in the CSV (default: rounded, as in every output)."),
 ) -> None:
     """Probable duplicates across sources: each flagged record with the record it repeats."""
     study = study_from(ctx)
+    if precise:
+        warn_precise(study.min_vessels)
     with Store(study.store_dir).connect() as con:
-        pairs = twins_frame(con)
+        pairs = public_twins(con, Disclosure.for_study(study, precise=precise))
         alone = volunteer_only(con)
     if csv is not None:
         write_safe_csv(pairs, csv)
-        console.print(f"wrote {fmt_int(len(pairs))} twins to {csv}")
+        generalised = int(pairs["data_generalizations"].notna().sum()) if "data_generalizations" in pairs else 0
+        console.print(f"wrote {fmt_int(len(pairs))} twins to {csv} ({fmt_int(generalised)} with positions "
+                      "generalised: a sensitive taxon was recorded at the event)", markup=False)
     if pairs.empty:
         console.print("no probable duplicates in the store")
     else:

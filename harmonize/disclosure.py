@@ -409,3 +409,15 @@ def public_quarantine(rows: pd.DataFrame, kinds: pd.Series, study: Any, rules: D
             out.loc[idx, "message"] = why
             out.loc[idx, "withheld"] = why
     return out
+
+
+def public_quarantine_rows(study: Any, rules: Disclosure, ingest_id: str | None = None, reason: str | None = None,
+                           source_id: str | None = None, limit: int | None = None) -> pd.DataFrame:
+    """The store's quarantine (:meth:`harmonize.store.Store.quarantine`) through :func:`public_quarantine`."""
+    from harmonize.store import Store
+
+    store = Store(study.store_dir)
+    rows = store.quarantine(ingest_id=ingest_id, reason=reason, source_id=source_id, limit=limit)
+    kinds = store.ingests().set_index("ingest_id")["source_kind"] if len(rows) else pd.Series(dtype=object)
+    return public_quarantine(rows, rows["ingest_id"].map(kinds) if len(rows) else pd.Series(dtype=object),
+                             study, rules)

@@ -13,8 +13,8 @@ Conventions shared by all metrics:
 - an event is a *sample* (``effort_bearing``) when it has at least one row that is not
   presence-only; presence-only events count as encounters, not as samples;
 - effort events (fishing) whose value rests on fewer than ``min_vessels`` vessels are
-  confidential: their cell is never named (``cell_public`` is null), see
-  :mod:`harmonize.confidentiality`.
+  confidential, and events where a sensitive taxon was recorded are generalised: the cell of
+  neither is ever named (``cell_public`` is null), see :mod:`harmonize.disclosure`.
 """
 
 from __future__ import annotations
@@ -24,7 +24,7 @@ from dataclasses import dataclass
 import duckdb
 import pandas as pd
 
-from harmonize.confidentiality import suppression_sql
+from harmonize.disclosure import Disclosure
 
 DUPLICATE_FLAG = "probable_duplicate"
 #: The pseudo source kind of rows that pool every biological source.
@@ -57,7 +57,8 @@ def _year_filter(max_year: int | None) -> str:
 
 
 def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame,
-                      min_vessels: int, max_year: int | None = None, events_table: str | None = None) -> None:
+                      min_vessels: int, max_year: int | None = None, events_table: str | None = None,
+                      rules: Disclosure | None = None) -> None:
     """Create the temporary table ``audit_cells``: events counted per tag combination and cell.
 
     One pass over the observations reduces them to one row per event (grouped on a 64-bit
@@ -82,11 +83,15 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
         provider_type, season_year, season, depth_layer, cell_id, stratum, effort_bearing,
         biological, n_vessels), computed elsewhere by the same rules (the Dask engine,
         :mod:`harmonize.engines.dask_engine`); None computes it here.
+    rules
+        The disclosure rules (default: ``min_vessels`` and no sensitive taxa); the cells of
+        confidential and of sensitive events are not named.
     """
+    rules = rules or Disclosure(min_vessels=int(min_vessels))
     con.register("_audit_domain_cells", domain_cells[["cell_id"]])
     con.execute("CREATE OR REPLACE TEMP TABLE audit_domain_cells AS SELECT DISTINCT cell_id FROM _audit_domain_cells")
     con.unregister("_audit_domain_cells")
-    confidential = f"(n_vessels IS NOT NULL AND n_vessels < {int(min_vessels)})"
+    confidential = rules.confidential_sql()
     ev_sql = f"""
             SELECT hash(source_id, event_id) AS event_key,
                    any_value(source_id) AS source_id, any_value(source_kind) AS source_kind,
@@ -96,7 +101,7 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
                    any_value(cell_id) AS cell_id, any_value(stratum) AS stratum,
                    bool_or(quantity <> 'presence') AS effort_bearing,
                    bool_or(variable_kind = 'taxon') AS biological,
-                   min(n_vessels) AS n_vessels
+                   min(n_vessels) AS n_vessels, bool_or({rules.sensitive_present_sql()}) AS sensitive
             FROM observations
             WHERE {_KEPT}{_year_filter(max_year)}
             GROUP BY event_key"""
@@ -104,7 +109,7 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
         ev_sql = f"""
             SELECT source_id, source_kind, protocol, provider_type, CAST(season_year AS INTEGER) AS season_year,
                    season, depth_layer, cell_id, stratum, effort_bearing, biological,
-                   CAST(n_vessels AS INTEGER) AS n_vessels
+                   CAST(n_vessels AS INTEGER) AS n_vessels, FALSE AS sensitive
             FROM {events_table}"""
     con.execute(
         f"""
@@ -113,7 +118,7 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
         ),
         tagged AS (
             SELECT ev.*, {confidential} AS confidential,
-                   {suppression_sql(min_vessels, 'ev.cell_id')} AS cell_public,
+                   CASE WHEN {confidential} OR ev.sensitive THEN NULL ELSE ev.cell_id END AS cell_public,
                    d.cell_id IS NOT NULL AS in_domain
             FROM ev LEFT JOIN audit_domain_cells d ON d.cell_id = ev.cell_id
         )
@@ -342,7 +347,7 @@ def suppressed(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
 
 
 def compute(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame, min_vessels: int,
-            max_year: int | None = None) -> Metrics:
+            max_year: int | None = None, rules: Disclosure | None = None) -> Metrics:
     """All metrics of one audit.
 
     Parameters
@@ -355,8 +360,10 @@ def compute(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame, min_vess
         The confidentiality threshold for effort cells.
     max_year
         Only season years up to this one (the annual audit); None for all.
+    rules
+        The disclosure rules (:mod:`harmonize.disclosure`); default ``min_vessels`` only.
     """
-    build_event_table(con, domain_cells, min_vessels, max_year)
+    build_event_table(con, domain_cells, min_vessels, max_year, rules=rules)
     n_cells = len(domain_cells)
     return Metrics(
         extent=extent(con),

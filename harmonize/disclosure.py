@@ -239,7 +239,7 @@ def _block_sql(k: int, period: str, where: str, source: str) -> str:
     iy = "CAST(regexp_extract(cell_id, '^x(-?[0-9]+)_y(-?[0-9]+)$', 2) AS BIGINT)"
     season = "season" if period == "season" else "CAST(NULL AS VARCHAR)"
     return f"""
-        SELECT split_part(event_id, '/', 1) AS gear, floor({ix} / {k})::BIGINT AS bx, floor({iy} / {k})::BIGINT AS by,
+        SELECT CASE WHEN contains(event_id, '/') THEN split_part(event_id, '/', 1) ELSE coalesce(protocol, '') END AS gear, floor({ix} / {k})::BIGINT AS block_x, floor({iy} / {k})::BIGINT AS block_y,
                season_year, {season} AS season, depth_layer,
                any_value(source_id) AS source_id, any_value(ingest_id) AS ingest_id,
                any_value(provider_type) AS provider_type, any_value(protocol) AS protocol,
@@ -248,7 +248,7 @@ def _block_sql(k: int, period: str, where: str, source: str) -> str:
                max(n_vessels) AS n_vessels, min(event_start) AS event_start, max(event_end) AS event_end,
                count(*) AS parts
         FROM {source} WHERE ({where}) AND source_kind = 'effort' AND cell_id IS NOT NULL
-        GROUP BY source_id, gear, bx, by, season_year, {season}, depth_layer"""
+        GROUP BY source_id, gear, block_x, block_y, season_year, {season}, depth_layer"""
 
 
 def season_year_bounds(seasons: Any, season_year: pd.Series) -> tuple[np.ndarray, np.ndarray]:
@@ -287,14 +287,16 @@ def _prepare_aggregate(rules: Disclosure, con: duckdb.DuckDBPyConnection, study:
     withheld = int((~keep).sum())
     blocks = blocks[keep].reset_index(drop=True)
     grid = Grid(study.crs, study.cell_size_km)
-    centre = blocks["bx"].to_numpy(float) * k + k / 2 - 0.5
-    lon, lat = grid.cell_centres_lonlat(centre, blocks["by"].to_numpy(float) * k + k / 2 - 0.5)
+    # the block's centre: cell_centres_lonlat takes fractional cell indices
+    centre = blocks["block_x"].to_numpy(float) * k + k / 2 - 0.5
+    lon, lat = grid.cell_centres_lonlat(centre, blocks["block_y"].to_numpy(float) * k + k / 2 - 0.5)
     blocks["lon"], blocks["lat"] = np.asarray(lon, float), np.asarray(lat, float)
     if period == "year" and len(blocks):
         blocks["event_start"], blocks["event_end"] = season_year_bounds(study.seasons, blocks["season_year"])
     period_text = blocks["season_year"].astype(str) + "-" + (blocks["season"].fillna("all")
                                                              if period == "season" else "all")
-    blocks["event_id"] = (blocks["gear"] + f"/k{k}_x" + blocks["bx"].astype(str) + "_y" + blocks["by"].astype(str)
+    blocks["event_id"] = (blocks["gear"] + f"/k{k}_x" + blocks["block_x"].astype(str) + "_y"
+                          + blocks["block_y"].astype(str)
                           + "/" + period_text + "/" + blocks["depth_layer"].astype(str))
     con.register("_disclosure_blocks", blocks)
     con.execute(f"""

@@ -235,19 +235,21 @@ def check_generalise_deg(value: float) -> None:
 
 def _block_sql(k: int, period: str, where: str, source: str) -> str:
     """Effort rows of the selection summed per gear x block of k x k cells x period x layer."""
-    ix = "CAST(regexp_extract(cell_id, '^x(-?[0-9]+)_y(-?[0-9]+)$', 1) AS BIGINT)"
-    iy = "CAST(regexp_extract(cell_id, '^x(-?[0-9]+)_y(-?[0-9]+)$', 2) AS BIGINT)"
+    cell = "'^x(-?[0-9]+)_y(-?[0-9]+)$'"
     season = "season" if period == "season" else "CAST(NULL AS VARCHAR)"
     return f"""
-        SELECT CASE WHEN contains(event_id, '/') THEN split_part(event_id, '/', 1) ELSE coalesce(protocol, '') END AS gear, floor({ix} / {k})::BIGINT AS block_x, floor({iy} / {k})::BIGINT AS block_y,
-               season_year, {season} AS season, depth_layer,
+        SELECT gear, block_x, block_y, season_year, {season} AS season, depth_layer,
                any_value(source_id) AS source_id, any_value(ingest_id) AS ingest_id,
                any_value(provider_type) AS provider_type, any_value(protocol) AS protocol,
                sum(value) AS value, sum(effort) AS effort, any_value(effort_unit) AS effort_unit,
                any_value(unit) AS unit, sum(n_values)::BIGINT AS n_values,
                max(n_vessels) AS n_vessels, min(event_start) AS event_start, max(event_end) AS event_end,
                count(*) AS parts
-        FROM {source} WHERE ({where}) AND source_kind = 'effort' AND cell_id IS NOT NULL
+        FROM (SELECT *, CASE WHEN contains(event_id, '/') THEN split_part(event_id, '/', 1)
+                             ELSE coalesce(protocol, '') END AS gear,
+                     floor(CAST(regexp_extract(cell_id, {cell}, 1) AS BIGINT) / {k})::BIGINT AS block_x,
+                     floor(CAST(regexp_extract(cell_id, {cell}, 2) AS BIGINT) / {k})::BIGINT AS block_y
+              FROM {source} WHERE ({where}) AND source_kind = 'effort' AND cell_id IS NOT NULL)
         GROUP BY source_id, gear, block_x, block_y, season_year, {season}, depth_layer"""
 
 
@@ -282,7 +284,7 @@ def _prepare_aggregate(rules: Disclosure, con: duckdb.DuckDBPyConnection, study:
             chosen = (k, period)
             break
     k, period = chosen
-    blocks = con.execute(f"SELECT * FROM ({_block_sql(k, period, where, source)})").to_arrow_table().to_pandas()
+    blocks = con.sql(f"SELECT * FROM ({_block_sql(k, period, where, source)})").to_arrow_table().to_pandas()
     keep = blocks["n_vessels"].notna() & (blocks["n_vessels"] >= rules.min_vessels)
     withheld = int((~keep).sum())
     blocks = blocks[keep].reset_index(drop=True)

@@ -59,7 +59,10 @@ def _year_filter(max_year: int | None) -> str:
 def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame,
                       min_vessels: int, max_year: int | None = None, events_table: str | None = None,
                       rules: Disclosure | None = None) -> None:
-    """Create the temporary table ``audit_cells``: events counted per tag combination and cell.
+    """Create the temporary table ``audit_cells``: public events counted per tag combination and cell.
+
+    Confidential fishing events are left out of ``audit_cells`` (they are in no count of the
+    audit); ``audit_cells_all`` keeps them for the totals of :func:`suppressed`.
 
     One pass over the observations reduces them to one row per event (grouped on a 64-bit
     hash of source id and event id, far cheaper than the two strings: a collision, odds
@@ -113,7 +116,7 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
             FROM {events_table}"""
     con.execute(
         f"""
-        CREATE OR REPLACE TEMP TABLE audit_cells AS
+        CREATE OR REPLACE TEMP TABLE audit_cells_all AS
         WITH ev AS ({ev_sql}
         ),
         tagged AS (
@@ -128,6 +131,9 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
         FROM tagged GROUP BY ALL
         """
     )
+    # a confidential fishing row is withheld whole (harmonize.disclosure): it is in no count of
+    # the audit, by period or otherwise; only the totals of :func:`suppressed` mention it
+    con.execute("CREATE OR REPLACE TEMP TABLE audit_cells AS SELECT * FROM audit_cells_all WHERE NOT confidential")
 
 
 def extent(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
@@ -338,7 +344,7 @@ def suppressed(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
         """WITH c AS (SELECT source_kind, season_year, cell_id,
                              bool_and(confidential) AS all_confidential,
                              coalesce(sum(n) FILTER (WHERE confidential), 0) AS n_confidential
-                      FROM audit_cells WHERE cell_id IS NOT NULL GROUP BY ALL)
+                      FROM audit_cells_all WHERE cell_id IS NOT NULL GROUP BY ALL)
            SELECT source_kind, count(*) FILTER (WHERE all_confidential) AS cell_years_suppressed,
                   count(DISTINCT cell_id) FILTER (WHERE all_confidential) AS cells_suppressed,
                   sum(n_confidential)::BIGINT AS events_suppressed

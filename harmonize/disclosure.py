@@ -322,6 +322,11 @@ def _prepare_aggregate(rules: Disclosure, con: duckdb.DuckDBPyConnection, study:
 
 # ---------------------------------------------------------------------- frames outside the views
 
+def sensitive_keys_sql(rules: Disclosure, source: str = "observations") -> str:
+    """SELECT of the (source_id, event_id) of every event with a sensitive taxon recorded present."""
+    return f"SELECT DISTINCT source_id, event_id FROM {source} WHERE {rules.sensitive_present_sql()}"
+
+
 def sensitive_event_keys(con: duckdb.DuckDBPyConnection, rules: Disclosure,
                          source: str = "observations") -> pd.DataFrame:
     """(source_id, event_id) of every event with a sensitive taxon recorded present."""
@@ -381,13 +386,17 @@ QUARANTINE_WITHHELD = {
 }
 
 
-def public_quarantine(rows: pd.DataFrame, kinds: pd.Series, study: Any, rules: Disclosure) -> pd.DataFrame:
+def public_quarantine(rows: pd.DataFrame, kinds: pd.Series, study: Any, rules: Disclosure,
+                      sensitive_coordinates: Iterable[float] = ()) -> pd.DataFrame:
     """Quarantine rows as they may leave the tool.
 
     ``kinds`` is the source kind of each row. The raw text and message of a rejected
-    fishing-effort row (one vessel's position and time) and of a rejected row naming a
-    sensitive taxon (or one of its aliases) are withheld; the file, row number and reason
-    stay, so the user can find the row in their own file. A column ``withheld`` says why.
+    fishing-effort row (one vessel's position and time), of a rejected row naming a
+    sensitive taxon (or one of its aliases), and of a rejected row holding a number equal to
+    a latitude or longitude in ``sensitive_coordinates`` (e.g. another species' row of a
+    checklist where a sensitive bird was seen) are withheld; the file, row number and
+    reason stay, so the user can find the row in their own file. A column ``withheld``
+    says why.
     """
     out = rows.copy()
     out["withheld"] = pd.Series([None] * len(out), index=out.index, dtype=object)
@@ -406,6 +415,14 @@ def public_quarantine(rows: pd.DataFrame, kinds: pd.Series, study: Any, rules: D
         pattern = "|".join(re.escape(n.strip().casefold()) for n in names if n.strip())
         text = (out["raw"].astype("string").fillna("") + " " + out["message"].astype("string").fillna(""))
         sensitive = text.str.casefold().str.contains(pattern, regex=True).fillna(False).to_numpy(bool)
+    coords = {float(c) for c in sensitive_coordinates if c is not None and np.isfinite(c)}
+    if coords:
+        text = (out["raw"].astype("string").fillna("") + " " + out["message"].astype("string").fillna(""))
+        found = text.reset_index(drop=True).str.findall(r"-?\d+\.\d+").explode().dropna()
+        hit = pd.to_numeric(found, errors="coerce").isin(coords)
+        near = np.zeros(len(out), dtype=bool)
+        near[np.unique(found.index[hit.to_numpy()]).astype(int)] = True
+        sensitive |= near
     for mask, why in ((sensitive, QUARANTINE_WITHHELD["sensitive"]), (effort, QUARANTINE_WITHHELD["effort"])):
         if mask.any():
             idx = out.index[mask]
@@ -422,6 +439,13 @@ def public_quarantine_rows(study: Any, rules: Disclosure, ingest_id: str | None 
 
     store = Store(study.store_dir)
     rows = store.quarantine(ingest_id=ingest_id, reason=reason, source_id=source_id, limit=limit)
-    kinds = store.ingests().set_index("ingest_id")["source_kind"] if len(rows) else pd.Series(dtype=object)
-    return public_quarantine(rows, rows["ingest_id"].map(kinds) if len(rows) else pd.Series(dtype=object),
-                             study, rules)
+    if rows.empty or rules.precise:
+        return public_quarantine(rows, pd.Series([], dtype=object), study, rules)
+    kinds = store.ingests().set_index("ingest_id")["source_kind"]
+    coords: list[float] = []
+    if rules.sensitive_taxa:
+        with store.connect() as con:
+            exact = con.execute(f"""SELECT DISTINCT lat, lon FROM observations SEMI JOIN
+                                    ({sensitive_keys_sql(rules)}) USING (source_id, event_id)""").df()
+        coords = pd.concat([exact["lat"], exact["lon"]]).dropna().tolist()
+    return public_quarantine(rows, rows["ingest_id"].map(kinds), study, rules, coords)

@@ -309,12 +309,15 @@ def test_quarantine_rows_of_vessels_and_sensitive_taxa_are_withheld(
         "message": ["speed 31 knots at 61.2345, 3.4567", "count 'x' is not a number", "weight 'y' is not a number"],
         "raw": ['{"vessel": "vessel-ab", "lat": "61.2345"}', '{"taxon": "Red Calverion", "lat": "42.9123"}',
                 '{"taxon": "Ostravix keldensis", "lat": "43.0"}']})
-    out = public_quarantine(rows, pd.Series(["effort", "trawl", "trawl"]), built[0], Disclosure.for_study(built[0]))
-    assert out["raw"].isna().tolist() == [True, True, False]             # the alias "red calverion" counts
+    rows = pd.concat([rows, rows.iloc[[2]].assign(source_row=9, raw='{"taxon": "Larivox pallens", "lat": "42.912340"}')],
+                     ignore_index=True)
+    kinds = pd.Series(["effort", "trawl", "trawl", "opportunistic"])
+    # 42.91234: the latitude of an event where a sensitive taxon was recorded (another row of it)
+    out = public_quarantine(rows, kinds, built[0], Disclosure.for_study(built[0]), [42.91234, -150.2])
+    assert out["raw"].isna().tolist() == [True, True, False, True]       # the alias "red calverion" counts
     assert "61.2345" not in out.to_csv() and "42.9123" not in out.to_csv()
-    assert out["source_row"].tolist() == [4, 7, 8] and out["withheld"].notna().tolist() == [True, True, False]
-    kept = public_quarantine(rows, pd.Series(["effort", "trawl", "trawl"]), built[0],
-                             Disclosure.for_study(built[0], precise=True))
+    assert out["source_row"].tolist() == [4, 7, 8, 9] and out["withheld"].notna().tolist() == [True, True, False, True]
+    kept = public_quarantine(rows, kinds, built[0], Disclosure.for_study(built[0], precise=True), [42.91234])
     assert kept["raw"].tolist() == rows["raw"].tolist()
 
 
@@ -355,8 +358,16 @@ def test_demo_outputs_pass_the_scan_for_precise_positions(tmp_path_factory: pyte
     run = build_demo(tmp_path_factory.mktemp("demo") / "demo")
     study = load_study(run.folder)
     out = run.folder / "outputs-scan"
-    files = write_every_output(study, out)
-    files += [p for p in (run.folder / "outputs").rglob("*") if p.is_file()] if (run.folder / "outputs").exists() else []
+    out.mkdir()
+    # the demo's own outputs (audit JSON and HTML, the five exports) and the CSV verbs
+    files = [p for p in run.outputs.values() if Path(p).is_file()]
+    for args in (("colocate", "sea_surface_temperature", "--csv", str(out / "colocate.csv")),
+                 ("twins", "--csv", str(out / "twins.csv")), ("quarantine", "--csv", str(out / "quarantine.csv"))):
+        done = _cli(study.root, *args)
+        assert done.returncode in (0, 1), done.stderr
+    files += sorted(out.iterdir())
+    files += [Path(str(p) + "-metadata.json") for p in files if Path(str(p) + "-metadata.json").is_file()]
+    assert len(files) >= 10
     with Store(study.store_dir).connect() as con:
         rules = Disclosure.for_study(study)
         # cell-periods all of whose rows are withheld (a cell-period reported by several files or

@@ -54,7 +54,8 @@ coverage_drop = 0.5           # coverage below this share of earlier years' medi
 min_encounters = 10           # fewer non-zero records of a taxon -> few_encounters
 
 [confidentiality]
-min_vessels = 3               # fishing-effort cells with fewer vessels are suppressed in outputs
+min_vessels = 3               # fishing rows (cell x period x gear) of fewer vessels are withheld from outputs
+generalise_deg = 0.1          # rounding (degrees) of events where a sensitive taxon was recorded
 '''
 
 TRAWL_PROFILE = '''\

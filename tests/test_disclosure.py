@@ -299,6 +299,30 @@ def test_cli_precise_warns_and_records(built: tuple[Study, ExportStore, dict[str
     assert read_export_metadata(tmp_path / "plain.parquet")["confidentiality"]["precise"] is False
 
 
+def test_twins_csv_generalises_both_records(tmp_path: Path) -> None:
+    study, _ = export_study(tmp_path / "s")
+    # V1's Aukelle minima (sensitive) record is the probable twin of T2's Lumbrena record
+    with Store(study.store_dir).connect(read_only=False) as con:
+        con.execute("""CREATE TABLE IF NOT EXISTS twins (record_id VARCHAR, ingest_id VARCHAR, twin_record_id VARCHAR,
+                       twin_ingest_id VARCHAR, source_id VARCHAR, twin_source_id VARCHAR, variable VARCHAR,
+                       distance_km DOUBLE, minutes DOUBLE)""")
+        con.execute("""INSERT INTO twins SELECT a.record_id, a.ingest_id, b.record_id, b.ingest_id, a.source_id,
+                              b.source_id, a.variable, 1.5, 20
+                       FROM observations a, observations b
+                       WHERE a.event_id = 'V1' AND a.variable = 'Aukelle minima'
+                         AND b.event_id = 'T2' AND b.variable = 'Lumbrena pallida'""")
+    done = _cli(study.root, "twins", "--csv", str(tmp_path / "twins.csv"))
+    assert done.returncode == 0, done.stderr
+    text = (tmp_path / "twins.csv").read_text()
+    twins = pd.read_csv(tmp_path / "twins.csv")
+    assert len(twins) == 1 and "43.1234" not in text and "-152.9876" not in text     # V1 exactly
+    assert (twins["lat"].iloc[0], twins["lon"].iloc[0]) == (43.1, -153.0)
+    assert twins["data_generalizations"].iloc[0].startswith("coordinates rounded")
+    assert twins["twin_lat"].iloc[0] == 43.5 and twins["twin_data_generalizations"].isna().all()   # T2: public
+    precise = _cli(study.root, "twins", "--csv", str(tmp_path / "precise.csv"), "--precise")
+    assert "43.1234" in (tmp_path / "precise.csv").read_text() and "WARNING" in precise.stderr
+
+
 # ------------------------------------------------------------------------- quarantine and config
 def test_quarantine_rows_of_vessels_and_sensitive_taxa_are_withheld(
         built: tuple[Study, ExportStore, dict[str, object]]) -> None:

@@ -227,9 +227,9 @@ class _Reader:
         for key in sec:
             if key not in valid:
                 close = difflib.get_close_matches(str(key), valid, n=1, cutoff=0.5)
-                hint = f"did you mean '{close[0]}'? " if close else ""
+                hint = f"; did you mean '{close[0]}'?" if close else "."
                 raise ConfigError(self.path, f"{section}.{key}",
-                                  f"is not a known key of [{section}]; {hint}valid keys: {', '.join(valid)}")
+                                  f"unknown key{hint} Valid names in [{section}]: {', '.join(valid)}")
 
     def _get(self, sec: Mapping[str, Any], key: str) -> Any:
         return sec.get(key.rsplit(".", 1)[-1])

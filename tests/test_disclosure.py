@@ -356,8 +356,8 @@ def _study_with(tmp_path: Path, section: str) -> Path:
 
 def test_an_unknown_confidentiality_key_is_an_error(tmp_path: Path) -> None:
     folder = _study_with(tmp_path, "[confidentiality]\nmin_vessel = 10\n")
-    with pytest.raises(ConfigError, match=r"confidentiality\.min_vessel: is not a known key of \[confidentiality\]; "
-                                          r"did you mean 'min_vessels'\? valid keys: min_vessels, generalise_deg"):
+    with pytest.raises(ConfigError, match=r"confidentiality\.min_vessel: unknown key; did you mean 'min_vessels'\? "
+                                          r"Valid names in \[confidentiality\]: min_vessels, generalise_deg"):
         load_study(folder)
     done = _cli(folder, "status")
     assert done.returncode == 2 and "did you mean 'min_vessels'" in done.stderr + done.stdout

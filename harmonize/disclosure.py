@@ -356,7 +356,10 @@ def generalise_frame(frame: pd.DataFrame, sensitive: pd.DataFrame, rules: Disclo
     for col in (lat_col, lon_col):
         if col in out:
             vals = pd.to_numeric(out[col], errors="coerce").to_numpy(float)
-            out[col] = np.where(hit, np.round(np.round(vals / p) * p, digits), vals)
+            # half away from zero, as DuckDB's round() in :meth:`Disclosure.rounded_sql` does, so
+            # that an event sits at the same rounded position in every output
+            steps = np.sign(vals / p) * np.floor(np.abs(vals / p) + 0.5)
+            out[col] = np.where(hit, np.round(steps * p, digits), vals)
     for col in cell_cols:
         if col in out:
             out[col] = out[col].where(~hit, None)

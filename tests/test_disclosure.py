@@ -36,8 +36,10 @@ import pytest
 import shapely
 from export_store import ExportStore, export_study
 from factories import store_frames
+from hypothesis import given, settings
+from hypothesis import strategies as st
 
-from harmonize.disclosure import AGGREGATED_FLAG, Disclosure, public_quarantine
+from harmonize.disclosure import AGGREGATED_FLAG, Disclosure, generalise_frame, public_quarantine
 from harmonize.errors import ConfigError
 from harmonize.export.dwca import read_archive_table
 from harmonize.export.long import read_long
@@ -435,3 +437,19 @@ def test_demo_outputs_pass_the_scan_for_precise_positions(tmp_path_factory: pyte
     if len(twins):
         assert "data_generalizations" in twins.columns
     assert io.StringIO((out / "quarantine.csv").read_text()).read().splitlines()[0].endswith("withheld")
+
+
+@given(st.lists(st.floats(min_value=-180, max_value=180, allow_nan=False), min_size=1, max_size=20),
+       st.sampled_from([1.0, 0.1, 0.01, 0.001]))
+@settings(max_examples=50, deadline=None)
+def test_sql_and_frame_rounding_agree(values: list[float], deg: float) -> None:
+    """An event sits at the same rounded position in the exports (SQL) and the twins CSV (numpy)."""
+    rules = Disclosure(generalise_deg=deg, sensitive_taxa=("x",))
+    with duckdb.connect() as con:
+        sql = con.execute("SELECT " + ", ".join(rules.rounded_sql(f"CAST({v!r} AS DOUBLE)") for v in values)
+                          ).fetchall()[0]
+    frame = pd.DataFrame({"source_id": "s", "event_id": "e", "lat": values, "lon": values})
+    out = generalise_frame(frame, pd.DataFrame({"source_id": ["s"], "event_id": ["e"]}), rules)
+    assert list(sql) == out["lat"].tolist()
+    # and the rounding is the nearest multiple of deg (Chapman 2020), within float noise
+    np.testing.assert_allclose(out["lat"], np.round(np.asarray(values) / deg) * deg, atol=deg / 2 + 1e-9)

@@ -68,6 +68,7 @@ class Study:
     targets: pd.DataFrame
     audit: AuditSettings = field(default_factory=AuditSettings)
     min_vessels: int = 3
+    generalise_deg: float = 0.1
     raw: Mapping[str, Any] = field(default_factory=dict)
     input_digests: Mapping[str, str] = field(default_factory=dict)
     #: IANA time zone of the study calendar (``[study] timezone``): seasons, season years,
@@ -187,6 +188,11 @@ def load_study(root: str | Path = ".") -> Study:
     )
     conf = reader.table("confidentiality", required=False)
     min_vessels = int(reader.number(conf, "confidentiality.min_vessels", default=3, positive=True))
+    generalise_deg = reader.number(conf, "confidentiality.generalise_deg", default=0.1, positive=True)
+    if generalise_deg > 1:
+        raise ConfigError(path, "confidentiality.generalise_deg",
+                          f"expected a rounding of at most 1 degree (Chapman 2020 uses 1, 0.1, 0.01 or 0.001), "
+                          f"got {generalise_deg!r}")
 
     return Study(
         root=root,
@@ -202,6 +208,7 @@ def load_study(root: str | Path = ".") -> Study:
         targets=targets,
         audit=audit,
         min_vessels=min_vessels,
+        generalise_deg=generalise_deg,
         raw=raw,
         input_digests=digests,
         timezone=timezone,

@@ -125,7 +125,8 @@ def test_confidential_effort_cells_are_not_named(tiny: Study, tmp_path: Path) ->
                  source_id="fleet_logbooks", kind="effort", provider_type="industry")
     result = audit(tiny)
     row = result.coverage.set_index(["source_kind", "season_year", "season"]).loc[("effort", 2020, "winter")]
-    assert (row["cells_sampled"], row["cells_suppressed"]) == (2, 1)
+    # the confidential rows are withheld whole: in no count by period (harmonize.disclosure)
+    assert (row["cells_sampled"], row["cells_suppressed"], row["events"]) == (2, 0, 2)
     maps = result.metrics.cell_maps
     assert set(maps.loc[maps["source_kind"] == "effort", "cell_id"]) == {"x100_y180", "x102_y180"}
     assert result.suppression() == {"min_vessels": 3, "cells_suppressed": 1, "cell_years_suppressed": 1,
@@ -134,7 +135,7 @@ def test_confidential_effort_cells_are_not_named(tiny: Study, tmp_path: Path) ->
     text_html = result.write_html(tmp_path / "a.html").read_text(encoding="utf-8")
     for text in (text_json, text_html):
         assert "x101_y180" not in text
-    assert '"cells_suppressed": 1' in text_json
+    assert '"cells_suppressed": 1' in text_json     # the total, in the confidentiality block
     assert "1 grid cell (1 cell-year) is therefore not shown" in text_html
     # fishing effort is not a survey: no thin_samples or coverage_drop about it
     assert not any(f.source_kind == "effort" for f in result.findings)

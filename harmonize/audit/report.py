@@ -667,6 +667,13 @@ def _comparisons(result: AuditResult) -> str:
 
 
 def _confidentiality(result: AuditResult) -> str:
+    return _fishing_confidentiality(result) + (
+        "<p>Events where a taxon marked sensitive in the taxa list was recorded are counted, but their grid "
+        "cells are not named on the maps (their positions are generalised in every output; Chapman 2020, "
+        "Current Best Practices for Generalizing Sensitive Species Occurrence Data, GBIF).</p>")
+
+
+def _fishing_confidentiality(result: AuditResult) -> str:
     s = result.suppression()
     if "effort" not in set(result.coverage["source_kind"]) and s["events_suppressed"] == 0:
         return ("<p>The store holds no fishing-effort data, so no confidentiality rule applied. Effort cells "

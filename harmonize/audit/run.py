@@ -36,6 +36,7 @@ from harmonize.audit.since import (
     store_basis,
 )
 from harmonize.contract import CONTRACT_VERSION
+from harmonize.disclosure import Disclosure
 from harmonize.engines import EngineChoice, check_engine, current_engine
 from harmonize.errors import HarmonizeError
 from harmonize.store import Store
@@ -259,7 +260,7 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
             metrics = audit_metrics(con, store._live_paths(con), cells, study.min_vessels, year,
                                     scheduler or choice.scheduler)
         else:
-            metrics = compute(con, cells, study.min_vessels, year)
+            metrics = compute(con, cells, study.min_vessels, year, Disclosure.for_study(study))
         metrics.periods = incomplete_periods(last_samples(con, year), study.seasons)
         accounts = received(con, year)
         incomplete = incomplete_keys(metrics.periods)
@@ -275,6 +276,7 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
     settings = {
         "min_events": study.audit.min_events, "coverage_drop": study.audit.coverage_drop,
         "min_encounters": study.audit.min_encounters, "min_vessels": study.min_vessels,
+        "generalise_deg": study.generalise_deg,
         "cell_size_km": study.cell_size_km, "crs": study.crs, "domain_cells": len(cells),
         "seasons": {k: list(v) for k, v in study.seasons.items()},
         "depth_layers": [layer.name for layer in study.depth_layers] + ["near_bottom", "integrated"],

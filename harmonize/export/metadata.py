@@ -18,6 +18,7 @@ import pandas as pd
 
 from harmonize import __version__
 from harmonize.contract import CONTRACT_VERSION
+from harmonize.disclosure import Disclosure
 from harmonize.export.selection import ExportFilters, sql_text
 from harmonize.study import Study
 
@@ -77,7 +78,9 @@ def provenance(con: duckdb.DuckDBPyConnection, study: Study, fmt: str, filters: 
     ``counts`` comes from :func:`harmonize.export.selection.base_counts` (its ``ingest_ids``
     become the ``ingests`` records).
     """
-    numbers = {k: v for k, v in counts.items() if k != "ingest_ids"}
+    numbers = {k: v for k, v in counts.items() if k not in ("ingest_ids", "rules", "disclosure")}
+    rules = counts.get("rules") or Disclosure.for_study(study)
+    withheld = dict(counts.get("disclosure") or {})
     return {
         "generated_by": f"harmonize {__version__}",
         "tool_version": __version__,
@@ -87,11 +90,10 @@ def provenance(con: duckdb.DuckDBPyConnection, study: Study, fmt: str, filters: 
         "format": fmt,
         "filters": filters.as_dict(),
         "options": dict(options or {}),
-        "confidentiality": {"min_vessels": study.min_vessels,
-                            "rows_suppressed": counts.get("rows_suppressed_confidential", 0)},
+        "confidentiality": rules.metadata(withheld),
         "counts": numbers,
         "ingests": ingests_used(con, list(counts.get("ingest_ids", []))),
-        "notes": list(notes or []),
+        "notes": [*rules.notes(withheld), *(notes or [])],
         "caution": CAUTION,
     }
 

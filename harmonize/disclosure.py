@@ -36,7 +36,7 @@ import pandas as pd
 
 log = logging.getLogger(__name__)
 
-#: Keys of study.toml ``[confidentiality]`` (anything else is a configuration error).
+#: Fishing-effort rows resting on fewer vessels are withheld (the rule of three; common practice).
 DEFAULT_MIN_VESSELS = 3
 #: Chapman 2020 rounds to 1, 0.1, 0.01 or 0.001 degree by category; 0.1 degree is about 11 km.
 DEFAULT_GENERALISE_DEG = 0.1

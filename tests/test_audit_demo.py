@@ -64,6 +64,6 @@ def test_demo_report_in_chromium(demo, width: int, tmp_path: Path) -> None:  # t
         loaded = load_page(b, page, width, pdf=True)
     assert loaded.console_errors == [] and loaded.requests == []
     assert loaded.overflow == []
-    assert len(loaded.section_titles) == 12 and loaded.section_titles[0] == "What to act on"
+    assert len(loaded.section_titles) == 13 and loaded.section_titles[0] == "What to act on"
     assert loaded.pdf[:5] == b"%PDF-" and len(re.findall(rb"/Type\s*/Page[^s]", loaded.pdf)) >= 5
     assert loaded.hidden_in_print == 0

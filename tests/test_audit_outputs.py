@@ -104,8 +104,8 @@ def test_html_is_self_contained(study: Study, tmp_path: Path) -> None:
 #: The report's sections, in order (their headings, as a reader sees them).
 SECTIONS = ["What to act on", "Findings", "How this report counts", "Data received",
             "Which seasons and depth layers the data describe", "Coverage through time", "Coverage by stratum",
-            "Sampled cells per year", "Effort per year", "Agreement between sources", "Confidential fishing data",
-            "Provenance"]
+            "Sampled cells per year", "Effort per year", "Agreement between sources", "Model readiness of taxa",
+            "Confidential fishing data", "Provenance"]
 
 
 @pytest.fixture(scope="module")

@@ -11,13 +11,32 @@ BIN = Path(sys.executable).parent / "harmonize"
 
 
 def _status(study_dir: Path, columns: str | None) -> str:
+    """``status`` piped (columns None), or on a terminal of that width (a pseudo-terminal)."""
     env = {k: v for k, v in os.environ.items() if k != "COLUMNS"}
-    if columns:
-        env["COLUMNS"] = columns
-    out = subprocess.run([str(BIN), "--study", str(study_dir), "status"], capture_output=True, text=True,
-                         timeout=120, env=env)
-    assert out.returncode == 0, out.stderr
-    return out.stdout
+    env["NO_COLOR"] = "1"
+    args = [str(BIN), "--study", str(study_dir), "status"]
+    if columns is None:
+        out = subprocess.run(args, capture_output=True, text=True, timeout=120, env=env)
+        assert out.returncode == 0, out.stderr
+        return out.stdout
+    import pty
+
+    env["COLUMNS"] = columns  # rich takes a terminal's width from COLUMNS
+    master, slave = pty.openpty()
+    proc = subprocess.Popen(args, stdout=slave, stderr=subprocess.PIPE, env=env)
+    os.close(slave)
+    chunks = []
+    while True:
+        try:
+            data = os.read(master, 65536)
+        except OSError:  # the terminal closed: the process has ended
+            break
+        if not data:
+            break
+        chunks.append(data)
+    os.close(master)
+    assert proc.wait(timeout=120) == 0, proc.stderr.read() if proc.stderr else ""
+    return b"".join(chunks).decode("utf-8", "replace").replace("\r\n", "\n")
 
 
 def test_status_keeps_numbers_and_ids_whole(study_dir: Path) -> None:

@@ -8,6 +8,7 @@ import typer
 from harmonize.cli.console import console, fmt_int, study_from
 from rich.table import Table
 
+from harmonize.adapters.reading import one_line
 from harmonize.store import Store
 from harmonize.twins import volunteer_only
 
@@ -25,14 +26,15 @@ def status(
     """What the store holds: ingests, and rows by kind, year, season and layer."""
     study = study_from(ctx)
     store = Store(study.store_dir)
-    if not store.exists():
+    if not store.exists() and not store.lost_files():
         console.print(f"the store of '{study.name}' is empty: nothing ingested yet ('harmonize ingest PROFILE FILES')")
         return
-    # the integrity check runs first: a missing or damaged file would stop the listing below
+    # the integrity check runs first: a lost database or a damaged file would stop the listing below
     problems = store.check() if check else []
     for p in problems:
-        console.print(f"integrity problem: {p}", markup=False)
+        console.print(f"integrity problem: {one_line(p)}", markup=False)
     if problems:
+        console.print("run 'harmonize repair' to see how to take the damaged ingests out of the store", markup=False)
         raise typer.Exit(1)
     ingests = store.ingests(include_superseded=all_ingests)
     table = Table(title=f"ingests in {study.name}", title_justify="left")

@@ -29,19 +29,23 @@ from pathlib import Path
 import duckdb
 import pandas as pd
 import pyarrow as pa
+import pyarrow.parquet as pq
 
 from harmonize import __version__, twins
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns
 from harmonize.errors import StoreBusyError, StoreError
+from harmonize.files import file_digest
 
 DB_NAME = "harmonized.duckdb"
 OBSERVATIONS_DIR = "observations"
 STAGING_DIR = "staging"
 PARTITION_COLUMNS = ("source_kind", "season_year")
 #: Version of the store's tables (store_meta key ``store_version``); a store without the key
-#: is version 1. 2: the ``events_without_values`` table. A writer brings an older store up to
-#: date (the tables are created when missing); readers of an older store see no such events.
-STORE_VERSION = 2
+#: is version 1. 2: the ``events_without_values`` table. 3: the sha256 and size of every
+#: manifest file (``observation_files.sha256``, ``size_bytes``) and ``ingests.damage_reason``.
+#: A writer brings an older store up to date (tables and columns are created when missing; the
+#: checksums of files an older store lists are taken when it is brought up to date).
+STORE_VERSION = 3
 _LOCK_RE = re.compile(r"\(PID (\d+)\)")
 
 #: Columns of ``events_without_values``, in table order (see docs/store.md).
@@ -73,7 +77,8 @@ CREATE TABLE IF NOT EXISTS ingests (
     records_zero_filled BIGINT NOT NULL,
     superseded_by VARCHAR,
     tool_version VARCHAR,
-    profile_file VARCHAR
+    profile_file VARCHAR,
+    damage_reason VARCHAR
 );
 CREATE TABLE IF NOT EXISTS ingest_files (
     ingest_id VARCHAR NOT NULL,
@@ -129,8 +134,17 @@ CREATE TABLE IF NOT EXISTS events_without_values (
 CREATE TABLE IF NOT EXISTS observation_files (
     ingest_id VARCHAR NOT NULL,
     path VARCHAR NOT NULL,
-    n_rows BIGINT NOT NULL
+    n_rows BIGINT NOT NULL,
+    sha256 VARCHAR,
+    size_bytes BIGINT
 );
+"""
+
+#: Columns later store versions added to tables an older store already has.
+_ADDED_COLUMNS_SQL = """
+ALTER TABLE observation_files ADD COLUMN IF NOT EXISTS sha256 VARCHAR;
+ALTER TABLE observation_files ADD COLUMN IF NOT EXISTS size_bytes BIGINT;
+ALTER TABLE ingests ADD COLUMN IF NOT EXISTS damage_reason VARCHAR;
 """
 
 
@@ -157,6 +171,18 @@ class IngestRecord:
     status: str = "complete"
     #: opportunistic sources: the twin windows of the profile (harmonize.twins)
     duplicates: twins.TwinSettings | None = None
+
+
+@dataclass(frozen=True)
+class Damage:
+    """A live manifest file that is missing, changed since it was committed, or unreadable."""
+
+    ingest_id: str
+    path: str  # relative to the store folder
+    problem: str
+
+    def __str__(self) -> str:
+        return f"ingest {self.ingest_id}: file {self.path} {self.problem}"
 
 
 class Store:
@@ -189,15 +215,22 @@ class Store:
         return self.db_path.is_file()
 
     @contextmanager
-    def connect(self, read_only: bool = True, view: bool = True) -> Iterator[duckdb.DuckDBPyConnection]:
+    def connect(self, read_only: bool = True, view: bool = True,
+                repairing: bool = False) -> Iterator[duckdb.DuckDBPyConnection]:
         """A connection; waits while another process holds the database.
 
         A read-only connection to a store that does not exist yet raises StoreError. With
-        ``view=False`` a read-only connection does not define the observations view (which
-        reads every live parquet file): the integrity check uses it to find bad files.
+        ``view=False`` a connection does not define the observations view (which reads every
+        live parquet file): the integrity check and the repair use it to find bad files.
+        A store whose database is lost while parquet files remain is refused, for reading
+        and writing, unless ``repairing`` (see :mod:`harmonize.repair`).
         """
-        if read_only and not self.exists():
-            raise StoreError(f"no store at {self.directory}; ingest a file first ('harmonize ingest')")
+        if not self.exists():
+            lost = self.lost_files()
+            if lost and not repairing:
+                raise StoreError(self._lost_message(lost))
+            if read_only:
+                raise StoreError(f"no store at {self.directory}; ingest a file first ('harmonize ingest')")
         self.directory.mkdir(parents=True, exist_ok=True)
         con = self._open(read_only)
         try:
@@ -208,7 +241,8 @@ class Store:
                 con.execute(_SCHEMA_SQL)
                 twins.ensure_tables(con)
                 self._check_version(con)
-                self._define_view(con, temporary=False)
+                if view:
+                    self._define_view(con, temporary=False)
             yield con
         finally:
             con.close()
@@ -254,8 +288,27 @@ class Store:
                 f"this harmonize {__version__} knows version {STORE_VERSION}); upgrade harmonize"
             )
         if version < STORE_VERSION:
+            self._migrate(con, version)
             con.execute("DELETE FROM store_meta WHERE key = 'store_version'")
             con.execute("INSERT INTO store_meta VALUES ('store_version', ?)", [str(STORE_VERSION)])
+
+    def _migrate(self, con: duckdb.DuckDBPyConnection, version: int) -> None:
+        """Bring a store of an older ``version`` up to :data:`STORE_VERSION` (tables exist already)."""
+        con.execute(_ADDED_COLUMNS_SQL)
+        if version < 3:
+            # Checksums of the files an older store lists, taken now: they protect the files from
+            # this moment on (a file damaged before cannot be told from its checksum; the row
+            # count of its footer and a full read still are checked).
+            missing = con.execute("SELECT DISTINCT path FROM observation_files WHERE sha256 IS NULL").fetchall()
+            for (rel,) in missing:
+                path = self.directory / rel
+                if path.is_file():
+                    sha, size = file_digest(path)
+                    con.execute("UPDATE observation_files SET sha256 = ?, size_bytes = ? WHERE path = ?",
+                                [sha, size, rel])
+            con.execute("DELETE FROM store_meta WHERE key = 'checksums_since'")
+            con.execute("INSERT INTO store_meta VALUES ('checksums_since', ?)",
+                        [pd.Timestamp.now("UTC").isoformat()])
 
     def _live_paths(self, con: duckdb.DuckDBPyConnection) -> list[str]:
         rows = con.execute(
@@ -265,6 +318,7 @@ class Store:
         return [str(self.directory / r[0]) for r in rows]
 
     def _define_view(self, con: duckdb.DuckDBPyConnection, temporary: bool) -> None:
+        """(Re)define the observations views over the live files."""
         try:
             paths = self._live_paths(con)
         except duckdb.CatalogException:
@@ -352,8 +406,9 @@ class Store:
                 target = self.directory / rel
                 target.parent.mkdir(parents=True, exist_ok=True)
                 n_rows = con.execute("SELECT count(*) FROM read_parquet(?)", [str(part)]).fetchall()[0][0]
+                sha, size = file_digest(part)
                 os.replace(part, target)
-                moved.append((rel.as_posix(), int(n_rows)))
+                moved.append((rel.as_posix(), int(n_rows), sha, size))
                 _crash_point("moving")
             _crash_point("before_transaction")
             con.execute("BEGIN TRANSACTION")
@@ -381,8 +436,9 @@ class Store:
                         [record.ingest_id, f["role"], f["file_name"], f["file_sha256"],
                          f["rows_read"], f["rows_accepted"], f["rows_quarantined"]],
                     )
-                for rel, n_rows in moved:
-                    con.execute("INSERT INTO observation_files VALUES (?, ?, ?)", [record.ingest_id, rel, n_rows])
+                for rel, n_rows, sha, size in moved:
+                    con.execute("INSERT INTO observation_files (ingest_id, path, n_rows, sha256, size_bytes) "
+                                "VALUES (?, ?, ?, ?, ?)", [record.ingest_id, rel, n_rows, sha, size])
                 if len(quarantine):
                     q = quarantine[["source_file", "source_row", "reason_code", "message", "raw"]].copy()
                     q.insert(0, "ingest_id", record.ingest_id)
@@ -506,32 +562,76 @@ class Store:
         with self.connect() as con:
             return con.execute(sql, params).df()
 
-    def check(self) -> list[str]:
+    def lost_files(self) -> list[Path]:
+        """Parquet files under ``observations/`` while the database is missing (a lost database).
+
+        Empty when the database exists, or when no parquet file does (an empty study; staging
+        folders of an unfinished first ingest are no store yet).
+        """
+        if self.exists():
+            return []
+        obs_dir = self.directory / OBSERVATIONS_DIR
+        return sorted(obs_dir.rglob("*.parquet")) if obs_dir.is_dir() else []
+
+    def _lost_message(self, lost: Sequence[Path]) -> str:
+        return (f"the store's database {self.db_path} is missing, but {len(lost):,} parquet file(s) remain "
+                f"under {self.directory / OBSERVATIONS_DIR}; nothing is written until the store is repaired: "
+                "run 'harmonize repair' to see what it would do, then 'harmonize repair --apply'")
+
+    def store_version(self) -> int:
+        """The version of the store's tables (1 when the store predates the key)."""
+        with self.connect(view=False) as con:
+            found = con.execute("SELECT value FROM store_meta WHERE key = 'store_version'").fetchall()
+        return int(found[0][0]) if found else 1
+
+    def upgrade(self) -> bool:
+        """Bring an older store up to :data:`STORE_VERSION`; False when it cannot be written now."""
+        if self.store_version() >= STORE_VERSION:
+            return True
+        try:
+            with self.connect(read_only=False, view=False):
+                pass
+        except (StoreError, OSError, duckdb.Error):
+            return False
+        return True
+
+    def damage(self, deep: bool = True) -> list[Damage]:
+        """Live manifest files that are missing, changed or unreadable (see :meth:`check`)."""
+        with self.connect(view=False) as con:
+            return self._scrub(con, deep)
+
+    def _scrub(self, con: duckdb.DuckDBPyConnection, deep: bool = True) -> list[Damage]:
+        files = con.execute(
+            """SELECT f.ingest_id, f.path, f.n_rows, f.sha256, f.size_bytes FROM observation_files f
+               JOIN ingests i USING (ingest_id) WHERE i.status = 'complete' ORDER BY f.path, f.ingest_id"""
+        ).fetchall()
+        found: list[Damage] = []
+        for ingest_id, rel, n_rows, sha_recorded, size_recorded in files:
+            problem = _file_problem(self.directory / rel, n_rows, sha_recorded, size_recorded, deep)
+            if problem:
+                found.append(Damage(ingest_id, rel, problem))
+        return found
+
+    def check(self, deep: bool = True) -> list[str]:
         """Integrity problems (empty list = the store is sound).
 
-        Checks that every manifest file exists and holds the rows the manifest says, that
-        every complete ingest satisfies rows_read = rows_accepted + rows_quarantined and
-        records_written = rows in its files, and that every data row of every input file is
-        found among the accepted rows or in the quarantine.
+        Checks that the database is there when parquet files are (a lost database is a
+        problem, an empty study is not); that every live manifest file exists, has the size
+        and sha256 recorded when it was committed, is readable to the last page (``deep``)
+        and holds the rows the manifest says; that every complete ingest satisfies
+        rows_read = rows_accepted + rows_quarantined and records_written = rows in its files;
+        and that every data row of every input file is found among the accepted rows or in
+        the quarantine. A store of an older version is brought up to date first (which
+        records the checksums of its files) when the store can be written.
         """
-        problems: list[str] = []
+        lost = self.lost_files()
+        if lost:
+            return [self._lost_message(lost)]
+        if not self.exists():
+            return []
+        self.upgrade()
         with self.connect(view=False) as con:
-            files = con.execute(
-                """SELECT f.ingest_id, f.path, f.n_rows FROM observation_files f
-                   JOIN ingests i USING (ingest_id) WHERE i.status = 'complete'"""
-            ).fetchall()
-            for ingest_id, rel, n_rows in files:
-                path = self.directory / rel
-                if not path.is_file():
-                    problems.append(f"ingest {ingest_id}: file {rel} is missing")
-                    continue
-                try:
-                    actual = con.execute("SELECT count(*) FROM read_parquet(?)", [str(path)]).fetchall()[0][0]
-                except duckdb.Error as exc:
-                    problems.append(f"ingest {ingest_id}: file {rel} is unreadable ({str(exc).splitlines()[0]})")
-                    continue
-                if actual != n_rows:
-                    problems.append(f"ingest {ingest_id}: file {rel} holds {actual} rows, manifest says {n_rows}")
+            problems = [str(d) for d in self._scrub(con, deep)]
             if problems:
                 return problems
             self._define_view(con, temporary=True)
@@ -619,3 +719,29 @@ def _alive(pid: int) -> bool:
     except PermissionError:
         return True
     return True
+
+
+def _file_problem(path: Path, n_rows: int, sha_recorded: str | None, size_recorded: int | None,
+                  deep: bool) -> str | None:
+    """What is wrong with one manifest file, or None. The words follow "file <path> "."""
+    if not path.is_file():
+        return "is missing"
+    try:
+        sha, size = file_digest(path)
+    except OSError as exc:
+        return f"is unreadable ({exc.strerror or exc})"
+    if size_recorded is not None and size != size_recorded:
+        return f"has {size:,} bytes, the manifest recorded {size_recorded:,} (truncated or overwritten)"
+    if sha_recorded is not None and sha != sha_recorded:
+        return "has changed since it was committed (its sha256 differs from the manifest's)"
+    try:
+        parquet = pq.ParquetFile(path)
+        actual = parquet.metadata.num_rows
+        if deep:  # decode every page: a damaged page fails here, not in the next export
+            for _ in parquet.iter_batches(batch_size=65_536):
+                pass
+    except (OSError, pa.ArrowException) as exc:
+        return f"is unreadable ({str(exc).splitlines()[0] if str(exc) else type(exc).__name__})"
+    if actual != n_rows:
+        return f"holds {actual:,} rows, the manifest says {n_rows:,}"
+    return None

@@ -10,7 +10,6 @@ from __future__ import annotations
 import codecs
 import csv
 import difflib
-import hashlib
 import io
 import json
 from collections.abc import Iterable, Iterator, Mapping, Sequence
@@ -26,6 +25,7 @@ import pandera.errors
 from harmonize import units
 from harmonize.contract import FieldSpec, pandera_schema
 from harmonize.errors import ConfigError, InputFileError, ReasonCode
+from harmonize.files import file_sha256  # noqa: F401  (re-exported: adapters hash their inputs with it)
 from harmonize.profile import Profile
 
 NA_TOKENS = frozenset({"", "na", "n/a", "nan", "null", "none", "-"})
@@ -68,14 +68,6 @@ class RawTable:
         """The rows at ``positions`` as JSON objects keyed by the provider's column names."""
         sub = self.frame.iloc[positions] if self.rows is None else self.frame.loc[positions]
         return [json.dumps(rec, ensure_ascii=False) for rec in sub.to_dict("records")]
-
-
-def file_sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def read_table(path: Path, profile: Profile, role: str) -> tuple[RawTable, list[tuple[int, str, int]]]:

@@ -47,7 +47,7 @@ def _register_optional() -> None:
     # Verbs of later capabilities register themselves when their module exists.
     import importlib
 
-    for name in ("audit_cmd", "export_cmd", "demo_cmd", "link_cmd", "twins_cmd"):
+    for name in ("audit_cmd", "export_cmd", "demo_cmd", "link_cmd", "twins_cmd", "repair_cmd"):
         try:
             module = importlib.import_module(f"harmonize.cli.{name}")
         except ModuleNotFoundError as exc:

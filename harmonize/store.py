@@ -17,6 +17,7 @@ the leftovers.
 
 from __future__ import annotations
 
+import json
 import os
 import re
 import shutil
@@ -34,11 +35,18 @@ import pyarrow.parquet as pq
 from harmonize import __version__, twins
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns
 from harmonize.errors import StoreBusyError, StoreError
-from harmonize.files import file_digest
+from harmonize.files import file_digest, fsync_dir, fsync_file
+from harmonize.locks import FileLock, is_free
 
 DB_NAME = "harmonized.duckdb"
 OBSERVATIONS_DIR = "observations"
 STAGING_DIR = "staging"
+#: In a staging folder: the store paths its files are about to be moved to (see Store.commit).
+JOURNAL_NAME = "moving.json"
+#: The OS lock writers take (flock) before they open the database to write.
+WRITE_LOCK = "write.lock"
+#: Beside each staging folder <name>: <name>.lock, held by the process working in it.
+LOCK_SUFFIX = ".lock"
 PARTITION_COLUMNS = ("source_kind", "season_year")
 #: Version of the store's tables (store_meta key ``store_version``); a store without the key
 #: is version 1. 2: the ``events_without_values`` table. 3: the sha256 and size of every
@@ -209,6 +217,7 @@ class Store:
         if lock_timeout_s is None:
             lock_timeout_s = float(os.environ.get("HARMONIZE_LOCK_TIMEOUT", "60"))
         self.lock_timeout_s = lock_timeout_s
+        self._staging_locks: dict[Path, FileLock] = {}
 
     # ------------------------------------------------------------------ connections
     def exists(self) -> bool:
@@ -232,7 +241,22 @@ class Store:
             if read_only:
                 raise StoreError(f"no store at {self.directory}; ingest a file first ('harmonize ingest')")
         self.directory.mkdir(parents=True, exist_ok=True)
-        con = self._open(read_only)
+        writer = None
+        if not read_only:
+            # writers queue on an OS lock first (released by the kernel if the holder dies)
+            writer = FileLock(self.directory / WRITE_LOCK)
+            if not writer.acquire(self.lock_timeout_s):
+                who = writer.holder()
+                raise StoreBusyError(
+                    f"the store is busy (another harmonize process{', ' + who if who else ''}, is writing); "
+                    f"waited {self.lock_timeout_s:g} s. Try again when it has finished."
+                )
+        try:
+            con = self._open(read_only)
+        except BaseException:
+            if writer is not None:
+                writer.release()
+            raise
         try:
             if read_only:
                 if view:
@@ -246,6 +270,8 @@ class Store:
             yield con
         finally:
             con.close()
+            if writer is not None:
+                writer.release()
 
     def _open(self, read_only: bool) -> duckdb.DuckDBPyConnection:
         deadline = time.monotonic() + self.lock_timeout_s
@@ -337,7 +363,8 @@ class Store:
             except duckdb.Error as exc:
                 raise StoreError(
                     f"the store's parquet files cannot be read ({str(exc).splitlines()[0]}); "
-                    "run 'harmonize status --check' to see which files are missing or damaged"
+                    "run 'harmonize status --check' to see which files are missing or damaged, and "
+                    "'harmonize repair' to take them out of the store"
                 ) from None
         else:
             source = "(SELECT 1 LIMIT 0)"
@@ -369,10 +396,20 @@ class Store:
         ).df()
 
     def staging_dir(self, ingest_id: str) -> Path:
-        """A private folder for one ingest's files, marked with this process's PID."""
-        path = self.directory / STAGING_DIR / ingest_id
-        path.mkdir(parents=True, exist_ok=False)
-        (path / ".pid").write_text(str(os.getpid()))
+        """A private folder for one ingest's files, locked (``<ingest_id>.lock`` beside it) while
+        this process works in it; :meth:`discard` removes both."""
+        staging = self.directory / STAGING_DIR
+        staging.mkdir(parents=True, exist_ok=True)
+        lock = FileLock(staging / f"{ingest_id}{LOCK_SUFFIX}")
+        if not lock.try_acquire():
+            raise StoreError(f"staging folder {ingest_id} is in use by another process")
+        path = staging / ingest_id
+        try:
+            path.mkdir(exist_ok=False)
+        except BaseException:
+            lock.release()
+            raise
+        self._staging_locks[path] = lock
         return path
 
     def commit(
@@ -400,16 +437,31 @@ class Store:
             self._remove_leftovers(con)
             previous = self._previous(con, record.source_id, [record.file_name], record.inputs_sha256)
             supersede = list(on_conflict(previous))
-            moved: list[tuple[str, int]] = []
-            for part in sorted((staged / "parts").rglob("*.parquet")):
+            moved: list[tuple[str, int, str, int]] = []
+            parts = sorted((staged / "parts").rglob("*.parquet"))
+            # the journal: where this ingest's files go, written before the first one moves, so
+            # that whoever cleans up after a kill deletes these files and no others
+            journal = [(Path(OBSERVATIONS_DIR) / p.relative_to(staged / "parts")).as_posix() for p in parts]
+            (staged / JOURNAL_NAME).write_text(json.dumps(journal))
+            fsync_file(staged / JOURNAL_NAME)
+            fsync_dir(staged)
+            folders: set[Path] = set()
+            for part in parts:
                 rel = Path(OBSERVATIONS_DIR) / part.relative_to(staged / "parts")
                 target = self.directory / rel
+                for folder in (target.parent, target.parent.parent, target.parent.parent.parent):
+                    if not folder.is_dir():
+                        folders.add(folder.parent)  # a new folder's own entry lives in its parent
                 target.parent.mkdir(parents=True, exist_ok=True)
                 n_rows = con.execute("SELECT count(*) FROM read_parquet(?)", [str(part)]).fetchall()[0][0]
                 sha, size = file_digest(part)
+                fsync_file(part)  # the bytes on the disk before the manifest names them
                 os.replace(part, target)
+                folders.add(target.parent)
                 moved.append((rel.as_posix(), int(n_rows), sha, size))
                 _crash_point("moving")
+            for folder in sorted(folders, key=lambda f: len(f.parts), reverse=True):
+                fsync_dir(folder)  # the renames durable before the commit that makes them live
             _crash_point("before_transaction")
             con.execute("BEGIN TRANSACTION")
             try:
@@ -473,33 +525,80 @@ class Store:
             return supersede
 
     def _remove_leftovers(self, con: duckdb.DuckDBPyConnection) -> None:
-        """Delete parquet files no manifest row names, and staging folders of dead processes.
+        """Delete what ingests that died left behind: their staging folders, and the files
+        their journals say they moved into place without committing them.
 
-        Runs under the write lock, so no other process is moving files into place.
+        Runs under the write lock, so no other process is moving files into place. A parquet
+        file that no manifest row and no journal names is never deleted here: it is not known
+        to be a leftover (``harmonize repair`` lists such files and sets them aside).
         """
-        known = {r[0] for r in con.execute("SELECT path FROM observation_files").fetchall()}
-        obs_dir = self.directory / OBSERVATIONS_DIR
-        if obs_dir.is_dir():
-            for part in obs_dir.rglob("*.parquet"):
-                if part.relative_to(self.directory).as_posix() not in known:
-                    part.unlink(missing_ok=True)
         staging = self.directory / STAGING_DIR
-        if staging.is_dir():
-            for folder in staging.iterdir():
-                pid_file = folder / ".pid"
-                try:
-                    pid = int(pid_file.read_text())
-                except (OSError, ValueError):
-                    pid = -1
-                if pid != os.getpid() and not _alive(pid):
-                    shutil.rmtree(folder, ignore_errors=True)
+        if not staging.is_dir():
+            return
+        known: set[str] | None = None
+        for folder in staging.iterdir():
+            if not folder.is_dir():
+                if folder.suffix == LOCK_SUFFIX and not (staging / folder.stem).exists() and is_free(folder):
+                    folder.unlink(missing_ok=True)  # a lock whose folder is gone
+                continue
+            lock = self._abandoned(folder)
+            if lock is None:
+                continue
+            try:
+                planned = json.loads((folder / JOURNAL_NAME).read_text())
+            except (OSError, ValueError):
+                planned = []
+            if planned:
+                if known is None:
+                    known = {r[0] for r in con.execute("SELECT path FROM observation_files").fetchall()}
+                for rel in planned:
+                    if isinstance(rel, str) and rel not in known and _inside(self.directory, rel):
+                        (self.directory / rel).unlink(missing_ok=True)
+            shutil.rmtree(folder, ignore_errors=True)
+            lock.path.unlink(missing_ok=True)
+            lock.release()
+
+    def _abandoned(self, folder: Path) -> FileLock | None:
+        """The lock of a staging folder whose process is gone, taken; None while it works.
+
+        The lock file is made before the folder, so a folder without one was left by a
+        harmonize older than the locks (it marked its folders with a ``.pid`` file).
+        """
+        lock = FileLock(folder.parent / f"{folder.name}{LOCK_SUFFIX}")
+        if lock.path.exists():
+            return lock if lock.try_acquire() else None
+        try:
+            pid = int((folder / ".pid").read_text())
+        except (OSError, ValueError):
+            pid = -1
+        if pid != os.getpid() and not _alive(pid):
+            return lock if lock.try_acquire() else None
+        return None
+
+    def unlisted_files(self) -> list[str]:
+        """Parquet files under ``observations/`` that no manifest row names (paths relative to the store)."""
+        obs_dir = self.directory / OBSERVATIONS_DIR
+        if not obs_dir.is_dir():
+            return []
+        on_disk = {p.relative_to(self.directory).as_posix() for p in obs_dir.rglob("*.parquet")}
+        if not self.exists():
+            return sorted(on_disk)
+        with self.connect(view=False) as con:
+            known = {r[0] for r in con.execute("SELECT path FROM observation_files").fetchall()}
+        return sorted(on_disk - known)
 
     def discard(self, staged: Path) -> None:
+        """Remove a staging folder of this process and release its lock."""
         shutil.rmtree(staged, ignore_errors=True)
+        lock = self._staging_locks.pop(staged, None)
+        if lock is not None:
+            lock.path.unlink(missing_ok=True)  # still ours while held: nobody else removes it
+            lock.release()
 
     # ------------------------------------------------------------------ reading
     def ingests(self, include_superseded: bool = True) -> pd.DataFrame:
-        with self.connect() as con:
+        """The ingests table (``include_superseded=False``: complete ingests only)."""
+        with self.connect(view=False) as con:
             where = "" if include_superseded else "WHERE status = 'complete'"
             return con.execute(f"SELECT * FROM ingests {where} ORDER BY started_at").df()
 
@@ -601,9 +700,11 @@ class Store:
             return self._scrub(con, deep)
 
     def _scrub(self, con: duckdb.DuckDBPyConnection, deep: bool = True) -> list[Damage]:
+        columns = {r[0] for r in con.execute("DESCRIBE observation_files").fetchall()}
+        digests = "f.sha256, f.size_bytes" if "sha256" in columns else "NULL, NULL"  # store version < 3
         files = con.execute(
-            """SELECT f.ingest_id, f.path, f.n_rows, f.sha256, f.size_bytes FROM observation_files f
-               JOIN ingests i USING (ingest_id) WHERE i.status = 'complete' ORDER BY f.path, f.ingest_id"""
+            f"""SELECT f.ingest_id, f.path, f.n_rows, {digests} FROM observation_files f
+                JOIN ingests i USING (ingest_id) WHERE i.status = 'complete' ORDER BY f.path, f.ingest_id"""
         ).fetchall()
         found: list[Damage] = []
         for ingest_id, rel, n_rows, sha_recorded, size_recorded in files:
@@ -707,6 +808,12 @@ def _crash_point(name: str) -> None:
     """Test hook: HARMONIZE_CRASH_AT=<name> kills the process here (crash-safety tests)."""
     if os.environ.get("HARMONIZE_CRASH_AT") == name:
         os.kill(os.getpid(), 9)
+
+
+def _inside(root: Path, rel: str) -> bool:
+    """Whether a relative path from a journal stays inside the store folder."""
+    target = (root / rel).resolve()
+    return target.is_relative_to(root.resolve()) and target.suffix == ".parquet"
 
 
 def _alive(pid: int) -> bool:

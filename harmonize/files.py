@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import hashlib
 import os
+import re
+import uuid
 from pathlib import Path
 
 #: Bytes read at a time when hashing.
@@ -56,3 +58,17 @@ def fsync_dir(path: str | Path) -> None:
         pass  # some file systems refuse fsync on folders; the file itself was synced
     finally:
         os.close(fd)
+
+
+_PARTIAL = re.compile(r"^\.(?P<name>.+)\.[0-9a-f]{12}\.partial(?:\.[^.]+)?(?P<rest>-metadata\.json)?$")
+
+
+def partial_path(path: Path) -> Path:
+    """A fresh temporary name beside ``path`` for writing it all or nothing: ``.<name>.<token>.partial<suffix>``."""
+    return path.with_name(f".{path.name}.{uuid.uuid4().hex[:12]}.partial{path.suffix}")
+
+
+def public_name(path: Path) -> str:
+    """The name a file written under :func:`partial_path` (or its sidecar) will have once complete."""
+    m = _PARTIAL.match(path.name)
+    return m.group("name") + (m.group("rest") or "") if m else path.name

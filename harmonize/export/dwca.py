@@ -43,6 +43,7 @@ from xml.etree import ElementTree as ET
 import defusedxml.ElementTree as SafeET
 import pandas as pd
 
+from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import CAUTION, ExportResult, provenance
 from harmonize.export.safe_csv import neutralise_sql
 from harmonize.export.selection import (
@@ -245,6 +246,7 @@ def _emof_sql() -> str:
         )"""
 
 
+@all_or_nothing(SUFFIXES)
 def export_dwca(study: Study, out: str | Path, filters: ExportFilters | None = None,
                 generalise_deg: float = 0.1) -> ExportResult:
     """Write a Darwin Core Archive (zip) to ``out``; see the module docstring for what it holds.

@@ -23,6 +23,7 @@ import pyogrio
 import shapely
 
 from harmonize.confidentiality import SUPPRESSED_FLAG
+from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import ExportResult, provenance
 from harmonize.export.selection import (
     BASE_VIEW,
@@ -98,6 +99,7 @@ def cell_frame(study: Study, cells: pd.DataFrame) -> gpd.GeoDataFrame:
     return gpd.GeoDataFrame(out, geometry=polygons, crs=CRS)
 
 
+@all_or_nothing(SUFFIXES)
 def export_gpkg(study: Study, out: str | Path, filters: ExportFilters | None = None) -> ExportResult:
     """Write the GeoPackage ``out`` (overwritten if it exists) with its provenance table."""
     path = prepare_target(out, SUFFIXES)

@@ -24,6 +24,7 @@ from pathlib import Path
 import pandas as pd
 
 from harmonize.confidentiality import SUPPRESSED_FLAG
+from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import ExportResult, kv_metadata_sql, provenance, write_sidecar
 from harmonize.export.safe_csv import copy_safe_csv
 from harmonize.export.selection import (
@@ -76,6 +77,7 @@ def read_grid(study: Study, filters: ExportFilters | None = None) -> pd.DataFram
         return con.sql(grid_query()).to_arrow_table().to_pandas()
 
 
+@all_or_nothing(SUFFIXES)
 def export_grid(study: Study, out: str | Path, filters: ExportFilters | None = None) -> ExportResult:
     """Write the grid table to ``out`` (parquet or CSV by suffix) with its provenance."""
     path = prepare_target(out, SUFFIXES)

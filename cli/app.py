@@ -3,15 +3,18 @@
 from __future__ import annotations
 
 import os
+import signal
 import sys
 from pathlib import Path
+from typing import NoReturn
 
 import typer
 from harmonize.cli import ingest_cmds, init_cmd, store_cmds
 from harmonize.cli.console import err_console
 
-from harmonize import __version__
-from harmonize.errors import HarmonizeError
+from harmonize import __version__, interrupts
+from harmonize.adapters.reading import one_line
+from harmonize.errors import HarmonizeError, failure_line
 
 app = typer.Typer(
     name="harmonize",
@@ -61,21 +64,40 @@ _register_optional()
 
 
 def main() -> None:
-    """Console-script entry point: one-line errors, exit 2 for usage or configuration errors."""
+    """Console-script entry point: one-line errors, exit 2 for usage or configuration errors.
+
+    Exit 3 with one line for a full disk or an internal error; 130 / 143 for SIGINT / SIGTERM.
+    """
     try:
-        app()
+        with interrupts.installed():
+            app()
+    except interrupts.Interrupted as exc:
+        _interrupted(exc.signum, exc.committed)
     except HarmonizeError as exc:
-        err_console.print(f"error: {exc}", markup=False, highlight=False, soft_wrap=True)
-        sys.exit(2)
+        if interrupts.received():
+            _interrupted(interrupts.received())
+        _fail(f"error: {exc}", 2)
     except Exception as exc:  # noqa: BLE001 - last resort: one line, never a bare traceback
+        if interrupts.received():  # a DuckDB query stopped by the interrupt ("Query interrupted")
+            _interrupted(interrupts.received())
         if os.environ.get("HARMONIZE_DEBUG"):
             raise
-        err_console.print(
-            f"internal error: {type(exc).__name__}: {exc}. The store is unchanged by the failed step. "
-            "Please report this; set HARMONIZE_DEBUG=1 to see the traceback.",
-            markup=False, highlight=False, soft_wrap=True,
-        )
-        sys.exit(3)
+        known = failure_line(exc)
+        if known is not None:
+            _fail(known[0], known[1])
+        _fail(f"internal error: {type(exc).__name__}: {exc}. The store is unchanged by the failed step. "
+              "Please report this; set HARMONIZE_DEBUG=1 to see the traceback.", 3)
     except KeyboardInterrupt:
-        err_console.print("interrupted; the store is unchanged by the unfinished step", markup=False)
-        sys.exit(130)
+        _interrupted(int(signal.SIGINT))
+
+
+def _fail(message: str, code: int) -> NoReturn:
+    err_console.print(one_line(message), markup=False, highlight=False, soft_wrap=True)
+    sys.exit(code)
+
+
+def _interrupted(signum: int, committed: bool = False) -> NoReturn:
+    if committed:
+        _fail("interrupted after the store was updated: the last step completed; "
+              "run 'harmonize status' to see it", 128 + signum)
+    _fail("interrupted; the store is unchanged", 128 + signum)

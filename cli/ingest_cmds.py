@@ -9,6 +9,7 @@ from harmonize.cli.console import console, fmt_int, study_from
 from rich.progress import BarColumn, Progress, TextColumn, TimeElapsedColumn
 from rich.table import Table
 
+from harmonize.adapters.reading import one_line
 from harmonize.ingest import IngestResult, assign_inputs, prepare, run
 
 FIRST_PROBLEMS = 10
@@ -97,14 +98,14 @@ def _print_without_values(result: IngestResult) -> None:
 def _print_result(result: IngestResult, show: int) -> None:
     if result.status == "unchanged":
         for note in result.notes:
-            console.print(note)
+            console.print(one_line(note), markup=False)
         return
     verb = {"complete": "ingested", "checked": "checked"}[result.status]
     table = Table(title=f"{result.source_id} ({result.source_kind}) {verb}", title_justify="left")
     for col in ("file", "rows read", "accepted", "quarantined"):
         table.add_column(col, justify="left" if col == "file" else "right")
     for f in result.files:
-        table.add_row(f.path.name, fmt_int(f.rows_read), fmt_int(f.rows_accepted), fmt_int(f.rows_quarantined))
+        table.add_row(one_line(f.path.name), fmt_int(f.rows_read), fmt_int(f.rows_accepted), fmt_int(f.rows_quarantined))
     console.print(table)
     written = "would be written" if result.status == "checked" else "written"
     console.print(f"observation rows {written}: {fmt_int(result.records_written)} "
@@ -115,12 +116,13 @@ def _print_result(result: IngestResult, show: int) -> None:
     if result.superseded:
         console.print(f"superseded earlier ingest(s): {', '.join(result.superseded)}")
     for note in result.notes:
-        console.print(note)
+        console.print(one_line(note), markup=False)
     if result.rows_quarantined:
         reasons = ", ".join(f"{code} {n}" for code, n in result.reasons().items())
         console.print(f"quarantined by reason: {reasons}")
         first = result.quarantine.head(show)
         for row in first.itertuples():
-            console.print(f"  {row.source_file} row {row.source_row}: [{row.reason_code}] {row.message}", markup=False)
+            console.print(one_line(f"  {row.source_file} row {row.source_row}: [{row.reason_code}] {row.message}"),
+                          markup=False)
         if len(result.quarantine) > show:
             console.print(f"  ... and {len(result.quarantine) - show} more; see 'harmonize quarantine'")

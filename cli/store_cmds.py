@@ -41,7 +41,7 @@ def status(
     for col in ("ingest", "source", "kind", "file", "status", "read", "accepted", "quarantined", "rows written"):
         table.add_column(col, justify="right" if col in ("read", "accepted", "quarantined", "rows written") else "left")
     for r in ingests.itertuples():
-        table.add_row(r.ingest_id, r.source_id, r.source_kind, r.file_name, r.status, fmt_int(r.rows_read),
+        table.add_row(r.ingest_id, r.source_id, r.source_kind, one_line(r.file_name), r.status, fmt_int(r.rows_read),
                       fmt_int(r.rows_accepted), fmt_int(r.rows_quarantined), fmt_int(r.records_written))
     console.print(table)
     empty = store.events_without_values()
@@ -69,7 +69,7 @@ def status(
         for col in ("source", "file", "reason", "values"):
             t3.add_column(col, justify="right" if col == "values" else "left")
         for r in masked.itertuples():
-            t3.add_row(r.source_id, r.source_file, r.reason_code, fmt_int(int(r.n_values)))
+            t3.add_row(r.source_id, one_line(r.source_file), r.reason_code, fmt_int(int(r.n_values)))
         console.print(t3)
     if check:
         console.print("integrity check passed: manifest, parquet files and row accounting agree")
@@ -99,6 +99,7 @@ def quarantine(
     counts = rows["reason_code"].value_counts()
     console.print("quarantined rows by reason: " + ", ".join(f"{k} {fmt_int(v)}" for k, v in counts.items()))
     for r in rows.head(limit).itertuples():
-        console.print(f"{r.source_id}  {r.source_file} row {r.source_row}: [{r.reason_code}] {r.message}", markup=False)
+        console.print(one_line(f"{r.source_id}  {r.source_file} row {r.source_row}: [{r.reason_code}] {r.message}"),
+                      markup=False)
     if len(rows) > limit:
         console.print(f"... and {fmt_int(len(rows) - limit)} more; use --csv OUT for all of them")

@@ -32,7 +32,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from harmonize import __version__, twins
+from harmonize import __version__, interrupts, twins
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns
 from harmonize.errors import StoreBusyError, StoreError
 from harmonize.files import file_digest, fsync_dir, fsync_file
@@ -257,6 +257,7 @@ class Store:
             if writer is not None:
                 writer.release()
             raise
+        interrupts.track(con)
         try:
             if read_only:
                 if view:
@@ -269,6 +270,7 @@ class Store:
                     self._define_view(con, temporary=False)
             yield con
         finally:
+            interrupts.untrack(con)
             con.close()
             if writer is not None:
                 writer.release()
@@ -463,66 +465,75 @@ class Store:
             for folder in sorted(folders, key=lambda f: len(f.parts), reverse=True):
                 fsync_dir(folder)  # the renames durable before the commit that makes them live
             _crash_point("before_transaction")
-            con.execute("BEGIN TRANSACTION")
-            try:
-                if supersede:
-                    con.execute(
-                        "UPDATE ingests SET status = 'superseded', superseded_by = ? WHERE ingest_id = ANY(?::VARCHAR[])",
-                        [record.ingest_id, list(supersede)],
-                    )
+            with interrupts.deferred():  # an interrupt waits for the commit or the rollback
+                return self._record(con, record, files, moved, staged, quarantine, supersede, masked,
+                                    events_without_values)
+
+    def _record(self, con: duckdb.DuckDBPyConnection, record: IngestRecord, files: Sequence[dict[str, object]],
+                moved: list[tuple[str, int, str, int]], staged: Path, quarantine: pd.DataFrame,
+                supersede: list[str], masked: pd.DataFrame | None,
+                events_without_values: pa.Table | None) -> list[str]:
+        """The commit's one transaction: the ingest, its files, quarantine and events, the view."""
+        con.execute("BEGIN TRANSACTION")
+        try:
+            if supersede:
                 con.execute(
-                    """INSERT INTO ingests (ingest_id, source_id, source_kind, provider_type, file_name,
-                       file_sha256, inputs_sha256, config_sha256, started_at, finished_at, status,
-                       rows_read, rows_accepted, rows_quarantined, records_written,
-                       records_zero_filled, superseded_by, tool_version, profile_file)
-                       VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULL, ?, ?)""",
-                    [record.ingest_id, record.source_id, record.source_kind, record.provider_type,
-                     record.file_name, record.file_sha256, record.inputs_sha256, record.config_sha256,
-                     record.started_at, record.finished_at, record.status, record.rows_read,
-                     record.rows_accepted, record.rows_quarantined, record.records_written,
-                     record.records_zero_filled, __version__, record.profile_file],
+                    "UPDATE ingests SET status = 'superseded', superseded_by = ? WHERE ingest_id = ANY(?::VARCHAR[])",
+                    [record.ingest_id, list(supersede)],
                 )
-                for f in files:
-                    con.execute(
-                        "INSERT INTO ingest_files VALUES (?, ?, ?, ?, ?, ?, ?)",
-                        [record.ingest_id, f["role"], f["file_name"], f["file_sha256"],
-                         f["rows_read"], f["rows_accepted"], f["rows_quarantined"]],
-                    )
-                for rel, n_rows, sha, size in moved:
-                    con.execute("INSERT INTO observation_files (ingest_id, path, n_rows, sha256, size_bytes) "
-                                "VALUES (?, ?, ?, ?, ?)", [record.ingest_id, rel, n_rows, sha, size])
-                if len(quarantine):
-                    q = quarantine[["source_file", "source_row", "reason_code", "message", "raw"]].copy()
-                    q.insert(0, "ingest_id", record.ingest_id)
-                    con.register("_incoming_quarantine", q)
-                    con.execute("INSERT INTO quarantine SELECT * FROM _incoming_quarantine")
-                    con.unregister("_incoming_quarantine")
-                if masked is not None and len(masked):
-                    m = masked[["source_file", "reason_code", "n_values", "message"]].copy()
-                    m.insert(0, "ingest_id", record.ingest_id)
-                    con.register("_incoming_masked", m)
-                    con.execute("INSERT INTO quarantine_summary SELECT * FROM _incoming_masked")
-                    con.unregister("_incoming_masked")
-                if events_without_values is not None and events_without_values.num_rows:
-                    con.register("_incoming_events", events_without_values)
-                    names = ", ".join(f'"{c}"' for c in EVENTS_WITHOUT_VALUES_COLUMNS[1:])
-                    con.execute(f"INSERT INTO events_without_values (ingest_id, {names}) "
-                                f"SELECT ?, {names} FROM _incoming_events", [record.ingest_id])
-                    con.unregister("_incoming_events")
-                    _crash_point("events_without_values")
-                if record.duplicates is not None:
-                    twins.record_settings(con, record.ingest_id, record.source_id, record.duplicates)
-                self._define_view(con, temporary=False)
-                # twins span sources and ingests: recomputed over the whole store, in this transaction
-                twins.refresh(con)
-                _crash_point("before_commit")
-                con.execute("COMMIT")
-                _crash_point("after_commit")
-            except BaseException:
-                con.execute("ROLLBACK")
-                raise
-            shutil.rmtree(staged, ignore_errors=True)
-            return supersede
+            con.execute(
+                """INSERT INTO ingests (ingest_id, source_id, source_kind, provider_type, file_name,
+                   file_sha256, inputs_sha256, config_sha256, started_at, finished_at, status,
+                   rows_read, rows_accepted, rows_quarantined, records_written,
+                   records_zero_filled, superseded_by, tool_version, profile_file)
+                   VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULL, ?, ?)""",
+                [record.ingest_id, record.source_id, record.source_kind, record.provider_type,
+                 record.file_name, record.file_sha256, record.inputs_sha256, record.config_sha256,
+                 record.started_at, record.finished_at, record.status, record.rows_read,
+                 record.rows_accepted, record.rows_quarantined, record.records_written,
+                 record.records_zero_filled, __version__, record.profile_file],
+            )
+            for f in files:
+                con.execute(
+                    "INSERT INTO ingest_files VALUES (?, ?, ?, ?, ?, ?, ?)",
+                    [record.ingest_id, f["role"], f["file_name"], f["file_sha256"],
+                     f["rows_read"], f["rows_accepted"], f["rows_quarantined"]],
+                )
+            for rel, n_rows, sha, size in moved:
+                con.execute("INSERT INTO observation_files (ingest_id, path, n_rows, sha256, size_bytes) "
+                            "VALUES (?, ?, ?, ?, ?)", [record.ingest_id, rel, n_rows, sha, size])
+            if len(quarantine):
+                q = quarantine[["source_file", "source_row", "reason_code", "message", "raw"]].copy()
+                q.insert(0, "ingest_id", record.ingest_id)
+                con.register("_incoming_quarantine", q)
+                con.execute("INSERT INTO quarantine SELECT * FROM _incoming_quarantine")
+                con.unregister("_incoming_quarantine")
+            if masked is not None and len(masked):
+                m = masked[["source_file", "reason_code", "n_values", "message"]].copy()
+                m.insert(0, "ingest_id", record.ingest_id)
+                con.register("_incoming_masked", m)
+                con.execute("INSERT INTO quarantine_summary SELECT * FROM _incoming_masked")
+                con.unregister("_incoming_masked")
+            if events_without_values is not None and events_without_values.num_rows:
+                con.register("_incoming_events", events_without_values)
+                names = ", ".join(f'"{c}"' for c in EVENTS_WITHOUT_VALUES_COLUMNS[1:])
+                con.execute(f"INSERT INTO events_without_values (ingest_id, {names}) "
+                            f"SELECT ?, {names} FROM _incoming_events", [record.ingest_id])
+                con.unregister("_incoming_events")
+                _crash_point("events_without_values")
+            if record.duplicates is not None:
+                twins.record_settings(con, record.ingest_id, record.source_id, record.duplicates)
+            self._define_view(con, temporary=False)
+            # twins span sources and ingests: recomputed over the whole store, in this transaction
+            twins.refresh(con)
+            _crash_point("before_commit")
+            con.execute("COMMIT")
+            _crash_point("after_commit")
+        except BaseException:
+            _rollback(con)
+            raise
+        shutil.rmtree(staged, ignore_errors=True)
+        return supersede
 
     def _remove_leftovers(self, con: duckdb.DuckDBPyConnection) -> None:
         """Delete what ingests that died left behind: their staging folders, and the files
@@ -802,6 +813,15 @@ class Store:
         ).fetchall()
         return [f"ingest {i}: {name} has {n} data rows but only {k} are accepted or quarantined"
                 for i, name, n, k in rows]
+
+
+def _rollback(con: duckdb.DuckDBPyConnection) -> None:
+    """Roll back; when the failure was the COMMIT itself there is nothing to roll back, and the
+    original error (not "no transaction is active") is the one to report."""
+    try:
+        con.execute("ROLLBACK")
+    except duckdb.Error:
+        pass
 
 
 def _crash_point(name: str) -> None:

@@ -243,7 +243,8 @@ class LineReader:
             raise InputFileError(self.path, f"the header row cannot be read ({exc})") from None
         header = [h.strip().lstrip("\ufeff") for h in header]
         _check_header_names(self.path, header)
-        dupes = sorted({h for h in header if header.count(h) > 1 and h})
+        seen: set[str] = set()  # one pass: header.count(h) per name was quadratic in the width
+        dupes = sorted({h for h in header if h and (h in seen or seen.add(h))})
         if dupes:
             raise InputFileError(self.path, f"column name(s) {dupes} appear more than once in the header")
         return header
@@ -388,6 +389,10 @@ def refuse_long_lines(path: Path, limit: int = MAX_LINE_BYTES, block_size: int =
     )
 
 
+#: Column names an error message lists at most.
+MAX_LISTED_COLUMNS = 40
+
+
 def _check_header_names(path: Path, header: Sequence[str]) -> None:
     """Refuse a header whose column names span lines (an unclosed quote swallowed the rows)."""
     broken = [h for h in header if "\n" in h or "\r" in h]
@@ -506,12 +511,16 @@ def resolve_columns(
             col = mapping[spec.name]
             actual = col if col in columns else by_fold.get(col.casefold())
             if actual is None:
-                close = difflib.get_close_matches(col, columns, n=3)
+                # closest names among a bounded number of columns (a hostile header has millions)
+                close = difflib.get_close_matches(col, columns[:MAX_LISTED_COLUMNS * 500], n=3)
                 hint = f" (closest: {', '.join(close)})" if close else ""
+                listed = ", ".join(columns[:MAX_LISTED_COLUMNS])
+                if len(columns) > MAX_LISTED_COLUMNS:
+                    listed += f", ... ({len(columns):,} columns in all)"
                 raise InputFileError(
                     table.path,
                     f"column '{col}', which {profile.path.name} {section} maps to field "
-                    f"'{spec.name}', is not in the file{hint}; columns are: {', '.join(columns)}",
+                    f"'{spec.name}', is not in the file{hint}; columns are: {one_line(listed)}",
                 )
             found[spec.name] = actual
         elif spec.name.casefold() in by_fold:

@@ -49,6 +49,7 @@ def ingest(
     events: Path | None = typer.Option(None, "--events", help="Events file of a two-table source."),
     records: Path | None = typer.Option(None, "--records", help="Records file of a two-table source."),
     replace: bool = typer.Option(False, "--replace", help="Supersede an earlier ingest of the same file."),
+    dry_run: bool = typer.Option(False, "--dry-run", help="Do everything but write; say what --replace would supersede."),
     show: int = typer.Option(FIRST_PROBLEMS, "--show", help="How many problems to list."),
     strict: bool = typer.Option(False, "--strict", help="Exit 1 when rows went to quarantine."),
     engine: str | None = typer.Option(None, "--engine", help="duckdb (default) or dask: where ping tracks "
@@ -65,10 +66,15 @@ def ingest(
     any_bad = False
     for inputs in assign_inputs(adapter, prof, files or [], events, records):
         result = _with_progress(lambda cb, i=inputs: run(study, profile, i, write=True, replace=replace, progress=cb,
-                                                         engine=engine, scheduler=scheduler))
+                                                         engine=engine, scheduler=scheduler, dry_run=dry_run,
+                                                         notice=_notice))
         _print_result(result, show)
         any_bad |= result.rows_quarantined > 0
     raise typer.Exit(1 if (strict and any_bad) else 0)
+
+
+def _notice(message: str) -> None:
+    console.print(one_line(message), markup=False)
 
 
 def _with_progress(job):  # type: ignore[no-untyped-def]

@@ -25,7 +25,7 @@ import time
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
-from pathlib import Path
+from pathlib import Path, PurePosixPath
 
 import duckdb
 import pandas as pd
@@ -50,7 +50,8 @@ LOCK_SUFFIX = ".lock"
 PARTITION_COLUMNS = ("source_kind", "season_year")
 #: Version of the store's tables (store_meta key ``store_version``); a store without the key
 #: is version 1. 2: the ``events_without_values`` table. 3: the sha256 and size of every
-#: manifest file (``observation_files.sha256``, ``size_bytes``) and ``ingests.damage_reason``.
+#: manifest file (``observation_files.sha256``, ``size_bytes``), ``ingests.damage_reason`` and
+#: ``ingests.file_path`` (the main input's path relative to the study: part of an ingest's identity).
 #: A writer brings an older store up to date (tables and columns are created when missing; the
 #: checksums of files an older store lists are taken when it is brought up to date).
 STORE_VERSION = 3
@@ -86,7 +87,8 @@ CREATE TABLE IF NOT EXISTS ingests (
     superseded_by VARCHAR,
     tool_version VARCHAR,
     profile_file VARCHAR,
-    damage_reason VARCHAR
+    damage_reason VARCHAR,
+    file_path VARCHAR
 );
 CREATE TABLE IF NOT EXISTS ingest_files (
     ingest_id VARCHAR NOT NULL,
@@ -153,6 +155,7 @@ _ADDED_COLUMNS_SQL = """
 ALTER TABLE observation_files ADD COLUMN IF NOT EXISTS sha256 VARCHAR;
 ALTER TABLE observation_files ADD COLUMN IF NOT EXISTS size_bytes BIGINT;
 ALTER TABLE ingests ADD COLUMN IF NOT EXISTS damage_reason VARCHAR;
+ALTER TABLE ingests ADD COLUMN IF NOT EXISTS file_path VARCHAR;
 """
 
 
@@ -179,6 +182,8 @@ class IngestRecord:
     status: str = "complete"
     #: opportunistic sources: the twin windows of the profile (harmonize.twins)
     duplicates: twins.TwinSettings | None = None
+    #: the main input's path relative to the study folder (as given when outside it)
+    file_path: str | None = None
 
 
 @dataclass(frozen=True)
@@ -380,21 +385,31 @@ class Store:
         con.execute(f"CREATE OR REPLACE {kind} observations AS {twins.flagged_view_sql(con, 'observations_base')}")
 
     # ------------------------------------------------------------------ ingest support
-    def previous_ingests(self, source_id: str, file_names: Sequence[str], inputs_sha256: str) -> pd.DataFrame:
-        """Complete ingests of this source that read the same file name(s) or content."""
+    def previous_ingests(self, source_id: str, file_path: str, inputs_sha256: str) -> pd.DataFrame:
+        """Complete ingests of this source that read the same file (path relative to the study) or content.
+
+        An ingest is identified by its source, its main input's path relative to the study
+        and the content of its inputs: another file that shares only the base name
+        (``2019/hauls.csv`` after ``2020/hauls.csv``) is a new ingest. Ingests recorded before
+        paths were kept (store version < 3) are matched by base name.
+        """
         if not self.exists():
-            return pd.DataFrame(columns=["ingest_id", "inputs_sha256", "config_sha256", "file_name"])
-        with self.connect(read_only=True) as con:
-            return self._previous(con, source_id, file_names, inputs_sha256)
+            return pd.DataFrame(columns=["ingest_id", "inputs_sha256", "config_sha256", "file_name", "file_path",
+                                         "started_at"])
+        with self.connect(read_only=True, view=False) as con:
+            return self._previous(con, source_id, file_path, inputs_sha256)
 
     @staticmethod
-    def _previous(con: duckdb.DuckDBPyConnection, source_id: str, file_names: Sequence[str], inputs_sha256: str) -> pd.DataFrame:
+    def _previous(con: duckdb.DuckDBPyConnection, source_id: str, file_path: str, inputs_sha256: str) -> pd.DataFrame:
+        columns = {r[0] for r in con.execute("DESCRIBE ingests").fetchall()}
+        path_col = "file_path" if "file_path" in columns else "CAST(NULL AS VARCHAR)"
         return con.execute(
-            """SELECT ingest_id, inputs_sha256, config_sha256, file_name FROM ingests
-               WHERE status = 'complete' AND source_id = ?
-                 AND (inputs_sha256 = ? OR file_name = ANY(?::VARCHAR[]))
-               ORDER BY started_at""",
-            [source_id, inputs_sha256, list(file_names)],
+            f"""SELECT ingest_id, inputs_sha256, config_sha256, file_name, {path_col} AS file_path, started_at
+                FROM ingests
+                WHERE status = 'complete' AND source_id = ?
+                  AND (inputs_sha256 = ? OR coalesce({path_col} = ?, file_name = ?))
+                ORDER BY started_at""",
+            [source_id, inputs_sha256, file_path, PurePosixPath(file_path).name],
         ).df()
 
     def staging_dir(self, ingest_id: str) -> Path:
@@ -437,7 +452,8 @@ class Store:
         """
         with self.connect(read_only=False) as con:
             self._remove_leftovers(con)
-            previous = self._previous(con, record.source_id, [record.file_name], record.inputs_sha256)
+            previous = self._previous(con, record.source_id, record.file_path or record.file_name,
+                                      record.inputs_sha256)
             supersede = list(on_conflict(previous))
             moved: list[tuple[str, int, str, int]] = []
             parts = sorted((staged / "parts").rglob("*.parquet"))
@@ -485,13 +501,14 @@ class Store:
                 """INSERT INTO ingests (ingest_id, source_id, source_kind, provider_type, file_name,
                    file_sha256, inputs_sha256, config_sha256, started_at, finished_at, status,
                    rows_read, rows_accepted, rows_quarantined, records_written,
-                   records_zero_filled, superseded_by, tool_version, profile_file)
-                   VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULL, ?, ?)""",
+                   records_zero_filled, superseded_by, tool_version, profile_file, file_path)
+                   VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULL, ?, ?, ?)""",
                 [record.ingest_id, record.source_id, record.source_kind, record.provider_type,
                  record.file_name, record.file_sha256, record.inputs_sha256, record.config_sha256,
                  record.started_at, record.finished_at, record.status, record.rows_read,
                  record.rows_accepted, record.rows_quarantined, record.records_written,
-                 record.records_zero_filled, __version__, record.profile_file],
+                 record.records_zero_filled, __version__, record.profile_file,
+                 record.file_path or record.file_name],
             )
             for f in files:
                 con.execute(

@@ -94,3 +94,19 @@ def test_numbers_outside_physical_bounds_are_quarantined(study_dir: Path) -> Non
         assert events.loc[row, "reason_code"] == "out_of_range", events.loc[row, "message"]
         assert needle in events.loc[row, "message"], events.loc[row, "message"]
     assert np.isfinite(result.rows_read)
+
+
+def test_dates_after_2262_or_in_year_1_are_bad_times_not_internal_errors(study_dir: Path) -> None:
+    # pandas nanosecond times end on 2262-04-11: a haul in 2300 once ended in OutOfBoundsDatetime.
+    hauls = (study_dir / "hauls_messy.csv").read_text()
+    hauls = hauls.replace("2020-06-10T08:00:00,2020-06-10T08:30:00", "2300-06-10T08:00:00,2300-06-10T08:30:00")
+    hauls = hauls.replace("2020-06-11 09:00,2020-06-11 09:30", "0001-06-11 09:00,0001-06-11 09:30")
+    bad = study_dir / "hauls_dates.csv"
+    bad.write_text(hauls)
+    result = run(load_study(study_dir), "trawl_agency", {"events": bad, "records": study_dir / "catch_messy.csv"},
+                 write=False)
+    q = result.quarantine
+    events = q[q["source_file"] == "hauls_dates.csv"].set_index("source_row")
+    assert events.loc[1, "reason_code"] == "bad_time" and "lies in the future" in events.loc[1, "message"]
+    assert events.loc[2, "reason_code"] == "bad_time"
+    assert result.rows_read == result.rows_accepted + result.rows_quarantined

@@ -727,6 +727,9 @@ def parse_times(text: pd.Series, profile: Profile) -> tuple[pd.Series, np.ndarra
     bad = present & out.isna().to_numpy()
     now = datetime.now(UTC).replace(tzinfo=None) + timedelta(days=1)
     future = (out > pd.Timestamp(now)).fillna(False).to_numpy()
+    # past 2262-04-11 a time does not fit the nanosecond times that later arithmetic uses
+    # (OutOfBoundsDatetime): such a row is rejected as in the future, and its time masked
+    out = out.mask(future)
     return out, bad, future
 
 

@@ -110,3 +110,23 @@ def test_dates_after_2262_or_in_year_1_are_bad_times_not_internal_errors(study_d
     assert events.loc[1, "reason_code"] == "bad_time" and "lies in the future" in events.loc[1, "message"]
     assert events.loc[2, "reason_code"] == "bad_time"
     assert result.rows_read == result.rows_accepted + result.rows_quarantined
+
+
+@pytest.mark.parametrize("text", ["01-01-2021", "2021-01-01", "01/01/2021", "1.1.2021"])
+def test_a_date_alone_is_local_whatever_its_separators(text: str) -> None:
+    # With timezone = "Pacific/Auckland", "01-01-2021" was read as UTC (its "-2021" taken for an
+    # offset) while "2021-01-01" was local. One rule: a date alone carries no offset.
+    import types
+    from datetime import UTC, datetime
+    from zoneinfo import ZoneInfo
+
+    import pandas as pd
+
+    from harmonize.adapters.reading import parse_times
+
+    profile = types.SimpleNamespace(time_format=None, dayfirst=True, timezone="Pacific/Auckland")
+    out, bad, _ = parse_times(pd.Series([text, "2021-01-01T08:00:00+02:00"], dtype="string"), profile)
+    local_midnight = datetime(2021, 1, 1, tzinfo=ZoneInfo("Pacific/Auckland")).astimezone(UTC).replace(tzinfo=None)
+    assert not bad.any()
+    assert out.iloc[0] == pd.Timestamp(local_midnight)  # 2020-12-31 11:00 UTC (NZDT, UTC+13)
+    assert out.iloc[1] == pd.Timestamp("2021-01-01 06:00")  # an offset after a time still counts

@@ -691,14 +691,23 @@ def _typed(
     return text.astype("string")
 
 
+#: A date without a time (see parse_times): it never carries an offset.
+_DATE_ALONE = r"\s*\d{1,4}[-/.]\d{1,2}[-/.]\d{1,4}\s*"
+
+
 def parse_times(text: pd.Series, profile: Profile) -> tuple[pd.Series, np.ndarray, np.ndarray]:
     """Parse date-time strings into naive UTC timestamps.
 
     Strings with an offset (Z, +02:00) are converted to UTC; strings without one are read in
-    the profile's time zone. Returns (timestamps, unparseable mask, future mask).
+    the profile's time zone. The rule: a date alone (``01-01-2021``, ``2021-01-01``,
+    ``1.1.2021``) has no offset, so the year of a day-first date with dashes is never read as
+    an offset "-2021" and that date is local like "2021-01-01"; an offset (``Z``, ``+hh:mm``,
+    ``-hhmm``) is recognised at the end of a date with a time. Returns (timestamps,
+    unparseable mask, future mask).
     """
     present = text.notna().to_numpy()
-    has_zone = text.str.contains(r"(?:[zZ]|[+-]\d{2}:?\d{2})$", regex=True).fillna(False).to_numpy()
+    has_zone = (text.str.contains(r"(?:[zZ]|[+-]\d{2}:?\d{2})$", regex=True)
+                & ~text.str.fullmatch(_DATE_ALONE)).fillna(False).to_numpy()
     out = pd.Series(pd.NaT, index=text.index, dtype="datetime64[us]")
     fmt = profile.time_format or "ISO8601"
     for zoned in (True, False):

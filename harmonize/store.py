@@ -642,7 +642,7 @@ class Store:
 
     def masked_summary(self) -> pd.DataFrame:
         """Values rejected in bulk (grid values, pings) per source, file and reason."""
-        with self.connect() as con:
+        with self.connect(view=False) as con:
             return con.execute(
                 """SELECT i.source_id, m.source_file, m.reason_code, sum(m.n_values)::BIGINT AS n_values,
                           any_value(m.message) AS message
@@ -686,7 +686,7 @@ class Store:
         sql += " ORDER BY i.started_at DESC, q.source_file, q.source_row"
         if limit is not None:
             sql += f" LIMIT {int(limit)}"
-        with self.connect() as con:
+        with self.connect(view=False) as con:  # readable even while a parquet file is damaged
             return con.execute(sql, params).df()
 
     def lost_files(self) -> list[Path]:

@@ -69,8 +69,9 @@ def test_repair_drops_a_damaged_ingest_and_lists_what_to_ingest_again(study_copy
     damaged = _files(store, first)[0]
     path = store.directory / damaged
     path.write_bytes(path.read_bytes()[:700])  # a copy that stopped part-way
-    # every reading verb is blocked until repair
+    # the verbs that read observations are blocked until repair; the quarantine still reads
     assert _cli(study_dir, "export", "long", str(study_dir / "x.csv")).returncode == 2
+    assert _cli(study_dir, "quarantine").returncode == 0
 
     dry = _cli(study_dir, "repair")
     assert dry.returncode == 1, dry.stdout + dry.stderr

@@ -8,11 +8,15 @@ Accepted events that yield no observation row (a haul with no catch under a prof
 a zero-filling protocol, a segment whose bird rows were all quarantined) are kept in the
 ``events_without_values`` table, so that every input row stays accounted for.
 
-Crash safety: an ingest writes its parquet files into ``store/staging/<ingest_id>/``
-without any lock, then, holding the database's write lock, moves them into place and
-records them in one transaction. Files that are not in the manifest are never read, so a
-kill at any point leaves either all or none of an ingest visible; the next writer removes
-the leftovers.
+Crash safety: an ingest writes its parquet files into ``store/staging/<ingest_id>/`` (a
+folder it holds an OS lock on), then, holding the store's write lock (``flock`` on
+``write.lock``), writes a journal of where the files go, syncs and moves them into place and
+records them, with their sha256 and size, in one transaction. Files that are not in the
+manifest are never read, so a kill at any point leaves either all or none of an ingest
+visible; the next writer removes the files a dead ingest's journal names, and nothing else.
+
+Integrity: :meth:`Store.check` verifies every live file against its recorded size and
+checksum and reads it to the end; :mod:`harmonize.repair` takes damaged ingests out.
 """
 
 from __future__ import annotations

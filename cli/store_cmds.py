@@ -12,9 +12,12 @@ from harmonize.cli.console import (
     fmt_int,
     json_option,
     records,
+    say,
     study_from,
     study_option,
 )
+
+from harmonize.errors import one_line
 
 
 def register(app: typer.Typer) -> None:
@@ -46,25 +49,26 @@ def status(
 
     study = study_from(ctx, study_dir)
     store = Store(study.store_dir)
-    if not store.exists():
+    if not store.exists() and not store.lost_files():
         console.print(f"the store of '{study.name}' is empty: nothing ingested yet ('harmonize ingest PROFILE FILES')")
         if as_json:
             emit_json("status", {"study": study.name, "store": str(study.store_dir), "empty": True, "ingests": [],
                                  "summary": [], "events_without_values": 0, "masked": [], "volunteer_only_cells": 0,
                                  "integrity_problems": [] if check else None})
         return
-    # the integrity check runs first: a missing or damaged file would stop the listing below
+    # the integrity check runs first: a lost database or a damaged file would stop the listing below
     problems = store.check() if check else []
     for p in problems:
-        console.print(f"integrity problem: {p}", markup=False)
+        console.print(f"integrity problem: {one_line(p)}", markup=False)
     if problems:
         if as_json:
             emit_json("status", {"study": study.name, "store": str(study.store_dir), "empty": False,
                                  "integrity_problems": [str(p) for p in problems]}, 1)
+        say("run 'harmonize repair' to see how to take the damaged ingests out of the store")
         raise typer.Exit(1)
     ingests = store.ingests(include_superseded=all_ingests)
     table = Table(title=f"ingests in {study.name}", title_justify="left")
-    rows = [[r.ingest_id, r.source_id, r.source_kind, r.file_name, r.status, fmt_int(r.rows_read),
+    rows = [[r.ingest_id, r.source_id, r.source_kind, one_line(r.file_name), r.status, fmt_int(r.rows_read),
              fmt_int(r.rows_accepted), fmt_int(r.rows_quarantined), fmt_int(r.records_written)]
             for r in ingests.itertuples()]
     columns = ("ingest", "source", "kind", "file", "status", "read", "accepted", "quarantined", "rows written")
@@ -127,7 +131,7 @@ def status(
             else:
                 t3.add_column(col, justify="left", overflow="fold")
         for r in masked.itertuples():
-            t3.add_row(r.source_id, r.source_file, r.reason_code, fmt_int(int(r.n_values)))
+            t3.add_row(r.source_id, one_line(r.source_file), r.reason_code, fmt_int(int(r.n_values)))
         console.print(t3)
     if check:
         console.print("integrity check passed: manifest, parquet files and row accounting agree")

@@ -48,6 +48,7 @@ import defusedxml.ElementTree as SafeET
 import pandas as pd
 
 from harmonize.disclosure import Disclosure
+from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import CAUTION, ExportResult, provenance
 from harmonize.export.safe_csv import neutralise_sql
 from harmonize.export.selection import (
@@ -271,6 +272,7 @@ def _emof_sql() -> str:
         )"""
 
 
+@all_or_nothing(SUFFIXES)
 def export_dwca(study: Study, out: str | Path, filters: ExportFilters | None = None,
                 generalise_deg: float | None = None, disclosure: Disclosure | None = None) -> ExportResult:
     """Write a Darwin Core Archive (zip) to ``out``; see the module docstring for what it holds.

@@ -24,6 +24,7 @@ import pyogrio
 import shapely
 
 from harmonize.disclosure import Disclosure
+from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import ExportResult, provenance
 from harmonize.export.selection import (
     BASE_VIEW,
@@ -97,6 +98,7 @@ def cell_frame(study: Study, cells: pd.DataFrame) -> gpd.GeoDataFrame:
     return gpd.GeoDataFrame(out, geometry=polygons, crs=CRS)
 
 
+@all_or_nothing(SUFFIXES)
 def export_gpkg(study: Study, out: str | Path, filters: ExportFilters | None = None,
                 disclosure: Disclosure | None = None) -> ExportResult:
     """Write the GeoPackage ``out`` (overwritten if it exists) with its provenance table."""

@@ -25,6 +25,7 @@ from pathlib import Path
 import pandas as pd
 
 from harmonize.disclosure import Disclosure
+from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import ExportResult, kv_metadata_sql, provenance, write_sidecar
 from harmonize.export.safe_csv import copy_safe_csv
 from harmonize.export.selection import (
@@ -73,6 +74,7 @@ def read_grid(study: Study, filters: ExportFilters | None = None,
         return con.sql(grid_query()).to_arrow_table().to_pandas()
 
 
+@all_or_nothing(SUFFIXES)
 def export_grid(study: Study, out: str | Path, filters: ExportFilters | None = None,
                 disclosure: Disclosure | None = None) -> ExportResult:
     """Write the grid table to ``out`` (parquet or CSV by suffix) with its provenance."""

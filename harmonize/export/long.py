@@ -14,6 +14,7 @@ from pathlib import Path
 import pandas as pd
 
 from harmonize.disclosure import Disclosure
+from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import ExportResult, kv_metadata_sql, provenance, write_sidecar
 from harmonize.export.safe_csv import copy_safe_csv
 from harmonize.export.selection import BASE_VIEW, ExportFilters, open_selection, prepare_target
@@ -57,6 +58,7 @@ def read_long(study: Study, filters: ExportFilters | None = None, columns: list[
         return con.sql(long_query(columns, limit)).to_arrow_table().to_pandas()
 
 
+@all_or_nothing(SUFFIXES)
 def export_long(study: Study, out: str | Path, filters: ExportFilters | None = None,
                 disclosure: Disclosure | None = None) -> ExportResult:
     """Write the long table to ``out``: parquet (zstd) or CSV by the file's suffix.

@@ -20,6 +20,7 @@ from harmonize import __version__
 from harmonize.contract import CONTRACT_VERSION
 from harmonize.disclosure import Disclosure
 from harmonize.export.selection import ExportFilters, sql_text
+from harmonize.files import public_name
 from harmonize.study import Study
 
 PARQUET_KEY = "harmonize"
@@ -116,7 +117,7 @@ def write_sidecar(path: Path, meta: dict[str, Any], columns: list[tuple[str, str
     """
     doc: dict[str, Any] = {
         "@context": "http://www.w3.org/ns/csvw",
-        "url": path.name,
+        "url": public_name(path),  # the name it has once the export is complete
         "dc:title": f"{meta.get('study', '')}: harmonize {meta.get('format', '')} export",
         "dc:provenance": meta,
     }

@@ -11,7 +11,6 @@ from __future__ import annotations
 
 import os
 import re
-import shutil
 import tempfile
 import uuid
 from collections.abc import Iterable, Iterator, Sequence
@@ -245,14 +244,15 @@ def bounded_memory(con: duckdb.DuckDBPyConnection, store_dir: Path, memory_limit
     """Give ``con`` a memory limit and a private spill folder inside the store's staging folder.
 
     DuckDB spills its hash tables and sorts to the folder beyond the limit. The folder
-    (``store/staging/export-<id>/``, marked with this process's id so that the store's next
+    (``store/staging/export-<id>/``, locked by this process so that the store's next
     writer removes it should this process die) is deleted afterwards, and the connection's
     settings are reset. Where the store folder cannot be written, a system temporary folder
     is used. Raises HarmonizeError when the limit is not a size DuckDB understands.
     """
     limit = export_memory_limit(memory_limit)
+    store = Store(store_dir)
     try:
-        spill = Store(store_dir).staging_dir(f"export-{uuid.uuid4().hex[:12]}")
+        spill = store.staging_dir(f"export-{uuid.uuid4().hex[:12]}")
     except OSError:
         spill = Path(tempfile.mkdtemp(prefix="harmonize-export-"))
     try:
@@ -270,7 +270,7 @@ def bounded_memory(con: duckdb.DuckDBPyConnection, store_dir: Path, memory_limit
                 con.execute(f"RESET {setting}")
             except duckdb.Error:
                 pass   # the connection is closing anyway
-        shutil.rmtree(spill, ignore_errors=True)
+        store.discard(spill)
 
 
 def prepare_target(out: str | Path, suffixes: Sequence[str]) -> Path:

@@ -43,6 +43,7 @@ import pyarrow.parquet as pq
 
 from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
+from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import (
     PARQUET_KEY,
     ExportResult,
@@ -380,6 +381,7 @@ def read_wide(study: Study, filters: ExportFilters | None = None, quantity: str 
         return pa.concat_tables(tables).to_pandas()
 
 
+@all_or_nothing(SUFFIXES)
 def export_wide(study: Study, out: str | Path, filters: ExportFilters | None = None, quantity: str = "count",
                 by_life_stage: bool = False, covariates: pd.DataFrame | None = None,
                 link_gridded: bool = True, memory_limit: str | None = None,

@@ -54,7 +54,7 @@ def export_cmd(
                                  help="wide: the quantity in the taxon columns."),
     by_life_stage: bool = typer.Option(False, "--by-life-stage", help="wide: one column per taxon and life stage."),
     generalise_deg: float | None = typer.Option(
-        None, "--generalise-deg",
+        None, "--generalise-deg", metavar="DEGREES",
         help="Rounding (degrees) of events with a sensitive taxon (default: [confidentiality] generalise_deg, 0.1)."),
     fishing_aggregate: bool = typer.Option(
         False, "--fishing-aggregate",

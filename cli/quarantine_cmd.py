@@ -20,6 +20,8 @@ from harmonize.cli.console import (
     write_csv_out,
 )
 
+from harmonize.errors import one_line
+
 COLUMNS = ["ingest_id", "source_id", "source_file", "source_row", "reason_code", "message", "raw", "withheld"]
 
 
@@ -78,6 +80,6 @@ def quarantine(
     counts = rows["reason_code"].value_counts()
     say("quarantined rows by reason: " + ", ".join(f"{k} {fmt_int(v)}" for k, v in counts.items()))
     for r in rows.head(limit).itertuples():
-        say(f"{r.source_id}  {r.source_file} row {r.source_row}: [{r.reason_code}] {r.message}")
+        say(one_line(f"{r.source_id}  {r.source_file} row {r.source_row}: [{r.reason_code}] {r.message}"))
     if len(rows) > limit:
         say(f"... and {fmt_int(len(rows) - limit)} more; use --csv OUT for all of them")

@@ -124,8 +124,8 @@ def test_a_date_alone_is_local_whatever_its_separators(text: str) -> None:
 
     from harmonize.adapters.reading import parse_times
 
-    profile = types.SimpleNamespace(time_format=None, dayfirst=True, timezone="Pacific/Auckland")
-    out, bad, _ = parse_times(pd.Series([text, "2021-01-01T08:00:00+02:00"], dtype="string"), profile)
+    profile = types.SimpleNamespace(time_format=None, dayfirst=True, timezone="Pacific/Auckland", ambiguous_times=None)
+    out, bad, *_ = parse_times(pd.Series([text, "2021-01-01T08:00:00+02:00"], dtype="string"), profile)
     local_midnight = datetime(2021, 1, 1, tzinfo=ZoneInfo("Pacific/Auckland")).astimezone(UTC).replace(tzinfo=None)
     assert not bad.any()
     assert out.iloc[0] == pd.Timestamp(local_midnight)  # 2020-12-31 11:00 UTC (NZDT, UTC+13)

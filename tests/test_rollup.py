@@ -30,8 +30,12 @@ def study(tmp_path_factory: pytest.TempPathFactory) -> Study:
 EXPECTED_GENUS_DENSITY = {"H1": 8.0, "H2": 0.0, "H3": 12.0, "H4": 16.0, "H5": 0.0, "H6": 4.0}
 
 
+#: The wide export's column of a taxon's density over area swept (one column per taxon and unit).
+PER_KM2 = "{} (per km2)"
+
+
 def _keldora(wide: pd.DataFrame) -> dict[str, float]:
-    trawl = wide[wide["source_id"] == "split_trawl"].set_index("event_id")["Keldora"]
+    trawl = wide[wide["source_id"] == "split_trawl"].set_index("event_id")[PER_KM2.format("Keldora")]
     return {k: float(v) for k, v in trawl.items() if pd.notna(v)}
 
 
@@ -40,23 +44,23 @@ def test_genus_level_sums_and_zeros(study: Study) -> None:
     assert _keldora(wide) == EXPECTED_GENUS_DENSITY
     # incompletely recorded hauls: not recorded, not a zero nor an undercount
     trawl = wide[wide["source_id"] == "split_trawl"].set_index("event_id")
-    assert trawl.loc[["H7", "H8"], "Keldora"].isna().all()
-    assert "Keldora alba" not in wide.columns and "Keldora nigra" not in wide.columns
+    assert trawl.loc[["H7", "H8"], PER_KM2.format("Keldora")].isna().all()
+    assert PER_KM2.format("Keldora alba") not in wide.columns and PER_KM2.format("Keldora nigra") not in wide.columns
     # a taxon without a genus stays as it is
-    assert trawl["Ostravix keldensis"].tolist() == [1.0 / e for e in (0.5, 0.25, 0.5, 0.5, 0.25, 0.5, 0.5, 0.5)]
+    assert trawl[PER_KM2.format("Ostravix keldensis")].tolist() == [1.0 / e for e in (0.5, 0.25, 0.5, 0.5, 0.25, 0.5, 0.5, 0.5)]
 
 
 def test_without_rollup_the_series_breaks(study: Study) -> None:
     wide = read_wide(study, link_gridded=False)
     trawl = wide[wide["source_id"] == "split_trawl"]
-    years_with_genus = set(trawl.loc[trawl["Keldora"].notna(), "season_year"])
+    years_with_genus = set(trawl.loc[trawl[PER_KM2.format("Keldora")].notna(), "season_year"])
     assert years_with_genus == {2018, 2019}
 
 
 def test_consistent_taxa_gives_a_continuous_yearly_series(study: Study) -> None:
     wide = read_wide(study, ExportFilters(consistent_taxa=True), link_gridded=False)
     trawl = wide[wide["source_id"] == "split_trawl"]
-    per_year = trawl.groupby("season_year")["Keldora"].apply(lambda s: s.notna().sum())
+    per_year = trawl.groupby("season_year")[PER_KM2.format("Keldora")].apply(lambda s: s.notna().sum())
     assert per_year.to_dict() == {2018: 2, 2019: 1, 2020: 2, 2021: 1}
     assert _keldora(wide) == EXPECTED_GENUS_DENSITY
 
@@ -95,7 +99,7 @@ def test_cli_wide_consistent_taxa(study: Study, tmp_path: Path) -> None:
     assert res.returncode == 0, res.stderr
     assert "taxa rolled up: 2 into 1 (Keldora); 2 values left out" in res.stdout
     wide = pd.read_csv(out)
-    assert "Keldora alba" not in wide.columns and wide["Keldora"].notna().sum() == 6
+    assert PER_KM2.format("Keldora alba") not in wide.columns and wide[PER_KM2.format("Keldora")].notna().sum() == 6
     res = subprocess.run([str(BIN), "--study", str(study.root), "export", "long", str(tmp_path / "l.csv"),
                           "--taxon-level", "genra"], capture_output=True, text=True, timeout=120)
     assert res.returncode == 2 and "taxon level 'genra' is not a rank" in res.stderr

@@ -62,7 +62,7 @@ def test_distance_is_to_the_nearest_point_of_the_track(study_dir: Path, from_sta
     _segment(study, {"Procellix keldica": 4.0})
     along = G.Direct(*START, 90.0 if from_start >= 0 else 270.0, abs(from_start))
     point = G.Direct(along["lat2"], along["lon2"], 0.0, side)
-    flagged = _volunteer(study_dir, [f"A1,,2022-11-05T08:20,{point['lat2']:.7f},{point['lon2']:.7f},Ann,keld fulmar,X,false,,"])
+    flagged = _volunteer(study_dir, [f"A1,,2022-11-05T08:20,{point['lat2']:.7f},{point['lon2']:.7f},Ann,keld fulmar,noted,false,,"])
     assert list(flagged.values()) == [twin]
 
 

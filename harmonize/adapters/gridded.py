@@ -46,6 +46,7 @@ from harmonize.gridded.cf import (
     CANONICAL_VARIABLES,
     CanonicalVariable,
     Packing,
+    PackingError,
     TimeAxis,
     decode_time,
     depth_metres,
@@ -471,6 +472,8 @@ def plan_variable(ds: xr.Dataset, mapping: VariableMapping, settings: GriddedSet
     scale, offset = unit_conversion(target.dimension, unit)  # type: ignore[misc]
     try:
         packing = Packing.from_attrs(var.attrs, var.dtype)
+    except PackingError as exc:  # scale_factor = 0: every value would be the offset
+        raise InputFileError(path, f"variable '{name}' {exc}") from None
     except (TypeError, ValueError) as exc:  # e.g. valid_min = "low"
         raise InputFileError(path, f"variable '{name}' has a packing or valid-range attribute that is not a "
                              f"number ({exc}); correct the file's _FillValue, scale_factor, add_offset and "

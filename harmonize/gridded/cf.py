@@ -32,6 +32,10 @@ CALENDARS = frozenset({
 _SINCE = re.compile(r"^\s*(\w+)\s+since\s+(.+?)\s*$")
 
 
+class PackingError(ValueError):
+    """Packing attributes that are numbers but unpack every value to nonsense (scale_factor = 0)."""
+
+
 @dataclass(frozen=True)
 class CanonicalVariable:
     """A physical variable harmonize knows: CF standard name, canonical unit, plausible range."""
@@ -135,18 +139,20 @@ class Packing:
 
         Raises
         ------
-        ValueError
+        PackingError
             A scale_factor of 0 or a non-finite scale_factor or add_offset.
+        ValueError, TypeError
+            An attribute that is not a number (e.g. valid_min = "low").
         """
         dtype = np.dtype(dtype)
         unsigned = dtype.kind == "i" and str(attrs.get("_Unsigned", "")).lower() == "true"
         scale = _scalar(attrs.get("scale_factor"), 1.0)
         offset = _scalar(attrs.get("add_offset"), 0.0)
         if scale == 0.0 or not np.isfinite(scale):
-            raise ValueError(f"has scale_factor = {scale:g}: every value would unpack to add_offset ({offset:g}); "
+            raise PackingError(f"has scale_factor = {scale:g}: every value would unpack to add_offset ({offset:g}); "
                              "correct the packing attributes of the file")
         if not np.isfinite(offset):
-            raise ValueError(f"has add_offset = {offset:g}; correct the packing attributes of the file")
+            raise PackingError(f"has add_offset = {offset:g}; correct the packing attributes of the file")
         packed_type = attrs.get("scale_factor", attrs.get("add_offset"))
         fills: list[float] = []
         for key in ("_FillValue", "missing_value"):

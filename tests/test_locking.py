@@ -142,7 +142,7 @@ def test_two_writers_in_separate_pid_namespaces(study_dir: Path, tmp_path: Path)
             a.kill()
             a.wait()
     assert a.returncode == 0, err
-    assert out.split()[-2:] == ["complete", "31"]
+    assert out.split()[-2:] == ["complete", "29"]  # H011 is in season year 2020: no zeros outside 2015-2019
     store = Store(study_dir / "store")
     assert store.check() == []
     with store.connect() as con:

@@ -14,6 +14,7 @@ import duckdb
 import pandas as pd
 
 from harmonize.audit.metrics import _KEPT, DUPLICATE_FLAG, _year_filter
+from harmonize.disclosure import Disclosure
 from harmonize.twins import has_table
 
 #: Kinds whose effort is a sampling effort worth a yearly total (gridded pixel area is not).
@@ -38,7 +39,8 @@ class Received:
     effort: pd.DataFrame
 
 
-def received(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> Received:
+def received(con: duckdb.DuckDBPyConnection, max_year: int | None = None, rules: Disclosure | None = None
+             ) -> Received:
     """The accounting tables of a store connection (see :class:`Received`)."""
     live = "status = 'complete'"
     by_source = con.execute(
@@ -89,12 +91,16 @@ def received(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> Rec
                      WHERE effort_total IS NOT NULL AND effort_unit IS NOT NULL AND season_year IS NOT NULL
                            AND source_kind NOT IN ({excluded})"""
     else:  # (the Dask engine's event table carries no effort) one pass over the events
-        events = f"""SELECT any_value(source_kind) AS source_kind, any_value(season_year) AS season_year,
-                            any_value(effort_unit) AS effort_unit, 1 AS n, any_value(effort) AS effort
+        # a confidential fishing row is withheld whole (harmonize.disclosure): in no total either
+        confidential = (rules or Disclosure()).confidential_sql()
+        events = f"""SELECT * FROM (
+                     SELECT any_value(source_kind) AS source_kind, any_value(season_year) AS season_year,
+                            any_value(effort_unit) AS effort_unit, 1 AS n, any_value(effort) AS effort,
+                            min(n_vessels) AS n_vessels
                      FROM observations
                      WHERE effort IS NOT NULL AND effort_unit IS NOT NULL AND season_year IS NOT NULL
                            AND source_kind NOT IN ({excluded}) AND {_KEPT}{_year_filter(max_year)}
-                     GROUP BY hash(source_id, event_id)"""
+                     GROUP BY hash(source_id, event_id)) WHERE NOT {confidential}"""
     effort = con.execute(
         f"""SELECT source_kind, CAST(season_year AS INTEGER) AS season_year, effort_unit,
                    sum(n)::BIGINT AS events, sum(effort) AS effort

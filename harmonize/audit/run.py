@@ -262,7 +262,7 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
         else:
             metrics = compute(con, cells, study.min_vessels, year, Disclosure.for_study(study))
         metrics.periods = incomplete_periods(last_samples(con, year), study.seasons)
-        accounts = received(con, year)
+        accounts = received(con, year, Disclosure.for_study(study))
         incomplete = incomplete_keys(metrics.periods)
         metrics.coverage["complete"] = [
             (k, int(y), s) not in incomplete for k, y, s in

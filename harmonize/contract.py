@@ -54,10 +54,16 @@ class FieldSpec:
 
 @cache
 def table_schema(name: str) -> dict[str, Any]:
-    """The parsed Table Schema ``schemas/<name>.schema.json``."""
-    path = resources.files("harmonize.schemas").joinpath(f"{name}.schema.json")
+    """The parsed Table Schema ``<name>.schema.json`` of harmonize.schemas.
+
+    An outside adapter names its own schemas ``"package:name"``: the file
+    ``<name>.schema.json`` shipped as data of that package.
+    """
+    package, _, stem = name.rpartition(":")
+    package = package or "harmonize.schemas"
+    path = resources.files(package).joinpath(f"{stem}.schema.json")
     if not path.is_file():
-        raise KeyError(f"no Table Schema named '{name}' in harmonize.schemas")
+        raise KeyError(f"no Table Schema named '{stem}' in {package}")
     return json.loads(path.read_text(encoding="utf-8"))
 
 

@@ -511,14 +511,19 @@ class Store:
         with self.connect() as con:
             return con.execute(sql, params).df()
 
-    def check(self) -> list[str]:
+    def check(self, row_traced_kinds: Sequence[str] | None = None) -> list[str]:
         """Integrity problems (empty list = the store is sound).
 
         Checks that every manifest file exists and holds the rows the manifest says, that
         every complete ingest satisfies rows_read = rows_accepted + rows_quarantined and
-        records_written = rows in its files, and that every data row of every input file is
-        found among the accepted rows or in the quarantine.
+        records_written = rows in its files, and that every data row of every input file of
+        the ``row_traced_kinds`` is found among the accepted rows or in the quarantine
+        (default: the registered kinds whose ``Adapter.row_traced`` is true).
         """
+        if row_traced_kinds is None:
+            from harmonize.adapters.registry import kinds
+
+            row_traced_kinds = kinds(row_traced=True)
         problems: list[str] = []
         with self.connect(view=False) as con:
             files = con.execute(
@@ -569,16 +574,19 @@ class Store:
                 ).fetchall()
                 problems += [f"ingest {i}: event {e} is among the events without values but has observation rows"
                              for i, e in both]
-            problems += self._row_accounting(con)
+            problems += self._row_accounting(con, row_traced_kinds)
         return problems
 
     @staticmethod
-    def _row_accounting(con: duckdb.DuckDBPyConnection) -> list[str]:
+    def _row_accounting(con: duckdb.DuckDBPyConnection, kinds: Sequence[str]) -> list[str]:
         """Every data row 1..rows_read of each row-traced input file is accepted or quarantined.
 
         Accepted rows are found in the observations (events row, records rows) and, for
         accepted events that yield no observation row, in ``events_without_values``.
         """
+        if not kinds:
+            return []
+        traced = ", ".join("'" + k.replace("'", "''") + "'" for k in kinds)
         no_values = ("UNION SELECT ingest_id, source_file, source_row FROM events_without_values "
                      "WHERE source_row IS NOT NULL" if twins.has_table(con, "events_without_values") else "")
         rows = con.execute(
@@ -586,7 +594,7 @@ class Store:
             WITH files AS (
                 SELECT f.ingest_id, f.role, f.file_name, f.rows_read
                 FROM ingest_files f JOIN ingests i USING (ingest_id)
-                WHERE i.status = 'complete' AND i.source_kind IN ('trawl', 'plankton', 'transect', 'opportunistic')
+                WHERE i.status = 'complete' AND i.source_kind IN ({traced})
             ),
             seen AS (
                 SELECT ingest_id, source_file AS file_name, source_row AS row FROM observations

@@ -48,6 +48,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from harmonize.adapters.registry import kinds as registered_kinds
 from harmonize.audit.metrics import ALL_BIOLOGICAL, Metrics
 from harmonize.errors import ConfigError
 from harmonize.study import Study
@@ -56,10 +57,17 @@ from harmonize.tagging import season_year_offsets
 CODES = ("no_samples", "thin_samples", "coverage_drop", "missing_year", "few_encounters",
          "volunteer_only", "source_disagreement", "resolution_change")
 SEVERITIES = ("error", "warning", "info")
-#: Kinds that describe where fishing happened, not where anyone sampled.
-EFFORT_KINDS = ("effort",)
-#: Kinds without a sampling design: their gaps are warnings, and strata are not checked.
-UNDESIGNED_KINDS = ("opportunistic", "effort")
+
+
+def effort_kinds() -> tuple[str, ...]:
+    """Kinds that describe where fishing happened, not where anyone sampled."""
+    return registered_kinds(is_fishing_effort=True)
+
+
+def undesigned_kinds() -> tuple[str, ...]:
+    """Kinds without a sampling design: their gaps are warnings, and strata are not checked."""
+    return registered_kinds(designed=False)
+
 VOLUNTEER = "volunteer"
 
 #: Default tolerances (canonical unit of the variable) for source_disagreement. A judgement,
@@ -214,7 +222,7 @@ def no_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
         if level == "layer":
             frame = frame[frame["depth_layer"].notna()]
         if level == "stratum":  # volunteers and fleets choose where they go: no stratum design
-            frame = frame[~frame["source_kind"].isin(UNDESIGNED_KINDS)]
+            frame = frame[~frame["source_kind"].isin(undesigned_kinds())]
         grid = _usually_sampled_but_not(_history(frame, kind_years, ["season", *extra]))
         if year is not None:
             grid = grid[grid["season_year"] == year]
@@ -230,7 +238,7 @@ def no_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
             where = {"season": f"{r.season}", "layer": f"{_layer(getattr(r, 'depth_layer', None))} in {r.season}",
                      "stratum": f"stratum {getattr(r, 'stratum', '')} in {r.season}"}[level]
             out.append(Finding(
-                "no_samples", "warning" if r.source_kind in UNDESIGNED_KINDS else "error",
+                "no_samples", "warning" if r.source_kind in undesigned_kinds() else "error",
                 f"No {r.source_kind} samples in {where} {int(r.season_year)}, although the "
                 f"{r.source_kind} data sampled it in {int(r.earlier_sampled)} of the {int(r.earlier_years)} "
                 "earlier years with data; find and ingest the missing records, or treat this gap as "
@@ -291,7 +299,7 @@ def thin_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
     """Season_year x season x layer cells with some but too few samples."""
     need = study.audit.min_events
     le = m.layer_events
-    thin = le[(le["events"] > 0) & (le["events"] < need) & ~le["source_kind"].isin(EFFORT_KINDS)
+    thin = le[(le["events"] > 0) & (le["events"] < need) & ~le["source_kind"].isin(effort_kinds())
               & le["season_year"].notna()]
     if year is not None:
         thin = thin[thin["season_year"] == year]
@@ -309,7 +317,7 @@ def thin_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
 def coverage_drop(m: Metrics, study: Study, year: int | None) -> list[Finding]:
     """Seasons whose share of domain cells fell below the study's fraction of the earlier median."""
     share = study.audit.coverage_drop
-    cov = m.coverage[(m.coverage["events"] > 0) & ~m.coverage["source_kind"].isin(EFFORT_KINDS)]
+    cov = m.coverage[(m.coverage["events"] > 0) & ~m.coverage["source_kind"].isin(effort_kinds())]
     out: list[Finding] = []
     for (kind, season), g in cov.groupby(["source_kind", "season"], sort=True):
         g = g.sort_values("season_year")

@@ -10,6 +10,7 @@ import numpy as np
 import pandas as pd
 
 from harmonize import __version__
+from harmonize.adapters.registry import kinds as registered_kinds
 from harmonize.audit.findings import CODES
 from harmonize.audit.metrics import ALL_BIOLOGICAL
 from harmonize.audit.readiness import readiness_html
@@ -17,8 +18,6 @@ from harmonize.audit.readiness import readiness_html
 if TYPE_CHECKING:
     from harmonize.audit.run import AuditResult
 
-#: Order in which source kinds appear; others follow alphabetically.
-KIND_ORDER = (ALL_BIOLOGICAL, "trawl", "plankton", "transect", "opportunistic", "gridded", "effort")
 KIND_LABEL = {ALL_BIOLOGICAL: "all biological sources"}
 #: Okabe and Ito (2008), "Color Universal Design": colours told apart with colour-vision deficiency.
 SEASON_COLOURS = ("#0072B2", "#009E73", "#E69F00", "#CC79A7", "#56B4E9", "#D55E00", "#000000", "#F0E442")
@@ -87,8 +86,14 @@ def _e(value: object) -> str:
     return escape("" if value is None else str(value))
 
 
+def kind_order() -> tuple[str, ...]:
+    """Order in which source kinds appear (Adapter.display_order); others follow alphabetically."""
+    return (ALL_BIOLOGICAL, *registered_kinds())
+
+
 def _kind_key(kind: str) -> tuple[int, str]:
-    return (KIND_ORDER.index(kind) if kind in KIND_ORDER else len(KIND_ORDER), kind)
+    order = kind_order()
+    return (order.index(kind) if kind in order else len(order), kind)
 
 
 def _kinds(values: Sequence[str] | pd.Series) -> list[str]:
@@ -352,7 +357,7 @@ def _comparisons(result: AuditResult) -> str:
 
 def _confidentiality(result: AuditResult) -> str:
     s = result.suppression()
-    if "effort" not in set(result.coverage["source_kind"]) and s["events_suppressed"] == 0:
+    if not set(registered_kinds(is_fishing_effort=True)) & set(result.coverage["source_kind"]) and s["events_suppressed"] == 0:
         return ("<p>The store holds no fishing-effort data, so no confidentiality rule applied. Effort cells "
                 f'resting on fewer than {s["min_vessels"]} vessels would be withheld.</p>')
     if s["events_suppressed"] == 0:

@@ -46,15 +46,17 @@ from xml.etree import ElementTree as ET
 import defusedxml.ElementTree as SafeET
 import pandas as pd
 
+from harmonize.adapters.registry import kinds as registered_kinds
+from harmonize.adapters.registry import list_adapters
 from harmonize.export.metadata import CAUTION, ExportResult, provenance
 from harmonize.export.safe_csv import neutralise_sql
 from harmonize.export.selection import (
     BASE_VIEW,
-    SAMPLE_KINDS,
     ExportFilters,
     duplicate_sql,
     open_selection,
     prepare_target,
+    sample_kinds,
     sql_text,
 )
 from harmonize.study import Study
@@ -69,11 +71,12 @@ ROW_TYPES = {
     "emof": "http://rs.iobis.org/obis/terms/ExtendedMeasurementOrFact",
 }
 FILES = {"event": "event.txt", "occurrence": "occurrence.txt", "emof": "extendedmeasurementorfact.txt"}
-#: What the effort of each source kind is, in words (samplingEffort).
-EFFORT_WORDS = {
-    "trawl": "area swept by the net", "plankton": "volume of water filtered",
-    "transect": "strip area surveyed", "opportunistic": "time observed on a complete checklist",
-}
+
+
+def effort_words() -> dict[str, str]:
+    """What the effort of each source kind is, in words (samplingEffort; Adapter.effort_words)."""
+    return {kind: cls.effort_words for kind, cls in list_adapters().items() if cls.effort_words}
+
 #: Effort units in words (sampleSizeUnit); the Darwin Core examples spell units out.
 UNIT_WORDS = {"km2": "square kilometre", "m2": "square metre", "m3": "cubic metre", "h": "hour", "min": "minute"}
 MAX_EML_BYTES = 50_000_000
@@ -114,7 +117,7 @@ def _event_columns(generalise_deg: float, min_vessels: int) -> list[Column]:
     def rounded(col: str) -> str:
         return f"CASE WHEN sensitive THEN round(round({col} / {p}) * {p}, {digits}) ELSE {col} END"
 
-    effort_text = (f"CASE WHEN effort IS NOT NULL THEN {_case('source_kind', EFFORT_WORDS, sql_text('sampling effort'))}"
+    effort_text = (f"CASE WHEN effort IS NOT NULL THEN {_case('source_kind', effort_words(), sql_text('sampling effort'))}"
                    f" || ': ' || CAST(round(effort, 6) AS VARCHAR) || ' ' || effort_unit END")
     withheld = (f"concat_ws('; ', CASE WHEN sensitive THEN 'precise coordinates and grid cell withheld' END, "
                 f"CASE WHEN suppressed THEN 'fishing values withheld: fewer than {int(min_vessels)} vessels contribute' END)")
@@ -196,7 +199,7 @@ def _events_sql(study: Study, generalise_deg: float) -> str:
     sensitive = study.taxa.loc[study.taxa["sensitive"].astype(bool), "taxon"].tolist()
     sens_cond = (f"variable IN ({', '.join(sql_text(t) for t in sensitive)}) "
                  f"AND (value > 0 OR quantity = 'presence') AND NOT {duplicate_sql()}") if sensitive else "FALSE"
-    kinds = ", ".join(sql_text(k) for k in (*SAMPLE_KINDS, "effort"))
+    kinds = ", ".join(sql_text(k) for k in (*sample_kinds(), *registered_kinds(is_fishing_effort=True)))
     sampled = "variable_kind = 'taxon' AND quantity IN ('count', 'biomass')"
     return f"""
         WITH ev AS (
@@ -218,7 +221,7 @@ def _events_sql(study: Study, generalise_deg: float) -> str:
 
 
 def _occurrences_sql() -> str:
-    kinds = ", ".join(sql_text(k) for k in SAMPLE_KINDS)
+    kinds = ", ".join(sql_text(k) for k in sample_kinds())
     return f"""
         SELECT {_select(_OCCURRENCE_COLUMNS)}
         FROM {BASE_VIEW}
@@ -227,7 +230,7 @@ def _occurrences_sql() -> str:
 
 
 def _emof_sql() -> str:
-    kinds = ", ".join(sql_text(k) for k in SAMPLE_KINDS)
+    kinds = ", ".join(sql_text(k) for k in sample_kinds())
     keep = f"source_kind IN ({kinds}) AND NOT {duplicate_sql()}"
     zero_note = "CASE WHEN zero_filled THEN 'inferred zero: target taxon of a complete-catch protocol' END"
     taxon_unit = "CASE WHEN quantity = 'count' THEN 'individuals' ELSE unit END"

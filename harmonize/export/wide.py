@@ -51,12 +51,12 @@ from harmonize.export.metadata import (
 from harmonize.export.safe_csv import copy_safe_csv
 from harmonize.export.selection import (
     BASE_VIEW,
-    SAMPLE_KINDS,
     ExportFilters,
     bounded_memory,
     duplicate_sql,
     open_selection,
     prepare_target,
+    sample_kinds,
     sql_ident,
     sql_text,
 )
@@ -82,7 +82,7 @@ _BATCH_ROWS = 122_880
 
 
 def _samples_sql() -> str:
-    kinds = ", ".join(sql_text(k) for k in SAMPLE_KINDS)
+    kinds = ", ".join(sql_text(k) for k in sample_kinds())
     return f"source_kind IN ({kinds})"
 
 

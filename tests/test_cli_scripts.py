@@ -60,7 +60,7 @@ def test_status_quarantine_twins_json(ingested: Path) -> None:
     status = _one_document(run_cli("--study", str(ingested), "status", "--check", "--json").stdout, "status")
     assert status["empty"] is False and status["integrity_problems"] == []
     assert status["ingests"][0]["source_id"] == "keldmar_trawl"
-    assert sum(r["rows"] for r in status["summary"]) == 31
+    assert sum(r["rows"] for r in status["summary"]) == 29
     q = _one_document(run_cli("--study", str(ingested), "quarantine", "--json").stdout, "quarantine")
     assert q["rows"] == len(q["quarantine"]) == sum(q["by_reason"].values()) == 11
     twins = _one_document(run_cli("--study", str(ingested), "twins", "--json").stdout, "twins")
@@ -91,12 +91,12 @@ def test_audit_json_on_stdout_and_in_a_file(ingested: Path, tmp_path: Path) -> N
 def test_export_json_and_stdout(ingested: Path, tmp_path: Path) -> None:
     out = tmp_path / "obs.csv"
     doc = _one_document(run_cli("--study", str(ingested), "export", "long", str(out), "--json").stdout, "export")
-    assert doc["export_format"] == "long" and doc["path"] == str(out) and doc["rows"] == 31
+    assert doc["export_format"] == "long" and doc["path"] == str(out) and doc["rows"] == 29
     piped = run_cli("--study", str(ingested), "export", "long", "-")
     assert piped.exit_code == 0
     frame = pd.read_csv(io.StringIO(piped.stdout))
-    assert len(frame) == 31 and "record_id" in frame.columns
-    assert "wrote 31 observation rows to stdout" in piped.stderr
+    assert len(frame) == 29 and "record_id" in frame.columns
+    assert "wrote 29 observation rows to stdout" in piped.stderr
     both = run_cli("--study", str(ingested), "export", "long", "-", "--json")
     assert both.exit_code == 2 and both.stdout == ""
 
@@ -224,6 +224,7 @@ def test_every_verb_has_examples_and_no_python_type_names() -> None:
         assert not line.rstrip().endswith("..."), line
 
 
+@pytest.mark.subprocess
 def test_python_dash_m_and_completion_script() -> None:
     env = {**os.environ, "NO_COLOR": "1"}
     version = subprocess.run([sys.executable, "-m", "harmonize", "--version"], capture_output=True, text=True,
@@ -234,6 +235,7 @@ def test_python_dash_m_and_completion_script() -> None:
     assert script.returncode == 0 and "complete" in script.stdout
 
 
+@pytest.mark.subprocess
 def test_the_command_module_does_not_import_heavy_libraries() -> None:
     code = ("import sys, harmonize.cli.app; heavy = [m for m in ('pandas', 'pandera', 'geopandas', 'duckdb', "
             "'xarray', 'pyarrow', 'shapely') if m in sys.modules]; print(','.join(heavy))")

@@ -262,6 +262,7 @@ def test_agency_transects_and_overlapping_volunteers_end_to_end(study_dir: Path)
     assert agency_flagged == 0 and loose == 0
 
 
+@pytest.mark.subprocess
 def test_cli_ingest_then_twins_lists_the_pair(study_dir: Path, tmp_path: Path) -> None:
     import subprocess
     import sys

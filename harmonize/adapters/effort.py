@@ -669,7 +669,8 @@ class PingReader:
                        self._clock_message_sql("nonexistent") if self.profile.timezone != "UTC" else "NULL"))
         checks.append(("clock = 'ambiguous' AND t IS NULL", ReasonCode.AMBIGUOUS_LOCAL_TIME,
                        self._clock_message_sql("ambiguous") if self.profile.timezone != "UTC" else "NULL"))
-        checks.append(("t IS NULL", ReasonCode.BAD_TIME,
+        # DuckDB reads 'infinity' and '-inf' as timestamps: not a date-time either
+        checks.append(("t IS NULL OR NOT isfinite(t)", ReasonCode.BAD_TIME,
                        f"printf('%s holds ''%s'', which is not a date-time (expected e.g. 2021-06-14T08:30:00Z)', "
                        f"{_sql_text(self._label('time'))}, cell_txt(time_txt))"))
         for f, col in (("lat", "lat"), ("lon", "lon_in"), ("speed_kn", "sog")):

@@ -37,7 +37,6 @@ from harmonize.errors import StoreBusyError, StoreError
 DB_NAME = "harmonized.duckdb"
 OBSERVATIONS_DIR = "observations"
 STAGING_DIR = "staging"
-PARTITION_COLUMNS = ("source_kind", "season_year")
 #: Version of the store's tables (store_meta key ``store_version``); a store without the key
 #: is version 1. 2: the ``events_without_values`` table. A writer brings an older store up to
 #: date (the tables are created when missing); readers of an older store see no such events.

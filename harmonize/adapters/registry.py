@@ -46,11 +46,7 @@ def _name(adapter: type[Adapter]) -> str:
 @cache
 def _load_all() -> None:
     for module in _BUILTIN_MODULES:
-        try:
-            import_module(module)
-        except ModuleNotFoundError as exc:
-            if exc.name != module:  # a real import error inside an existing adapter
-                raise
+        import_module(module)
     for ep in entry_points(group=ENTRY_POINT_GROUP):
         try:
             register(ep.load())

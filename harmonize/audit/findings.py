@@ -121,10 +121,6 @@ def _plain(value: Any) -> Any:
     return value
 
 
-def _int(value: Any) -> int | None:
-    return None if value is None or pd.isna(value) else int(value)
-
-
 def _str(value: Any) -> str | None:
     return None if value is None or pd.isna(value) else str(value)
 

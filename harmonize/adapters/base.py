@@ -102,6 +102,13 @@ class Adapter(ABC):
     row_traced: ClassVar[bool] = True
     #: The events' effort in words (Darwin Core samplingEffort); None: no sampling effort.
     effort_words: ClassVar[str | None] = None
+    #: The effort's short name in the audit report ("area swept", "fishing hours").
+    effort_label: ClassVar[str] = "effort"
+    #: Yearly effort totals add this kind's effort up (False: gridded valid pixel area).
+    sums_effort: ClassVar[bool] = True
+    #: What one event is called where events of kinds are counted apart ("samples" for
+    #: samples; cell-periods of grids and fleets are never added to samples).
+    events_called: ClassVar[str] = "samples"
     #: Events say where fishing happened, not where anyone sampled (no thin_samples or
     #: coverage findings; fishing effort in Darwin Core events).
     is_fishing_effort: ClassVar[bool] = False

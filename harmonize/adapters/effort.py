@@ -389,6 +389,8 @@ class EffortAdapter(Adapter):
     is_sample = False
     row_traced = False
     is_fishing_effort = True
+    effort_label = "fishing hours"
+    events_called = "fishing cell-periods"
     designed = False
     default_provider_type = "industry"
     display_order = 60

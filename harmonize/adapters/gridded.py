@@ -869,6 +869,8 @@ class GriddedAdapter(Adapter):
     is_sample = False
     row_traced = False
     default_provider_type = "remote_sensing"
+    sums_effort = False
+    events_called = "gridded cell-periods"
     display_order = 50
     reads_formats = False
     profile_sections = {

@@ -127,6 +127,7 @@ class OpportunisticAdapter(Adapter):
                    "effort in hours observed and zeros, incidental records are presence-only.")
     tables = {"rows": SCHEMA}
     effort_words = "time observed on a complete checklist"
+    effort_label = "hours observed"
     designed = False
     finds_twins = True
     default_provider_type = "volunteer"

@@ -113,6 +113,7 @@ class PlanktonAdapter(Adapter):
     description = "Plankton net tows and their counts by taxon and life stage; effort = volume filtered (m3)."
     tables = {"events": "plankton_events", "records": "plankton_records"}
     effort_words = "volume of water filtered"
+    effort_label = "volume filtered"
     default_protocol = "standard_plankton_net"
     display_order = 20
     joins_date_time = True

@@ -114,6 +114,7 @@ class TransectAdapter(Adapter):
     description = "Ship-based seabird strip-transect segments and their birds by taxon; effort = strip area (km2)."
     tables = {"events": "transect_events", "records": "transect_records"}
     effort_words = "strip area surveyed"
+    effort_label = "strip area"
     default_protocol = "standard_seabird_strip"
     display_order = 30
     joins_date_time = True

@@ -74,6 +74,7 @@ class TrawlAdapter(Adapter):
     description = "Bottom-trawl hauls and their catch by taxon; effort = area swept (km2)."
     tables = {"events": "trawl_events", "records": "trawl_records"}
     effort_words = "area swept by the net"
+    effort_label = "area swept"
     default_protocol = "standard_bottom_trawl"
     display_order = 10
     joins_date_time = True

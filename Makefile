@@ -6,7 +6,7 @@ VENV := .venv
 BIN := $(VENV)/bin
 STAMP := $(VENV)/.installed-$(shell cat pyproject.toml | cksum | cut -d' ' -f1)
 
-.PHONY: demo test lint bench clean
+.PHONY: demo test test-fast lint bench clean
 
 $(BIN)/python:
 	$(PYTHON) -m venv $(VENV)
@@ -29,6 +29,11 @@ demo: $(STAMP)
 
 test: $(STAMP) /usr/bin/chromium
 	$(BIN)/python -m pytest -q
+	$(BIN)/ruff check harmonize cli tests
+
+# The development lane: everything but the slow, browser and Dask tests (make test runs all).
+test-fast: $(STAMP)
+	$(BIN)/python -m pytest -q -m "not slow and not browser and not dask"
 	$(BIN)/ruff check harmonize cli tests
 
 lint: $(STAMP)

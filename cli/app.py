@@ -193,13 +193,7 @@ def _root(
 
 def _register() -> None:
     for name in VERB_MODULES:
-        try:
-            module = importlib.import_module(f"harmonize.cli.{name}")
-        except ModuleNotFoundError as exc:
-            if exc.name != f"harmonize.cli.{name}":
-                raise
-            continue  # a verb of a later capability
-        module.register(app)
+        importlib.import_module(f"harmonize.cli.{name}").register(app)
 
 
 _register()

@@ -34,7 +34,7 @@ def _split(text: str | None) -> list[str] | None:
 
 def plan_cmd(
     ctx: typer.Context,
-    kind: str = typer.Argument(..., help="Source kind of the added samples (trawl, plankton, transect, opportunistic)."),
+    kind: str = typer.Argument(..., help="Source kind of the added samples: a kind whose events are samples, e.g. trawl."),
     n: int = typer.Argument(..., help="How many samples to add."),
     season: str | None = typer.Option(None, "--season", metavar="SEASON[,SEASON]",
                                       help="Seasons whose samples count as existing (default: all)."),

@@ -13,7 +13,6 @@ Example
 
 from __future__ import annotations
 
-import importlib
 from collections.abc import Iterable, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -178,17 +177,10 @@ class StudyHandle:
                                                          taxon_level, consistent_taxa), **options)
 
     def audit(self, **options: Any) -> Any:
-        """The coverage audit (``harmonize audit``) as an object with DataFrames and findings.
+        """The coverage audit (``harmonize audit``) as an object with DataFrames and findings."""
+        from harmonize.audit.run import audit
 
-        Needs ``harmonize.audit.run``; raises HarmonizeError when this installation lacks it.
-        """
-        try:
-            module = importlib.import_module("harmonize.audit.run")
-        except ModuleNotFoundError as exc:
-            if exc.name != "harmonize.audit.run":
-                raise
-            raise HarmonizeError("the coverage audit is not part of this installation of harmonize") from None
-        return module.audit(self.study, **options)
+        return audit(self.study, **options)
 
     def model_readiness(self, taxon_level: str | None = None, consistent_taxa: bool = False,
                         year: int | None = None) -> Any:

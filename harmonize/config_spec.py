@@ -6,7 +6,9 @@ shipped in ``harmonize/schemas/config/`` are generated from (``python -m harmoni
 rewrites them; a test checks they are current). Editors with TOML schema support read the
 ``#:schema`` line that ``harmonize init`` writes at the top of each file.
 
-This module is light: it imports neither pandas nor the adapters.
+This module is light: it imports neither pandas nor the adapters. What it knows of each source
+kind (its name, its own profile sections, whether it reads [formats]) comes from the adapter
+classes through the registry, loaded only when a profile is checked or a schema generated.
 """
 
 from __future__ import annotations
@@ -22,17 +24,30 @@ from harmonize.errors import ConfigError
 
 SCHEMA_DIALECT = "https://json-schema.org/draft/2020-12/schema"
 SCHEMA_FOLDER = "config"  # inside the harmonize.schemas package
-KINDS = ("trawl", "plankton", "transect", "opportunistic", "gridded", "effort")
 PROVIDER_TYPES = ("agency", "volunteer", "industry", "model", "remote_sensing")
 
 #: How a provider writes a coordinate field ([formats] in a profile).
 COORDINATE_FORMATS = ("decimal", "degrees_minutes", "degrees_minutes_seconds")
 #: How a provider writes a fraction field such as split_fraction ([formats] in a profile).
 FRACTION_FORMATS = ("decimal", "percent")
-#: Kinds whose files are read by harmonize.adapters.reading.coerce_fields, which applies [formats]
-FORMATS_KINDS = ("trawl", "plankton", "transect", "opportunistic")
-#: Kinds that take a date-time field from two columns ([date column, time column])
-JOINED_KINDS = ("trawl", "plankton", "transect")
+
+
+def kinds(**traits: object) -> tuple[str, ...]:
+    """The registered source kinds (imports the adapters); ``traits`` filter by class attribute.
+
+    ``kinds(reads_formats=True)``: kinds whose files are read by reading.coerce_fields, which
+    applies [formats]; ``kinds(joins_date_time=True)``: kinds that take a date-time field from
+    two columns ([date column, time column]).
+    """
+    from harmonize.adapters.registry import kinds as registered
+
+    return registered(**traits)
+
+
+def _adapter_class(kind: str) -> Any:
+    from harmonize.adapters.registry import adapter_class
+
+    return adapter_class(kind)
 
 
 def is_coordinate(unit: str | None) -> bool:
@@ -138,12 +153,17 @@ class TableArray:
         return out
 
 
-def _num(description: str, **kw: Any) -> Value:
+def number(description: str, **kw: Any) -> Value:
+    """A number key (adapters declare their profile sections with these)."""
     return Value("number", description, **kw)
 
 
-def _text(description: str, **kw: Any) -> Value:
+def text(description: str, **kw: Any) -> Value:
+    """A text key."""
     return Value("string", description, **kw)
+
+
+_num, _text = number, text
 
 
 # ----------------------------------------------------------------------------- study.toml
@@ -194,7 +214,7 @@ STUDY = Table({
 # ----------------------------------------------------------------------------- profiles
 SOURCE = Table({
     "id": _text("Source id, unique in the study."),
-    "kind": _text("Source kind (adapter).", enum=KINDS),
+    "kind": _text("Source kind (adapter)."),
     "provider_type": _text("Who provides the data.", enum=PROVIDER_TYPES),
     "protocol": _text("Key into targets.csv (zero-filling)."),
     "timezone": _text("IANA zone of times written without an offset.", default="UTC"),
@@ -216,85 +236,13 @@ COLUMN = Value("string", any_of=(
 
 _COMMON_SECTIONS = ("source", "columns", "units", "constants", "formats")
 
-#: Kind-specific sections (see docs/sources/<kind>.md).
-KIND_SECTIONS: dict[str, dict[str, Table | Map]] = {
-    "trawl": {},
-    "plankton": {
-        "tow": Table({"max_speed_m_s": _num("Faster distance through the water -> implausible_speed.",
-                                            exclusive_minimum=0, default=3.0)}, "Tow plausibility."),
-        "clogging": Table({
-            "status_values": Value("array", "net_status notes that mean a clogged net.", items="string"),
-            "min_efficiency": _num("Lowest filtration efficiency (net / reference flowmeter distance).",
-                                   exclusive_minimum=0, maximum=1),
-        }, "Clogged-net rules."),
-    },
-    "transect": {
-        "strip": Table({
-            "flying": _text("How flying birds were counted.", enum=("snapshot", "continuous"), default="snapshot"),
-            "max_speed_kn": _num("Faster segments -> implausible_speed.", exclusive_minimum=0, default=30),
-        }, "Strip-transect rules."),
-    },
-    "opportunistic": {
-        "presence": Table({"tokens": Value("array", "Words in the count column meaning 'present, not counted' "
-                                                    "(default [\"present\"]; compared without case).",
-                                           items="string")},
-                          "Markers for a record noted but not counted."),
-        "plausibility": Table({"earliest": _text("Records before this date are bad_time.")},
-                              "Plausibility of volunteer records."),
-        "duplicates": Table({
-            "distance_km": _num("Twin window in space (km).", exclusive_minimum=0, default=2.0),
-            "minutes": _num("Twin window in time (minutes).", exclusive_minimum=0, default=60),
-            "rank": Value("integer", "Rank of this source among twins (0 = kept first).", minimum=0),
-        }, "Cross-source duplicates."),
-    },
-    "gridded": {
-        "variables": Map(Value("string", any_of=(
-            _text("CF standard name of the variable."),
-            Table({"name": _text("CF standard name."),
-                   "unit": _text("Unit, checked against the file's units attribute."),
-                   "force_unit": _text("Unit that replaces the file's units attribute.")}),
-        )), "File variable = CF standard name."),
-        "aggregate": Table({
-            "period": _text("Aggregation period.", enum=("month", "season"), default="month"),
-            "layer": _text("Layer mode of 3-D fields.", enum=("surface", "near_bottom", "by_layer"),
-                           default="surface"),
-            "chunk_mb": _num("Block size read at a time (MB).", exclusive_minimum=0),
-        }, "How grid values are aggregated."),
-    },
-    "effort": {
-        "fishing": Table({
-            "form": _text("Pings or logbook (guessed from the columns when absent).", enum=("pings", "logbook")),
-            "speed_min_kn": _num("Lower end of the fishing speed window (knots).", exclusive_minimum=0, default=2.0),
-            "speed_max_kn": _num("Upper end of the fishing speed window (knots).", exclusive_minimum=0, default=5.0),
-            "max_gap_h": _num("Each half-interval a ping gets is capped at max_gap_h / 2.", exclusive_minimum=0,
-                              default=2.0),
-            "max_speed_kn": _num("Faster pings -> implausible_speed.", exclusive_minimum=0),
-            "pelagic_layer": _text("Depth layer of pelagic gears."),
-            "quarantine_rows": Value("integer", "How many rejected pings are kept row by row.", minimum=0),
-            "memory_limit": _text("DuckDB working memory of the ping ingest, e.g. 2GB."),
-            "gears": Map(Table({
-                "speed_min_kn": _num("Lower end of this gear's speed window (knots).", exclusive_minimum=0),
-                "speed_max_kn": _num("Upper end of this gear's speed window (knots).", exclusive_minimum=0),
-                "contact": _text("Where the gear fishes.", enum=("bottom", "pelagic")),
-                "layer": _text("Depth layer of this gear."),
-            }), "Per-gear overrides: [fishing.gears.CODE]."),
-        }, "Fishing-effort rules."),
-    },
-}
-
-
-def section_keys(kind: str, section: str) -> frozenset[str]:
-    """The keys of a closed kind-specific section (for adapters that check their own sections)."""
-    spec = KIND_SECTIONS[kind][section]
-    return frozenset(spec.keys) if isinstance(spec, Table) else frozenset()
-
-
 def profile_spec(kind: str, table_fields: Mapping[str, Sequence[FieldInfo]] | None = None) -> Table:
     """The profile definition of one kind.
 
     ``table_fields`` (role -> fields) names the adapter's fields; without it [columns], [units],
     [constants] and [formats] accept any field name (the loaders check them against the adapter).
     """
+    adapter = _adapter_class(kind)
     fields: dict[str, FieldInfo] = {}
     for specs in (table_fields or {}).values():
         for info in specs:
@@ -303,7 +251,7 @@ def profile_spec(kind: str, table_fields: Mapping[str, Sequence[FieldInfo]] | No
                        enum=tuple(dict.fromkeys(COORDINATE_FORMATS + FRACTION_FORMATS)))
 
     def column(info: FieldInfo) -> Value:
-        if info.type == "datetime" and kind in JOINED_KINDS:
+        if info.type == "datetime" and adapter.joins_date_time:
             return Value(COLUMN.type, info.description, any_of=COLUMN.any_of)
         return _text(info.description)
 
@@ -322,8 +270,10 @@ def profile_spec(kind: str, table_fields: Mapping[str, Sequence[FieldInfo]] | No
         columns = Table({n: column(f) for n, f in sorted(fields.items())}, "Adapter field = provider column name.")
     else:
         columns = Map(COLUMN, "Adapter field = provider column name.")
+    source = Table({**SOURCE.keys, "kind": _text("Source kind (adapter).", enum=kinds())},
+                   SOURCE.description, SOURCE.required)
     sections: dict[str, Value | Table | Map | TableArray] = {
-        "source": SOURCE,
+        "source": source,
         "columns": columns,
         "units": per_field(_text("Provider unit of the field."), "Provider unit of a field, when not the default."),
         "constants": per_field(Value("any", "Value of the field for every row."),
@@ -331,7 +281,7 @@ def profile_spec(kind: str, table_fields: Mapping[str, Sequence[FieldInfo]] | No
     }
     # the loader (no fields given) lets [formats] through for every kind: profile.py then says
     # which kinds read it, a clearer message than "unknown section"
-    if kind in FORMATS_KINDS or not fields:
+    if adapter.reads_formats or not fields:
         description = "How the provider writes a field: coordinates in degrees and minutes, fractions in percent."
         if fields:
             formats: Table | Map = Table({
@@ -341,7 +291,7 @@ def profile_spec(kind: str, table_fields: Mapping[str, Sequence[FieldInfo]] | No
         else:
             formats = Map(any_format, description)
         sections["formats"] = formats
-    sections.update(KIND_SECTIONS[kind])
+    sections.update(adapter.profile_sections)
     return Table(sections, f"A {kind} profile: how one provider's files map onto the {kind} adapter.",
                  required=("source",))
 
@@ -426,7 +376,7 @@ def adapter_fields(kind: str) -> dict[str, list[FieldInfo]]:
 def generated_schemas() -> dict[str, str]:
     """File name -> JSON text of every configuration schema (study.toml and each kind's profile)."""
     docs = {schema_file_name(None): study_json_schema()}
-    for kind in KINDS:
+    for kind in kinds():
         docs[schema_file_name(kind)] = profile_json_schema(kind, adapter_fields(kind))
     return {name: json.dumps(doc, indent=1, ensure_ascii=False) + "\n" for name, doc in docs.items()}
 

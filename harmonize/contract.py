@@ -14,7 +14,6 @@ from typing import Any
 
 import pandas as pd
 import pandera.pandas as pa
-import pyarrow as pa_arrow
 
 CONTRACT_VERSION = "1"
 
@@ -54,15 +53,17 @@ class FieldSpec:
 
 @cache
 def table_schema(name: str) -> dict[str, Any]:
-    """The parsed Table Schema ``schemas/<name>.schema.json``."""
-    path = resources.files("harmonize.schemas").joinpath(f"{name}.schema.json")
+    """The parsed Table Schema ``<name>.schema.json`` of harmonize.schemas.
+
+    An outside adapter names its own schemas ``"package:name"``: the file
+    ``<name>.schema.json`` shipped as data of that package.
+    """
+    package, _, stem = name.rpartition(":")
+    package = package or "harmonize.schemas"
+    path = resources.files(package).joinpath(f"{stem}.schema.json")
     if not path.is_file():
-        raise KeyError(f"no Table Schema named '{name}' in harmonize.schemas")
+        raise KeyError(f"no Table Schema named '{stem}' in {package}")
     return json.loads(path.read_text(encoding="utf-8"))
-
-
-def has_schema(name: str) -> bool:
-    return resources.files("harmonize.schemas").joinpath(f"{name}.schema.json").is_file()
 
 
 @cache
@@ -135,28 +136,9 @@ def pandera_schema(name: str, coerce_types: bool = False) -> pa.DataFrameSchema:
     return pa.DataFrameSchema(columns, name=name, strict=False)
 
 
-_ARROW_TYPES = {
-    "VARCHAR": pa_arrow.string(),
-    "DOUBLE": pa_arrow.float64(),
-    "INTEGER": pa_arrow.int32(),
-    "BIGINT": pa_arrow.int64(),
-    "BOOLEAN": pa_arrow.bool_(),
-    "TIMESTAMP": pa_arrow.timestamp("us"),
-    "VARCHAR[]": pa_arrow.list_(pa_arrow.string()),
-    "BIGINT[]": pa_arrow.list_(pa_arrow.int64()),
-}
-
-
 @cache
 def observation_columns() -> tuple[FieldSpec, ...]:
     return fields("observations")
-
-
-def observation_arrow_schema() -> pa_arrow.Schema:
-    """Arrow schema of the observations table, in contract column order."""
-    return pa_arrow.schema(
-        [pa_arrow.field(s.name, _ARROW_TYPES[s.sql_type or "VARCHAR"]) for s in observation_columns()]
-    )
 
 
 def observation_sql_columns() -> list[tuple[str, str]]:

@@ -20,7 +20,7 @@ import pyarrow as pa
 
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
 from harmonize.adapters.common import codes_in, distinct_present, swapped_position_notes
-from harmonize.adapters.registry import get_adapter
+from harmonize.adapters.registry import get_adapter, list_adapters
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns, validate_observations
 from harmonize.engines import engine_scope
 from harmonize.errors import ConfigError, DuplicateIngestError, HarmonizeError
@@ -171,6 +171,11 @@ def run(
                         inputs_sha256=inputs_sha, config_sha256=config_sha, started=started)
 
 
+def _finds_twins(kind: str) -> bool:
+    adapter = list_adapters().get(kind)
+    return adapter is not None and adapter.finds_twins
+
+
 def study_path(study: Study, path: str | Path) -> str:
     """A file's path relative to the study folder (posix), or its full path when outside it."""
     full = Path(path).resolve()
@@ -242,7 +247,8 @@ def store_output(
             finished_at=pd.Timestamp.now("UTC").tz_localize(None), rows_read=result.rows_read,
             rows_accepted=result.rows_accepted, rows_quarantined=result.rows_quarantined,
             records_written=result.records_written, records_zero_filled=result.records_zero_filled,
-            profile_file=profile.path.name, duplicates=twin_settings(profile, kind), file_path=main_path,
+            profile_file=profile.path.name, duplicates=twin_settings(profile) if _finds_twins(kind) else None,
+            file_path=main_path,
         )
 
         def on_conflict(previous: pd.DataFrame) -> list[str]:

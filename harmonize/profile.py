@@ -14,19 +14,17 @@ from typing import Any
 
 from harmonize.config_spec import (
     COORDINATE_FORMATS,
-    FORMATS_KINDS,
     FRACTION_FORMATS,
-    JOINED_KINDS,
-    KINDS,
     PROVIDER_TYPES,
     SOURCE,
     check_known,
+    kinds,
     profile_spec,
 )
 from harmonize.errors import ConfigError
 from harmonize.study import Study, resolve_inside
 
-__all__ = ["FORMATS_KINDS", "JOINED_KINDS", "KINDS", "PROVIDER_TYPES", "Profile", "find_profile", "load_profile", "peek_kind"]
+__all__ = ["PROVIDER_TYPES", "Profile", "find_profile", "load_profile", "peek_kind"]
 
 
 @dataclass(frozen=True, eq=False)
@@ -117,9 +115,7 @@ def load_profile(path: str | Path, study: Study, table_fields: Mapping[str, set[
         raise ConfigError(path, "[source]", "section is missing; it needs id, kind and provider_type")
     check_known(path, src, SOURCE, ("source",))
     source_id = _text(path, src, "id")
-    kind = _text(path, src, "kind")
-    if kind not in KINDS:
-        raise ConfigError(path, "source.kind", f"'{kind}' is not a source kind; expected one of {', '.join(KINDS)}")
+    kind = _check_kind(path, _text(path, src, "kind"))
     # every section and key must be known: a misspelt [unit] would silently keep the default units
     check_known(path, raw, profile_spec(kind))
     provider_type = _text(path, src, "provider_type")
@@ -169,13 +165,15 @@ def load_profile(path: str | Path, study: Study, table_fields: Mapping[str, set[
             raise ConfigError(path, f"formats.{key}", f"'{value}' is not a format; expected one of {', '.join(known_formats)}")
     joined = sorted(f"columns.{t}.{k}" if t != "rows" else f"columns.{k}"
                     for t, m in columns.items() for k, v in m.items() if isinstance(v, tuple))
-    if kind not in FORMATS_KINDS and (formats or joined):
+    formats_kinds = kinds(reads_formats=True)
+    if kind not in formats_kinds and (formats or joined):
         key = f"formats.{next(iter(formats))}" if formats else joined[0]
         raise ConfigError(path, key, f"[formats] and date and time in two columns are read for "
-                          f"{', '.join(FORMATS_KINDS[:-1])} and {FORMATS_KINDS[-1]} files only; "
+                          f"{', '.join(formats_kinds[:-1])} and {formats_kinds[-1]} files only; "
                           f"convert this {kind} file's column first")
-    if kind not in JOINED_KINDS and joined:
-        raise ConfigError(path, joined[0], f"date and time in two columns are joined for {', '.join(JOINED_KINDS)} "
+    joined_kinds = kinds(joins_date_time=True)
+    if kind not in joined_kinds and joined:
+        raise ConfigError(path, joined[0], f"date and time in two columns are joined for {', '.join(joined_kinds)} "
                           f"files only; map one column holding date and time")
     if all_fields:
         for section, mapping in (("units", units), ("constants", constants), ("formats", formats)):
@@ -217,9 +215,14 @@ def peek_kind(path: Path) -> str:
     src = raw.get("source")
     if not isinstance(src, Mapping):
         raise ConfigError(path, "[source]", "section is missing; it needs id, kind and provider_type")
-    kind = src.get("kind")
-    if kind not in KINDS:
-        raise ConfigError(path, "source.kind", f"'{kind}' is not a source kind; expected one of {', '.join(KINDS)}")
+    return _check_kind(path, src.get("kind"))
+
+
+def _check_kind(path: Path, kind: Any) -> str:
+    """``kind`` when an adapter is registered for it (built in or from an installed plug-in)."""
+    known = kinds()
+    if kind not in known:
+        raise ConfigError(path, "source.kind", f"'{kind}' is not a source kind; expected one of {', '.join(known)}")
     return str(kind)
 
 

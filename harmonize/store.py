@@ -51,7 +51,6 @@ JOURNAL_NAME = "moving.json"
 WRITE_LOCK = "write.lock"
 #: Beside each staging folder <name>: <name>.lock, held by the process working in it.
 LOCK_SUFFIX = ".lock"
-PARTITION_COLUMNS = ("source_kind", "season_year")
 #: Version of the store's tables (store_meta key ``store_version``); a store without the key
 #: is version 1. 2: the ``events_without_values`` table. 3: the sha256 and size of every
 #: manifest file (``observation_files.sha256``, ``size_bytes``), ``ingests.damage_reason`` and
@@ -750,7 +749,7 @@ class Store:
                 found.append(Damage(ingest_id, rel, problem))
         return found
 
-    def check(self, deep: bool = True) -> list[str]:
+    def check(self, deep: bool = True, row_traced_kinds: Sequence[str] | None = None) -> list[str]:
         """Integrity problems (empty list = the store is sound).
 
         Checks that the database is there when parquet files are (a lost database is a
@@ -758,8 +757,9 @@ class Store:
         and sha256 recorded when it was committed, is readable to the last page (``deep``)
         and holds the rows the manifest says; that every complete ingest satisfies
         rows_read = rows_accepted + rows_quarantined and records_written = rows in its files;
-        and that every data row of every input file is found among the accepted rows or in
-        the quarantine. A store of an older version is brought up to date first (which
+        and that every data row of every input file of the ``row_traced_kinds`` (default: the
+        registered kinds whose ``Adapter.row_traced`` is true) is found among the accepted rows
+        or in the quarantine. A store of an older version is brought up to date first (which
         records the checksums of its files) when the store can be written.
         """
         lost = self.lost_files()
@@ -768,6 +768,10 @@ class Store:
         if not self.exists():
             return []
         self.upgrade()
+        if row_traced_kinds is None:
+            from harmonize.adapters.registry import kinds
+
+            row_traced_kinds = kinds(row_traced=True)
         with self.connect(view=False) as con:
             problems = [str(d) for d in self._scrub(con, deep)]
             if problems:
@@ -802,16 +806,19 @@ class Store:
                 ).fetchall()
                 problems += [f"ingest {i}: event {e} is among the events without values but has observation rows"
                              for i, e in both]
-            problems += self._row_accounting(con)
+            problems += self._row_accounting(con, row_traced_kinds)
         return problems
 
     @staticmethod
-    def _row_accounting(con: duckdb.DuckDBPyConnection) -> list[str]:
+    def _row_accounting(con: duckdb.DuckDBPyConnection, kinds: Sequence[str]) -> list[str]:
         """Every data row 1..rows_read of each row-traced input file is accepted or quarantined.
 
         Accepted rows are found in the observations (events row, records rows) and, for
         accepted events that yield no observation row, in ``events_without_values``.
         """
+        if not kinds:
+            return []
+        traced = ", ".join("'" + k.replace("'", "''") + "'" for k in kinds)
         no_values = ("UNION SELECT ingest_id, source_file, source_row FROM events_without_values "
                      "WHERE source_row IS NOT NULL" if twins.has_table(con, "events_without_values") else "")
         rows = con.execute(
@@ -819,7 +826,7 @@ class Store:
             WITH files AS (
                 SELECT f.ingest_id, f.role, f.file_name, f.rows_read
                 FROM ingest_files f JOIN ingests i USING (ingest_id)
-                WHERE i.status = 'complete' AND i.source_kind IN ('trawl', 'plankton', 'transect', 'opportunistic')
+                WHERE i.status = 'complete' AND i.source_kind IN ({traced})
             ),
             seen AS (
                 SELECT ingest_id, source_file AS file_name, source_row AS row FROM observations

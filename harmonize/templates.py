@@ -4,17 +4,19 @@ from __future__ import annotations
 
 import json
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 from harmonize.config_spec import (
-    FORMATS_KINDS,
-    JOINED_KINDS,
-    KINDS,
     is_coordinate,
     is_fraction,
+    kinds,
     schema_file_name,
     shipped_schema,
 )
 from harmonize.errors import HarmonizeError
+
+if TYPE_CHECKING:
+    from harmonize.adapters.base import Adapter
 
 #: Folder of a study that holds the JSON Schemas of its configuration files (for editors).
 SCHEMA_DIR = "schemas"
@@ -75,92 +77,12 @@ min_vessels = 3               # fishing rows (cell x period x gear) of fewer ves
 generalise_deg = 0.1          # rounding (degrees) of events where a sensitive taxon was recorded
 '''
 
-TRAWL_PROFILE = '''\
-#:schema ../schemas/profile-trawl.schema.json
-# A profile maps one provider's files onto the trawl adapter's fields.
-# Fields not listed under [columns.*] are looked for under their own names.
+def starter_profile(kind: str) -> str:
+    """The example profile ``harmonize init`` writes for ``kind``: the adapter's worked example
+    (``Adapter.profile_starter``) or else the commented template of its fields."""
+    from harmonize.adapters.registry import adapter_class
 
-[source]
-id = "my_trawl_survey"        # unique in the study
-kind = "trawl"
-provider_type = "agency"      # agency | volunteer | industry | model | remote_sensing
-protocol = "standard_bottom_trawl"   # key into targets.csv: which taxa a haul always records
-timezone = "UTC"              # zone of times written without an offset
-
-[columns.events]              # hauls: adapter field = your column name
-event_id = "haul_id"
-start_time = "start_time"
-end_time = "end_time"
-start_lat = "start_lat"
-start_lon = "start_lon"
-end_lat = "end_lat"
-end_lon = "end_lon"
-net_width_m = "net_width_m"
-bottom_depth_m = "bottom_depth_m"
-
-[columns.records]             # catch rows
-event_id = "haul_id"
-taxon = "species"
-weight = "weight_kg"
-count = "number"
-
-[units]                       # provider units, when not the defaults (km, m, h, kg, knots, degC)
-# bottom_depth_m = "fathom"
-# weight = "g"
-
-[constants]                   # a value for every row when the files lack it
-# net_width_m = 17.0
-
-[formats]                     # how your files write a field, when not as decimal numbers
-# start_lat = "degrees_minutes"          # 41°50.159'N, 41 50.159 N, -41 50.159
-# start_lon = "degrees_minutes_seconds"  # 153°02'30"W, 153 02 30 W
-# date and time in two columns: in [columns.events] write start_time = ["DATE", "TIME"]
-'''
-
-_PROVIDER = {"trawl": "agency", "plankton": "agency", "transect": "agency", "opportunistic": "volunteer",
-             "gridded": "remote_sensing", "effort": "industry"}
-_PROTOCOL = {"trawl": "standard_bottom_trawl", "plankton": "standard_plankton_net",
-             "transect": "standard_seabird_strip", "opportunistic": "complete_checklist"}
-# Kind-specific sections with their defaults (see docs/sources/<kind>.md).
-_EXTRA = {
-    "plankton": """\
-[tow]
-# max_speed_m_s = 3.0         # faster distance through the water -> implausible_speed
-[clogging]
-# status_values = ["clogged"] # net_status notes that mean a clogged net
-# min_efficiency = 0.7        # net flowmeter distance / reference flowmeter distance
-""",
-    "transect": """\
-[strip]
-# flying = "snapshot"         # or "continuous": flying birds then get no density
-# max_speed_kn = 30           # faster segments -> implausible_speed
-""",
-    "opportunistic": """\
-[presence]
-# tokens = ["present"]        # words in the count column meaning "present, not counted"
-
-[duplicates]                  # a record this close to another source's record is a twin
-# distance_km = 2.0
-# minutes = 60
-""",
-    "gridded": """\
-[variables]                   # file variable = CF standard name
-# analysed_sst = "sea_surface_temperature"
-# chlor_a = "mass_concentration_of_chlorophyll_a_in_sea_water"
-
-[aggregate]
-# period = "month"            # month | season
-# layer = "surface"           # surface | near_bottom | by_layer
-""",
-    "effort": """\
-[fishing]
-# form = "pings"              # pings | logbook (guessed from the columns when absent)
-# speed_min_kn = 2.0          # fishing speed window for bottom trawl (common practice)
-# speed_max_kn = 5.0
-# max_gap_h = 2.0             # a ping gets half of each neighbouring interval, capped
-# pelagic_layer = "epipelagic"
-""",
-}
+    return adapter_class(kind).profile_starter or profile_template(kind)
 
 
 def profile_template(kind: str) -> str:
@@ -169,6 +91,7 @@ def profile_template(kind: str) -> str:
     from harmonize.contract import fields
 
     adapter = get_adapter(kind)
+    provider_type = adapter.default_provider_type
     article = "an" if kind[0] in "aeiou" else "a"
     lines = [
         schema_line(kind),
@@ -179,10 +102,10 @@ def profile_template(kind: str) -> str:
         "[source]",
         f'id = "my_{kind}_source"       # unique in the study',
         f'kind = "{kind}"',
-        f'provider_type = "{_PROVIDER[kind]}"   # agency | volunteer | industry | model | remote_sensing',
+        f'provider_type = "{provider_type}"   # agency | volunteer | industry | model | remote_sensing',
     ]
-    if kind in _PROTOCOL:
-        lines.append(f'protocol = "{_PROTOCOL[kind]}"   # key into targets.csv (zero-filling)')
+    if adapter.default_protocol:
+        lines.append(f'protocol = "{adapter.default_protocol}"   # key into targets.csv (zero-filling)')
     lines += ['timezone = "UTC"              # zone of times written without an offset',
               '# ambiguous_times = "earlier"   # a local time that happens twice (clocks going back):',
               '                              # "earlier" or "later" instant; unset: quarantined', ""]
@@ -212,17 +135,17 @@ def profile_template(kind: str) -> str:
     if units:
         lines += ["[units]                       # your units, when not the default shown"] + units + [""]
     lines += ["[constants]                   # a value for every row when the files lack it", "# field = value", ""]
-    lines += _formats_lines(kind, tables)
-    if kind in _EXTRA:
-        lines.append(_EXTRA[kind])
+    lines += _formats_lines(adapter, tables)
+    if adapter.profile_example:
+        lines.append(adapter.profile_example)
     return "\n".join(lines).rstrip() + "\n"
 
 
-def _formats_lines(kind: str, tables: list) -> list[str]:
+def _formats_lines(adapter: Adapter, tables: list) -> list[str]:
     """The [formats] section of a template: the kind's coordinate and fraction fields."""
     from harmonize.contract import fields
 
-    if kind not in FORMATS_KINDS:
+    if not adapter.reads_formats:
         return []
     lines = ["[formats]                     # how your files write a field, when not as decimal numbers"]
     times = []
@@ -236,7 +159,7 @@ def _formats_lines(kind: str, tables: list) -> list[str]:
             elif is_fraction(spec.type, spec.unit, spec.maximum):
                 lines.append(f'# {spec.name} = "percent"'.ljust(42)
                              + "# 25 means 25 %; 1/4, 25% and 0.25 are always read")
-            elif spec.type == "datetime" and kind in JOINED_KINDS:
+            elif spec.type == "datetime" and adapter.joins_date_time:
                 times.append((role, spec.name))
     if times:
         role, name = times[0]
@@ -266,16 +189,15 @@ def write_starter(folder: str | Path, name: str | None = None) -> list[Path]:
     (folder / "profiles").mkdir(parents=True, exist_ok=True)
     written = {
         folder / "study.toml": STUDY_TOML.format(name=name or folder.resolve().name),
-        folder / "profiles" / "example_trawl.toml": TRAWL_PROFILE,
         folder / "taxa.csv": TAXA_CSV,
         folder / "targets.csv": TARGETS_CSV,
         folder / "domain.geojson": json.dumps(_placeholder_domain(), indent=1),
     }
-    for kind in ("plankton", "transect", "opportunistic", "gridded", "effort"):
-        written[folder / "profiles" / f"example_{kind}.toml"] = profile_template(kind)
+    for kind in kinds():
+        written[folder / "profiles" / f"example_{kind}.toml"] = starter_profile(kind)
     # the JSON Schemas the #:schema lines point to: editors validate while the user types
     (folder / SCHEMA_DIR).mkdir(exist_ok=True)
-    for kind in (None, *KINDS):
+    for kind in (None, *kinds()):
         name = schema_file_name(kind)
         written[folder / SCHEMA_DIR / name] = shipped_schema(name)
     for path, text in written.items():

@@ -100,16 +100,15 @@ class TwinSettings:
     rank: int | None = None
 
 
-def twin_settings(profile: Profile, kind: str) -> TwinSettings | None:
-    """The validated ``[duplicates]`` section of an opportunistic profile; None for other kinds.
+def twin_settings(profile: Profile) -> TwinSettings:
+    """The validated ``[duplicates]`` section of a profile whose kind finds twins
+    (``Adapter.finds_twins``: volunteer records).
 
     Raises
     ------
     ConfigError
         Unknown key, a value that is not a positive number, or a window above the maximum.
     """
-    if kind != "opportunistic":
-        return None
     sec = profile.section("duplicates")
     unknown = sorted(set(sec) - {"distance_km", "minutes", "rank"})
     if unknown:

@@ -40,15 +40,9 @@ _LINEAR: dict[str, dict[str, float]] = {
         "m3": 1.0, "l": 1e-3, "L": 1e-3, "litre": 1e-3,
     },
 }
-_CANONICAL = {"distance": "km", "length": "m", "duration": "h", "mass": "kg", "speed": "kn",
-              "area": "m2", "volume": "m3", "temperature": "degC"}
 _TEMPERATURE = {"degC": (1.0, 0.0), "C": (1.0, 0.0), "celsius": (1.0, 0.0),
                 "K": (1.0, -273.15), "kelvin": (1.0, -273.15),
                 "degF": (5 / 9, -32 * 5 / 9), "F": (5 / 9, -32 * 5 / 9)}
-
-
-def canonical_unit(dimension: str) -> str:
-    return _CANONICAL[dimension]
 
 
 def known_units(dimension: str) -> list[str]:

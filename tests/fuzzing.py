@@ -4,8 +4,11 @@ A mutation takes the bytes of a valid CSV file and breaks it the way files break
 wild: a column deleted or two swapped, a wrong type or a hostile value in a cell, stray
 delimiters and quotes, a byte-order mark, a line in another encoding, blank lines, a
 truncated last line, the header repeated, other line endings. The oracle: harmonize either
-refuses the file with one line naming it, or accounts for every data row
-(rows_read = rows_accepted + rows_quarantined, one quarantine row per rejected row).
+refuses the file with one line naming it, or accounts for every data row: rows_read equals
+the data rows counted here, apart from the code under test, with the csv module
+(:func:`count_data_rows`), and every row is accepted or quarantined (one quarantine row per
+rejected row). An internal error ("internal ... error", "please report this") is a bug,
+never an acceptable refusal.
 """
 
 from __future__ import annotations
@@ -13,6 +16,7 @@ from __future__ import annotations
 import csv
 import io
 import json
+import re
 import shutil
 from collections.abc import Mapping
 from dataclasses import dataclass
@@ -22,6 +26,7 @@ from hypothesis import strategies as st
 
 from harmonize.errors import HarmonizeError
 from harmonize.ingest import IngestResult, run
+from harmonize.store import Store
 from harmonize.study import Study
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
@@ -228,11 +233,62 @@ def check_outcome(study: Study, profile: str, inputs: Mapping[str, Path], *, wri
         msg = str(exc)
         assert msg.strip(), "an error without a message"
         assert "\n" not in msg.strip(), f"the error is not one line: {msg!r}"
+        assert not INTERNAL_ERROR.search(msg), f"an internal error is a bug, not a refusal: {msg!r}"
         names = [Path(p).name for p in inputs.values()] + [profile, Path(profile).stem]
         assert any(n in msg for n in names), f"the error does not name the file: {msg!r}"
         return Outcome(msg, None)
     assert_accounted(result)
+    assert_rows_read(result, inputs)
     return Outcome(None, result)
+
+
+#: Words of the tool's own errors that mean a bug in it (an accounting that does not add up).
+INTERNAL_ERROR = re.compile(r"internal (accounting )?error|please report", re.IGNORECASE)
+#: Delimiters a provider's text file may use (the most frequent on the header line wins).
+DELIMITERS = (",", ";", "\t", "|")
+TEXT_SUFFIXES = (".csv", ".txt", ".tsv", ".tab")
+
+
+def count_data_rows(data: bytes) -> int | None:
+    """The data rows of a delimited text file as a person counts them; None if it is not one.
+
+    Independent of harmonize's readers: the bytes are decoded as UTF-8 (a byte-order mark
+    allowed) and split into records by Python's csv module (a quoted cell may span lines;
+    CR, LF and CRLF end a line); a record whose cells are all blank is no row; the first
+    other record is the header and every later one a data row (a repeated header, a short or
+    long row included: they are rows the ingest must quarantine). Common practice (RFC 4180
+    with blank lines skipped, as spreadsheet programs show a file).
+    """
+    try:
+        text = data.decode("utf-8-sig")
+    except UnicodeDecodeError:
+        return None
+    records = csv.reader(io.StringIO(text, newline=""), delimiter=_delimiter(text))
+    try:
+        filled = [r for r in records if any(cell.strip() for cell in r)]
+    except csv.Error:
+        return None
+    return max(len(filled) - 1, 0) if filled else None
+
+
+def _delimiter(text: str) -> str:
+    header = next((line for line in io.StringIO(text, newline="") if line.strip()), "")
+    counts = {d: header.count(d) for d in DELIMITERS}
+    best = max(counts, key=lambda d: counts[d])
+    return best if counts[best] else ","
+
+
+def assert_rows_read(result: IngestResult, inputs: Mapping[str, Path]) -> None:
+    """rows_read of each delimited text input equals the data rows counted by the test."""
+    paths = {Path(p).name: Path(p) for p in inputs.values()}
+    for f in result.files:
+        path = paths.get(f.path.name)
+        if path is None or path.suffix.lower() not in TEXT_SUFFIXES:
+            continue
+        expected = count_data_rows(path.read_bytes())
+        if expected is not None:
+            assert f.rows_read == expected, (f"{f.path.name}: rows_read {f.rows_read}, "
+                                             f"but the file holds {expected} data rows")
 
 
 def assert_accounted(result: IngestResult) -> None:
@@ -257,6 +313,20 @@ def assert_accounted(result: IngestResult) -> None:
         assert multi.empty, f"quarantine messages span lines: {multi.head(3).tolist()!r}"
         for raw in q["raw"].head(50):
             json.loads(raw)  # the raw row is kept as valid JSON text
+
+
+def store_state(store: Store) -> tuple[object, ...]:
+    """What a refused ingest must leave as it was: the ingests, the quarantine, the parquet files."""
+    folder = store.directory / "observations"
+    files = sorted((str(p.relative_to(store.directory)), p.stat().st_size) for p in folder.rglob("*.parquet")) \
+        if folder.is_dir() else []
+    if not store.exists():
+        return (None, None, files)
+    with store.connect(read_only=True, view=False) as con:
+        ingests = con.execute("SELECT ingest_id, status, rows_read, rows_accepted, rows_quarantined, "
+                              "records_written FROM ingests ORDER BY ingest_id").fetchall()
+        quarantined = con.execute("SELECT count(*) FROM quarantine").fetchall()[0][0]
+    return (ingests, quarantined, files)
 
 
 def write_inputs(folder: Path, originals: Mapping[str, Path], broken: Mapping[str, bytes]) -> dict[str, Path]:

@@ -56,7 +56,6 @@ def test_status_lists_events_without_values(study_dir: Path) -> None:
 
 
 def test_audit_through_the_api(study_dir: Path) -> None:
-    pytest.importorskip("harmonize.audit.run")
     hz = open_study(study_dir)
     hz.ingest("trawl_agency", events="hauls_messy.csv", records="catch_messy.csv")
     report = hz.audit()

@@ -59,6 +59,7 @@ def test_winter_2024_is_incomplete_and_fires_no_drop(demo) -> None:  # type: ign
     assert "2018-2023 (2024 incomplete)" in page.read_text(encoding="utf-8")
 
 
+@pytest.mark.browser
 @pytest.mark.parametrize("width", [800, 1400])
 def test_demo_report_in_chromium(demo, width: int, tmp_path: Path) -> None:  # type: ignore[no-untyped-def]
     _, page = demo

@@ -62,6 +62,7 @@ def test_json_has_the_contract_shape(study: Study, tmp_path: Path) -> None:
     assert doc["caution"] == CAUTION
 
 
+@pytest.mark.subprocess
 def test_cli_fail_on_exit_codes(study: Study, tmp_path: Path) -> None:
     out_json, out_html = tmp_path / "a.json", tmp_path / "a.html"
     run = _cli(study, "--fail-on", "no_samples", "--json", str(out_json), "--html", str(out_html))
@@ -82,6 +83,7 @@ def test_cli_fail_on_exit_codes(study: Study, tmp_path: Path) -> None:
     assert "unknown finding code(s) gaps; valid codes are no_samples" in bad.stderr
 
 
+@pytest.mark.subprocess
 def test_cli_without_a_store_is_a_usage_error(tmp_path: Path) -> None:
     empty = load_study(copy_fixture_study(tmp_path / "empty"))
     run = _cli(empty)
@@ -114,6 +116,7 @@ def chromium():
         yield b
 
 
+@pytest.mark.browser
 @pytest.mark.parametrize("width", [800, 1400])
 def test_report_renders_in_a_headless_browser(study: Study, chromium, tmp_path: Path, width: int) -> None:
     page = audit(study).write_html(tmp_path / "audit.html")
@@ -133,6 +136,7 @@ def test_report_renders_in_a_headless_browser(study: Study, chromium, tmp_path: 
         shutil.copy(shot, Path(os.environ["HARMONIZE_SCREENSHOT_DIR"]) / shot.name)
 
 
+@pytest.mark.browser
 def test_the_browser_check_sees_requests_errors_and_overflow(chromium, tmp_path: Path) -> None:
     # control: the same checks on a page that makes a request, logs an error and is too wide
     page = tmp_path / "bad.html"

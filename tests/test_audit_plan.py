@@ -199,6 +199,7 @@ def test_bad_arguments_are_named(aligned_study: Path, kwargs: dict, message: str
     assert "\n" not in str(err.value)
 
 
+@pytest.mark.subprocess
 def test_cli_plan_writes_csv_gpkg_json_and_refuses_bad_arguments(aligned_study: Path, tmp_path: Path) -> None:
     _hauls(aligned_study, [(IX0 + 2 + k, IY0) for k in range(4)])
     run = [str(BIN), "--study", str(aligned_study), "plan"]

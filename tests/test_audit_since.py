@@ -175,6 +175,7 @@ def test_older_foreign_and_other_study_jsons_are_refused(two_audits: dict, study
         study, tmp_path, json.dumps({k: v for k, v in data.items() if k != "ingest_years"}))
 
 
+@pytest.mark.subprocess
 def test_cli_since_and_fail_on_new(two_audits: dict, study: Study, tmp_path: Path) -> None:
     run = [str(BIN), "--study", str(study.root), "audit"]
     env = {**os.environ, "COLUMNS": "200"}

@@ -228,6 +228,7 @@ def test_every_verb_has_examples_and_no_python_type_names() -> None:
         assert not line.rstrip().endswith("..."), line
 
 
+@pytest.mark.subprocess
 def test_python_dash_m_and_completion_script() -> None:
     env = {**os.environ, "NO_COLOR": "1"}
     version = subprocess.run([sys.executable, "-m", "harmonize", "--version"], capture_output=True, text=True,
@@ -238,6 +239,7 @@ def test_python_dash_m_and_completion_script() -> None:
     assert script.returncode == 0 and "complete" in script.stdout
 
 
+@pytest.mark.subprocess
 def test_the_command_module_does_not_import_heavy_libraries() -> None:
     code = ("import sys, harmonize.cli.app; heavy = [m for m in ('pandas', 'pandera', 'geopandas', 'duckdb', "
             "'xarray', 'pyarrow', 'shapely') if m in sys.modules]; print(','.join(heavy))")

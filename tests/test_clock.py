@@ -147,7 +147,7 @@ def test_unknown_ambiguous_choice_is_a_config_error(study_dir: Path) -> None:
 
 def test_dates_beyond_nanoseconds_are_quarantined_not_a_crash(study_dir: Path) -> None:
     """Finding 9: year 2300 and year 1 go to quarantine with a reason (they used to crash)."""
-    from test_trawl_input import BASIC_PROFILE
+    from trawl_profiles import BASIC_PROFILE
 
     (study_dir / "profiles" / "trawl_basic.toml").write_text(BASIC_PROFILE)
     (study_dir / "h.csv").write_text(

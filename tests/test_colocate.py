@@ -124,6 +124,7 @@ def test_unknown_variable_and_source_are_explained(study_dir: Path) -> None:
         colocate(study, ["sea_surface_temperature"], sources={"sea_surface_temperature": "nope"})
 
 
+@pytest.mark.subprocess
 def test_cli_verb(study_dir: Path, tmp_path: Path) -> None:
     study = _gridded_store(study_dir)
     _samples(study)

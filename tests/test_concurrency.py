@@ -15,7 +15,11 @@ import textwrap
 import time
 from pathlib import Path
 
+import pytest
+
 from harmonize.store import Store
+
+pytestmark = [pytest.mark.subprocess, pytest.mark.slow]
 
 BIN = Path(sys.executable).parent / "harmonize"
 

@@ -12,7 +12,7 @@ import numpy as np
 import pytest
 from cli_runner import run_cli
 
-from harmonize.config_spec import KINDS, generated_schemas, schema_file_name, shipped_schema
+from harmonize.config_spec import generated_schemas, kinds, schema_file_name, shipped_schema
 from harmonize.demo.build import generators
 from harmonize.demo.sea import write_study
 from harmonize.errors import ConfigError
@@ -20,6 +20,7 @@ from harmonize.study import load_study
 from harmonize.templates import write_starter
 
 ROOT = Path(__file__).resolve().parent.parent
+KINDS = kinds()
 
 
 def _schema(name: str, fragment: bool = False) -> dict:

@@ -20,8 +20,8 @@ from pathlib import Path
 
 import pandas as pd
 import pytest
+from cli_runner import cli
 from hypothesis import settings
-from test_hostile_inputs import cli
 
 from harmonize.store import Store
 
@@ -81,6 +81,7 @@ def _serving(store: Store) -> tuple[pd.DataFrame, int]:
     return complete, int(n_rows)
 
 
+@pytest.mark.subprocess
 @pytest.mark.slow
 def test_random_sigkills_never_lose_or_mix_an_ingest(study_dir: Path, capsys: pytest.CaptureFixture[str]) -> None:
     rng = random.Random(int(os.environ.get("HARMONIZE_KILL_SEED", "11")))

@@ -18,6 +18,8 @@ from harmonize.demo.build import (
 )
 from harmonize.demo.sea import STRATA
 
+pytestmark = pytest.mark.slow
+
 
 @pytest.fixture(scope="module")
 def demo(tmp_path_factory: pytest.TempPathFactory) -> DemoRun:

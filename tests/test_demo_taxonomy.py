@@ -17,6 +17,8 @@ from harmonize.demo.sources import trawl
 from harmonize.ingest import run
 from harmonize.study import Study, load_study
 
+pytestmark = pytest.mark.slow
+
 BIN = Path(sys.executable).parent / "harmonize"
 
 
@@ -53,6 +55,7 @@ def test_demo_audit_reports_the_split_and_the_sparse_taxon(demo_trawl: Study) ->
 DENSITY = "{} (per km2)"
 
 
+@pytest.mark.subprocess
 def test_demo_wide_consistent_taxa_gives_a_continuous_series(demo_trawl: Study, tmp_path: Path) -> None:
     env = {**os.environ, "COLUMNS": "200"}
     plain, rolled = tmp_path / "plain.csv", tmp_path / "rolled.csv"

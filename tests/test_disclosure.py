@@ -188,6 +188,7 @@ def public_files(built: tuple[Study, ExportStore, dict[str, object]],
     return write_every_output(built[0], tmp_path_factory.mktemp("public"))
 
 
+@pytest.mark.subprocess
 def test_every_file_of_every_output_withholds_what_it_must(
         built: tuple[Study, ExportStore, dict[str, object]], public_files: list[Path]) -> None:
     names = {p.name for p in public_files}
@@ -203,6 +204,7 @@ def test_every_file_of_every_output_withholds_what_it_must(
     assert r1["data_generalizations"].str.contains("0.1 degree").all()
 
 
+@pytest.mark.subprocess
 def test_the_scan_finds_what_precise_output_holds(
         built: tuple[Study, ExportStore, dict[str, object]], tmp_path: Path) -> None:
     # the scan can fail: precise (internal) outputs hold every needle
@@ -239,6 +241,7 @@ def _event_positions(public_files: list[Path]) -> dict[str, pd.DataFrame]:
     return out
 
 
+@pytest.mark.subprocess
 def test_joining_any_two_outputs_recovers_nothing_withheld(
         built: tuple[Study, ExportStore, dict[str, object]], public_files: list[Path]) -> None:
     outputs = _event_positions(public_files)
@@ -263,6 +266,7 @@ def test_a_filter_cannot_ungeneralise_an_event(built: tuple[Study, ExportStore, 
     assert len(rows) == 1 and rows["lat"].iloc[0] == 42.9 and rows["cell_id"].isna().all()
 
 
+@pytest.mark.subprocess
 def test_counts_of_what_was_withheld_are_stated(built: tuple[Study, ExportStore, dict[str, object]],
                                                 public_files: list[Path]) -> None:
     meta = json.loads(next(p for p in public_files if p.name == "long.csv-metadata.json").read_text())
@@ -288,6 +292,7 @@ def test_fishing_aggregate_recovers_effort_without_disclosing(
     assert (every["n_vessels"] >= 3).all() and not every["event_id"].isin(["E1", "E2", "E3"]).any()
 
 
+@pytest.mark.subprocess
 def test_cli_precise_warns_and_records(built: tuple[Study, ExportStore, dict[str, object]], tmp_path: Path) -> None:
     out = tmp_path / "long.parquet"
     done = _cli(built[0].root, "export", "long", str(out), "--precise")
@@ -301,6 +306,7 @@ def test_cli_precise_warns_and_records(built: tuple[Study, ExportStore, dict[str
     assert read_export_metadata(tmp_path / "plain.parquet")["confidentiality"]["precise"] is False
 
 
+@pytest.mark.subprocess
 def test_twins_csv_generalises_both_records(tmp_path: Path) -> None:
     study, _ = export_study(tmp_path / "s")
     # V1's Aukelle minima (sensitive) record is the probable twin of T2's Lumbrena record
@@ -356,6 +362,7 @@ def _study_with(tmp_path: Path, section: str) -> Path:
     return folder
 
 
+@pytest.mark.subprocess
 def test_an_unknown_confidentiality_key_is_an_error(tmp_path: Path) -> None:
     folder = _study_with(tmp_path, "[confidentiality]\nmin_vessel = 10\n")
     with pytest.raises(ConfigError, match=r"confidentiality\.min_vessel: unknown key; did you mean 'min_vessels'\? "
@@ -377,6 +384,8 @@ def test_the_study_sets_the_rounding(tmp_path: Path) -> None:
         load_study(bad)
 
 
+@pytest.mark.slow
+@pytest.mark.subprocess
 def test_demo_outputs_pass_the_scan_for_precise_positions(tmp_path_factory: pytest.TempPathFactory) -> None:
     """The demo's outputs hold no exact position of a sensitive event and no withheld fishing cell-period."""
     from harmonize.demo.build import build_demo

@@ -54,6 +54,21 @@ def ping_study(study_dir: Path) -> Path:
     return study_dir
 
 
+@pytest.mark.parametrize("written", ["-inf", "infinity", "-Infinity"])
+def test_an_infinite_ping_time_is_bad_time(ping_study: Path, written: str) -> None:
+    # found by tests/test_fuzz_adapters.py: DuckDB reads these words as timestamps
+    path = ping_study / "pings_hand.csv"
+    lines = path.read_text().splitlines()
+    cells = lines[1].split(",")
+    cells[1] = written
+    lines[1] = ",".join(cells)
+    path.write_text("\n".join(lines) + "\n")
+    result = run(load_study(ping_study), "effort_pings", {"rows": path})
+    q = result.quarantine.set_index("source_row")
+    assert q.loc[1, "reason_code"] == "bad_time"
+    assert f"holds '{written}', which is not a date-time" in q.loc[1, "message"]
+
+
 def test_hand_worked_track(ping_study: Path) -> None:
     """Duplicates, gaps, a vessel crossing cells, slow steaming, a backwards time, a jump."""
     study = load_study(ping_study)

@@ -13,23 +13,22 @@ import shutil
 from collections.abc import Iterator
 from pathlib import Path
 
+import distributed
 import duckdb
 import numpy as np
 import pandas as pd
 import pytest
+from audit_stores import build_known_gaps
 
-pytest.importorskip("dask.dataframe")
-distributed = pytest.importorskip("distributed")
+from harmonize import Store, load_study, run
+from harmonize.audit.run import audit
+from harmonize.demo.sources.effort import simulate_pings
+from harmonize.engines import check_engine, current_engine, engine_scope
+from harmonize.engines.dask_engine import distance_m
+from harmonize.errors import HarmonizeError
+from harmonize.privacy import study_salt
 
-from audit_stores import build_known_gaps  # noqa: E402
-
-from harmonize import Store, load_study, run  # noqa: E402
-from harmonize.audit.run import audit  # noqa: E402
-from harmonize.demo.sources.effort import simulate_pings  # noqa: E402
-from harmonize.engines import check_engine, current_engine, engine_scope  # noqa: E402
-from harmonize.engines.dask_engine import distance_m  # noqa: E402
-from harmonize.errors import HarmonizeError  # noqa: E402
-from harmonize.privacy import study_salt  # noqa: E402
+pytestmark = pytest.mark.dask
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 
@@ -200,6 +199,7 @@ def test_engine_choice_and_errors(monkeypatch: pytest.MonkeyPatch) -> None:
         check_engine("spark")
 
 
+@pytest.mark.subprocess
 def test_cli_engine_option(study_dir: Path) -> None:
     import subprocess
     import sys

@@ -233,6 +233,7 @@ def _cli(study_dir: Path, *args: str) -> subprocess.CompletedProcess[str]:
                           capture_output=True, text=True, timeout=120)
 
 
+@pytest.mark.subprocess
 def test_cli_export_writes_and_reports(study: Study, built: ExportStore, tmp_path: Path) -> None:
     out = tmp_path / "grid.parquet"
     done = _cli(study.root, "export", "grid", str(out), "--kind", "effort,trawl", "--years", "2020")

@@ -63,6 +63,7 @@ def _rows(path: Path) -> int:
         return len(zf.read("event.txt").decode().splitlines()) - 1
 
 
+@pytest.mark.subprocess
 @pytest.mark.parametrize(("fmt", "name"), [("long", "long.csv"), ("long", "long.parquet"), ("wide", "wide.csv"),
                                           ("grid", "grid.parquet"), ("gpkg", "coverage.gpkg"), ("dwca", "dwca.zip")])
 def test_a_killed_export_leaves_the_earlier_file_or_a_complete_new_one(
@@ -122,6 +123,7 @@ def test_an_export_failing_half_way_leaves_the_earlier_file(exported_study: Path
     assert sorted(p.name for p in tmp_path.iterdir()) == ["coverage.gpkg"]  # no partial file left
 
 
+@pytest.mark.subprocess
 def test_an_export_into_the_store_is_refused(exported_study: Path, tmp_path: Path) -> None:
     study_dir = tmp_path / "study"
     shutil.copytree(exported_study, study_dir)

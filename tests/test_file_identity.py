@@ -8,6 +8,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pytest
+
 from harmonize import Store
 
 BIN = Path(sys.executable).parent / "harmonize"
@@ -34,6 +36,7 @@ def _rows_by_path(store: Store) -> dict[str, int]:
                                    GROUP BY 1 ORDER BY 1""").fetchall())
 
 
+@pytest.mark.subprocess
 def test_a_file_sharing_a_base_name_is_a_new_ingest_and_replace_names_its_target(study_dir: Path) -> None:
     y2020, y2019 = _year_folder(study_dir, 2020), _year_folder(study_dir, 2019)
     assert _ingest(study_dir, y2020).returncode == 0
@@ -72,6 +75,7 @@ def test_a_file_sharing_a_base_name_is_a_new_ingest_and_replace_names_its_target
     assert store.check() == []
 
 
+@pytest.mark.subprocess
 def test_the_same_content_under_another_path_is_not_ingested_twice(study_dir: Path) -> None:
     y2020 = _year_folder(study_dir, 2020)
     assert _ingest(study_dir, y2020).returncode == 0

@@ -21,6 +21,7 @@ from fuzzing import (
     check_outcome,
     mutate_all,
     mutations,
+    store_state,
     write_inputs,
 )
 from hypothesis import HealthCheck, given, settings
@@ -28,6 +29,8 @@ from hypothesis import strategies as st
 
 from harmonize.store import Store
 from harmonize.study import Study, load_study
+
+pytestmark = pytest.mark.slow
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 
@@ -84,8 +87,11 @@ def test_broken_file_committed_leaves_a_sound_store(fuzz_study: Study, kind: str
     profile, originals = TARGETS[kind]
     role = data.draw(st.sampled_from(sorted(originals)), label="role")
     inputs = _broken_inputs(fuzz_study, kind, role, _draw_mutations(data, kind, 3))
-    outcome = check_outcome(fuzz_study, profile, inputs, write=True, replace=True)
     store = Store(fuzz_study.store_dir)
+    before = store_state(store)
+    outcome = check_outcome(fuzz_study, profile, inputs, write=True, replace=True)
     if outcome.result is not None:
         assert outcome.result.status in ("complete", "unchanged")
         assert store.check() == []
+    else:  # a refused file changes nothing: no ingest recorded or superseded, no file left behind
+        assert store_state(store) == before, outcome.refused

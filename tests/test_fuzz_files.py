@@ -23,6 +23,8 @@ from hypothesis import strategies as st
 
 from harmonize.study import Study, load_study
 
+pytestmark = pytest.mark.slow
+
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 DWCA = FIXTURES / "opportunistic" / "dwca_checklists"
 _SETTINGS = settings(suppress_health_check=[HealthCheck.function_scoped_fixture, HealthCheck.too_slow])

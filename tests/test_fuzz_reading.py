@@ -38,7 +38,6 @@ def _read(path: Path, profile: Profile) -> tuple[list[str], list[list[object]], 
     return list(table.frame.columns), table.frame.to_numpy().tolist(), list(malformed)
 
 
-@pytest.mark.skipif(not hasattr(reading, "_read_csv_arrow"), reason="a single reading path")
 @_SETTINGS
 @given(sample=st.sampled_from(SAMPLES), ms=st.lists(mutations(), min_size=0, max_size=4))
 def test_arrow_and_line_readers_agree_on_broken_files(tmp_path: Path, sample: Path, ms: list[Mutation]) -> None:
@@ -67,3 +66,36 @@ def test_long_line_guard_matches_the_longest_line(tmp_path: Path, data: bytes, l
         refused = True
         assert "is longer than" in str(exc) and str(path) in str(exc)
     assert refused == (longest > limit)
+
+
+# ------------------------------------------------------------------ the oracle's own count
+@pytest.mark.parametrize(("data", "rows"), [
+    (b"a,b\n1,2\n3,4\n", 2),
+    (b"\xef\xbb\xbfa,b\n1,2\n", 1),                 # a byte-order mark is not a cell
+    (b"a,b\n\n1,2\n , \n,\n3,4", 2),                # blank lines and blank cells take no number
+    (b"a,b\r1,2\r3,4\r", 2),                        # bare carriage returns end lines
+    (b'a,b\n"x\ny",2\n3,4\n', 2),                   # a quoted cell spans two lines: one row
+    (b"a,b\n1,2\na,b\n1,2,3\n", 3),                 # a repeated header and a long row are rows
+    (b"a;b\n1,5;2\n", 1),                           # semicolons: the header's most frequent delimiter
+    (b"a,b\n1,\xe92\n", None),                      # not UTF-8: not a text file to count
+    (b"\n\n", None),                                # no header
+])
+def test_the_fuzz_oracle_counts_data_rows_as_a_person_does(data: bytes, rows: int | None) -> None:
+    from fuzzing import count_data_rows
+
+    assert count_data_rows(data) == rows
+
+
+def test_an_internal_error_is_never_an_acceptable_refusal(study: object, tmp_path: Path) -> None:
+    import fuzzing
+
+    from harmonize.errors import HarmonizeError
+
+    path = tmp_path / "hauls.csv"
+    path.write_text("a\n1\n")
+    message = f"internal accounting error in {path.name}: 3 rows read, 1 accepted + 1 quarantined; please report this"
+    with mock.patch.object(fuzzing, "run", side_effect=HarmonizeError(message)), \
+            pytest.raises(AssertionError, match="an internal error is a bug"):
+        fuzzing.check_outcome(study, "trawl_agency", {"rows": path})  # type: ignore[arg-type]
+    with mock.patch.object(fuzzing, "run", side_effect=HarmonizeError(f"{path.name}: the file has no header row")):
+        assert fuzzing.check_outcome(study, "trawl_agency", {"rows": path}).refused  # type: ignore[arg-type]

@@ -24,7 +24,7 @@ from pathlib import Path
 
 import duckdb
 import pytest
-from cli_runner import run_cli
+from cli_runner import cli
 
 from harmonize.store import Store
 from harmonize.study import load_study
@@ -32,12 +32,6 @@ from harmonize.study import load_study
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 DWCA = FIXTURES / "opportunistic" / "dwca_checklists"
 META_OK = (DWCA / "meta.xml").read_text()
-
-
-def cli(capsys: pytest.CaptureFixture[str], *args: str) -> tuple[int, str, str]:
-    """Run the harmonize command in this process (typer's runner): (exit code, stdout, stderr)."""
-    result = run_cli(*args)
-    return result.exit_code, result.stdout, result.stderr
 
 
 def assert_refused(result: tuple[int, str, str], *needles: str) -> str:
@@ -181,6 +175,7 @@ def _check_with_peak(study_dir: Path, events: Path) -> tuple[subprocess.Complete
     return out, int(out.stderr.strip().splitlines()[-1].split("=")[1]) / 1024
 
 
+@pytest.mark.subprocess
 def test_one_gigabyte_single_line_csv_is_refused_in_bounded_memory(study_dir: Path) -> None:
     # A real 1 GiB file (beyond its first 32 MiB of text the file system stores it sparse);
     # the refusal must come from a streaming guard, not from reading the line into memory.

@@ -8,6 +8,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pytest
+
 BIN = Path(sys.executable).parent / "harmonize"
 
 
@@ -16,6 +18,7 @@ def _run(*args: str) -> subprocess.CompletedProcess[str]:
                           env={"PATH": "/usr/bin:/bin", "COLUMNS": "250"})
 
 
+@pytest.mark.subprocess
 def test_a_file_name_with_a_line_break_cannot_forge_a_line(study_dir: Path) -> None:
     # A file named "hauls\nerror: forged.csv" once split the one-line messages and forged an
     # "error:" line in the quarantine listing. Its line break is shown escaped everywhere.
@@ -37,6 +40,7 @@ def test_a_file_name_with_a_line_break_cannot_forge_a_line(study_dir: Path) -> N
     assert len(again.stderr.strip().splitlines()) == 1 and "\\n" in again.stderr, again.stderr
 
 
+@pytest.mark.subprocess
 def test_a_million_column_header_is_refused_in_linear_time(study_dir: Path) -> None:
     # header.count(name) for every name was quadratic: 1e6 columns ran for more than 5 minutes.
     wide = study_dir / "wide.csv"

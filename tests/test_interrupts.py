@@ -58,6 +58,7 @@ def _started(proc: subprocess.Popen[str], signum: int) -> bool:
     return False
 
 
+@pytest.mark.subprocess
 @pytest.mark.parametrize("signum", [signal.SIGTERM, signal.SIGINT])
 def test_an_interrupted_ingest_says_so_in_one_line_and_leaves_the_store_whole(study_dir: Path, signum: int) -> None:
     rng = random.Random(signum)
@@ -95,6 +96,7 @@ def test_an_interrupted_ingest_says_so_in_one_line_and_leaves_the_store_whole(st
     assert any(o.startswith("interrupted") for o in outcomes), outcomes
 
 
+@pytest.mark.subprocess
 def test_an_interrupt_stops_a_running_duckdb_query(study_dir: Path, capsys: pytest.CaptureFixture[str]) -> None:
     # A query that would run for minutes stops within seconds: the handler interrupts every
     # open store connection (DuckDB raises "Query interrupted"), and the signal is remembered.

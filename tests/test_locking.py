@@ -41,6 +41,7 @@ def _holder(script: str) -> subprocess.Popen[str]:
     return proc
 
 
+@pytest.mark.subprocess
 def test_a_writer_killed_while_holding_the_lock_frees_it(study_dir: Path) -> None:
     holder = _holder(f"""
         import time
@@ -63,6 +64,7 @@ def test_a_writer_killed_while_holding_the_lock_frees_it(study_dir: Path) -> Non
     assert Store(study_dir / "store").check() == []
 
 
+@pytest.mark.subprocess
 def test_staging_is_cleaned_only_when_its_lock_is_free(study_dir: Path) -> None:
     store_dir = study_dir / "store"
     holder = _holder(f"""
@@ -110,6 +112,7 @@ _PAUSED_INGEST = """
 """
 
 
+@pytest.mark.subprocess
 @pytest.mark.skipif(os.geteuid() != 0 or shutil.which("unshare") is None,
                     reason="needs root and unshare(1) to start writers in separate PID namespaces")
 def test_two_writers_in_separate_pid_namespaces(study_dir: Path, tmp_path: Path) -> None:

@@ -20,11 +20,13 @@ from pathlib import Path
 import duckdb
 import pandas as pd
 import pytest
-from test_hostile_inputs import cli
+from cli_runner import cli
 
 from harmonize.adapters.darwin_core import is_archive, read_archive
 from harmonize.demo.build import DemoRun, build_demo
 from harmonize.privacy import SALT_FILE
+
+pytestmark = pytest.mark.slow
 
 PERSON_FIELDS = ("observer", "vessel_id")
 

@@ -63,6 +63,7 @@ def _rows_by_source(store: Store) -> dict[str, int]:
         return dict(con.execute("SELECT source_id, count(*) FROM observations GROUP BY 1").fetchall())
 
 
+@pytest.mark.subprocess
 def test_repair_drops_a_damaged_ingest_and_lists_what_to_ingest_again(study_copy: tuple[Path, str, str]) -> None:
     study_dir, first, second = study_copy
     store = Store(study_dir / "store")
@@ -103,6 +104,7 @@ def test_repair_drops_a_damaged_ingest_and_lists_what_to_ingest_again(study_copy
     assert _rows_by_source(store) == {"keldmar_trawl": 29, "keldmar_trawl_b": 29}
 
 
+@pytest.mark.subprocess
 def test_an_ingest_never_deletes_a_parquet_file_it_does_not_know(study_copy: tuple[Path, str, str]) -> None:
     study_dir, first, _ = study_copy
     store = Store(study_dir / "store")
@@ -123,6 +125,7 @@ def test_an_ingest_never_deletes_a_parquet_file_it_does_not_know(study_copy: tup
     assert store.check() == [] and store.unlisted_files() == []
 
 
+@pytest.mark.subprocess
 def test_repair_of_a_lost_database_sets_the_files_aside_and_starts_anew(study_copy: tuple[Path, str, str]) -> None:
     study_dir, first, second = study_copy
     store = Store(study_dir / "store")

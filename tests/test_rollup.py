@@ -92,6 +92,7 @@ def test_unknown_rank_is_refused(study: Study) -> None:
         read_long(study, ExportFilters(taxon_level="genera"))
 
 
+@pytest.mark.subprocess
 def test_cli_wide_consistent_taxa(study: Study, tmp_path: Path) -> None:
     out = tmp_path / "wide.csv"
     res = subprocess.run([str(BIN), "--study", str(study.root), "export", "wide", str(out), "--consistent-taxa"],

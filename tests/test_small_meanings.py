@@ -46,7 +46,7 @@ def test_docs_name_only_hooks_that_exist() -> None:
 def test_a_haul_whose_catch_rows_were_all_quarantined_is_not_a_sample(study_dir: Path) -> None:
     """docs/audit.md: what such a haul caught is unknown, so it infers no zero for any target
     and yields no observation row (it is kept in events_without_values)."""
-    from test_trawl_input import BASIC_PROFILE
+    from trawl_profiles import BASIC_PROFILE
 
     (study_dir / "profiles" / "trawl_basic.toml").write_text(BASIC_PROFILE)
     (study_dir / "h.csv").write_text(

@@ -7,6 +7,8 @@ import subprocess
 import sys
 from pathlib import Path
 
+import pytest
+
 BIN = Path(sys.executable).parent / "harmonize"
 
 
@@ -39,6 +41,7 @@ def _status(study_dir: Path, columns: str | None) -> str:
     return b"".join(chunks).decode("utf-8", "replace").replace("\r\n", "\n")
 
 
+@pytest.mark.subprocess
 def test_status_keeps_numbers_and_ids_whole(study_dir: Path) -> None:
     ingest = subprocess.run([str(BIN), "--study", str(study_dir), "ingest", "trawl_agency", "--events",
                              str(study_dir / "hauls_messy.csv"), "--records", str(study_dir / "catch_messy.csv")],

@@ -25,6 +25,7 @@ def _ingest(study_dir: Path, env: dict[str, str] | None = None,
     )
 
 
+@pytest.mark.subprocess
 @pytest.mark.parametrize("point", ["moving", "before_transaction", "before_commit", "after_commit"])
 def test_killed_ingest_leaves_all_or_nothing(study_dir: Path, point: str) -> None:
     killed = _ingest(study_dir, {"HARMONIZE_CRASH_AT": point})
@@ -51,6 +52,7 @@ def test_killed_ingest_leaves_all_or_nothing(study_dir: Path, point: str) -> Non
         assert not staging.is_dir() or list(staging.iterdir()) == []
 
 
+@pytest.mark.subprocess
 @pytest.mark.parametrize("point", ["moving", "before_transaction", "events_without_values", "before_commit",
                                    "after_commit"])
 def test_killed_ingest_with_an_empty_haul_leaves_all_or_nothing(study_dir: Path, point: str) -> None:
@@ -81,6 +83,7 @@ def test_killed_ingest_with_an_empty_haul_leaves_all_or_nothing(study_dir: Path,
         assert con.execute("SELECT count(*) FROM observations").fetchall()[0][0] == 15
 
 
+@pytest.mark.subprocess
 def test_second_writer_is_told_the_store_is_busy(study_dir: Path) -> None:
     _ingest(study_dir)
     holder = subprocess.Popen(
@@ -112,6 +115,7 @@ def test_second_writer_is_told_the_store_is_busy(study_dir: Path) -> None:
     assert len(store.ingests(include_superseded=False)) == 1
 
 
+@pytest.mark.subprocess
 def test_two_concurrent_ingests_of_different_sources_both_land(study_dir: Path) -> None:
     # A copy of the profile under another source id: two writers at once, both must commit.
     prof = study_dir / "profiles" / "trawl_agency.toml"
@@ -128,6 +132,7 @@ def test_two_concurrent_ingests_of_different_sources_both_land(study_dir: Path) 
     assert sorted(store.ingests()["source_id"]) == ["keldmar_trawl", "keldmar_trawl_b"]
 
 
+@pytest.mark.subprocess
 def test_store_written_before_a_new_column_still_reads(study_dir: Path) -> None:
     # Files written by an older harmonize lack columns that later joined the contract: the
     # observations view reads them as null instead of failing.

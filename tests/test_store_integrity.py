@@ -99,6 +99,7 @@ def test_a_bit_flip_sweep_is_caught_every_time(ingested: Path) -> None:
     assert store.check() == []
 
 
+@pytest.mark.subprocess
 def test_a_truncated_or_missing_file_is_named_with_its_ingest(ingested: Path) -> None:
     store = Store(ingested / "store")
     ingest_id, rel, _, _, size = _manifest(store)[0]
@@ -128,6 +129,7 @@ def test_a_same_size_rewrite_with_other_values_is_caught(ingested: Path) -> None
     assert problems and problems[0].startswith(f"ingest {ingest_id}: file {rel} ")
 
 
+@pytest.mark.subprocess
 def test_a_lost_database_is_not_an_empty_study(ingested: Path, tmp_path: Path) -> None:
     store = Store(ingested / "store")
     n_files = len(_manifest(store))

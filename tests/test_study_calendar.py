@@ -88,7 +88,7 @@ CATCH = "HAUL,SPECIES,WT_G,N\nNZ1,keld cod,1000,2\nW19,keld cod,1000,2\n"
 def test_ingest_tags_on_the_study_calendar(study_dir: Path, zone: str) -> None:
     """Finding 7's haul (08:00 on 1 December in a UTC+13 study) and a December haul whose
     season year (2020) lies outside a 2015-2019 target window."""
-    from test_trawl_input import BASIC_PROFILE
+    from trawl_profiles import BASIC_PROFILE
 
     text = (study_dir / "study.toml").read_text()
     (study_dir / "study.toml").write_text(text.replace('cell_size_km = 25', f'cell_size_km = 25\ntimezone = "{zone}"'))

@@ -6,12 +6,12 @@ from pathlib import Path
 
 import pytest
 
-from harmonize.adapters.registry import get_adapter
+from harmonize.adapters.registry import get_adapter, kinds
 from harmonize.profile import load_profile
 from harmonize.study import load_study
 from harmonize.templates import write_starter
 
-KINDS = ("trawl", "plankton", "transect", "opportunistic", "gridded", "effort")
+KINDS = kinds()
 
 
 def test_starter_study_loads(tmp_path: Path) -> None:

@@ -9,6 +9,7 @@ import pandas as pd
 import pytest
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
+from trawl_profiles import BASIC_PROFILE
 
 from harmonize import load_study, run
 from harmonize.errors import ConfigError, InputFileError, ReasonCode
@@ -21,36 +22,6 @@ CATCH = """HAUL,SPECIES,WT_G,N
 A1,keld cod,1000,2
 """
 
-
-BASIC_PROFILE = """
-[source]
-id = "keldmar_trawl_basic"
-kind = "trawl"
-provider_type = "agency"
-protocol = "keldmar_bottom_trawl"
-timezone = "UTC"
-
-[columns.events]
-event_id = "HAUL_NO"
-start_time = "START"
-end_time = "END"
-start_lat = "LAT_S"
-start_lon = "LON_S"
-end_lat = "LAT_E"
-end_lon = "LON_E"
-net_width_m = "WING_M"
-bottom_depth_m = "DEPTH_FM"
-
-[columns.records]
-event_id = "HAUL"
-taxon = "SPECIES"
-weight = "WT_G"
-count = "N"
-
-[units]
-bottom_depth_m = "fathom"
-weight = "g"
-"""
 
 
 @pytest.fixture(autouse=True)

@@ -11,7 +11,6 @@ import pytest
 from geographiclib.geodesic import Geodesic
 
 from harmonize import Store, load_study, run
-from harmonize.adapters.registry import list_adapters
 from harmonize.study import Study
 from harmonize.twins import local_distance_km, volunteer_only
 from tests.factories import store_frames
@@ -233,7 +232,6 @@ def test_volunteer_only_strata_and_seasons(study_dir: Path) -> None:
 
 
 # --------------------------------------------------------------------------- end to end
-@pytest.mark.skipif("transect" not in list_adapters(), reason="the transect adapter is not installed")
 def test_agency_transects_and_overlapping_volunteers_end_to_end(study_dir: Path) -> None:
     for f in ("segments_messy.csv", "birds_messy.csv"):
         shutil.copy(FIXTURES / "transect" / f, study_dir)
@@ -262,6 +260,7 @@ def test_agency_transects_and_overlapping_volunteers_end_to_end(study_dir: Path)
     assert agency_flagged == 0 and loose == 0
 
 
+@pytest.mark.subprocess
 def test_cli_ingest_then_twins_lists_the_pair(study_dir: Path, tmp_path: Path) -> None:
     import subprocess
     import sys

@@ -12,6 +12,7 @@ import numpy as np
 import pandas as pd
 
 from harmonize.adapters.reading import RawTable, Rejections, coerce_fields, read_table
+from harmonize.config_spec import Map, Table
 from harmonize.contract import fields
 from harmonize.profile import Profile
 from harmonize.study import Study
@@ -88,6 +89,51 @@ class Adapter(ABC):
     description: ClassVar[str]
     #: table role -> Table Schema name in harmonize.schemas; one-table kinds use "rows".
     tables: ClassVar[Mapping[str, str]]
+
+    # What the rest of the tool knows of a kind: every per-kind list (profile kinds, export
+    # selections, the audit's kind sets and order, the store's row tracing, Darwin Core effort
+    # words, the starter profiles) is derived from these attributes through the registry.
+
+    #: Events sample organisms (rows of the wide matrix, Darwin Core events and occurrences,
+    #: places a survey can plan); False for physical grids and fishing activity.
+    is_sample: ClassVar[bool] = True
+    #: Every accepted data row is found again by file and row number in the store (store
+    #: check); False where the "rows" are grid values or pings counted in bulk.
+    row_traced: ClassVar[bool] = True
+    #: The events' effort in words (Darwin Core samplingEffort); None: no sampling effort.
+    effort_words: ClassVar[str | None] = None
+    #: The effort's short name in the audit report ("area swept", "fishing hours").
+    effort_label: ClassVar[str] = "effort"
+    #: Yearly effort totals add this kind's effort up (False: gridded valid pixel area).
+    sums_effort: ClassVar[bool] = True
+    #: What one event is called where events of kinds are counted apart ("samples" for
+    #: samples; cell-periods of grids and fleets are never added to samples).
+    events_called: ClassVar[str] = "samples"
+    #: Events say where fishing happened, not where anyone sampled (no thin_samples or
+    #: coverage findings; fishing effort in Darwin Core events).
+    is_fishing_effort: ClassVar[bool] = False
+    #: The source follows a sampling design: a gap is an error and strata are checked;
+    #: False (volunteers, fleets): gaps are warnings.
+    designed: ClassVar[bool] = True
+    #: Its records are compared with other sources' for twins (probable_duplicate).
+    finds_twins: ClassVar[bool] = False
+    #: provider_type and protocol written into a starter profile (harmonize init).
+    default_provider_type: ClassVar[str] = "agency"
+    default_protocol: ClassVar[str | None] = None
+    #: Position among the kinds in reports and listings (lower first; ties by name).
+    display_order: ClassVar[int] = 100
+    #: The profile sections of this kind beyond [source], [columns], [units], [constants]
+    #: and [formats] (see docs/sources/<kind>.md); an unknown section is refused.
+    profile_sections: ClassVar[Mapping[str, Table | Map]] = {}
+    #: Those sections, commented, with their defaults: the end of a starter profile.
+    profile_example: ClassVar[str] = ""
+    #: A worked example profile written by ``harmonize init`` instead of the generated template.
+    profile_starter: ClassVar[str | None] = None
+    #: Fields are typed by reading.coerce_fields, which applies [formats] (degrees and
+    #: minutes, percent); False for kinds that read their files otherwise.
+    reads_formats: ClassVar[bool] = True
+    #: A date-time field may be mapped onto two provider columns ([date, time]).
+    joins_date_time: ClassVar[bool] = False
 
     def table_fields(self) -> dict[str, set[str]]:
         """Field names per table role, for profile validation."""

@@ -58,6 +58,7 @@ from harmonize.adapters.reading import (
 )
 from harmonize.adapters.registry import register
 from harmonize.clock import sql_local_problem, sql_offset_text, sql_resolved
+from harmonize.config_spec import Map, Table, Value, number, text
 from harmonize.contract import FieldSpec, fields
 from harmonize.engines import current_engine
 from harmonize.errors import ConfigError, InputFileError, ReasonCode
@@ -385,6 +386,42 @@ class EffortAdapter(Adapter):
                    "effort = fishing hours (h) per cell, season, gear and depth layer.")
     tables = {"rows": "effort_pings"}
     forms = {"pings": "effort_pings", "logbook": "effort_logbook"}
+    is_sample = False
+    row_traced = False
+    is_fishing_effort = True
+    effort_label = "fishing hours"
+    events_called = "fishing cell-periods"
+    designed = False
+    default_provider_type = "industry"
+    display_order = 60
+    reads_formats = False
+    profile_sections = {
+        "fishing": Table({
+            "form": text("Pings or logbook (guessed from the columns when absent).", enum=("pings", "logbook")),
+            "speed_min_kn": number("Lower end of the fishing speed window (knots).", exclusive_minimum=0, default=2.0),
+            "speed_max_kn": number("Upper end of the fishing speed window (knots).", exclusive_minimum=0, default=5.0),
+            "max_gap_h": number("Each half-interval a ping gets is capped at max_gap_h / 2.", exclusive_minimum=0,
+                                default=2.0),
+            "max_speed_kn": number("Faster pings -> implausible_speed.", exclusive_minimum=0),
+            "pelagic_layer": text("Depth layer of pelagic gears."),
+            "quarantine_rows": Value("integer", "How many rejected pings are kept row by row.", minimum=0),
+            "memory_limit": text("DuckDB working memory of the ping ingest, e.g. 2GB."),
+            "gears": Map(Table({
+                "speed_min_kn": number("Lower end of this gear's speed window (knots).", exclusive_minimum=0),
+                "speed_max_kn": number("Upper end of this gear's speed window (knots).", exclusive_minimum=0),
+                "contact": text("Where the gear fishes.", enum=("bottom", "pelagic")),
+                "layer": text("Depth layer of this gear."),
+            }), "Per-gear overrides: [fishing.gears.CODE]."),
+        }, "Fishing-effort rules."),
+    }
+    profile_example = """\
+[fishing]
+# form = "pings"              # pings | logbook (guessed from the columns when absent)
+# speed_min_kn = 2.0          # fishing speed window for bottom trawl (common practice)
+# speed_max_kn = 5.0
+# max_gap_h = 2.0             # a ping gets half of each neighbouring interval, capped
+# pelagic_layer = "epipelagic"
+"""
 
     def table_fields(self) -> dict[str, set[str]]:
         """Both forms map onto one ``[columns]`` table: the union of their fields."""
@@ -634,7 +671,8 @@ class PingReader:
                        self._clock_message_sql("nonexistent") if self.profile.timezone != "UTC" else "NULL"))
         checks.append(("clock = 'ambiguous' AND t IS NULL", ReasonCode.AMBIGUOUS_LOCAL_TIME,
                        self._clock_message_sql("ambiguous") if self.profile.timezone != "UTC" else "NULL"))
-        checks.append(("t IS NULL", ReasonCode.BAD_TIME,
+        # DuckDB reads 'infinity' and '-inf' as timestamps: not a date-time either
+        checks.append(("t IS NULL OR NOT isfinite(t)", ReasonCode.BAD_TIME,
                        f"printf('%s holds ''%s'', which is not a date-time (expected e.g. 2021-06-14T08:30:00Z)', "
                        f"{_sql_text(self._label('time'))}, cell_txt(time_txt))"))
         for f, col in (("lat", "lat"), ("lon", "lon_in"), ("speed_kn", "sog")):

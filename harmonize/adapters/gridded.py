@@ -33,6 +33,7 @@ import xarray as xr
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
 from harmonize.adapters.reading import EARLIEST_TIME, file_sha256
 from harmonize.adapters.registry import register
+from harmonize.config_spec import Map, Table, Value, number, text
 from harmonize.errors import ConfigError, InputFileError, ReasonCode
 from harmonize.gridded.aggregate import PERIODS, CellPeriodSums, Periods, assign_periods
 from harmonize.gridded.area import (
@@ -868,6 +869,36 @@ class GriddedAdapter(Adapter):
     description = ("Gridded satellite or ocean-model NetCDF (CF) -> area-weighted means per study cell, period "
                    "and layer; effort = valid pixel area (km2).")
     tables = {"rows": "gridded_rows"}
+    is_sample = False
+    row_traced = False
+    default_provider_type = "remote_sensing"
+    sums_effort = False
+    events_called = "gridded cell-periods"
+    display_order = 50
+    reads_formats = False
+    profile_sections = {
+        "variables": Map(Value("string", any_of=(
+            text("CF standard name of the variable."),
+            Table({"name": text("CF standard name."),
+                   "unit": text("Unit, checked against the file's units attribute."),
+                   "force_unit": text("Unit that replaces the file's units attribute.")}),
+        )), "File variable = CF standard name."),
+        "aggregate": Table({
+            "period": text("Aggregation period.", enum=("month", "season"), default="month"),
+            "layer": text("Layer mode of 3-D fields.", enum=("surface", "near_bottom", "by_layer"),
+                          default="surface"),
+            "chunk_mb": number("Block size read at a time (MB).", exclusive_minimum=0),
+        }, "How grid values are aggregated."),
+    }
+    profile_example = """\
+[variables]                   # file variable = CF standard name
+# analysed_sst = "sea_surface_temperature"
+# chlor_a = "mass_concentration_of_chlorophyll_a_in_sea_water"
+
+[aggregate]
+# period = "month"            # month | season
+# layer = "surface"           # surface | near_bottom | by_layer
+"""
 
     def read(
         self,

@@ -45,6 +45,7 @@ from harmonize.adapters.reading import (
 )
 from harmonize.adapters.registry import register
 from harmonize.clock import add_hours
+from harmonize.config_spec import Table, Value, number, text
 from harmonize.contract import fields
 from harmonize.errors import ConfigError, ReasonCode
 from harmonize.privacy import pseudonymise, study_salt
@@ -125,6 +126,34 @@ class OpportunisticAdapter(Adapter):
     description = ("Volunteer and opportunistic records (CSV or Darwin Core); complete checklists carry "
                    "effort in hours observed and zeros, incidental records are presence-only.")
     tables = {"rows": SCHEMA}
+    effort_words = "time observed on a complete checklist"
+    effort_label = "hours observed"
+    designed = False
+    finds_twins = True
+    default_provider_type = "volunteer"
+    default_protocol = "complete_checklist"
+    display_order = 40
+    profile_sections = {
+        "presence": Table({"tokens": Value("array", "Words in the count column meaning 'present, not counted' "
+                                                    "(default [\"present\"]; compared without case).",
+                                           items="string")},
+                          "Markers for a record noted but not counted."),
+        "plausibility": Table({"earliest": text("Records before this date are bad_time.")},
+                              "Plausibility of volunteer records."),
+        "duplicates": Table({
+            "distance_km": number("Twin window in space (km).", exclusive_minimum=0, default=2.0),
+            "minutes": number("Twin window in time (minutes).", exclusive_minimum=0, default=60),
+            "rank": Value("integer", "Rank of this source among twins (0 = kept first).", minimum=0),
+        }, "Cross-source duplicates."),
+    }
+    profile_example = """\
+[presence]
+# tokens = ["present"]        # words in the count column meaning "present, not counted"
+
+[duplicates]                  # a record this close to another source's record is a twin
+# distance_km = 2.0
+# minutes = 60
+"""
 
     def read(
         self,
@@ -133,7 +162,7 @@ class OpportunisticAdapter(Adapter):
         study: Study,
         progress: ProgressCallback | None = None,
     ) -> AdapterOutput:
-        twin_settings(profile, self.kind)  # a bad [duplicates] section fails before any reading
+        twin_settings(profile)  # a bad [duplicates] section fails before any reading
         earliest = _earliest(profile)
         presence_tokens = _presence_tokens(profile)
         rej = Rejections()

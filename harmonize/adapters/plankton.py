@@ -41,6 +41,7 @@ from harmonize.adapters.common import (
 from harmonize.adapters.reading import Rejections
 from harmonize.adapters.registry import register
 from harmonize.clock import add_hours
+from harmonize.config_spec import Table, Value, number
 from harmonize.errors import ConfigError, ReasonCode
 from harmonize.profile import Profile
 from harmonize.study import Study
@@ -111,6 +112,27 @@ class PlanktonAdapter(Adapter):
     kind = "plankton"
     description = "Plankton net tows and their counts by taxon and life stage; effort = volume filtered (m3)."
     tables = {"events": "plankton_events", "records": "plankton_records"}
+    effort_words = "volume of water filtered"
+    effort_label = "volume filtered"
+    default_protocol = "standard_plankton_net"
+    display_order = 20
+    joins_date_time = True
+    profile_sections = {
+        "tow": Table({"max_speed_m_s": number("Faster distance through the water -> implausible_speed.",
+                                              exclusive_minimum=0, default=3.0)}, "Tow plausibility."),
+        "clogging": Table({
+            "status_values": Value("array", "net_status notes that mean a clogged net.", items="string"),
+            "min_efficiency": number("Lowest filtration efficiency (net / reference flowmeter distance).",
+                                     exclusive_minimum=0, maximum=1),
+        }, "Clogged-net rules."),
+    }
+    profile_example = """\
+[tow]
+# max_speed_m_s = 3.0         # faster distance through the water -> implausible_speed
+[clogging]
+# status_values = ["clogged"] # net_status notes that mean a clogged net
+# min_efficiency = 0.7        # net flowmeter distance / reference flowmeter distance
+"""
 
     def read(
         self,

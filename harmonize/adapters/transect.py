@@ -51,6 +51,7 @@ from harmonize.adapters.reading import (
 )
 from harmonize.adapters.registry import register
 from harmonize.clock import add_hours
+from harmonize.config_spec import Table, number, text
 from harmonize.contract import fields
 from harmonize.errors import ConfigError, ReasonCode
 from harmonize.privacy import pseudonymise, study_salt
@@ -112,6 +113,22 @@ class TransectAdapter(Adapter):
     kind = "transect"
     description = "Ship-based seabird strip-transect segments and their birds by taxon; effort = strip area (km2)."
     tables = {"events": "transect_events", "records": "transect_records"}
+    effort_words = "strip area surveyed"
+    effort_label = "strip area"
+    default_protocol = "standard_seabird_strip"
+    display_order = 30
+    joins_date_time = True
+    profile_sections = {
+        "strip": Table({
+            "flying": text("How flying birds were counted.", enum=("snapshot", "continuous"), default="snapshot"),
+            "max_speed_kn": number("Faster segments -> implausible_speed.", exclusive_minimum=0, default=30),
+        }, "Strip-transect rules."),
+    }
+    profile_example = """\
+[strip]
+# flying = "snapshot"         # or "continuous": flying birds then get no density
+# max_speed_kn = 30           # faster segments -> implausible_speed
+"""
 
     def read(
         self,

@@ -73,6 +73,52 @@ class TrawlAdapter(Adapter):
     kind = "trawl"
     description = "Bottom-trawl hauls and their catch by taxon; effort = area swept (km2)."
     tables = {"events": "trawl_events", "records": "trawl_records"}
+    effort_words = "area swept by the net"
+    effort_label = "area swept"
+    default_protocol = "standard_bottom_trawl"
+    display_order = 10
+    joins_date_time = True
+    profile_starter = """\
+#:schema ../schemas/profile-trawl.schema.json
+# A profile maps one provider's files onto the trawl adapter's fields.
+# Fields not listed under [columns.*] are looked for under their own names.
+
+[source]
+id = "my_trawl_survey"        # unique in the study
+kind = "trawl"
+provider_type = "agency"      # agency | volunteer | industry | model | remote_sensing
+protocol = "standard_bottom_trawl"   # key into targets.csv: which taxa a haul always records
+timezone = "UTC"              # zone of times written without an offset
+
+[columns.events]              # hauls: adapter field = your column name
+event_id = "haul_id"
+start_time = "start_time"
+end_time = "end_time"
+start_lat = "start_lat"
+start_lon = "start_lon"
+end_lat = "end_lat"
+end_lon = "end_lon"
+net_width_m = "net_width_m"
+bottom_depth_m = "bottom_depth_m"
+
+[columns.records]             # catch rows
+event_id = "haul_id"
+taxon = "species"
+weight = "weight_kg"
+count = "number"
+
+[units]                       # provider units, when not the defaults (km, m, h, kg, knots, degC)
+# bottom_depth_m = "fathom"
+# weight = "g"
+
+[constants]                   # a value for every row when the files lack it
+# net_width_m = 17.0
+
+[formats]                     # how your files write a field, when not as decimal numbers
+# start_lat = "degrees_minutes"          # 41°50.159'N, 41 50.159 N, -41 50.159
+# start_lon = "degrees_minutes_seconds"  # 153°02'30"W, 153 02 30 W
+# date and time in two columns: in [columns.events] write start_time = ["DATE", "TIME"]
+"""
 
     def read(
         self,

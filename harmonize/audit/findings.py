@@ -49,6 +49,7 @@ from typing import Any
 import numpy as np
 import pandas as pd
 
+from harmonize.adapters.registry import kinds as registered_kinds
 from harmonize.audit.metrics import ALL_BIOLOGICAL, Metrics
 from harmonize.audit.periods import incomplete_keys
 from harmonize.errors import ConfigError
@@ -58,10 +59,17 @@ from harmonize.tagging import season_year_offsets
 CODES = ("no_samples", "thin_samples", "coverage_drop", "missing_year", "few_encounters",
          "volunteer_only", "source_disagreement", "resolution_change")
 SEVERITIES = ("error", "warning", "info")
-#: Kinds that describe where fishing happened, not where anyone sampled.
-EFFORT_KINDS = ("effort",)
-#: Kinds without a sampling design: their gaps are warnings, and strata are not checked.
-UNDESIGNED_KINDS = ("opportunistic", "effort")
+
+
+def effort_kinds() -> tuple[str, ...]:
+    """Kinds that describe where fishing happened, not where anyone sampled."""
+    return registered_kinds(is_fishing_effort=True)
+
+
+def undesigned_kinds() -> tuple[str, ...]:
+    """Kinds without a sampling design: their gaps are warnings, and strata are not checked."""
+    return registered_kinds(designed=False)
+
 VOLUNTEER = "volunteer"
 #: A gap or shortfall whose probability under the earlier years' mean (Poisson) is below this
 #: is an error; above it, chance explains it and it is a note. 1 % is the conventional "highly
@@ -120,10 +128,6 @@ def _plain(value: Any) -> Any:
     if isinstance(value, list | tuple):
         return [_plain(v) for v in value]
     return value
-
-
-def _int(value: Any) -> int | None:
-    return None if value is None or pd.isna(value) else int(value)
 
 
 def _str(value: Any) -> str | None:
@@ -291,7 +295,7 @@ def no_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
         if level == "layer":
             frame = frame[frame["depth_layer"].notna()]
         if level == "stratum":  # volunteers and fleets choose where they go: no stratum design
-            frame = frame[~frame["source_kind"].isin(UNDESIGNED_KINDS)]
+            frame = frame[~frame["source_kind"].isin(undesigned_kinds())]
         grid = _complete_only(_usually_sampled_but_not(_history(frame, kind_years, ["season", *extra])), m)
         if year is not None:
             grid = grid[grid["season_year"] == year]
@@ -306,7 +310,7 @@ def no_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
             elif key in empty_seasons:
                 continue
             planned = level == "stratum" and r.earlier_sampled == r.earlier_years
-            severity = _evidence_severity(float(p), r.source_kind not in UNDESIGNED_KINDS,
+            severity = _evidence_severity(float(p), r.source_kind not in undesigned_kinds(),
                                           lost_most=planned and r.earlier_mean >= study.audit.min_events)
             where = {"season": f"{r.season}", "layer": f"{_layer(getattr(r, 'depth_layer', None))} in {r.season}",
                      "stratum": f"stratum {getattr(r, 'stratum', '')} in {r.season}"}[level]
@@ -379,7 +383,7 @@ def thin_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
     """
     need = study.audit.min_events
     le = m.layer_events[m.layer_events["season_year"].notna() & m.layer_events["season"].notna()
-                        & ~m.layer_events["source_kind"].isin(EFFORT_KINDS)]
+                        & ~m.layer_events["source_kind"].isin(effort_kinds())]
     kind_years = le[["source_kind", "season_year"]].drop_duplicates()
     grid = _history(le, kind_years, ["season", "depth_layer"])
     thin = _complete_only(grid[(grid["events"] > 0) & (grid["events"] < need)], m)
@@ -388,7 +392,7 @@ def thin_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
     p_few = poisson_cdf(thin["events"].to_numpy("int64"), thin["earlier_mean"].to_numpy(float))
     out = []
     for r, p in zip(thin.itertuples(index=False), p_few, strict=True):
-        severity = _evidence_severity(float(p), r.source_kind not in UNDESIGNED_KINDS)
+        severity = _evidence_severity(float(p), r.source_kind not in undesigned_kinds())
         out.append(Finding(
             "thin_samples", severity,
             f"Only {int(r.events)} {r.source_kind} sample{'s' if r.events != 1 else ''} in "
@@ -406,7 +410,7 @@ def thin_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
     # planned strata (a designed kind sampled them in every one of at least two earlier years,
     # at least min_events a year on average) that kept less than LOST_MOST of their samples
     se = m.stratum_events[m.stratum_events["season_year"].notna() & m.stratum_events["season"].notna()
-                          & ~m.stratum_events["source_kind"].isin(UNDESIGNED_KINDS)]
+                          & ~m.stratum_events["source_kind"].isin(undesigned_kinds())]
     sg = _history(se, kind_years, ["season", "stratum"])
     lost = sg[(sg["events"] > 0) & (sg["earlier_years"] >= 2) & (sg["earlier_sampled"] == sg["earlier_years"])
               & (sg["earlier_mean"] >= need) & (sg["events"] < LOST_MOST * sg["earlier_mean"])]
@@ -433,7 +437,7 @@ def thin_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
 def coverage_drop(m: Metrics, study: Study, year: int | None) -> list[Finding]:
     """Seasons whose share of domain cells fell below the study's fraction of the earlier median."""
     share = study.audit.coverage_drop
-    cov = m.coverage[(m.coverage["events"] > 0) & ~m.coverage["source_kind"].isin(EFFORT_KINDS)]
+    cov = m.coverage[(m.coverage["events"] > 0) & ~m.coverage["source_kind"].isin(effort_kinds())]
     if "complete" in cov:  # a season the data do not cover to its end is no drop
         cov = cov[cov["complete"].astype(bool)]
     out: list[Finding] = []

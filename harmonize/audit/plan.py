@@ -39,6 +39,7 @@ import numpy as np
 import pandas as pd
 import pyproj
 
+from harmonize.adapters.registry import kinds as registered_kinds
 from harmonize.audit.metrics import build_event_table
 from harmonize.audit.run import domain_cells
 from harmonize.errors import HarmonizeError
@@ -46,8 +47,11 @@ from harmonize.store import Store
 from harmonize.study import Study
 from harmonize.tagging import Grid, assign_strata
 
-#: Kinds no one places: fishing fleets and grids.
-UNPLANNED_KINDS = ("effort", "gridded")
+
+def unplanned_kinds() -> tuple[str, ...]:
+    """Kinds no one places (fishing fleets and grids): those whose events are not samples."""
+    return registered_kinds(is_sample=False)
+
 #: Label of domain cells outside every stratum (or of all cells when the study has none).
 NO_STRATUM = "(no stratum)"
 #: At most this many distances are computed at once (bounded memory on large grids).
@@ -327,9 +331,9 @@ def plan_samples(study: Study, source_kind: str, n_samples: int, *, seasons: Seq
     """
     if isinstance(n_samples, bool) or not isinstance(n_samples, int | np.integer) or n_samples < 1:
         raise HarmonizeError(f"the number of added samples must be a whole number of 1 or more, got {n_samples!r}")
-    if source_kind in UNPLANNED_KINDS:
+    if source_kind in unplanned_kinds():
         raise HarmonizeError(f"cannot plan {source_kind} samples: nobody places fishing effort or grid values; "
-                             "plan a surveyed kind (trawl, plankton, transect, opportunistic)")
+                             f"plan a surveyed kind ({', '.join(registered_kinds(is_sample=True))})")
     if not min_distance_km >= 0:
         raise HarmonizeError(f"the minimum distance must be 0 km or more, got {min_distance_km!r}")
     lo, hi = depth_range_m if depth_range_m is not None else (None, None)
@@ -348,7 +352,7 @@ def plan_samples(study: Study, source_kind: str, n_samples: int, *, seasons: Seq
         kinds = [r[0] for r in con.execute("SELECT DISTINCT source_kind FROM observations ORDER BY 1").fetchall()]
         if source_kind not in kinds:
             raise HarmonizeError(f"the store holds no {source_kind!r} records; kinds in the store: "
-                                 f"{', '.join(k for k in kinds if k not in UNPLANNED_KINDS) or 'none'}")
+                                 f"{', '.join(k for k in kinds if k not in unplanned_kinds()) or 'none'}")
         build_event_table(con, cells, study.min_vessels)
         con.register("_plan_seasons", pd.DataFrame({"season": list(season_names)}))
         con.register("_plan_layers", pd.DataFrame({"depth_layer": list(layer_names)}))

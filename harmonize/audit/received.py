@@ -13,12 +13,16 @@ from dataclasses import dataclass
 import duckdb
 import pandas as pd
 
+from harmonize.adapters.registry import kinds
 from harmonize.audit.metrics import _KEPT, DUPLICATE_FLAG, _year_filter
 from harmonize.disclosure import Disclosure
 from harmonize.twins import has_table
 
-#: Kinds whose effort is a sampling effort worth a yearly total (gridded pixel area is not).
-EFFORT_TOTAL_EXCLUDED = ("gridded",)
+
+def effort_total_excluded() -> tuple[str, ...]:
+    """Kinds whose effort is no sampling effort worth a yearly total (gridded pixel area)."""
+    return kinds(sums_effort=False)
+
 
 
 @dataclass
@@ -83,7 +87,7 @@ def received(con: duckdb.DuckDBPyConnection, max_year: int | None = None, rules:
     superseded = int(con.execute(f"SELECT count(*) FROM ingests WHERE NOT ({live})").fetchall()[0][0])
     meta = (dict(con.execute("SELECT key, value FROM store_meta").fetchall())
             if has_table(con, "store_meta") else {})
-    excluded = ", ".join(f"'{k}'" for k in EFFORT_TOTAL_EXCLUDED)
+    excluded = ", ".join(f"'{k}'" for k in effort_total_excluded()) or "''"
     if has_table(con, "audit_cells") and con.execute(
             "SELECT count(*) FILTER (WHERE effort_unit IS NOT NULL) FROM audit_cells").fetchall()[0][0]:
         # the audit's event pass already holds one effort value per event: no second pass

@@ -10,6 +10,8 @@ import numpy as np
 import pandas as pd
 
 from harmonize import __version__
+from harmonize.adapters.registry import kinds as registered_kinds
+from harmonize.adapters.registry import list_adapters
 from harmonize.audit.findings import CODES, Finding
 from harmonize.audit.metrics import ALL_BIOLOGICAL
 from harmonize.audit.readiness import readiness_html
@@ -18,8 +20,6 @@ if TYPE_CHECKING:
     from harmonize.audit.ranking import FindingGroup
     from harmonize.audit.run import AuditResult
 
-#: Order in which source kinds appear; others follow alphabetically.
-KIND_ORDER = (ALL_BIOLOGICAL, "trawl", "plankton", "transect", "opportunistic", "gridded", "effort")
 KIND_LABEL = {ALL_BIOLOGICAL: "all biological sources"}
 #: Okabe and Ito (2008), "Color Universal Design": colours told apart with colour-vision deficiency.
 SEASON_COLOURS = ("#0072B2", "#009E73", "#E69F00", "#CC79A7", "#56B4E9", "#D55E00", "#000000", "#F0E442")
@@ -116,8 +116,14 @@ def _e(value: object) -> str:
     return escape("" if value is None else str(value))
 
 
+def kind_order() -> tuple[str, ...]:
+    """Order in which source kinds appear (Adapter.display_order); others follow alphabetically."""
+    return (ALL_BIOLOGICAL, *registered_kinds())
+
+
 def _kind_key(kind: str) -> tuple[int, str]:
-    return (KIND_ORDER.index(kind) if kind in KIND_ORDER else len(KIND_ORDER), kind)
+    order = kind_order()
+    return (order.index(kind) if kind in order else len(order), kind)
 
 
 def _kinds(values: Sequence[str] | pd.Series) -> list[str]:
@@ -137,11 +143,10 @@ def _shade(t: float) -> tuple[str, str]:
 
 def _what(kind: str, short: bool = False) -> str:
     """What one counted event of a kind is: biological samples and cell-periods are never added up."""
-    if kind == "gridded":
-        return "cell-periods" if short else "gridded cell-periods"
-    if kind == "effort":
-        return "cell-periods" if short else "fishing cell-periods"
-    return "samples"
+    adapter = list_adapters().get(kind)
+    if adapter is None or adapter.is_sample:
+        return "samples"
+    return "cell-periods" if short else adapter.events_called
 
 
 def _amount(v: float) -> str:
@@ -181,8 +186,8 @@ def _summary(result: AuditResult) -> str:
         return int(ext.loc[ext["source_kind"] == kind, column].sum()) if len(ext) else 0
 
     # biological samples, gridded cell-periods and fishing cell-periods are never added up
-    counted = [(total(ALL_BIOLOGICAL), "biological samples"), (total("gridded"), "gridded cell-periods"),
-               (total("effort"), "fishing cell-periods"),
+    counted = [(total(ALL_BIOLOGICAL), "biological samples"),
+               *((total(k), _what(k)) for k in registered_kinds(is_sample=False)),
                (total(ALL_BIOLOGICAL, "presence_only_events"), "presence-only events")]
     cards = [
         f'<div class="card error"><b>{counts["error"]}</b><span>errors</span></div>',
@@ -595,8 +600,8 @@ def _effort(result: AuditResult) -> str:
     for (kind, unit), g in eff.groupby(["source_kind", "effort_unit"], sort=False):
         vals = dict(zip(g["season_year"].astype(int), g["effort"], strict=True))
         n = dict(zip(g["season_year"].astype(int), g["events"], strict=True))
-        label = {"trawl": "area swept", "transect": "strip area", "plankton": "volume filtered",
-                 "opportunistic": "hours observed", "effort": "fishing hours"}.get(str(kind), "effort")
+        adapter = list_adapters().get(str(kind))
+        label = adapter.effort_label if adapter is not None else "effort"
         cells = [f"{_amount(vals[y])}<br><small>{_n(int(n[y]), _what(str(kind), True).rstrip('s'))}</small>"
                  if y in vals else "—" for y in years]
         out.append([f"{_e(_label(str(kind)))}: {_e(label)} ({_e(unit)})", *cells])
@@ -619,7 +624,7 @@ def _strata_table(result: AuditResult) -> str:
                       result.metrics.periods.get("season", []), strict=True)}
     out = []
     for kind in _kinds(se["source_kind"]):
-        if kind in ("gridded", "effort"):
+        if kind in registered_kinds(is_sample=False):
             continue  # cell-periods cover every stratum by construction; the table is about survey design
         sub = se[se["source_kind"] == kind]
         years = list(range(int(sub["season_year"].min()), int(sub["season_year"].max()) + 1))
@@ -675,7 +680,7 @@ def _confidentiality(result: AuditResult) -> str:
 
 def _fishing_confidentiality(result: AuditResult) -> str:
     s = result.suppression()
-    if "effort" not in set(result.coverage["source_kind"]) and s["events_suppressed"] == 0:
+    if not set(registered_kinds(is_fishing_effort=True)) & set(result.coverage["source_kind"]) and s["events_suppressed"] == 0:
         return ("<p>The store holds no fishing-effort data, so no confidentiality rule applied. Effort cells "
                 f'resting on fewer than {s["min_vessels"]} vessels would be withheld.</p>')
     if s["events_suppressed"] == 0:

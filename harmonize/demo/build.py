@@ -47,13 +47,7 @@ def generators() -> dict[str, Callable[[Path, np.random.Generator], list[DemoInp
     """Demo generators of the source kinds that have one, in ingest order."""
     found = {}
     for kind in DEMO_KINDS:
-        try:
-            module = importlib.import_module(f"harmonize.demo.sources.{kind}")
-        except ModuleNotFoundError as exc:
-            if exc.name != f"harmonize.demo.sources.{kind}":
-                raise
-            continue
-        found[kind] = module.generate
+        found[kind] = importlib.import_module(f"harmonize.demo.sources.{kind}").generate
     return found
 
 
@@ -100,10 +94,8 @@ def _ingest(study, folder: Path, item: DemoInput, result: DemoRun, say: Callable
 
 def _audit_before(study, result: DemoRun, say: Callable[[str], None]) -> Path | None:  # type: ignore[no-untyped-def]
     """The previous delivery's audit (before the LATE_YEAR files), kept as JSON."""
-    try:
-        audit = importlib.import_module("harmonize.audit.run")
-    except ModuleNotFoundError:
-        return None
+    from harmonize.audit import run as audit
+
     say(f"auditing the store before the {LATE_YEAR} files")
     path = audit.audit(study).write_json(result.folder / "outputs" / f"audit_before_{LATE_YEAR}.json")
     result.outputs[f"previous audit (before the {LATE_YEAR} files)"] = path
@@ -134,10 +126,8 @@ def _corrected_delivery(folder: Path, planned: list[DemoInput]) -> DemoInput | N
 
 def _plan(study, result: DemoRun, say: Callable[[str], None]):  # type: ignore[no-untyped-def]
     """Where PLAN_SAMPLES added summer trawl hauls would help most, against the CORRECTED_YEAR survey."""
-    try:
-        planning = importlib.import_module("harmonize.audit.plan")
-    except ModuleNotFoundError:
-        return None
+    from harmonize.audit import plan as planning
+
     say("planning added samples")
     plan = planning.plan_samples(study, "trawl", PLAN_SAMPLES, seasons=["summer"], depth_layers=["near_bottom"],
                                  season_year=CORRECTED_YEAR, min_distance_km=30.0)
@@ -160,34 +150,27 @@ def _plan(study, result: DemoRun, say: Callable[[str], None]):  # type: ignore[n
 
 def _run_optional(study, result: DemoRun, say: Callable[[str], None],  # type: ignore[no-untyped-def]
                   previous: Path | None = None) -> None:
-    """Audit (compared with ``previous``), report and exports, for the capabilities that are installed."""
-    try:
-        audit = importlib.import_module("harmonize.audit.run")
-    except ModuleNotFoundError:
-        audit = None
-    if audit is not None:
-        say("auditing coverage")
-        audited = audit.audit(study, since=previous)
-        if audited.since is not None:
-            _since_lines(audited.since, result)
-        audited.plan = _plan(study, result, say)
-        result.outputs.update(audit.demo_outputs(study, result.folder / "outputs", audited))
-        counts = audited.counts()
-        result.findings.append(
-            "audit: " + ", ".join(f"{n} {sev}{'s' if n != 1 else ''}" for sev, n in counts.items() if n)
-        )
-        order = {"error": 0, "warning": 1, "info": 2}
-        top = sorted(audited.findings, key=lambda f: order.get(f.severity, 3))[:3]
-        result.findings += [f"[{f.severity}] {f.code}: {f.message}" for f in top]
-        if len(audited.findings) > len(top):
-            result.findings.append(f"... and {len(audited.findings) - len(top)} more findings in the audit report")
-    try:
-        export = importlib.import_module("harmonize.export.run")
-    except ModuleNotFoundError:
-        export = None
-    if export is not None:
-        say("writing exports")
-        result.outputs.update(export.demo_outputs(study, result.folder / "outputs"))
+    """Audit (compared with ``previous``), report and exports."""
+    from harmonize.audit import run as audit
+    from harmonize.export import run as export
+
+    say("auditing coverage")
+    audited = audit.audit(study, since=previous)
+    if audited.since is not None:
+        _since_lines(audited.since, result)
+    audited.plan = _plan(study, result, say)
+    result.outputs.update(audit.demo_outputs(study, result.folder / "outputs", audited))
+    counts = audited.counts()
+    result.findings.append(
+        "audit: " + ", ".join(f"{n} {sev}{'s' if n != 1 else ''}" for sev, n in counts.items() if n)
+    )
+    order = {"error": 0, "warning": 1, "info": 2}
+    top = sorted(audited.findings, key=lambda f: order.get(f.severity, 3))[:3]
+    result.findings += [f"[{f.severity}] {f.code}: {f.message}" for f in top]
+    if len(audited.findings) > len(top):
+        result.findings.append(f"... and {len(audited.findings) - len(top)} more findings in the audit report")
+    say("writing exports")
+    result.outputs.update(export.demo_outputs(study, result.folder / "outputs"))
 
 
 def _since_lines(since, result: DemoRun) -> None:  # type: ignore[no-untyped-def]

@@ -47,17 +47,19 @@ from xml.etree import ElementTree as ET
 import defusedxml.ElementTree as SafeET
 import pandas as pd
 
+from harmonize.adapters.registry import kinds as registered_kinds
+from harmonize.adapters.registry import list_adapters
 from harmonize.disclosure import Disclosure
 from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import CAUTION, ExportResult, provenance
 from harmonize.export.safe_csv import neutralise_sql
 from harmonize.export.selection import (
     BASE_VIEW,
-    SAMPLE_KINDS,
     ExportFilters,
     duplicate_sql,
     open_selection,
     prepare_target,
+    sample_kinds,
     sql_text,
 )
 from harmonize.study import Study
@@ -72,11 +74,12 @@ ROW_TYPES = {
     "emof": "http://rs.iobis.org/obis/terms/ExtendedMeasurementOrFact",
 }
 FILES = {"event": "event.txt", "occurrence": "occurrence.txt", "emof": "extendedmeasurementorfact.txt"}
-#: What the effort of each source kind is, in words (samplingEffort).
-EFFORT_WORDS = {
-    "trawl": "area swept by the net", "plankton": "volume of water filtered",
-    "transect": "strip area surveyed", "opportunistic": "time observed on a complete checklist",
-}
+
+
+def effort_words() -> dict[str, str]:
+    """What the effort of each source kind is, in words (samplingEffort; Adapter.effort_words)."""
+    return {kind: cls.effort_words for kind, cls in list_adapters().items() if cls.effort_words}
+
 #: Effort units in words (sampleSizeUnit); the Darwin Core examples spell units out.
 UNIT_WORDS = {"km2": "square kilometre", "m2": "square metre", "m3": "cubic metre", "h": "hour", "min": "minute"}
 MAX_EML_BYTES = 50_000_000
@@ -112,7 +115,7 @@ def _case(column: str, mapping: dict[str, str], default: str = "NULL") -> str:
 
 def _event_columns(generalise_deg: float) -> list[Column]:
     p = repr(float(generalise_deg))
-    effort_text = (f"CASE WHEN effort IS NOT NULL THEN {_case('source_kind', EFFORT_WORDS, sql_text('sampling effort'))}"
+    effort_text = (f"CASE WHEN effort IS NOT NULL THEN {_case('source_kind', effort_words(), sql_text('sampling effort'))}"
                    f" || ': ' || CAST(round(effort, 6) AS VARCHAR) || ' ' || effort_unit END")
     return [
         Column("eventID", _clean(_event_key())),
@@ -187,7 +190,7 @@ def _select(columns: Sequence[Column]) -> str:
 
 
 def _events_sql(study: Study, generalise_deg: float) -> str:
-    kinds = ", ".join(sql_text(k) for k in (*SAMPLE_KINDS, "effort"))
+    kinds = ", ".join(sql_text(k) for k in (*sample_kinds(), *registered_kinds(is_fishing_effort=True)))
     sampled = "variable_kind = 'taxon' AND quantity IN ('count', 'biomass')"
     return f"""
         WITH ev AS (
@@ -209,7 +212,7 @@ def _events_sql(study: Study, generalise_deg: float) -> str:
 
 
 def _occurrences_sql() -> str:
-    kinds = ", ".join(sql_text(k) for k in SAMPLE_KINDS)
+    kinds = ", ".join(sql_text(k) for k in sample_kinds())
     return f"""
         SELECT {_select(_OCCURRENCE_COLUMNS)}
         FROM {BASE_VIEW}
@@ -218,7 +221,7 @@ def _occurrences_sql() -> str:
 
 
 def _emof_sql() -> str:
-    kinds = ", ".join(sql_text(k) for k in SAMPLE_KINDS)
+    kinds = ", ".join(sql_text(k) for k in sample_kinds())
     keep = f"source_kind IN ({kinds}) AND NOT {duplicate_sql()}"
     zero_note = "CASE WHEN zero_filled THEN 'inferred zero: target taxon of a complete-catch protocol' END"
     taxon_unit = "CASE WHEN quantity = 'count' THEN 'individuals' ELSE unit END"

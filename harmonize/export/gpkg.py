@@ -28,10 +28,10 @@ from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import ExportResult, provenance
 from harmonize.export.selection import (
     BASE_VIEW,
-    SOURCE_KINDS,
     ExportFilters,
     open_selection,
     prepare_target,
+    source_kinds,
     sql_text,
 )
 from harmonize.study import Study
@@ -60,7 +60,8 @@ def _events(con: object) -> pd.DataFrame:
 def _cells(con: object) -> pd.DataFrame:
     kinds = [r[0] for r in con.execute(  # type: ignore[attr-defined]
         f"SELECT DISTINCT source_kind FROM {BASE_VIEW} ORDER BY 1").fetchall()]
-    kinds = [k for k in SOURCE_KINDS if k in kinds]
+    order = source_kinds()
+    kinds = [k for k in order if k in kinds] + [k for k in kinds if k not in order]
     per_kind = ", ".join(
         f"count(DISTINCT source_id || chr(31) || event_id) FILTER (WHERE source_kind = {sql_text(k)}) AS events_{k}"
         for k in kinds)

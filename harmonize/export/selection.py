@@ -22,14 +22,22 @@ from typing import Any
 import duckdb
 
 from harmonize import parts
+from harmonize.adapters.registry import kinds
 from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
 from harmonize.store import Store
 from harmonize.study import Study
 
-SOURCE_KINDS = ("trawl", "plankton", "transect", "opportunistic", "gridded", "effort")
-#: Source kinds whose events are samples of organisms (rows of the wide matrix).
-SAMPLE_KINDS = ("trawl", "plankton", "transect", "opportunistic")
+
+def source_kinds() -> tuple[str, ...]:
+    """Every registered source kind, in display order."""
+    return kinds()
+
+
+def sample_kinds() -> tuple[str, ...]:
+    """Source kinds whose events are samples of organisms (rows of the wide matrix)."""
+    return kinds(is_sample=True)
+
 #: The flag the twin finder sets on volunteer records that repeat another source's record.
 DUPLICATE_FLAG = "probable_duplicate"
 BASE_VIEW = "export_base"
@@ -118,10 +126,11 @@ class ExportFilters:
     def validate(self, con: duckdb.DuckDBPyConnection, season_names: Sequence[str],
                  layer_names: Sequence[str]) -> None:
         """Raise HarmonizeError naming a filter value that can match nothing, and the valid ones."""
-        unknown_kinds = [k for k in self.kinds if k not in SOURCE_KINDS]
+        known = source_kinds()
+        unknown_kinds = [k for k in self.kinds if k not in known]
         if unknown_kinds:
             raise HarmonizeError(f"unknown source kind {unknown_kinds[0]!r} in the export filter; "
-                                 f"choose from {', '.join(SOURCE_KINDS)}")
+                                 f"choose from {', '.join(known)}")
         bad = [s for s in self.seasons if s not in season_names]
         if bad:
             raise HarmonizeError(f"season {bad[0]!r} is not in study.toml [seasons]; "

@@ -28,7 +28,6 @@ community ecology", Trends Ecol. Evol. 30:766-779). Rules:
 
 from __future__ import annotations
 
-import importlib
 import json
 import os
 import shutil
@@ -53,12 +52,12 @@ from harmonize.export.metadata import (
 from harmonize.export.safe_csv import copy_safe_csv
 from harmonize.export.selection import (
     BASE_VIEW,
-    SAMPLE_KINDS,
     ExportFilters,
     bounded_memory,
     duplicate_sql,
     open_selection,
     prepare_target,
+    sample_kinds,
     sql_ident,
     sql_text,
 )
@@ -84,7 +83,7 @@ _BATCH_ROWS = 122_880
 
 
 def _samples_sql() -> str:
-    kinds = ", ".join(sql_text(k) for k in SAMPLE_KINDS)
+    kinds = ", ".join(sql_text(k) for k in sample_kinds())
     return f"source_kind IN ({kinds})"
 
 
@@ -310,17 +309,13 @@ def linked_covariates(study: Study, events: pd.DataFrame, variables: Sequence[st
 
     Columns are named ``gridded_<variable>``, or ``gridded_<variable>__<source_id>`` where
     several gridded sources provide a variable. Returns None when there is nothing to link
-    (no gridded variables, no events, or no ``harmonize.colocate`` in this installation).
+    (no gridded variables or no events).
     """
     if not len(variables) or events.empty:
         return None
-    try:
-        module = importlib.import_module("harmonize.colocate")
-    except ModuleNotFoundError as exc:
-        if exc.name != "harmonize.colocate":
-            raise
-        return None
-    long = module.colocate(study, list(variables), events)
+    from harmonize.colocate import colocate
+
+    long = colocate(study, list(variables), events)
     if long.empty:
         return None
     n_sources = long.groupby("variable")["gridded_source_id"].transform("nunique")

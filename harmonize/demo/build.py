@@ -109,17 +109,15 @@ def _corrected_delivery(folder: Path, planned: list[DemoInput]) -> DemoInput | N
     original = next((item for item in planned if item.inputs.get("records", "").endswith(f"catch_{CORRECTED_YEAR}.csv")), None)
     if original is None:
         return None
-    target = folder / "data" / "trawl" / "corrected"
-    target.mkdir(parents=True, exist_ok=True)
-    catch = pd.read_csv(folder / original.inputs["records"], dtype=str, keep_default_na=False)
+    # a re-delivery replaces the provider's file in place: the same path, new content, so that
+    # `--replace` supersedes the earlier ingest (an ingest is its source, path and content)
+    records = folder / original.inputs["records"]
+    catch = pd.read_csv(records, dtype=str, keep_default_na=False)
     weights = pd.to_numeric(catch["catch_kg"], errors="coerce")
     rows = weights.index[weights.notna() & (weights > 1.0)][:CORRECTED_ROWS]
     catch.loc[rows, "catch_kg"] = (weights[rows] / 10).round(3).astype(str)
-    catch.to_csv(target / f"catch_{CORRECTED_YEAR}.csv", index=False)
-    hauls = Path(original.inputs["events"]).name
-    (target / hauls).write_bytes((folder / original.inputs["events"]).read_bytes())
-    inputs = {"events": str((target / hauls).relative_to(folder)),
-              "records": str((target / f"catch_{CORRECTED_YEAR}.csv").relative_to(folder))}
+    catch.to_csv(records, index=False)
+    inputs = dict(original.inputs)
     return DemoInput(original.profile, inputs,
                      f"bottom-trawl survey {CORRECTED_YEAR}, corrected delivery ({len(rows)} catch weights fixed)")
 

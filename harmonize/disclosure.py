@@ -36,6 +36,9 @@ import pandas as pd
 
 log = logging.getLogger(__name__)
 
+#: Start and end positions of an event's track (tow, transect segment): exact positions, so
+#: withheld, not rounded, at an event with a sensitive taxon.
+TRACK_COLUMNS = ("track_start_lat", "track_start_lon", "track_end_lat", "track_end_lon")
 #: Fishing-effort rows resting on fewer vessels are withheld (the rule of three; common practice).
 DEFAULT_MIN_VESSELS = 3
 #: Chapman 2020 rounds to 1, 0.1, 0.01 or 0.001 degree by category; 0.1 degree is about 11 km.
@@ -129,7 +132,7 @@ class Disclosure:
 
         Columns: those of ``source`` plus :data:`GENERALISATION_COLUMN`. Withheld effort rows
         are absent (or summed to coarser levels, with ``fishing_aggregate``); rows of events
-        with a sensitive taxon have rounded lat/lon and no cell id. Which events are
+        with a sensitive taxon have rounded lat/lon, no cell id and no track ends. Which events are
         sensitive is decided on all of the event's rows in ``source``, whatever ``where``
         selects, so that a filter cannot un-generalise an event.
         """
@@ -143,7 +146,8 @@ class Disclosure:
             SELECT o.* REPLACE (
                        CASE WHEN s.event_id IS NULL THEN o.lat ELSE {self.rounded_sql('o.lat')} END AS lat,
                        CASE WHEN s.event_id IS NULL THEN o.lon ELSE {self.rounded_sql('o.lon')} END AS lon,
-                       CASE WHEN s.event_id IS NULL THEN o.cell_id END AS cell_id),
+                       CASE WHEN s.event_id IS NULL THEN o.cell_id END AS cell_id,
+                       {", ".join(f"CASE WHEN s.event_id IS NULL THEN o.{c} END AS {c}" for c in TRACK_COLUMNS)}),
                    CASE WHEN s.event_id IS NOT NULL THEN {note} END AS {GENERALISATION_COLUMN}
             FROM (SELECT * FROM {source} WHERE ({where}) AND NOT {self.confidential_sql()}) o
             LEFT JOIN ({sens}) s ON o.source_id = s.source_id AND o.event_id = s.event_id"""

@@ -85,11 +85,11 @@ class HarmonizeGroup(TyperGroup):
             _interrupted(exc.signum, exc.committed)
         except HarmonizeError as exc:
             if interrupts.received():
-                _interrupted(interrupts.received())
+                _interrupted(interrupts.received(), interrupts.committed())
             _error(f"error: {exc}")
             raise typer.Exit(EXIT_USAGE) from None
         except KeyboardInterrupt:
-            _interrupted(int(signal.SIGINT))
+            _interrupted(int(signal.SIGINT), interrupts.committed())
         except BrokenPipeError:
             # the reader of a pipe went away (e.g. '| head'): nothing more to say
             sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - silences the flush at exit
@@ -98,7 +98,7 @@ class HarmonizeGroup(TyperGroup):
             raise
         except Exception as exc:  # noqa: BLE001 - last resort: one line, never a bare traceback
             if interrupts.received():  # a DuckDB query stopped by the interrupt ("Query interrupted")
-                _interrupted(interrupts.received())
+                _interrupted(interrupts.received(), interrupts.committed())
             if os.environ.get("HARMONIZE_DEBUG"):
                 raise
             known = failure_line(exc)  # a full disk, a folder that cannot be written
@@ -200,5 +200,22 @@ _register()
 
 
 def main(args: Sequence[str] | None = None) -> None:
-    """Console-script entry point (also ``python -m harmonize``)."""
-    app(args=list(args) if args is not None else None, prog_name="harmonize")
+    """Console-script entry point (also ``python -m harmonize``).
+
+    SIGINT and SIGTERM are handled for the whole run, not only while a verb works: a signal
+    that arrives as the command ends still gives 130 / 143 and one line, never a bare kill.
+    """
+    interrupts.install_for_process()
+    try:
+        app(args=list(args) if args is not None else None, prog_name="harmonize")
+    except SystemExit:
+        interrupts.finishing()  # the command has its result; a late signal does not change it
+        raise
+    except interrupts.Interrupted as exc:
+        interrupts.finishing()
+        if exc.committed or interrupts.committed():
+            _error("interrupted after the store was updated: the last step completed; "
+                   "run 'harmonize status' to see it")
+        else:
+            _error("interrupted; the store is unchanged")
+        sys.exit(128 + exc.signum)

@@ -18,6 +18,7 @@ _lock = threading.Lock()
 _connections: set[Any] = set()
 _deferring = 0
 _pending: int | None = None
+_committed = False
 
 
 class Interrupted(BaseException):
@@ -43,14 +44,35 @@ class Interrupted(BaseException):
 @contextmanager
 def installed() -> Iterator[None]:
     """Handle SIGINT and SIGTERM in this process (main thread only) while inside; then restore."""
-    global _pending
+    global _pending, _committed
     _pending = None
+    _committed = False
     previous = {signum: signal.signal(signum, _handle) for signum in (signal.SIGINT, signal.SIGTERM)}
     try:
         yield
     finally:
         for signum, handler in previous.items():
             signal.signal(signum, handler)
+
+
+def install_for_process() -> None:
+    """Handle SIGINT and SIGTERM for the rest of this process (the command line's whole run)."""
+    global _pending, _committed
+    _pending = None
+    _committed = False
+    for signum in (signal.SIGINT, signal.SIGTERM):
+        signal.signal(signum, _handle)
+
+
+def finishing() -> None:
+    """The process is ending with its own result: a signal from now on is ignored.
+
+    SIG_IGN, not a handler: Python's finalisation puts every signal that has a Python handler
+    back to the default action, which would kill a process that has already finished its work
+    (exit -15 instead of its own code); an ignored signal stays ignored.
+    """
+    for signum in (signal.SIGINT, signal.SIGTERM):
+        signal.signal(signum, signal.SIG_IGN)
 
 
 def received() -> int | None:
@@ -70,7 +92,7 @@ def _handle(signum: int, frame: object) -> None:
             con.interrupt()
         except Exception:  # noqa: BLE001 - a closed connection has nothing to stop
             pass
-    raise Interrupted(signum)
+    raise Interrupted(signum, committed=_committed)
 
 
 def track(con: Any) -> None:
@@ -86,12 +108,24 @@ def untrack(con: Any) -> None:
 
 @contextmanager
 def deferred() -> Iterator[None]:
-    """A section an interrupt must not cut (a commit): the interrupt is raised when it ends."""
-    global _deferring
+    """A section an interrupt must not cut (a commit): the interrupt is raised when it ends.
+
+    Once such a section has completed, the store has changed: a later interrupt (during the
+    steps after a commit) says so too (``Interrupted.committed``, :func:`committed`).
+    """
+    global _deferring, _committed
     _deferring += 1
     try:
         yield
-    finally:
+    except BaseException:
         _deferring -= 1
+        raise
+    _deferring -= 1
+    _committed = True
     if not _deferring and _pending is not None:
         raise Interrupted(_pending, committed=True)
+
+
+def committed() -> bool:
+    """True once a deferred section (a commit) completed since :func:`installed`."""
+    return _committed

@@ -142,6 +142,7 @@ _ARROW_TYPES = {
     "BIGINT": pa_arrow.int64(),
     "BOOLEAN": pa_arrow.bool_(),
     "TIMESTAMP": pa_arrow.timestamp("us"),
+    "TIMESTAMPTZ": pa_arrow.timestamp("us", tz="UTC"),
     "VARCHAR[]": pa_arrow.list_(pa_arrow.string()),
     "BIGINT[]": pa_arrow.list_(pa_arrow.int64()),
 }

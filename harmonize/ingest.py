@@ -21,6 +21,7 @@ import pyarrow as pa
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
 from harmonize.adapters.common import codes_in, distinct_present, swapped_position_notes
 from harmonize.adapters.registry import get_adapter
+from harmonize.clock import utc_naive
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns, validate_observations
 from harmonize.engines import engine_scope
 from harmonize.errors import ConfigError, DuplicateIngestError, HarmonizeError
@@ -256,8 +257,8 @@ def _check_accounting(out: AdapterOutput) -> None:
 
 
 _EVENT_ARROW = pa.schema([
-    ("event_id", pa.string()), ("event_start", pa.timestamp("us")), ("event_end", pa.timestamp("us")),
-    ("year", pa.int32()), ("season_year", pa.int32()), ("season", pa.string()), ("depth_layer", pa.string()),
+    ("event_id", pa.string()), ("event_start", pa.timestamp("us", tz="UTC")),
+    ("event_end", pa.timestamp("us", tz="UTC")), ("year", pa.int32()), ("season_year", pa.int32()), ("season", pa.string()), ("depth_layer", pa.string()),
     ("lat", pa.float64()), ("lon", pa.float64()), ("cell_id", pa.string()), ("stratum", pa.string()),
     ("depth_min_m", pa.float64()), ("depth_max_m", pa.float64()), ("bottom_depth_m", pa.float64()),
     ("effort", pa.float64()), ("effort_unit", pa.string()), ("observer_id", pa.string()),
@@ -318,7 +319,7 @@ def _to_arrow(frame: pd.DataFrame, schema: pa.Schema) -> pa.Table:
         if pa.types.is_list(fld.type):
             arrays.append(_list_array(col, fld.type))
         elif pa.types.is_timestamp(fld.type):
-            arrays.append(pa.array(pd.to_datetime(col).astype("datetime64[us]"), type=fld.type, from_pandas=True))
+            arrays.append(pa.array(utc_naive(col).to_numpy(), type=fld.type, from_pandas=True))
         else:
             try:
                 arrays.append(pa.array(col, type=fld.type, from_pandas=True))

@@ -41,7 +41,10 @@ PARTITION_COLUMNS = ("source_kind", "season_year")
 #: Version of the store's tables (store_meta key ``store_version``); a store without the key
 #: is version 1. 2: the ``events_without_values`` table. A writer brings an older store up to
 #: date (the tables are created when missing); readers of an older store see no such events.
-STORE_VERSION = 2
+#: 3: event times written as parquet ``timestamp[us, tz=UTC]`` (older files hold UTC wall
+#: clocks and are read as UTC by the views) and the persisted views name their files relative
+#: to the store folder (rewritten by the first writer that opens an older store).
+STORE_VERSION = 3
 _LOCK_RE = re.compile(r"\(PID (\d+)\)")
 
 #: Columns of ``events_without_values``, in table order (see docs/store.md).
@@ -201,6 +204,10 @@ class Store:
         self.directory.mkdir(parents=True, exist_ok=True)
         con = self._open(read_only)
         try:
+            # times are read and shown in UTC whatever the machine's zone; the persisted views
+            # name their parquet files relative to the store folder
+            folder = str(self.directory).replace("'", "''")
+            con.execute(f"SET TimeZone = 'UTC'; SET file_search_path = '{folder}'")
             if read_only:
                 if view:
                     self._define_view(con, temporary=True)
@@ -262,7 +269,9 @@ class Store:
             """SELECT f.path FROM observation_files f JOIN ingests i USING (ingest_id)
                WHERE i.status = 'complete' ORDER BY f.path"""
         ).fetchall()
-        return [str(self.directory / r[0]) for r in rows]
+        # relative to the store folder (the connection's file_search_path): the persisted
+        # views still read when the study folder moves
+        return [r[0] for r in rows]
 
     def _define_view(self, con: duckdb.DuckDBPyConnection, temporary: bool) -> None:
         try:
@@ -272,11 +281,18 @@ class Store:
         cols = observation_sql_columns()
         present: set[str] = set()
         if paths:
-            listing = ", ".join("'" + p.replace("'", "''") + "'" for p in paths)
-            source = (
-                f"read_parquet([{listing}], hive_partitioning = true, "
-                "hive_types = {'source_kind': VARCHAR, 'season_year': INTEGER}, union_by_name = true)"
-            )
+            try:
+                naive = _naive_time_files(con, paths)
+            except duckdb.Error:
+                naive = set()  # unreadable files: reported by the DESCRIBE below
+            source = _parquet_source([p for p in paths if p not in naive])
+            if naive:
+                # files of a store written before times carried their zone (store version < 3)
+                # hold UTC wall clocks: timezone('UTC', ...) reads them as UTC in any session zone
+                old = _parquet_source(sorted(naive))
+                fix = ", ".join(f"timezone('UTC', \"{c}\") AS \"{c}\"" for c in _TIME_COLUMNS)
+                old = f"(SELECT * REPLACE ({fix}) FROM {old})"
+                source = f"(SELECT * FROM {source} UNION ALL BY NAME SELECT * FROM {old})" if len(naive) < len(paths) else old
             # Files written before a column joined the contract lack it: it reads as null.
             try:
                 present = {r[0] for r in con.execute(f"DESCRIBE SELECT * FROM {source}").fetchall()}
@@ -300,6 +316,8 @@ class Store:
         con.execute(f"CREATE OR REPLACE {kind} observation_parts AS SELECT {select} FROM {source}")
         con.execute(f"CREATE OR REPLACE {kind} observations_base AS {parts.merged_sql('observation_parts')}")
         con.execute(f"CREATE OR REPLACE {kind} observations AS {twins.flagged_view_sql(con, 'observations_base')}")
+        # the name docs/store.md gives readers without harmonize: the live rows with every flag
+        con.execute(f"CREATE OR REPLACE {kind} current AS SELECT * FROM observations")
 
     # ------------------------------------------------------------------ ingest support
     def previous_ingests(self, source_id: str, file_names: Sequence[str], inputs_sha256: str) -> pd.DataFrame:
@@ -606,6 +624,31 @@ class Store:
         ).fetchall()
         return [f"ingest {i}: {name} has {n} data rows but only {k} are accepted or quarantined"
                 for i, name, n, k in rows]
+
+
+_TIME_COLUMNS = ("event_start", "event_end")
+
+
+def _parquet_source(paths: Sequence[str]) -> str:
+    listing = ", ".join("'" + p.replace("'", "''") + "'" for p in paths)
+    return (f"read_parquet([{listing}], hive_partitioning = true, "
+            "hive_types = {'source_kind': VARCHAR, 'season_year': INTEGER}, union_by_name = true)")
+
+
+def _naive_time_files(con: duckdb.DuckDBPyConnection, paths: Sequence[str]) -> set[str]:
+    """The files (as listed in ``paths``) whose event times are timestamps without a zone.
+
+    Read from the parquet footers (isAdjustedToUTC=0): files of store versions 1 and 2.
+    """
+    listing = ", ".join("'" + p.replace("'", "''") + "'" for p in paths)
+    found = {r[0] for r in con.execute(
+        f"""SELECT DISTINCT file_name FROM parquet_schema([{listing}])
+            WHERE name = 'event_start' AND logical_type LIKE '%isAdjustedToUTC=0%'""").fetchall()}
+    if not found:
+        return set()
+    # parquet_schema names files by their resolved path
+    return {p for p in paths if p in found or str(Path(p)) in found
+            or any(f.endswith("/" + p) for f in found)}
 
 
 def _crash_point(name: str) -> None:

@@ -1,0 +1,195 @@
+"""Outputs that open right in general-purpose readers: UTC-aware times, a store that stands alone.
+
+Every check opens the files with at least two readers that are not harmonize (pyarrow,
+DuckDB, pandas, pyogrio) and states the expected rule independently of the code under test.
+"""
+
+from __future__ import annotations
+
+import os
+import re
+import shutil
+from pathlib import Path
+
+import duckdb
+import pandas as pd
+import pyarrow as pa
+import pyarrow.dataset as ds
+import pyarrow.parquet as pq
+import pytest
+from geographiclib.geodesic import Geodesic
+
+from harmonize import Store, load_study, run
+from harmonize.export.run import export
+from harmonize.store import STORE_VERSION
+from harmonize.study import Study
+from tests.factories import store_frames
+
+FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
+PROFILE = "opportunistic_volunteer"
+HEADER = ("sighting_id,list_id,obs_time,latitude,longitude,observer_name,species,how_many,all_reported,"
+          "minutes_watched,km_travelled\n")
+AGENCY = (43.5, -152.0)  # an agency seabird sighting inside the fixture domain
+# ISO 8601-1:2019, extended format with the UTC designator Z
+ISO_UTC = re.compile(r"^\d{4}-\d{2}-\d{2}T\d{2}:\d{2}:\d{2}(\.\d{1,6})?Z$")
+
+
+def _trawl(study_dir: Path) -> Study:
+    study = load_study(study_dir)
+    run(study, "trawl_agency", {"events": study_dir / "hauls_messy.csv", "records": study_dir / "catch_messy.csv"})
+    return study
+
+
+def _parts(study: Study) -> list[Path]:
+    return sorted((study.store_dir / "observations").rglob("*.parquet"))
+
+
+def _epochs_us(con: duckdb.DuckDBPyConnection) -> list[tuple[str, int]]:
+    return con.execute("SELECT record_id, epoch_us(event_start) FROM observations ORDER BY record_id").fetchall()
+
+
+# --------------------------------------------------------------------------- UTC-aware times
+def test_store_times_are_utc_instants_in_every_reader(study_dir: Path) -> None:
+    study = _trawl(study_dir)
+    files = _parts(study)
+    assert files
+    for f in files:
+        field = pq.read_schema(f).field("event_start")
+        assert field.type == pa.timestamp("us", tz="UTC")
+        logical = pq.ParquetFile(f).metadata.schema.column(pq.read_schema(f).get_field_index("event_start")).logical_type
+        assert "isAdjustedToUTC=true" in str(logical)
+    # the instants as pyarrow reads them (microseconds since 1970-01-01T00:00Z)
+    table = pa.concat_tables([pq.read_table(f, columns=["record_id", "event_start"]) for f in files])
+    expected = sorted(zip(table["record_id"].to_pylist(),
+                          table["event_start"].cast(pa.int64()).to_pylist(), strict=True))
+    # plain DuckDB in a session far from UTC reads the same instants, typed TIMESTAMPTZ
+    con = duckdb.connect()
+    con.execute("SET TimeZone = 'America/Halifax'")
+    listing = [str(f) for f in files]
+    got = con.execute("SELECT record_id, epoch_us(event_start) FROM read_parquet(?) ORDER BY 1", [listing]).fetchall()
+    assert got == expected
+    assert con.execute("SELECT typeof(event_start) FROM read_parquet(?) LIMIT 1", [listing]).fetchall()[0][0] \
+        == "TIMESTAMP WITH TIME ZONE"
+    # the store's view, under the same session zone
+    with Store(study.store_dir).connect() as s:
+        s.execute("SET TimeZone = 'America/Halifax'")
+        assert _epochs_us(s) == expected
+        types = {r[0]: r[1] for r in s.execute("DESCRIBE observations").fetchall()}
+        assert types["event_start"] == types["event_end"] == "TIMESTAMP WITH TIME ZONE"
+    # pandas reads zone-aware UTC
+    frame = pd.read_parquet(files[0])
+    assert str(frame["event_start"].dt.tz) == "UTC"
+
+
+def test_a_store_with_naive_times_reads_the_same_instants(study_dir: Path) -> None:
+    # a store written before the times carried their zone (store version 2) holds UTC wall
+    # clocks in timestamp[us] (isAdjustedToUTC=false): its rows must read as the same instants
+    study = _trawl(study_dir)
+    store = Store(study.store_dir)
+    with store.connect() as con:
+        before = _epochs_us(con)
+    for f in _parts(study):
+        t = pq.read_table(f)
+        for name in ("event_start", "event_end"):
+            i = t.schema.get_field_index(name)
+            t = t.set_column(i, pa.field(name, pa.timestamp("us")), t[name].cast(pa.timestamp("us")))
+        meta = pq.ParquetFile(f).metadata
+        pq.write_table(t, f, row_group_size=max(meta.num_rows, 1))
+        assert not pq.read_schema(f).field("event_start").type.tz
+    with store.connect() as con:
+        con.execute("SET TimeZone = 'America/Halifax'")
+        assert _epochs_us(con) == before
+    # a harmonize that opens the store for writing rewrites the persisted views (and records
+    # the store version): plain DuckDB then reads the same instants too
+    with store.connect(read_only=False) as con:
+        version = con.execute("SELECT value FROM store_meta WHERE key = 'store_version'").fetchall()
+    assert version == [(str(STORE_VERSION),)]
+    con = duckdb.connect(str(store.db_path), read_only=True)
+    con.execute(f"SET TimeZone = 'America/Halifax'; SET file_search_path = '{store.directory}'")
+    assert _epochs_us(con) == before
+    con.close()
+    assert store.check() == []
+
+
+def test_long_csv_and_gpkg_write_iso_8601_utc(study_dir: Path, tmp_path: Path) -> None:
+    study = _trawl(study_dir)
+    export(study, "long", tmp_path / "long.parquet")
+    export(study, "long", tmp_path / "long.csv")
+    parquet = pq.read_table(tmp_path / "long.parquet")
+    assert parquet.schema.field("event_start").type == pa.timestamp("us", tz="UTC")
+    text = pd.read_csv(tmp_path / "long.csv", dtype=str)
+    assert text["event_start"].str.match(ISO_UTC).all()
+    assert text["event_end"].dropna().str.match(ISO_UTC).all()
+    # the CSV's text and the parquet file name the same instants (pandas and pyarrow)
+    from_csv = pd.to_datetime(text["event_start"], format="ISO8601", utc=True)
+    from_parquet = parquet["event_start"].to_pandas()
+    assert sorted(from_csv.astype("int64") // 1000) == sorted(from_parquet.astype("int64") // 1000)
+    # DuckDB reads the CSV's times as TIMESTAMPTZ without being told the zone
+    con = duckdb.connect()
+    con.execute("SET TimeZone = 'America/Halifax'")
+    kind = con.execute("SELECT typeof(event_start) FROM read_csv(?) LIMIT 1", [str(tmp_path / "long.csv")]).fetchall()
+    assert kind[0][0] == "TIMESTAMP WITH TIME ZONE"
+    # GeoPackage: pyogrio's raw text of the events layer ends in Z
+    pyogrio = pytest.importorskip("pyogrio")
+    export(study, "gpkg", tmp_path / "out.gpkg")
+    layer = pyogrio.read_dataframe(tmp_path / "out.gpkg", layer="events", datetime_as_string=True)
+    assert layer["event_start"].str.match(ISO_UTC).all()
+
+
+# --------------------------------------------------------------------------- a store that stands alone
+def test_moved_study_opens_with_plain_duckdb(study_dir: Path, tmp_path: Path) -> None:
+    study = _trawl(study_dir)
+    with Store(study.store_dir).connect() as con:
+        expected = con.execute("SELECT count(*), sum(value) FROM observations").fetchall()
+    moved = tmp_path / "elsewhere" / "study"
+    moved.parent.mkdir()
+    shutil.move(str(study_dir), moved)  # the old folder is gone: an absolute path would break
+    here = Path.cwd()
+    try:
+        os.chdir(moved / "store")
+        con = duckdb.connect("harmonized.duckdb", read_only=True)
+        assert con.execute("SELECT count(*), sum(value) FROM observations").fetchall() == expected
+        con.close()
+    finally:
+        os.chdir(here)
+    # from any other working folder, with the store folder as a search path
+    con = duckdb.connect(str(moved / "store" / "harmonized.duckdb"), read_only=True)
+    con.execute(f"SET file_search_path = '{moved / 'store'}'")
+    assert con.execute("SELECT count(*), sum(value) FROM observations").fetchall() == expected
+    con.close()
+
+
+def _at(distance_m: float, azimuth: float = 60.0) -> tuple[float, float]:
+    """The point ``distance_m`` from the agency sighting along a WGS84 geodesic (Karney 2013)."""
+    g = Geodesic.WGS84.Direct(AGENCY[0], AGENCY[1], azimuth, distance_m)
+    return g["lat2"], g["lon2"]
+
+
+def test_flags_and_season_year_read_without_harmonize(study_dir: Path) -> None:
+    study = load_study(study_dir)
+    events = pd.DataFrame({"event_id": ["T1"], "event_start": ["2022-11-05T08:00"],
+                           "event_end": [pd.Timestamp("2022-11-05T08:10")],
+                           "lat": [AGENCY[0]], "lon": [AGENCY[1]], "depth_min_m": [0.0], "depth_max_m": [0.0]})
+    values = pd.DataFrame({"event_id": ["T1"], "variable": ["Procellix keldica"], "value": [4.0]})
+    store_frames(study, events, values, source_id="keldmar_ship_survey", kind="transect", protocol=None)
+    near = _at(300.0)
+    (study_dir / "vol.csv").write_text(
+        HEADER + f"A,,2022-11-05T08:05,{near[0]:.7f},{near[1]:.7f},Ann Vell,keld fulmar,2,,,\n"
+        + f"B,,2022-11-05T08:15,{near[0]:.7f},{near[1]:.7f},Bo Tarrin,keld fulmar,3,,,\n")
+    run(study, PROFILE, {"rows": study_dir / "vol.csv"})
+    from harmonize.twins import twins_frame  # what 'harmonize twins' lists
+    with Store(study.store_dir).connect() as con:
+        listed = twins_frame(con)
+    assert len(listed) >= 1
+    store = study.store_dir
+    con = duckdb.connect(str(store / "harmonized.duckdb"), read_only=True)
+    con.execute(f"SET file_search_path = '{store}'")
+    flagged = con.execute("""SELECT count(DISTINCT record_id) FROM current
+                             WHERE list_contains(flags, 'probable_duplicate')""").fetchall()[0][0]
+    con.close()
+    assert flagged == listed["record_id"].nunique()
+    # season_year as an integer in pandas, with the partitioning documented in docs/store.md
+    part = ds.partitioning(pa.schema([("source_kind", pa.string()), ("season_year", pa.int32())]), flavor="hive")
+    frame = pd.read_parquet(store / "observations", partitioning=part)
+    assert frame["season_year"].dtype == "int32" and (frame["season_year"] >= 2022).all()
+

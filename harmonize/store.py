@@ -204,10 +204,9 @@ class Store:
         self.directory.mkdir(parents=True, exist_ok=True)
         con = self._open(read_only)
         try:
-            # times are read and shown in UTC whatever the machine's zone; the persisted views
-            # name their parquet files relative to the store folder
-            folder = str(self.directory).replace("'", "''")
-            con.execute(f"SET TimeZone = 'UTC'; SET file_search_path = '{folder}'")
+            # times are read and shown in UTC whatever the machine's zone
+            con.execute("SET TimeZone = 'UTC'")
+            self._search_here(con)
             if read_only:
                 if view:
                     self._define_view(con, temporary=True)
@@ -273,7 +272,14 @@ class Store:
         # views still read when the study folder moves
         return [r[0] for r in rows]
 
+    def _search_here(self, con: duckdb.DuckDBPyConnection) -> None:
+        """Resolve relative parquet paths against the store folder (the views name their files
+        relative to it, so that a moved study folder still reads)."""
+        folder = str(self.directory).replace("'", "''")
+        con.execute(f"SET file_search_path = '{folder}'")
+
     def _define_view(self, con: duckdb.DuckDBPyConnection, temporary: bool) -> None:
+        self._search_here(con)
         try:
             paths = self._live_paths(con)
         except duckdb.CatalogException:

@@ -37,6 +37,7 @@ from harmonize.tagging import (
     tag_season,
 )
 from harmonize.twins import twin_settings
+from harmonize.units import density_unit_sql
 
 logger = logging.getLogger(__name__)
 
@@ -358,6 +359,10 @@ BLOCK_ROWS = 250_000
 SAMPLE_ROWS = 200_000
 
 
+#: SQL: the row has a density (value / effort): counts and biomass with a positive effort
+_HAS_DENSITY = "v.quantity IN ('count', 'biomass') AND NOT v.no_effort AND e.effort > 0"
+
+
 def assemble(out: AdapterOutput, study: Study, profile: Profile, kind: str, ingest_id: str) -> pa.Table:
     """Join tagged events and values into observation rows, in contract column order.
 
@@ -402,7 +407,8 @@ def assemble_blocks(out: AdapterOutput, study: Study, profile: Profile, kind: st
             "record_id": "substr(md5(concat_ws('|', $2, e.event_id, v.variable, coalesce(v.life_stage, ''), v.quantity, v.behavior)), 1, 24)",  # concat_ws skips a null behavior: ids without one are unchanged
             "ingest_id": "$1", "source_id": "$2", "source_kind": "$3", "provider_type": "$4", "protocol": "$5",
             # density only for counts and biomass; presence-only and no-effort values carry no effort
-            "density": "CASE WHEN v.quantity IN ('count', 'biomass') AND NOT v.no_effort AND e.effort > 0 THEN v.value / e.effort END",
+            "density": f"CASE WHEN {_HAS_DENSITY} THEN v.value / e.effort END",
+            "density_unit": f"CASE WHEN {_HAS_DENSITY} THEN {density_unit_sql('v.unit', 'e.effort_unit')} END",
             "effort": "CASE WHEN v.quantity = 'presence' OR v.no_effort THEN NULL ELSE e.effort END",
             "effort_unit": "CASE WHEN v.quantity = 'presence' OR v.no_effort THEN NULL ELSE e.effort_unit END",
             "flags": "list_sort(list_distinct(list_concat(e.event_flags, v.value_flags)))",

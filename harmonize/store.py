@@ -30,7 +30,7 @@ import duckdb
 import pandas as pd
 import pyarrow as pa
 
-from harmonize import __version__, parts, twins
+from harmonize import __version__, parts, twins, units
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns
 from harmonize.errors import StoreBusyError, StoreError
 
@@ -309,8 +309,13 @@ class Store:
                 ) from None
         else:
             source = "(SELECT 1 LIMIT 0)"
+        missing = {
+            # files written before density_unit joined the contract: derived from their units
+            "density_unit": f"CASE WHEN density IS NOT NULL THEN {units.density_unit_sql('unit', 'effort_unit')} END",
+        }
         select = ", ".join(
-            f'CAST("{c}" AS {t}) AS "{c}"' if c in present else f'CAST(NULL AS {t}) AS "{c}"'
+            f'CAST("{c}" AS {t}) AS "{c}"' if c in present
+            else f'CAST({missing[c] if c in missing and paths else "NULL"} AS {t}) AS "{c}"'
             for c, t in cols + list(parts.PART_COLUMNS)
         )
         kind = "TEMP VIEW" if temporary else "VIEW"

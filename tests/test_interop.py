@@ -193,3 +193,44 @@ def test_flags_and_season_year_read_without_harmonize(study_dir: Path) -> None:
     frame = pd.read_parquet(store / "observations", partitioning=part)
     assert frame["season_year"].dtype == "int32" and (frame["season_year"] >= 2022).all()
 
+
+
+# --------------------------------------------------------------------------- units as data
+def _pint_text(udunits: str) -> str:
+    """UDUNITS-style products ("kg km-2") in pint's syntax ("kg * km**-2")."""
+    return " * ".join(re.sub(r"^([A-Za-z]+)(-?\d+)$", r"\1**\2", term) for term in udunits.split())
+
+
+def test_density_unit_is_the_unit_of_value_over_effort(study_dir: Path, tmp_path: Path) -> None:
+    pint = pytest.importorskip("pint")
+    ureg = pint.UnitRegistry()
+    study = _trawl(study_dir)
+    export(study, "long", tmp_path / "long.parquet")
+    rows = pq.read_table(tmp_path / "long.parquet").to_pandas()
+    dense = rows[rows["density"].notna()]
+    assert len(dense) and dense["density_unit"].notna().all()
+    assert rows.loc[rows["density"].isna(), "density_unit"].isna().all()
+    assert set(dense.loc[dense["quantity"] == "count", "density_unit"]) == {"km-2"}
+    assert set(dense.loc[dense["quantity"] == "biomass", "density_unit"]) <= {"kg km-2"}
+    for r in dense.itertuples():
+        # pint: (value [unit]) / (effort [effort_unit]) expressed in density_unit is the density
+        value = ureg.Quantity(r.value, "dimensionless" if r.unit == "1" else r.unit)
+        effort = ureg.Quantity(r.effort, _pint_text(r.effort_unit))
+        got = (value / effort).to(_pint_text(r.density_unit)).magnitude
+        assert got == pytest.approx(r.density, rel=1e-12)
+    # DuckDB reads the same column from the same file
+    con = duckdb.connect()
+    n = con.execute("SELECT count(*) FROM read_parquet(?) WHERE density_unit = 'km-2'",
+                    [str(tmp_path / "long.parquet")]).fetchall()[0][0]
+    assert n == int((rows["density_unit"] == "km-2").sum())
+
+
+def test_density_unit_of_files_written_before_the_column(study_dir: Path) -> None:
+    study = _trawl(study_dir)
+    store = Store(study.store_dir)
+    with store.connect() as con:
+        before = con.execute("SELECT record_id, density_unit FROM observations ORDER BY 1").fetchall()
+    for f in _parts(study):
+        pq.write_table(pq.read_table(f).drop_columns(["density_unit"]), f)
+    with store.connect() as con:
+        assert con.execute("SELECT record_id, density_unit FROM observations ORDER BY 1").fetchall() == before

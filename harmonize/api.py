@@ -132,14 +132,17 @@ class StudyHandle:
     def observations(self, kinds: Names = None, years: Iterable[int] | str | None = None, seasons: Names = None,
                      layers: Names = None, variables: Names = None, sources: Names = None,
                      columns: list[str] | None = None, limit: int | None = None, taxon_level: str | None = None,
-                     consistent_taxa: bool = False) -> pd.DataFrame:
-        """The long table (observations plus ``log_effort``) for the filters, as a DataFrame.
+                     consistent_taxa: bool = False, as_: str = "pandas") -> Any:
+        """The long table (observations plus ``log_effort``) for the filters.
 
-        Fishing values resting on fewer than the study's ``min_vessels`` vessels are blanked,
-        as in every export. For very large selections prefer :meth:`export` to parquet.
+        ``as_``: ``"pandas"`` (a DataFrame; integer columns as nullable ``Int64``, times as
+        ``datetime64[us, UTC]``), ``"arrow"`` (a pyarrow Table) or ``"duckdb"`` (a DuckDB
+        relation over that table). Fishing values resting on fewer than the study's
+        ``min_vessels`` vessels are blanked, as in every export. For very large selections
+        prefer :meth:`export` to parquet.
         """
         return read_long(self.study, self.filters(kinds, years, seasons, layers, variables, sources, taxon_level,
-                                                  consistent_taxa), columns, limit)
+                                                  consistent_taxa), columns, limit, as_=as_)
 
     def wide(self, quantity: str = "count", by_life_stage: bool = False, **filters: Any) -> pd.DataFrame:
         """The event x taxon table (see :mod:`harmonize.export.wide`) as a DataFrame."""

@@ -234,3 +234,37 @@ def test_density_unit_of_files_written_before_the_column(study_dir: Path) -> Non
         pq.write_table(pq.read_table(f).drop_columns(["density_unit"]), f)
     with store.connect() as con:
         assert con.execute("SELECT record_id, density_unit FROM observations ORDER BY 1").fetchall() == before
+
+
+# --------------------------------------------------------------------------- Python API
+def test_observations_in_three_readers_with_nullable_integers(study_dir: Path) -> None:
+    from harmonize import open_study
+    study = _trawl(study_dir)
+    handle = open_study(study.root)
+    frame = handle.observations()
+    table = handle.observations(as_="arrow")
+    relation = handle.observations(as_="duckdb")
+    assert isinstance(table, pa.Table) and isinstance(frame, pd.DataFrame)
+    assert len(frame) == table.num_rows == relation.count("*").fetchall()[0][0] > 0
+    # nullable integers: a null vessel count (no trawl has one) keeps the column an integer
+    assert frame["n_vessels"].dtype == pd.Int64Dtype() and frame["n_vessels"].isna().all()
+    assert frame["season_year"].dtype == pd.Int64Dtype()
+    assert str(frame["event_start"].dt.tz) == "UTC"
+    assert table.schema.field("event_start").type == pa.timestamp("us", tz="UTC")
+    ids = sorted(table["record_id"].to_pylist())
+    assert sorted(frame["record_id"]) == ids == sorted(r[0] for r in relation.select("record_id").fetchall())
+    with pytest.raises(Exception, match="as_='polars' is not a reader; choose one of pandas, arrow, duckdb"):
+        handle.observations(as_="polars")
+
+
+def test_package_ships_py_typed_and_no_unused_netcdf_engine() -> None:
+    import tomllib
+    from importlib import resources
+    assert resources.files("harmonize").joinpath("py.typed").is_file()
+    root = Path(__file__).resolve().parent.parent
+    project = tomllib.loads((root / "pyproject.toml").read_text())
+    assert "py.typed" in project["tool"]["setuptools"]["package-data"]["harmonize"]
+    deps = " ".join(project["project"]["dependencies"])
+    assert "h5netcdf" not in deps
+    sources = [p for d in ("harmonize", "cli") for p in (root / d).rglob("*.py")]
+    assert not [p for p in sources if "h5netcdf" in p.read_text()]

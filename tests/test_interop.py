@@ -268,3 +268,31 @@ def test_package_ships_py_typed_and_no_unused_netcdf_engine() -> None:
     assert "h5netcdf" not in deps
     sources = [p for d in ("harmonize", "cli") for p in (root / d).rglob("*.py")]
     assert not [p for p in sources if "h5netcdf" in p.read_text()]
+
+
+def test_units_of_numeric_columns_in_parquet_field_metadata(study_dir: Path, tmp_path: Path) -> None:
+    study = _trawl(study_dir)
+    for fmt in ("long", "grid"):
+        path = tmp_path / f"{fmt}.parquet"
+        export(study, fmt, path)
+        schema = pq.read_schema(path)
+        numeric = [f for f in schema if pa.types.is_integer(f.type) or pa.types.is_floating(f.type)]
+        assert numeric
+        for f in numeric:
+            meta = {k.decode(): v.decode() for k, v in (f.metadata or {}).items()}
+            assert "unit" in meta or meta.get("unit_column") in schema.names, (fmt, f.name, meta)
+        units = {f.name: {k.decode(): v.decode() for k, v in (f.metadata or {}).items()} for f in numeric}
+        if fmt == "long":
+            assert units["lat"]["unit"] == "degrees_north" and units["depth_min_m"]["unit"] == "m"
+            assert units["value"]["unit_column"] == "unit" and units["density"]["unit_column"] == "density_unit"
+        else:
+            assert units["mean_density"]["unit_column"] == "density_unit"
+            assert units["total_effort"]["unit_column"] == "effort_unit"
+        # the schema entry changes nothing of the values: pyarrow and DuckDB read the same rows
+        arrow_rows = pq.read_table(path).num_rows
+        assert duckdb.connect().execute("SELECT count(*) FROM read_parquet(?)", [str(path)]).fetchall()[0][0] == arrow_rows
+        # the provenance key is still there
+        assert b"harmonize" in pq.read_metadata(path).metadata
+    grid = pq.read_table(tmp_path / "grid.parquet").to_pandas()
+    counts = grid[grid["quantity"] == "count"]
+    assert len(counts) and set(counts["density_unit"]) == {"km-2"}

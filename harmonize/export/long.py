@@ -97,7 +97,8 @@ def export_long(study: Study, out: str | Path, filters: ExportFilters | None = N
         if path.suffix.lower() == ".parquet":
             target = str(path).replace("'", "''")
             con.execute(f"COPY ({long_query(ordered=False)}) TO '{target}' "
-                        f"(FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 500000, {kv_metadata_sql(meta)})")
+                        f"(FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 500000, "
+                        f"{kv_metadata_sql(meta, con, long_query(ordered=False))})")
         else:
             columns, _rows = copy_safe_csv(con, long_query(ordered=False), path)
             files.append(write_sidecar(path, meta, columns))

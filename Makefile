@@ -21,7 +21,13 @@ demo: $(STAMP)
 	rm -rf demo-study
 	$(BIN)/harmonize demo demo-study
 
-test: $(STAMP)
+# The audit report's browser test drives Debian's chromium (through playwright; never
+# `playwright install`). CI runs as root on a fresh machine: install it when it is missing.
+/usr/bin/chromium:
+	apt-get update
+	apt-get install -y --no-install-recommends chromium
+
+test: $(STAMP) /usr/bin/chromium
 	$(BIN)/python -m pytest -q
 	$(BIN)/ruff check harmonize cli tests
 

@@ -144,6 +144,7 @@ def make_store(folder: Path, n_rows: int) -> dict[str, Any]:
         files = [{"role": "rows", "file_name": record.file_name, "file_sha256": record.file_sha256,
                   "rows_read": events, "rows_accepted": events, "rows_quarantined": 0}]
         store.commit(record, files, staged, pd.DataFrame(), [], lambda previous: [])
+        store.discard(staged)  # releases the staging folder's lock
     size = sum(p.stat().st_size for p in (study.store_dir / "observations").rglob("*.parquet"))
     return {"rows": n_rows, "parquet_mb": size / 2**20}
 

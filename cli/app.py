@@ -11,18 +11,19 @@ from __future__ import annotations
 
 import importlib
 import os
+import signal
 import sys
 from collections.abc import Sequence
 from pathlib import Path
-from typing import Any
+from typing import Any, NoReturn
 
 import typer
 from harmonize.cli.console import STUDY_ENV, configure_logging, consoles, err_console
 from typer._click import exceptions as click_exceptions  # typer >= 0.29 carries its own click
 from typer.core import TyperArgument, TyperGroup
 
-from harmonize import __version__
-from harmonize.errors import HarmonizeError
+from harmonize import __version__, interrupts
+from harmonize.errors import HarmonizeError, failure_line, one_line
 
 EXIT_OK, EXIT_DATA, EXIT_USAGE, EXIT_INTERNAL, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
 
@@ -31,12 +32,17 @@ VERB_MODULES = ("init_cmd", "ingest_cmds", "store_cmds", "quarantine_cmd", "audi
                 "link_cmd", "twins_cmd", "plan_cmd", "repair_cmd")
 
 
-def _one_line(text: str) -> str:
-    return " ".join(str(text).split())
-
-
 def _error(text: str) -> None:
-    err_console.print(_one_line(text), markup=False, highlight=False, soft_wrap=True)
+    """One line on stderr: control characters (a line break in a file name) shown escaped."""
+    err_console.print(one_line(str(text)), markup=False, highlight=False, soft_wrap=True)
+
+
+def _interrupted(signum: int, committed: bool = False) -> NoReturn:
+    if committed:
+        _error("interrupted after the store was updated: the last step completed; run 'harmonize status' to see it")
+    else:
+        _error("interrupted; the store is unchanged")
+    raise typer.Exit(128 + signum)
 
 
 def _plain_argument(arg: TyperArgument) -> None:
@@ -72,13 +78,18 @@ class HarmonizeGroup(TyperGroup):
 
     def invoke(self, ctx: typer.Context) -> Any:
         try:
-            return super().invoke(ctx)
+            # SIGINT / SIGTERM stop DuckDB queries through the connection and end in 130 / 143
+            with interrupts.installed():
+                return super().invoke(ctx)
+        except interrupts.Interrupted as exc:
+            _interrupted(exc.signum, exc.committed)
         except HarmonizeError as exc:
+            if interrupts.received():
+                _interrupted(interrupts.received())
             _error(f"error: {exc}")
             raise typer.Exit(EXIT_USAGE) from None
         except KeyboardInterrupt:
-            _error("interrupted; the store is unchanged by the unfinished step")
-            raise typer.Exit(EXIT_INTERRUPTED) from None
+            _interrupted(int(signal.SIGINT))
         except BrokenPipeError:
             # the reader of a pipe went away (e.g. '| head'): nothing more to say
             sys.stdout = open(os.devnull, "w")  # noqa: SIM115 - silences the flush at exit
@@ -86,8 +97,14 @@ class HarmonizeGroup(TyperGroup):
         except (typer.Exit, typer.Abort, click_exceptions.ClickException):
             raise
         except Exception as exc:  # noqa: BLE001 - last resort: one line, never a bare traceback
+            if interrupts.received():  # a DuckDB query stopped by the interrupt ("Query interrupted")
+                _interrupted(interrupts.received())
             if os.environ.get("HARMONIZE_DEBUG"):
                 raise
+            known = failure_line(exc)  # a full disk, a folder that cannot be written
+            if known is not None:
+                _error(known[0])
+                raise typer.Exit(known[1]) from None
             _error(f"internal error: {type(exc).__name__}: {exc}. The store is unchanged by the failed step. "
                    "Please report this; set HARMONIZE_DEBUG=1 to see the traceback.")
             raise typer.Exit(EXIT_INTERNAL) from None

@@ -131,6 +131,13 @@ def study_from(ctx: typer.Context, study: Path | None = None) -> Study:
     return load_study(study_path(ctx, study))
 
 
+def warn_precise(min_vessels: int) -> None:
+    """The warning every command prints when asked for --precise output."""
+    from harmonize.disclosure import PRECISE_WARNING
+
+    err_console.print("WARNING: " + PRECISE_WARNING.format(n=min_vessels), style="bold red", markup=False)
+
+
 def fmt_int(n: int) -> str:
     return f"{n:,}"
 

@@ -19,6 +19,7 @@ from harmonize.cli.console import (
     say,
     study_from,
     study_option,
+    warn_precise,
 )
 
 from harmonize.export import FORMATS
@@ -52,8 +53,17 @@ def export_cmd(
     quantity: Quantity = typer.Option("count", "--quantity",
                                  help="wide: the quantity in the taxon columns."),
     by_life_stage: bool = typer.Option(False, "--by-life-stage", help="wide: one column per taxon and life stage."),
-    generalise_deg: float = typer.Option(0.1, "--generalise-deg", metavar="DEGREES",
-                                         help="dwca: rounding of the positions of events with a sensitive taxon."),
+    generalise_deg: float | None = typer.Option(
+        None, "--generalise-deg",
+        help="Rounding (degrees) of events with a sensitive taxon (default: [confidentiality] generalise_deg, 0.1)."),
+    fishing_aggregate: bool = typer.Option(
+        False, "--fishing-aggregate",
+        help="Sum fishing effort to coarser cells or whole season years until 3 vessels contribute "
+             "(see docs/exports.md, What is withheld and why)."),
+    precise: bool = typer.Option(
+        False, "--precise",
+        help="INTERNAL USE ONLY: include fishing rows of fewer than min_vessels vessels and exact positions of "
+             "sensitive taxa; recorded in the export's provenance."),
     taxon_level: str | None = typer.Option(
         None, "--taxon-level", metavar="RANK",
         help="long/wide/dwca: roll taxa up to their ancestor of this rank (taxa.csv rank/parent)."),
@@ -69,13 +79,16 @@ def export_cmd(
 ) -> None:
     """Export the store with the filters given.
 
+    Every export passes the disclosure gate (docs/exports.md, "What is withheld and why").
+
     \b
     Examples:
       harmonize export long obs.parquet --kind trawl,plankton --years 2019-2023
       harmonize export wide samples.csv --quantity biomass
+      harmonize export wide samples.csv --consistent-taxa
+      harmonize export grid effort.parquet --kind effort --fishing-aggregate
       harmonize export grid - --kind effort | head
       harmonize export dwca archive.zip --json
-      harmonize export wide samples.csv --consistent-taxa
     """
     if as_json and is_stdout(out):
         raise typer.BadParameter("--json prints its document on stdout; give OUT as a file, not '-'")
@@ -85,13 +98,14 @@ def export_cmd(
     from harmonize.export.selection import ExportFilters
 
     study = study_from(ctx, study_dir)
+    if precise:
+        warn_precise(study.min_vessels)
     filters = ExportFilters.build(",".join(kind) if kind else None, years, seasons, layers, variables, sources,
                                   taxon_level=taxon_level, consistent_taxa=consistent_taxa)
-    options: dict[str, object] = {}
+    options: dict[str, object] = {"precise": precise, "fishing_aggregate": fishing_aggregate,
+                                  "generalise_deg": generalise_deg}
     if fmt == "wide":
-        options = {"quantity": quantity, "by_life_stage": by_life_stage, "memory_limit": memory_limit}
-    elif fmt == "dwca":
-        options = {"generalise_deg": generalise_deg}
+        options.update(quantity=quantity, by_life_stage=by_life_stage, memory_limit=memory_limit)
     if is_stdout(out):
         with tempfile.TemporaryDirectory(prefix="harmonize-export-") as tmp:
             result = export(study, fmt, Path(tmp) / _STDOUT_NAME[fmt], filters, **options)
@@ -100,21 +114,21 @@ def export_cmd(
             sys.stdout.flush()
         err_console.print(f"wrote {fmt_int(result.rows)} {_UNITS[fmt]} to stdout (the metadata sidecar is "
                           "written only beside a file)", markup=False)
+        for note in result.notes:
+            err_console.print(f"note: {note}", markup=False)
         return
     result = export(study, fmt, out, filters, **options)
     say(f"wrote {fmt_int(result.rows)} {_UNITS[fmt]} to {result.path}")
     for extra in result.files[1:]:
         say(f"metadata: {extra}")
-    suppressed = result.metadata["confidentiality"]["rows_suppressed"]
-    if suppressed:
-        say(f"{fmt_int(suppressed)} fishing values suppressed (fewer than {study.min_vessels} vessels)")
+    suppressed = result.metadata["confidentiality"].get("effort_rows_withheld", 0)
     rollup = result.metadata["counts"].get("taxon_rollup") or {}
     if rollup:
         rolled = rollup.get("rolled_into", {})
         say(f"taxa rolled up: {len(rolled)} into {len(set(rolled.values()))} "
-                      f"({', '.join(sorted(set(rolled.values()))) or 'none'}); "
-                      f"{fmt_int(rollup.get('values_left_out_incomplete', 0))} values left out because not every "
-                      "member was recorded at the event")
+            f"({', '.join(sorted(set(rolled.values()))) or 'none'}); "
+            f"{fmt_int(rollup.get('values_left_out_incomplete', 0))} values left out because not every "
+            "member was recorded at the event")
     for note in result.notes:
         say(f"note: {note}")
     say(CAUTION)

@@ -20,6 +20,7 @@ from harmonize.cli.console import (
 )
 
 from harmonize.engines import ENGINES
+from harmonize.errors import one_line
 
 Engine = Literal[ENGINES]  # type: ignore[valid-type]
 
@@ -97,6 +98,7 @@ def ingest(
     events: Path | None = _events_opt(),
     records_file: Path | None = _records_opt(),
     replace: bool = typer.Option(False, "--replace", help="Supersede an earlier ingest of the same file."),
+    dry_run: bool = typer.Option(False, "--dry-run", help="Do everything but write; say what --replace would supersede."),
     show: int = typer.Option(FIRST_PROBLEMS, "--show", metavar="N", help="How many rejected rows to list."),
     strict: bool = typer.Option(False, "--strict", help="Exit 1 when rows went to quarantine."),
     engine: Engine | None = typer.Option(None, "--engine",
@@ -125,13 +127,23 @@ def ingest(
     results = []
     for inputs in assign_inputs(adapter, prof, files or [], events, records_file):
         result = _with_progress(lambda cb, i=inputs: run(st, profile, i, write=True, replace=replace, progress=cb,
-                                                         engine=engine, scheduler=scheduler))
+                                                         engine=engine, scheduler=scheduler, dry_run=dry_run,
+                                                         notice=_notice))
         results.append(result)
         _print_result(result, show, per_reason=False)
     code = 1 if (strict and any(r.rows_quarantined > 0 for r in results)) else 0
     if as_json:
         emit_json("ingest", {"study": st.name, "results": [_result_doc(r) for r in results]}, code)
     raise typer.Exit(code)
+
+
+def _notice(message: str) -> None:
+    console.print(one_line(message), markup=False)
+
+
+def _notice(message: str) -> None:
+    """What the library says before it acts (e.g. which ingest --replace supersedes)."""
+    say(one_line(message))
 
 
 def _with_progress(job):  # type: ignore[no-untyped-def]
@@ -189,7 +201,7 @@ def _print_without_values(result: IngestResult) -> None:
 def _print_result(result: IngestResult, show: int | None, per_reason: bool) -> None:
     if result.status == "unchanged":
         for note in result.notes:
-            say(note)
+            say(one_line(note))
         return
     from rich.table import Table
 
@@ -198,7 +210,7 @@ def _print_result(result: IngestResult, show: int | None, per_reason: bool) -> N
     for col in ("file", "rows read", "accepted", "quarantined"):
         table.add_column(col, justify="left" if col == "file" else "right")
     for f in result.files:
-        table.add_row(f.path.name, fmt_int(f.rows_read), fmt_int(f.rows_accepted), fmt_int(f.rows_quarantined))
+        table.add_row(one_line(f.path.name), fmt_int(f.rows_read), fmt_int(f.rows_accepted), fmt_int(f.rows_quarantined))
     console.print(table)
     written = "would be written" if result.status == "checked" else "written"
     say(f"observation rows {written}: {fmt_int(result.records_written)} "
@@ -209,7 +221,7 @@ def _print_result(result: IngestResult, show: int | None, per_reason: bool) -> N
     if result.superseded:
         say(f"superseded earlier ingest(s): {', '.join(result.superseded)}")
     for note in result.notes:
-        say(note)
+        say(one_line(note))
     if not result.rows_quarantined:
         return
     reasons = ", ".join(f"{code} {fmt_int(n)}" for code, n in result.reasons().items())
@@ -221,13 +233,13 @@ def _print_result(result: IngestResult, show: int | None, per_reason: bool) -> N
         # nothing is stored by a check: list the rows here, the first N of each reason
         first = q if show is None else q.groupby("reason_code", sort=False).head(show)
         for row in first.itertuples():
-            say(f"  {row.source_file} row {row.source_row}: [{row.reason_code}] {row.message}")
+            say(one_line(f"  {row.source_file} row {row.source_row}: [{row.reason_code}] {row.message}"))
         if len(first) < len(q):
             say(f"  ... {fmt_int(len(q) - len(first))} more rejected rows; '--all' lists every one, "
                 "'--json' gives them to a script")
         return
     first = q.head(show)
     for row in first.itertuples():
-        say(f"  {row.source_file} row {row.source_row}: [{row.reason_code}] {row.message}")
+        say(one_line(f"  {row.source_file} row {row.source_row}: [{row.reason_code}] {row.message}"))
     if len(q) > len(first):
         say(f"  ... and {fmt_int(len(q) - len(first))} more; see 'harmonize quarantine'")

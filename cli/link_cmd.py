@@ -14,6 +14,7 @@ from harmonize.cli.console import (
     say,
     study_from,
     study_option,
+    warn_precise,
     write_csv_out,
 )
 
@@ -32,6 +33,8 @@ def colocate_cmd(
                                      help="Take a variable from this gridded source; repeat per variable."),
     csv: Path | None = typer.Option(None, "--csv", metavar="OUT", help="Write the values to this CSV file ('-' for stdout)."),
     wide: bool = typer.Option(False, "--wide", help="One row per event, one column per variable (needs one source per variable)."),
+    precise: bool = typer.Option(False, "--precise", help="INTERNAL USE ONLY: include fishing cell-periods of "
+                                 "fewer than min_vessels vessels and sensitive events at their exact cell."),
     study_dir: Path | None = study_option(),
 ) -> None:
     """Attach to each sample event the gridded value of its cell and period (and layer).
@@ -49,13 +52,18 @@ def colocate_cmd(
     from harmonize.colocate import colocate, colocate_wide
 
     study = study_from(ctx, study_dir)
+    if precise:
+        warn_precise(study.min_vessels)
+    from harmonize.disclosure import Disclosure
+
+    rules = Disclosure.for_study(study, precise=precise)
     chosen = {}
     for item in source:
         variable, sep, source_id = item.partition("=")
         if not sep or not variable or not source_id:
             raise HarmonizeError(f"--source '{item}' is not VARIABLE=SOURCE_ID")
         chosen[variable.strip()] = source_id.strip()
-    long = colocate(study, variables, sources=chosen)
+    long = colocate(study, variables, sources=chosen, disclosure=rules)
     table = Table(title="gridded values attached to sample events", title_justify="left")
     for col in ("events of", "variable", "from", "events", "with a value"):
         table.add_column(col, justify="right" if col in ("events", "with a value") else "left")
@@ -66,7 +74,7 @@ def colocate_cmd(
         table.add_row(r.source_id, r.variable, r.gridded_source_id, fmt_int(r.events), fmt_int(int(r.found)))
     console.print(table)
     if csv is not None:
-        out = colocate_wide(study, variables, sources=chosen) if wide else long
+        out = colocate_wide(study, variables, sources=chosen, disclosure=rules) if wide else long
         write_csv_out(out, csv)
         if not is_stdout(csv):
             say(f"written: {csv} ({fmt_int(len(out))} rows)")

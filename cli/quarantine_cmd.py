@@ -16,10 +16,11 @@ from harmonize.cli.console import (
     say,
     study_from,
     study_option,
+    warn_precise,
     write_csv_out,
 )
 
-COLUMNS = ["ingest_id", "source_id", "source_file", "source_row", "reason_code", "message", "raw"]
+COLUMNS = ["ingest_id", "source_id", "source_file", "source_row", "reason_code", "message", "raw", "withheld"]
 
 
 def register(app: typer.Typer) -> None:
@@ -34,6 +35,8 @@ def quarantine(
     ingest: str | None = typer.Option(None, "--ingest", metavar="INGEST_ID", help="Only this ingest id."),
     source: str | None = typer.Option(None, "--source", metavar="SOURCE_ID", help="Only this source id."),
     limit: int = typer.Option(50, "--limit", metavar="N", help="How many rows to print."),
+    precise: bool = typer.Option(False, "--precise", help="INTERNAL USE ONLY: keep the raw text of rejected fishing "
+                                 "rows and of rows naming a sensitive taxon in the CSV."),
     study: Path | None = study_option(),
     as_json: bool = json_option(),
 ) -> None:
@@ -47,10 +50,13 @@ def quarantine(
       harmonize quarantine --json --source my_trawl
     """
     consoles.json = as_json or is_stdout(csv)
-    from harmonize.store import Store
+    from harmonize.disclosure import Disclosure, public_quarantine_rows
 
     st = study_from(ctx, study)
-    rows = Store(st.store_dir).quarantine(ingest_id=ingest, reason=reason, source_id=source)
+    if precise:
+        warn_precise(st.min_vessels)
+    rows = public_quarantine_rows(st, Disclosure.for_study(st, precise=precise),
+                                  ingest_id=ingest, reason=reason, source_id=source)
     if as_json:
         if csv is not None and not is_stdout(csv):
             write_csv_out(rows, csv)
@@ -62,7 +68,9 @@ def quarantine(
     if csv is not None:
         write_csv_out(rows, csv)
         if not is_stdout(csv):
-            say(f"wrote {fmt_int(len(rows))} quarantined rows to {csv}")
+            withheld = int(rows["withheld"].notna().sum()) if "withheld" in rows else 0
+            say(f"wrote {fmt_int(len(rows))} quarantined rows to {csv} ({fmt_int(withheld)} with raw text "
+                "withheld: fishing rows locate one vessel, others name a sensitive taxon)")
         return
     if rows.empty:
         console.print("no quarantined rows")

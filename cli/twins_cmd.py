@@ -17,6 +17,7 @@ from harmonize.cli.console import (
     say,
     study_from,
     study_option,
+    warn_precise,
     write_csv_out,
 )
 
@@ -30,6 +31,8 @@ def twins_cmd(
     csv: Path | None = typer.Option(None, "--csv", metavar="OUT", help="Write every twin (both records side by side) "
                                     "to this CSV file ('-' for stdout)."),
     limit: int = typer.Option(20, "--limit", metavar="N", help="How many twins to print."),
+    precise: bool = typer.Option(False, "--precise", help="INTERNAL USE ONLY: exact positions of records of "
+                                 "sensitive taxa in the CSV (default: rounded, as in every output)."),
     study_dir: Path | None = study_option(),
     as_json: bool = json_option(),
 ) -> None:
@@ -44,17 +47,22 @@ def twins_cmd(
     consoles.json = as_json or is_stdout(csv)
     from rich.table import Table
 
+    from harmonize.disclosure import Disclosure, public_twins
     from harmonize.store import Store
-    from harmonize.twins import twins_frame, volunteer_only
+    from harmonize.twins import volunteer_only
 
     study = study_from(ctx, study_dir)
+    if precise:
+        warn_precise(study.min_vessels)
     with Store(study.store_dir).connect() as con:
-        pairs = twins_frame(con)
+        pairs = public_twins(con, Disclosure.for_study(study, precise=precise))
         alone = volunteer_only(con)
     if csv is not None:
         write_csv_out(pairs, csv)
         if not is_stdout(csv):
-            say(f"wrote {fmt_int(len(pairs))} twins to {csv}")
+            generalised = int(pairs["data_generalizations"].notna().sum()) if "data_generalizations" in pairs else 0
+            say(f"wrote {fmt_int(len(pairs))} twins to {csv} ({fmt_int(generalised)} with positions "
+                "generalised: a sensitive taxon was recorded at the event)")
     if as_json:
         emit_json("twins", {"study": study.name, "twins": records(pairs), "volunteer_only": records(alone)})
         return

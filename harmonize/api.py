@@ -21,6 +21,7 @@ from typing import Any
 
 import pandas as pd
 
+from harmonize.disclosure import Disclosure, public_quarantine_rows
 from harmonize.errors import HarmonizeError
 from harmonize.export.grid import read_grid
 from harmonize.export.long import read_long
@@ -114,9 +115,14 @@ class StudyHandle:
                            self.store.check() if check else [], self.store.events_without_values())
 
     def quarantine(self, reason: str | None = None, ingest_id: str | None = None, source_id: str | None = None,
-                   limit: int | None = None) -> pd.DataFrame:
-        """Rejected input rows with reason codes and messages (``harmonize quarantine``)."""
-        return self.store.quarantine(ingest_id=ingest_id, reason=reason, source_id=source_id, limit=limit)
+                   limit: int | None = None, precise: bool = False) -> pd.DataFrame:
+        """Rejected input rows with reason codes and messages (``harmonize quarantine``).
+
+        As every output, they pass :mod:`harmonize.disclosure`: the raw text of a rejected
+        fishing row or of a row naming a sensitive taxon is withheld unless ``precise``.
+        """
+        return public_quarantine_rows(self.study, Disclosure.for_study(self.study, precise=precise),
+                                      ingest_id=ingest_id, reason=reason, source_id=source_id, limit=limit)
 
     @staticmethod
     def filters(kinds: Names = None, years: Iterable[int] | str | None = None, seasons: Names = None,
@@ -132,25 +138,31 @@ class StudyHandle:
     def observations(self, kinds: Names = None, years: Iterable[int] | str | None = None, seasons: Names = None,
                      layers: Names = None, variables: Names = None, sources: Names = None,
                      columns: list[str] | None = None, limit: int | None = None, taxon_level: str | None = None,
-                     consistent_taxa: bool = False, as_: str = "pandas") -> Any:
+                     consistent_taxa: bool = False, precise: bool = False,
+                     fishing_aggregate: bool = False, as_: str = "pandas") -> Any:
         """The long table (observations plus ``log_effort``) for the filters.
 
         ``as_``: ``"pandas"`` (a DataFrame; integer columns as nullable ``Int64``, times as
         ``datetime64[us, UTC]``), ``"arrow"`` (a pyarrow Table) or ``"duckdb"`` (a DuckDB
-        relation over that table). Fishing values resting on fewer than the study's
-        ``min_vessels`` vessels are blanked, as in every export. For very large selections
-        prefer :meth:`export` to parquet.
+        relation over that table). As every export, it passes :mod:`harmonize.disclosure`:
+        fishing rows resting on fewer than the study's ``min_vessels`` vessels are withheld and
+        events with a sensitive taxon generalised, unless ``precise`` (internal use; logged as a
+        warning). For very large selections prefer :meth:`export` to parquet.
         """
+        rules = Disclosure.for_study(self.study, precise=precise, fishing_aggregate=fishing_aggregate)
         return read_long(self.study, self.filters(kinds, years, seasons, layers, variables, sources, taxon_level,
-                                                  consistent_taxa), columns, limit, as_=as_)
+                                                  consistent_taxa), columns, limit, disclosure=rules, as_=as_)
 
-    def wide(self, quantity: str = "count", by_life_stage: bool = False, **filters: Any) -> pd.DataFrame:
+    def wide(self, quantity: str = "count", by_life_stage: bool = False, precise: bool = False,
+             **filters: Any) -> pd.DataFrame:
         """The event x taxon table (see :mod:`harmonize.export.wide`) as a DataFrame."""
-        return read_wide(self.study, self.filters(**filters), quantity, by_life_stage)
+        return read_wide(self.study, self.filters(**filters), quantity, by_life_stage,
+                         disclosure=Disclosure.for_study(self.study, precise=precise))
 
-    def grid(self, **filters: Any) -> pd.DataFrame:
+    def grid(self, precise: bool = False, fishing_aggregate: bool = False, **filters: Any) -> pd.DataFrame:
         """The cell x period x layer x variable summary (see :mod:`harmonize.export.grid`)."""
-        return read_grid(self.study, self.filters(**filters))
+        rules = Disclosure.for_study(self.study, precise=precise, fishing_aggregate=fishing_aggregate)
+        return read_grid(self.study, self.filters(**filters), disclosure=rules)
 
     # ------------------------------------------------------------------ outputs
     def export(self, fmt: str, out: str | Path, *, kinds: Names = None, years: Iterable[int] | str | None = None,
@@ -158,8 +170,9 @@ class StudyHandle:
                taxon_level: str | None = None, consistent_taxa: bool = False, **options: Any) -> ExportResult:
         """Write an export (``harmonize export FORMAT OUT``): long, wide, grid, gpkg or dwca.
 
-        A relative ``out`` is taken from the current folder. ``options`` go to the format
-        (``quantity``/``by_life_stage`` for wide, ``generalise_deg`` for dwca).
+        A relative ``out`` is taken from the current folder. ``options`` are the disclosure
+        options of :func:`harmonize.export.run.export` (``precise``, ``fishing_aggregate``,
+        ``generalise_deg``) and the format's (``quantity``/``by_life_stage`` for wide).
         """
         if fmt not in EXPORTERS:
             raise HarmonizeError(f"unknown export format {fmt!r}; choose from {', '.join(EXPORTERS)}")

@@ -7,6 +7,11 @@ layers "surface" or "near_bottom" match every sample whatever its depth layer (a
 sea-surface temperature); fields reduced per study depth layer match the sample's layer.
 A sample whose cell had no valid pixel in that period gets a null value, never a value
 borrowed from a neighbouring cell or period.
+
+The store's events pass the disclosure gate (:mod:`harmonize.disclosure`) like every output:
+withheld fishing-effort cell-periods are not among the events, and an event with a
+sensitive taxon is placed at its generalised position (its cell is the one the rounded
+coordinates fall in, never its own withheld cell).
 """
 
 from __future__ import annotations
@@ -14,9 +19,11 @@ from __future__ import annotations
 from collections.abc import Mapping, Sequence
 
 import duckdb
+import numpy as np
 import pandas as pd
 
 from harmonize.clock import utc_naive
+from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
 from harmonize.gridded.cf import CANONICAL_VARIABLES
 from harmonize.store import Store
@@ -52,6 +59,7 @@ def colocate(
     variables: Sequence[str],
     events: pd.DataFrame | None = None,
     sources: Mapping[str, str] | None = None,
+    disclosure: Disclosure | None = None,
 ) -> pd.DataFrame:
     """Gridded values of ``variables`` for each sample event, in long form.
 
@@ -67,6 +75,8 @@ def colocate(
     sources
         Variable -> gridded source_id, to choose one source where several provide it. A
         variable not named here is taken from every gridded source that has it.
+    disclosure
+        The disclosure rules applied to the store's events (default: the study's).
 
     Returns
     -------
@@ -94,7 +104,7 @@ def colocate(
                 FROM observations WHERE source_kind = 'gridded' GROUP BY ALL ORDER BY ALL"""
         ).df()
         pairs = _pairs(available, variables, sources)
-        samples = _samples(con, events, study)
+        samples = _samples(con, events, study, disclosure or Disclosure.for_study(study))
         con.register("_samples", samples)
         con.register("_pairs", pairs)
         result = con.sql(
@@ -132,6 +142,7 @@ def colocate_wide(
     variables: Sequence[str],
     events: pd.DataFrame | None = None,
     sources: Mapping[str, str] | None = None,
+    disclosure: Disclosure | None = None,
 ) -> pd.DataFrame:
     """One row per sample event (source_id, event_id), one column per variable.
 
@@ -140,7 +151,7 @@ def colocate_wide(
     HarmonizeError
         When several gridded sources provide a variable and ``sources`` does not choose one.
     """
-    long = colocate(study, variables, events, sources)
+    long = colocate(study, variables, events, sources, disclosure)
     per_var = long.groupby("variable")["gridded_source_id"].unique()
     for variable, ids in per_var.items():
         if len(ids) > 1:
@@ -172,12 +183,15 @@ def _pairs(available: pd.DataFrame, variables: list[str], sources: Mapping[str, 
     return pairs
 
 
-def _samples(con: duckdb.DuckDBPyConnection, events: pd.DataFrame | None, study: Study) -> pd.DataFrame:
+def _samples(con: duckdb.DuckDBPyConnection, events: pd.DataFrame | None, study: Study,
+             rules: Disclosure) -> pd.DataFrame:
     """source_id, event_id, event_start, cell_id, depth_layer of the sample events."""
     if events is None:
-        return con.sql(
-            """SELECT DISTINCT source_id, event_id, event_start, cell_id, depth_layer
-               FROM observations WHERE source_kind <> 'gridded'"""
+        rules = rules.prepare(con, study, "source_kind <> 'gridded'")
+        events = con.sql(
+            f"""SELECT source_id, event_id, min(event_start) AS event_start, any_value(cell_id) AS cell_id,
+                       any_value(lat) AS lat, any_value(lon) AS lon, any_value(depth_layer) AS depth_layer
+                FROM ({rules.public_sql("source_kind <> 'gridded'")}) GROUP BY source_id, event_id"""
         ).to_arrow_table().to_pandas()
     need = {"source_id", "event_id", "event_start"}
     missing = sorted(need - set(events.columns))
@@ -185,11 +199,18 @@ def _samples(con: duckdb.DuckDBPyConnection, events: pd.DataFrame | None, study:
         raise HarmonizeError(f"the events to co-locate lack column(s) {missing}; they need source_id, event_id, "
                              "event_start and cell_id (or lat and lon)")
     ev = events.copy()
-    if "cell_id" not in ev:
-        if not {"lat", "lon"} <= set(ev.columns):
-            raise HarmonizeError("the events to co-locate need cell_id, or lat and lon to find it")
-        ev["cell_id"] = Grid(study.crs, study.cell_size_km).cell_ids(
-            ev["lon"].to_numpy(float), ev["lat"].to_numpy(float)).to_numpy()
+    if "cell_id" not in ev and not {"lat", "lon"} <= set(ev.columns):
+        raise HarmonizeError("the events to co-locate need cell_id, or lat and lon to find it")
+    if {"lat", "lon"} <= set(ev.columns):
+        # an event without a cell (e.g. a generalised sensitive event) is placed by its position
+        missing = ev["cell_id"].isna().to_numpy() if "cell_id" in ev else np.ones(len(ev), dtype=bool)
+        cells = ev["cell_id"].astype(object).to_numpy(copy=True) if "cell_id" in ev else np.full(len(ev), None, object)
+        if missing.any():
+            found = Grid(study.crs, study.cell_size_km).cell_ids(
+                pd.to_numeric(ev["lon"], errors="coerce").to_numpy(float)[missing],
+                pd.to_numeric(ev["lat"], errors="coerce").to_numpy(float)[missing])
+            cells[missing] = found.astype(object).where(found.notna(), None).to_numpy()
+        ev["cell_id"] = cells
     if "depth_layer" not in ev:
         ev["depth_layer"] = None
     ev["event_start"] = utc_naive(ev["event_start"]).to_numpy()

@@ -184,6 +184,9 @@ STUDY = Table({
     "confidentiality": Table({
         "min_vessels": _num("Fishing-effort cells with fewer vessels are suppressed in outputs.",
                             exclusive_minimum=0, default=3),
+        "generalise_deg": _num("Rounding (degrees) of the positions of events where a sensitive taxon was "
+                               "recorded, in every output (Chapman 2020).", exclusive_minimum=0, maximum=1,
+                               default=0.1),
     }, "Disclosure rules."),
 }, "study.toml: one study, many sources.", required=("study", "depth_layers", "taxa"))
 

@@ -75,3 +75,34 @@ class DuplicateIngestError(HarmonizeError):
 
 class HarmonizeWarning(UserWarning):
     """Warnings harmonize emits itself (turned into errors in the test suite)."""
+
+
+def one_line(text: str) -> str:
+    """The text with its control characters (line breaks, NUL, bidi overrides) shown escaped."""
+    return text if text.isprintable() else "".join(c if c.isprintable() else ascii(c)[1:-1] for c in text)
+
+
+def failure_line(exc: BaseException) -> tuple[str, int] | None:
+    """A one-line message and exit code for failures of the machine, not of harmonize.
+
+    A full disk (exit 3) and a folder that cannot be written (exit 2), whether Python
+    (``OSError``) or DuckDB ("No space left on device", "Permission denied", "Read-only file
+    system" in its message) reports it; None for anything else.
+    """
+    import errno
+    import re
+
+    text = str(exc)
+    path = getattr(exc, "filename", None)
+    if path is None:
+        quoted = re.search(r'"([^"]+)"', text)
+        path = quoted.group(1) if quoted else None
+    where = f" at {path}" if path else ""
+    code = getattr(exc, "errno", None)
+    if code == errno.ENOSPC or "No space left on device" in text:
+        return f"no space left on device{where}; the store is unchanged", 3
+    if code in (errno.EROFS, errno.EACCES, errno.EPERM) or "Read-only file system" in text \
+            or "Permission denied" in text:
+        why = "read-only file system" if code == errno.EROFS or "Read-only" in text else "permission denied"
+        return f"cannot write{where} ({why}); the store is unchanged", 2
+    return None

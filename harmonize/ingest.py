@@ -9,7 +9,7 @@ import queue
 import re
 import threading
 import uuid
-from collections.abc import Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -119,12 +119,18 @@ def run(
     progress: ProgressCallback | None = None,
     engine: str | None = None,
     scheduler: str | None = None,
+    dry_run: bool = False,
+    notice: Callable[[str], None] | None = None,
 ) -> IngestResult:
     """Validate and harmonise one set of inputs; with ``write``, commit them to the store.
 
-    Re-ingesting the same file(s) with the same configuration is a no-op ("unchanged").
-    Ingesting a file of the same name or content under another configuration needs
-    ``replace=True``, which supersedes the earlier ingest.
+    An ingest is identified by its source, its main input's path relative to the study (as
+    given when outside it) and the content of its inputs. Re-ingesting the same file(s) with
+    the same configuration is a no-op ("unchanged"). The same file (path) with other content,
+    or the same content under another configuration, needs ``replace=True``, which supersedes
+    the earlier ingest; ``notice`` is told which ingests are replaced before anything is read.
+    Another file that only shares the base name is a new ingest. ``dry_run`` does all of that
+    but writing ("would replace ...").
 
     ``engine`` ("duckdb" or "dask"; default: ``HARMONIZE_ENGINE`` or "duckdb") runs the
     steps that support it (ping tracks -> fishing hours) on that engine; ``scheduler`` is
@@ -140,29 +146,50 @@ def run(
     main_role = "events" if "events" in inputs else next(iter(inputs))
     inputs_sha = _digest(sorted(shas.items()))
     config_sha = _digest([prof.fingerprint, study.fingerprint, CONTRACT_VERSION])
-    main_name = Path(inputs[main_role]).name
+    main_path = study_path(study, inputs[main_role])
     store = Store(study.store_dir)
 
-    if write:
-        previous = store.previous_ingests(prof.source_id, [main_name], inputs_sha)
+    if write or dry_run:
+        previous = store.previous_ingests(prof.source_id, main_path, inputs_sha)
         same = previous[(previous["inputs_sha256"] == inputs_sha) & (previous["config_sha256"] == config_sha)]
         if len(same):
-            logger.info("%s: already ingested with this configuration; nothing to do", main_name)
+            logger.info("%s: already ingested with this configuration; nothing to do", main_path)
             return IngestResult("unchanged", prof.source_id, adapter.kind, str(same["ingest_id"].iloc[-1]), [],
-                                notes=[f"{main_name} was already ingested with this configuration (ingest {same['ingest_id'].iloc[-1]}); nothing to do"])
+                                notes=[f"{main_path} was already ingested with this configuration (ingest {same['ingest_id'].iloc[-1]}); nothing to do"])
         if len(previous) and not replace:
-            raise DuplicateIngestError(_duplicate_message(previous, main_name))
+            raise DuplicateIngestError(_duplicate_message(previous, main_path))
+        if len(previous) and notice is not None:
+            notice(f"{'would replace' if dry_run else 'replacing'} {describe_ingests(previous)}")
 
     started = pd.Timestamp.now("UTC").tz_localize(None)
     logger.info("reading %s with profile %s (%s adapter)", ", ".join(Path(p).name for p in inputs.values()),
                 prof.path.name, adapter.kind)
     with engine_scope(engine, scheduler):
         out = adapter.read(inputs, prof, study, progress)
-    logger.info("%s: %d rows read, %d accepted, %d quarantined", main_name, sum(f.rows_read for f in out.files),
+    logger.info("%s: %d rows read, %d accepted, %d quarantined", main_path, sum(f.rows_read for f in out.files),
                 sum(f.rows_accepted for f in out.files), sum(f.rows_quarantined for f in out.files))
     logger.debug("input sha256 %s, configuration sha256 %s", inputs_sha, config_sha)
-    return store_output(study, prof, adapter.kind, out, write=write, replace=replace,
+    return store_output(study, prof, adapter.kind, out, write=write and not dry_run, replace=replace,
                         inputs_sha256=inputs_sha, config_sha256=config_sha, started=started)
+
+
+def study_path(study: Study, path: str | Path) -> str:
+    """A file's path relative to the study folder (posix), or its full path when outside it."""
+    full = Path(path).resolve()
+    try:
+        return full.relative_to(study.root).as_posix()
+    except ValueError:
+        return full.as_posix()
+
+
+def describe_ingests(previous: pd.DataFrame) -> str:
+    """'ingest <id> of <path> (started <time>)', joined, for messages."""
+    parts = []
+    for r in previous.itertuples():
+        path = r.file_path if isinstance(r.file_path, str) and r.file_path else r.file_name
+        started = f" (started {pd.Timestamp(r.started_at):%Y-%m-%d %H:%M} UTC)" if "started_at" in previous else ""
+        parts.append(f"ingest {r.ingest_id} of {path}{started}")
+    return "; ".join(parts)
 
 
 def store_output(
@@ -186,6 +213,7 @@ def store_output(
     started = started if started is not None else pd.Timestamp.now("UTC").tz_localize(None)
     main = _main_file(out)
     main_name = Path(main).name
+    main_path = study_path(study, main)
     shas = {f.role: f.sha256 for f in out.files}
     inputs_sha = inputs_sha256 or _digest(sorted(shas.items()))
     config_sha = config_sha256 or _digest([profile.fingerprint, study.fingerprint, CONTRACT_VERSION])
@@ -216,16 +244,16 @@ def store_output(
             finished_at=pd.Timestamp.now("UTC").tz_localize(None), rows_read=result.rows_read,
             rows_accepted=result.rows_accepted, rows_quarantined=result.rows_quarantined,
             records_written=result.records_written, records_zero_filled=result.records_zero_filled,
-            profile_file=profile.path.name, duplicates=twin_settings(profile, kind),
+            profile_file=profile.path.name, duplicates=twin_settings(profile, kind), file_path=main_path,
         )
 
         def on_conflict(previous: pd.DataFrame) -> list[str]:
             same = previous[(previous["inputs_sha256"] == inputs_sha) & (previous["config_sha256"] == config_sha)]
             if len(same):
                 raise DuplicateIngestError(
-                    f"{main_name} was ingested by another process meanwhile (ingest {same['ingest_id'].iloc[-1]})")
+                    f"{main_path} was ingested by another process meanwhile (ingest {same['ingest_id'].iloc[-1]})")
             if len(previous) and not replace:
-                raise DuplicateIngestError(_duplicate_message(previous, main_name))
+                raise DuplicateIngestError(_duplicate_message(previous, main_path))
             return list(previous["ingest_id"])
 
         superseded = store.commit(record, files, staged, out.quarantine, [], on_conflict, masked=out.masked,
@@ -238,10 +266,10 @@ def store_output(
 
 
 def _duplicate_message(previous: pd.DataFrame, name: str) -> str:
-    ids = ", ".join(previous["ingest_id"])
     return (f"{name} (or a file with the same content) was already ingested for this source "
-            f"(ingest {ids}) with different content or configuration; "
-            "use --replace to supersede it, or rename the source in the profile if it is new data")
+            f"({describe_ingests(previous)}) with different content or configuration; "
+            "use --replace to supersede it (--dry-run shows what it replaces), "
+            "or rename the source in the profile if it is new data")
 
 
 def _digest(parts: object) -> str:

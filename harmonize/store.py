@@ -8,15 +8,20 @@ Accepted events that yield no observation row (a haul with no catch under a prof
 a zero-filling protocol, a segment whose bird rows were all quarantined) are kept in the
 ``events_without_values`` table, so that every input row stays accounted for.
 
-Crash safety: an ingest writes its parquet files into ``store/staging/<ingest_id>/``
-without any lock, then, holding the database's write lock, moves them into place and
-records them in one transaction. Files that are not in the manifest are never read, so a
-kill at any point leaves either all or none of an ingest visible; the next writer removes
-the leftovers.
+Crash safety: an ingest writes its parquet files into ``store/staging/<ingest_id>/`` (a
+folder it holds an OS lock on), then, holding the store's write lock (``flock`` on
+``write.lock``), writes a journal of where the files go, syncs and moves them into place and
+records them, with their sha256 and size, in one transaction. Files that are not in the
+manifest are never read, so a kill at any point leaves either all or none of an ingest
+visible; the next writer removes the files a dead ingest's journal names, and nothing else.
+
+Integrity: :meth:`Store.check` verifies every live file against its recorded size and
+checksum and reads it to the end; :mod:`harmonize.repair` takes damaged ingests out.
 """
 
 from __future__ import annotations
 
+import json
 import os
 import re
 import shutil
@@ -24,27 +29,39 @@ import time
 from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
-from pathlib import Path
+from pathlib import Path, PurePosixPath
 
 import duckdb
 import pandas as pd
 import pyarrow as pa
+import pyarrow.parquet as pq
 
-from harmonize import __version__, parts, twins, units
+from harmonize import __version__, interrupts, parts, twins, units
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns
 from harmonize.errors import StoreBusyError, StoreError
+from harmonize.files import file_digest, fsync_dir, fsync_file
+from harmonize.locks import FileLock, is_free
 
 DB_NAME = "harmonized.duckdb"
 OBSERVATIONS_DIR = "observations"
 STAGING_DIR = "staging"
+#: In a staging folder: the store paths its files are about to be moved to (see Store.commit).
+JOURNAL_NAME = "moving.json"
+#: The OS lock writers take (flock) before they open the database to write.
+WRITE_LOCK = "write.lock"
+#: Beside each staging folder <name>: <name>.lock, held by the process working in it.
+LOCK_SUFFIX = ".lock"
 PARTITION_COLUMNS = ("source_kind", "season_year")
 #: Version of the store's tables (store_meta key ``store_version``); a store without the key
-#: is version 1. 2: the ``events_without_values`` table. A writer brings an older store up to
-#: date (the tables are created when missing); readers of an older store see no such events.
-#: 3: event times written as parquet ``timestamp[us, tz=UTC]`` (older files hold UTC wall
-#: clocks and are read as UTC by the views) and the persisted views name their files relative
-#: to the store folder (rewritten by the first writer that opens an older store).
-STORE_VERSION = 3
+#: is version 1. 2: the ``events_without_values`` table. 3: the sha256 and size of every
+#: manifest file (``observation_files.sha256``, ``size_bytes``), ``ingests.damage_reason`` and
+#: ``ingests.file_path`` (the main input's path relative to the study: part of an ingest's identity).
+#: A writer brings an older store up to date (tables and columns are created when missing; the
+#: checksums of files an older store lists are taken when it is brought up to date).
+#: 4: event times written as parquet ``timestamp[us, tz=UTC]`` (older files hold UTC wall
+#: clocks: the views read them as UTC) and the persisted views name their files relative to
+#: the store folder (rewritten whenever harmonize opens the store for writing).
+STORE_VERSION = 4
 _LOCK_RE = re.compile(r"\(PID (\d+)\)")
 
 #: Columns of ``events_without_values``, in table order (see docs/store.md).
@@ -76,7 +93,9 @@ CREATE TABLE IF NOT EXISTS ingests (
     records_zero_filled BIGINT NOT NULL,
     superseded_by VARCHAR,
     tool_version VARCHAR,
-    profile_file VARCHAR
+    profile_file VARCHAR,
+    damage_reason VARCHAR,
+    file_path VARCHAR
 );
 CREATE TABLE IF NOT EXISTS ingest_files (
     ingest_id VARCHAR NOT NULL,
@@ -132,8 +151,18 @@ CREATE TABLE IF NOT EXISTS events_without_values (
 CREATE TABLE IF NOT EXISTS observation_files (
     ingest_id VARCHAR NOT NULL,
     path VARCHAR NOT NULL,
-    n_rows BIGINT NOT NULL
+    n_rows BIGINT NOT NULL,
+    sha256 VARCHAR,
+    size_bytes BIGINT
 );
+"""
+
+#: Columns later store versions added to tables an older store already has.
+_ADDED_COLUMNS_SQL = """
+ALTER TABLE observation_files ADD COLUMN IF NOT EXISTS sha256 VARCHAR;
+ALTER TABLE observation_files ADD COLUMN IF NOT EXISTS size_bytes BIGINT;
+ALTER TABLE ingests ADD COLUMN IF NOT EXISTS damage_reason VARCHAR;
+ALTER TABLE ingests ADD COLUMN IF NOT EXISTS file_path VARCHAR;
 """
 
 
@@ -160,6 +189,20 @@ class IngestRecord:
     status: str = "complete"
     #: opportunistic sources: the twin windows of the profile (harmonize.twins)
     duplicates: twins.TwinSettings | None = None
+    #: the main input's path relative to the study folder (as given when outside it)
+    file_path: str | None = None
+
+
+@dataclass(frozen=True)
+class Damage:
+    """A live manifest file that is missing, changed since it was committed, or unreadable."""
+
+    ingest_id: str
+    path: str  # relative to the store folder
+    problem: str
+
+    def __str__(self) -> str:
+        return f"ingest {self.ingest_id}: file {self.path} {self.problem}"
 
 
 class Store:
@@ -186,23 +229,47 @@ class Store:
         if lock_timeout_s is None:
             lock_timeout_s = float(os.environ.get("HARMONIZE_LOCK_TIMEOUT", "60"))
         self.lock_timeout_s = lock_timeout_s
+        self._staging_locks: dict[Path, FileLock] = {}
 
     # ------------------------------------------------------------------ connections
     def exists(self) -> bool:
         return self.db_path.is_file()
 
     @contextmanager
-    def connect(self, read_only: bool = True, view: bool = True) -> Iterator[duckdb.DuckDBPyConnection]:
+    def connect(self, read_only: bool = True, view: bool = True,
+                repairing: bool = False) -> Iterator[duckdb.DuckDBPyConnection]:
         """A connection; waits while another process holds the database.
 
         A read-only connection to a store that does not exist yet raises StoreError. With
-        ``view=False`` a read-only connection does not define the observations view (which
-        reads every live parquet file): the integrity check uses it to find bad files.
+        ``view=False`` a connection does not define the observations view (which reads every
+        live parquet file): the integrity check and the repair use it to find bad files.
+        A store whose database is lost while parquet files remain is refused, for reading
+        and writing, unless ``repairing`` (see :mod:`harmonize.repair`).
         """
-        if read_only and not self.exists():
-            raise StoreError(f"no store at {self.directory}; ingest a file first ('harmonize ingest')")
+        if not self.exists():
+            lost = self.lost_files()
+            if lost and not repairing:
+                raise StoreError(self._lost_message(lost))
+            if read_only:
+                raise StoreError(f"no store at {self.directory}; ingest a file first ('harmonize ingest')")
         self.directory.mkdir(parents=True, exist_ok=True)
-        con = self._open(read_only)
+        writer = None
+        if not read_only:
+            # writers queue on an OS lock first (released by the kernel if the holder dies)
+            writer = FileLock(self.directory / WRITE_LOCK)
+            if not writer.acquire(self.lock_timeout_s):
+                who = writer.holder()
+                raise StoreBusyError(
+                    f"the store is busy (another harmonize process{', ' + who if who else ''}, is writing); "
+                    f"waited {self.lock_timeout_s:g} s. Try again when it has finished."
+                )
+        try:
+            con = self._open(read_only)
+        except BaseException:
+            if writer is not None:
+                writer.release()
+            raise
+        interrupts.track(con)
         try:
             # times are read and shown in UTC whatever the machine's zone
             con.execute("SET TimeZone = 'UTC'")
@@ -214,10 +281,14 @@ class Store:
                 con.execute(_SCHEMA_SQL)
                 twins.ensure_tables(con)
                 self._check_version(con)
-                self._define_view(con, temporary=False)
+                if view:
+                    self._define_view(con, temporary=False)
             yield con
         finally:
+            interrupts.untrack(con)
             con.close()
+            if writer is not None:
+                writer.release()
 
     def _open(self, read_only: bool) -> duckdb.DuckDBPyConnection:
         deadline = time.monotonic() + self.lock_timeout_s
@@ -260,8 +331,35 @@ class Store:
                 f"this harmonize {__version__} knows version {STORE_VERSION}); upgrade harmonize"
             )
         if version < STORE_VERSION:
+            self._migrate(con, version)
             con.execute("DELETE FROM store_meta WHERE key = 'store_version'")
             con.execute("INSERT INTO store_meta VALUES ('store_version', ?)", [str(STORE_VERSION)])
+
+    def _migrate(self, con: duckdb.DuckDBPyConnection, version: int) -> None:
+        """Bring a store of an older ``version`` up to :data:`STORE_VERSION` (tables exist already)."""
+        con.execute(_ADDED_COLUMNS_SQL)
+        if version < 3:
+            # Checksums of the files an older store lists, taken now: they protect the files from
+            # this moment on (a file damaged before cannot be told from its checksum; the row
+            # count of its footer and a full read still are checked).
+            missing = con.execute("SELECT DISTINCT path FROM observation_files WHERE sha256 IS NULL").fetchall()
+            for (rel,) in missing:
+                path = self.directory / rel
+                if path.is_file():
+                    sha, size = file_digest(path)
+                    con.execute("UPDATE observation_files SET sha256 = ?, size_bytes = ? WHERE path = ?",
+                                [sha, size, rel])
+            con.execute("DELETE FROM store_meta WHERE key = 'checksums_since'")
+            con.execute("INSERT INTO store_meta VALUES ('checksums_since', ?)",
+                        [pd.Timestamp.now("UTC").isoformat()])
+        if version < 4:
+            # the persisted views of an older store name absolute paths and cast naive times in
+            # the session's zone: rewritten now (relative paths, naive times read as UTC); a
+            # store whose files cannot be read keeps them until a writer with the view runs
+            try:
+                self._define_view(con, temporary=False)
+            except StoreError:
+                pass
 
     def _live_paths(self, con: duckdb.DuckDBPyConnection) -> list[str]:
         rows = con.execute(
@@ -279,6 +377,7 @@ class Store:
         con.execute(f"SET file_search_path = '{folder}'")
 
     def _define_view(self, con: duckdb.DuckDBPyConnection, temporary: bool) -> None:
+        """(Re)define the observations views over the live files."""
         self._search_here(con)
         try:
             paths = self._live_paths(con)
@@ -293,7 +392,7 @@ class Store:
                 naive = set()  # unreadable files: reported by the DESCRIBE below
             source = _parquet_source([p for p in paths if p not in naive])
             if naive:
-                # files of a store written before times carried their zone (store version < 3)
+                # files of a store written before times carried their zone (store version < 4)
                 # hold UTC wall clocks: timezone('UTC', ...) reads them as UTC in any session zone
                 old = _parquet_source(sorted(naive))
                 fix = ", ".join(f"timezone('UTC', \"{c}\") AS \"{c}\"" for c in _TIME_COLUMNS)
@@ -305,7 +404,8 @@ class Store:
             except duckdb.Error as exc:
                 raise StoreError(
                     f"the store's parquet files cannot be read ({str(exc).splitlines()[0]}); "
-                    "run 'harmonize status --check' to see which files are missing or damaged"
+                    "run 'harmonize status --check' to see which files are missing or damaged, and "
+                    "'harmonize repair' to take them out of the store"
                 ) from None
         else:
             source = "(SELECT 1 LIMIT 0)"
@@ -331,28 +431,48 @@ class Store:
         con.execute(f"CREATE OR REPLACE {kind} current AS SELECT * FROM observations")
 
     # ------------------------------------------------------------------ ingest support
-    def previous_ingests(self, source_id: str, file_names: Sequence[str], inputs_sha256: str) -> pd.DataFrame:
-        """Complete ingests of this source that read the same file name(s) or content."""
+    def previous_ingests(self, source_id: str, file_path: str, inputs_sha256: str) -> pd.DataFrame:
+        """Complete ingests of this source that read the same file (path relative to the study) or content.
+
+        An ingest is identified by its source, its main input's path relative to the study
+        and the content of its inputs: another file that shares only the base name
+        (``2019/hauls.csv`` after ``2020/hauls.csv``) is a new ingest. Ingests recorded before
+        paths were kept (store version < 3) are matched by base name.
+        """
         if not self.exists():
-            return pd.DataFrame(columns=["ingest_id", "inputs_sha256", "config_sha256", "file_name"])
-        with self.connect(read_only=True) as con:
-            return self._previous(con, source_id, file_names, inputs_sha256)
+            return pd.DataFrame(columns=["ingest_id", "inputs_sha256", "config_sha256", "file_name", "file_path",
+                                         "started_at"])
+        with self.connect(read_only=True, view=False) as con:
+            return self._previous(con, source_id, file_path, inputs_sha256)
 
     @staticmethod
-    def _previous(con: duckdb.DuckDBPyConnection, source_id: str, file_names: Sequence[str], inputs_sha256: str) -> pd.DataFrame:
+    def _previous(con: duckdb.DuckDBPyConnection, source_id: str, file_path: str, inputs_sha256: str) -> pd.DataFrame:
+        columns = {r[0] for r in con.execute("DESCRIBE ingests").fetchall()}
+        path_col = "file_path" if "file_path" in columns else "CAST(NULL AS VARCHAR)"
         return con.execute(
-            """SELECT ingest_id, inputs_sha256, config_sha256, file_name FROM ingests
-               WHERE status = 'complete' AND source_id = ?
-                 AND (inputs_sha256 = ? OR file_name = ANY(?::VARCHAR[]))
-               ORDER BY started_at""",
-            [source_id, inputs_sha256, list(file_names)],
+            f"""SELECT ingest_id, inputs_sha256, config_sha256, file_name, {path_col} AS file_path, started_at
+                FROM ingests
+                WHERE status = 'complete' AND source_id = ?
+                  AND (inputs_sha256 = ? OR coalesce({path_col} = ?, file_name = ?))
+                ORDER BY started_at""",
+            [source_id, inputs_sha256, file_path, PurePosixPath(file_path).name],
         ).df()
 
     def staging_dir(self, ingest_id: str) -> Path:
-        """A private folder for one ingest's files, marked with this process's PID."""
-        path = self.directory / STAGING_DIR / ingest_id
-        path.mkdir(parents=True, exist_ok=False)
-        (path / ".pid").write_text(str(os.getpid()))
+        """A private folder for one ingest's files, locked (``<ingest_id>.lock`` beside it) while
+        this process works in it; :meth:`discard` removes both."""
+        staging = self.directory / STAGING_DIR
+        staging.mkdir(parents=True, exist_ok=True)
+        lock = FileLock(staging / f"{ingest_id}{LOCK_SUFFIX}")
+        if not lock.try_acquire():
+            raise StoreError(f"staging folder {ingest_id} is in use by another process")
+        path = staging / ingest_id
+        try:
+            path.mkdir(exist_ok=False)
+        except BaseException:
+            lock.release()
+            raise
+        self._staging_locks[path] = lock
         return path
 
     def commit(
@@ -378,106 +498,181 @@ class Store:
         """
         with self.connect(read_only=False) as con:
             self._remove_leftovers(con)
-            previous = self._previous(con, record.source_id, [record.file_name], record.inputs_sha256)
+            previous = self._previous(con, record.source_id, record.file_path or record.file_name,
+                                      record.inputs_sha256)
             supersede = list(on_conflict(previous))
-            moved: list[tuple[str, int]] = []
-            for part in sorted((staged / "parts").rglob("*.parquet")):
+            moved: list[tuple[str, int, str, int]] = []
+            parts = sorted((staged / "parts").rglob("*.parquet"))
+            # the journal: where this ingest's files go, written before the first one moves, so
+            # that whoever cleans up after a kill deletes these files and no others
+            journal = [(Path(OBSERVATIONS_DIR) / p.relative_to(staged / "parts")).as_posix() for p in parts]
+            (staged / JOURNAL_NAME).write_text(json.dumps(journal))
+            fsync_file(staged / JOURNAL_NAME)
+            fsync_dir(staged)
+            folders: set[Path] = set()
+            for part in parts:
                 rel = Path(OBSERVATIONS_DIR) / part.relative_to(staged / "parts")
                 target = self.directory / rel
+                for folder in (target.parent, target.parent.parent, target.parent.parent.parent):
+                    if not folder.is_dir():
+                        folders.add(folder.parent)  # a new folder's own entry lives in its parent
                 target.parent.mkdir(parents=True, exist_ok=True)
                 n_rows = con.execute("SELECT count(*) FROM read_parquet(?)", [str(part)]).fetchall()[0][0]
+                sha, size = file_digest(part)
+                fsync_file(part)  # the bytes on the disk before the manifest names them
                 os.replace(part, target)
-                moved.append((rel.as_posix(), int(n_rows)))
+                folders.add(target.parent)
+                moved.append((rel.as_posix(), int(n_rows), sha, size))
                 _crash_point("moving")
+            for folder in sorted(folders, key=lambda f: len(f.parts), reverse=True):
+                fsync_dir(folder)  # the renames durable before the commit that makes them live
             _crash_point("before_transaction")
-            con.execute("BEGIN TRANSACTION")
-            try:
-                if supersede:
-                    con.execute(
-                        "UPDATE ingests SET status = 'superseded', superseded_by = ? WHERE ingest_id = ANY(?::VARCHAR[])",
-                        [record.ingest_id, list(supersede)],
-                    )
+            with interrupts.deferred():  # an interrupt waits for the commit or the rollback
+                return self._record(con, record, files, moved, staged, quarantine, supersede, masked,
+                                    events_without_values)
+
+    def _record(self, con: duckdb.DuckDBPyConnection, record: IngestRecord, files: Sequence[dict[str, object]],
+                moved: list[tuple[str, int, str, int]], staged: Path, quarantine: pd.DataFrame,
+                supersede: list[str], masked: pd.DataFrame | None,
+                events_without_values: pa.Table | None) -> list[str]:
+        """The commit's one transaction: the ingest, its files, quarantine and events, the view."""
+        con.execute("BEGIN TRANSACTION")
+        try:
+            if supersede:
                 con.execute(
-                    """INSERT INTO ingests (ingest_id, source_id, source_kind, provider_type, file_name,
-                       file_sha256, inputs_sha256, config_sha256, started_at, finished_at, status,
-                       rows_read, rows_accepted, rows_quarantined, records_written,
-                       records_zero_filled, superseded_by, tool_version, profile_file)
-                       VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULL, ?, ?)""",
-                    [record.ingest_id, record.source_id, record.source_kind, record.provider_type,
-                     record.file_name, record.file_sha256, record.inputs_sha256, record.config_sha256,
-                     record.started_at, record.finished_at, record.status, record.rows_read,
-                     record.rows_accepted, record.rows_quarantined, record.records_written,
-                     record.records_zero_filled, __version__, record.profile_file],
+                    "UPDATE ingests SET status = 'superseded', superseded_by = ? WHERE ingest_id = ANY(?::VARCHAR[])",
+                    [record.ingest_id, list(supersede)],
                 )
-                for f in files:
-                    con.execute(
-                        "INSERT INTO ingest_files VALUES (?, ?, ?, ?, ?, ?, ?)",
-                        [record.ingest_id, f["role"], f["file_name"], f["file_sha256"],
-                         f["rows_read"], f["rows_accepted"], f["rows_quarantined"]],
-                    )
-                for rel, n_rows in moved:
-                    con.execute("INSERT INTO observation_files VALUES (?, ?, ?)", [record.ingest_id, rel, n_rows])
-                if len(quarantine):
-                    q = quarantine[["source_file", "source_row", "reason_code", "message", "raw"]].copy()
-                    q.insert(0, "ingest_id", record.ingest_id)
-                    con.register("_incoming_quarantine", q)
-                    con.execute("INSERT INTO quarantine SELECT * FROM _incoming_quarantine")
-                    con.unregister("_incoming_quarantine")
-                if masked is not None and len(masked):
-                    m = masked[["source_file", "reason_code", "n_values", "message"]].copy()
-                    m.insert(0, "ingest_id", record.ingest_id)
-                    con.register("_incoming_masked", m)
-                    con.execute("INSERT INTO quarantine_summary SELECT * FROM _incoming_masked")
-                    con.unregister("_incoming_masked")
-                if events_without_values is not None and events_without_values.num_rows:
-                    con.register("_incoming_events", events_without_values)
-                    names = ", ".join(f'"{c}"' for c in EVENTS_WITHOUT_VALUES_COLUMNS[1:])
-                    con.execute(f"INSERT INTO events_without_values (ingest_id, {names}) "
-                                f"SELECT ?, {names} FROM _incoming_events", [record.ingest_id])
-                    con.unregister("_incoming_events")
-                    _crash_point("events_without_values")
-                if record.duplicates is not None:
-                    twins.record_settings(con, record.ingest_id, record.source_id, record.duplicates)
-                self._define_view(con, temporary=False)
-                # twins span sources and ingests: recomputed over the whole store, in this transaction
-                twins.refresh(con)
-                _crash_point("before_commit")
-                con.execute("COMMIT")
-                _crash_point("after_commit")
-            except BaseException:
-                con.execute("ROLLBACK")
-                raise
-            shutil.rmtree(staged, ignore_errors=True)
-            return supersede
+            con.execute(
+                """INSERT INTO ingests (ingest_id, source_id, source_kind, provider_type, file_name,
+                   file_sha256, inputs_sha256, config_sha256, started_at, finished_at, status,
+                   rows_read, rows_accepted, rows_quarantined, records_written,
+                   records_zero_filled, superseded_by, tool_version, profile_file, file_path)
+                   VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULL, ?, ?, ?)""",
+                [record.ingest_id, record.source_id, record.source_kind, record.provider_type,
+                 record.file_name, record.file_sha256, record.inputs_sha256, record.config_sha256,
+                 record.started_at, record.finished_at, record.status, record.rows_read,
+                 record.rows_accepted, record.rows_quarantined, record.records_written,
+                 record.records_zero_filled, __version__, record.profile_file,
+                 record.file_path or record.file_name],
+            )
+            for f in files:
+                con.execute(
+                    "INSERT INTO ingest_files VALUES (?, ?, ?, ?, ?, ?, ?)",
+                    [record.ingest_id, f["role"], f["file_name"], f["file_sha256"],
+                     f["rows_read"], f["rows_accepted"], f["rows_quarantined"]],
+                )
+            for rel, n_rows, sha, size in moved:
+                con.execute("INSERT INTO observation_files (ingest_id, path, n_rows, sha256, size_bytes) "
+                            "VALUES (?, ?, ?, ?, ?)", [record.ingest_id, rel, n_rows, sha, size])
+            if len(quarantine):
+                q = quarantine[["source_file", "source_row", "reason_code", "message", "raw"]].copy()
+                q.insert(0, "ingest_id", record.ingest_id)
+                con.register("_incoming_quarantine", q)
+                con.execute("INSERT INTO quarantine SELECT * FROM _incoming_quarantine")
+                con.unregister("_incoming_quarantine")
+            if masked is not None and len(masked):
+                m = masked[["source_file", "reason_code", "n_values", "message"]].copy()
+                m.insert(0, "ingest_id", record.ingest_id)
+                con.register("_incoming_masked", m)
+                con.execute("INSERT INTO quarantine_summary SELECT * FROM _incoming_masked")
+                con.unregister("_incoming_masked")
+            if events_without_values is not None and events_without_values.num_rows:
+                con.register("_incoming_events", events_without_values)
+                names = ", ".join(f'"{c}"' for c in EVENTS_WITHOUT_VALUES_COLUMNS[1:])
+                con.execute(f"INSERT INTO events_without_values (ingest_id, {names}) "
+                            f"SELECT ?, {names} FROM _incoming_events", [record.ingest_id])
+                con.unregister("_incoming_events")
+                _crash_point("events_without_values")
+            if record.duplicates is not None:
+                twins.record_settings(con, record.ingest_id, record.source_id, record.duplicates)
+            self._define_view(con, temporary=False)
+            # twins span sources and ingests: recomputed over the whole store, in this transaction
+            twins.refresh(con)
+            _crash_point("before_commit")
+            con.execute("COMMIT")
+            _crash_point("after_commit")
+        except BaseException:
+            _rollback(con)
+            raise
+        shutil.rmtree(staged, ignore_errors=True)
+        return supersede
 
     def _remove_leftovers(self, con: duckdb.DuckDBPyConnection) -> None:
-        """Delete parquet files no manifest row names, and staging folders of dead processes.
+        """Delete what ingests that died left behind: their staging folders, and the files
+        their journals say they moved into place without committing them.
 
-        Runs under the write lock, so no other process is moving files into place.
+        Runs under the write lock, so no other process is moving files into place. A parquet
+        file that no manifest row and no journal names is never deleted here: it is not known
+        to be a leftover (``harmonize repair`` lists such files and sets them aside).
         """
-        known = {r[0] for r in con.execute("SELECT path FROM observation_files").fetchall()}
-        obs_dir = self.directory / OBSERVATIONS_DIR
-        if obs_dir.is_dir():
-            for part in obs_dir.rglob("*.parquet"):
-                if part.relative_to(self.directory).as_posix() not in known:
-                    part.unlink(missing_ok=True)
         staging = self.directory / STAGING_DIR
-        if staging.is_dir():
-            for folder in staging.iterdir():
-                pid_file = folder / ".pid"
-                try:
-                    pid = int(pid_file.read_text())
-                except (OSError, ValueError):
-                    pid = -1
-                if pid != os.getpid() and not _alive(pid):
-                    shutil.rmtree(folder, ignore_errors=True)
+        if not staging.is_dir():
+            return
+        known: set[str] | None = None
+        for folder in staging.iterdir():
+            if not folder.is_dir():
+                if folder.suffix == LOCK_SUFFIX and not (staging / folder.stem).exists() and is_free(folder):
+                    folder.unlink(missing_ok=True)  # a lock whose folder is gone
+                continue
+            lock = self._abandoned(folder)
+            if lock is None:
+                continue
+            try:
+                planned = json.loads((folder / JOURNAL_NAME).read_text())
+            except (OSError, ValueError):
+                planned = []
+            if planned:
+                if known is None:
+                    known = {r[0] for r in con.execute("SELECT path FROM observation_files").fetchall()}
+                for rel in planned:
+                    if isinstance(rel, str) and rel not in known and _inside(self.directory, rel):
+                        (self.directory / rel).unlink(missing_ok=True)
+            shutil.rmtree(folder, ignore_errors=True)
+            lock.path.unlink(missing_ok=True)
+            lock.release()
+
+    def _abandoned(self, folder: Path) -> FileLock | None:
+        """The lock of a staging folder whose process is gone, taken; None while it works.
+
+        The lock file is made before the folder, so a folder without one was left by a
+        harmonize older than the locks (it marked its folders with a ``.pid`` file).
+        """
+        lock = FileLock(folder.parent / f"{folder.name}{LOCK_SUFFIX}")
+        if lock.path.exists():
+            return lock if lock.try_acquire() else None
+        try:
+            pid = int((folder / ".pid").read_text())
+        except (OSError, ValueError):
+            pid = -1
+        if pid != os.getpid() and not _alive(pid):
+            return lock if lock.try_acquire() else None
+        return None
+
+    def unlisted_files(self) -> list[str]:
+        """Parquet files under ``observations/`` that no manifest row names (paths relative to the store)."""
+        obs_dir = self.directory / OBSERVATIONS_DIR
+        if not obs_dir.is_dir():
+            return []
+        on_disk = {p.relative_to(self.directory).as_posix() for p in obs_dir.rglob("*.parquet")}
+        if not self.exists():
+            return sorted(on_disk)
+        with self.connect(view=False) as con:
+            known = {r[0] for r in con.execute("SELECT path FROM observation_files").fetchall()}
+        return sorted(on_disk - known)
 
     def discard(self, staged: Path) -> None:
+        """Remove a staging folder of this process and release its lock."""
         shutil.rmtree(staged, ignore_errors=True)
+        lock = self._staging_locks.pop(staged, None)
+        if lock is not None:
+            lock.path.unlink(missing_ok=True)  # still ours while held: nobody else removes it
+            lock.release()
 
     # ------------------------------------------------------------------ reading
     def ingests(self, include_superseded: bool = True) -> pd.DataFrame:
-        with self.connect() as con:
+        """The ingests table (``include_superseded=False``: complete ingests only)."""
+        with self.connect(view=False) as con:
             where = "" if include_superseded else "WHERE status = 'complete'"
             return con.execute(f"SELECT * FROM ingests {where} ORDER BY started_at").df()
 
@@ -493,7 +688,7 @@ class Store:
 
     def masked_summary(self) -> pd.DataFrame:
         """Values rejected in bulk (grid values, pings) per source, file and reason."""
-        with self.connect() as con:
+        with self.connect(view=False) as con:
             return con.execute(
                 """SELECT i.source_id, m.source_file, m.reason_code, sum(m.n_values)::BIGINT AS n_values,
                           any_value(m.message) AS message
@@ -537,35 +732,81 @@ class Store:
         sql += " ORDER BY i.started_at DESC, q.source_file, q.source_row"
         if limit is not None:
             sql += f" LIMIT {int(limit)}"
-        with self.connect() as con:
+        with self.connect(view=False) as con:  # readable even while a parquet file is damaged
             return con.execute(sql, params).df()
 
-    def check(self) -> list[str]:
+    def lost_files(self) -> list[Path]:
+        """Parquet files under ``observations/`` while the database is missing (a lost database).
+
+        Empty when the database exists, or when no parquet file does (an empty study; staging
+        folders of an unfinished first ingest are no store yet).
+        """
+        if self.exists():
+            return []
+        obs_dir = self.directory / OBSERVATIONS_DIR
+        return sorted(obs_dir.rglob("*.parquet")) if obs_dir.is_dir() else []
+
+    def _lost_message(self, lost: Sequence[Path]) -> str:
+        return (f"the store's database {self.db_path} is missing, but {len(lost):,} parquet file(s) remain "
+                f"under {self.directory / OBSERVATIONS_DIR}; nothing is written until the store is repaired: "
+                "run 'harmonize repair' to see what it would do, then 'harmonize repair --apply'")
+
+    def store_version(self) -> int:
+        """The version of the store's tables (1 when the store predates the key)."""
+        with self.connect(view=False) as con:
+            found = con.execute("SELECT value FROM store_meta WHERE key = 'store_version'").fetchall()
+        return int(found[0][0]) if found else 1
+
+    def upgrade(self) -> bool:
+        """Bring an older store up to :data:`STORE_VERSION`; False when it cannot be written now."""
+        if self.store_version() >= STORE_VERSION:
+            return True
+        try:
+            with self.connect(read_only=False, view=False):
+                pass
+        except (StoreError, OSError, duckdb.Error):
+            return False
+        return True
+
+    def damage(self, deep: bool = True) -> list[Damage]:
+        """Live manifest files that are missing, changed or unreadable (see :meth:`check`)."""
+        with self.connect(view=False) as con:
+            return self._scrub(con, deep)
+
+    def _scrub(self, con: duckdb.DuckDBPyConnection, deep: bool = True) -> list[Damage]:
+        columns = {r[0] for r in con.execute("DESCRIBE observation_files").fetchall()}
+        digests = "f.sha256, f.size_bytes" if "sha256" in columns else "NULL, NULL"  # store version < 3
+        files = con.execute(
+            f"""SELECT f.ingest_id, f.path, f.n_rows, {digests} FROM observation_files f
+                JOIN ingests i USING (ingest_id) WHERE i.status = 'complete' ORDER BY f.path, f.ingest_id"""
+        ).fetchall()
+        found: list[Damage] = []
+        for ingest_id, rel, n_rows, sha_recorded, size_recorded in files:
+            problem = _file_problem(self.directory / rel, n_rows, sha_recorded, size_recorded, deep)
+            if problem:
+                found.append(Damage(ingest_id, rel, problem))
+        return found
+
+    def check(self, deep: bool = True) -> list[str]:
         """Integrity problems (empty list = the store is sound).
 
-        Checks that every manifest file exists and holds the rows the manifest says, that
-        every complete ingest satisfies rows_read = rows_accepted + rows_quarantined and
-        records_written = rows in its files, and that every data row of every input file is
-        found among the accepted rows or in the quarantine.
+        Checks that the database is there when parquet files are (a lost database is a
+        problem, an empty study is not); that every live manifest file exists, has the size
+        and sha256 recorded when it was committed, is readable to the last page (``deep``)
+        and holds the rows the manifest says; that every complete ingest satisfies
+        rows_read = rows_accepted + rows_quarantined and records_written = rows in its files;
+        and that every data row of every input file is found among the accepted rows or in
+        the quarantine. A store of an older version is brought up to date first (which
+        records the checksums of its files) when the store can be written.
         """
-        problems: list[str] = []
+        lost = self.lost_files()
+        if lost:
+            return [self._lost_message(lost)]
+        if not self.exists():
+            return []
+        self.upgrade()
         with self.connect(view=False) as con:
-            files = con.execute(
-                """SELECT f.ingest_id, f.path, f.n_rows FROM observation_files f
-                   JOIN ingests i USING (ingest_id) WHERE i.status = 'complete'"""
-            ).fetchall()
-            for ingest_id, rel, n_rows in files:
-                path = self.directory / rel
-                if not path.is_file():
-                    problems.append(f"ingest {ingest_id}: file {rel} is missing")
-                    continue
-                try:
-                    actual = con.execute("SELECT count(*) FROM read_parquet(?)", [str(path)]).fetchall()[0][0]
-                except duckdb.Error as exc:
-                    problems.append(f"ingest {ingest_id}: file {rel} is unreadable ({str(exc).splitlines()[0]})")
-                    continue
-                if actual != n_rows:
-                    problems.append(f"ingest {ingest_id}: file {rel} holds {actual} rows, manifest says {n_rows}")
+            problems = [str(d) for d in self._scrub(con, deep)]
             if problems:
                 return problems
             self._define_view(con, temporary=True)
@@ -649,7 +890,7 @@ def _parquet_source(paths: Sequence[str]) -> str:
 def _naive_time_files(con: duckdb.DuckDBPyConnection, paths: Sequence[str]) -> set[str]:
     """The files (as listed in ``paths``) whose event times are timestamps without a zone.
 
-    Read from the parquet footers (isAdjustedToUTC=0): files of store versions 1 and 2.
+    Read from the parquet footers (isAdjustedToUTC=0): files of store versions 1 to 3.
     """
     listing = ", ".join("'" + p.replace("'", "''") + "'" for p in paths)
     found = {r[0] for r in con.execute(
@@ -662,10 +903,25 @@ def _naive_time_files(con: duckdb.DuckDBPyConnection, paths: Sequence[str]) -> s
             or any(f.endswith("/" + p) for f in found)}
 
 
+def _rollback(con: duckdb.DuckDBPyConnection) -> None:
+    """Roll back; when the failure was the COMMIT itself there is nothing to roll back, and the
+    original error (not "no transaction is active") is the one to report."""
+    try:
+        con.execute("ROLLBACK")
+    except duckdb.Error:
+        pass
+
+
 def _crash_point(name: str) -> None:
     """Test hook: HARMONIZE_CRASH_AT=<name> kills the process here (crash-safety tests)."""
     if os.environ.get("HARMONIZE_CRASH_AT") == name:
         os.kill(os.getpid(), 9)
+
+
+def _inside(root: Path, rel: str) -> bool:
+    """Whether a relative path from a journal stays inside the store folder."""
+    target = (root / rel).resolve()
+    return target.is_relative_to(root.resolve()) and target.suffix == ".parquet"
 
 
 def _alive(pid: int) -> bool:
@@ -678,3 +934,29 @@ def _alive(pid: int) -> bool:
     except PermissionError:
         return True
     return True
+
+
+def _file_problem(path: Path, n_rows: int, sha_recorded: str | None, size_recorded: int | None,
+                  deep: bool) -> str | None:
+    """What is wrong with one manifest file, or None. The words follow "file <path> "."""
+    if not path.is_file():
+        return "is missing"
+    try:
+        sha, size = file_digest(path)
+    except OSError as exc:
+        return f"is unreadable ({exc.strerror or exc})"
+    if size_recorded is not None and size != size_recorded:
+        return f"has {size:,} bytes, the manifest recorded {size_recorded:,} (truncated or overwritten)"
+    if sha_recorded is not None and sha != sha_recorded:
+        return "has changed since it was committed (its sha256 differs from the manifest's)"
+    try:
+        parquet = pq.ParquetFile(path)
+        actual = parquet.metadata.num_rows
+        if deep:  # decode every page: a damaged page fails here, not in the next export
+            for _ in parquet.iter_batches(batch_size=65_536):
+                pass
+    except (OSError, pa.ArrowException) as exc:
+        return f"is unreadable ({str(exc).splitlines()[0] if str(exc) else type(exc).__name__})"
+    if actual != n_rows:
+        return f"holds {actual:,} rows, the manifest says {n_rows:,}"
+    return None

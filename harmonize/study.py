@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import hashlib
 import json
+import math
 import tomllib
 import zoneinfo
 from collections.abc import Mapping
@@ -68,6 +69,7 @@ class Study:
     targets: pd.DataFrame
     audit: AuditSettings = field(default_factory=AuditSettings)
     min_vessels: int = 3
+    generalise_deg: float = 0.1
     raw: Mapping[str, Any] = field(default_factory=dict)
     input_digests: Mapping[str, str] = field(default_factory=dict)
     #: IANA time zone of the study calendar (``[study] timezone``): seasons, season years,
@@ -147,6 +149,7 @@ def load_study(root: str | Path = ".") -> Study:
     domain_path = reader.existing_file(root, domain_rel, "study.domain")
     digests["domain"] = _sha256(domain_path)
     domain = shapely.union_all([g for _, g in _read_features(domain_path, "study.domain", None)])
+    _check_grid(path, crs, cell_size_km, domain)
     shapely.prepare(domain)
     strata: tuple[tuple[str, shapely.Geometry], ...] = ()
     if "strata" in sec:
@@ -187,6 +190,11 @@ def load_study(root: str | Path = ".") -> Study:
     )
     conf = reader.table("confidentiality", required=False)
     min_vessels = int(reader.number(conf, "confidentiality.min_vessels", default=3, positive=True))
+    generalise_deg = reader.number(conf, "confidentiality.generalise_deg", default=0.1, positive=True)
+    if generalise_deg > 1:
+        raise ConfigError(path, "confidentiality.generalise_deg",
+                          f"expected a rounding of at most 1 degree (Chapman 2020 uses 1, 0.1, 0.01 or 0.001), "
+                          f"got {generalise_deg!r}")
 
     return Study(
         root=root,
@@ -202,6 +210,7 @@ def load_study(root: str | Path = ".") -> Study:
         targets=targets,
         audit=audit,
         min_vessels=min_vessels,
+        generalise_deg=generalise_deg,
         raw=raw,
         input_digests=digests,
         timezone=timezone,
@@ -250,6 +259,8 @@ class _Reader:
             return float(default)
         if isinstance(value, bool) or not isinstance(value, int | float):
             raise ConfigError(self.path, key, f"expected a number, got {value!r}")
+        if not math.isfinite(value):  # TOML has inf and nan literals
+            raise ConfigError(self.path, key, f"expected a finite number, got {value!r}")
         if positive and not value > 0:
             raise ConfigError(self.path, key, f"expected a number above 0, got {value!r}")
         return float(value)
@@ -289,6 +300,47 @@ def _check_crs(path: Path, crs: str) -> None:
         raise ConfigError(path, "study.crs", f"'{crs}' has axis units {sorted(units)}; expected metres")
 
 
+#: Grid cells over the domain's extent at most: 50 m cells over a sea made the audit ask for TiB.
+MAX_GRID_CELLS = 10_000_000
+#: Largest spread of the area scale factor over the domain accepted as "equal-area" (1 %).
+MAX_AREA_DISTORTION = 0.01
+
+
+def _check_grid(path: Path, crs: str, cell_size_km: float, domain: shapely.Geometry) -> None:
+    """Refuse a grid whose cells are not equal in area over the domain, or absurdly many or few."""
+    lon, lat = shapely.get_coordinates(domain).T
+    if len(lon) > 2_000:  # a sample of the outline is enough for the scale factor
+        keep = np.linspace(0, len(lon) - 1, 2_000).astype(int)
+        lon, lat = lon[keep], lat[keep]
+    centre = domain.representative_point()
+    lon, lat = np.append(lon, centre.x), np.append(lat, centre.y)
+    scale = np.asarray(pyproj.Proj(crs).get_factors(lon, lat).areal_scale, dtype=float)
+    scale = scale[np.isfinite(scale)]
+    if len(scale) and (scale.max() / scale.min() - 1 > MAX_AREA_DISTORTION or abs(scale.mean() - 1) > MAX_AREA_DISTORTION):
+        raise ConfigError(
+            path, "study.crs",
+            f"'{crs}' is not equal-area over the domain: the true area of one grid cell varies by a factor "
+            f"{scale.min():.3g} to {scale.max():.3g} of its nominal area; choose an equal-area CRS such as "
+            "'EPSG:6933'",
+        )
+    x, y = pyproj.Transformer.from_crs("EPSG:4326", crs, always_xy=True).transform(
+        shapely.get_coordinates(domain)[:, 0], shapely.get_coordinates(domain)[:, 1])
+    width_km = (np.nanmax(x) - np.nanmin(x)) / 1000
+    height_km = (np.nanmax(y) - np.nanmin(y)) / 1000
+    extent_km = max(width_km, height_km)
+    if cell_size_km > extent_km:
+        raise ConfigError(path, "study.cell_size_km",
+                          f"{cell_size_km:g} km is larger than the domain ({width_km:,.0f} x {height_km:,.0f} km): "
+                          "every record would fall in one cell; choose a smaller cell size")
+    n_cells = (width_km / cell_size_km + 1) * (height_km / cell_size_km + 1)
+    if n_cells > MAX_GRID_CELLS:
+        smallest = math.sqrt(width_km * height_km / MAX_GRID_CELLS)
+        raise ConfigError(path, "study.cell_size_km",
+                          f"{cell_size_km:g} km makes about {n_cells:,.0f} cells over the domain "
+                          f"({width_km:,.0f} x {height_km:,.0f} km); at most {MAX_GRID_CELLS:,}: "
+                          f"choose {smallest:.2g} km or more")
+
+
 def _read_features(
     path: Path, key: str, name_property: str | None
 ) -> list[tuple[str, shapely.Geometry]]:
@@ -306,8 +358,15 @@ def _read_features(
             raise ConfigError(path, key, f"feature {i + 1} has no valid geometry ({exc})") from None
         if geom.geom_type not in ("Polygon", "MultiPolygon"):
             raise ConfigError(path, key, f"feature {i + 1} is a {geom.geom_type}; expected polygons")
+        if not np.isfinite(shapely.get_coordinates(geom)).all():
+            raise ConfigError(path, key, f"feature {i + 1} has a coordinate that is not a finite number "
+                                         "(NaN or infinity); fix the file")
         if not geom.is_valid:
-            geom = shapely.make_valid(geom)
+            raise ConfigError(
+                path, key,
+                f"feature {i + 1} is not a valid polygon ({shapely.is_valid_reason(geom)}); repair it, e.g. "
+                "with shapely.make_valid() or QGIS 'Fix geometries', check the result and save the file again",
+            )
         label = ""
         if name_property:
             label = (feat.get("properties") or {}).get(name_property)

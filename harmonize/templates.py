@@ -71,7 +71,8 @@ min_encounters = 10           # a taxon below this many encounters in every kind
                               # is too sparse to model alone -> few_encounters
 
 [confidentiality]
-min_vessels = 3               # fishing-effort cells with fewer vessels are suppressed in outputs
+min_vessels = 3               # fishing rows (cell x period x gear) of fewer vessels are withheld from outputs
+generalise_deg = 0.1          # rounding (degrees) of events where a sensitive taxon was recorded
 '''
 
 TRAWL_PROFILE = '''\

@@ -1,196 +1,105 @@
-"""Load a page in headless Chromium over the DevTools protocol; record console errors and requests.
+"""Load a page in Debian's Chromium through playwright; record console errors, requests and layout.
 
-Talks to Chromium through ``--remote-debugging-pipe`` (file descriptors 3 and 4, messages
-separated by NUL bytes), so no driver package is needed. Used by the audit report tests.
+The browser is the system one (``/usr/bin/chromium``, installed by ``make test`` when it is
+missing); playwright only drives it, and ``playwright install`` is never run. A missing
+browser is a failure, not a skip: the report's layout is part of what the tests check.
 """
 
 from __future__ import annotations
 
-import base64
-import fcntl
-import json
-import os
-import select
 import shutil
-import subprocess
-import tempfile
-import time
+from collections.abc import Iterator
+from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path
 
-import pytest
+from playwright.sync_api import Browser, sync_playwright
 
-BROWSERS = ("chromium", "chromium-browser", "google-chrome", "google-chrome-stable")
+#: How CI and the tests start Chromium: no sandbox (CI runs as root), nothing fetched in the background.
+LAUNCH_ARGS = ["--no-sandbox", "--headless", "--disable-gpu", "--disable-background-networking",
+               "--disable-component-update", "--disable-sync", "--no-first-run"]
+
+#: Elements wider than the viewport, or scrolling sideways inside it (a table in an
+#: overflow:auto box counts: the reader still has to scroll).
+_OVERFLOW_JS = """
+() => {
+  const vw = document.documentElement.clientWidth;
+  const out = [];
+  if (document.documentElement.scrollWidth > vw) out.push('document ' + document.documentElement.scrollWidth);
+  for (const el of document.querySelectorAll('body *')) {
+    const r = el.getBoundingClientRect();
+    if (r.width === 0 && r.height === 0) continue;
+    const name = el.tagName.toLowerCase() + (el.id ? '#' + el.id : '') + (el.className && el.className.baseVal === undefined ? '.' + el.className : '');
+    if (r.right > vw + 0.5) out.push(name + ' right=' + Math.round(r.right));
+    const ox = getComputedStyle(el).overflowX;
+    if ((ox === 'auto' || ox === 'scroll') && el.scrollWidth > el.clientWidth + 1)
+      out.push(name + ' scrolls ' + el.scrollWidth + '>' + el.clientWidth);
+  }
+  return out.slice(0, 20);
+}
+"""
 
 
-def find_chromium() -> str:
-    """Path of a Chromium binary, or skip: a test never installs software on the machine."""
-    for name in BROWSERS:
-        path = shutil.which(name)
-        if path:
-            return path
-    pytest.skip("no Chromium found; install Debian's 'chromium' package (apt-get install chromium) "
-                "to run the headless-browser test of the audit report")
-    reason = ("no Chromium found; install Debian's 'chromium' package (apt-get install chromium) "
-              "to run the headless-browser test of the audit report")
-    if os.environ.get("HARMONIZE_NO_BROWSER_INSTALL") or os.geteuid() != 0 or not shutil.which("apt-get"):
-        pytest.skip(reason)
-    try:
-        subprocess.run(["apt-get", "install", "-y", "--no-install-recommends", "chromium"],
-                       check=True, capture_output=True, timeout=900)
-    except (subprocess.SubprocessError, OSError) as exc:
-        pytest.skip(f"{reason} (automatic install failed: {exc})")
+def chromium_path() -> str:
+    """Path of the system Chromium; an error naming the fix when it is missing."""
     path = shutil.which("chromium")
     if not path:
-        pytest.skip(reason)
+        raise RuntimeError("no 'chromium' on PATH: run 'make test' (it installs Debian's chromium with "
+                           "apt-get when /usr/bin/chromium is missing) or 'apt-get install -y chromium'")
     return path
+
+
+@contextmanager
+def browser() -> Iterator[Browser]:
+    """A headless system Chromium driven by playwright."""
+    with sync_playwright() as p:
+        b = p.chromium.launch(executable_path=chromium_path(), args=LAUNCH_ARGS)
+        try:
+            yield b
+        finally:
+            b.close()
 
 
 @dataclass
 class PageLoad:
-    """What happened while a page loaded."""
+    """What happened while a page loaded at one width."""
 
+    width: int
     console_errors: list[str] = field(default_factory=list)
     requests: list[str] = field(default_factory=list)
     title: str = ""
-    screenshot: Path | None = None
-    width: int = 0
+    overflow: list[str] = field(default_factory=list)
+    section_titles: list[str] = field(default_factory=list)
+    section_ids: list[str] = field(default_factory=list)
     height: int = 0
+    hidden_in_print: int = 0
+    pdf: bytes = b""
 
 
-class _Pipe:
-    def __init__(self, binary: str, profile_dir: str) -> None:
-        to_child_r, self._to_child = os.pipe()
-        self._from_child, from_child_w = os.pipe()
-
-        def wire() -> None:  # runs in the child: its fd 3 reads commands, fd 4 writes replies
-            # move both ends out of the way first: either may already be fd 3 or 4
-            spare_r = fcntl.fcntl(to_child_r, fcntl.F_DUPFD, 10)
-            spare_w = fcntl.fcntl(from_child_w, fcntl.F_DUPFD, 10)
-            os.dup2(spare_r, 3)
-            os.dup2(spare_w, 4)
-            os.set_inheritable(3, True)
-            os.set_inheritable(4, True)
-
-        self.proc = subprocess.Popen(
-            [binary, "--headless=new", "--remote-debugging-pipe", "--no-sandbox", "--disable-gpu",
-             "--no-first-run", "--no-default-browser-check", "--disable-extensions",
-             "--disable-background-networking", "--disable-component-update", "--disable-sync",
-             f"--user-data-dir={profile_dir}", "about:blank"],
-            stdin=subprocess.DEVNULL, stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL,
-            close_fds=False, preexec_fn=wire,  # noqa: PLW1509 - single-threaded test helper
-        )
-        os.close(to_child_r)
-        os.close(from_child_w)
-        self._buffer = b""
-        self._next_id = 0
-        self.events: list[dict] = []
-
-    def _read_message(self, deadline: float) -> dict:
-        while b"\0" not in self._buffer:
-            left = deadline - time.monotonic()
-            if left <= 0:
-                raise TimeoutError("Chromium did not answer in time")
-            ready, _, _ = select.select([self._from_child], [], [], left)
-            if ready:
-                chunk = os.read(self._from_child, 1 << 20)
-                if not chunk:
-                    raise RuntimeError("Chromium closed the DevTools pipe")
-                self._buffer += chunk
-        raw, self._buffer = self._buffer.split(b"\0", 1)
-        return json.loads(raw)
-
-    def call(self, method: str, params: dict | None = None, session: str | None = None,
-             timeout: float = 30.0) -> dict:
-        self._next_id += 1
-        msg: dict = {"id": self._next_id, "method": method, "params": params or {}}
-        if session:
-            msg["sessionId"] = session
-        os.write(self._to_child, json.dumps(msg).encode() + b"\0")
-        deadline = time.monotonic() + timeout
-        while True:
-            reply = self._read_message(deadline)
-            if reply.get("id") == self._next_id:
-                if "error" in reply:
-                    raise RuntimeError(f"{method}: {reply['error']}")
-                return reply.get("result", {})
-            self.events.append(reply)
-
-    def wait_for(self, method: str, timeout: float = 30.0) -> dict:
-        deadline = time.monotonic() + timeout
-        for ev in self.events:
-            if ev.get("method") == method:
-                return ev
-        while True:
-            ev = self._read_message(deadline)
-            self.events.append(ev)
-            if ev.get("method") == method:
-                return ev
-
-    def close(self) -> None:
-        try:
-            self.call("Browser.close", timeout=5)
-        except (RuntimeError, TimeoutError, OSError):
-            pass
-        try:
-            self.proc.wait(timeout=10)
-        except subprocess.TimeoutExpired:
-            self.proc.kill()
-            self.proc.wait()
-        os.close(self._to_child)
-        os.close(self._from_child)
-
-
-def load_page(binary: str, page: Path, screenshot: Path, width: int = 1200,
-              segment_height: int | None = None) -> PageLoad:
-    """Open ``page`` in headless Chromium, screenshot it whole, and report console errors and requests.
-
-    With ``segment_height``, the page is also saved in slices of that height
-    (``<screenshot stem>-<i>.png``), which are easier to look at than one tall image.
-    """
-    url = page.resolve().as_uri()
-    result = PageLoad()
-    with tempfile.TemporaryDirectory() as profile:
-        pipe = _Pipe(binary, profile)
-        try:
-            target = pipe.call("Target.createTarget", {"url": "about:blank"})["targetId"]
-            session = pipe.call("Target.attachToTarget", {"targetId": target, "flatten": True})["sessionId"]
-            for domain in ("Page", "Runtime", "Log", "Network"):
-                pipe.call(f"{domain}.enable", session=session)
-            pipe.call("Emulation.setDeviceMetricsOverride",
-                      {"width": width, "height": 900, "deviceScaleFactor": 1, "mobile": False}, session=session)
-            pipe.call("Page.navigate", {"url": url}, session=session)
-            pipe.wait_for("Page.loadEventFired")
-            time.sleep(0.3)  # let late console messages arrive
-            result.title = pipe.call("Runtime.evaluate", {"expression": "document.title", "returnByValue": True},
-                                     session=session)["result"]["value"]
-            size = pipe.call("Page.getLayoutMetrics", session=session)["cssContentSize"]
-            result.width, result.height = int(size["width"]), int(size["height"])
-            shot = pipe.call("Page.captureScreenshot", {
-                "format": "png", "captureBeyondViewport": True,
-                "clip": {"x": 0, "y": 0, "width": size["width"], "height": size["height"], "scale": 1}},
-                session=session, timeout=60)
-            screenshot.write_bytes(base64.b64decode(shot["data"]))
-            result.screenshot = screenshot
-            for i, top in enumerate(range(0, result.height, segment_height) if segment_height else []):
-                part = pipe.call("Page.captureScreenshot", {
-                    "format": "png", "captureBeyondViewport": True,
-                    "clip": {"x": 0, "y": top, "width": size["width"],
-                             "height": min(segment_height, result.height - top), "scale": 1}},
-                    session=session, timeout=60)
-                screenshot.with_name(f"{screenshot.stem}-{i}.png").write_bytes(base64.b64decode(part["data"]))
-        finally:
-            pipe.close()
-    for ev in pipe.events:
-        method, params = ev.get("method"), ev.get("params", {})
-        if method == "Runtime.consoleAPICalled" and params.get("type") in ("error", "assert", "warning"):
-            result.console_errors.append(" ".join(str(a.get("value", a.get("description", ""))) for a in params.get("args", [])))
-        elif method == "Runtime.exceptionThrown":
-            result.console_errors.append(params.get("exceptionDetails", {}).get("text", "exception"))
-        elif method == "Log.entryAdded" and params.get("entry", {}).get("level") in ("error", "warning"):
-            result.console_errors.append(params["entry"].get("text", ""))
-        elif method == "Network.requestWillBeSent":
-            req_url = params.get("request", {}).get("url", "")
-            if req_url != url:
-                result.requests.append(req_url)
+def load_page(b: Browser, page_path: Path, width: int, screenshot: Path | None = None,
+              pdf: bool = False) -> PageLoad:
+    """Open ``page_path`` at ``width`` px; collect errors, requests, overflow, sections, optionally a PDF."""
+    url = page_path.resolve().as_uri()
+    result = PageLoad(width=width)
+    page = b.new_page(viewport={"width": width, "height": 900})
+    page.on("console", lambda m: result.console_errors.append(m.text) if m.type in ("error", "warning") else None)
+    page.on("pageerror", lambda e: result.console_errors.append(str(e)))
+    page.on("request", lambda r: result.requests.append(r.url) if r.url != url else None)
+    page.goto(url, wait_until="load")
+    page.wait_for_timeout(200)  # late console messages
+    result.title = page.title()
+    result.overflow = page.evaluate(_OVERFLOW_JS)
+    result.section_ids = page.evaluate("() => [...document.querySelectorAll('main > section')].map(s => s.id)")
+    result.section_titles = page.evaluate(
+        "() => [...document.querySelectorAll('main > section > h2')].map(h => h.textContent.trim())")
+    result.height = page.evaluate("() => document.documentElement.scrollHeight")
+    if screenshot is not None:
+        page.screenshot(path=str(screenshot), full_page=True)
+    if pdf:
+        page.emulate_media(media="print")
+        # every table row inside a collapsed <details> must be printed
+        result.hidden_in_print = page.evaluate(
+            "() => [...document.querySelectorAll('details tr, details p')].filter(e => !e.checkVisibility()).length")
+        result.pdf = page.pdf(format="A4", print_background=True)
+    page.close()
     return result

@@ -4,7 +4,8 @@ The "known gaps" store (fixture study Keldmar, 165 domain cells of 25 km) holds:
 
 - trawl (agency, near_bottom): winter and summer 2018-2022, 20 hauls in 20 distinct cells
   (10 per stratum) each season, EXCEPT winter 2021 (no hauls: no_samples) and summer 2022
-  (8 hauls in 8 cells, 4 per stratum: coverage_drop). Two common fish in every haul;
+  (8 hauls in 8 cells, 4 per stratum: coverage_drop, and thin_samples
+  in each stratum, which lost most of its 10 hauls). Two common fish in every haul;
   Syrranthus minor caught in exactly three summer hauls (few_encounters). Bottom
   temperature per haul.
 - ocean model (gridded, model, near_bottom): bottom temperature for every domain cell,

@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import json
+import re
 from pathlib import Path
 
 import pyproj
@@ -124,7 +125,8 @@ def test_confidential_effort_cells_are_not_named(tiny: Study, tmp_path: Path) ->
                  source_id="fleet_logbooks", kind="effort", provider_type="industry")
     result = audit(tiny)
     row = result.coverage.set_index(["source_kind", "season_year", "season"]).loc[("effort", 2020, "winter")]
-    assert (row["cells_sampled"], row["cells_suppressed"]) == (2, 1)
+    # the confidential rows are withheld whole: in no count by period (harmonize.disclosure)
+    assert (row["cells_sampled"], row["cells_suppressed"], row["events"]) == (2, 0, 2)
     maps = result.metrics.cell_maps
     assert set(maps.loc[maps["source_kind"] == "effort", "cell_id"]) == {"x100_y180", "x102_y180"}
     assert result.suppression() == {"min_vessels": 3, "cells_suppressed": 1, "cell_years_suppressed": 1,
@@ -133,7 +135,34 @@ def test_confidential_effort_cells_are_not_named(tiny: Study, tmp_path: Path) ->
     text_html = result.write_html(tmp_path / "a.html").read_text(encoding="utf-8")
     for text in (text_json, text_html):
         assert "x101_y180" not in text
-    assert '"cells_suppressed": 1' in text_json
+    assert '"cells_suppressed": 1' in text_json     # the total, in the confidentiality block
     assert "1 grid cell (1 cell-year) is therefore not shown" in text_html
     # fishing effort is not a survey: no thin_samples or coverage_drop about it
     assert not any(f.source_kind == "effort" for f in result.findings)
+
+
+def test_counts_are_labelled_apart_and_cells_outside_the_domain_never_count(tiny: Study, tmp_path: Path) -> None:
+    # two hauls in the domain, one in cell x99_y180 whose centre lies west of the domain's edge
+    store_frames(tiny, *_hauls([("2020-07-10 09:00", 100, 180), ("2020-07-11 09:00", 101, 181),
+                                ("2020-07-12 09:00", 99, 180)]), source_id="tiny_trawl", kind="trawl")
+    ev, va = [], []
+    for ix in IX:  # a gridded field: one cell-period per domain cell
+        lon, lat = _centre(ix, 180)
+        eid = f"x{ix}_y180_2020-07"
+        ev.append({"event_id": eid, "event_start": "2020-07-01", "lon": lon, "lat": lat, "cell_id": f"x{ix}_y180",
+                   "depth_layer": "surface", "effort": 625.0, "effort_unit": "km2"})
+        va.append({"event_id": eid, "variable": "sea_surface_temperature", "variable_kind": "physical",
+                   "quantity": "measurement", "unit": "degC", "value": 12.0})
+    store_frames(tiny, _frame(ev, {}), _frame(va, {"zero_filled": False, "no_effort": False}),
+                 source_id="sst", kind="gridded", provider_type="remote_sensing")
+    result = audit(tiny)
+    maps = result.metrics.cell_maps
+    assert "x99_y180" not in set(maps["cell_id"])
+    assert set(maps.loc[maps["source_kind"] == "trawl", "cell_id"]) == {"x100_y180", "x101_y181"}
+    row = result.coverage.set_index(["source_kind", "season_year", "season"]).loc[("trawl", 2020, "summer")]
+    assert (row["events"], row["cells_sampled"]) == (3, 2)  # the haul counts as a sample, its cell not as domain
+    html = result.write_html(tmp_path / "r.html").read_text(encoding="utf-8")
+    # 3 biological samples and 4 gridded cell-periods, never one total of 7
+    assert '<b>3</b><span>biological samples</span>' in html
+    assert '<b>4</b><span>gridded cell-periods</span>' in html
+    assert not re.search(r"<b>7</b><span>[^<]*(samples|events|periods)", html)

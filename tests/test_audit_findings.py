@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import math
 import statistics
 from pathlib import Path
 
@@ -38,6 +39,9 @@ def test_every_known_gap_is_found_and_nothing_else(known: tuple[Study, KnownGaps
     assert found == [
         # errors first
         ("no_samples", "error", "trawl", 2021, "winter", None, None, None),
+        # summer 2022 kept 4 of the 10 hauls each stratum had every earlier year: lost most
+        ("thin_samples", "error", "trawl", 2022, "summer", None, "Thorne Deep", None),
+        ("thin_samples", "error", "trawl", 2022, "summer", None, "Vossa Bank", None),
         ("missing_year", "error", "plankton", 2020, None, None, None, None),
         # season x layer combinations no biological source samples in any year
         ("no_samples", "warning", "all_biological", None, None, "mesopelagic", None, None),
@@ -57,7 +61,9 @@ def test_no_samples_counts_the_earlier_years(known: tuple[Study, KnownGaps]) -> 
     study, _ = known
     f = next(f for f in audit(study).findings if f.code == "no_samples" and f.severity == "error")
     # trawl had data in 2018-2020 before 2021, winter sampled in all three
-    assert dict(f.details) == {"level": "season", "earlier_years": 3, "earlier_years_sampled": 3}
+    # 20 winter hauls in each earlier year: none by chance has probability exp(-20) (Poisson)
+    assert dict(f.details) == {"level": "season", "earlier_years": 3, "earlier_years_sampled": 3,
+                               "earlier_mean_samples": 20.0, "p_chance": pytest.approx(math.exp(-20))}
     assert "winter 2021" in f.message and "ingest" in f.message
 
 
@@ -139,7 +145,7 @@ def test_annual_audit_reports_the_chosen_year_only(known: tuple[Study, KnownGaps
     y2021 = {(f.code, f.season_year) for f in audit(study, year=2021).findings if f.season_year is not None}
     assert y2021 == {("no_samples", 2021)}
     y2022 = {(f.code, f.season_year) for f in audit(study, year=2022).findings if f.season_year is not None}
-    assert y2022 == {("coverage_drop", 2022)}
+    assert y2022 == {("coverage_drop", 2022), ("thin_samples", 2022)}
     # later years are left out of the annual audit's tables
     assert audit(study, year=2020).coverage["season_year"].max() == 2020
     with pytest.raises(HarmonizeError, match="cannot audit season year 2031.*2018-2022"):
@@ -183,3 +189,11 @@ def test_a_protocol_keeps_its_series_across_sources(study) -> None:  # type: ign
     missing = [(f.season_year, f.details) for f in audit(study).findings if f.code == "missing_year"]
     assert missing == [(2019, {"source_id": "no_protocol_source", "source_ids": ["no_protocol_source"],
                                "years_with_records": [2018, 2020]})]
+
+
+def test_volunteer_only_counts_samples_and_presence_only_apart(known: tuple[Study, KnownGaps]) -> None:
+    study, _ = known
+    f = next(f for f in audit(study).findings if f.code == "volunteer_only")
+    # 3 presence-only sightings a winter, 2019-2022; the extent matrix shows them as presence-only, not samples
+    assert (f.details["samples"], f.details["presence_only_events"]) == (0, 12)
+    assert "(0 samples and 12 presence-only events)" in f.message

@@ -11,7 +11,7 @@ import sys
 from pathlib import Path
 
 import pytest
-from audit_browser import find_chromium, load_page
+from audit_browser import browser, load_page
 from audit_stores import build_known_gaps, copy_fixture_study
 
 from harmonize.audit.findings import CODES
@@ -70,12 +70,12 @@ def test_cli_fail_on_exit_codes(study: Study, tmp_path: Path) -> None:
     assert out_json.is_file() and out_html.is_file()
     # the terminal summary lists errors before warnings
     text = run.stdout
-    assert "2 errors, 9 warnings" in text
+    assert "4 errors, 9 warnings" in text
     assert text.index("error") < text.index("warning")
-    # codes the store does not have: exit 0
-    ok = _cli(study, "--fail-on", "thin_samples")
+    # codes the audit does not find (season year 2020 has no thin samples): exit 0
+    ok = _cli(study, "--year", "2020", "--fail-on", "thin_samples")
     assert ok.returncode == 0, ok.stdout + ok.stderr
-    assert _cli(study, "--fail-on", "thin_samples,missing_year").returncode == 1
+    assert _cli(study, "--year", "2020", "--fail-on", "thin_samples,missing_year").returncode == 1
     assert _cli(study).returncode == 0
     bad = _cli(study, "--fail-on", "gaps")
     assert bad.returncode == 2
@@ -96,35 +96,53 @@ def test_html_is_self_contained(study: Study, tmp_path: Path) -> None:
     assert set(re.findall(r"https?://[^\s\"'<>)]+", html)) == {"http://www.w3.org/2000/svg"}
     assert not re.search(r"\b(src|href)\s*=\s*[\"'](?!#)", html)
     assert CAUTION in html
-    # findings table sorted by severity
-    badges = re.findall(r'<span class="badge (error|warning|info)">', html)
-    assert badges == sorted(badges, key=("error", "warning", "info").index) and badges[0] == "error"
+    # finding groups sorted by severity, errors first
+    groups = re.findall(r'<details class="group"><summary><span class="badge (error|warning|info)">', html)
+    assert groups == sorted(groups, key=("error", "warning", "info").index) and groups[0] == "error"
+
+
+#: The report's sections, in order (their headings, as a reader sees them).
+SECTIONS = ["What to act on", "Findings", "How this report counts", "Data received",
+            "Which seasons and depth layers the data describe", "Coverage through time", "Coverage by stratum",
+            "Sampled cells per year", "Effort per year", "Agreement between sources", "Model readiness of taxa",
+            "Confidential fishing data", "Provenance"]
 
 
 @pytest.fixture(scope="module")
-def chromium() -> str:
-    return find_chromium()
+def chromium():
+    with browser() as b:
+        yield b
 
 
-def test_report_renders_in_a_headless_browser(study: Study, chromium: str, tmp_path: Path) -> None:
+@pytest.mark.parametrize("width", [800, 1400])
+def test_report_renders_in_a_headless_browser(study: Study, chromium, tmp_path: Path, width: int) -> None:
     page = audit(study).write_html(tmp_path / "audit.html")
-    shot = tmp_path / "audit.png"
-    loaded = load_page(chromium, page, shot)
+    shot = tmp_path / f"audit-{width}.png"
+    loaded = load_page(chromium, page, width, screenshot=shot, pdf=True)
     assert loaded.console_errors == []
     assert loaded.requests == []
     assert loaded.title == "Coverage audit: Keldmar Sea test study"
+    assert loaded.overflow == []  # nothing wider than the window, nothing scrolling sideways
+    assert loaded.section_titles == SECTIONS
     assert shot.read_bytes()[:8] == b"\x89PNG\r\n\x1a\n"
-    assert loaded.width <= 1200 and loaded.height > 2000  # no horizontal overflow; every section laid out
+    # printed: a PDF of several pages, with every collapsed table opened
+    assert loaded.pdf[:5] == b"%PDF-"
+    assert len(re.findall(rb"/Type\s*/Page[^s]", loaded.pdf)) >= 2
+    assert loaded.hidden_in_print == 0
     if os.environ.get("HARMONIZE_SCREENSHOT_DIR"):
         shutil.copy(shot, Path(os.environ["HARMONIZE_SCREENSHOT_DIR"]) / shot.name)
 
 
-def test_the_browser_check_sees_requests_and_console_errors(chromium: str, tmp_path: Path) -> None:
-    # control: the same check on a page that does make a request and log an error
+def test_the_browser_check_sees_requests_errors_and_overflow(chromium, tmp_path: Path) -> None:
+    # control: the same checks on a page that makes a request, logs an error and is too wide
     page = tmp_path / "bad.html"
     page.write_text('<!DOCTYPE html><html><head><title>bad</title></head><body>'
                     '<img src="http://127.0.0.1:9/missing.png"><script>console.error("boom")</script>'
-                    "</body></html>", encoding="utf-8")
-    loaded = load_page(chromium, page, tmp_path / "bad.png")
+                    '<div style="width:1000px">wide</div>'
+                    '<div style="overflow-x:auto;width:100px"><table style="width:600px"><tr><td>x</td></tr>'
+                    "</table></div></body></html>", encoding="utf-8")
+    loaded = load_page(chromium, page, 800)
     assert "http://127.0.0.1:9/missing.png" in loaded.requests
     assert any("boom" in e for e in loaded.console_errors)
+    assert any(o.startswith("document") for o in loaded.overflow)
+    assert any("scrolls 600>100" in o for o in loaded.overflow)

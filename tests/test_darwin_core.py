@@ -220,3 +220,19 @@ def test_archive_members_are_never_written_to_disk(tmp_path: Path) -> None:
     before = sorted(p.name for p in tmp_path.rglob("*"))
     read_archive(path)
     assert sorted(p.name for p in tmp_path.rglob("*")) == before
+
+
+def test_a_field_index_beyond_any_table_is_refused(tmp_path: Path) -> None:
+    # every row is padded to the widest index: an index of 1e20 asked for all the memory there is
+    meta = """<archive xmlns="http://rs.tdwg.org/dwc/text/">
+      <core rowType="http://rs.tdwg.org/dwc/terms/Occurrence" fieldsTerminatedBy="," ignoreHeaderLines="0">
+        <files><location>occ.csv</location></files>
+        <id index="0"/>
+        <field index="0" term="http://rs.tdwg.org/dwc/terms/occurrenceID"/>
+        <field index="100000000000000000000" term="http://rs.tdwg.org/dwc/terms/scientificName"/>
+      </core></archive>"""
+    path = _zip(tmp_path / "wide.zip", {"meta.xml": meta, "occ.csv": "o1,Larivox pallens\n"})
+    with pytest.raises(InputFileError, match=r"meta\.xml: index 100000000000000000000 of .* is beyond any "
+                                             r"table's width \(at most 10,000 columns\)") as err:
+        read_archive(path)
+    assert "\n" not in str(err.value)

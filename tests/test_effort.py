@@ -21,7 +21,6 @@ from geographiclib.geodesic import Geodesic
 
 from harmonize import Store, load_study, run
 from harmonize.adapters.effort import M_PER_NMI, geodesic_distance_m, split_tows_by_cell
-from harmonize.confidentiality import suppress, suppression_note
 from harmonize.errors import ConfigError
 from harmonize.tagging import Grid
 
@@ -229,21 +228,22 @@ def test_split_tows_shares_sum_to_one() -> None:
 
 
 def test_suppressed_export(ping_study: Path) -> None:
-    """Rule of three (common practice in fisheries agencies): cells with < 3 vessels blanked."""
+    """Rule of three (common practice in fisheries agencies): cells with < 3 vessels withheld."""
+    from harmonize.export.long import export_long
+    from harmonize.export.selection import ExportFilters
+
     study = load_study(ping_study)
     run(study, "effort_pings", {"rows": ping_study / "pings_hand.csv"})
     obs = _observations(ping_study)
-    out, n = suppress(obs, study.min_vessels)
-    assert n == 3
-    kept = out[out["value"].notna()]
-    assert list(zip(kept["gear"], kept["cell_id"], strict=True)) == [("OTB", E)]
-    assert kept["value"].iloc[0] == 5.0
-    blanked = out[out["value"].isna()]
-    assert blanked["effort"].isna().all() and len(blanked) == 3
-    assert all("suppressed_confidential" in list(f) for f in blanked["flags"])
-    assert suppression_note(n, study.min_vessels, len(out)).startswith("3 of 4 fishing-effort values")
+    public = obs[obs["n_vessels"] >= study.min_vessels]
+    assert list(zip(public["gear"], public["cell_id"], strict=True)) == [("OTB", E)]
+    result = export_long(study, ping_study / "long.parquet", ExportFilters.build(kinds="effort"))
+    out = pd.read_parquet(result.path)
+    assert len(out) == 1 and out["event_id"].iloc[0].startswith(f"OTB/{E}/") and out["value"].iloc[0] == 5.0
+    assert result.metadata["confidentiality"]["effort_rows_withheld"] == 3
+    assert any(n.startswith("3 fishing-effort rows") for n in result.notes)
     # the store keeps the true values
-    assert _observations(ping_study)["value"].notna().all()
+    assert _observations(ping_study)["value"].notna().all() and len(_observations(ping_study)) == 4
 
 
 def test_rejects_beyond_the_limit_are_counted(ping_study: Path) -> None:

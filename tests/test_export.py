@@ -48,7 +48,7 @@ def built(shared: tuple[Study, ExportStore]) -> ExportStore:
 def test_long_parquet_offsets_and_provenance(study: Study, built: ExportStore, tmp_path: Path) -> None:
     result = export_long(study, tmp_path / "long.parquet")
     table = pd.read_parquet(result.path)
-    assert result.rows == len(table) == 24
+    assert result.rows == len(table) == 23          # 24 rows in the store, E2 (2 vessels) withheld
     # offset of a Poisson/negative-binomial model: ln(effort), checked against numpy
     # (McCullagh and Nelder 1989, Generalized Linear Models, section 6.2.3)
     positive = table["effort"] > 0
@@ -74,13 +74,13 @@ def test_long_filters_are_applied_and_recorded(study: Study, built: ExportStore,
     assert [i["ingest_id"] for i in meta["ingests"]] == [built.ingests["survey_trawl"]]
 
 
-def test_confidential_fishing_values_are_blanked(study: Study, built: ExportStore) -> None:
-    # rule of three (common practice in fisheries agencies): fewer than min_vessels = 3 -> blank
+def test_confidential_fishing_rows_are_withheld(study: Study, built: ExportStore) -> None:
+    # rule of three (common practice in fisheries agencies): fewer than min_vessels = 3 -> the
+    # whole row is withheld (its cell, period, ping and vessel counts would locate the vessels)
     rows = read_long(study, ExportFilters.build(kinds="effort")).set_index("event_id")
-    assert np.isnan(rows.loc["E2", "value"]) and "suppressed_confidential" in list(rows.loc["E2", "flags"])
+    assert "E2" not in rows.index
     assert rows.loc["E1", "value"] == 12.0
     assert rows.loc["E3", "value"] == 7.5          # exactly 3 vessels is publishable
-    assert int(rows.loc["E2", "n_vessels"]) == 2   # the row and its vessel count stay visible
 
 
 def test_long_csv_guards_text_and_has_sidecar(study: Study, built: ExportStore, tmp_path: Path) -> None:
@@ -164,9 +164,10 @@ def test_grid_matches_a_hand_aggregate(study: Study, built: ExportStore) -> None
     rows = long[(long["variable_kind"] == "taxon") & (long["quantity"] == "count")
                 & ~long["flags"].map(lambda f: "probable_duplicate" in list(f)) & long["effort"].notna()]
     keys = ["source_kind", "cell_id", "season_year", "season", "depth_layer", "variable"]
-    per_event = rows.groupby([*keys, "event_id"]).agg(value=("value", "sum"), effort=("effort", "max"),
+    # sensitive events have no cell: their rows group under an empty cell_id
+    per_event = rows.groupby([*keys, "event_id"], dropna=False).agg(value=("value", "sum"), effort=("effort", "max"),
                                                       density=("density", "sum")).reset_index()
-    hand = per_event.groupby(keys).agg(events=("event_id", "size"), total_effort=("effort", "sum"),
+    hand = per_event.groupby(keys, dropna=False).agg(events=("event_id", "size"), total_effort=("effort", "sum"),
                                        mean_density=("density", "mean"),
                                        share_zero=("value", lambda v: float((v == 0).mean()))).reset_index()
     got = grid[(grid["variable_kind"] == "taxon") & (grid["quantity"] == "count") & grid["effort_unit"].notna()]
@@ -174,21 +175,20 @@ def test_grid_matches_a_hand_aggregate(study: Study, built: ExportStore) -> None
     assert len(merged) == len(hand) == len(got)
     for col in ("events", "total_effort", "mean_density", "share_zero"):
         np.testing.assert_allclose(merged[col].astype(float), merged[f"{col}_hand"].astype(float))
-    t1 = got[(got["cell_id"] == long.loc[long["event_id"] == "T1", "cell_id"].iloc[0])
-             & (got["variable"] == "Ostravix keldensis")]
+    t1 = got[got["cell_id"].isna() & (got["variable"] == "Ostravix keldensis")]   # T1 holds a sensitive taxon
     assert t1["mean_density"].iloc[0] == pytest.approx(280.0)
 
 
-def test_grid_blanks_a_group_holding_a_confidential_value(study: Study, built: ExportStore, tmp_path: Path) -> None:
+def test_grid_leaves_a_confidential_row_out_of_its_group(study: Study, built: ExportStore, tmp_path: Path) -> None:
     result = export_grid(study, tmp_path / "grid.csv", ExportFilters.build(kinds="effort"))
     grid = pd.read_csv(result.path).set_index("cell_id")
-    shared = grid.loc[built.effort_cells["E1"]]     # E1 (5 vessels) + E2 (2 vessels)
-    assert shared["events"] == 2 and shared["suppressed_events"] == 1
-    assert np.isnan(shared["total_value"])          # 12 alone would reveal E2 by difference
+    shared = grid.loc[built.effort_cells["E1"]]     # E1 (5 vessels) + E2 (2 vessels, withheld)
+    assert shared["events"] == 1 and shared["total_value"] == 12.0
+    assert "suppressed_events" not in grid.columns  # a count of hidden rows would place them
     assert grid.loc[built.effort_cells["E3"], "total_value"] == 7.5
     meta = read_export_metadata(result.path)
-    assert meta["confidentiality"] == {"min_vessels": 3, "rows_suppressed": 1}
-    assert meta["options"]["groups_blanked"] == 1
+    assert meta["confidentiality"]["min_vessels"] == 3 and meta["confidentiality"]["rows_suppressed"] == 1
+    assert meta["confidentiality"]["precise"] is False
 
 
 # ---------------------------------------------------------------------------------------- guard
@@ -237,7 +237,7 @@ def test_cli_export_writes_and_reports(study: Study, built: ExportStore, tmp_pat
     out = tmp_path / "grid.parquet"
     done = _cli(study.root, "export", "grid", str(out), "--kind", "effort,trawl", "--years", "2020")
     assert done.returncode == 0, done.stderr
-    assert "fishing values suppressed" in done.stdout and "does not assess stocks" in done.stdout
+    assert "fishing-effort row" in done.stdout and "withheld" in done.stdout and "does not assess stocks" in done.stdout
     meta = read_export_metadata(out)
     assert meta["filters"]["kinds"] == ["effort", "trawl"] and meta["filters"]["season_years"] == [2020]
     bad = _cli(study.root, "export", "long", str(tmp_path / "x.csv"), "--layers", "abyss")

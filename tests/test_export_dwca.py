@@ -77,7 +77,7 @@ def test_meta_xml_follows_the_text_guide(archive: tuple[Path, ExportStore]) -> N
 def test_ids_link_core_and_extensions(archive: tuple[Path, ExportStore]) -> None:
     tables = _tables(archive[0])
     event_ids = [r["eventID"] for r in tables["event.txt"]]
-    assert len(event_ids) == len(set(event_ids)) == 9            # G1 (gridded model) is left out
+    assert len(event_ids) == len(set(event_ids)) == 8            # G1 (gridded model), E2 (2 vessels) left out
     assert "ocean_model:G1" not in event_ids
     occ_ids = {r["occurrenceID"] for r in tables["occurrence.txt"]}
     assert {r["eventID"] for r in tables["occurrence.txt"]} <= set(event_ids)
@@ -114,8 +114,10 @@ def test_sensitive_taxa_are_generalised(archive: tuple[Path, ExportStore]) -> No
     assert t1["dataGeneralizations"] != ""
     t2 = events["survey_trawl:T2"]                             # Calverion rubrum absent: exact
     assert float(t2["decimalLatitude"]) == 43.5 and t2["dataGeneralizations"] == "" and t2["locationID"] != ""
-    v1 = events["volunteer_birds:V1"]                          # its Aukelle record is a twin
-    assert float(v1["decimalLatitude"]) == V_POS["V1"][0] and v1["dataGeneralizations"] == ""
+    # V1's Aukelle record is a probable twin, left out of the archive but kept (flagged) in the
+    # long table, where it would place V1 exactly: the event is generalised in every output
+    v1 = events["volunteer_birds:V1"]
+    assert float(v1["decimalLatitude"]) == round(V_POS["V1"][0], 1) and v1["dataGeneralizations"] != ""
 
 
 def test_effort_terms_and_confidential_fishing(archive: tuple[Path, ExportStore]) -> None:
@@ -129,7 +131,7 @@ def test_effort_terms_and_confidential_fishing(archive: tuple[Path, ExportStore]
     facts = tables["extendedmeasurementorfact.txt"]
     hours = {r["eventID"]: r["measurementValue"] for r in facts if r["measurementType"] == "fishing hours"}
     assert hours == {"fleet_effort:E1": "12.0", "fleet_effort:E3": "7.5"}     # E2: 2 vessels, withheld
-    assert "fewer than 3 vessels" in events["fleet_effort:E2"]["informationWithheld"]
+    assert "fleet_effort:E2" not in events          # no Event row: its cell and month would place the vessels
     density = [r for r in facts if r["measurementID"].endswith(":density")
                and r["occurrenceID"] == "survey_trawl:T1:Calverion rubrum"]
     assert float(density[0]["measurementValue"]) == pytest.approx(2.0 / 0.05)
@@ -147,7 +149,7 @@ def test_eml_parses_and_carries_provenance(archive: tuple[Path, ExportStore]) ->
     meta = read_export_metadata(path)
     assert meta["tool_version"] == harmonize.__version__
     assert {i["ingest_id"] for i in meta["ingests"]} == set(built.ingests.values())
-    assert meta["options"]["events_generalised"] == 2 and meta["options"]["fishing_values_withheld"] == 1
+    assert meta["options"]["events_generalised"] == 3 and meta["options"]["fishing_values_withheld"] == 1
     assert meta["options"]["occurrence_rows_probable_duplicate"] == 1
     assert read_archive_table(path, "occurrence.txt")["occurrenceStatus"].isin(["present", "absent"]).all()
 

@@ -44,9 +44,10 @@ def test_layers_open_with_the_declared_crs(gpkg: tuple[Path, ExportStore]) -> No
         info = pyogrio.read_info(path, layer=name)
         assert pyproj.CRS(info["crs"]) == pyproj.CRS("EPSG:4326")
     events = gpd.read_file(path, layer="events")
-    assert len(events) == 11 and events.crs.to_epsg() == 4326
+    assert len(events) == 10 and events.crs.to_epsg() == 4326     # E2 (2 vessels) withheld
     t1 = events[events["event_id"] == "T1"].geometry.iloc[0]
-    assert (t1.x, t1.y) == (-153.0, 43.0)
+    assert (t1.x, t1.y) == (-153.0, 43.0)     # generalised to 0.1 degree (already on it)
+    assert events.set_index("event_id").loc["T1", "data_generalizations"].startswith("coordinates rounded")
     assert "variable" not in events.columns   # no taxon data in the points
 
 
@@ -65,15 +66,15 @@ def test_cell_coverage_attributes(gpkg: tuple[Path, ExportStore]) -> None:
     path, built = gpkg
     cells = gpd.read_file(path, layer="cells").set_index("cell_id")
     shared = cells.loc[built.effort_cells["E1"]]
-    assert shared["events"] == 2 and shared["events_effort"] == 2
-    assert np.isnan(shared["fishing_hours"]) and shared["fishing_values_suppressed"] == 1
+    assert shared["events"] == 1 and shared["events_effort"] == 1        # E2 (2 vessels) is in no layer
+    assert shared["fishing_hours"] == 12.0 and "fishing_values_suppressed" not in cells.columns
     other = cells.loc[built.effort_cells["E3"]]   # E3 fishing + G1 model cell-period
     assert other["fishing_hours"] == 7.5 and other["events_gridded"] == 1 and other["events"] == 2
     trawl_cell = cells[cells["events_trawl"] == 2]   # T3 and T4 share a cell, two season years
     assert len(trawl_cell) == 1 and trawl_cell["season_years"].iloc[0] == 2
     assert (trawl_cell["first_season_year"].iloc[0], trawl_cell["last_season_year"].iloc[0]) == (2020, 2021)
     coverage = pyogrio.read_dataframe(path, layer="cell_coverage")
-    assert coverage["events"].sum() == 11
+    assert coverage["events"].sum() == 7      # 10 public events, 3 of them sensitive (no cell)
 
 
 def test_metadata_table_and_filters(study: Study, gpkg: tuple[Path, ExportStore], tmp_path: Path) -> None:

@@ -409,7 +409,7 @@ def test_damaged_parquet_file_is_named_by_the_check(study_dir: Path, capsys: pyt
     code, out, _ = cli(capsys, "--study", str(study_dir), "status", "--check")
     assert code == 1
     problem = [line for line in out.splitlines() if line.startswith("integrity problem")]
-    expected = "is missing" if damage == "deleted" else "is unreadable"
+    expected = "is missing" if damage == "deleted" else "has 1,000 bytes, the manifest recorded"
     assert len(problem) == 1 and expected in out and part.name[:12] in out.replace("\n", ""), out
     # every other verb refuses in one line and points to the check
     result = cli(capsys, "--study", str(study_dir), "status")

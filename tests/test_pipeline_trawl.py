@@ -143,6 +143,7 @@ def test_store_without_the_events_without_values_table_still_opens(study_dir: Pa
     run(study, _without_protocol(study_dir), {"events": study_dir / "hauls_messy.csv",
                                               "records": study_dir / "catch_messy.csv"}, replace=True)
     with store.connect() as c:
+        # brought up to date by the check or the writer
         assert c.execute("SELECT value FROM store_meta WHERE key = 'store_version'").fetchall() == [(str(STORE_VERSION),)]
     assert list(store.events_without_values()["event_id"]) == ["H010"]
     assert store.check() == []

@@ -144,7 +144,7 @@ def test_profile_field_that_does_not_exist(study_dir: Path) -> None:
     [
         ("2021-07-02T06:00,", "02/31/2021 06:00,", "bad_time", "start_time (column 'START') holds '02/31/2021 06:00', which is not a date-time"),
         (",20,60", ",twenty,60", "bad_type", "net_width_m (column 'WING_M') holds 'twenty', which is not a number"),
-        (",20,60", ",0,60", "out_of_range", "net_width_m (column 'WING_M') = 0 m is outside the allowed range (> 0 m)"),
+        (",20,60", ",0,60", "out_of_range", "net_width_m (column 'WING_M') = 0 m is outside the allowed range (> 0 and <= 300 m)"),
         (",20,60", ",,60", "missing_value", "net_width_m (column 'WING_M') is empty"),
         ("2021-07-02T06:30", "2021-07-02T06:00", "bad_effort", "tow duration is 0"),
         ("43.525,-151.5", "43.5,-151.5", "bad_effort", "area swept is 0"),

@@ -355,7 +355,14 @@ def _index(path: Path, value: str | None, what: str) -> int:
         raise InputFileError(path, f"meta.xml: index '{value}' of {what} is not a whole number") from None
     if idx < 0:
         raise InputFileError(path, f"meta.xml: index {idx} of {what} is negative")
+    if idx >= MAX_COLUMNS:  # every row is padded to the widest index: 1e20 asked for all memory
+        raise InputFileError(path, f"meta.xml: index {idx} of {what} is beyond any table's width "
+                                   f"(at most {MAX_COLUMNS:,} columns); fix meta.xml")
     return idx
+
+
+#: Columns a Darwin Core data file may have (an index in meta.xml beyond this is refused).
+MAX_COLUMNS = 10_000
 
 
 def _parse_member(path: Path, reader: _MemberReader, spec: _FileSpec,

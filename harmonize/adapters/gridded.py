@@ -17,6 +17,7 @@ the variable, bad_time for undecodable time steps), counted in bulk.
 
 from __future__ import annotations
 
+import math
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -196,9 +197,28 @@ def open_netcdf(path: Path) -> Iterator[xr.Dataset]:
     finally:
         netCDF4.set_chunk_cache(*cache)
     try:
+        _check_declared_size(path, ds, size)
         yield ds
     finally:
         ds.close()
+
+
+#: Values a file may declare per byte it holds: unwritten HDF5 chunks cost nothing on disk, so a
+#: 96 KB file could declare 2.5e10 values and be read as gigabytes of fill values.
+MAX_DECLARED_VALUES_PER_BYTE = 1_000
+#: Declared values accepted whatever the file's size (a small, very compressible field).
+MIN_VALUE_BUDGET = 100_000_000
+
+
+def _check_declared_size(path: Path, ds: xr.Dataset, size: int) -> None:
+    """Refuse, before any value is read, a file whose variables declare far more values than it holds."""
+    budget = max(MIN_VALUE_BUDGET, MAX_DECLARED_VALUES_PER_BYTE * size)
+    for name, var in ds.data_vars.items():
+        declared = math.prod(int(n) for n in var.shape)  # Python integers: no overflow
+        if declared > budget:
+            raise InputFileError(path, f"variable '{name}' declares {declared:,} values ({' x '.join(map(str, var.shape))}) "
+                                 f"in a file of {size:,} bytes, more than {budget:,}: it is mostly unwritten or "
+                                 "damaged; export the data again")
 
 
 # ------------------------------------------------------------------ geometry
@@ -386,6 +406,9 @@ def plan_variable(ds: xr.Dataset, mapping: VariableMapping, settings: GriddedSet
                              "units '<unit> since <date>'); name it with [columns] time = \"...\" in "
                              f"{profile.path.name}, or add a time dimension to the file")
     t_dim = ds[t_name].dims[0]
+    if ds.sizes[t_dim] == 0:
+        raise InputFileError(path, f"the time axis '{t_dim}' of '{name}' has no steps: the file holds no values "
+                             "to read")
     time, at, time_notes = _time_steps(ds, t_name, name, path)
     # the earliest-date rule of the tabular sources (reading.EARLIEST_TIME): older steps are bad times
     early = at.valid & (at.year < _EARLIEST_YEAR)
@@ -448,8 +471,10 @@ def plan_variable(ds: xr.Dataset, mapping: VariableMapping, settings: GriddedSet
     scale, offset = unit_conversion(target.dimension, unit)  # type: ignore[misc]
     try:
         packing = Packing.from_attrs(var.attrs, var.dtype)
-    except ValueError as exc:
-        raise InputFileError(path, f"variable '{name}' {exc}") from None
+    except (TypeError, ValueError) as exc:  # e.g. valid_min = "low"
+        raise InputFileError(path, f"variable '{name}' has a packing or valid-range attribute that is not a "
+                             f"number ({exc}); correct the file's _FillValue, scale_factor, add_offset and "
+                             "valid_min / valid_max / valid_range") from None
     return VariablePlan(mapping, t_dim, z_dim, fixed, time, periods, geometry, packing, unit, scale, offset,
                         level_layer, level_weight, names, layer_weight, depths, early, time_notes)
 

@@ -10,7 +10,6 @@ from __future__ import annotations
 import codecs
 import csv
 import difflib
-import hashlib
 import io
 import json
 from collections.abc import Iterable, Iterator, Mapping, Sequence
@@ -28,7 +27,8 @@ from harmonize.adapters.provider_formats import parse_angles, parse_fractions
 from harmonize.clock import clock_change_message, localize
 from harmonize.config_spec import COORDINATE_FORMATS, FRACTION_FORMATS, is_coordinate, is_fraction
 from harmonize.contract import FieldSpec, pandera_schema
-from harmonize.errors import ConfigError, InputFileError, ReasonCode
+from harmonize.errors import ConfigError, InputFileError, ReasonCode, one_line
+from harmonize.files import file_sha256  # noqa: F401  (re-exported: adapters hash their inputs with it)
 from harmonize.profile import Profile
 
 NA_TOKENS = frozenset({"", "na", "n/a", "nan", "null", "none", "-"})
@@ -71,14 +71,6 @@ class RawTable:
         """The rows at ``positions`` as JSON objects keyed by the provider's column names."""
         sub = self.frame.iloc[positions] if self.rows is None else self.frame.loc[positions]
         return [json.dumps(rec, ensure_ascii=False) for rec in sub.to_dict("records")]
-
-
-def file_sha256(path: Path) -> str:
-    digest = hashlib.sha256()
-    with open(path, "rb") as fh:
-        for block in iter(lambda: fh.read(1 << 20), b""):
-            digest.update(block)
-    return digest.hexdigest()
 
 
 def read_table(path: Path, profile: Profile, role: str) -> tuple[RawTable, list[tuple[int, str, int]]]:
@@ -254,7 +246,8 @@ class LineReader:
             raise InputFileError(self.path, f"the header row cannot be read ({exc})") from None
         header = [h.strip().lstrip("\ufeff") for h in header]
         _check_header_names(self.path, header)
-        dupes = sorted({h for h in header if header.count(h) > 1 and h})
+        seen: set[str] = set()  # one pass: header.count(h) per name was quadratic in the width
+        dupes = sorted({h for h in header if h and (h in seen or seen.add(h))})
         if dupes:
             raise InputFileError(self.path, f"column name(s) {dupes} appear more than once in the header")
         return header
@@ -399,6 +392,10 @@ def refuse_long_lines(path: Path, limit: int = MAX_LINE_BYTES, block_size: int =
     )
 
 
+#: Column names an error message lists at most.
+MAX_LISTED_COLUMNS = 40
+
+
 def _check_header_names(path: Path, header: Sequence[str]) -> None:
     """Refuse a header whose column names span lines (an unclosed quote swallowed the rows)."""
     broken = [h for h in header if "\n" in h or "\r" in h]
@@ -526,12 +523,16 @@ def resolve_columns(
             for col in (wanted if isinstance(wanted, tuple) else (wanted,)):
                 actual = col if col in columns else by_fold.get(col.casefold())
                 if actual is None:
-                    close = difflib.get_close_matches(col, columns, n=3)
+                    # closest names among a bounded number of columns (a hostile header has millions)
+                    close = difflib.get_close_matches(col, columns[:MAX_LISTED_COLUMNS * 500], n=3)
                     hint = f" (closest: {', '.join(close)})" if close else ""
+                    listed = ", ".join(columns[:MAX_LISTED_COLUMNS])
+                    if len(columns) > MAX_LISTED_COLUMNS:
+                        listed += f", ... ({len(columns):,} columns in all)"
                     raise InputFileError(
                         table.path,
                         f"column '{col}', which {profile.path.name} {section} maps to field "
-                        f"'{spec.name}', is not in the file{hint}; columns are: {', '.join(columns)}",
+                        f"'{spec.name}', is not in the file{hint}; columns are: {one_line(listed)}",
                     )
                 actual_cols.append(actual)
             found[spec.name] = actual_cols[0] if len(actual_cols) == 1 else tuple(actual_cols)
@@ -753,19 +754,27 @@ def _check_format(spec: FieldSpec, fmt: str, profile: Profile) -> None:
                           f"'{fmt}' does not apply to {spec.name}; expected one of {', '.join(allowed)}")
 
 
+#: A date without a time (see parse_times): it never carries an offset.
+_DATE_ALONE = r"\s*\d{1,4}[-/.]\d{1,2}[-/.]\d{1,4}\s*"
+
+
 def parse_times(text: pd.Series, profile: Profile
                 ) -> tuple[pd.Series, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
     """Parse date-time strings into naive UTC timestamps (microseconds, years 1800-9999).
 
     Strings with an offset (Z, +02:00) are converted to UTC; strings without one are read in
-    the profile's time zone (:func:`harmonize.clock.localize`). Returns (timestamps,
-    unparseable mask, future mask, ambiguous-local-time mask, nonexistent-local-time mask);
-    a row is in at most one mask.
+    the profile's time zone (:func:`harmonize.clock.localize`). The rule: a date alone
+    (``01-01-2021``, ``2021-01-01``, ``1.1.2021``) has no offset, so the year of a day-first
+    date with dashes is never read as an offset "-2021" and that date is local like
+    "2021-01-01"; an offset (``Z``, ``+hh:mm``, ``-hhmm``) is recognised at the end of a date
+    with a time. Returns (timestamps, unparseable mask, future mask, ambiguous-local-time
+    mask, nonexistent-local-time mask); a row is in at most one mask.
     """
     twice = np.zeros(len(text), dtype=bool)
     never = np.zeros(len(text), dtype=bool)
     present = text.notna().to_numpy()
-    has_zone = text.str.contains(r"(?:[zZ]|[+-]\d{2}:?\d{2})$", regex=True).fillna(False).to_numpy()
+    has_zone = (text.str.contains(r"(?:[zZ]|[+-]\d{2}:?\d{2})$", regex=True)
+                & ~text.str.fullmatch(_DATE_ALONE)).fillna(False).to_numpy()
     out = pd.Series(pd.NaT, index=text.index, dtype="datetime64[us]")
     fmt = profile.time_format or "ISO8601"
     for zoned in (True, False):
@@ -791,6 +800,7 @@ def parse_times(text: pd.Series, profile: Profile
     bad = present & out.isna().to_numpy() & ~twice & ~never
     now = datetime.now(UTC).replace(tzinfo=None) + timedelta(days=1)
     future = (out > pd.Timestamp(now)).fillna(False).to_numpy()
+    out = out.mask(future)
     return out, bad, future, twice, never
 
 
@@ -846,11 +856,6 @@ def _short(value: Any, limit: int = 60) -> str:
     """A cell as shown in a message: at most ``limit`` characters, on one line."""
     text = str(value)
     return one_line(text if len(text) <= limit else text[: limit - 3] + "...")
-
-
-def one_line(text: str) -> str:
-    """The text with its control characters (line breaks, NUL, bidi overrides) shown escaped."""
-    return text if text.isprintable() else "".join(c if c.isprintable() else ascii(c)[1:-1] for c in text)
 
 
 def closest_names(unknown: Iterable[str], known: Sequence[str], n: int = 3) -> dict[str, list[str]]:

@@ -3,7 +3,7 @@
 Findings are derived from the aggregated tables of :mod:`harmonize.audit.metrics` (small
 frames; the observation rows stay in DuckDB). The codes and their rules:
 
-no_samples (error; warning for opportunistic and effort data, which have no design)
+no_samples (error when chance does not explain the gap, else info; see docs/audit.md)
     A source kind sampled a season (or a depth layer, or a stratum, of that season) in
     most of its earlier years with data (more than half, at least two) and has no sample
     there in a year when it has data otherwise. Reported at the coarsest level that is
@@ -11,13 +11,14 @@ no_samples (error; warning for opportunistic and effort data, which have no desi
     effort data). In a kind's last year, seasons after the latest one sampled are not
     reported (the year may not be over). Also (warning): a season x depth layer that no
     biological source samples in any year.
-thin_samples (warning)
+thin_samples (error when chance does not explain it, else info; see docs/audit.md)
     A source kind has some, but fewer than ``[audit] min_events``, samples in a
-    season_year x season x depth layer. Not applied to fishing effort.
+    season_year x season x depth layer; or a planned stratum kept less than half of its
+    earlier mean. Not applied to fishing effort, nor to incomplete seasons.
 coverage_drop (warning)
     The share of domain cells a source kind sampled in a season is below
     ``[audit] coverage_drop`` times the median share of its earlier years (at least two).
-    Not applied to fishing effort.
+    Not applied to fishing effort, nor to incomplete seasons (:mod:`harmonize.audit.periods`).
 missing_year (error)
     A source has no records in a season year between its first and last year (with
     ``--year Y``: also when it had records in Y-1 and none in Y).
@@ -49,6 +50,7 @@ import numpy as np
 import pandas as pd
 
 from harmonize.audit.metrics import ALL_BIOLOGICAL, Metrics
+from harmonize.audit.periods import incomplete_keys
 from harmonize.errors import ConfigError
 from harmonize.study import Study
 from harmonize.tagging import season_year_offsets
@@ -61,6 +63,13 @@ EFFORT_KINDS = ("effort",)
 #: Kinds without a sampling design: their gaps are warnings, and strata are not checked.
 UNDESIGNED_KINDS = ("opportunistic", "effort")
 VOLUNTEER = "volunteer"
+#: A gap or shortfall whose probability under the earlier years' mean (Poisson) is below this
+#: is an error; above it, chance explains it and it is a note. 1 % is the conventional "highly
+#: significant" level (Fisher 1925, Statistical Methods for Research Workers).
+CHANCE_P = 0.01
+#: A planned stratum (sampled in every earlier year) that keeps less than this share of its
+#: earlier mean lost most of its samples: an error whatever the probability.
+LOST_MOST = 0.5
 
 #: Default tolerances (canonical unit of the variable) for source_disagreement. A judgement,
 #: not a standard: 0.5 degC is the order of the differences between in-situ temperatures and
@@ -121,6 +130,10 @@ def _str(value: Any) -> str | None:
     return None if value is None or pd.isna(value) else str(value)
 
 
+def _count(n: int, noun: str) -> str:
+    return f"{n:,} {noun}{'' if n == 1 else 's'}"
+
+
 def _layer(name: str | None) -> str:
     return f"the {name} layer" if name else "samples with no depth layer"
 
@@ -165,27 +178,91 @@ def tolerance_for(variable: str, table: Mapping[str, float]) -> float | None:
 
 
 # --------------------------------------------------------------------------- the rules
-def _history(presence: pd.DataFrame, kind_years: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
-    """For each combination (keys) and each year its kind has data: sampled now / before.
+def _history(frame: pd.DataFrame, kind_years: pd.DataFrame, keys: list[str]) -> pd.DataFrame:
+    """For each combination (keys) and each year its kind has data: samples now and before.
 
-    ``presence`` holds source_kind, season_year, *keys for sampled combinations;
-    ``kind_years`` the (source_kind, season_year) pairs with any data of the kind.
+    ``frame`` holds source_kind, season_year, *keys and events for sampled combinations;
+    ``kind_years`` the (source_kind, season_year) pairs with any data of the kind. A year of
+    the kind without the combination counts as 0 samples. Adds ``sampled``, ``events``,
+    ``earlier_years`` (years of the kind before this one), ``earlier_sampled`` (of those,
+    years with the combination sampled) and ``earlier_mean`` (mean samples per earlier year).
     """
-    combos = presence[["source_kind", *keys]].drop_duplicates()
+    hit = (frame.groupby(["source_kind", "season_year", *keys], dropna=False)["events"].sum()
+           .reset_index())
+    combos = hit[["source_kind", *keys]].drop_duplicates()
     grid = combos.merge(kind_years, on="source_kind")
-    hit = presence[["source_kind", "season_year", *keys]].drop_duplicates().assign(sampled=True)
     grid = grid.merge(hit, on=["source_kind", "season_year", *keys], how="left")
-    grid["sampled"] = grid["sampled"].fillna(False).astype(bool)
+    grid["events"] = grid["events"].fillna(0).astype("int64")
+    grid["sampled"] = grid["events"] > 0
     grid = grid.sort_values(["source_kind", *keys, "season_year"], kind="stable")
     by = grid.groupby(["source_kind", *keys], sort=False, dropna=False)
     grid["earlier_years"] = by.cumcount()
     grid["earlier_sampled"] = by["sampled"].cumsum() - grid["sampled"].astype(int)
+    earlier_events = by["events"].cumsum() - grid["events"]
+    grid["earlier_mean"] = (earlier_events / grid["earlier_years"].where(grid["earlier_years"] > 0)).astype(float)
     return grid
 
 
 def _usually_sampled_but_not(grid: pd.DataFrame) -> pd.DataFrame:
     return grid[~grid["sampled"] & (grid["earlier_years"] >= 2)
                 & (grid["earlier_sampled"] * 2 > grid["earlier_years"])]
+
+
+def poisson_cdf(k: np.ndarray | int, mean: np.ndarray | float) -> np.ndarray:
+    """P(X <= k) for X ~ Poisson(mean), element-wise: the chance of so few samples at that mean.
+
+    Sums exp(-mean) mean^i / i! for i = 0..k in log space (k is small here: fewer than
+    ``min_events``); NaN where the mean is unknown.
+    """
+    k_arr = np.atleast_1d(np.asarray(k, dtype="int64"))
+    lam = np.atleast_1d(np.asarray(mean, dtype=float))
+    k_arr, lam = np.broadcast_arrays(k_arr, lam)
+    out = np.full(lam.shape, np.nan)
+    ok = np.isfinite(lam) & (lam >= 0)
+    if not ok.any():
+        return out
+    top = int(k_arr[ok].max()) if ok.any() else 0
+    i = np.arange(top + 1)
+    log_fact = np.cumsum(np.log(np.maximum(i, 1)))
+    with np.errstate(divide="ignore", invalid="ignore"):
+        log_terms = -lam[ok, None] + i[None, :] * np.log(lam[ok, None]) - log_fact[None, :]
+    log_terms = np.where(np.isnan(log_terms), np.where(i[None, :] == 0, -lam[ok, None], -np.inf), log_terms)
+    terms = np.where(i[None, :] <= k_arr[ok, None], np.exp(log_terms), 0.0)
+    out[ok] = np.minimum(terms.sum(axis=1), 1.0)
+    return out
+
+
+def _complete_only(frame: pd.DataFrame, m: Metrics) -> pd.DataFrame:
+    """Rows (source_kind, season_year, season) outside the incomplete periods of the data's end."""
+    keys = incomplete_keys(m.periods) if len(m.periods) else set()
+    if not keys or frame.empty:
+        return frame
+    inside = [(str(k), int(y), str(s)) in keys for k, y, s in
+              zip(frame["source_kind"], frame["season_year"], frame["season"], strict=True)]
+    return frame[~np.asarray(inside, dtype=bool)]
+
+
+def _evidence_severity(p_chance: float, designed: bool, lost_most: bool = False) -> str:
+    """Error when chance does not explain a shortfall (or a planned stratum lost most of its samples).
+
+    Without a sampling design (volunteers, fishing) the worst is a warning.
+    """
+    serious = (np.isfinite(p_chance) and p_chance < CHANCE_P) or lost_most
+    if not serious:
+        return "info"
+    return "error" if designed else "warning"
+
+
+def _chance_text(p_chance: float, mean: float, observed: int) -> str:
+    if not np.isfinite(p_chance):
+        return "there are no earlier years to compare with"
+    seen = "none" if observed == 0 else f"{observed} or fewer"
+    return (f"earlier years averaged {mean:.1f}, so seeing {seen} by chance has probability "
+            f"{_p_text(p_chance)} (Poisson)")
+
+
+def _p_text(p: float) -> str:
+    return f"{p:.2f}" if p >= 0.01 else ("< 0.0001" if p < 1e-4 else f"{p:.4f}")
 
 
 def season_order(study: Study) -> dict[str, int]:
@@ -215,30 +292,36 @@ def no_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
             frame = frame[frame["depth_layer"].notna()]
         if level == "stratum":  # volunteers and fleets choose where they go: no stratum design
             frame = frame[~frame["source_kind"].isin(UNDESIGNED_KINDS)]
-        grid = _usually_sampled_but_not(_history(frame, kind_years, ["season", *extra]))
+        grid = _complete_only(_usually_sampled_but_not(_history(frame, kind_years, ["season", *extra])), m)
         if year is not None:
             grid = grid[grid["season_year"] == year]
         unfinished = (grid["season_year"] == grid["source_kind"].map(last["last_year"])) & (
             grid["season"].map(order) > grid["source_kind"].map(last_pos))
         grid = grid[~unfinished]
-        for r in grid.itertuples(index=False):
+        p_none = poisson_cdf(0, grid["earlier_mean"].to_numpy(float))
+        for r, p in zip(grid.itertuples(index=False), p_none, strict=True):
             key = (r.source_kind, int(r.season_year), r.season)
             if level == "season":
                 empty_seasons.add(key)
             elif key in empty_seasons:
                 continue
+            planned = level == "stratum" and r.earlier_sampled == r.earlier_years
+            severity = _evidence_severity(float(p), r.source_kind not in UNDESIGNED_KINDS,
+                                          lost_most=planned and r.earlier_mean >= study.audit.min_events)
             where = {"season": f"{r.season}", "layer": f"{_layer(getattr(r, 'depth_layer', None))} in {r.season}",
                      "stratum": f"stratum {getattr(r, 'stratum', '')} in {r.season}"}[level]
+            act = ("find and ingest the missing records, or treat this gap as unknown in any model of that year."
+                   if severity != "info" else "chance explains it; no action needed beyond pooling years there.")
             out.append(Finding(
-                "no_samples", "warning" if r.source_kind in UNDESIGNED_KINDS else "error",
+                "no_samples", severity,
                 f"No {r.source_kind} samples in {where} {int(r.season_year)}, although the "
                 f"{r.source_kind} data sampled it in {int(r.earlier_sampled)} of the {int(r.earlier_years)} "
-                "earlier years with data; find and ingest the missing records, or treat this gap as "
-                "unknown in any model of that year.",
+                f"earlier years with data; {_chance_text(float(p), float(r.earlier_mean), 0)}; {act}",
                 source_kind=r.source_kind, season_year=int(r.season_year), season=r.season,
                 depth_layer=_str(getattr(r, "depth_layer", None)), stratum=_str(getattr(r, "stratum", None)),
                 details={"level": level, "earlier_years": int(r.earlier_years),
-                         "earlier_years_sampled": int(r.earlier_sampled)},
+                         "earlier_years_sampled": int(r.earlier_sampled),
+                         "earlier_mean_samples": float(r.earlier_mean), "p_chance": float(p)},
             ))
     out += _never_sampled(m, study)
     return out
@@ -288,28 +371,71 @@ def _never_sampled(m: Metrics, study: Study) -> list[Finding]:
 
 
 def thin_samples(m: Metrics, study: Study, year: int | None) -> list[Finding]:
-    """Season_year x season x layer cells with some but too few samples."""
+    """Too few samples: in a season_year x season x layer, or in a planned stratum that lost most.
+
+    Severity from the earlier years (see :func:`poisson_cdf`): an error when so few samples
+    are unlikely at the earlier mean (p < :data:`CHANCE_P`), a note when chance explains them
+    or there is nothing earlier to compare with.
+    """
     need = study.audit.min_events
-    le = m.layer_events
-    thin = le[(le["events"] > 0) & (le["events"] < need) & ~le["source_kind"].isin(EFFORT_KINDS)
-              & le["season_year"].notna()]
+    le = m.layer_events[m.layer_events["season_year"].notna() & m.layer_events["season"].notna()
+                        & ~m.layer_events["source_kind"].isin(EFFORT_KINDS)]
+    kind_years = le[["source_kind", "season_year"]].drop_duplicates()
+    grid = _history(le, kind_years, ["season", "depth_layer"])
+    thin = _complete_only(grid[(grid["events"] > 0) & (grid["events"] < need)], m)
     if year is not None:
         thin = thin[thin["season_year"] == year]
-    return [Finding(
-        "thin_samples", "warning",
-        f"Only {int(r.events)} {r.source_kind} sample{'s' if r.events != 1 else ''} in "
-        f"{_layer(_str(r.depth_layer))} in {r.season} {int(r.season_year)} (the study asks for at "
-        f"least {need}); estimates there will be uncertain, so add samples or pool this with a "
-        "neighbouring season or layer.",
-        source_kind=r.source_kind, season_year=int(r.season_year), season=_str(r.season),
-        depth_layer=_str(r.depth_layer), details={"events": int(r.events), "min_events": need},
-    ) for r in thin.itertuples(index=False)]
+    p_few = poisson_cdf(thin["events"].to_numpy("int64"), thin["earlier_mean"].to_numpy(float))
+    out = []
+    for r, p in zip(thin.itertuples(index=False), p_few, strict=True):
+        severity = _evidence_severity(float(p), r.source_kind not in UNDESIGNED_KINDS)
+        out.append(Finding(
+            "thin_samples", severity,
+            f"Only {int(r.events)} {r.source_kind} sample{'s' if r.events != 1 else ''} in "
+            f"{_layer(_str(r.depth_layer))} in {r.season} {int(r.season_year)} (the study asks for at "
+            f"least {need}); {_chance_text(float(p), float(r.earlier_mean), int(r.events))}; "
+            + ("estimates there will be uncertain, so find missing records, add samples or pool this with "
+               "a neighbouring season or layer." if severity != "info" else
+               "this is how thin that layer usually is: pool it with a neighbouring season, layer or year."),
+            source_kind=r.source_kind, season_year=int(r.season_year), season=_str(r.season),
+            depth_layer=_str(r.depth_layer),
+            details={"level": "layer", "events": int(r.events), "min_events": need,
+                     "earlier_years": int(r.earlier_years), "earlier_mean_samples": _plain(float(r.earlier_mean)),
+                     "p_chance": _plain(float(p))},
+        ))
+    # planned strata (a designed kind sampled them in every one of at least two earlier years,
+    # at least min_events a year on average) that kept less than LOST_MOST of their samples
+    se = m.stratum_events[m.stratum_events["season_year"].notna() & m.stratum_events["season"].notna()
+                          & ~m.stratum_events["source_kind"].isin(UNDESIGNED_KINDS)]
+    sg = _history(se, kind_years, ["season", "stratum"])
+    lost = sg[(sg["events"] > 0) & (sg["earlier_years"] >= 2) & (sg["earlier_sampled"] == sg["earlier_years"])
+              & (sg["earlier_mean"] >= need) & (sg["events"] < LOST_MOST * sg["earlier_mean"])]
+    lost = _complete_only(lost, m)
+    if year is not None:
+        lost = lost[lost["season_year"] == year]
+    p_lost = poisson_cdf(lost["events"].to_numpy("int64"), lost["earlier_mean"].to_numpy(float))
+    for r, p in zip(lost.itertuples(index=False), p_lost, strict=True):
+        out.append(Finding(
+            "thin_samples", "error",
+            f"Only {int(r.events)} {r.source_kind} samples in stratum {r.stratum} in {r.season} "
+            f"{int(r.season_year)}, against {float(r.earlier_mean):.1f} a year before: the planned stratum lost "
+            f"most of its samples ({_chance_text(float(p), float(r.earlier_mean), int(r.events))}); find the "
+            "missing records, or treat that stratum as under-sampled in any model of that year.",
+            source_kind=r.source_kind, season_year=int(r.season_year), season=_str(r.season),
+            stratum=_str(r.stratum),
+            details={"level": "stratum", "events": int(r.events), "earlier_years": int(r.earlier_years),
+                     "earlier_mean_samples": float(r.earlier_mean), "p_chance": _plain(float(p)),
+                     "lost_most_below": LOST_MOST},
+        ))
+    return out
 
 
 def coverage_drop(m: Metrics, study: Study, year: int | None) -> list[Finding]:
     """Seasons whose share of domain cells fell below the study's fraction of the earlier median."""
     share = study.audit.coverage_drop
     cov = m.coverage[(m.coverage["events"] > 0) & ~m.coverage["source_kind"].isin(EFFORT_KINDS)]
+    if "complete" in cov:  # a season the data do not cover to its end is no drop
+        cov = cov[cov["complete"].astype(bool)]
     out: list[Finding] = []
     for (kind, season), g in cov.groupby(["source_kind", "season"], sort=True):
         g = g.sort_values("season_year")
@@ -371,18 +497,24 @@ def volunteer_only(m: Metrics, study: Study) -> list[Finding]:
     if not bp.empty:
         is_vol = bp["provider_type"] == VOLUNTEER
         by = bp.assign(vol=bp["events"].where(is_vol, 0)).groupby(["season", "depth_layer"], dropna=False)
+        samples = bp["samples"] if "samples" in bp else bp["events"]
         g = by.agg(events=("events", "sum"), vol=("vol", "sum"), years=("years", "max"),
                    kinds=("source_kind", lambda s: sorted(set(s)))).reset_index()
+        g = g.merge(bp.assign(samples=samples).groupby(["season", "depth_layer"], dropna=False)["samples"].sum()
+                    .reset_index(), on=["season", "depth_layer"], how="left")
         for r in g[(g["events"] > 0) & (g["vol"] == g["events"])].itertuples(index=False):
             flagged.add((_str(r.season), _str(r.depth_layer)))
+            presence = int(r.events) - int(r.samples)
             out.append(Finding(
                 "volunteer_only", "warning",
                 f"Every biological record in {_layer(_str(r.depth_layer))} in {r.season} "
-                f"({int(r.events)} events) comes from volunteers, whose effort is not standardised; "
-                "use a model that accounts for observer effort there, or treat it as presence-only.",
+                f"({_count(int(r.samples), 'sample')} and {_count(presence, 'presence-only event')}) comes "
+                "from volunteers, whose effort is not standardised; use a model that accounts for observer "
+                "effort there, or treat it as presence-only.",
                 source_kind=r.kinds[0] if len(r.kinds) == 1 else ALL_BIOLOGICAL, season=_str(r.season),
                 depth_layer=_str(r.depth_layer),
-                details={"events": int(r.events), "source_kinds": r.kinds},
+                details={"events": int(r.events), "samples": int(r.samples), "presence_only_events": presence,
+                         "source_kinds": r.kinds},
             ))
     enc = m.encounters
     if enc.empty:

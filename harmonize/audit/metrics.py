@@ -13,19 +13,19 @@ Conventions shared by all metrics:
 - an event is a *sample* (``effort_bearing``) when it has at least one row that is not
   presence-only; presence-only events count as encounters, not as samples;
 - effort events (fishing) whose value rests on fewer than ``min_vessels`` vessels are
-  confidential: their cell is never named (``cell_public`` is null), see
-  :mod:`harmonize.confidentiality`.
+  confidential, and events where a sensitive taxon was recorded are generalised: the cell of
+  neither is ever named (``cell_public`` is null), see :mod:`harmonize.disclosure`.
 """
 
 from __future__ import annotations
 
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 
 import duckdb
 import pandas as pd
 
 from harmonize.colocate import FIXED_LAYER_SQL, match_sql
-from harmonize.confidentiality import suppression_sql
+from harmonize.disclosure import Disclosure
 
 DUPLICATE_FLAG = "probable_duplicate"
 #: The pseudo source kind of rows that pool every biological source.
@@ -51,6 +51,8 @@ class Metrics:
     cell_maps: pd.DataFrame
     suppressed: pd.DataFrame
     n_domain_cells: int
+    #: Incomplete seasons at each source's data end (:mod:`harmonize.audit.periods`).
+    periods: pd.DataFrame = field(default_factory=pd.DataFrame)
 
 
 def _year_filter(max_year: int | None) -> str:
@@ -58,8 +60,12 @@ def _year_filter(max_year: int | None) -> str:
 
 
 def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame,
-                      min_vessels: int, max_year: int | None = None, events_table: str | None = None) -> None:
-    """Create the temporary table ``audit_cells``: events counted per tag combination and cell.
+                      min_vessels: int, max_year: int | None = None, events_table: str | None = None,
+                      rules: Disclosure | None = None) -> None:
+    """Create the temporary table ``audit_cells``: public events counted per tag combination and cell.
+
+    Confidential fishing events are left out of ``audit_cells`` (they are in no count of the
+    audit); ``audit_cells_all`` keeps them for the totals of :func:`suppressed`.
 
     One pass over the observations reduces them to one row per event (grouped on a 64-bit
     hash of source id and event id, far cheaper than the two strings: a collision, odds
@@ -83,11 +89,15 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
         provider_type, season_year, season, depth_layer, cell_id, stratum, effort_bearing,
         biological, n_vessels), computed elsewhere by the same rules (the Dask engine,
         :mod:`harmonize.engines.dask_engine`); None computes it here.
+    rules
+        The disclosure rules (default: ``min_vessels`` and no sensitive taxa); the cells of
+        confidential and of sensitive events are not named.
     """
+    rules = rules or Disclosure(min_vessels=int(min_vessels))
     con.register("_audit_domain_cells", domain_cells[["cell_id"]])
     con.execute("CREATE OR REPLACE TEMP TABLE audit_domain_cells AS SELECT DISTINCT cell_id FROM _audit_domain_cells")
     con.unregister("_audit_domain_cells")
-    confidential = f"(n_vessels IS NOT NULL AND n_vessels < {int(min_vessels)})"
+    confidential = rules.confidential_sql()
     ev_sql = f"""
             SELECT hash(source_id, event_id) AS event_key,
                    any_value(source_id) AS source_id, any_value(source_kind) AS source_kind,
@@ -97,7 +107,9 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
                    any_value(cell_id) AS cell_id, any_value(stratum) AS stratum,
                    bool_or(quantity <> 'presence') AS effort_bearing,
                    bool_or(variable_kind = 'taxon') AS biological,
-                   min(n_vessels) AS n_vessels
+                   min(n_vessels) AS n_vessels, bool_or({rules.sensitive_present_sql()}) AS sensitive,
+                   any_value(effort) AS effort, any_value(effort_unit) AS effort_unit,
+                   max(event_start) AS event_start
             FROM observations
             WHERE {_KEPT}{_year_filter(max_year)}
             GROUP BY event_key"""
@@ -105,25 +117,30 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
         ev_sql = f"""
             SELECT source_id, source_kind, protocol, provider_type, CAST(season_year AS INTEGER) AS season_year,
                    season, depth_layer, cell_id, stratum, effort_bearing, biological,
-                   CAST(n_vessels AS INTEGER) AS n_vessels
+                   CAST(n_vessels AS INTEGER) AS n_vessels, FALSE AS sensitive,
+                   CAST(NULL AS DOUBLE) AS effort, CAST(NULL AS VARCHAR) AS effort_unit,
+                   CAST(NULL AS TIMESTAMPTZ) AS event_start
             FROM {events_table}"""
     con.execute(
         f"""
-        CREATE OR REPLACE TEMP TABLE audit_cells AS
+        CREATE OR REPLACE TEMP TABLE audit_cells_all AS
         WITH ev AS ({ev_sql}
         ),
         tagged AS (
             SELECT ev.*, {confidential} AS confidential,
-                   {suppression_sql(min_vessels, 'ev.cell_id')} AS cell_public,
+                   CASE WHEN {confidential} OR ev.sensitive THEN NULL ELSE ev.cell_id END AS cell_public,
                    d.cell_id IS NOT NULL AS in_domain
             FROM ev LEFT JOIN audit_domain_cells d ON d.cell_id = ev.cell_id
         )
         SELECT source_id, source_kind, protocol, provider_type, season_year, season, depth_layer, cell_id,
-               stratum, effort_bearing, biological, confidential, cell_public, in_domain,
-               count(*) AS n
+               stratum, effort_bearing, biological, confidential, cell_public, in_domain, effort_unit,
+               count(*) AS n, sum(effort) AS effort_total, max(event_start) AS last_start
         FROM tagged GROUP BY ALL
         """
     )
+    # a confidential fishing row is withheld whole (harmonize.disclosure): it is in no count of
+    # the audit, by period or otherwise; only the totals of :func:`suppressed` mention it
+    con.execute("CREATE OR REPLACE TEMP TABLE audit_cells AS SELECT * FROM audit_cells_all WHERE NOT confidential")
 
 
 def extent(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
@@ -224,9 +241,10 @@ def source_years(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
 
 
 def bio_providers(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
-    """Biological events (samples and presence-only) per season x layer x provider type x kind."""
+    """Biological events (samples and presence-only; ``samples`` the first) per season x layer x provider x kind."""
     return con.execute(
         """SELECT season, depth_layer, provider_type, source_kind, sum(n)::BIGINT AS events,
+                  coalesce(sum(n) FILTER (WHERE effort_bearing), 0)::BIGINT AS samples,
                   count(DISTINCT season_year) AS "years"
            FROM audit_cells WHERE biological GROUP BY ALL ORDER BY ALL"""
     ).df()
@@ -332,10 +350,16 @@ def comparisons(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> 
 
 
 def cell_maps(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
-    """Samples per source kind x season_year x (public) grid cell, for the maps."""
+    """Samples and presence-only events per source kind x season_year x (public) domain cell, for the maps.
+
+    Cells outside the domain are never listed; ``events`` counts samples, ``presence_only_events``
+    events without effort (a cell with only those is hatched on the maps).
+    """
     return con.execute(
-        """SELECT source_kind, season_year, cell_public AS cell_id, sum(n)::BIGINT AS events
-           FROM audit_cells WHERE effort_bearing AND cell_public IS NOT NULL AND season_year IS NOT NULL
+        """SELECT source_kind, season_year, cell_public AS cell_id,
+                  coalesce(sum(n) FILTER (WHERE effort_bearing), 0)::BIGINT AS events,
+                  coalesce(sum(n) FILTER (WHERE NOT effort_bearing), 0)::BIGINT AS presence_only_events
+           FROM audit_cells WHERE in_domain AND cell_public IS NOT NULL AND season_year IS NOT NULL
            GROUP BY ALL ORDER BY ALL"""
     ).df()
 
@@ -346,7 +370,7 @@ def suppressed(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
         """WITH c AS (SELECT source_kind, season_year, cell_id,
                              bool_and(confidential) AS all_confidential,
                              coalesce(sum(n) FILTER (WHERE confidential), 0) AS n_confidential
-                      FROM audit_cells WHERE cell_id IS NOT NULL GROUP BY ALL)
+                      FROM audit_cells_all WHERE cell_id IS NOT NULL GROUP BY ALL)
            SELECT source_kind, count(*) FILTER (WHERE all_confidential) AS cell_years_suppressed,
                   count(DISTINCT cell_id) FILTER (WHERE all_confidential) AS cells_suppressed,
                   sum(n_confidential)::BIGINT AS events_suppressed
@@ -355,7 +379,7 @@ def suppressed(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
 
 
 def compute(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame, min_vessels: int,
-            max_year: int | None = None) -> Metrics:
+            max_year: int | None = None, rules: Disclosure | None = None) -> Metrics:
     """All metrics of one audit.
 
     Parameters
@@ -368,8 +392,10 @@ def compute(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame, min_vess
         The confidentiality threshold for effort cells.
     max_year
         Only season years up to this one (the annual audit); None for all.
+    rules
+        The disclosure rules (:mod:`harmonize.disclosure`); default ``min_vessels`` only.
     """
-    build_event_table(con, domain_cells, min_vessels, max_year)
+    build_event_table(con, domain_cells, min_vessels, max_year, rules=rules)
     n_cells = len(domain_cells)
     return Metrics(
         extent=extent(con),

@@ -21,7 +21,10 @@ from harmonize.audit.findings import (
     tolerances,
 )
 from harmonize.audit.metrics import Metrics, compute
+from harmonize.audit.periods import incomplete_keys, incomplete_periods, last_samples
+from harmonize.audit.ranking import FindingGroup, group_findings
 from harmonize.audit.readiness import ModelReadiness, model_readiness, readiness_findings
+from harmonize.audit.received import Received, received
 from harmonize.audit.since import (
     AUDIT_FORMAT,
     AUDIT_SCHEMA_VERSION,
@@ -33,11 +36,12 @@ from harmonize.audit.since import (
     store_basis,
 )
 from harmonize.contract import CONTRACT_VERSION
+from harmonize.disclosure import Disclosure
 from harmonize.engines import EngineChoice, check_engine, current_engine
 from harmonize.errors import HarmonizeError
 from harmonize.store import Store
 from harmonize.study import Study
-from harmonize.tagging import Grid
+from harmonize.tagging import Grid, assign_strata
 
 #: Shown in the report and the JSON: what this audit is and is not.
 CAUTION = (
@@ -77,6 +81,8 @@ class AuditResult:
     #: A sampling plan to show in the report (:func:`harmonize.audit.plan.plan_samples`), if set.
     plan: Any = None
     readiness: ModelReadiness | None = None
+    #: What the store received, from where, and the effort totals (None: not computed).
+    received: Received | None = None
 
     @property
     def extent(self) -> pd.DataFrame:
@@ -94,6 +100,17 @@ class AuditResult:
         """True when a finding with one of ``codes`` exists."""
         wanted = set(codes)
         return any(f.code in wanted for f in self.findings)
+
+    def groups(self) -> list[FindingGroup]:
+        """The findings grouped by (code, source kind, layer) and ranked by what they put at risk."""
+        cells = self.domain_cells
+        n = max(len(cells), 1)
+        shares = (cells["stratum"].dropna().value_counts() / n).to_dict() if "stratum" in cells else {}
+        layers = [x for x in self.settings.get("depth_layers", []) if x != "integrated"]
+        enc = self.metrics.encounters
+        n_taxa = int(enc["variable"].nunique()) if len(enc) else 1
+        return group_findings(self.findings, len(self.settings.get("seasons", {})) or 1, len(layers) or 1,
+                              n_taxa, shares)
 
     def counts(self) -> dict[str, int]:
         """Number of findings per severity."""
@@ -122,13 +139,22 @@ class AuditResult:
             "generated_at": self.generated_at,
             "extent": _records(ext, extent_cols + ["first_year", "last_year", "presence_only_events"]),
             "coverage": _records(cov, coverage_cols + ["strata_sampled", "cells_suppressed",
-                                                      "presence_only_events", "domain_cells"]),
+                                                      "presence_only_events", "domain_cells", "complete"]),
+            "incomplete_periods": _records(self.metrics.periods, list(self.metrics.periods.columns)),
             "findings": [{**f.to_dict(), "key": finding_key(f)} for f in self.findings],
+            "finding_groups": [dict(g.to_dict(), rank=i + 1) for i, g in enumerate(self.groups())],
             "audited_year": self.year,
             "settings": self.settings,
             "confidentiality": self.suppression(),
             "source_comparisons": _records(self.metrics.comparisons, list(self.metrics.comparisons.columns)),
             "model_readiness": self.readiness.to_json_dict() if self.readiness is not None else None,
+            **({"received": _records(self.received.by_source, list(self.received.by_source.columns)),
+                "quarantine_reasons": _records(self.received.reasons, list(self.received.reasons.columns)),
+                "effort_totals": _records(self.received.effort, list(self.received.effort.columns)),
+                "ingests": [{**r, "files": list(r["files"] or [])} for r in
+                            _records(self.received.ingests.astype({"started_at": str}),
+                                     list(self.received.ingests.columns))]}
+               if self.received is not None else {}),
             "caution": CAUTION,
             "tool_version": __version__,
             "contract_version": CONTRACT_VERSION,
@@ -166,6 +192,8 @@ def _records(frame: pd.DataFrame, columns: Sequence[str]) -> list[dict[str, Any]
 
 
 def _value(v: Any) -> Any:
+    if isinstance(v, np.ndarray):
+        v = v.tolist()
     if v is None or (not isinstance(v, str | list) and pd.isna(v)):
         return None
     if isinstance(v, np.generic):
@@ -174,8 +202,10 @@ def _value(v: Any) -> Any:
 
 
 def domain_cells(study: Study) -> pd.DataFrame:
-    """The study's grid cells whose centre lies in the domain (cell_id, ix, iy, lon, lat)."""
-    return Grid(study.crs, study.cell_size_km).cells_covering(study.domain)
+    """The study's grid cells whose centre lies in the domain (cell_id, ix, iy, lon, lat, stratum)."""
+    cells = Grid(study.crs, study.cell_size_km).cells_covering(study.domain)
+    cells["stratum"] = assign_strata(study.strata, cells["lon"].to_numpy(), cells["lat"].to_numpy())
+    return cells
 
 
 def audit(study: Study, year: int | None = None, engine: str | None = None,
@@ -230,17 +260,28 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
             metrics = audit_metrics(con, store._live_paths(con), cells, study.min_vessels, year,
                                     scheduler or choice.scheduler)
         else:
-            metrics = compute(con, cells, study.min_vessels, year)
+            metrics = compute(con, cells, study.min_vessels, year, Disclosure.for_study(study))
+        metrics.periods = incomplete_periods(last_samples(con, year), study.seasons)
+        accounts = received(con, year)
+        incomplete = incomplete_keys(metrics.periods)
+        metrics.coverage["complete"] = [
+            (k, int(y), s) not in incomplete for k, y, s in
+            zip(metrics.coverage["source_kind"], metrics.coverage["season_year"], metrics.coverage["season"],
+                strict=True)]
         readiness = model_readiness(con, study, year)
         basis = store_basis(con, len(cells), year)
+        # incomplete seasons are known before the findings, which leave them out of drops and gaps
         findings = sort_findings(all_findings(metrics, study, year) + readiness_findings(readiness))
         compared = None if previous is None else compare(previous, basis, findings, con, store.directory)
     settings = {
         "min_events": study.audit.min_events, "coverage_drop": study.audit.coverage_drop,
         "min_encounters": study.audit.min_encounters, "min_vessels": study.min_vessels,
+        "generalise_deg": study.generalise_deg,
         "cell_size_km": study.cell_size_km, "crs": study.crs, "domain_cells": len(cells),
         "seasons": {k: list(v) for k, v in study.seasons.items()},
         "depth_layers": [layer.name for layer in study.depth_layers] + ["near_bottom", "integrated"],
+        "depth_layer_bounds": {layer.name: [layer.top_m, layer.bottom_m] for layer in study.depth_layers},
+        "near_bottom_m": study.near_bottom_m,
         "tolerances": tolerances(study),
     }
     return AuditResult(
@@ -254,6 +295,7 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
         basis=basis,
         since=compared,
         readiness=readiness,
+        received=accounts,
     )
 
 

@@ -18,10 +18,11 @@ document (``eml.xml``, Ecological Metadata Language 2.2.0). What goes where:
   record id(s). Rows flagged ``probable_duplicate`` are left out.
 - Extended Measurement or Fact (row type ``http://rs.iobis.org/obis/terms/
   ExtendedMeasurementOrFact``): counts, biomass, densities (value / effort), physical values
-  measured at the event and fishing hours. Fishing hours resting on fewer than the study's
-  ``min_vessels`` vessels are withheld (informationWithheld says so on the event).
-- Sensitive taxa (``sensitive = true`` in taxa.csv): an event where one was recorded present
-  gets coordinates rounded to ``generalise_deg`` degrees, no cell id, and
+  measured at the event and fishing hours.
+- Disclosure (:mod:`harmonize.disclosure`, the same gate as every output): fishing-effort
+  cell-periods resting on fewer than the study's ``min_vessels`` vessels are not in the
+  archive at all (no Event row, no measurement); an event where a sensitive taxon was recorded
+  present has coordinates rounded to the study's ``generalise_deg``, no cell id, and
   dataGeneralizations / informationWithheld filled (Chapman 2020, "Current best practices
   for generalizing sensitive species occurrence data", GBIF, doi 10.15468/doc-5jp4-5g10).
 
@@ -46,6 +47,8 @@ from xml.etree import ElementTree as ET
 import defusedxml.ElementTree as SafeET
 import pandas as pd
 
+from harmonize.disclosure import Disclosure
+from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import CAUTION, ExportResult, provenance
 from harmonize.export.safe_csv import neutralise_sql
 from harmonize.export.selection import (
@@ -107,17 +110,10 @@ def _case(column: str, mapping: dict[str, str], default: str = "NULL") -> str:
     return f"CASE {column} {whens} ELSE {default} END"
 
 
-def _event_columns(generalise_deg: float, min_vessels: int) -> list[Column]:
-    digits = max(0, -math.floor(math.log10(generalise_deg)) + 1) if generalise_deg < 1 else 0
+def _event_columns(generalise_deg: float) -> list[Column]:
     p = repr(float(generalise_deg))
-
-    def rounded(col: str) -> str:
-        return f"CASE WHEN sensitive THEN round(round({col} / {p}) * {p}, {digits}) ELSE {col} END"
-
     effort_text = (f"CASE WHEN effort IS NOT NULL THEN {_case('source_kind', EFFORT_WORDS, sql_text('sampling effort'))}"
                    f" || ': ' || CAST(round(effort, 6) AS VARCHAR) || ' ' || effort_unit END")
-    withheld = (f"concat_ws('; ', CASE WHEN sensitive THEN 'precise coordinates and grid cell withheld' END, "
-                f"CASE WHEN suppressed THEN 'fishing values withheld: fewer than {int(min_vessels)} vessels contribute' END)")
     return [
         Column("eventID", _clean(_event_key())),
         Column("datasetName", _clean("dataset_name")),
@@ -130,20 +126,18 @@ def _event_columns(generalise_deg: float, min_vessels: int) -> list[Column]:
         Column("year", "year(event_start)", text=False),
         Column("month", "month(event_start)", text=False),
         Column("day", "day(event_start)", text=False),
-        Column("decimalLatitude", rounded("lat"), text=False),
-        Column("decimalLongitude", rounded("lon"), text=False),
+        Column("decimalLatitude", "lat", text=False),
+        Column("decimalLongitude", "lon", text=False),
         Column("geodeticDatum", "'EPSG:4326'"),
         Column("coordinatePrecision", f"CASE WHEN sensitive THEN {p} END", text=False),
         Column("minimumDepthInMeters", "depth_min_m", text=False),
         Column("maximumDepthInMeters", "depth_max_m", text=False),
         Column("locality", _clean("stratum")),
-        Column("locationID", _clean("CASE WHEN sensitive THEN NULL ELSE cell_id END")),
+        Column("locationID", _clean("cell_id")),
         Column("eventRemarks", _clean("concat_ws('; ', 'season ' || season || ' ' || season_year, "
                                       "'depth layer ' || depth_layer, 'source kind ' || source_kind)")),
-        Column("dataGeneralizations", _clean(
-            f"CASE WHEN sensitive THEN 'coordinates rounded to {generalise_deg:g} degree because a sensitive "
-            f"taxon was recorded at this event' END")),
-        Column("informationWithheld", _clean(f"nullif({withheld}, '')")),
+        Column("dataGeneralizations", _clean("data_generalizations")),
+        Column("informationWithheld", _clean("CASE WHEN sensitive THEN 'precise coordinates and grid cell withheld' END")),
     ]
 
 
@@ -193,9 +187,6 @@ def _select(columns: Sequence[Column]) -> str:
 
 
 def _events_sql(study: Study, generalise_deg: float) -> str:
-    sensitive = study.taxa.loc[study.taxa["sensitive"].astype(bool), "taxon"].tolist()
-    sens_cond = (f"variable IN ({', '.join(sql_text(t) for t in sensitive)}) "
-                 f"AND (value > 0 OR quantity = 'presence') AND NOT {duplicate_sql()}") if sensitive else "FALSE"
     kinds = ", ".join(sql_text(k) for k in (*SAMPLE_KINDS, "effort"))
     sampled = "variable_kind = 'taxon' AND quantity IN ('count', 'biomass')"
     return f"""
@@ -208,11 +199,11 @@ def _events_sql(study: Study, generalise_deg: float) -> str:
                    any_value(depth_min_m) AS depth_min_m, any_value(depth_max_m) AS depth_max_m,
                    max(effort) FILTER (WHERE {sampled}) AS effort,
                    any_value(effort_unit) FILTER (WHERE {sampled} AND effort IS NOT NULL) AS effort_unit,
-                   bool_or(coalesce(list_contains(flags, 'suppressed_confidential'), FALSE)) AS suppressed,
-                   bool_or({sens_cond}) AS sensitive
+                   any_value(data_generalizations) AS data_generalizations,
+                   bool_or(data_generalizations IS NOT NULL) AS sensitive
             FROM {BASE_VIEW} WHERE source_kind IN ({kinds})
             GROUP BY source_id, event_id)
-        SELECT {_select(_event_columns(generalise_deg, study.min_vessels))}
+        SELECT {_select(_event_columns(generalise_deg))}
         FROM ev, (SELECT {sql_text(study.name)} AS dataset_name)
         ORDER BY source_id, event_start, event_id"""
 
@@ -281,8 +272,9 @@ def _emof_sql() -> str:
         )"""
 
 
+@all_or_nothing(SUFFIXES)
 def export_dwca(study: Study, out: str | Path, filters: ExportFilters | None = None,
-                generalise_deg: float = 0.1) -> ExportResult:
+                generalise_deg: float | None = None, disclosure: Disclosure | None = None) -> ExportResult:
     """Write a Darwin Core Archive (zip) to ``out``; see the module docstring for what it holds.
 
     Parameters
@@ -295,15 +287,17 @@ def export_dwca(study: Study, out: str | Path, filters: ExportFilters | None = N
         Which observation rows.
     generalise_deg
         Rounding of the coordinates of events with a sensitive taxon, in degrees (Chapman
-        2020 uses 1, 0.1, 0.01 or 0.001 by sensitivity; 0.1 degree is about 11 km).
+        2020 uses 1, 0.1, 0.01 or 0.001 by sensitivity; 0.1 degree is about 11 km); default
+        the study's ``[confidentiality] generalise_deg``. Ignored when ``disclosure`` is given.
+    disclosure
+        The disclosure rules (default: the study's; see :mod:`harmonize.disclosure`).
     """
-    if not 0 < generalise_deg <= 1:
-        from harmonize.errors import HarmonizeError
-
-        raise HarmonizeError(f"generalise_deg must be above 0 and at most 1 degree, got {generalise_deg}")
+    if disclosure is None:
+        disclosure = Disclosure.for_study(study, generalise_deg=generalise_deg)
+    generalise_deg = disclosure.generalise_deg
     path = prepare_target(out, SUFFIXES)
     filters = filters or ExportFilters()
-    with open_selection(study, filters) as (con, counts), \
+    with open_selection(study, filters, disclosure) as (con, counts), \
             tempfile.TemporaryDirectory(dir=path.parent, prefix=".dwca-") as tmp:
         folder = Path(tmp)
         con.register("_dwca_taxon_ids", study.taxa[["taxon", "taxon_id"]])
@@ -321,16 +315,13 @@ def export_dwca(study: Study, out: str | Path, filters: ExportFilters | None = N
         notes = [
             "gridded model and satellite fields are not in the archive (they are not biodiversity events)",
             f"{facts['occurrence_rows_probable_duplicate']} taxon rows flagged probable_duplicate were left out",
-            f"{facts['events_generalised']} events with a sensitive taxon have coordinates rounded to "
-            f"{generalise_deg:g} degree (Chapman 2020)",
-            f"{facts['fishing_values_withheld']} fishing values resting on fewer than {study.min_vessels} "
-            "vessels were withheld",
             "individualCount is the number of individuals counted, summed over behaviours (e.g. seabirds on the "
             "water and in flight); for a count of a split subsample it is the number counted, and the count raised "
             "to the whole sample (count / subsample fraction) and the fraction are measurements of the occurrence",
             "catalogNumber holds the provider's own record id(s) where the provider gave one",
             "set a licence, creators and contacts in eml.xml before publishing",
         ]
+        facts["fishing_values_withheld"] = counts["disclosure"]["effort_rows_withheld"]
         options = {"generalise_deg": generalise_deg, "files": {FILES[k]: v for k, v in written.items()}, **facts}
         meta = provenance(con, study, "dwca", filters, counts, options, notes)
         (folder / "meta.xml").write_bytes(meta_xml())
@@ -344,12 +335,10 @@ def export_dwca(study: Study, out: str | Path, filters: ExportFilters | None = N
 
 
 def _facts(con: Any, folder: Path) -> dict[str, int]:
-    """Counts for the metadata: twins left out, fishing values withheld (one scan of the
-    selection), events generalised and absences (read back from the written files)."""
+    """Counts for the metadata: twins left out (one scan of the selection), events generalised
+    and absences (read back from the written files)."""
     row = con.execute(
-        f"""SELECT count(*) FILTER (WHERE variable_kind = 'taxon' AND {duplicate_sql()}),
-                   count(*) FILTER (WHERE source_kind = 'effort' AND value IS NULL
-                                    AND list_contains(flags, 'suppressed_confidential'))
+        f"""SELECT count(*) FILTER (WHERE variable_kind = 'taxon' AND {duplicate_sql()})
             FROM {BASE_VIEW}""").fetchall()[0]
 
     def read(name: str) -> str:
@@ -360,7 +349,7 @@ def _facts(con: Any, folder: Path) -> dict[str, int]:
         f"SELECT count(*) FROM {read('event')} WHERE coalesce(\"dataGeneralizations\", '') <> ''").fetchall()[0][0]
     absent = con.execute(
         f"SELECT count(*) FROM {read('occurrence')} WHERE \"occurrenceStatus\" = 'absent'").fetchall()[0][0]
-    return {"occurrence_rows_probable_duplicate": int(row[0]), "fishing_values_withheld": int(row[1]),
+    return {"occurrence_rows_probable_duplicate": int(row[0]),
             "events_generalised": int(generalised), "occurrences_absent": int(absent)}
 
 
@@ -368,7 +357,7 @@ def meta_xml() -> bytes:
     """The archive descriptor: one Event core with ``id``, two extensions with ``coreid``."""
     ET.register_namespace("", TEXT_NS)
     root = ET.Element(f"{{{TEXT_NS}}}archive", {"metadata": "eml.xml"})
-    for name, columns in (("event", _event_columns(0.1, 3)), ("occurrence", _OCCURRENCE_COLUMNS),
+    for name, columns in (("event", _event_columns(0.1)), ("occurrence", _OCCURRENCE_COLUMNS),
                           ("emof", _EMOF_COLUMNS)):
         tag = "core" if name == "event" else "extension"
         el = ET.SubElement(root, f"{{{TEXT_NS}}}{tag}", {

@@ -2,12 +2,13 @@
 
 Layers, all in WGS84 (EPSG:4326):
 
-- ``events`` (points): one per event at its representative point, with time, season, layer,
-  cell, stratum and effort; no taxon data, so no sensitive taxon can be located from it.
-- ``cells`` (polygons): the study grid cells holding events, outlined in lon/lat with
+- ``events`` (points): one per public event at its representative point, with time, season,
+  layer, cell, stratum, effort and ``data_generalizations``. As everywhere
+  (:mod:`harmonize.disclosure`), withheld fishing-effort cell-periods are absent and events
+  with a sensitive taxon sit at their rounded position without a cell.
+- ``cells`` (polygons): the study grid cells holding public events, outlined in lon/lat with
   densified edges, with coverage attributes: events in all and per source kind, season years
-  sampled, first and last season year, and total fishing hours (blank where any contributing
-  value rests on fewer than ``min_vessels`` vessels).
+  sampled, first and last season year, and total public fishing hours.
 - ``cell_coverage`` (attribute table): events per cell x season_year x season x source kind.
 - ``export_metadata`` (attribute table): key/value provenance, ``provenance`` holding JSON.
 """
@@ -22,7 +23,8 @@ import pandas as pd
 import pyogrio
 import shapely
 
-from harmonize.confidentiality import SUPPRESSED_FLAG
+from harmonize.disclosure import Disclosure
+from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import ExportResult, provenance
 from harmonize.export.selection import (
     BASE_VIEW,
@@ -49,6 +51,7 @@ def _events(con: object) -> pd.DataFrame:
                    any_value(stratum) AS stratum,
                    max(effort) FILTER (WHERE quantity IN ('count', 'biomass')) AS effort,
                    any_value(effort_unit) FILTER (WHERE quantity IN ('count', 'biomass')) AS effort_unit,
+                   any_value(data_generalizations) AS data_generalizations,
                    any_value(lat) AS lat, any_value(lon) AS lon, count(*) AS n_rows
             FROM {BASE_VIEW} GROUP BY source_id, event_id ORDER BY source_id, event_start, event_id"""
     ).to_arrow_table().to_pandas()
@@ -61,15 +64,12 @@ def _cells(con: object) -> pd.DataFrame:
     per_kind = ", ".join(
         f"count(DISTINCT source_id || chr(31) || event_id) FILTER (WHERE source_kind = {sql_text(k)}) AS events_{k}"
         for k in kinds)
-    suppressed = f"coalesce(list_contains(flags, {sql_text(SUPPRESSED_FLAG)}), FALSE)"
     sql = f"""
         SELECT cell_id, count(DISTINCT source_id || chr(31) || event_id) AS events
                {', ' + per_kind if per_kind else ''},
                count(DISTINCT season_year) AS season_years, min(season_year) AS first_season_year,
                max(season_year) AS last_season_year,
-               CASE WHEN bool_or({suppressed} AND variable = 'fishing_hours') THEN NULL
-                    ELSE sum(value) FILTER (WHERE variable = 'fishing_hours') END AS fishing_hours,
-               count(*) FILTER (WHERE {suppressed}) AS fishing_values_suppressed
+               sum(value) FILTER (WHERE variable = 'fishing_hours') AS fishing_hours
         FROM {BASE_VIEW} WHERE cell_id IS NOT NULL GROUP BY cell_id ORDER BY cell_id"""
     return con.sql(sql).to_arrow_table().to_pandas()  # type: ignore[attr-defined]
 
@@ -98,19 +98,19 @@ def cell_frame(study: Study, cells: pd.DataFrame) -> gpd.GeoDataFrame:
     return gpd.GeoDataFrame(out, geometry=polygons, crs=CRS)
 
 
-def export_gpkg(study: Study, out: str | Path, filters: ExportFilters | None = None) -> ExportResult:
+@all_or_nothing(SUFFIXES)
+def export_gpkg(study: Study, out: str | Path, filters: ExportFilters | None = None,
+                disclosure: Disclosure | None = None) -> ExportResult:
     """Write the GeoPackage ``out`` (overwritten if it exists) with its provenance table."""
     path = prepare_target(out, SUFFIXES)
     filters = filters or ExportFilters()
-    with open_selection(study, filters) as (con, counts):
+    with open_selection(study, filters, disclosure) as (con, counts):
         events = _events(con)
         cells = _cells(con)
         coverage = _coverage(con)
         located = events["lat"].notna() & events["lon"].notna()
         notes = [
-            "the events layer carries no taxon data; sensitive taxa cannot be located from it",
-            f"fishing hours of a cell are blank where any of its values rests on fewer than "
-            f"{study.min_vessels} vessels",
+            "the events layer carries no taxon data",
             f"area_km2 is the nominal cell area in the equal-area study CRS {study.crs}",
         ]
         if (~located).any():
@@ -137,5 +137,7 @@ def _meta_table(meta: dict[str, object]) -> pd.DataFrame:
     rows = [(k, str(meta[k])) for k in keys]
     rows += [("filters", json.dumps(meta["filters"])), ("ingests", json.dumps(meta["ingests"], default=str)),
              ("rows_suppressed_confidential", str(meta["confidentiality"]["rows_suppressed"])),  # type: ignore[index]
+             ("events_generalised", str(meta["confidentiality"].get("events_generalised", 0))),  # type: ignore[attr-defined]
+             ("precise", str(meta["confidentiality"]["precise"]).lower()),  # type: ignore[index]
              ("provenance", json.dumps(meta, default=str))]
     return pd.DataFrame(rows, columns=["key", "value"])

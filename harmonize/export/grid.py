@@ -12,9 +12,10 @@ once per variable; then per group:
 - ``total_value`` and ``mean_value``: for physical measurements and fishing hours.
 
 Densities of different effort units and source kinds are never averaged together. Probable
-twins (``probable_duplicate``) and presence-only records are left out. A group holding any
-confidential fishing value (fewer than ``min_vessels`` vessels) has all its values blanked:
-a sum over the other rows would let a reader work out the hidden one by difference.
+twins (``probable_duplicate``) and presence-only records are left out. The rows are the
+public rows of :mod:`harmonize.disclosure`: withheld fishing-effort rows are in no group
+(nowhere else is a total published that they could be recovered from by difference), and
+events with a sensitive taxon have no cell (their rows group under an empty cell_id).
 """
 
 from __future__ import annotations
@@ -23,7 +24,8 @@ from pathlib import Path
 
 import pandas as pd
 
-from harmonize.confidentiality import SUPPRESSED_FLAG
+from harmonize.disclosure import Disclosure
+from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import ExportResult, kv_metadata_sql, provenance, write_sidecar
 from harmonize.export.safe_csv import copy_safe_csv
 from harmonize.export.selection import (
@@ -32,7 +34,6 @@ from harmonize.export.selection import (
     duplicate_sql,
     open_selection,
     prepare_target,
-    sql_text,
 )
 from harmonize.study import Study
 from harmonize.units import density_unit_sql
@@ -45,57 +46,51 @@ GROUP = ("source_kind", "cell_id", "season_year", "season", "depth_layer", "vari
 def grid_query() -> str:
     """The SQL of the grid table over ``export_base``."""
     group = ", ".join(GROUP)
-    suppressed = f"coalesce(list_contains(flags, {sql_text(SUPPRESSED_FLAG)}), FALSE)"
     per_event = f"""
         SELECT {group}, source_id, event_id,
-               sum(value) AS value, max(effort) AS effort, sum(density) AS density,
-               bool_or({suppressed}) AS suppressed
+               sum(value) AS value, max(effort) AS effort, sum(density) AS density
         FROM {BASE_VIEW}
         WHERE quantity <> 'presence' AND NOT {duplicate_sql()}
         GROUP BY {group}, source_id, event_id"""
-    blank = "CASE WHEN count(*) FILTER (WHERE suppressed) > 0 THEN NULL ELSE {} END"
     return f"""
         WITH per_event AS ({per_event})
         SELECT {group},
                CASE WHEN quantity IN ('count', 'biomass') THEN {density_unit_sql('unit', 'effort_unit')} END
                    AS density_unit,
                count(*) AS events,
-               {blank.format('sum(effort)')} AS total_effort,
-               {blank.format('avg(density)')} AS mean_density,
-               {blank.format("CASE WHEN any_value(quantity) IN ('count', 'biomass') "
-                             "THEN avg(CASE WHEN value = 0 THEN 1.0 WHEN value > 0 THEN 0.0 END) END")} AS share_zero,
-               {blank.format('sum(value)')} AS total_value,
-               {blank.format('avg(value)')} AS mean_value,
-               count(*) FILTER (WHERE suppressed) AS suppressed_events
+               sum(effort) AS total_effort,
+               avg(density) AS mean_density,
+               CASE WHEN any_value(quantity) IN ('count', 'biomass')
+                    THEN avg(CASE WHEN value = 0 THEN 1.0 WHEN value > 0 THEN 0.0 END) END AS share_zero,
+               sum(value) AS total_value,
+               avg(value) AS mean_value
         FROM per_event
         GROUP BY {group}
         ORDER BY source_kind, variable, quantity, season_year, season, depth_layer, cell_id"""
 
 
-def read_grid(study: Study, filters: ExportFilters | None = None) -> pd.DataFrame:
+def read_grid(study: Study, filters: ExportFilters | None = None,
+              disclosure: Disclosure | None = None) -> pd.DataFrame:
     """The grid table as a DataFrame."""
     filters = filters or ExportFilters()
-    with open_selection(study, filters) as (con, _counts):
+    with open_selection(study, filters, disclosure) as (con, _counts):
         return con.sql(grid_query()).to_arrow_table().to_pandas()
 
 
-def export_grid(study: Study, out: str | Path, filters: ExportFilters | None = None) -> ExportResult:
+@all_or_nothing(SUFFIXES)
+def export_grid(study: Study, out: str | Path, filters: ExportFilters | None = None,
+                disclosure: Disclosure | None = None) -> ExportResult:
     """Write the grid table to ``out`` (parquet or CSV by suffix) with its provenance."""
     path = prepare_target(out, SUFFIXES)
     filters = filters or ExportFilters()
-    with open_selection(study, filters) as (con, counts):
-        groups_blanked = con.execute(
-            f"""SELECT count(*) FROM (SELECT DISTINCT {', '.join(GROUP)} FROM {BASE_VIEW}
-                WHERE list_contains(flags, {sql_text(SUPPRESSED_FLAG)}) AND quantity <> 'presence'
-                  AND NOT {duplicate_sql()})""").fetchall()[0][0]
+    with open_selection(study, filters, disclosure) as (con, counts):
         notes = [
             "values of one event are summed over life stages before averaging",
             "densities of different source kinds and effort units are kept in separate rows",
             "presence-only records and rows flagged probable_duplicate are left out",
-            f"{groups_blanked} rows hold a confidential fishing value (fewer than {study.min_vessels} "
-            "vessels) and have all their values blanked",
+            "rows of events with a sensitive taxon are grouped under an empty cell_id (their cell is withheld)",
         ]
-        options = {"cell_size_km": study.cell_size_km, "crs": study.crs, "groups_blanked": int(groups_blanked)}
+        options = {"cell_size_km": study.cell_size_km, "crs": study.crs}
         meta = provenance(con, study, "grid", filters, counts, options, notes)
         files = [path]
         if path.suffix.lower() == ".parquet":

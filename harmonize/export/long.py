@@ -2,7 +2,7 @@
 
 The rows are the store's observations as they are (probable twins keep their
 ``probable_duplicate`` flag rather than being dropped, so the table stays complete), with
-confidential fishing values blanked and ``log_effort = ln(effort)`` added: the offset of a
+the disclosure gate applied (:mod:`harmonize.disclosure`) and ``log_effort = ln(effort)`` added: the offset of a
 count or biomass model, e.g. ``glm(count ~ ... + offset(log_effort), family = poisson)``
 (McCullagh and Nelder 1989, Generalized Linear Models, 2nd ed., section 6.2.3).
 """
@@ -15,7 +15,9 @@ import duckdb
 import pandas as pd
 import pyarrow as pa
 
+from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
+from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import ExportResult, kv_metadata_sql, provenance, write_sidecar
 from harmonize.export.safe_csv import copy_safe_csv
 from harmonize.export.selection import BASE_VIEW, ExportFilters, open_selection, prepare_target
@@ -49,7 +51,8 @@ def to_pandas(table: pa.Table) -> pd.DataFrame:
 
 
 def read_long(study: Study, filters: ExportFilters | None = None, columns: list[str] | None = None,
-              limit: int | None = None, as_: str = "pandas") -> pd.DataFrame | pa.Table | duckdb.DuckDBPyRelation:
+              limit: int | None = None, disclosure: Disclosure | None = None,
+              as_: str = "pandas") -> pd.DataFrame | pa.Table | duckdb.DuckDBPyRelation:
     """The long table as a DataFrame (for notebooks; use :func:`export_long` for big selections).
 
     Parameters
@@ -62,6 +65,8 @@ def read_long(study: Study, filters: ExportFilters | None = None, columns: list[
         Which columns; all observation columns plus ``log_effort`` when None.
     limit
         At most this many rows.
+    disclosure
+        The disclosure rules (default: the study's; see :mod:`harmonize.disclosure`).
     as_
         ``"pandas"`` (a DataFrame with nullable integer columns), ``"arrow"`` (a pyarrow Table)
         or ``"duckdb"`` (a relation on a new in-memory DuckDB connection over that table).
@@ -69,7 +74,7 @@ def read_long(study: Study, filters: ExportFilters | None = None, columns: list[
     if as_ not in READERS:
         raise HarmonizeError(f"as_={as_!r} is not a reader; choose one of {', '.join(READERS)}")
     filters = filters or ExportFilters()
-    with open_selection(study, filters) as (con, _counts):
+    with open_selection(study, filters, disclosure) as (con, _counts):
         table = con.sql(long_query(columns, limit)).to_arrow_table()
     if as_ == "arrow":
         return table
@@ -78,7 +83,9 @@ def read_long(study: Study, filters: ExportFilters | None = None, columns: list[
     return to_pandas(table)
 
 
-def export_long(study: Study, out: str | Path, filters: ExportFilters | None = None) -> ExportResult:
+@all_or_nothing(SUFFIXES)
+def export_long(study: Study, out: str | Path, filters: ExportFilters | None = None,
+                disclosure: Disclosure | None = None) -> ExportResult:
     """Write the long table to ``out``: parquet (zstd) or CSV by the file's suffix.
 
     The parquet file carries its provenance as key-value metadata (key ``harmonize``); a CSV
@@ -89,9 +96,8 @@ def export_long(study: Study, out: str | Path, filters: ExportFilters | None = N
     filters = filters or ExportFilters()
     notes = ["rows flagged probable_duplicate (volunteer twins of another source's record) are kept "
              "with their flag; drop them before summing across sources",
-             "log_effort = ln(effort); null where effort is null (presence-only, no-effort values) "
-             "or suppressed"]
-    with open_selection(study, filters) as (con, counts):
+             "log_effort = ln(effort); null where effort is null (presence-only, no-effort values)"]
+    with open_selection(study, filters, disclosure) as (con, counts):
         meta = provenance(con, study, "long", filters, counts, notes=notes)
         files = [path]
         if path.suffix.lower() == ".parquet":

@@ -20,7 +20,9 @@ import pyarrow as pa
 
 from harmonize import __version__
 from harmonize.contract import CONTRACT_VERSION
+from harmonize.disclosure import Disclosure
 from harmonize.export.selection import ExportFilters, sql_text
+from harmonize.files import public_name
 from harmonize.study import Study
 
 PARQUET_KEY = "harmonize"
@@ -79,7 +81,9 @@ def provenance(con: duckdb.DuckDBPyConnection, study: Study, fmt: str, filters: 
     ``counts`` comes from :func:`harmonize.export.selection.base_counts` (its ``ingest_ids``
     become the ``ingests`` records).
     """
-    numbers = {k: v for k, v in counts.items() if k != "ingest_ids"}
+    numbers = {k: v for k, v in counts.items() if k not in ("ingest_ids", "rules", "disclosure")}
+    rules = counts.get("rules") or Disclosure.for_study(study)
+    withheld = dict(counts.get("disclosure") or {})
     return {
         "generated_by": f"harmonize {__version__}",
         "tool_version": __version__,
@@ -89,11 +93,10 @@ def provenance(con: duckdb.DuckDBPyConnection, study: Study, fmt: str, filters: 
         "format": fmt,
         "filters": filters.as_dict(),
         "options": dict(options or {}),
-        "confidentiality": {"min_vessels": study.min_vessels,
-                            "rows_suppressed": counts.get("rows_suppressed_confidential", 0)},
+        "confidentiality": rules.metadata(withheld),
         "counts": numbers,
         "ingests": ingests_used(con, list(counts.get("ingest_ids", []))),
-        "notes": list(notes or []),
+        "notes": [*rules.notes(withheld), *(notes or [])],
         "caution": CAUTION,
     }
 
@@ -167,7 +170,7 @@ def write_sidecar(path: Path, meta: dict[str, Any], columns: list[tuple[str, str
     """
     doc: dict[str, Any] = {
         "@context": "http://www.w3.org/ns/csvw",
-        "url": path.name,
+        "url": public_name(path),  # the name it has once the export is complete
         "dc:title": f"{meta.get('study', '')}: harmonize {meta.get('format', '')} export",
         "dc:provenance": meta,
     }

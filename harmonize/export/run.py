@@ -6,6 +6,7 @@ from collections.abc import Callable
 from pathlib import Path
 from typing import Any
 
+from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
 from harmonize.export.dwca import export_dwca
 from harmonize.export.gpkg import export_gpkg
@@ -33,18 +34,24 @@ DEMO_FILES = {
 }
 
 
-def export(study: Study, fmt: str, out: str | Path, filters: ExportFilters | None = None,
+def export(study: Study, fmt: str, out: str | Path, filters: ExportFilters | None = None, *,
+           precise: bool = False, fishing_aggregate: bool = False, generalise_deg: float | None = None,
            **options: Any) -> ExportResult:
     """Write the export ``fmt`` (long, wide, grid, gpkg, dwca) of the study's store to ``out``.
 
-    ``options`` go to the format's function (e.g. ``quantity="biomass"`` for wide,
-    ``generalise_deg=0.01`` for dwca).
+    Every format passes the disclosure gate (:mod:`harmonize.disclosure`): ``precise`` turns
+    it off (internal use only; logged and recorded in the provenance), ``fishing_aggregate``
+    sums effort to coarser cells or periods until the rule of three holds, ``generalise_deg``
+    overrides the study's rounding of events with a sensitive taxon. ``options`` go to the
+    format's function (e.g. ``quantity="biomass"`` for wide).
     """
     try:
         fn = EXPORTERS[fmt]
     except KeyError:
         raise HarmonizeError(f"unknown export format {fmt!r}; choose from {', '.join(EXPORTERS)}") from None
-    return fn(study, out, filters or ExportFilters(), **options)
+    rules = Disclosure.for_study(study, precise=precise, fishing_aggregate=fishing_aggregate,
+                                 generalise_deg=generalise_deg)
+    return fn(study, out, filters or ExportFilters(), disclosure=rules, **options)
 
 
 def demo_outputs(study: Study, out_dir: Path) -> dict[str, Path]:

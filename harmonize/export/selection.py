@@ -1,17 +1,16 @@
-"""Which observation rows an export takes: filters, confidentiality and the shared base view.
+"""Which observation rows an export takes: filters, the disclosure gate and the shared base view.
 
-Every export reads the store through one temporary DuckDB view, ``export_base``: the
-``observations`` view restricted by the user's filters, with the values of fishing-effort
-rows that rest on fewer than ``study.min_vessels`` vessels blanked (the confidentiality rule,
-:mod:`harmonize.confidentiality`), and the offset ``log_effort = ln(effort)`` added. The
-heavy lifting stays in DuckDB so that exports scale with the store, not with memory.
+Every export reads the store through one temporary DuckDB view, ``export_base``: the public
+rows of the ``observations`` view (:mod:`harmonize.disclosure`: fishing-effort rows resting
+on fewer than ``min_vessels`` vessels withheld whole, events with a sensitive taxon
+generalised) restricted by the user's filters, with the offset ``log_effort = ln(effort)``
+added. The heavy lifting stays in DuckDB so that exports scale with the store, not with memory.
 """
 
 from __future__ import annotations
 
 import os
 import re
-import shutil
 import tempfile
 import uuid
 from collections.abc import Iterable, Iterator, Sequence
@@ -23,7 +22,7 @@ from typing import Any
 import duckdb
 
 from harmonize import parts
-from harmonize.confidentiality import SUPPRESSED_FLAG, suppression_sql
+from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
 from harmonize.store import Store
 from harmonize.study import Study
@@ -172,65 +171,61 @@ def _names(values: Iterable[str] | str | None) -> tuple[str, ...]:
     return tuple(dict.fromkeys(v.strip() for v in values if v and v.strip()))
 
 
-def confidential_sql(min_vessels: int) -> str:
-    """SQL condition: the row's value rests on fewer than ``min_vessels`` vessels."""
-    return f"(n_vessels IS NOT NULL AND n_vessels < {int(min_vessels)})"
-
-
 def duplicate_sql() -> str:
     """SQL condition: the row is a probable twin of another source's record."""
     return f"coalesce(list_contains(flags, {sql_text(DUPLICATE_FLAG)}), FALSE)"
 
 
-def define_base(con: duckdb.DuckDBPyConnection, filters: ExportFilters, min_vessels: int) -> None:
-    """Create the temporary view ``export_base`` over ``observations``.
+def define_base(con: duckdb.DuckDBPyConnection, filters: ExportFilters, rules: Disclosure) -> None:
+    """Create the temporary view ``export_base`` over the public rows of ``observations``.
 
-    Columns: the contract's observation columns, with value, density and effort blanked and
-    ``suppressed_confidential`` added to flags where the row is confidential, plus
-    ``log_effort`` (ln(effort); null where effort is null, not positive or suppressed).
+    Columns: the contract's observation columns as :meth:`Disclosure.public_sql` gives them
+    (plus ``data_generalizations``), and ``log_effort`` (ln(effort); null where effort is
+    null or not positive).
     """
-    conf = confidential_sql(min_vessels)
     con.execute(
         f"""CREATE OR REPLACE TEMP VIEW {BASE_VIEW} AS
-            SELECT * REPLACE (
-                       {suppression_sql(min_vessels, 'value')} AS value,
-                       {suppression_sql(min_vessels, 'density')} AS density,
-                       {suppression_sql(min_vessels, 'effort')} AS effort,
-                       CASE WHEN {conf} THEN list_append(flags, {sql_text(SUPPRESSED_FLAG)}) ELSE flags END AS flags),
-                   CASE WHEN {conf} THEN NULL WHEN effort > 0 THEN ln(effort) END AS log_effort
-            FROM observations WHERE {filters.where_sql()}"""
+            SELECT *, CASE WHEN effort > 0 THEN ln(effort) END AS log_effort
+            FROM ({rules.public_sql(filters.where_sql())})"""
     )
 
 
-def base_counts(con: duckdb.DuckDBPyConnection, filters: ExportFilters, min_vessels: int) -> dict[str, Any]:
-    """Rows selected, suppressed as confidential and flagged as probable twins, in one scan.
+def base_counts(con: duckdb.DuckDBPyConnection, filters: ExportFilters, rules: Disclosure) -> dict[str, Any]:
+    """Rows selected and flagged as probable twins, and what the disclosure gate withheld.
 
-    Also returns ``ingest_ids``: the ingests the selected rows come from.
+    Also returns ``ingest_ids``: the ingests the public rows come from.
     """
     rows = con.execute(
-        f"""SELECT ingest_id, count(*), count(*) FILTER (WHERE {confidential_sql(min_vessels)}),
-                   count(*) FILTER (WHERE {duplicate_sql()})
-            FROM observations WHERE {filters.where_sql()} GROUP BY ingest_id ORDER BY ingest_id"""
+        f"""SELECT ingest_id, count(*), count(*) FILTER (WHERE {duplicate_sql()})
+            FROM {BASE_VIEW} GROUP BY ingest_id ORDER BY ingest_id"""
     ).fetchall()
+    withheld = rules.withheld_counts(con, filters.where_sql())
     # a merged gridded or effort row names one of its ingests: list every one behind it
-    ingest_ids = sorted({r[0] for r in rows} | set(parts.ingests_behind(con, filters.where_sql())))
+    ingest_ids = sorted({r[0] for r in rows if r[0] is not None} | set(parts.ingests_behind(con, filters.where_sql())))
     return {"rows_selected": sum(int(r[1]) for r in rows),
-            "rows_suppressed_confidential": sum(int(r[2]) for r in rows),
-            "rows_probable_duplicate": sum(int(r[3]) for r in rows),
+            "rows_suppressed_confidential": withheld["effort_rows_withheld"],
+            "rows_probable_duplicate": sum(int(r[2]) for r in rows),
+            "disclosure": withheld,
             "ingest_ids": ingest_ids}
 
 
 @contextmanager
-def open_selection(study: Study, filters: ExportFilters) -> Iterator[tuple[duckdb.DuckDBPyConnection, dict[str, Any]]]:
+def open_selection(study: Study, filters: ExportFilters, rules: Disclosure | None = None
+                   ) -> Iterator[tuple[duckdb.DuckDBPyConnection, dict[str, Any]]]:
     """A read-only store connection with ``export_base`` defined, and the selection's counts.
 
-    Raises HarmonizeError when a filter names something that does not exist.
+    ``rules`` are the disclosure rules of the output (default: the study's, never precise);
+    the counts carry them, prepared, under ``"rules"``. Raises HarmonizeError when a filter
+    names something that does not exist.
     """
+    rules = rules or Disclosure.for_study(study)
     with Store(study.store_dir).connect(read_only=True) as con:
         con.execute("SET enable_progress_bar = false")   # the library never prints
         filters.validate(con, list(study.seasons), [d.name for d in study.depth_layers])
-        define_base(con, filters, study.min_vessels)
-        counts = base_counts(con, filters, study.min_vessels)
+        rules = rules.prepare(con, study, filters.where_sql())
+        define_base(con, filters, rules)
+        counts = base_counts(con, filters, rules)
+        counts["rules"] = rules
         if filters.taxon_level or filters.consistent_taxa:
             from harmonize.export.rollup import apply_rollup  # the roll-up reads this module
 
@@ -249,14 +244,15 @@ def bounded_memory(con: duckdb.DuckDBPyConnection, store_dir: Path, memory_limit
     """Give ``con`` a memory limit and a private spill folder inside the store's staging folder.
 
     DuckDB spills its hash tables and sorts to the folder beyond the limit. The folder
-    (``store/staging/export-<id>/``, marked with this process's id so that the store's next
+    (``store/staging/export-<id>/``, locked by this process so that the store's next
     writer removes it should this process die) is deleted afterwards, and the connection's
     settings are reset. Where the store folder cannot be written, a system temporary folder
     is used. Raises HarmonizeError when the limit is not a size DuckDB understands.
     """
     limit = export_memory_limit(memory_limit)
+    store = Store(store_dir)
     try:
-        spill = Store(store_dir).staging_dir(f"export-{uuid.uuid4().hex[:12]}")
+        spill = store.staging_dir(f"export-{uuid.uuid4().hex[:12]}")
     except OSError:
         spill = Path(tempfile.mkdtemp(prefix="harmonize-export-"))
     try:
@@ -274,7 +270,7 @@ def bounded_memory(con: duckdb.DuckDBPyConnection, store_dir: Path, memory_limit
                 con.execute(f"RESET {setting}")
             except duckdb.Error:
                 pass   # the connection is closing anyway
-        shutil.rmtree(spill, ignore_errors=True)
+        store.discard(spill)
 
 
 def prepare_target(out: str | Path, suffixes: Sequence[str]) -> Path:

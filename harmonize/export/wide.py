@@ -41,7 +41,9 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
+from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import (
     PARQUET_KEY,
     ExportResult,
@@ -68,7 +70,7 @@ EVENT_COLUMNS = (
     "source_id", "event_id", "source_kind", "provider_type", "protocol", "event_start", "event_end",
     "year", "season_year", "season", "depth_layer", "lat", "lon", "cell_id", "stratum",
     "depth_min_m", "depth_max_m", "bottom_depth_m", "effort", "effort_unit", "log_effort",
-    "detected_presence_only",
+    "detected_presence_only", "data_generalizations",
 )
 _COVARIATES_VIEW = "export_linked_covariates"
 #: Sample rows of the selection above which the wide table is pivoted in runs (see :func:`wide_runs`).
@@ -161,7 +163,8 @@ def wide_sql(taxa: Sequence[str], physical: Sequence[str], covariate_columns: Se
                any_value(bottom_depth_m) AS bottom_depth_m,
                max(effort) FILTER (WHERE {sampled}) AS effort,
                any_value(effort_unit) FILTER (WHERE {sampled} AND effort IS NOT NULL) AS effort_unit,
-               max(log_effort) FILTER (WHERE {sampled}) AS log_effort
+               max(log_effort) FILTER (WHERE {sampled}) AS log_effort,
+               any_value(data_generalizations) AS data_generalizations
         FROM {BASE_VIEW} WHERE {_samples_sql()} AND ({where}) GROUP BY source_id, event_id"""
     # presence-only taxa from the (few) presence rows alone: a DISTINCT, ordered aggregate
     # over every row of the selection costs more than the rest of the event table
@@ -366,10 +369,10 @@ def _register_covariates(con: Any, covariates: pd.DataFrame | None) -> list[str]
 def read_wide(study: Study, filters: ExportFilters | None = None, quantity: str = "count",
               by_life_stage: bool = False, covariates: pd.DataFrame | None = None,
               link_gridded: bool = True, memory_limit: str | None = None,
-              run_rows: int | None = None) -> pd.DataFrame:
+              run_rows: int | None = None, disclosure: Disclosure | None = None) -> pd.DataFrame:
     """The wide table as a DataFrame; see the module docstring and :func:`export_wide`."""
     filters = filters or ExportFilters()
-    with open_selection(study, filters) as (con, _counts), bounded_memory(con, study.store_dir, memory_limit):
+    with open_selection(study, filters, disclosure) as (con, _counts), bounded_memory(con, study.store_dir, memory_limit):
         covariates, _notes = _resolve_covariates(con, study, covariates, link_gridded)
         extra = _register_covariates(con, covariates)
         taxa, physical = wide_columns(con, quantity, by_life_stage)
@@ -378,10 +381,11 @@ def read_wide(study: Study, filters: ExportFilters | None = None, quantity: str 
         return pa.concat_tables(tables).to_pandas()
 
 
+@all_or_nothing(SUFFIXES)
 def export_wide(study: Study, out: str | Path, filters: ExportFilters | None = None, quantity: str = "count",
                 by_life_stage: bool = False, covariates: pd.DataFrame | None = None,
                 link_gridded: bool = True, memory_limit: str | None = None,
-                run_rows: int | None = None) -> ExportResult:
+                run_rows: int | None = None, disclosure: Disclosure | None = None) -> ExportResult:
     """Write the wide table to ``out`` (parquet or CSV by suffix) with its provenance.
 
     DuckDB works within ``memory_limit`` and spills to a folder inside the store's staging
@@ -412,10 +416,12 @@ def export_wide(study: Study, out: str | Path, filters: ExportFilters | None = N
         the environment variable ``HARMONIZE_EXPORT_MEMORY_LIMIT``, else ``"2GB"``.
     run_rows
         Sample rows per run of the pivot; default ``HARMONIZE_WIDE_RUN_ROWS``, else 5 million.
+    disclosure
+        The disclosure rules (default: the study's; see :mod:`harmonize.disclosure`).
     """
     path = prepare_target(out, SUFFIXES)
     filters = filters or ExportFilters()
-    with open_selection(study, filters) as (con, counts), \
+    with open_selection(study, filters, disclosure) as (con, counts), \
             bounded_memory(con, study.store_dir, memory_limit) as spill:
         notes = []
         covariates, linked_notes = _resolve_covariates(con, study, covariates, link_gridded)

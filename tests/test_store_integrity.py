@@ -69,7 +69,7 @@ def test_the_manifest_records_each_files_sha256_and_size(ingested: Path) -> None
         data = (store.directory / rel).read_bytes()
         assert sha == hashlib.sha256(data).hexdigest()
         assert size == len(data)
-    assert store.store_version() == STORE_VERSION == 3
+    assert store.store_version() == STORE_VERSION >= 3  # checksums since version 3
     assert store.check() == []
 
 

@@ -30,16 +30,18 @@ def demo(tmp_path_factory: pytest.TempPathFactory):  # type: ignore[no-untyped-d
 
 def test_planted_problems_are_the_top_findings(demo) -> None:  # type: ignore[no-untyped-def]
     result, _ = demo
-    top = [(g.severity, g.code, g.source_kind, g.never_sampled) for g in result.groups()[:4]]
+    top = [(g.severity, g.code, g.source_kind, g.never_sampled) for g in result.groups()[:5]]
     # 1: the 2022 trawl survey missed the southern strata (errors); then, among warnings, the
-    # winter gap (season x layers no biological source samples), the colder model and the
-    # trawl's coverage drop
+    # winter gap (season x layers no biological source samples), the colder model, the
+    # trawl's coverage drop and the genus split into species in 2021 (resolution_change): every
+    # one a problem planted in the demo
     assert top[0][:3] == ("error", "no_samples", "trawl")
     first = result.groups()[0]
     assert {(f.season_year, f.stratum) for f in first.findings} == {(2022, "Thorne Deep"), (2022, "Vossa Bank")}
     assert set(top[1:]) == {("warning", "no_samples", "all_biological", True),
                             ("warning", "source_disagreement", "trawl", False),
-                            ("warning", "coverage_drop", "trawl", False)}
+                            ("warning", "coverage_drop", "trawl", False),
+                            ("warning", "resolution_change", "trawl", False)}
     never = next(g for g in result.groups() if g.never_sampled)
     assert {f.season for f in never.findings} >= {"winter"}
     # chance-level thinness is never an error

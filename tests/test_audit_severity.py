@@ -127,3 +127,40 @@ def test_a_planned_stratum_that_lost_most_is_an_error(tmp_path: Path) -> None:
     # 2 of 6 is chance-level on its own (p about 0.06), but the stratum lost two thirds of its hauls
     assert poisson.cdf(2, 6.0) > CHANCE_P
     assert "lost most of its samples" in f.message
+
+
+def _coverage(cells_by_year: dict[int, int], domain: int = 548) -> object:
+    """Metrics holding only a coverage table: one source kind, one season, cells sampled per year."""
+    import pandas as pd
+
+    from harmonize.audit.metrics import Metrics
+
+    years = sorted(cells_by_year)
+    cov = pd.DataFrame({"source_kind": "opportunistic", "season": "summer", "season_year": years,
+                        "events": [max(c, 1) for c in cells_by_year.values()],
+                        "cells_sampled": list(cells_by_year.values()), "domain_cells": domain,
+                        "coverage_fraction": [c / domain for c in cells_by_year.values()], "complete": True})
+    empty = pd.DataFrame()
+    return Metrics(extent=empty, coverage=cov, layer_events=empty, stratum_events=empty, source_years=empty,
+                   bio_providers=empty, encounters=empty, comparisons=empty, cell_maps=empty, suppressed=empty,
+                   n_domain_cells=domain)
+
+
+@pytest.mark.parametrize(("cells", "severity"), [
+    # 4 cells a year before, 1 now: below half the median, but P(X <= 1 | mean 4) = 0.092 -> a note
+    ({2018: 4, 2019: 4, 2020: 1}, "info"),
+    # 50 cells a year before, 20 now: P(X <= 20 | mean 50) ~ 1e-6 -> a warning
+    ({2018: 50, 2019: 50, 2020: 20}, "warning"),
+])
+def test_coverage_drop_severity_from_evidence(cells: dict[int, int], severity: str) -> None:
+    from types import SimpleNamespace
+
+    from harmonize.audit.findings import coverage_drop
+
+    study = SimpleNamespace(audit=SimpleNamespace(coverage_drop=0.5))
+    found = coverage_drop(_coverage(cells), study, None)  # type: ignore[arg-type]
+    assert [f.severity for f in found] == [severity]
+    earlier = np.median([cells[2018], cells[2019]])
+    expected_p = poisson.cdf(cells[2020], earlier)  # scipy, independently of the audit's sum
+    assert found[0].details["p_chance"] == pytest.approx(expected_p, rel=1e-9)
+    assert (expected_p >= CHANCE_P) == (severity == "info")

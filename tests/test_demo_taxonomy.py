@@ -49,6 +49,10 @@ def test_demo_audit_reports_the_split_and_the_sparse_taxon(demo_trawl: Study) ->
     assert "Ostravix keldensis" not in sparse and "Vossaria" not in sparse
 
 
+#: The wide export's column of a taxon's density over area swept (one column per taxon and unit).
+DENSITY = "{} (per km2)"
+
+
 def test_demo_wide_consistent_taxa_gives_a_continuous_series(demo_trawl: Study, tmp_path: Path) -> None:
     env = {**os.environ, "COLUMNS": "200"}
     plain, rolled = tmp_path / "plain.csv", tmp_path / "rolled.csv"
@@ -60,13 +64,13 @@ def test_demo_wide_consistent_taxa_gives_a_continuous_series(demo_trawl: Study, 
     after = pd.read_csv(rolled)
     years = set(YEARS)
     # as recorded, the genus column stops and the species columns start at the split
-    assert set(before.loc[before["Vossaria"].notna(), "season_year"]) == set(range(YEARS[0], SPLIT_YEAR))
-    assert set(before.loc[before["Vossaria borealis"].notna(), "season_year"]) == set(range(SPLIT_YEAR, YEARS[-1] + 1))
+    assert set(before.loc[before[DENSITY.format("Vossaria")].notna(), "season_year"]) == set(range(YEARS[0], SPLIT_YEAR))
+    assert set(before.loc[before[DENSITY.format("Vossaria borealis")].notna(), "season_year"]) == set(range(SPLIT_YEAR, YEARS[-1] + 1))
     # rolled up: one column, a value (zero or more) at every haul of every year
-    assert "Vossaria borealis" not in after.columns and "Vossaria australis" not in after.columns
-    assert set(after["season_year"]) == years and after["Vossaria"].notna().all()
+    assert DENSITY.format("Vossaria borealis") not in after.columns and DENSITY.format("Vossaria australis") not in after.columns
+    assert set(after["season_year"]) == years and after[DENSITY.format("Vossaria")].notna().all()
     # from the split on, the genus is the sum of its two species, haul by haul
     split = before[before["season_year"] >= SPLIT_YEAR].set_index(["source_id", "event_id"])
-    summed = split["Vossaria borealis"] + split["Vossaria australis"]
-    got = after.set_index(["source_id", "event_id"]).loc[summed.index, "Vossaria"]
+    summed = split[DENSITY.format("Vossaria borealis")] + split[DENSITY.format("Vossaria australis")]
+    got = after.set_index(["source_id", "event_id"]).loc[summed.index, DENSITY.format("Vossaria")]
     assert np.allclose(got.to_numpy(), summed.to_numpy())

@@ -15,7 +15,7 @@ thin_samples (error when chance does not explain it, else info; see docs/audit.m
     A source kind has some, but fewer than ``[audit] min_events``, samples in a
     season_year x season x depth layer; or a planned stratum kept less than half of its
     earlier mean. Not applied to fishing effort, nor to incomplete seasons.
-coverage_drop (warning)
+coverage_drop (warning; a note when chance explains it)
     The share of domain cells a source kind sampled in a season is below
     ``[audit] coverage_drop`` times the median share of its earlier years (at least two).
     Not applied to fishing effort, nor to incomplete seasons (:mod:`harmonize.audit.periods`).
@@ -447,16 +447,24 @@ def coverage_drop(m: Metrics, study: Study, year: int | None) -> list[Finding]:
             median = float(np.median(fractions[:i]))
             if fractions[i] < share * median:
                 row = g.iloc[i]
+                cells, domain = int(row["cells_sampled"]), int(row["domain_cells"])
+                # severity from evidence, as for no_samples: as few cells as this at the earlier
+                # median's expected number of cells, by chance (Poisson)? Then a note, not a warning.
+                expected = median * domain
+                p = float(poisson_cdf(cells, expected)[0])
+                chance = p >= CHANCE_P
                 out.append(Finding(
-                    "coverage_drop", "warning",
+                    "coverage_drop", "info" if chance else "warning",
                     f"{kind} samples in {season} {y} cover {fractions[i]:.0%} of the domain's cells "
-                    f"({int(row['cells_sampled'])} of {int(row['domain_cells'])}), below {share:g} x the "
-                    f"median of the {i} earlier years ({median:.0%}); check for missing files or a "
-                    f"reduced survey before comparing {y} with earlier years.",
+                    f"({cells} of {domain}), below {share:g} x the "
+                    f"median of the {i} earlier years ({median:.0%}, about {expected:.0f} cells); "
+                    + (f"so few cells by chance has probability {p:.2f} (Poisson), so this may be chance; "
+                       if chance else "")
+                    + f"check for missing files or a reduced survey before comparing {y} with earlier years.",
                     source_kind=str(kind), season_year=y, season=str(season),
                     details={"coverage_fraction": fractions[i], "earlier_median": median,
-                             "earlier_years": i, "cells_sampled": int(row["cells_sampled"]),
-                             "domain_cells": int(row["domain_cells"]), "threshold": share},
+                             "earlier_years": i, "cells_sampled": cells,
+                             "domain_cells": domain, "threshold": share, "p_chance": _plain(p)},
                 ))
     return out
 

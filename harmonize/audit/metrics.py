@@ -33,7 +33,8 @@ ALL_BIOLOGICAL = "all_biological"
 #: Provider types whose values are derived fields rather than in-situ measurements.
 REFERENCE_PROVIDERS = ("model", "remote_sensing")
 
-_KEPT = f"NOT list_contains(coalesce(flags, []::VARCHAR[]), '{DUPLICATE_FLAG}')"
+#: SQL condition: a row not flagged as a probable twin (the audit counts each bird once).
+KEPT_SQL = _KEPT = f"NOT list_contains(coalesce(flags, []::VARCHAR[]), '{DUPLICATE_FLAG}')"
 
 
 @dataclass
@@ -87,7 +88,7 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
     events_table
         A table already holding one row per event (source_id, source_kind, protocol,
         provider_type, season_year, season, depth_layer, cell_id, stratum, effort_bearing,
-        biological, n_vessels), computed elsewhere by the same rules (the Dask engine,
+        biological, n_vessels, sensitive), computed elsewhere by the same rules (the Dask engine,
         :mod:`harmonize.engines.dask_engine`); None computes it here.
     rules
         The disclosure rules (default: ``min_vessels`` and no sensitive taxa); the cells of
@@ -117,7 +118,7 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
         ev_sql = f"""
             SELECT source_id, source_kind, protocol, provider_type, CAST(season_year AS INTEGER) AS season_year,
                    season, depth_layer, cell_id, stratum, effort_bearing, biological,
-                   CAST(n_vessels AS INTEGER) AS n_vessels, FALSE AS sensitive,
+                   CAST(n_vessels AS INTEGER) AS n_vessels, sensitive,
                    CAST(NULL AS DOUBLE) AS effort, CAST(NULL AS VARCHAR) AS effort_unit,
                    CAST(NULL AS TIMESTAMPTZ) AS event_start
             FROM {events_table}"""

@@ -258,7 +258,7 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
             from harmonize.engines.dask_engine import audit_metrics
 
             metrics = audit_metrics(con, store._live_paths(con), cells, study.min_vessels, year,
-                                    scheduler or choice.scheduler)
+                                    scheduler or choice.scheduler, rules=Disclosure.for_study(study))
         else:
             metrics = compute(con, cells, study.min_vessels, year, Disclosure.for_study(study))
         metrics.periods = incomplete_periods(last_samples(con, year), study.seasons)

@@ -452,16 +452,21 @@ def duplicate_keys(con: Any) -> frozenset[str]:
 
 
 def audit_metrics(con: Any, paths: Sequence[str], domain_cells: pd.DataFrame, min_vessels: int,
-                  max_year: int | None = None, scheduler: str | None = None) -> Any:
+                  max_year: int | None = None, scheduler: str | None = None, rules: Any = None) -> Any:
     """:class:`harmonize.audit.metrics.Metrics` with the heavy aggregations done on Dask.
 
     The per-event table and the taxon record counts come from :func:`audit_tables`; they
     are registered in ``con`` (a store connection) and the rest of the audit's queries run on
     them in DuckDB, unchanged. The files hold the parts of values that span files
     (harmonize.parts): the vessels behind an effort event are taken from the store's merged
-    view, so the rule of three is judged per cell-period as the DuckDB engine judges it.
+    view, so the rule of three is judged per cell-period as the DuckDB engine judges it, and
+    the events where a sensitive taxon was recorded come from the same view, so their cells are
+    not named (``rules``: the disclosure rules of :mod:`harmonize.disclosure`).
     """
     from harmonize.audit import metrics as m
+    from harmonize.disclosure import Disclosure
+
+    rules = rules or Disclosure(min_vessels=int(min_vessels))
 
     tables = audit_tables(paths, duplicate_keys(con), max_year, scheduler)
     events = tables.events
@@ -472,11 +477,16 @@ def audit_metrics(con: Any, paths: Sequence[str], domain_cells: pd.DataFrame, mi
         events["n_vessels"] = pd.array(events["merged_vessels"].where(events["merged_vessels"].notna(),
                                                                       events["n_vessels"]), dtype="Int32")
         events = events.drop(columns="merged_vessels")
+    sensitive = con.execute(f"""SELECT DISTINCT source_id, event_id, TRUE AS sensitive FROM observations
+                                WHERE {m.KEPT_SQL} AND {rules.sensitive_present_sql()}""").df()
+    events = events.merge(sensitive, on=["source_id", "event_id"], how="left")
+    events["sensitive"] = events["sensitive"].fillna(False).astype(bool)
     registered = {"_dask_audit_events": events, "_dask_audit_records": tables.records}
     for name, frame in registered.items():
         con.register(name, frame)
     try:
-        m.build_event_table(con, domain_cells, min_vessels, max_year, events_table="_dask_audit_events")
+        m.build_event_table(con, domain_cells, min_vessels, max_year, events_table="_dask_audit_events",
+                            rules=rules)
         encounters = m.encounters(con, max_year, records_table="_dask_audit_records")
         comparisons = m.comparisons(con, max_year)
     finally:

@@ -138,17 +138,19 @@ class StudyHandle:
                      layers: Names = None, variables: Names = None, sources: Names = None,
                      columns: list[str] | None = None, limit: int | None = None, taxon_level: str | None = None,
                      consistent_taxa: bool = False, precise: bool = False,
-                     fishing_aggregate: bool = False) -> pd.DataFrame:
-        """The long table (observations plus ``log_effort``) for the filters, as a DataFrame.
+                     fishing_aggregate: bool = False, as_: str = "pandas") -> Any:
+        """The long table (observations plus ``log_effort``) for the filters.
 
-        As every export, it passes :mod:`harmonize.disclosure`: fishing rows resting on fewer
-        than the study's ``min_vessels`` vessels are withheld and events with a sensitive
-        taxon generalised, unless ``precise`` (internal use; logged as a warning). For very
-        large selections prefer :meth:`export` to parquet.
+        ``as_``: ``"pandas"`` (a DataFrame; integer columns as nullable ``Int64``, times as
+        ``datetime64[us, UTC]``), ``"arrow"`` (a pyarrow Table) or ``"duckdb"`` (a DuckDB
+        relation over that table). As every export, it passes :mod:`harmonize.disclosure`:
+        fishing rows resting on fewer than the study's ``min_vessels`` vessels are withheld and
+        events with a sensitive taxon generalised, unless ``precise`` (internal use; logged as a
+        warning). For very large selections prefer :meth:`export` to parquet.
         """
         rules = Disclosure.for_study(self.study, precise=precise, fishing_aggregate=fishing_aggregate)
         return read_long(self.study, self.filters(kinds, years, seasons, layers, variables, sources, taxon_level,
-                                                  consistent_taxa), columns, limit, disclosure=rules)
+                                                  consistent_taxa), columns, limit, disclosure=rules, as_=as_)
 
     def wide(self, quantity: str = "count", by_life_stage: bool = False, precise: bool = False,
              **filters: Any) -> pd.DataFrame:

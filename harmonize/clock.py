@@ -43,6 +43,15 @@ def add_hours(start: pd.Series, hours: np.ndarray | pd.Series) -> pd.Series:
     return end.where(known)
 
 
+def utc_naive(values: pd.Series | pd.Index | np.ndarray) -> pd.Series:
+    """UTC instants as naive ``datetime64[us]``: zone-aware times (the store's TIMESTAMPTZ
+    columns) converted to UTC, naive times taken as UTC already."""
+    values = pd.to_datetime(pd.Series(values))
+    if isinstance(values.dtype, pd.DatetimeTZDtype):
+        values = values.dt.tz_convert("UTC").dt.tz_localize(None)
+    return values.astype("datetime64[us]")
+
+
 def _safe(delta: pd.Series) -> list[pd.Timedelta]:
     return [pd.Timedelta(d) for d in delta]
 

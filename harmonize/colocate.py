@@ -22,6 +22,7 @@ import duckdb
 import numpy as np
 import pandas as pd
 
+from harmonize.clock import utc_naive
 from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
 from harmonize.gridded.cf import CANONICAL_VARIABLES
@@ -212,6 +213,6 @@ def _samples(con: duckdb.DuckDBPyConnection, events: pd.DataFrame | None, study:
         ev["cell_id"] = cells
     if "depth_layer" not in ev:
         ev["depth_layer"] = None
-    ev["event_start"] = pd.to_datetime(ev["event_start"]).astype("datetime64[us]")
+    ev["event_start"] = utc_naive(ev["event_start"]).to_numpy()
     out = ev[["source_id", "event_id", "event_start", "cell_id", "depth_layer"]].drop_duplicates()
     return out.astype({"source_id": object, "event_id": object, "cell_id": object, "depth_layer": object})

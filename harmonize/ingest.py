@@ -21,6 +21,7 @@ import pyarrow as pa
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
 from harmonize.adapters.common import codes_in, distinct_present, swapped_position_notes
 from harmonize.adapters.registry import get_adapter, list_adapters
+from harmonize.clock import utc_naive
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns, validate_observations
 from harmonize.engines import engine_scope
 from harmonize.errors import ConfigError, DuplicateIngestError, HarmonizeError
@@ -36,6 +37,7 @@ from harmonize.tagging import (
     tag_season,
 )
 from harmonize.twins import twin_settings
+from harmonize.units import density_unit_sql
 
 logger = logging.getLogger(__name__)
 
@@ -290,8 +292,8 @@ def _check_accounting(out: AdapterOutput) -> None:
 
 
 _EVENT_ARROW = pa.schema([
-    ("event_id", pa.string()), ("event_start", pa.timestamp("us")), ("event_end", pa.timestamp("us")),
-    ("year", pa.int32()), ("season_year", pa.int32()), ("season", pa.string()), ("depth_layer", pa.string()),
+    ("event_id", pa.string()), ("event_start", pa.timestamp("us", tz="UTC")),
+    ("event_end", pa.timestamp("us", tz="UTC")), ("year", pa.int32()), ("season_year", pa.int32()), ("season", pa.string()), ("depth_layer", pa.string()),
     ("lat", pa.float64()), ("lon", pa.float64()), ("cell_id", pa.string()), ("stratum", pa.string()),
     ("depth_min_m", pa.float64()), ("depth_max_m", pa.float64()), ("bottom_depth_m", pa.float64()),
     ("effort", pa.float64()), ("effort_unit", pa.string()), ("observer_id", pa.string()),
@@ -352,7 +354,7 @@ def _to_arrow(frame: pd.DataFrame, schema: pa.Schema) -> pa.Table:
         if pa.types.is_list(fld.type):
             arrays.append(_list_array(col, fld.type))
         elif pa.types.is_timestamp(fld.type):
-            arrays.append(pa.array(pd.to_datetime(col).astype("datetime64[us]"), type=fld.type, from_pandas=True))
+            arrays.append(pa.array(utc_naive(col).to_numpy(), type=fld.type, from_pandas=True))
         else:
             try:
                 arrays.append(pa.array(col, type=fld.type, from_pandas=True))
@@ -389,6 +391,10 @@ def _keep(frame: pd.DataFrame, column: str, computed: pd.Series) -> pd.Series:
 BLOCK_ROWS = 250_000
 #: Rows of the assembled output checked against the contract (pandera), spread over the blocks.
 SAMPLE_ROWS = 200_000
+
+
+#: SQL: the row has a density (value / effort): counts and biomass with a positive effort
+_HAS_DENSITY = "v.quantity IN ('count', 'biomass') AND NOT v.no_effort AND e.effort > 0"
 
 
 def assemble(out: AdapterOutput, study: Study, profile: Profile, kind: str, ingest_id: str) -> pa.Table:
@@ -435,7 +441,8 @@ def assemble_blocks(out: AdapterOutput, study: Study, profile: Profile, kind: st
             "record_id": "substr(md5(concat_ws('|', $2, e.event_id, v.variable, coalesce(v.life_stage, ''), v.quantity, v.behavior)), 1, 24)",  # concat_ws skips a null behavior: ids without one are unchanged
             "ingest_id": "$1", "source_id": "$2", "source_kind": "$3", "provider_type": "$4", "protocol": "$5",
             # density only for counts and biomass; presence-only and no-effort values carry no effort
-            "density": "CASE WHEN v.quantity IN ('count', 'biomass') AND NOT v.no_effort AND e.effort > 0 THEN v.value / e.effort END",
+            "density": f"CASE WHEN {_HAS_DENSITY} THEN v.value / e.effort END",
+            "density_unit": f"CASE WHEN {_HAS_DENSITY} THEN {density_unit_sql('v.unit', 'e.effort_unit')} END",
             "effort": "CASE WHEN v.quantity = 'presence' OR v.no_effort THEN NULL ELSE e.effort END",
             "effort_unit": "CASE WHEN v.quantity = 'presence' OR v.no_effort THEN NULL ELSE e.effort_unit END",
             "flags": "list_sort(list_distinct(list_concat(e.event_flags, v.value_flags)))",

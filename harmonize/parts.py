@@ -73,6 +73,7 @@ def merged_sql(parts: str) -> str:
                            WHEN {single} THEN min(effort)
                            ELSE sum(effort * n_values) / nullif(sum(n_values), 0) END""",
         "density": f"CASE WHEN {single} THEN min(density) END",
+        "density_unit": f"CASE WHEN {single} THEN min(density_unit) END",
         "zero_filled": "bool_or(zero_filled)",
         "n_values": "sum(n_values)",
         "n_vessels": f"""CASE WHEN {single} THEN min(n_vessels)

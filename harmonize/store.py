@@ -36,7 +36,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from harmonize import __version__, interrupts, parts, twins
+from harmonize import __version__, interrupts, parts, twins, units
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns
 from harmonize.errors import StoreBusyError, StoreError
 from harmonize.files import file_digest, fsync_dir, fsync_file
@@ -57,7 +57,10 @@ LOCK_SUFFIX = ".lock"
 #: ``ingests.file_path`` (the main input's path relative to the study: part of an ingest's identity).
 #: A writer brings an older store up to date (tables and columns are created when missing; the
 #: checksums of files an older store lists are taken when it is brought up to date).
-STORE_VERSION = 3
+#: 4: event times written as parquet ``timestamp[us, tz=UTC]`` (older files hold UTC wall
+#: clocks: the views read them as UTC) and the persisted views name their files relative to
+#: the store folder (rewritten whenever harmonize opens the store for writing).
+STORE_VERSION = 4
 _LOCK_RE = re.compile(r"\(PID (\d+)\)")
 
 #: Columns of ``events_without_values``, in table order (see docs/store.md).
@@ -267,6 +270,9 @@ class Store:
             raise
         interrupts.track(con)
         try:
+            # times are read and shown in UTC whatever the machine's zone
+            con.execute("SET TimeZone = 'UTC'")
+            self._search_here(con)
             if read_only:
                 if view:
                     self._define_view(con, temporary=True)
@@ -345,16 +351,33 @@ class Store:
             con.execute("DELETE FROM store_meta WHERE key = 'checksums_since'")
             con.execute("INSERT INTO store_meta VALUES ('checksums_since', ?)",
                         [pd.Timestamp.now("UTC").isoformat()])
+        if version < 4:
+            # the persisted views of an older store name absolute paths and cast naive times in
+            # the session's zone: rewritten now (relative paths, naive times read as UTC); a
+            # store whose files cannot be read keeps them until a writer with the view runs
+            try:
+                self._define_view(con, temporary=False)
+            except StoreError:
+                pass
 
     def _live_paths(self, con: duckdb.DuckDBPyConnection) -> list[str]:
         rows = con.execute(
             """SELECT f.path FROM observation_files f JOIN ingests i USING (ingest_id)
                WHERE i.status = 'complete' ORDER BY f.path"""
         ).fetchall()
-        return [str(self.directory / r[0]) for r in rows]
+        # relative to the store folder (the connection's file_search_path): the persisted
+        # views still read when the study folder moves
+        return [r[0] for r in rows]
+
+    def _search_here(self, con: duckdb.DuckDBPyConnection) -> None:
+        """Resolve relative parquet paths against the store folder (the views name their files
+        relative to it, so that a moved study folder still reads)."""
+        folder = str(self.directory).replace("'", "''")
+        con.execute(f"SET file_search_path = '{folder}'")
 
     def _define_view(self, con: duckdb.DuckDBPyConnection, temporary: bool) -> None:
         """(Re)define the observations views over the live files."""
+        self._search_here(con)
         try:
             paths = self._live_paths(con)
         except duckdb.CatalogException:
@@ -362,11 +385,18 @@ class Store:
         cols = observation_sql_columns()
         present: set[str] = set()
         if paths:
-            listing = ", ".join("'" + p.replace("'", "''") + "'" for p in paths)
-            source = (
-                f"read_parquet([{listing}], hive_partitioning = true, "
-                "hive_types = {'source_kind': VARCHAR, 'season_year': INTEGER}, union_by_name = true)"
-            )
+            try:
+                naive = _naive_time_files(con, paths)
+            except duckdb.Error:
+                naive = set()  # unreadable files: reported by the DESCRIBE below
+            source = _parquet_source([p for p in paths if p not in naive])
+            if naive:
+                # files of a store written before times carried their zone (store version < 4)
+                # hold UTC wall clocks: timezone('UTC', ...) reads them as UTC in any session zone
+                old = _parquet_source(sorted(naive))
+                fix = ", ".join(f"timezone('UTC', \"{c}\") AS \"{c}\"" for c in _TIME_COLUMNS)
+                old = f"(SELECT * REPLACE ({fix}) FROM {old})"
+                source = f"(SELECT * FROM {source} UNION ALL BY NAME SELECT * FROM {old})" if len(naive) < len(paths) else old
             # Files written before a column joined the contract lack it: it reads as null.
             try:
                 present = {r[0] for r in con.execute(f"DESCRIBE SELECT * FROM {source}").fetchall()}
@@ -378,8 +408,13 @@ class Store:
                 ) from None
         else:
             source = "(SELECT 1 LIMIT 0)"
+        missing = {
+            # files written before density_unit joined the contract: derived from their units
+            "density_unit": f"CASE WHEN density IS NOT NULL THEN {units.density_unit_sql('unit', 'effort_unit')} END",
+        }
         select = ", ".join(
-            f'CAST("{c}" AS {t}) AS "{c}"' if c in present else f'CAST(NULL AS {t}) AS "{c}"'
+            f'CAST("{c}" AS {t}) AS "{c}"' if c in present
+            else f'CAST({missing[c] if c in missing and paths else "NULL"} AS {t}) AS "{c}"'
             for c, t in cols + list(parts.PART_COLUMNS)
         )
         kind = "TEMP VIEW" if temporary else "VIEW"
@@ -391,6 +426,8 @@ class Store:
         con.execute(f"CREATE OR REPLACE {kind} observation_parts AS SELECT {select} FROM {source}")
         con.execute(f"CREATE OR REPLACE {kind} observations_base AS {parts.merged_sql('observation_parts')}")
         con.execute(f"CREATE OR REPLACE {kind} observations AS {twins.flagged_view_sql(con, 'observations_base')}")
+        # the name docs/store.md gives readers without harmonize: the live rows with every flag
+        con.execute(f"CREATE OR REPLACE {kind} current AS SELECT * FROM observations")
 
     # ------------------------------------------------------------------ ingest support
     def previous_ingests(self, source_id: str, file_path: str, inputs_sha256: str) -> pd.DataFrame:
@@ -846,6 +883,31 @@ class Store:
         ).fetchall()
         return [f"ingest {i}: {name} has {n} data rows but only {k} are accepted or quarantined"
                 for i, name, n, k in rows]
+
+
+_TIME_COLUMNS = ("event_start", "event_end")
+
+
+def _parquet_source(paths: Sequence[str]) -> str:
+    listing = ", ".join("'" + p.replace("'", "''") + "'" for p in paths)
+    return (f"read_parquet([{listing}], hive_partitioning = true, "
+            "hive_types = {'source_kind': VARCHAR, 'season_year': INTEGER}, union_by_name = true)")
+
+
+def _naive_time_files(con: duckdb.DuckDBPyConnection, paths: Sequence[str]) -> set[str]:
+    """The files (as listed in ``paths``) whose event times are timestamps without a zone.
+
+    Read from the parquet footers (isAdjustedToUTC=0): files of store versions 1 to 3.
+    """
+    listing = ", ".join("'" + p.replace("'", "''") + "'" for p in paths)
+    found = {r[0] for r in con.execute(
+        f"""SELECT DISTINCT file_name FROM parquet_schema([{listing}])
+            WHERE name = 'event_start' AND logical_type LIKE '%isAdjustedToUTC=0%'""").fetchall()}
+    if not found:
+        return set()
+    # parquet_schema names files by their resolved path
+    return {p for p in paths if p in found or str(Path(p)) in found
+            or any(f.endswith("/" + p) for f in found)}
 
 
 def _rollback(con: duckdb.DuckDBPyConnection) -> None:

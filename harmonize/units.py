@@ -71,3 +71,20 @@ def to_canonical(values: np.ndarray, dimension: str, unit: str) -> np.ndarray:
         scale, offset = _TEMPERATURE[unit]
         return values * scale + offset
     return values * _LINEAR[dimension][unit]
+
+
+def density_unit_sql(unit: str, effort_unit: str) -> str:
+    """DuckDB expression: the unit of ``value / effort`` in UDUNITS-style text, from the
+    columns (or expressions) ``unit`` and ``effort_unit``.
+
+    A dimensionless value ("1", a count) over km2 gives "km-2"; kg over km2 "kg km-2"; a count
+    over m3 "m-3"; over h "h-1" (a name followed by its integer power, the power 1 written
+    for a divisor: the UDUNITS-2 product syntax). An effort unit that is not one name with an
+    optional power is written as ``(unit)-1``. Null where either is null.
+    """
+    name = f"regexp_extract({effort_unit}, '^([A-Za-z]+)([0-9]*)$', 1)"
+    power = f"coalesce(nullif(regexp_extract({effort_unit}, '^[A-Za-z]+([0-9]*)$', 1), ''), '1')"
+    inverse = (f"CASE WHEN {name} <> '' THEN {name} || '-' || {power} "
+               f"ELSE '(' || {effort_unit} || ')-1' END")
+    return (f"CASE WHEN {unit} IS NULL OR {effort_unit} IS NULL THEN NULL "
+            f"WHEN {unit} = '1' THEN {inverse} ELSE {unit} || ' ' || {inverse} END")

@@ -112,6 +112,8 @@ def _cells_with_hauls(study_dir: Path) -> list[str]:
     import duckdb
 
     with duckdb.connect(str(study_dir / "store" / "harmonized.duckdb"), read_only=True) as con:
+        # the views name their files relative to the store folder (docs/store.md)
+        con.execute(f"SET file_search_path = '{study_dir / 'store'}'")
         return [r[0] for r in con.execute("SELECT DISTINCT cell_id FROM observations").fetchall()]
 
 

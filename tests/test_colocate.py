@@ -87,7 +87,7 @@ def test_each_sample_gets_its_cell_period_value(study_dir: Path) -> None:
     assert (long["unit"] == "degC").all()
     row = long[(long["event_id"] == "haul-1") & (long["variable"] == sst)].iloc[0]
     assert row["gridded_source_id"] == "satellite" and row["gridded_event_id"].endswith("/2019-06/surface/" + sst)
-    assert row["period_start"] == pd.Timestamp("2019-06-01") and row["valid_area_km2"] > 500
+    assert row["period_start"] == pd.Timestamp("2019-06-01", tz="UTC") and row["valid_area_km2"] > 500
 
 
 def test_wide_form_and_choosing_between_sources(study_dir: Path) -> None:

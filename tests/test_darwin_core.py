@@ -113,10 +113,10 @@ def test_plain_darwin_core_table_needs_no_columns_section(study_dir: Path) -> No
                               ORDER BY source_row""").fetchall()
     start, end, variable, behavior, quantity, flags = rows[0]
     # eventDate 2023-10-21 + eventTime 07:45:00Z; behavior "in flight" -> in_flight
-    assert (str(start), variable, behavior, quantity) == ("2023-10-21 07:45:00", "Procellix keldica", "in_flight", "presence")
+    assert (str(start), variable, behavior, quantity) == ("2023-10-21 07:45:00+00:00", "Procellix keldica", "in_flight", "presence")
     # p2 has only a vernacular name and a date: the whole day is its time window
     assert rows[1][2] == "Procellix keldica" and "date_only" in rows[1][5]
-    assert str(rows[1][0]) == "2023-10-24 00:00:00" and str(rows[1][1]) == "2023-10-25 00:00:00"
+    assert str(rows[1][0]) == "2023-10-24 00:00:00+00:00" and str(rows[1][1]) == "2023-10-25 00:00:00+00:00"
 
 
 def test_profile_columns_override_the_standard_mapping(study_dir: Path) -> None:

@@ -60,6 +60,7 @@ def test_the_plan_puts_the_20_hauls_in_the_strata_2022_missed(demo: DemoRun) -> 
     assert len(plan) == PLAN_SAMPLES
     # strata with no 2022 summer trawl haul, found from the store, not from the plan
     with duckdb.connect(str(demo.folder / "store" / "harmonized.duckdb"), read_only=True) as con:
+        con.execute(f"SET file_search_path = '{demo.folder / 'store'}'")  # docs/store.md
         fished = {r[0] for r in con.execute(
             f"""SELECT DISTINCT stratum FROM observations WHERE source_kind = 'trawl' AND season = 'summer'
                 AND season_year = {CORRECTED_YEAR} AND stratum IS NOT NULL""").fetchall()}

@@ -116,7 +116,7 @@ def test_hand_worked_track(ping_study: Path) -> None:
     assert row["effort"] == 5.0 and row["variable_kind"] == "effort" and row["quantity"] == "measurement"
     assert list(row["flags"]) == ["speed_derived"]
     assert (row["season"], row["season_year"]) == ("summer", 2021)
-    assert row["event_start"] == pd.Timestamp("2021-06-01") and row["event_end"] == pd.Timestamp("2021-09-01")
+    assert row["event_start"] == pd.Timestamp("2021-06-01", tz="UTC") and row["event_end"] == pd.Timestamp("2021-09-01", tz="UTC")
     # lat/lon is the cell centre
     x, y = TO_GRID.transform(row["lon"], row["lat"])
     assert x / 25_000 % 1 == pytest.approx(0.5, abs=1e-6) and y / 25_000 % 1 == pytest.approx(0.5, abs=1e-6)

@@ -139,7 +139,7 @@ def test_straddling_event_is_one_row_with_all_its_rows(study: Study) -> None:
     # density = count / volume filtered, summed over both ingests' rows (arithmetic)
     assert p9["Ostravix keldensis (per m3)"] == pytest.approx(5.0 / 25.0)
     assert p9["Pelagon argentea (per m3)"] == pytest.approx(3.0 / 25.0)
-    assert p9["event_start"] == pd.Timestamp("2019-05-01 10:00")
+    assert p9["event_start"] == pd.Timestamp("2019-05-01 10:00", tz="UTC")
     assert wide.set_index("event_id").loc["P5", "detected_presence_only"] == "Pelagon argentea"
     one = read_wide(study, ExportFilters.build(sources="coastal_tows"), run_rows=ONE_PASS)
     # any_value() of a repeated event's season tags is not defined: compare those apart

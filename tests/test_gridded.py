@@ -125,9 +125,9 @@ def test_pipeline_store_accounting_and_idempotent_reingest(study_dir: Path) -> N
     # January-February 2019 are winter 2019; March and April spring 2019 (CONTRACT season rule)
     assert [(r[0], r[1]) for r in rows] == [("spring", 2019), ("winter", 2019)]
     spring = rows[0]
-    assert spring[3] == pd.Timestamp("2019-03-01") and spring[4] == pd.Timestamp("2019-06-01")
+    assert spring[3] == pd.Timestamp("2019-03-01", tz="UTC") and spring[4] == pd.Timestamp("2019-06-01", tz="UTC")
     winter = rows[1]
-    assert winter[3] == pd.Timestamp("2018-12-01") and winter[4] == pd.Timestamp("2019-03-01")
+    assert winter[3] == pd.Timestamp("2018-12-01", tz="UTC") and winter[4] == pd.Timestamp("2019-03-01", tz="UTC")
     again = run(study, "sst_sat", {"rows": path})
     assert again.status == "unchanged"
 

@@ -211,7 +211,7 @@ def test_day_first_dates_with_slashes_are_not_read_as_intervals(study_dir: Path)
     result = run(load_study(study_dir), PROFILE, {"rows": data})
     assert result.rows_quarantined == 0
     obs = _observations(study_dir)
-    assert str(obs["event_start"].iloc[0]) == "2021-11-14 09:30:00"
+    assert str(obs["event_start"].iloc[0]) == "2021-11-14 09:30:00+00:00"
 
 
 HEADER_ROW = ("sighting_id,list_id,obs_time,latitude,longitude,observer_name,species,how_many,all_reported,"

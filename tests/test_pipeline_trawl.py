@@ -11,6 +11,7 @@ from geographiclib.geodesic import Geodesic
 
 from harmonize import Store, load_study, run
 from harmonize.errors import DuplicateIngestError
+from harmonize.store import STORE_VERSION
 
 
 def _inputs(study_dir: Path) -> dict[str, Path]:
@@ -128,7 +129,7 @@ def test_replace_supersedes_events_without_values(study_dir: Path) -> None:
 
 def test_store_without_the_events_without_values_table_still_opens(study_dir: Path) -> None:
     # A store written before the table existed (store version 1): readers see no such
-    # events and the check passes; the next writer adds the table and records version 2.
+    # events and the check passes; the next writer adds the table and records the current version.
     study = load_study(study_dir)
     run(study, "trawl_agency", _inputs(study_dir))
     store = Store(study.store_dir)
@@ -142,7 +143,7 @@ def test_store_without_the_events_without_values_table_still_opens(study_dir: Pa
     run(study, _without_protocol(study_dir), {"events": study_dir / "hauls_messy.csv",
                                               "records": study_dir / "catch_messy.csv"}, replace=True)
     with store.connect() as c:
-        # brought up to date by the check or the writer (version 3 since the checksums)
-        assert c.execute("SELECT value FROM store_meta WHERE key = 'store_version'").fetchall() == [("3",)]
+        # brought up to date by the check or the writer
+        assert c.execute("SELECT value FROM store_meta WHERE key = 'store_version'").fetchall() == [(str(STORE_VERSION),)]
     assert list(store.events_without_values()["event_id"]) == ["H010"]
     assert store.check() == []

@@ -187,7 +187,7 @@ def test_mouth_area_column_and_volume_only_source(study_dir: Path) -> None:
     # no protocol: nothing zero-filled; 2000 revs x 0.3 m x 0.5 m2 = 300 m3 in 10 min (1 m/s)
     assert len(obs) == 1 and obs["effort"].iloc[0] == pytest.approx(300.0)
     assert obs["density"].iloc[0] == pytest.approx(10 / 300)
-    assert obs["event_end"].iloc[0] == pd.Timestamp("2020-03-01T10:10")
+    assert obs["event_end"].iloc[0] == pd.Timestamp("2020-03-01T10:10", tz="UTC")
 
 
 @pytest.mark.parametrize(("section", "match"), [

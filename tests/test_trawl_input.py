@@ -152,8 +152,8 @@ def test_time_zone_of_profile_is_applied(study_dir: Path) -> None:
 
     with Store(study.store_dir).connect() as con:
         starts = dict(con.execute("SELECT DISTINCT event_id, event_start FROM observations").fetchall())
-    assert starts["A1"] == pd.Timestamp("2021-07-01 16:00")  # HST is UTC-10, no DST
-    assert starts["A2"] == pd.Timestamp("2021-07-02 06:00")  # explicit offsets win
+    assert starts["A1"] == pd.Timestamp("2021-07-01 16:00", tz="UTC")  # HST is UTC-10, no DST
+    assert starts["A2"] == pd.Timestamp("2021-07-02 06:00", tz="UTC")  # explicit offsets win
 
 
 # --- property: whatever the damage, every row is accounted for --------------------------------

@@ -36,6 +36,7 @@ from harmonize.export.selection import (
     prepare_target,
 )
 from harmonize.study import Study
+from harmonize.units import density_unit_sql
 
 SUFFIXES = (".parquet", ".csv")
 GROUP = ("source_kind", "cell_id", "season_year", "season", "depth_layer", "variable", "variable_kind",
@@ -54,6 +55,8 @@ def grid_query() -> str:
     return f"""
         WITH per_event AS ({per_event})
         SELECT {group},
+               CASE WHEN quantity IN ('count', 'biomass') THEN {density_unit_sql('unit', 'effort_unit')} END
+                   AS density_unit,
                count(*) AS events,
                sum(effort) AS total_effort,
                avg(density) AS mean_density,
@@ -93,7 +96,8 @@ def export_grid(study: Study, out: str | Path, filters: ExportFilters | None = N
         if path.suffix.lower() == ".parquet":
             target = str(path).replace("'", "''")
             n = con.execute(f"COPY ({grid_query()}) TO '{target}' "
-                            f"(FORMAT parquet, COMPRESSION zstd, {kv_metadata_sql(meta)})").fetchall()[0][0]
+                            f"(FORMAT parquet, COMPRESSION zstd, {kv_metadata_sql(meta, con, grid_query())})"
+                            ).fetchall()[0][0]
         else:
             columns, n = copy_safe_csv(con, grid_query(), path)
             files.append(write_sidecar(path, meta, columns))

@@ -11,9 +11,12 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import duckdb
 import pandas as pd
+import pyarrow as pa
 
 from harmonize.disclosure import Disclosure
+from harmonize.errors import HarmonizeError
 from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import ExportResult, kv_metadata_sql, provenance, write_sidecar
 from harmonize.export.safe_csv import copy_safe_csv
@@ -36,8 +39,20 @@ def long_query(columns: list[str] | None = None, limit: int | None = None, order
     return sql + (f" LIMIT {int(limit)}" if limit is not None else "")
 
 
+#: Integer columns become pandas' nullable Int64 (a null vessel count stays an integer column)
+_NULLABLE_INTEGERS = {pa.int8(): pd.Int64Dtype(), pa.int16(): pd.Int64Dtype(), pa.int32(): pd.Int64Dtype(),
+                      pa.int64(): pd.Int64Dtype()}
+READERS = ("pandas", "arrow", "duckdb")
+
+
+def to_pandas(table: pa.Table) -> pd.DataFrame:
+    """An Arrow table as a DataFrame with nullable integers (Int64) and zone-aware UTC times."""
+    return table.to_pandas(types_mapper=_NULLABLE_INTEGERS.get)
+
+
 def read_long(study: Study, filters: ExportFilters | None = None, columns: list[str] | None = None,
-              limit: int | None = None, disclosure: Disclosure | None = None) -> pd.DataFrame:
+              limit: int | None = None, disclosure: Disclosure | None = None,
+              as_: str = "pandas") -> pd.DataFrame | pa.Table | duckdb.DuckDBPyRelation:
     """The long table as a DataFrame (for notebooks; use :func:`export_long` for big selections).
 
     Parameters
@@ -52,10 +67,20 @@ def read_long(study: Study, filters: ExportFilters | None = None, columns: list[
         At most this many rows.
     disclosure
         The disclosure rules (default: the study's; see :mod:`harmonize.disclosure`).
+    as_
+        ``"pandas"`` (a DataFrame with nullable integer columns), ``"arrow"`` (a pyarrow Table)
+        or ``"duckdb"`` (a relation on a new in-memory DuckDB connection over that table).
     """
+    if as_ not in READERS:
+        raise HarmonizeError(f"as_={as_!r} is not a reader; choose one of {', '.join(READERS)}")
     filters = filters or ExportFilters()
     with open_selection(study, filters, disclosure) as (con, _counts):
-        return con.sql(long_query(columns, limit)).to_arrow_table().to_pandas()
+        table = con.sql(long_query(columns, limit)).to_arrow_table()
+    if as_ == "arrow":
+        return table
+    if as_ == "duckdb":
+        return duckdb.connect().from_arrow(table)
+    return to_pandas(table)
 
 
 @all_or_nothing(SUFFIXES)
@@ -78,7 +103,8 @@ def export_long(study: Study, out: str | Path, filters: ExportFilters | None = N
         if path.suffix.lower() == ".parquet":
             target = str(path).replace("'", "''")
             con.execute(f"COPY ({long_query(ordered=False)}) TO '{target}' "
-                        f"(FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 500000, {kv_metadata_sql(meta)})")
+                        f"(FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 500000, "
+                        f"{kv_metadata_sql(meta, con, long_query(ordered=False))})")
         else:
             columns, _rows = copy_safe_csv(con, long_query(ordered=False), path)
             files.append(write_sidecar(path, meta, columns))

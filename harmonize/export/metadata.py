@@ -8,6 +8,7 @@ and Metadata on the Web", 2015, section 5.2 locates metadata for a CSV file), a 
 
 from __future__ import annotations
 
+import base64
 import json
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -15,6 +16,7 @@ from typing import Any
 
 import duckdb
 import pandas as pd
+import pyarrow as pa
 
 from harmonize import __version__
 from harmonize.contract import CONTRACT_VERSION
@@ -99,9 +101,60 @@ def provenance(con: duckdb.DuckDBPyConnection, study: Study, fmt: str, filters: 
     }
 
 
-def kv_metadata_sql(meta: dict[str, Any]) -> str:
-    """The ``KV_METADATA`` clause of a DuckDB parquet COPY carrying ``meta`` as JSON."""
-    return f"KV_METADATA {{{PARQUET_KEY}: {sql_text(json.dumps(meta, default=str))}}}"
+#: Units (UDUNITS-2 spelling) of exported numeric columns whose unit is the same on every row.
+FIXED_UNITS: dict[str, str] = {
+    "lat": "degrees_north", "lon": "degrees_east", "track_start_lat": "degrees_north",
+    "track_start_lon": "degrees_east", "track_end_lat": "degrees_north", "track_end_lon": "degrees_east",
+    "depth_min_m": "m", "depth_max_m": "m", "bottom_depth_m": "m",
+    "n_vessels": "1", "n_values": "1", "count_observed": "1", "subsample_fraction": "1",
+    "log_effort": "1", "events": "1", "share_zero": "1", "suppressed_events": "1",
+    "year": "1", "season_year": "1", "source_row": "1",
+}
+#: Exported numeric columns whose unit is given on each row by another column.
+UNIT_COLUMNS: dict[str, str] = {
+    "value": "unit", "effort": "effort_unit", "density": "density_unit",
+    "total_value": "unit", "mean_value": "unit", "total_effort": "effort_unit", "mean_density": "density_unit",
+}
+_UNIT_NOTES = {
+    "log_effort": "natural logarithm of effort in effort_unit",
+    "year": "calendar year (an index, not a quantity)",
+    "season_year": "season year (an index, not a quantity)",
+    "source_row": "1-based data row of the input file (an index)",
+}
+
+
+def unit_field_metadata(schema: pa.Schema) -> pa.Schema:
+    """``schema`` with the unit of every numeric column in its field metadata: ``unit`` (a
+    UDUNITS-2 string) or ``unit_column`` (the column that holds each row's unit)."""
+    fields = []
+    for f in schema:
+        meta: dict[str, str] = {}
+        numeric = pa.types.is_integer(f.type) or pa.types.is_floating(f.type)
+        if numeric and f.name in UNIT_COLUMNS and UNIT_COLUMNS[f.name] in schema.names:
+            meta["unit_column"] = UNIT_COLUMNS[f.name]
+        elif numeric and f.name in FIXED_UNITS:
+            meta["unit"] = FIXED_UNITS[f.name]
+        if f.name in _UNIT_NOTES and meta:
+            meta["unit_note"] = _UNIT_NOTES[f.name]
+        fields.append(f.with_metadata(meta) if meta else f)
+    return pa.schema(fields)
+
+
+def kv_metadata_sql(meta: dict[str, Any], con: duckdb.DuckDBPyConnection | None = None,
+                    query: str | None = None) -> str:
+    """The ``KV_METADATA`` clause of a DuckDB parquet COPY carrying ``meta`` as JSON.
+
+    Given the connection and the query being copied, the clause also carries the Arrow
+    schema of the result with each numeric column's unit in its field metadata
+    (:func:`unit_field_metadata`), under the key ``ARROW:schema`` that Arrow readers use to
+    restore a file's schema (Apache Arrow, Parquet format integration: the base64 IPC schema).
+    """
+    entries = {PARQUET_KEY: json.dumps(meta, default=str)}
+    if con is not None and query is not None:
+        schema = unit_field_metadata(con.sql(query).limit(0).to_arrow_table().schema)
+        entries["ARROW:schema"] = base64.b64encode(schema.serialize().to_pybytes()).decode("ascii")
+    body = ", ".join(f"{sql_text(k)}: {sql_text(v)}" for k, v in entries.items())
+    return f"KV_METADATA {{{body}}}"
 
 
 def sidecar_path(path: Path) -> Path:

@@ -45,7 +45,7 @@ def copy_safe_csv(con: duckdb.DuckDBPyConnection, query: str, path: str | Path,
     """Stream the result of ``query`` to a UTF-8 CSV file with DuckDB, text cells neutralised.
 
     List columns are joined with ``list_separator`` first (CSV has no lists); timestamps are
-    written as ``YYYY-MM-DD HH:MM:SS`` (UTC in harmonize). Returns the (column, type) pairs
+    written in ISO 8601 UTC, ``YYYY-MM-DDTHH:MM:SSZ`` (see :func:`iso_utc_sql`). Returns the (column, type) pairs
     of the file, for its metadata, and the number of rows written. Without ``header`` the
     file holds the rows only (a continuation of another file written with the same query).
     """
@@ -61,6 +61,9 @@ def copy_safe_csv(con: duckdb.DuckDBPyConnection, query: str, path: str | Path,
         if t.endswith("[]"):
             select.append(f"{neutralise_sql(f'array_to_string({ident}, {sep})')} AS {alias}")
             columns.append((name, "VARCHAR"))
+        elif t.startswith("TIMESTAMP"):
+            select.append(f"{iso_utc_sql(ident, zoned=t != 'TIMESTAMP')} AS {alias}")
+            columns.append((name, t))
         elif t == "VARCHAR":
             select.append(f"{neutralise_sql(ident)} AS {alias}")
             columns.append((name, t))
@@ -71,6 +74,17 @@ def copy_safe_csv(con: duckdb.DuckDBPyConnection, query: str, path: str | Path,
     written = con.execute(
         f"COPY (SELECT {', '.join(select)} FROM ({query})) TO '{target}' (FORMAT csv, HEADER {str(header).lower()})").fetchall()
     return columns, int(written[0][0])
+
+
+def iso_utc_sql(expr: str, zoned: bool = True) -> str:
+    """DuckDB expression: a timestamp as ISO 8601 text in UTC, ``YYYY-MM-DDTHH:MM:SSZ``
+    (``.ffffffZ`` only when it has a fraction of a second); a naive timestamp is taken as UTC.
+
+    ISO 8601-1:2019, Date and time, section 5.4 (extended format, ``Z`` for UTC).
+    """
+    utc = f"timezone('UTC', {expr})" if zoned else expr
+    return (f"CASE WHEN microsecond({utc}) % 1000000 = 0 THEN strftime({utc}, '%Y-%m-%dT%H:%M:%SZ') "
+            f"ELSE strftime({utc}, '%Y-%m-%dT%H:%M:%S.%fZ') END")
 
 
 def _neutral_name(name: str) -> str:

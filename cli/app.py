@@ -22,7 +22,7 @@ from harmonize.cli.console import STUDY_ENV, configure_logging, consoles, err_co
 from typer._click import exceptions as click_exceptions  # typer >= 0.29 carries its own click
 from typer.core import TyperArgument, TyperGroup
 
-from harmonize import __version__, interrupts
+from harmonize import __version__, interrupts, settings
 from harmonize.errors import HarmonizeError, failure_line, one_line
 
 EXIT_OK, EXIT_DATA, EXIT_USAGE, EXIT_INTERNAL, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
@@ -78,8 +78,9 @@ class HarmonizeGroup(TyperGroup):
 
     def invoke(self, ctx: typer.Context) -> Any:
         try:
-            # SIGINT / SIGTERM stop DuckDB queries through the connection and end in 130 / 143
-            with interrupts.installed():
+            # SIGINT / SIGTERM stop DuckDB queries through the connection and end in 130 / 143;
+            # the HARMONIZE_* variables are read here, once, and apply to this command only
+            with interrupts.installed(), settings.applied(settings.from_environment(os.environ)):
                 return super().invoke(ctx)
         except interrupts.Interrupted as exc:
             _interrupted(exc.signum, exc.committed)

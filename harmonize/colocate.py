@@ -16,7 +16,8 @@ coordinates fall in, never its own withheld cell).
 
 from __future__ import annotations
 
-from collections.abc import Mapping, Sequence
+from collections.abc import Iterator, Mapping, Sequence
+from contextlib import contextmanager
 
 import duckdb
 import numpy as np
@@ -60,6 +61,7 @@ def colocate(
     events: pd.DataFrame | None = None,
     sources: Mapping[str, str] | None = None,
     disclosure: Disclosure | None = None,
+    con: duckdb.DuckDBPyConnection | None = None,
 ) -> pd.DataFrame:
     """Gridded values of ``variables`` for each sample event, in long form.
 
@@ -77,6 +79,9 @@ def colocate(
         variable not named here is taken from every gridded source that has it.
     disclosure
         The disclosure rules applied to the store's events (default: the study's).
+    con
+        An open connection to the study's store (with its ``observations`` view), e.g. the
+        one of an export in progress: used instead of opening another one.
 
     Returns
     -------
@@ -97,8 +102,7 @@ def colocate(
     unknown = sorted(set(sources) - set(variables))
     if unknown:
         raise HarmonizeError(f"a source is chosen for '{unknown[0]}', which is not among the variables asked for")
-    store = Store(study.store_dir)
-    with store.connect() as con:
+    with _connection(study, con) as con:
         available = con.execute(
             f"""SELECT variable, source_id, {FIXED_LAYER_SQL} AS fixed
                 FROM observations WHERE source_kind = 'gridded' GROUP BY ALL ORDER BY ALL"""
@@ -107,27 +111,11 @@ def colocate(
         samples = _samples(con, events, study, disclosure or Disclosure.for_study(study))
         con.register("_samples", samples)
         con.register("_pairs", pairs)
-        result = con.sql(
-            f"""
-            WITH g AS (
-                SELECT o.source_id AS gridded_source_id, o.event_id AS gridded_event_id, o.variable,
-                       o.cell_id, o.event_start, o.event_end, o.depth_layer, o.value, o.unit, o.n_values,
-                       o.effort AS valid_area_km2
-                FROM observations o JOIN _pairs p
-                  ON o.variable = p.variable AND o.source_id = p.gridded_source_id
-                WHERE o.source_kind = 'gridded'
-            ),
-            wanted AS (SELECT s.*, p.variable, p.gridded_source_id, p.fixed_layer
-                       FROM _samples s CROSS JOIN _pairs p)
-            SELECT w.source_id, w.event_id, w.variable, g.value, g.unit, w.gridded_source_id,
-                   g.gridded_event_id, g.n_values, g.valid_area_km2, g.event_start AS period_start,
-                   g.event_end AS period_end
-            FROM wanted w LEFT JOIN g
-              ON g.variable = w.variable AND g.gridded_source_id = w.gridded_source_id
-             AND {match_sql('w', 'g', 'w.fixed_layer')}
-            ORDER BY w.source_id, w.event_id, w.variable, w.gridded_source_id
-            """
-        ).to_arrow_table().to_pandas()
+        try:
+            result = _values(con)
+        finally:
+            con.unregister("_samples")
+            con.unregister("_pairs")
     unit = pairs.set_index(["variable", "gridded_source_id"])["unit"]
     missing = result["unit"].isna()
     if missing.any():
@@ -135,6 +123,41 @@ def colocate(
         result.loc[missing, "unit"] = unit.reindex(keys).to_numpy()
     result["n_values"] = result["n_values"].astype("Int64")
     return result[COLUMNS]
+
+
+@contextmanager
+def _connection(study: Study, con: duckdb.DuckDBPyConnection | None) -> Iterator[duckdb.DuckDBPyConnection]:
+    """The connection given, or a new read-only one to the study's store (closed afterwards)."""
+    if con is not None:
+        yield con
+        return
+    with Store(study.store_dir).connect() as own:
+        yield own
+
+
+def _values(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
+    """The gridded values of the registered ``_samples`` x ``_pairs`` (null where none matched)."""
+    return con.sql(
+        f"""
+        WITH g AS (
+            SELECT o.source_id AS gridded_source_id, o.event_id AS gridded_event_id, o.variable,
+                   o.cell_id, o.event_start, o.event_end, o.depth_layer, o.value, o.unit, o.n_values,
+                   o.effort AS valid_area_km2
+            FROM observations o JOIN _pairs p
+              ON o.variable = p.variable AND o.source_id = p.gridded_source_id
+            WHERE o.source_kind = 'gridded'
+        ),
+        wanted AS (SELECT s.*, p.variable, p.gridded_source_id, p.fixed_layer
+                   FROM _samples s CROSS JOIN _pairs p)
+        SELECT w.source_id, w.event_id, w.variable, g.value, g.unit, w.gridded_source_id,
+               g.gridded_event_id, g.n_values, g.valid_area_km2, g.event_start AS period_start,
+               g.event_end AS period_end
+        FROM wanted w LEFT JOIN g
+          ON g.variable = w.variable AND g.gridded_source_id = w.gridded_source_id
+         AND {match_sql('w', 'g', 'w.fixed_layer')}
+        ORDER BY w.source_id, w.event_id, w.variable, w.gridded_source_id
+        """
+    ).to_arrow_table().to_pandas()
 
 
 def colocate_wide(

@@ -18,6 +18,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
+from harmonize import twins
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
 from harmonize.adapters.common import codes_in, distinct_present, swapped_position_notes
 from harmonize.adapters.registry import get_adapter, list_adapters
@@ -36,8 +37,10 @@ from harmonize.tagging import (
     tag_depth_layer,
     tag_season,
 )
-from harmonize.twins import twin_settings
 from harmonize.units import density_unit_sql
+
+# the volunteer twins are recomputed at every commit: a hook of the store that the pipeline installs
+twins.install()
 
 logger = logging.getLogger(__name__)
 
@@ -249,7 +252,9 @@ def store_output(
             finished_at=pd.Timestamp.now("UTC").tz_localize(None), rows_read=result.rows_read,
             rows_accepted=result.rows_accepted, rows_quarantined=result.rows_quarantined,
             records_written=result.records_written, records_zero_filled=result.records_zero_filled,
-            profile_file=profile.path.name, duplicates=twin_settings(profile) if _finds_twins(kind) else None,
+            profile_file=profile.path.name,
+            hook_data={twins.HOOK_NAME: twins.twin_settings(profile.section("duplicates"), profile.path)}
+            if _finds_twins(kind) else {},
             file_path=main_path,
         )
 

@@ -21,6 +21,9 @@ from harmonize import twins
 from harmonize.files import fsync_dir
 from harmonize.store import Damage, Store
 
+# taking damaged ingests out recomputes the volunteer twins (the store's commit hook)
+twins.install()
+
 #: Folder of the store where repair moves files that are not live.
 SET_ASIDE_DIR = "set_aside"
 
@@ -90,8 +93,7 @@ def repair(store: Store, apply: bool = False) -> RepairPlan:
                 for ingest_id, reason in reasons.items():
                     con.execute("UPDATE ingests SET status = 'damaged', damage_reason = ? WHERE ingest_id = ?",
                                 [reason, ingest_id])
-                store._define_view(con, temporary=False)
-                twins.refresh(con)
+                store.refresh_live(con)
                 con.execute("COMMIT")
             except BaseException:
                 con.execute("ROLLBACK")

@@ -26,17 +26,18 @@ import os
 import re
 import shutil
 import time
-from collections.abc import Iterator, Sequence
+from collections.abc import Callable, Iterator, Sequence
 from contextlib import contextmanager
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
+from typing import Any
 
 import duckdb
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from harmonize import __version__, interrupts, parts, twins, units
+from harmonize import __version__, faults, interrupts, parts, settings, units
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns
 from harmonize.errors import StoreBusyError, StoreError
 from harmonize.files import file_digest, fsync_dir, fsync_file
@@ -147,6 +148,9 @@ CREATE TABLE IF NOT EXISTS events_without_values (
     source_file VARCHAR,
     source_row BIGINT
 );
+CREATE TABLE IF NOT EXISTS store_flags (
+    record_id VARCHAR NOT NULL, ingest_id VARCHAR NOT NULL, flag VARCHAR NOT NULL
+);
 CREATE TABLE IF NOT EXISTS observation_files (
     ingest_id VARCHAR NOT NULL,
     path VARCHAR NOT NULL,
@@ -163,6 +167,44 @@ ALTER TABLE observation_files ADD COLUMN IF NOT EXISTS size_bytes BIGINT;
 ALTER TABLE ingests ADD COLUMN IF NOT EXISTS damage_reason VARCHAR;
 ALTER TABLE ingests ADD COLUMN IF NOT EXISTS file_path VARCHAR;
 """
+
+
+#: Seconds a process waits for another to release the store (``Settings.lock_timeout_s``).
+DEFAULT_LOCK_TIMEOUT_S = 60.0
+
+#: A commit hook: ``hook(con, record)``, called inside the commit's transaction (``record``
+#: is None for a change of the live set that commits no ingest, e.g. a repair).
+CommitHook = Callable[[duckdb.DuckDBPyConnection, "IngestRecord | None"], None]
+_COMMIT_HOOKS: dict[str, CommitHook] = {}
+
+
+def register_commit_hook(name: str, hook: CommitHook) -> None:
+    """Call ``hook(con, record)`` at every commit, inside its transaction.
+
+    The hook runs after the ingest, its files, quarantine and events are recorded and the
+    views are defined over the new live files, and before COMMIT: what it writes commits or
+    rolls back with the ingest. It may write rows of ``store_flags`` (record_id, ingest_id,
+    flag), which the ``observations`` view adds to the rows' ``flags``, and tables of its
+    own (created by itself). The store knows hooks only by this interface: the layer that
+    needs one registers it (the pipeline registers the volunteer twins of
+    :mod:`harmonize.twins`). Registering a name again replaces its hook.
+    """
+    _COMMIT_HOOKS[name] = hook
+
+
+def unregister_commit_hook(name: str) -> None:
+    """Stop calling the hook registered under ``name`` (no-op when there is none)."""
+    _COMMIT_HOOKS.pop(name, None)
+
+
+def commit_hooks() -> tuple[CommitHook, ...]:
+    """The registered commit hooks, in the order they were first registered."""
+    return tuple(_COMMIT_HOOKS.values())
+
+
+def has_table(con: duckdb.DuckDBPyConnection, name: str) -> bool:
+    """Whether the database holds a table of that name (stores written by older versions may not)."""
+    return bool(con.execute("SELECT count(*) FROM duckdb_tables() WHERE table_name = ?", [name]).fetchall()[0][0])
 
 
 @dataclass
@@ -186,8 +228,9 @@ class IngestRecord:
     records_zero_filled: int
     profile_file: str
     status: str = "complete"
-    #: opportunistic sources: the twin windows of the profile (harmonize.twins)
-    duplicates: twins.TwinSettings | None = None
+    #: what the commit hooks need to know of this ingest, by hook (e.g. the twin windows of a
+    #: volunteer source under "twins"); the store itself never reads it
+    hook_data: dict[str, Any] = field(default_factory=dict)
     #: the main input's path relative to the study folder (as given when outside it)
     file_path: str | None = None
 
@@ -226,7 +269,7 @@ class Store:
                 "path; rename the folder without '?'"
             )
         if lock_timeout_s is None:
-            lock_timeout_s = float(os.environ.get("HARMONIZE_LOCK_TIMEOUT", "60"))
+            lock_timeout_s = _lock_timeout(settings.current().lock_timeout_s)
         self.lock_timeout_s = lock_timeout_s
         self._staging_locks: dict[Path, FileLock] = {}
 
@@ -278,7 +321,6 @@ class Store:
                     self._define_view(con, temporary=True)
             else:
                 con.execute(_SCHEMA_SQL)
-                twins.ensure_tables(con)
                 self._check_version(con)
                 if view:
                     self._define_view(con, temporary=False)
@@ -420,12 +462,17 @@ class Store:
         kind = "TEMP VIEW" if temporary else "VIEW"
         # the parquet rows as written (with the mergeable parts of values that span files);
         # observations_base holds one row per value, the parts of gridded and effort values
-        # merged across the live ingests of their source (harmonize.parts); the observations
-        # view adds the store-wide flags (probable_duplicate, high_count) that harmonize.twins
-        # recomputes at each commit
+        # merged across the live ingests of their source (harmonize.parts)
         con.execute(f"CREATE OR REPLACE {kind} observation_parts AS SELECT {select} FROM {source}")
         con.execute(f"CREATE OR REPLACE {kind} observations_base AS {parts.merged_sql('observation_parts')}")
-        con.execute(f"CREATE OR REPLACE {kind} observations AS {twins.flagged_view_sql(con, 'observations_base')}")
+        self._define_flagged_view(con, temporary)
+
+    def _define_flagged_view(self, con: duckdb.DuckDBPyConnection, temporary: bool) -> None:
+        """(Re)define ``observations`` (and ``current``): ``observations_base`` with the
+        store-wide flags of the ``store_flags`` table (which the commit hooks write, e.g.
+        probable_duplicate and high_count of harmonize.twins) added to ``flags``."""
+        kind = "TEMP VIEW" if temporary else "VIEW"
+        con.execute(f"CREATE OR REPLACE {kind} observations AS {_flagged_view_sql(con, 'observations_base')}")
         # the name docs/store.md gives readers without harmonize: the live rows with every flag
         con.execute(f"CREATE OR REPLACE {kind} current AS SELECT * FROM observations")
 
@@ -522,10 +569,10 @@ class Store:
                 os.replace(part, target)
                 folders.add(target.parent)
                 moved.append((rel.as_posix(), int(n_rows), sha, size))
-                _crash_point("moving")
+                faults.point("moving")
             for folder in sorted(folders, key=lambda f: len(f.parts), reverse=True):
                 fsync_dir(folder)  # the renames durable before the commit that makes them live
-            _crash_point("before_transaction")
+            faults.point("before_transaction")
             with interrupts.deferred():  # an interrupt waits for the commit or the rollback
                 return self._record(con, record, files, moved, staged, quarantine, supersede, masked,
                                     events_without_values)
@@ -582,20 +629,27 @@ class Store:
                 con.execute(f"INSERT INTO events_without_values (ingest_id, {names}) "
                             f"SELECT ?, {names} FROM _incoming_events", [record.ingest_id])
                 con.unregister("_incoming_events")
-                _crash_point("events_without_values")
-            if record.duplicates is not None:
-                twins.record_settings(con, record.ingest_id, record.source_id, record.duplicates)
-            self._define_view(con, temporary=False)
-            # twins span sources and ingests: recomputed over the whole store, in this transaction
-            twins.refresh(con)
-            _crash_point("before_commit")
+                faults.point("events_without_values")
+            self.refresh_live(con, record)
+            faults.point("before_commit")
             con.execute("COMMIT")
-            _crash_point("after_commit")
+            faults.point("after_commit")
         except BaseException:
             _rollback(con)
             raise
         shutil.rmtree(staged, ignore_errors=True)
         return supersede
+
+    def refresh_live(self, con: duckdb.DuckDBPyConnection, record: IngestRecord | None = None) -> None:
+        """After the live set changed, inside the caller's transaction: redefine the views over
+        the live files and run the commit hooks (``record``: the ingest being committed, None
+        for a change that commits no ingest, such as a repair)."""
+        self._define_view(con, temporary=False)
+        # what spans sources and ingests (the volunteer twins) is recomputed over the whole
+        # store by the commit hooks, in this transaction
+        for hook in commit_hooks():
+            hook(con, record)
+        self._define_flagged_view(con, temporary=False)
 
     def _remove_leftovers(self, con: duckdb.DuckDBPyConnection) -> None:
         """Delete what ingests that died left behind: their staging folders, and the files
@@ -705,7 +759,7 @@ class Store:
         """
         cols = ", ".join(f'e."{c}"' for c in EVENTS_WITHOUT_VALUES_COLUMNS)
         with self.connect(view=False) as con:
-            if not twins.has_table(con, "events_without_values"):
+            if not has_table(con, "events_without_values"):
                 return pd.DataFrame({c: pd.Series(dtype=object) for c in EVENTS_WITHOUT_VALUES_COLUMNS})
             sql = f"""SELECT {cols} FROM events_without_values e JOIN ingests i USING (ingest_id)
                       WHERE i.status = 'complete'"""
@@ -832,7 +886,7 @@ class Store:
                    WHERE i.status = 'complete' GROUP BY ALL HAVING i.records_written <> coalesce(sum(f.n_rows), 0)"""
             ).fetchall()
             problems += [f"ingest {i}: records_written {a} but {b} rows in its files" for i, a, b in bad]
-            if twins.has_table(con, "events_without_values"):
+            if has_table(con, "events_without_values"):
                 # an event is either in the observations or among the events without values
                 both = con.execute(
                     """SELECT e.ingest_id, e.event_id FROM events_without_values e
@@ -857,7 +911,7 @@ class Store:
             return []
         traced = ", ".join("'" + k.replace("'", "''") + "'" for k in kinds)
         no_values = ("UNION SELECT ingest_id, source_file, source_row FROM events_without_values "
-                     "WHERE source_row IS NOT NULL" if twins.has_table(con, "events_without_values") else "")
+                     "WHERE source_row IS NOT NULL" if has_table(con, "events_without_values") else "")
         rows = con.execute(
             f"""
             WITH files AS (
@@ -919,10 +973,42 @@ def _rollback(con: duckdb.DuckDBPyConnection) -> None:
         pass
 
 
-def _crash_point(name: str) -> None:
-    """Test hook: HARMONIZE_CRASH_AT=<name> kills the process here (crash-safety tests)."""
-    if os.environ.get("HARMONIZE_CRASH_AT") == name:
-        os.kill(os.getpid(), 9)
+def _lock_timeout(text: str | None) -> float:
+    """The lock timeout of the run's settings (``HARMONIZE_LOCK_TIMEOUT`` on the command line)."""
+    if text is None:
+        return DEFAULT_LOCK_TIMEOUT_S
+    try:
+        value = float(text)
+    except ValueError:
+        value = -1.0
+    if not value >= 0:
+        raise StoreError(f"HARMONIZE_LOCK_TIMEOUT={text!r} is not a number of seconds; write e.g. 60, or unset it")
+    return value
+
+
+def _flagged_view_sql(con: duckdb.DuckDBPyConnection, base: str) -> str:
+    """SELECT for the observations view: ``base`` with the store-wide flags added to ``flags``.
+
+    The join with ``store_flags`` is confined to the source kinds that have flagged rows (the
+    hive partitions of the volunteer kinds), so a query over other kinds never pays for it
+    (about 20x faster on a flag filter over 20 M rows, measured on 2 cores).
+    """
+    if not has_table(con, "store_flags"):
+        return f"SELECT * FROM {base}"
+    cols = [c for c, _ in observation_sql_columns()]
+    plain = ", ".join(f'"{c}"' for c in cols)
+    flagged = [r[0] for r in con.execute(
+        "SELECT DISTINCT i.source_kind FROM store_flags f JOIN ingests i USING (ingest_id) ORDER BY 1").fetchall()]
+    if not flagged:
+        return f"SELECT {plain} FROM {base}"
+    kinds = ", ".join("'" + k.replace("'", "''") + "'" for k in flagged)
+    select = ", ".join(
+        'CASE WHEN f.extra IS NULL THEN b.flags ELSE list_sort(list_distinct(list_concat(b.flags, f.extra))) END AS "flags"'
+        if c == "flags" else f'b."{c}"' for c in cols)
+    return (f"SELECT {plain} FROM {base} WHERE source_kind IS NULL OR source_kind NOT IN ({kinds}) UNION ALL "
+            f"SELECT {select} FROM {base} b LEFT JOIN "
+            "(SELECT record_id, ingest_id, list(DISTINCT flag) AS extra FROM store_flags GROUP BY ALL) f "
+            f"ON f.record_id = b.record_id AND f.ingest_id = b.ingest_id WHERE b.source_kind IN ({kinds})")
 
 
 def _inside(root: Path, rel: str) -> bool:

@@ -27,8 +27,11 @@ Two counts of complete checklists (volunteer effort units) are twins only when t
 overlap in time, and two records of one source and one observer likewise: consecutive
 checklists of a watch, or of the members of a party, are separate effort, not duplicates.
 
-The rule runs in DuckDB over the whole store after every commit (so it also holds when the
-agency survey is ingested after the volunteer file). Candidate pairs come from an equi-join
+The rule runs in DuckDB over the whole store at every commit (so it also holds when the
+agency survey is ingested after the volunteer file): :func:`install` registers
+:func:`on_commit` as a commit hook of the store (:func:`harmonize.store.register_commit_hook`;
+the pipeline installs it), which knows nothing of volunteers or profiles. Candidate pairs come
+from an equi-join
 on (taxon, latitude bin, longitude bin, time bin) with bins at least as wide as the largest
 window, probing the 27 neighbouring bins; the exact test then uses the distance on the local
 tangent plane of the WGS84 ellipsoid, whose radii of curvature M and N follow Snyder 1987,
@@ -46,15 +49,17 @@ factor 2.
 from __future__ import annotations
 
 import math
+from collections.abc import Mapping
 from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
 
 import duckdb
 import numpy as np
 import pandas as pd
 
-from harmonize.contract import observation_sql_columns
 from harmonize.errors import ConfigError
-from harmonize.profile import Profile
+from harmonize.store import IngestRecord, has_table, register_commit_hook
 
 DEFAULT_DISTANCE_KM = 2.0
 DEFAULT_MINUTES = 60.0
@@ -85,9 +90,6 @@ CREATE TABLE IF NOT EXISTS twins (
     source_id VARCHAR NOT NULL, twin_source_id VARCHAR NOT NULL, variable VARCHAR,
     distance_km DOUBLE NOT NULL, minutes DOUBLE NOT NULL
 );
-CREATE TABLE IF NOT EXISTS store_flags (
-    record_id VARCHAR NOT NULL, ingest_id VARCHAR NOT NULL, flag VARCHAR NOT NULL
-);
 """
 
 
@@ -100,30 +102,34 @@ class TwinSettings:
     rank: int | None = None
 
 
-def twin_settings(profile: Profile) -> TwinSettings:
-    """The validated ``[duplicates]`` section of a profile whose kind finds twins
-    (``Adapter.finds_twins``: volunteer records).
+#: The key of the twin windows in :attr:`harmonize.store.IngestRecord.hook_data`.
+HOOK_NAME = "twins"
+
+
+def twin_settings(section: Mapping[str, Any], path: str | Path) -> TwinSettings:
+    """The validated ``[duplicates]`` section (``section``) of the profile at ``path``, whose
+    kind finds twins (``Adapter.finds_twins``: volunteer records).
 
     Raises
     ------
     ConfigError
         Unknown key, a value that is not a positive number, or a window above the maximum.
     """
-    sec = profile.section("duplicates")
+    sec = section
     unknown = sorted(set(sec) - {"distance_km", "minutes", "rank"})
     if unknown:
-        raise ConfigError(profile.path, f"duplicates.{unknown[0]}",
+        raise ConfigError(path, f"duplicates.{unknown[0]}",
                           "unknown key; expected distance_km, minutes or rank")
     values: dict[str, float] = {}
     for key, default, top in (("distance_km", DEFAULT_DISTANCE_KM, MAX_DISTANCE_KM),
                               ("minutes", DEFAULT_MINUTES, MAX_MINUTES)):
         value = sec.get(key, default)
         if isinstance(value, bool) or not isinstance(value, int | float) or not 0 < value <= top:
-            raise ConfigError(profile.path, f"duplicates.{key}", f"expected a number above 0 and at most {top:g}, got {value!r}")
+            raise ConfigError(path, f"duplicates.{key}", f"expected a number above 0 and at most {top:g}, got {value!r}")
         values[key] = float(value)
     rank = sec.get("rank")
     if rank is not None and (isinstance(rank, bool) or not isinstance(rank, int) or rank < 0):
-        raise ConfigError(profile.path, "duplicates.rank", f"expected a whole number 0 or more (0 = kept first), got {rank!r}")
+        raise ConfigError(path, "duplicates.rank", f"expected a whole number 0 or more (0 = kept first), got {rank!r}")
     return TwinSettings(values["distance_km"], values["minutes"], rank)
 
 
@@ -183,27 +189,23 @@ def record_settings(con: duckdb.DuckDBPyConnection, ingest_id: str, source_id: s
                 [ingest_id, source_id, settings.distance_km, settings.minutes, settings.rank])
 
 
-def has_table(con: duckdb.DuckDBPyConnection, name: str) -> bool:
-    """Whether the database holds a table of that name (stores written by older versions may not)."""
-    return bool(con.execute("SELECT count(*) FROM duckdb_tables() WHERE table_name = ?", [name]).fetchall()[0][0])
+def on_commit(con: duckdb.DuckDBPyConnection, record: IngestRecord | None) -> None:
+    """The store's commit hook: record the ingest's windows (``record.hook_data["twins"]``, for
+    volunteer sources) and recompute the twins and store-wide flags over the whole store."""
+    ensure_tables(con)
+    settings = None if record is None else record.hook_data.get(HOOK_NAME)
+    if settings is not None:
+        record_settings(con, record.ingest_id, record.source_id, settings)
+    refresh(con)
 
 
-def flagged_view_sql(con: duckdb.DuckDBPyConnection, base: str) -> str:
-    """SELECT for the observations view: ``base`` with the store-wide flags added to ``flags``."""
-    cols = [c for c, _ in observation_sql_columns()]
-    if not has_table(con, "store_flags"):
-        return f"SELECT * FROM {base}"
-    plain = ", ".join(f'"{c}"' for c in cols)
-    select = ", ".join(
-        'CASE WHEN f.extra IS NULL THEN b.flags ELSE list_sort(list_distinct(list_concat(b.flags, f.extra))) END AS "flags"'
-        if c == "flags" else f'b."{c}"' for c in cols)
-    # store_flags only ever holds rows of opportunistic sources: the join is confined to their
-    # hive partitions, so a query over other kinds never pays for it (about 20x faster on a
-    # flag filter over 20 M rows, measured on 2 cores)
-    return (f"SELECT {plain} FROM {base} WHERE source_kind IS DISTINCT FROM 'opportunistic' UNION ALL "
-            f"SELECT {select} FROM {base} b LEFT JOIN "
-            "(SELECT record_id, ingest_id, list(DISTINCT flag) AS extra FROM store_flags GROUP BY ALL) f "
-            "ON f.record_id = b.record_id AND f.ingest_id = b.ingest_id WHERE b.source_kind = 'opportunistic'")
+def install() -> None:
+    """Register :func:`on_commit` as the store's commit hook ``"twins"`` (idempotent).
+
+    Called by the layers that change the live set (the pipeline, :mod:`harmonize.ingest`, and
+    :mod:`harmonize.repair`).
+    """
+    register_commit_hook(HOOK_NAME, on_commit)
 
 
 _RANK_SQL = "CASE o.provider_type " + " ".join(f"WHEN '{k}' THEN {v}" for k, v in DEFAULT_RANKS.items()) + " ELSE 3 END"

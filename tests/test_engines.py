@@ -190,11 +190,18 @@ def test_distance_formula_matches_geographiclib() -> None:
 
 
 def test_engine_choice_and_errors(monkeypatch: pytest.MonkeyPatch) -> None:
+    from harmonize import settings
+
     assert current_engine().name == "duckdb"
+    # the library reads no environment variable: only the run's settings choose the engine
     monkeypatch.setenv("HARMONIZE_ENGINE", "dask")
-    assert current_engine().name == "dask"
-    with engine_scope("duckdb"):
-        assert current_engine().name == "duckdb"
+    assert current_engine().name == "duckdb"
+    with settings.applied(settings.from_environment({"HARMONIZE_ENGINE": "dask",
+                                                     "HARMONIZE_DASK_SCHEDULER": "tcp://h:8786"})):
+        assert current_engine() == EngineChoice("dask", "tcp://h:8786")
+        with engine_scope("duckdb"):
+            assert current_engine().name == "duckdb"
+    assert current_engine().name == "duckdb"
     with pytest.raises(HarmonizeError, match="unknown engine 'spark'; choose one of duckdb, dask"):
         check_engine("spark")
 
@@ -218,11 +225,13 @@ def test_cli_engine_option(study_dir: Path) -> None:
     assert "coverage of" in audit_run.stdout
 
 
-def test_scratch_folder_must_exist(monkeypatch: pytest.MonkeyPatch, tmp_path: Path) -> None:
+def test_scratch_folder_must_exist(tmp_path: Path) -> None:
+    from harmonize import settings
     from harmonize.engines import scratch_parent
 
-    monkeypatch.setenv("HARMONIZE_DASK_SCRATCH", str(tmp_path / "missing"))
-    with pytest.raises(HarmonizeError, match="HARMONIZE_DASK_SCRATCH=.*missing is not an existing folder"):
-        scratch_parent()
-    monkeypatch.setenv("HARMONIZE_DASK_SCRATCH", str(tmp_path))
-    assert scratch_parent() == str(tmp_path)
+    with settings.applied(settings.from_environment({"HARMONIZE_DASK_SCRATCH": str(tmp_path / "missing")})):
+        with pytest.raises(HarmonizeError, match="HARMONIZE_DASK_SCRATCH=.*missing is not an existing folder"):
+            scratch_parent()
+    with settings.applied(settings.Settings(dask_scratch=str(tmp_path))):
+        assert scratch_parent() == str(tmp_path)
+    assert scratch_parent() is None

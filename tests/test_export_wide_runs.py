@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import datetime as dt
+import tempfile
 from pathlib import Path
 
 import pandas as pd
@@ -157,11 +158,16 @@ def test_read_wide_in_runs_equals_one_pass(study: Study) -> None:
 
 
 def test_run_rows_from_the_environment(study: Study, monkeypatch: pytest.MonkeyPatch) -> None:
+    from harmonize import settings
+
+    # read at the command line's boundary into the run's settings, never by the library itself
     monkeypatch.setenv(RUN_ROWS_ENV, "1")
-    assert _runs(study, None) == _runs(study, TINY)
-    monkeypatch.setenv(RUN_ROWS_ENV, "a few")
-    with pytest.raises(HarmonizeError, match=RUN_ROWS_ENV):
-        _runs(study, None)
+    assert _runs(study, None) == _runs(study, ONE_PASS) != _runs(study, TINY)
+    with settings.applied(settings.from_environment({RUN_ROWS_ENV: "1"})):
+        assert _runs(study, None) == _runs(study, TINY)
+    with settings.applied(settings.from_environment({RUN_ROWS_ENV: "a few"})):
+        with pytest.raises(HarmonizeError, match=RUN_ROWS_ENV):
+            _runs(study, None)
     with pytest.raises(HarmonizeError, match="at least 1 row"):
         _runs(study, 0)
 
@@ -181,19 +187,26 @@ def test_safe_cuts_need_ordered_starts_and_no_split_event() -> None:
     assert _safe_cuts(groups, {"a": [(2000, 2002)]}) == [False, False, True, False, True, True]
 
 
-def test_memory_limit_and_spill_folder(study: Study, monkeypatch: pytest.MonkeyPatch) -> None:
+def test_memory_limit_and_spill_folder(study: Study, tmp_path: Path) -> None:
+    from harmonize import settings
+
+    out = tmp_path / "outputs" / "wide.parquet"
+    out.parent.mkdir()
     with open_selection(study, ExportFilters()) as (con, _counts):
         default = con.execute("SELECT current_setting('memory_limit')").fetchall()[0][0]
-        with bounded_memory(con, study.store_dir, "300MB") as spill:
+        with bounded_memory(con, "300MB", beside=out) as spill:
             limit, temp = con.execute(
                 "SELECT current_setting('memory_limit'), current_setting('temp_directory')").fetchall()[0]
             assert limit == "286.1 MiB"   # DuckDB shows 300 MB (10^6 bytes) in MiB
-            assert Path(temp) == spill and spill.parent == study.store_dir / "staging" and spill.is_dir()
+            # beside the output, never inside the store
+            assert Path(temp) == spill and spill.parent == out.parent and spill.is_dir()
+            assert not spill.resolve().is_relative_to(study.store_dir.resolve())
         assert not spill.exists()
         assert con.execute("SELECT current_setting('memory_limit')").fetchall()[0][0] == default
-        monkeypatch.setenv(MEMORY_LIMIT_ENV, "400MB")
-        with bounded_memory(con, study.store_dir):
+        with bounded_memory(con) as spill:   # no output file (read_wide): a system temporary folder
+            assert spill.parent == Path(tempfile.gettempdir())
+        with settings.applied(settings.from_environment({MEMORY_LIMIT_ENV: "400MB"})), bounded_memory(con):
             assert con.execute("SELECT current_setting('memory_limit')").fetchall()[0][0] == "381.4 MiB"
-    monkeypatch.setenv(MEMORY_LIMIT_ENV, "lots")
-    with pytest.raises(HarmonizeError, match=MEMORY_LIMIT_ENV):
-        read_wide(study)
+    with settings.applied(settings.from_environment({MEMORY_LIMIT_ENV: "lots"})):
+        with pytest.raises(HarmonizeError, match=MEMORY_LIMIT_ENV):
+            read_wide(study)

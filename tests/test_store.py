@@ -16,19 +16,29 @@ from harmonize import Store, load_study
 BIN = Path(sys.executable).parent / "harmonize"
 
 
-def _ingest(study_dir: Path, env: dict[str, str] | None = None,
-            profile: str = "trawl_agency") -> subprocess.CompletedProcess[str]:
+# harmonize's command line in a child process that first installs a kill at one fault point
+_KILLED_AT = """
+import sys
+from harmonize import faults
+from harmonize.cli.app import main
+if sys.argv[1]:
+    faults.install(sys.argv[1], faults.kill)
+main(sys.argv[2:])
+"""
+
+
+def _ingest(study_dir: Path, crash_at: str = "", profile: str = "trawl_agency") -> subprocess.CompletedProcess[str]:
     return subprocess.run(
-        [str(BIN), "--study", str(study_dir), "ingest", profile,
+        [sys.executable, "-c", _KILLED_AT, crash_at, "--study", str(study_dir), "ingest", profile,
          "--events", str(study_dir / "hauls_messy.csv"), "--records", str(study_dir / "catch_messy.csv")],
-        capture_output=True, text=True, timeout=120, env={**os.environ, **(env or {})},
+        capture_output=True, text=True, timeout=120,
     )
 
 
 @pytest.mark.subprocess
 @pytest.mark.parametrize("point", ["moving", "before_transaction", "before_commit", "after_commit"])
 def test_killed_ingest_leaves_all_or_nothing(study_dir: Path, point: str) -> None:
-    killed = _ingest(study_dir, {"HARMONIZE_CRASH_AT": point})
+    killed = _ingest(study_dir, point)
     assert killed.returncode == -9  # SIGKILL
     store = Store(load_study(study_dir).store_dir)
     assert store.check() == []
@@ -60,7 +70,7 @@ def test_killed_ingest_with_an_empty_haul_leaves_all_or_nothing(study_dir: Path,
     # events_without_values in the ingest's transaction, so a kill leaves it with the ingest or not at all.
     text = (study_dir / "profiles" / "trawl_agency.toml").read_text()
     (study_dir / "profiles" / "trawl_bare.toml").write_text(text.replace('protocol = "keldmar_bottom_trawl"\n', ""))
-    killed = _ingest(study_dir, {"HARMONIZE_CRASH_AT": point}, profile="trawl_bare")
+    killed = _ingest(study_dir, point, profile="trawl_bare")
     assert killed.returncode == -9  # SIGKILL
     store = Store(load_study(study_dir).store_dir)
     committed = point == "after_commit"

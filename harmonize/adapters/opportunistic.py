@@ -162,7 +162,7 @@ class OpportunisticAdapter(Adapter):
         study: Study,
         progress: ProgressCallback | None = None,
     ) -> AdapterOutput:
-        twin_settings(profile)  # a bad [duplicates] section fails before any reading
+        twin_settings(profile.section("duplicates"), profile.path)  # a bad [duplicates] fails before any reading
         earliest = _earliest(profile)
         presence_tokens = _presence_tokens(profile)
         rej = Rejections()

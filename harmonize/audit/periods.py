@@ -26,8 +26,8 @@ import numpy as np
 import pandas as pd
 
 from harmonize.audit.metrics import _KEPT, _year_filter
+from harmonize.store import has_table
 from harmonize.tagging import season_year_offsets
-from harmonize.twins import has_table
 
 COLUMNS = ["source_kind", "source_id", "season_year", "season", "status"]
 

@@ -16,7 +16,7 @@ import pandas as pd
 from harmonize.adapters.registry import kinds
 from harmonize.audit.metrics import _KEPT, DUPLICATE_FLAG, _year_filter
 from harmonize.disclosure import Disclosure
-from harmonize.twins import has_table
+from harmonize.store import has_table
 
 
 def effort_total_excluded() -> tuple[str, ...]:

@@ -3,9 +3,10 @@
 Two steps can run on Dask (dask.distributed): turning vessel pings into fishing hours per
 cell, and the coverage audit's aggregations over the store. Everything else, and both steps
 by default, runs in DuckDB. The engine is chosen per call (``run(..., engine="dask")``,
-``audit(..., engine="dask")``, the CLI's ``--engine``) or for a whole process with the
-environment variable ``HARMONIZE_ENGINE``; ``HARMONIZE_DASK_SCHEDULER`` points the Dask
-engine at a running cluster. See docs/performance.md for when to switch.
+``audit(..., engine="dask")``, the CLI's ``--engine``) or for a whole run by the run's
+settings (:mod:`harmonize.settings`; on the command line the environment variable
+``HARMONIZE_ENGINE``, and ``HARMONIZE_DASK_SCHEDULER`` to point the Dask engine at a running
+cluster). See docs/performance.md for when to switch.
 """
 
 from __future__ import annotations
@@ -16,16 +17,17 @@ from contextlib import contextmanager
 from contextvars import ContextVar
 from dataclasses import dataclass
 
+from harmonize import settings
 from harmonize.errors import HarmonizeError
 
 #: The engines a step can run on. ``duckdb`` is built in; ``dask`` needs the ``dask`` extra.
 ENGINES = ("duckdb", "dask")
-#: Environment variable choosing the engine for a whole process.
-ENGINE_ENV = "HARMONIZE_ENGINE"
+#: Environment variable choosing the engine of a command-line run (read by the CLI only).
+ENGINE_ENV = settings.ENVIRONMENT["engine"]
 #: Environment variable naming a running Dask scheduler (e.g. ``tcp://scheduler-host:8786``).
-SCHEDULER_ENV = "HARMONIZE_DASK_SCHEDULER"
+SCHEDULER_ENV = settings.ENVIRONMENT["dask_scheduler"]
 #: Environment variable naming a scratch folder that the Dask workers can read.
-SCRATCH_ENV = "HARMONIZE_DASK_SCRATCH"
+SCRATCH_ENV = settings.ENVIRONMENT["dask_scratch"]
 
 
 @dataclass(frozen=True)
@@ -40,14 +42,15 @@ _CURRENT: ContextVar[EngineChoice | None] = ContextVar("harmonize_engine", defau
 
 
 def check_engine(engine: str | None) -> str:
-    """The engine's name, checked; ``None`` means ``HARMONIZE_ENGINE`` or else ``duckdb``.
+    """The engine's name, checked; ``None`` means the run's setting (``HARMONIZE_ENGINE`` on the
+    command line) or else ``duckdb``.
 
     Raises
     ------
     HarmonizeError
         For an unknown engine, or ``dask`` when Dask is not installed (naming the extra).
     """
-    name = (engine or os.environ.get(ENGINE_ENV) or "duckdb").strip().lower()
+    name = (engine or settings.current().engine or "duckdb").strip().lower()
     if name not in ENGINES:
         raise HarmonizeError(f"unknown engine {name!r}; choose one of {', '.join(ENGINES)}")
     if name == "dask":
@@ -74,20 +77,20 @@ def engine_scope(engine: str | None = None, scheduler: str | None = None) -> Ite
 
 
 def current_engine() -> EngineChoice:
-    """The engine chosen by the enclosing :func:`engine_scope`, else by the environment."""
+    """The engine chosen by the enclosing :func:`engine_scope`, else by the run's settings."""
     choice = _CURRENT.get()
-    return choice if choice is not None else EngineChoice(check_engine(None))
+    return choice if choice is not None else EngineChoice(check_engine(None), settings.current().dask_scheduler)
 
 
 def scratch_parent() -> str | None:
-    """The folder named by ``HARMONIZE_DASK_SCRATCH`` (checked), or None for the system default.
+    """The run's Dask scratch folder (``HARMONIZE_DASK_SCRATCH``; checked), or None for the system default.
 
     Raises
     ------
     HarmonizeError
         When the variable names something that is not an existing folder.
     """
-    value = os.environ.get(SCRATCH_ENV)
+    value = settings.current().dask_scratch
     if not value:
         return None
     if not os.path.isdir(value):

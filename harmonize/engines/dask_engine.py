@@ -35,7 +35,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from harmonize.engines import SCHEDULER_ENV
+from harmonize import settings
 from harmonize.tagging.season import local_times
 
 # WGS84 ellipsoid (NIMA TR8350.2, 2000); the same constants as the SQL distance macro
@@ -58,14 +58,14 @@ CELL_KEYS = ["code", "season_year", "season", "gear", "depth_layer"]
 def dask_client(scheduler: str | None = None) -> Iterator[Any]:
     """A ``distributed.Client`` for the duration of a step.
 
-    Uses, in this order: the ``scheduler`` address given; the address in the environment
-    variable ``HARMONIZE_DASK_SCHEDULER``; the client already active in this process
+    Uses, in this order: the ``scheduler`` address given; the run's setting
+    (:mod:`harmonize.settings`; ``HARMONIZE_DASK_SCHEDULER`` on the command line); the client already active in this process
     (``distributed.default_client()``); otherwise a local cluster of threads bound to the
     loopback interface (no dashboard), closed afterwards.
     """
     from distributed import Client, LocalCluster, default_client
 
-    address = scheduler or os.environ.get(SCHEDULER_ENV)
+    address = scheduler or settings.current().dask_scheduler
     if address:
         client = Client(address)
         try:

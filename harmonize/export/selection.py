@@ -9,10 +9,9 @@ added. The heavy lifting stays in DuckDB so that exports scale with the store, n
 
 from __future__ import annotations
 
-import os
 import re
+import shutil
 import tempfile
-import uuid
 from collections.abc import Iterable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -21,7 +20,7 @@ from typing import Any
 
 import duckdb
 
-from harmonize import parts
+from harmonize import parts, settings
 from harmonize.adapters.registry import kinds
 from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
@@ -43,8 +42,9 @@ DUPLICATE_FLAG = "probable_duplicate"
 BASE_VIEW = "export_base"
 #: DuckDB working memory of an export (its pivots and sorts spill to disk beyond it).
 DEFAULT_MEMORY_LIMIT = "2GB"
-#: Environment variable overriding :data:`DEFAULT_MEMORY_LIMIT` (DuckDB size text: "4GB", "512MB").
-MEMORY_LIMIT_ENV = "HARMONIZE_EXPORT_MEMORY_LIMIT"
+#: Environment variable overriding :data:`DEFAULT_MEMORY_LIMIT` on the command line (DuckDB size
+#: text: "4GB", "512MB"; :mod:`harmonize.settings`).
+MEMORY_LIMIT_ENV = settings.ENVIRONMENT["export_memory_limit"]
 
 _YEAR_RANGE = re.compile(r"^\s*(\d{4})\s*(?:(?:-|\.\.)\s*(\d{4}))?\s*$")
 
@@ -243,27 +243,29 @@ def open_selection(study: Study, filters: ExportFilters, rules: Disclosure | Non
 
 
 def export_memory_limit(memory_limit: str | None = None) -> str:
-    """The memory limit of an export: the one given, else ``HARMONIZE_EXPORT_MEMORY_LIMIT``, else 2GB."""
-    text = memory_limit or os.environ.get(MEMORY_LIMIT_ENV) or DEFAULT_MEMORY_LIMIT
+    """The memory limit of an export: the one given, else the run's setting
+    (``HARMONIZE_EXPORT_MEMORY_LIMIT`` on the command line), else 2GB."""
+    text = memory_limit or settings.current().export_memory_limit or DEFAULT_MEMORY_LIMIT
     return str(text).strip()
 
 
 @contextmanager
-def bounded_memory(con: duckdb.DuckDBPyConnection, store_dir: Path, memory_limit: str | None = None) -> Iterator[Path]:
-    """Give ``con`` a memory limit and a private spill folder inside the store's staging folder.
+def bounded_memory(con: duckdb.DuckDBPyConnection, memory_limit: str | None = None,
+                   beside: Path | None = None) -> Iterator[Path]:
+    """Give ``con`` a memory limit and a private spill folder outside the store.
 
-    DuckDB spills its hash tables and sorts to the folder beyond the limit. The folder
-    (``store/staging/export-<id>/``, locked by this process so that the store's next
-    writer removes it should this process die) is deleted afterwards, and the connection's
-    settings are reset. Where the store folder cannot be written, a system temporary folder
-    is used. Raises HarmonizeError when the limit is not a size DuckDB understands.
+    DuckDB spills its hash tables and sorts to the folder beyond the limit. The folder is
+    made beside the output file ``beside`` (``.harmonize-spill-<random>``: on the disk the
+    user chose for the output, which a large spill needs), else, or where that folder
+    cannot be written, in the system's temporary folder. It is deleted afterwards and the
+    connection's settings are reset; the store folder is never written. Raises
+    HarmonizeError when the limit is not a size DuckDB understands.
     """
     limit = export_memory_limit(memory_limit)
-    store = Store(store_dir)
     try:
-        spill = store.staging_dir(f"export-{uuid.uuid4().hex[:12]}")
+        spill = Path(tempfile.mkdtemp(prefix=".harmonize-spill-", dir=None if beside is None else beside.parent))
     except OSError:
-        spill = Path(tempfile.mkdtemp(prefix="harmonize-export-"))
+        spill = Path(tempfile.mkdtemp(prefix="harmonize-spill-"))
     try:
         try:
             con.execute(f"SET memory_limit = {sql_text(limit)}")
@@ -279,7 +281,7 @@ def bounded_memory(con: duckdb.DuckDBPyConnection, store_dir: Path, memory_limit
                 con.execute(f"RESET {setting}")
             except duckdb.Error:
                 pass   # the connection is closing anyway
-        store.discard(spill)
+        shutil.rmtree(spill, ignore_errors=True)
 
 
 def prepare_target(out: str | Path, suffixes: Sequence[str]) -> Path:

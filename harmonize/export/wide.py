@@ -29,7 +29,6 @@ community ecology", Trends Ecol. Evol. 30:766-779). Rules:
 from __future__ import annotations
 
 import json
-import os
 import shutil
 from collections.abc import Sequence
 from pathlib import Path
@@ -40,6 +39,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
+from harmonize import settings
 from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
 from harmonize.export.atomic import all_or_nothing
@@ -74,8 +74,8 @@ EVENT_COLUMNS = (
 _COVARIATES_VIEW = "export_linked_covariates"
 #: Sample rows of the selection above which the wide table is pivoted in runs (see :func:`wide_runs`).
 DEFAULT_RUN_ROWS = 5_000_000
-#: Environment variable overriding :data:`DEFAULT_RUN_ROWS` (tests force tiny runs with it).
-RUN_ROWS_ENV = "HARMONIZE_WIDE_RUN_ROWS"
+#: Environment variable overriding :data:`DEFAULT_RUN_ROWS` on the command line (:mod:`harmonize.settings`).
+RUN_ROWS_ENV = settings.ENVIRONMENT["wide_run_rows"]
 #: Sort key of a null season year (its rows have no start time: they sort last).
 _NULL_YEAR = 2**31 - 1
 #: Rows per Arrow batch when runs are streamed into one parquet file (DuckDB's row group size).
@@ -195,9 +195,10 @@ def wide_sql(taxa: Sequence[str], physical: Sequence[str], covariate_columns: Se
 
 
 def wide_run_rows(run_rows: int | None = None) -> int:
-    """Selection rows per run: the number given, else ``HARMONIZE_WIDE_RUN_ROWS``, else 5 million."""
+    """Selection rows per run: the number given, else the run's setting (``HARMONIZE_WIDE_RUN_ROWS``
+    on the command line), else 5 million."""
     if run_rows is None:
-        text = os.environ.get(RUN_ROWS_ENV, "").strip()
+        text = (settings.current().wide_run_rows or "").strip()
         try:
             run_rows = int(float(text)) if text else DEFAULT_RUN_ROWS
         except ValueError:
@@ -304,18 +305,19 @@ def _run_condition(run: list[tuple[str, int]]) -> str:
     return " OR ".join(parts)
 
 
-def linked_covariates(study: Study, events: pd.DataFrame, variables: Sequence[str]) -> pd.DataFrame | None:
+def linked_covariates(study: Study, events: pd.DataFrame, variables: Sequence[str],
+                      con: Any = None) -> pd.DataFrame | None:
     """Gridded values linked to sample events by :mod:`harmonize.colocate`, one column each.
 
     Columns are named ``gridded_<variable>``, or ``gridded_<variable>__<source_id>`` where
     several gridded sources provide a variable. Returns None when there is nothing to link
-    (no gridded variables or no events).
+    (no gridded variables or no events). ``con``: the export's store connection, shared.
     """
     if not len(variables) or events.empty:
         return None
     from harmonize.colocate import colocate
 
-    long = colocate(study, list(variables), events)
+    long = colocate(study, list(variables), events, con=con)
     if long.empty:
         return None
     n_sources = long.groupby("variable")["gridded_source_id"].transform("nunique")
@@ -338,7 +340,7 @@ def _resolve_covariates(con: Any, study: Study, covariates: pd.DataFrame | None,
                                 any_value(lon) AS lon, any_value(cell_id) AS cell_id,
                                 any_value(depth_layer) AS depth_layer
                          FROM {BASE_VIEW} WHERE {_samples_sql()} GROUP BY ALL""").to_arrow_table().to_pandas()
-    linked = linked_covariates(study, events, gridded)
+    linked = linked_covariates(study, events, gridded, con)
     if linked is None:
         return None, ["no gridded values were linked to events (no gridded variables in the store, "
                       "or harmonize.colocate is not installed)"]
@@ -367,7 +369,7 @@ def read_wide(study: Study, filters: ExportFilters | None = None, quantity: str 
               run_rows: int | None = None, disclosure: Disclosure | None = None) -> pd.DataFrame:
     """The wide table as a DataFrame; see the module docstring and :func:`export_wide`."""
     filters = filters or ExportFilters()
-    with open_selection(study, filters, disclosure) as (con, _counts), bounded_memory(con, study.store_dir, memory_limit):
+    with open_selection(study, filters, disclosure) as (con, _counts), bounded_memory(con, memory_limit):
         covariates, _notes = _resolve_covariates(con, study, covariates, link_gridded)
         extra = _register_covariates(con, covariates)
         taxa, physical = wide_columns(con, quantity, by_life_stage)
@@ -383,8 +385,8 @@ def export_wide(study: Study, out: str | Path, filters: ExportFilters | None = N
                 run_rows: int | None = None, disclosure: Disclosure | None = None) -> ExportResult:
     """Write the wide table to ``out`` (parquet or CSV by suffix) with its provenance.
 
-    DuckDB works within ``memory_limit`` and spills to a folder inside the store's staging
-    folder (deleted afterwards). A selection of more than ``run_rows`` sample rows is pivoted
+    DuckDB works within ``memory_limit`` and spills to a folder beside the output (deleted
+    afterwards; never inside the store). A selection of more than ``run_rows`` sample rows is pivoted
     in runs of consecutive season years per source (:func:`wide_runs`), each run written to
     the file in turn: the file is the same as a one-pass export, row for row and column for
     column, but the pivot never holds the whole selection.
@@ -417,7 +419,7 @@ def export_wide(study: Study, out: str | Path, filters: ExportFilters | None = N
     path = prepare_target(out, SUFFIXES)
     filters = filters or ExportFilters()
     with open_selection(study, filters, disclosure) as (con, counts), \
-            bounded_memory(con, study.store_dir, memory_limit) as spill:
+            bounded_memory(con, memory_limit, beside=path) as spill:
         notes = []
         covariates, linked_notes = _resolve_covariates(con, study, covariates, link_gridded)
         notes += linked_notes

@@ -18,7 +18,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from harmonize import twins
+from harmonize import twin_windows, twins
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
 from harmonize.adapters.common import codes_in, distinct_present, swapped_position_notes
 from harmonize.adapters.registry import get_adapter, list_adapters
@@ -253,7 +253,7 @@ def store_output(
             rows_accepted=result.rows_accepted, rows_quarantined=result.rows_quarantined,
             records_written=result.records_written, records_zero_filled=result.records_zero_filled,
             profile_file=profile.path.name,
-            hook_data={twins.HOOK_NAME: twins.twin_settings(profile.section("duplicates"), profile.path)}
+            hook_data={twin_windows.HOOK_NAME: twin_windows.twin_settings(profile.section("duplicates"), profile.path)}
             if _finds_twins(kind) else {},
             file_path=main_path,
         )

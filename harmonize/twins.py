@@ -49,23 +49,14 @@ factor 2.
 from __future__ import annotations
 
 import math
-from collections.abc import Mapping
-from dataclasses import dataclass
-from pathlib import Path
-from typing import Any
 
 import duckdb
 import numpy as np
 import pandas as pd
 
-from harmonize.errors import ConfigError
 from harmonize.store import IngestRecord, has_table, register_commit_hook
+from harmonize.twin_windows import HOOK_NAME, TwinSettings
 
-DEFAULT_DISTANCE_KM = 2.0
-DEFAULT_MINUTES = 60.0
-#: Windows above these are refused: they would link unrelated sightings (common practice).
-MAX_DISTANCE_KM = 50.0
-MAX_MINUTES = 7 * 24 * 60.0
 DEFAULT_RANKS = {"agency": 0, "model": 0, "remote_sensing": 0, "industry": 1, "volunteer": 2}
 HIGH_COUNT_MIN_N = 20
 #: A count more than this many times its would-be twin's count is another sighting: two
@@ -91,46 +82,6 @@ CREATE TABLE IF NOT EXISTS twins (
     distance_km DOUBLE NOT NULL, minutes DOUBLE NOT NULL
 );
 """
-
-
-@dataclass(frozen=True)
-class TwinSettings:
-    """The twin windows of one opportunistic source (profile ``[duplicates]``)."""
-
-    distance_km: float = DEFAULT_DISTANCE_KM
-    minutes: float = DEFAULT_MINUTES
-    rank: int | None = None
-
-
-#: The key of the twin windows in :attr:`harmonize.store.IngestRecord.hook_data`.
-HOOK_NAME = "twins"
-
-
-def twin_settings(section: Mapping[str, Any], path: str | Path) -> TwinSettings:
-    """The validated ``[duplicates]`` section (``section``) of the profile at ``path``, whose
-    kind finds twins (``Adapter.finds_twins``: volunteer records).
-
-    Raises
-    ------
-    ConfigError
-        Unknown key, a value that is not a positive number, or a window above the maximum.
-    """
-    sec = section
-    unknown = sorted(set(sec) - {"distance_km", "minutes", "rank"})
-    if unknown:
-        raise ConfigError(path, f"duplicates.{unknown[0]}",
-                          "unknown key; expected distance_km, minutes or rank")
-    values: dict[str, float] = {}
-    for key, default, top in (("distance_km", DEFAULT_DISTANCE_KM, MAX_DISTANCE_KM),
-                              ("minutes", DEFAULT_MINUTES, MAX_MINUTES)):
-        value = sec.get(key, default)
-        if isinstance(value, bool) or not isinstance(value, int | float) or not 0 < value <= top:
-            raise ConfigError(path, f"duplicates.{key}", f"expected a number above 0 and at most {top:g}, got {value!r}")
-        values[key] = float(value)
-    rank = sec.get("rank")
-    if rank is not None and (isinstance(rank, bool) or not isinstance(rank, int) or rank < 0):
-        raise ConfigError(path, "duplicates.rank", f"expected a whole number 0 or more (0 = kept first), got {rank!r}")
-    return TwinSettings(values["distance_km"], values["minutes"], rank)
 
 
 def local_distance_km(lon1: np.ndarray, lat1: np.ndarray, lon2: np.ndarray, lat2: np.ndarray) -> np.ndarray:

@@ -30,7 +30,7 @@ import numpy as np
 import pandas as pd
 from defusedxml import DefusedXmlException
 
-from harmonize.adapters.reading import MAX_FIELD_CHARS, RawTable, file_sha256
+from harmonize.adapters.reading import MAX_FIELD_CHARS, RawTable, csv_field_limit, file_sha256
 from harmonize.errors import InputFileError
 
 DWC = "http://rs.tdwg.org/dwc/terms/"
@@ -374,7 +374,6 @@ def _parse_member(path: Path, reader: _MemberReader, spec: _FileSpec,
         text = data.decode(encoding)
     except (UnicodeDecodeError, LookupError) as exc:
         raise InputFileError(path, f"member '{spec.location}' is not {spec.encoding} text ({exc})") from None
-    csv.field_size_limit(MAX_FIELD_CHARS)
     kwargs: dict[str, object] = {"delimiter": spec.delimiter}
     if spec.quote:
         kwargs["quotechar"] = spec.quote
@@ -383,9 +382,10 @@ def _parse_member(path: Path, reader: _MemberReader, spec: _FileSpec,
     reader_ = csv.reader(io.StringIO(text, newline=""), **kwargs)  # type: ignore[arg-type]
     header: list[str] = []
     try:
-        for _ in range(spec.header_lines):
-            header = next(reader_, [])
-        rows = [cells for cells in reader_ if cells and any(c.strip() for c in cells)]
+        with csv_field_limit(MAX_FIELD_CHARS):
+            for _ in range(spec.header_lines):
+                header = next(reader_, [])
+            rows = [cells for cells in reader_ if cells and any(c.strip() for c in cells)]
     except csv.Error as exc:
         raise InputFileError(path, f"member '{spec.location}' cannot be parsed ({exc}); check its quoting") from None
     if header_names:

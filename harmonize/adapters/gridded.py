@@ -186,18 +186,24 @@ def open_netcdf(path: Path) -> Iterator[xr.Dataset]:
     if required is not None and size < required:
         raise InputFileError(path, f"is truncated: its NetCDF header describes {required:,} bytes of data but the file "
                              f"has {size:,}; download or export it again")
-    # Each value is read once, so the HDF5 chunk cache (64 MiB per variable by default in
-    # netCDF-C 4.9) only costs memory: open with a small one, then restore the default.
-    cache = netCDF4.get_chunk_cache()
-    netCDF4.set_chunk_cache(HDF5_CHUNK_CACHE_BYTES, cache[1], cache[2])
     try:
-        ds = xr.open_dataset(path, decode_cf=False, mask_and_scale=False, decode_times=False, cache=False,
-                             engine="netcdf4")
+        nc = netCDF4.Dataset(path, "r")
     except Exception as exc:  # noqa: BLE001 - the backends raise many kinds
         raise InputFileError(path, f"cannot be opened as NetCDF ({type(exc).__name__}: {exc}); the file may be "
                              "truncated or corrupt: download or export it again") from None
-    finally:
-        netCDF4.set_chunk_cache(*cache)
+    try:
+        if nc.data_model.startswith("NETCDF4"):
+            # Each value is read once, so the HDF5 chunk cache (64 MiB per variable by default
+            # in netCDF-C 4.9) only costs memory: a small one for each variable of this file
+            # (the library's process-wide default is left alone)
+            for var in nc.variables.values():
+                var.set_var_chunk_cache(size=HDF5_CHUNK_CACHE_BYTES)
+        ds = xr.open_dataset(xr.backends.NetCDF4DataStore(nc), decode_cf=False, mask_and_scale=False,
+                             decode_times=False, cache=False)
+    except Exception as exc:  # noqa: BLE001 - the backends raise many kinds
+        nc.close()
+        raise InputFileError(path, f"cannot be opened as NetCDF ({type(exc).__name__}: {exc}); the file may be "
+                             "truncated or corrupt: download or export it again") from None
     try:
         _check_declared_size(path, ds, size)
         yield ds

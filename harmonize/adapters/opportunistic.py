@@ -52,7 +52,7 @@ from harmonize.privacy import pseudonymise, study_salt
 from harmonize.profile import Profile
 from harmonize.study import Study
 from harmonize.tagging import normalise_lon
-from harmonize.twins import twin_settings
+from harmonize.twin_windows import twin_settings
 
 SCHEMA = "opportunistic_rows"
 #: Checklists longer than 5 h or 5 km are flagged "long_effort": analyses of checklist data

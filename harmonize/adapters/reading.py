@@ -13,6 +13,7 @@ import difflib
 import io
 import json
 from collections.abc import Iterable, Iterator, Mapping, Sequence
+from contextlib import contextmanager
 from dataclasses import dataclass
 from datetime import UTC, datetime, timedelta
 from pathlib import Path
@@ -35,6 +36,20 @@ NA_TOKENS = frozenset({"", "na", "n/a", "nan", "null", "none", "-"})
 _TRUE = frozenset({"true", "t", "yes", "y", "1"})
 _FALSE = frozenset({"false", "f", "no", "n", "0"})
 MAX_FIELD_CHARS = 1_000_000
+
+
+@contextmanager
+def csv_field_limit(limit: int = MAX_FIELD_CHARS) -> Iterator[None]:
+    """The csv module's field size limit (process-wide) at ``limit`` for the ``with`` block only.
+
+    The csv module keeps one limit for the whole process (128 KiB by default); the readers
+    raise it while they parse and put the caller's limit back afterwards.
+    """
+    previous = csv.field_size_limit(limit)
+    try:
+        yield
+    finally:
+        csv.field_size_limit(previous)
 #: A physical line longer than this is refused before parsing: a delimited file with such a
 #: line is not tabular data (one endless line: wrong line endings, a binary or hostile file).
 MAX_LINE_BYTES = 16 << 20
@@ -157,9 +172,9 @@ class LineReader:
         self._rows = 0
         try:
             self.delimiter = profile.delimiter or _sniff_delimiter(self._head(), self.path)
-            csv.field_size_limit(MAX_FIELD_CHARS)
             self._reader = csv.reader(self._lines(), delimiter=self.delimiter)
-            self.header = self._read_header()
+            with csv_field_limit():
+                self.header = self._read_header()
         except BaseException:
             self.close()
             raise
@@ -258,6 +273,7 @@ class LineReader:
         rows: list[list[str]] = []
         malformed: list[tuple[int, str, int]] = []
         first = self._rows + 1
+        previous = csv.field_size_limit(MAX_FIELD_CHARS)  # set while this reader parses only
         try:
             for cells in self._reader:
                 if not cells or not any(c.strip() for c in cells):
@@ -268,12 +284,16 @@ class LineReader:
                     cells = [""] * width
                 rows.append(cells)
                 if len(rows) >= size:
+                    csv.field_size_limit(previous)  # the caller's limit while it holds the block
                     yield LineBlock(first, rows, malformed)
+                    previous = csv.field_size_limit(MAX_FIELD_CHARS)
                     rows, malformed, first = [], [], self._rows + 1
         except csv.Error as exc:
             raise InputFileError(
                 self.path, f"cannot be parsed as CSV after data row {self._rows} ({exc}); check quoting"
             ) from None
+        finally:
+            csv.field_size_limit(previous)
         if rows:
             yield LineBlock(first, rows, malformed)
 

@@ -1,0 +1,218 @@
+"""The structure drawn from the imports flows one way, and the library changes no process-wide state.
+
+The import graph is read from the source (``ast``: every ``import`` and ``from ... import``,
+module level or inside a function), so a lazy import counts as much as a top-level one.
+"""
+
+from __future__ import annotations
+
+import ast
+import csv
+from collections.abc import Iterator
+from pathlib import Path
+
+import pytest
+
+ROOT = Path(__file__).resolve().parent.parent
+LIBRARY = ROOT / "harmonize"
+
+
+def _modules() -> dict[str, Path]:
+    found = {}
+    for path in LIBRARY.rglob("*.py"):
+        name = ".".join(path.relative_to(ROOT).with_suffix("").parts)
+        found[name.removesuffix(".__init__")] = path
+    return found
+
+
+MODULES = _modules()
+
+
+def _imports(path: Path) -> Iterator[tuple[str, str | None, int]]:
+    """(module imported, name imported from it or None, line) for every import in a file."""
+    for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+        if isinstance(node, ast.Import):
+            for alias in node.names:
+                yield alias.name, None, node.lineno
+        elif isinstance(node, ast.ImportFrom) and node.module and node.level == 0:
+            for alias in node.names:
+                # "from harmonize import twins" imports the module harmonize.twins
+                full = f"{node.module}.{alias.name}"
+                yield (full, None, node.lineno) if full in MODULES else (node.module, alias.name, node.lineno)
+
+
+def _edges(prefix: str) -> list[tuple[str, str, str | None, int]]:
+    """(importer, imported module, name, line) for the library modules under ``prefix``."""
+    return [(mod, target, name, line) for mod, path in sorted(MODULES.items())
+            if mod == prefix or mod.startswith(prefix + ".")
+            for target, name, line in _imports(path) if target.startswith("harmonize")]
+
+
+def _under(module: str, prefix: str) -> bool:
+    return module == prefix or module.startswith(prefix + ".")
+
+
+def test_the_graph_reader_sees_lazy_imports() -> None:
+    # the reader must see an import inside a function (the kind a leak hides in): Store.check
+    # imports the adapter registry for its default (the kinds whose rows are traced)
+    lazy = [e for e in _edges("harmonize.store") if e[1] == "harmonize.adapters.registry"]
+    assert lazy, "the import inside Store.check was not seen"
+
+
+@pytest.mark.parametrize(("importer", "forbidden"), [
+    # the store knows nothing of the volunteer twins or of profiles (twins is a commit hook)
+    ("harmonize.store", "harmonize.twins"),
+    ("harmonize.store", "harmonize.twin_windows"),
+    ("harmonize.store", "harmonize.profile"),
+    ("harmonize.store", "harmonize.ingest"),
+    ("harmonize.store", "harmonize.audit"),
+    ("harmonize.store", "harmonize.export"),
+    ("harmonize.store", "harmonize.api"),
+    # engines implement steps; the audit chooses them by name, never the other way
+    ("harmonize.engines", "harmonize.audit"),
+    # adapters read files: they know no store, no twins, no audit or export
+    ("harmonize.adapters", "harmonize.store"),
+    ("harmonize.adapters", "harmonize.twins"),
+    ("harmonize.adapters", "harmonize.audit"),
+    ("harmonize.adapters", "harmonize.export"),
+    ("harmonize.twins", "harmonize.profile"),
+    ("harmonize.twins", "harmonize.adapters"),
+    # audit and exports read the store; they never run the pipeline
+    ("harmonize.audit", "harmonize.ingest"),
+    ("harmonize.export", "harmonize.ingest"),
+    # the library knows no command line
+    ("harmonize", "harmonize.cli"),
+])
+def test_no_import_against_the_flow(importer: str, forbidden: str) -> None:
+    bad = [f"{mod} line {line} imports {target}" for mod, target, _name, line in _edges(importer)
+           if _under(target, forbidden) and mod != "harmonize.__main__"]   # the entry point runs the CLI
+    assert bad == []
+
+
+def test_exports_use_only_the_public_api_of_the_store() -> None:
+    public = {"Store", "has_table"}
+    bad = [f"{mod} line {line}: {name or target}" for mod, target, name, line in _edges("harmonize.export")
+           if target == "harmonize.store" and name not in public]
+    assert bad == []
+    # ... and call no private method of it (store._x) nor the staging folders
+    for mod, path in MODULES.items():
+        if _under(mod, "harmonize.export"):
+            text = path.read_text(encoding="utf-8")
+            assert "staging_dir(" not in text and "store._" not in text and "Store._" not in text, mod
+
+
+def _attribute_uses(attr_of: str, attr: str) -> list[str]:
+    found = []
+    for mod, path in sorted(MODULES.items()):
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if (isinstance(node, ast.Attribute) and node.attr == attr and isinstance(node.value, ast.Name)
+                    and node.value.id == attr_of):
+                found.append(f"{mod} line {node.lineno}")
+            elif isinstance(node, ast.ImportFrom) and node.module == attr_of and any(
+                    a.name == attr for a in node.names):
+                found.append(f"{mod} line {node.lineno}")
+    return found
+
+
+@pytest.mark.parametrize(("owner", "attr"), [("os", "environ"), ("os", "getenv"), ("os", "putenv")])
+def test_the_library_reads_no_environment_variable(owner: str, attr: str) -> None:
+    # HARMONIZE_* variables are read by the command line (cli/app.py) into harmonize.settings
+    assert _attribute_uses(owner, attr) == []
+
+
+@pytest.mark.parametrize(("owner", "attr", "allowed"), [
+    ("netCDF4", "set_chunk_cache", set()),
+    ("csv", "field_size_limit", {"harmonize.adapters.reading"}),   # csv_field_limit: set and put back
+    ("np", "seterr", set()),
+    ("pd", "set_option", set()),
+    ("warnings", "simplefilter", set()),
+    ("warnings", "filterwarnings", set()),
+    ("os", "chdir", set()),
+    ("os", "umask", set()),
+])
+def test_no_process_wide_setting_changed_by_the_library(owner: str, attr: str, allowed: set[str]) -> None:
+    found = {use.split(" line ")[0] for use in _attribute_uses(owner, attr)}
+    assert found <= allowed, sorted(found - allowed)
+
+
+# ---------------------------------------------------------------------------- behaviour
+
+
+def test_csv_field_limit_is_put_back_after_reading(tmp_path: Path) -> None:
+    from harmonize.adapters.reading import MAX_FIELD_CHARS, LineReader, csv_field_limit
+    from harmonize.profile import Profile
+
+    before = csv.field_size_limit()
+    assert before != MAX_FIELD_CHARS
+    path = tmp_path / "rows.csv"
+    long_cell = "x" * (before + 10)    # a field the csv module's own default refuses
+    path.write_text("a,b\n" + "".join(f"{i},{long_cell if i == 3 else 'y'}\n" for i in range(1, 8)), encoding="utf-8")
+    profile = Profile(path=tmp_path / "p.toml", source_id="s", kind="trawl", provider_type="agency",
+                      protocol=None, delimiter=",")
+    with LineReader(path, profile) as reader:
+        assert csv.field_size_limit() == before
+        blocks = reader.blocks(size=2)
+        first = next(blocks)
+        # between blocks the caller's limit holds: its own parsing still refuses long fields
+        assert csv.field_size_limit() == before
+        with pytest.raises(csv.Error, match="field larger than field limit"):
+            list(csv.reader([long_cell]))
+        rest = list(blocks)
+    assert [len(b.rows) for b in [first, *rest]] == [2, 2, 2, 1]
+    assert rest[0].rows[0][1] == long_cell
+    assert csv.field_size_limit() == before
+    with csv_field_limit(123):
+        assert csv.field_size_limit() == 123
+    assert csv.field_size_limit() == before
+
+
+def test_gridded_reading_leaves_the_netcdf_chunk_cache_alone(study_dir: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    import netCDF4
+    import numpy as np
+    from gridded_files import regular_file, write_profile
+
+    from harmonize import load_study, run
+
+    before = netCDF4.get_chunk_cache()
+
+    def refuse(*args: object) -> None:
+        raise AssertionError("the library changed the process-wide NetCDF chunk cache")
+
+    monkeypatch.setattr(netCDF4, "set_chunk_cache", refuse)
+    lat, lon = np.array([43.0, 43.1]), np.array([-152.0, -151.9])
+    path = regular_file(study_dir / "sst.nc", {"sst": (np.full((2, 2, 2), 9.0, np.float32),
+                                                      {"units": "degC", "_FillValue": np.float32(-999)})},
+                        lat, lon, time=[1.0, 2.0])
+    write_profile(study_dir, "sst_sat", 'sst = "sea_surface_temperature"')
+    result = run(load_study(study_dir), "sst_sat", {"rows": path})
+    assert result.status == "complete" and result.rows_accepted == 8
+    assert netCDF4.get_chunk_cache() == before
+
+
+def test_settings_come_from_the_boundary_not_the_environment(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from harmonize import settings
+    from harmonize.errors import StoreError
+    from harmonize.store import DEFAULT_LOCK_TIMEOUT_S, Store
+
+    monkeypatch.setenv("HARMONIZE_LOCK_TIMEOUT", "7")
+    assert Store(tmp_path).lock_timeout_s == DEFAULT_LOCK_TIMEOUT_S == 60.0
+    with settings.applied(settings.from_environment({"HARMONIZE_LOCK_TIMEOUT": "7"})):
+        assert Store(tmp_path).lock_timeout_s == 7.0
+        assert Store(tmp_path, lock_timeout_s=2).lock_timeout_s == 2.0
+    with settings.applied(settings.from_environment({"HARMONIZE_LOCK_TIMEOUT": "soon"})):
+        with pytest.raises(StoreError, match="HARMONIZE_LOCK_TIMEOUT='soon' is not a number of seconds"):
+            Store(tmp_path)
+    assert settings.from_environment({"HARMONIZE_ENGINE": "  ", "OTHER": "x"}) == settings.Settings()
+    assert settings.current() == settings.Settings()
+
+
+def test_the_cli_reads_the_environment_for_one_command(study_dir: Path) -> None:
+    from cli_runner import run_cli
+
+    # the command line applies HARMONIZE_LOCK_TIMEOUT: a bad value is its one-line usage error
+    result = run_cli("--study", str(study_dir), "status", env={"HARMONIZE_LOCK_TIMEOUT": "soon"})
+    assert result.exit_code == 2
+    assert "HARMONIZE_LOCK_TIMEOUT='soon' is not a number of seconds" in result.stderr
+    from harmonize import settings
+    assert settings.current() == settings.Settings()   # nothing left behind in this process
+

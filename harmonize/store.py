@@ -402,6 +402,10 @@ class Store:
             except StoreError:
                 pass
 
+    def live_paths(self, con: duckdb.DuckDBPyConnection) -> list[str]:
+        """The parquet files of the complete ingests, relative to the store folder (sorted)."""
+        return self._live_paths(con)
+
     def _live_paths(self, con: duckdb.DuckDBPyConnection) -> list[str]:
         rows = con.execute(
             """SELECT f.path FROM observation_files f JOIN ingests i USING (ingest_id)

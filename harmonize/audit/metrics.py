@@ -26,15 +26,18 @@ import pandas as pd
 
 from harmonize.colocate import FIXED_LAYER_SQL, match_sql
 from harmonize.disclosure import Disclosure
+from harmonize.engines.audit_rules import DUPLICATE_FLAG as DUPLICATE_FLAG
+from harmonize.engines.audit_rules import KEPT_SQL as KEPT_SQL
+from harmonize.engines.audit_rules import event_aggregates_sql, records_sql, year_filter_sql
 
-DUPLICATE_FLAG = "probable_duplicate"
 #: The pseudo source kind of rows that pool every biological source.
 ALL_BIOLOGICAL = "all_biological"
 #: Provider types whose values are derived fields rather than in-situ measurements.
 REFERENCE_PROVIDERS = ("model", "remote_sensing")
 
-#: SQL condition: a row not flagged as a probable twin (the audit counts each bird once).
-KEPT_SQL = _KEPT = f"NOT list_contains(coalesce(flags, []::VARCHAR[]), '{DUPLICATE_FLAG}')"
+#: SQL condition: a row not flagged as a probable twin (the audit counts each bird once;
+#: harmonize.engines.audit_rules).
+_KEPT = KEPT_SQL
 
 
 @dataclass
@@ -56,8 +59,7 @@ class Metrics:
     periods: pd.DataFrame = field(default_factory=pd.DataFrame)
 
 
-def _year_filter(max_year: int | None) -> str:
-    return "" if max_year is None else f" AND season_year <= {int(max_year)}"
+_year_filter = year_filter_sql
 
 
 def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame,
@@ -100,15 +102,9 @@ def build_event_table(con: duckdb.DuckDBPyConnection, domain_cells: pd.DataFrame
     con.unregister("_audit_domain_cells")
     confidential = rules.confidential_sql()
     ev_sql = f"""
-            SELECT hash(source_id, event_id) AS event_key,
-                   any_value(source_id) AS source_id, any_value(source_kind) AS source_kind,
-                   any_value(protocol) AS protocol,
-                   any_value(provider_type) AS provider_type, any_value(season_year) AS season_year,
-                   any_value(season) AS season, any_value(depth_layer) AS depth_layer,
-                   any_value(cell_id) AS cell_id, any_value(stratum) AS stratum,
-                   bool_or(quantity <> 'presence') AS effort_bearing,
-                   bool_or(variable_kind = 'taxon') AS biological,
-                   min(n_vessels) AS n_vessels, bool_or({rules.sensitive_present_sql()}) AS sensitive,
+            SELECT hash(source_id, event_id) AS event_key, any_value(source_id) AS source_id,
+                   {event_aggregates_sql()},
+                   bool_or({rules.sensitive_present_sql()}) AS sensitive,
                    any_value(effort) AS effort, any_value(effort_unit) AS effort_unit,
                    max(event_start) AS event_start
             FROM observations
@@ -265,13 +261,7 @@ def encounters(con: duckdb.DuckDBPyConnection, max_year: int | None = None,
     stage or behaviour recorded is a record of its own. ``records_table`` holds the
     records and encounters per group computed elsewhere (the Dask engine).
     """
-    g_sql = f"""
-                SELECT variable, season, depth_layer, season_year, source_kind, provider_type,
-                       source_id, quantity, count(*) AS records,
-                       count(*) FILTER (WHERE value > 0) AS encounters
-                FROM observations
-                WHERE variable_kind = 'taxon' AND {_KEPT}{_year_filter(max_year)}
-                GROUP BY ALL"""
+    g_sql = records_sql("observations", max_year)
     if records_table is not None:
         g_sql = f"""
                 SELECT variable, season, depth_layer, CAST(season_year AS INTEGER) AS season_year, source_kind,

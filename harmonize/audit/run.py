@@ -12,6 +12,7 @@ import numpy as np
 import pandas as pd
 
 from harmonize import __version__
+from harmonize.audit.engines import AuditInputs, audit_engine
 from harmonize.audit.findings import (
     CODES,
     SEVERITIES,
@@ -20,7 +21,7 @@ from harmonize.audit.findings import (
     sort_findings,
     tolerances,
 )
-from harmonize.audit.metrics import Metrics, compute
+from harmonize.audit.metrics import Metrics
 from harmonize.audit.periods import incomplete_keys, incomplete_periods, last_samples
 from harmonize.audit.ranking import FindingGroup, group_findings
 from harmonize.audit.readiness import ModelReadiness, model_readiness, readiness_findings
@@ -254,13 +255,9 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
                 raise HarmonizeError(f"cannot audit season year {year}: the store holds {span}; "
                                      "pass a year inside that range")
         choice = current_engine() if engine is None else EngineChoice(check_engine(engine), scheduler)
-        if choice.name == "dask":
-            from harmonize.engines.dask_engine import audit_metrics
-
-            metrics = audit_metrics(con, store._live_paths(con), cells, study.min_vessels, year,
-                                    scheduler or choice.scheduler, rules=Disclosure.for_study(study))
-        else:
-            metrics = compute(con, cells, study.min_vessels, year, Disclosure.for_study(study))
+        metrics = audit_engine(choice.name)(AuditInputs(
+            con, [str(store.directory / p) for p in store.live_paths(con)], cells, study.min_vessels, year, Disclosure.for_study(study),
+            scheduler or choice.scheduler))
         metrics.periods = incomplete_periods(last_samples(con, year), study.seasons)
         accounts = received(con, year, Disclosure.for_study(study))
         incomplete = incomplete_keys(metrics.periods)

@@ -11,8 +11,9 @@
 2. **The audit's aggregations.** The per-event table (one row per event and its tags),
    the taxon record counts and the per-source means of physical variables are computed on Dask
    from the store's live parquet files (one task per file, then a grouped reduction), and
-   handed back to DuckDB, where the small remaining queries of :mod:`harmonize.audit.metrics`
-   run unchanged.
+   handed back to the audit (:mod:`harmonize.audit.engines` chooses this implementation by
+   name), whose small remaining queries run in DuckDB unchanged. The aggregations are those of
+   :mod:`harmonize.engines.audit_rules`, defined once for both engines.
 
 The workers must be able to read the files: on a local cluster (the default) they always
 can; on a remote cluster the store and the scratch folder (``HARMONIZE_DASK_SCRATCH``) must
@@ -36,6 +37,9 @@ import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
 from harmonize import settings
+from harmonize.engines.audit_rules import DUPLICATE_FLAG, EVENT_KEYS, EVENT_MEASURES, INPUT_COLUMNS
+from harmonize.engines.audit_rules import EVENT_TAGS as _EVENT_TAGS
+from harmonize.engines.audit_rules import RECORD_KEYS as _RECORD_KEYS
 from harmonize.tagging.season import local_times
 
 # WGS84 ellipsoid (NIMA TR8350.2, 2000); the same constants as the SQL distance macro
@@ -44,7 +48,6 @@ WGS84_F = 1 / 298.257223563
 _E2 = WGS84_F * (2 - WGS84_F)
 M_PER_NMI = 1852.0  # exact (BIPM SI Brochure, 9th ed. 2019, Table 8)
 _US_PER_H = 3.6e9
-DUPLICATE_FLAG = "probable_duplicate"  # harmonize.twins: a volunteer twin of another record
 
 #: Columns of the accepted-pings parquet the DuckDB stage writes for the Dask stage.
 PING_COLUMNS = ("row", "vid", "t", "lat", "lon", "sog", "gear", "layer", "smin", "smax", "code")
@@ -313,17 +316,12 @@ def fishing_hours(buckets: Sequence[Sequence[str]], max_speed_kn: float, max_gap
 
 
 # ---------------------------------------------------------------------------- audit
+# The aggregations of harmonize.engines.audit_rules, in pandas: the columns read, the event
+# tags and the record keys come from there.
 
-#: Columns the audit reads from the observation files.
-AUDIT_COLUMNS = ("record_id", "ingest_id", "source_id", "protocol", "provider_type", "event_id", "season",
-                 "depth_layer", "cell_id", "stratum", "variable", "variable_kind", "quantity", "value", "unit",
-                 "n_vessels", "flags")
-#: Tags of an event (one value per event; the audit takes any of its rows' values).
-EVENT_TAGS = ["source_kind", "protocol", "provider_type", "season_year", "season", "depth_layer", "cell_id",
-              "stratum"]
-#: Keys of the taxon records table the encounters are counted from.
-RECORD_KEYS = ["variable", "season", "depth_layer", "season_year", "source_kind", "provider_type", "source_id",
-               "quantity"]
+AUDIT_COLUMNS = INPUT_COLUMNS
+EVENT_TAGS = list(_EVENT_TAGS)
+RECORD_KEYS = list(_RECORD_KEYS)
 
 
 def _hive_values(path: str) -> dict[str, str]:
@@ -369,9 +367,9 @@ def _file_partials(path: str, duplicate_keys: frozenset[str], max_year: int | No
     obs = read_observation_file(path, duplicate_keys, max_year)
     flagged = obs.assign(effort_bearing=obs["quantity"].ne("presence").fillna(False).astype(bool),
                          biological=obs["variable_kind"].eq("taxon").fillna(False).astype(bool))
-    events = flagged.groupby(["source_id", "event_id"], dropna=False, sort=False).agg(
-        **{t: (t, "first") for t in EVENT_TAGS}, effort_bearing=("effort_bearing", "max"),
-        biological=("biological", "max"), n_vessels=("n_vessels", "min")).reset_index()
+    events = flagged.groupby(list(EVENT_KEYS), dropna=False, sort=False).agg(
+        **{t: (t, "first") for t in EVENT_TAGS},
+        **{name: (name, how) for name, (_sql, how) in EVENT_MEASURES.items()}).reset_index()
     taxon = obs[obs["variable_kind"].eq("taxon").fillna(False).to_numpy()]
     records = taxon.assign(hit=(taxon["value"] > 0).fillna(False).astype(np.int64)).groupby(
         RECORD_KEYS, dropna=False, sort=False).agg(records=("hit", "size"), encounters=("hit", "sum")).reset_index()
@@ -417,9 +415,9 @@ def audit_tables(paths: Sequence[str], duplicate_keys: frozenset[str] = frozense
         ev = dd.from_delayed([p[0] for p in parts], meta=meta[0], verify_meta=False)
         rec = dd.from_delayed([p[1] for p in parts], meta=meta[1], verify_meta=False)
         n_out = max(1, len(paths) // 16)
-        events = ev.groupby(["source_id", "event_id"], dropna=False).agg(
-            {**dict.fromkeys(EVENT_TAGS, "first"), "effort_bearing": "max", "biological": "max",
-             "n_vessels": "min"}, split_out=n_out).reset_index()
+        events = ev.groupby(list(EVENT_KEYS), dropna=False).agg(
+            {**dict.fromkeys(EVENT_TAGS, "first"), **{name: how for name, (_sql, how) in EVENT_MEASURES.items()}},
+            split_out=n_out).reset_index()
         records = rec.groupby(RECORD_KEYS, dropna=False).agg({"records": "sum", "encounters": "sum"}).reset_index()
         events, records = client.compute([events, records], sync=True)
     events = events.astype({"effort_bearing": bool, "biological": bool})
@@ -449,53 +447,3 @@ def duplicate_keys(con: Any) -> frozenset[str]:
     except duckdb.Error:  # a store without the twins tables has no such rows
         return frozenset()
     return frozenset(r[0] for r in rows)
-
-
-def audit_metrics(con: Any, paths: Sequence[str], domain_cells: pd.DataFrame, min_vessels: int,
-                  max_year: int | None = None, scheduler: str | None = None, rules: Any = None) -> Any:
-    """:class:`harmonize.audit.metrics.Metrics` with the heavy aggregations done on Dask.
-
-    The per-event table and the taxon record counts come from :func:`audit_tables`; they
-    are registered in ``con`` (a store connection) and the rest of the audit's queries run on
-    them in DuckDB, unchanged. The files hold the parts of values that span files
-    (harmonize.parts): the vessels behind an effort event are taken from the store's merged
-    view, so the rule of three is judged per cell-period as the DuckDB engine judges it, and
-    the events where a sensitive taxon was recorded come from the same view, so their cells are
-    not named (``rules``: the disclosure rules of :mod:`harmonize.disclosure`).
-    """
-    from harmonize.audit import metrics as m
-    from harmonize.disclosure import Disclosure
-
-    rules = rules or Disclosure(min_vessels=int(min_vessels))
-
-    tables = audit_tables(paths, duplicate_keys(con), max_year, scheduler)
-    events = tables.events
-    merged = con.execute("""SELECT source_id, event_id, CAST(min(n_vessels) AS INTEGER) AS merged_vessels
-                            FROM observations WHERE source_kind = 'effort' GROUP BY ALL""").df()
-    if len(merged):
-        events = events.merge(merged, on=["source_id", "event_id"], how="left")
-        events["n_vessels"] = pd.array(events["merged_vessels"].where(events["merged_vessels"].notna(),
-                                                                      events["n_vessels"]), dtype="Int32")
-        events = events.drop(columns="merged_vessels")
-    sensitive = con.execute(f"""SELECT DISTINCT source_id, event_id, TRUE AS sensitive FROM observations
-                                WHERE {m.KEPT_SQL} AND {rules.sensitive_present_sql()}""").df()
-    events = events.merge(sensitive, on=["source_id", "event_id"], how="left")
-    events["sensitive"] = events["sensitive"].fillna(False).astype(bool)
-    registered = {"_dask_audit_events": events, "_dask_audit_records": tables.records}
-    for name, frame in registered.items():
-        con.register(name, frame)
-    try:
-        m.build_event_table(con, domain_cells, min_vessels, max_year, events_table="_dask_audit_events",
-                            rules=rules)
-        encounters = m.encounters(con, max_year, records_table="_dask_audit_records")
-        comparisons = m.comparisons(con, max_year)
-    finally:
-        for name in registered:
-            con.unregister(name)
-    n_cells = len(domain_cells)
-    return m.Metrics(
-        extent=m.extent(con), coverage=m.coverage(con, n_cells), layer_events=m.layer_events(con),
-        stratum_events=m.stratum_events(con), source_years=m.source_years(con),
-        bio_providers=m.bio_providers(con), encounters=encounters, comparisons=comparisons,
-        cell_maps=m.cell_maps(con), suppressed=m.suppressed(con), n_domain_cells=n_cells,
-    )

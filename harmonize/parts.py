@@ -34,8 +34,16 @@ import duckdb
 
 from harmonize.contract import observation_sql_columns
 
-#: Kinds whose values span files and are merged across ingests.
-MERGED_KINDS = ("gridded", "effort")
+
+def merged_kinds() -> tuple[str, ...]:
+    """Kinds whose values span files and are merged across ingests (``Adapter.merges_parts``)."""
+    from harmonize.adapters.registry import kinds  # the adapters' class attributes say which
+
+    return kinds(merges_parts=True)
+
+
+def _kinds_sql() -> str:
+    return ", ".join("'" + k.replace("'", "''") + "'" for k in merged_kinds())
 
 #: The part columns (name, DuckDB type), written to parquet beside the contract's columns.
 PART_COLUMNS = (
@@ -49,13 +57,13 @@ PART_COLUMNS = (
 def merged_sql(parts: str) -> str:
     """SELECT of one row per value from the view ``parts`` (contract columns, then the parts).
 
-    Rows of kinds other than :data:`MERGED_KINDS` pass through; rows of those kinds are
+    Rows of kinds other than :func:`merged_kinds` pass through; rows of those kinds are
     grouped by source and record_id (the record id hashes source, event, variable, life stage,
     quantity and behaviour, and no ingest or file) and merged as the module docstring says.
     """
     types = dict(observation_sql_columns())
     cols = list(types)
-    kinds = ", ".join(f"'{k}'" for k in MERGED_KINDS)
+    kinds = _kinds_sql()
     single = "count(*) = 1"
     weighted = "count(part_weight) = count(*) AND sum(part_weight) > 0"
     exprs = {
@@ -89,6 +97,8 @@ def merged_sql(parts: str) -> str:
     for c in cols:
         exprs.setdefault(c, f'min("{c}")')
     plain = ", ".join(f'"{c}"' for c in cols)
+    if not kinds:
+        return f"SELECT {plain} FROM {parts}"
     merged = ", ".join(f'CAST({exprs[c]} AS {types[c]}) AS "{c}"' for c in cols)
     # time steps of each period in the live files of a gridded source: every cell of a file
     # has its file's steps, whether or not the cell had a valid value in them
@@ -108,7 +118,9 @@ def ingests_behind(con: duckdb.DuckDBPyConnection, where: str) -> list[str]:
 
     The merged row names one ingest; the provenance of an export lists them all.
     """
-    kinds = ", ".join(f"'{k}'" for k in MERGED_KINDS)
+    kinds = _kinds_sql()
+    if not kinds:
+        return []
     rows = con.execute(
         f"""SELECT DISTINCT p.ingest_id FROM observation_parts p
             SEMI JOIN (SELECT source_id, record_id FROM observations

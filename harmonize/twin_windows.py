@@ -40,13 +40,9 @@ def twin_settings(section: Mapping[str, Any], path: str | Path) -> TwinSettings:
     Raises
     ------
     ConfigError
-        Unknown key, a value that is not a positive number, or a window above the maximum.
+        A value that is not a positive number, or a window above the maximum.
     """
-    sec = section
-    unknown = sorted(set(sec) - {"distance_km", "minutes", "rank"})
-    if unknown:
-        raise ConfigError(path, f"duplicates.{unknown[0]}",
-                          "unknown key; expected distance_km, minutes or rank")
+    sec = section  # its keys are checked by the profile's definition (harmonize.config_spec)
     values: dict[str, float] = {}
     for key, default, top in (("distance_km", DEFAULT_DISTANCE_KM, MAX_DISTANCE_KM),
                               ("minutes", DEFAULT_MINUTES, MAX_MINUTES)):

@@ -177,7 +177,7 @@ def refresh(con: duckdb.DuckDBPyConnection, base: str = "observations_base") -> 
     con.execute("DELETE FROM store_flags")
     con.execute("""
         CREATE OR REPLACE TEMP TABLE _twin_sources AS
-        SELECT s.source_id, s.distance_km, s.minutes, s.rank
+        SELECT s.source_id, i.source_kind, s.distance_km, s.minutes, s.rank
         FROM twin_settings s JOIN ingests i USING (ingest_id) WHERE i.status = 'complete'
         QUALIFY row_number() OVER (PARTITION BY s.source_id ORDER BY i.started_at DESC, s.ingest_id DESC) = 1""")
     if not con.execute("SELECT count(*) FROM _twin_sources").fetchall()[0][0]:
@@ -193,7 +193,7 @@ def refresh(con: duckdb.DuckDBPyConnection, base: str = "observations_base") -> 
                coalesce(s.rank, {_RANK_SQL}) AS rank,
                CASE WHEN o.quantity = 'presence' THEN 1 ELSE 0 END AS qorder,
                CASE WHEN list_contains(o.flags, 'date_only') THEN 1 ELSE 0 END AS vague,
-               s.distance_km AS win_km, s.minutes AS win_min, (s.source_id IS NOT NULL AND o.source_kind = 'opportunistic') AS flaggable,
+               s.distance_km AS win_km, s.minutes AS win_min, (s.source_id IS NOT NULL AND o.source_kind = s.source_kind) AS flaggable,
                o.quantity, o.value, o.track_start_lat AS ty1, o.track_start_lon AS tx1, o.track_end_lat AS ty2,
                o.track_end_lon AS tx2,
                (o.track_start_lat IS NOT NULL AND o.track_start_lon IS NOT NULL AND o.track_end_lat IS NOT NULL
@@ -276,7 +276,7 @@ def refresh(con: duckdb.DuckDBPyConnection, base: str = "observations_base") -> 
             GROUP BY variable)
         SELECT o.record_id, o.ingest_id, '{HIGH_COUNT_FLAG}'
         FROM {base} o JOIN ref USING (variable) JOIN _twin_sources s USING (source_id)
-        WHERE o.source_kind = 'opportunistic' AND o.quantity = 'count' AND o.value > 0 AND ref.n >= {HIGH_COUNT_MIN_N}
+        WHERE o.source_kind = s.source_kind AND o.quantity = 'count' AND o.value > 0 AND ref.n >= {HIGH_COUNT_MIN_N}
           AND ln(o.value) > ref.q3 + 3 * greatest(ref.q3 - ref.q1, ln(2))""")
     for name in ("_twin_sources", "_twin_cand", "_twin_binned", "_twin_pairs"):
         con.execute(f"DROP TABLE IF EXISTS {name}")

@@ -216,3 +216,29 @@ def test_the_cli_reads_the_environment_for_one_command(study_dir: Path) -> None:
     from harmonize import settings
     assert settings.current() == settings.Settings()   # nothing left behind in this process
 
+
+
+def test_no_list_of_kind_names_outside_the_adapters() -> None:
+    # every list of kinds derives from the adapter classes (registry.kinds(**traits)); a literal
+    # tuple, list or set naming two or more kinds anywhere else is a second copy
+    from harmonize.adapters.registry import kinds
+
+    names = set(kinds())
+    found = []
+    for mod, path in sorted(MODULES.items()):
+        if _under(mod, "harmonize.adapters") or _under(mod, "harmonize.demo"):
+            continue
+        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+            if isinstance(node, ast.Tuple | ast.List | ast.Set):
+                named = [e.value for e in node.elts if isinstance(e, ast.Constant) and e.value in names]
+                if len(named) >= 2:
+                    found.append(f"{mod} line {node.lineno}: {named}")
+    assert found == []
+
+
+def test_merged_kinds_come_from_the_adapter_classes() -> None:
+    from harmonize import parts
+    from harmonize.adapters.registry import list_adapters
+
+    by_attribute = {kind for kind, cls in list_adapters().items() if cls.merges_parts}
+    assert set(parts.merged_kinds()) == by_attribute == {"gridded", "effort"}   # docs/store.md: values that span files

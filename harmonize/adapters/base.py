@@ -104,6 +104,10 @@ class Adapter(ABC):
     effort_words: ClassVar[str | None] = None
     #: The effort's short name in the audit report ("area swept", "fishing hours").
     effort_label: ClassVar[str] = "effort"
+    #: A value spans files (a season of a grid in two yearly files, a cell's fishing in many
+    #: daily ping files): each ingest writes its part and the store merges the parts of the
+    #: live ingests of a source (harmonize.parts).
+    merges_parts: ClassVar[bool] = False
     #: Yearly effort totals add this kind's effort up (False: gridded valid pixel area).
     sums_effort: ClassVar[bool] = True
     #: What one event is called where events of kinds are counted apart ("samples" for

@@ -106,9 +106,6 @@ GEAR_CONTACT: dict[str, str] = {
          "MIDWATER_TRAWL", "PELAGIC_TRAWL", "PURSE_SEINE", "DRIFTING_LONGLINE", "DRIFTNET",
          "TROLL"], "pelagic"),
 }
-_FISHING_KEYS = {"form", "speed_min_kn", "speed_max_kn", "max_gap_h", "max_speed_kn",
-                 "pelagic_layer", "quarantine_rows", "gears", "memory_limit"}
-_GEAR_KEYS = {"speed_min_kn", "speed_max_kn", "contact", "layer"}
 _NA = ("", "na", "n/a", "nan", "null", "none", "-")
 # cell code = (ix + _OFF) * _MUL + (iy + _OFF): one BIGINT per grid cell
 _OFF = 2**30
@@ -168,9 +165,6 @@ def fishing_settings(profile: Profile, study: Study) -> FishingSettings:
     """Read and check the profile's ``[fishing]`` section (ConfigError naming the key)."""
     sec = profile.section("fishing")
     path = profile.path
-    unknown = sorted(set(sec) - _FISHING_KEYS)
-    if unknown:
-        raise ConfigError(path, f"fishing.{unknown[0]}", f"unknown key; expected one of {', '.join(sorted(_FISHING_KEYS))}")
 
     def number(key: str, default: float, sec: Mapping[str, Any] = sec, prefix: str = "fishing") -> float:
         value = sec.get(key, default)
@@ -195,9 +189,6 @@ def fishing_settings(profile: Profile, study: Study) -> FishingSettings:
         key = f"fishing.gears.{name}"
         if not isinstance(rule, Mapping):
             raise ConfigError(path, key, "expected a table with speed_min_kn, speed_max_kn, contact, layer")
-        bad = sorted(set(rule) - _GEAR_KEYS)
-        if bad:
-            raise ConfigError(path, f"{key}.{bad[0]}", f"unknown key; expected one of {', '.join(sorted(_GEAR_KEYS))}")
         if rule.get("contact", "bottom") not in ("bottom", "pelagic"):
             raise ConfigError(path, f"{key}.contact", f"expected \"bottom\" or \"pelagic\", got {rule.get('contact')!r}")
         if "layer" in rule and rule["layer"] not in layers:
@@ -388,6 +379,7 @@ class EffortAdapter(Adapter):
     forms = {"pings": "effort_pings", "logbook": "effort_logbook"}
     is_sample = False
     row_traced = False
+    merges_parts = True
     is_fishing_effort = True
     effort_label = "fishing hours"
     events_called = "fishing cell-periods"

@@ -114,10 +114,6 @@ class GriddedSettings:
             key = f"variables.{file_name}"
             unit, force = None, False
             if isinstance(spec, Mapping):
-                extra = set(spec) - {"name", "unit", "force_unit"}
-                if extra:
-                    raise ConfigError(profile.path, f"{key}.{sorted(extra)[0]}",
-                                      "unknown key; expected name, unit and optionally force_unit")
                 name = spec.get("name")
                 unit = spec.get("unit", spec.get("force_unit"))
                 force = "force_unit" in spec
@@ -141,11 +137,7 @@ class GriddedSettings:
         if twice:
             raise ConfigError(profile.path, "[variables]",
                               f"several file variables map to '{twice[0]}'; use one profile per product")
-        agg = profile.section("aggregate")
-        unknown = sorted(set(agg) - {"period", "layer", "chunk_mb"})
-        if unknown:
-            raise ConfigError(profile.path, f"aggregate.{unknown[0]}",
-                              "unknown key; expected period, layer and optionally chunk_mb")
+        agg = profile.section("aggregate")  # its keys are checked by the profile's definition
         period = agg.get("period", "month")
         if period not in PERIODS:
             raise ConfigError(profile.path, "aggregate.period",
@@ -877,6 +869,7 @@ class GriddedAdapter(Adapter):
     tables = {"rows": "gridded_rows"}
     is_sample = False
     row_traced = False
+    merges_parts = True
     default_provider_type = "remote_sensing"
     sums_effort = False
     events_called = "gridded cell-periods"

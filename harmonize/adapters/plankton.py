@@ -88,10 +88,6 @@ class TowRules:
     def from_profile(cls, profile: Profile) -> TowRules:
         """Read ``[tow] max_speed_m_s`` and ``[clogging] status_values, min_efficiency``."""
         tow, clog = profile.section("tow"), profile.section("clogging")
-        for name, sec, known in (("tow", tow, {"max_speed_m_s"}), ("clogging", clog, {"status_values", "min_efficiency"})):
-            extra = sorted(set(sec) - known)
-            if extra:
-                raise ConfigError(profile.path, f"{name}.{extra[0]}", f"unknown key; expected one of {sorted(known)}")
         speed = tow.get("max_speed_m_s", MAX_NET_SPEED_M_S)
         if isinstance(speed, bool) or not isinstance(speed, int | float) or speed <= 0:
             raise ConfigError(profile.path, "tow.max_speed_m_s", f"expected a positive number of m/s, got {speed!r}")

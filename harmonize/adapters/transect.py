@@ -94,9 +94,6 @@ class StripRules:
     @classmethod
     def from_profile(cls, profile: Profile) -> StripRules:
         sec = profile.section("strip")
-        extra = sorted(set(sec) - {"flying", "max_speed_kn"})
-        if extra:
-            raise ConfigError(profile.path, f"strip.{extra[0]}", "unknown key; expected one of ['flying', 'max_speed_kn']")
         flying = sec.get("flying", "snapshot")
         if flying not in FLYING_MODES:
             raise ConfigError(profile.path, "strip.flying",

@@ -31,9 +31,10 @@ test: $(STAMP) /usr/bin/chromium
 	$(BIN)/python -m pytest -q
 	$(BIN)/ruff check harmonize cli tests
 
-# The development lane: everything but the slow, browser and Dask tests (make test runs all).
+# The development lane: everything but the slow, browser and Dask tests (make test runs all),
+# on two processes (pytest-xdist), with the "fast" hypothesis profile (fewer examples).
 test-fast: $(STAMP)
-	$(BIN)/python -m pytest -q -m "not slow and not browser and not dask"
+	HYPOTHESIS_PROFILE=fast $(BIN)/python -m pytest -q -n 2 -m "not slow and not browser and not dask"
 	$(BIN)/ruff check harmonize cli tests
 
 lint: $(STAMP)

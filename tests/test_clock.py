@@ -15,6 +15,7 @@ import duckdb
 import numpy as np
 import pandas as pd
 import pytest
+from examples import scaled
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -27,7 +28,7 @@ from harmonize.export.long import read_long
 ZONES = ["Europe/Oslo", "America/New_York", "Australia/Lord_Howe", "Pacific/Auckland", "America/St_Johns"]
 
 
-@settings(max_examples=100, deadline=None)
+@settings(max_examples=scaled(100), deadline=None)
 @given(st.datetimes(min_value=dt.datetime(1, 1, 1), max_value=dt.datetime(9990, 12, 31)),
        st.integers(0, 60 * 24 * 30))
 def test_durations_are_exact_microseconds(start: dt.datetime, minutes: int) -> None:
@@ -47,7 +48,7 @@ def _zoneinfo_rule(wall: dt.datetime, zone: str) -> tuple[str | None, dt.datetim
     return None, to_utc(first), to_utc(first)
 
 
-@settings(max_examples=120, deadline=None)
+@settings(max_examples=scaled(120), deadline=None)
 @given(st.sampled_from(ZONES), st.integers(2015, 2024), st.integers(1, 12), st.integers(1, 28),
        st.integers(0, 23), st.sampled_from([0, 15, 30, 45]))
 def test_local_times_at_clock_changes(zone: str, year: int, month: int, day: int, hour: int, minute: int) -> None:

@@ -34,6 +34,7 @@ import pandas as pd
 import pyogrio
 import pytest
 import shapely
+from examples import scaled
 from export_store import ExportStore, export_study
 from factories import store_frames
 from hypothesis import given, settings
@@ -453,7 +454,7 @@ def test_demo_outputs_pass_the_scan_for_precise_positions(tmp_path_factory: pyte
 
 @given(st.lists(st.floats(min_value=-180, max_value=180, allow_nan=False), min_size=1, max_size=20),
        st.sampled_from([1.0, 0.1, 0.01, 0.001]))
-@settings(max_examples=50, deadline=None)
+@settings(max_examples=scaled(50), deadline=None)
 def test_sql_and_frame_rounding_agree(values: list[float], deg: float) -> None:
     """An event sits at the same rounded position in the exports (SQL) and the twins CSV (numpy)."""
     rules = Disclosure(generalise_deg=deg, sensitive_taxa=("x",))

@@ -16,6 +16,7 @@ from zoneinfo import ZoneInfo
 import duckdb
 import pandas as pd
 import pytest
+from examples import scaled
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -47,7 +48,7 @@ def _expected(instant: dt.datetime, zone: str, seasons: dict[str, tuple[int, ...
     return name, year, local.year
 
 
-@settings(max_examples=150, deadline=None)
+@settings(max_examples=scaled(150), deadline=None)
 @given(st.lists(st.datetimes(min_value=dt.datetime(1990, 1, 1), max_value=dt.datetime(2035, 12, 31)),
                 min_size=1, max_size=20),
        st.sampled_from(ZONES), st.sampled_from(range(len(SEASON_SETS))))

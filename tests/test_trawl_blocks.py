@@ -13,6 +13,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from examples import scaled
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -126,7 +127,7 @@ taxon = "species"
 """
 
 
-@settings(max_examples=15, deadline=None)
+@settings(max_examples=scaled(15), deadline=None)
 @given(files=_trawl_files(), block_rows=st.integers(1, 7))
 def test_generated_trawl_input_coded_blocks_equal_plain_one_table(
     tmp_path_factory: pytest.TempPathFactory, files: tuple[str, str], block_rows: int
@@ -207,7 +208,7 @@ def _zero_fill_reference(events: pd.DataFrame, caught: pd.DataFrame, blocked: pd
     return zeros.reset_index(drop=True)
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=scaled(60), deadline=None)
 @given(data=st.data())
 def test_zero_fill_by_codes_equals_merges(data: st.DataObject) -> None:
     from types import SimpleNamespace
@@ -260,7 +261,7 @@ def test_keep_only_keeps_rejected_rows_raw_text(tmp_path: Path) -> None:
     assert table.raw_json(np.array([1, 2])) == before == ['{"haul": "H2", "taxon": "b"}', '{"haul": "H3", "taxon": "c, d"}']
 
 
-@settings(max_examples=60, deadline=None)
+@settings(max_examples=scaled(60), deadline=None)
 @given(events=st.lists(st.sampled_from(["H1", "H2", "H3", "H 4", "H;5"]), max_size=6),
        values=st.lists(st.one_of(st.none(), st.sampled_from(["H1", "H3", "H;5", "X9"])), max_size=12))
 def test_distinct_present_equals_the_set_of_values(events: list[str], values: list[str | None]) -> None:

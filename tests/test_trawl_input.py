@@ -7,6 +7,7 @@ from pathlib import Path
 import numpy as np
 import pandas as pd
 import pytest
+from examples import scaled
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 from trawl_profiles import BASIC_PROFILE
@@ -161,7 +162,7 @@ def test_time_zone_of_profile_is_applied(study_dir: Path) -> None:
 _DAMAGE = st.sampled_from(["", "abc", "-1", "1e400", "NaN", "2021-02-30", "  ", '"', "99999", "=1+2", "-999"])
 
 
-@settings(suppress_health_check=[HealthCheck.function_scoped_fixture], max_examples=30)
+@settings(suppress_health_check=[HealthCheck.function_scoped_fixture], max_examples=scaled(30))
 @given(cells=st.lists(st.tuples(st.integers(0, 5), st.integers(0, 8), _DAMAGE), min_size=1, max_size=12),
        catch_cells=st.lists(st.tuples(st.integers(0, 5), st.integers(0, 3), _DAMAGE), max_size=8))
 def test_every_row_is_accepted_or_quarantined(study_dir: Path, cells, catch_cells) -> None:  # type: ignore[no-untyped-def]

@@ -18,6 +18,7 @@ from pathlib import Path
 from types import SimpleNamespace
 
 import pandas as pd
+from examples import scaled
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
@@ -49,7 +50,7 @@ def _expected_zeros(events: list[tuple[str, int]], caught: list[tuple[str, str, 
     return out
 
 
-@settings(max_examples=80, deadline=None)
+@settings(max_examples=scaled(80), deadline=None)
 @given(data=st.data())
 def test_zero_fill_follows_the_rule(data: st.DataObject) -> None:
     k = data.draw(st.integers(1, 4))

@@ -1,0 +1,18 @@
+"""How many examples a hypothesis test runs, scaled by the hypothesis profile of the run.
+
+A test that needs more (or fewer) examples than the profile's default writes
+``@settings(max_examples=scaled(100))``: 100 under the "ci" profile (``make test``), a quarter
+under "fast" (``make test-fast``), ten times under "dev" (``HYPOTHESIS_PROFILE=dev``).
+"""
+
+from __future__ import annotations
+
+from hypothesis import settings
+
+#: max_examples of the "ci" profile (tests/conftest.py), the scale's unit.
+CI_EXAMPLES = 40
+
+
+def scaled(n: int, at_least: int = 3) -> int:
+    """``n`` examples under the "ci" profile, in proportion under the others (``at_least`` at minimum)."""
+    return max(at_least, n * settings().max_examples // CI_EXAMPLES)

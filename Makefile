@@ -31,10 +31,11 @@ test: $(STAMP) /usr/bin/chromium
 	$(BIN)/python -m pytest -q
 	$(BIN)/ruff check harmonize cli tests
 
-# The development lane: everything but the slow, browser and Dask tests (make test runs all),
-# on two processes (pytest-xdist), with the "fast" hypothesis profile (fewer examples).
+# The development lane: everything in-process but the slow, browser and Dask tests (make test
+# runs all, child processes included), on two processes (pytest-xdist), with the "fast"
+# hypothesis profile (fewer examples).
 test-fast: $(STAMP)
-	HYPOTHESIS_PROFILE=fast $(BIN)/python -m pytest -q -n 2 -m "not slow and not browser and not dask"
+	HYPOTHESIS_PROFILE=fast $(BIN)/python -m pytest -q -n 2 -m "not slow and not browser and not dask and not subprocess"
 	$(BIN)/ruff check harmonize cli tests
 
 lint: $(STAMP)

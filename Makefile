@@ -35,7 +35,7 @@ test: $(STAMP) /usr/bin/chromium
 # runs all, child processes included), on two processes (pytest-xdist), with the "fast"
 # hypothesis profile (fewer examples).
 test-fast: $(STAMP)
-	HYPOTHESIS_PROFILE=fast $(BIN)/python -m pytest -q -n 2 -m "not slow and not browser and not dask and not subprocess"
+	HYPOTHESIS_PROFILE=fast $(BIN)/python -m pytest -q -n 2 --dist loadfile -m "not slow and not browser and not dask and not subprocess"
 	$(BIN)/ruff check harmonize cli tests
 
 lint: $(STAMP)

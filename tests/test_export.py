@@ -149,6 +149,29 @@ def test_wide_links_gridded_values(study: Study, built: ExportStore) -> None:
     assert "gridded_sea_surface_temperature" not in read_wide(study, link_gridded=False).columns
 
 
+def test_wide_export_with_linked_gridded_values_opens_one_connection(
+        study: Study, built: ExportStore, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    # one read-only connection for the whole export, the co-location of gridded values included,
+    # and no folder written inside the store (the spill folder is beside the output)
+    from harmonize.store import Store
+
+    opened: list[bool] = []
+    connect = Store.connect
+
+    def counting(self: Store, read_only: bool = True, *args: object, **kwargs: object):  # type: ignore[no-untyped-def]
+        opened.append(read_only)
+        return connect(self, read_only, *args, **kwargs)
+
+    before = sorted(p.relative_to(study.store_dir) for p in study.store_dir.rglob("*"))
+    monkeypatch.setattr(Store, "connect", counting)
+    result = export_wide(study, tmp_path / "wide.parquet", ExportFilters.build(kinds="trawl"))
+    monkeypatch.undo()
+    assert opened == [True]
+    assert "gridded_sea_surface_temperature" in pd.read_parquet(result.path).columns
+    assert sorted(p.relative_to(study.store_dir) for p in study.store_dir.rglob("*")) == before
+    assert [p.name for p in tmp_path.iterdir() if p.name.startswith(".")] == []   # the spill folder is gone
+
+
 def test_wide_joins_linked_covariates(study: Study, built: ExportStore, tmp_path: Path) -> None:
     linked = pd.DataFrame({"source_id": ["survey_trawl"], "event_id": ["T2"], "model_sst_degC": [11.25]})
     result = export_wide(study, tmp_path / "wide.csv", covariates=linked)

@@ -109,8 +109,13 @@ CASES = {
 }
 
 
-@pytest.mark.parametrize("suffix", [".parquet", ".csv"])
-@pytest.mark.parametrize("case", list(CASES))
+#: The combinations the fast lane runs (make test runs every one).
+FAST_CASES = {("all", ".parquet"), ("filters", ".csv")}
+
+
+@pytest.mark.parametrize(("case", "suffix"), [
+    pytest.param(case, suffix, marks=() if (case, suffix) in FAST_CASES else pytest.mark.slow)
+    for case in CASES for suffix in (".parquet", ".csv")])
 def test_runs_write_the_one_pass_file(study: Study, tmp_path: Path, suffix: str, case: str) -> None:
     options = CASES[case]
     one = export_wide(study, tmp_path / f"one{suffix}", run_rows=ONE_PASS, **options)

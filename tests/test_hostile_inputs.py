@@ -255,6 +255,7 @@ def test_study_paths_outside_the_study_folder_are_refused(study_dir: Path, capsy
 HOSTILE = "x'); DROP TABLE ingests; --\"; SELECT 1 --"
 
 
+@pytest.mark.slow  # ingests and exports every kind under hostile names
 def test_names_built_to_break_sql_are_stored_verbatim(tmp_path: Path, capsys: pytest.CaptureFixture[str]) -> None:
     # Quotes and semicolons in: the study folder's path, the source id, the protocol, the
     # provider's column names, a taxon name and its alias, a life stage and the file names.

@@ -73,6 +73,7 @@ def test_the_manifest_records_each_files_sha256_and_size(ingested: Path) -> None
     assert store.check() == []
 
 
+@pytest.mark.slow  # a sweep over every live file (the fast lane has the single-damage tests)
 def test_a_bit_flip_sweep_is_caught_every_time(ingested: Path) -> None:
     # One flipped bit anywhere in a live file (header magic, data pages, footer) must be
     # reported by the check, naming the file and its ingest. Positions: every byte of the

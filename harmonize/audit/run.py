@@ -257,7 +257,9 @@ def audit(study: Study, year: int | None = None, engine: str | None = None,
         if choice.name == "dask":
             from harmonize.engines.dask_engine import audit_metrics
 
-            metrics = audit_metrics(con, store._live_paths(con), cells, study.min_vessels, year,
+            # the manifest names files relative to the store; the Dask workers open them directly
+            live = [str(store.directory / p) for p in store._live_paths(con)]
+            metrics = audit_metrics(con, live, cells, study.min_vessels, year,
                                     scheduler or choice.scheduler, rules=Disclosure.for_study(study))
         else:
             metrics = compute(con, cells, study.min_vessels, year, Disclosure.for_study(study))

@@ -28,7 +28,10 @@ from harmonize.ingest import assemble, prepare, store_output
 #: tested on their own: new nullable columns (count_observed, subsample_fraction,
 #: provider_record_id, track_*), the tow's track positions, and target windows read in season
 #: years (haul H011 of 2019-12-15 is in season year 2020: no zeros of the 2015-2019 target).
-MESSY_DIGEST = "64a2df5cbcfc27489ec566dadeb9dbbcd82b4a1603f095d4a53556df91b5d579"
+#: Renewed for issue 21 (zone-aware UTC event times, the new density_unit column); before
+#: renewing, the new content with times converted back to naive UTC and density_unit dropped
+#: gave exactly the previous digest 64a2df5c...d579.
+MESSY_DIGEST = "31434b70a528c040915549d7d3348c692eac661506b3fb36d6de99d53a2e626d"
 
 
 def _content(study_dir: Path, ingest_id: str | None = None) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:

@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import base64
 import json
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -21,6 +22,7 @@ import pyarrow as pa
 from harmonize import __version__
 from harmonize.contract import CONTRACT_VERSION
 from harmonize.disclosure import Disclosure
+from harmonize.export.safe_csv import header_text
 from harmonize.export.selection import ExportFilters, sql_text
 from harmonize.files import public_name
 from harmonize.study import Study
@@ -123,21 +125,51 @@ _UNIT_NOTES = {
 }
 
 
-def unit_field_metadata(schema: pa.Schema) -> pa.Schema:
+def column_unit(name: str, numeric: bool, names: Sequence[str],
+                extra: Mapping[str, str] | None = None) -> dict[str, str]:
+    """The unit entry of one exported column: ``{"unit": UDUNITS text}``, ``{"unit_column":
+    column}`` (the column that holds each row's unit) or ``{}`` (not numeric, no unit); with
+    ``unit_note`` for columns that are indices rather than quantities.
+
+    ``extra`` gives units of columns the export names itself (the wide table's taxon columns).
+    """
+    meta: dict[str, str] = {}
+    if extra and name in extra:
+        meta["unit"] = extra[name]
+    elif numeric and name in UNIT_COLUMNS and UNIT_COLUMNS[name] in names:
+        meta["unit_column"] = UNIT_COLUMNS[name]
+    elif numeric and name in FIXED_UNITS:
+        meta["unit"] = FIXED_UNITS[name]
+    if name in _UNIT_NOTES and meta:
+        meta["unit_note"] = _UNIT_NOTES[name]
+    return meta
+
+
+def _is_numeric(t: pa.DataType) -> bool:
+    return pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)
+
+
+def unit_field_metadata(schema: pa.Schema, extra: Mapping[str, str] | None = None) -> pa.Schema:
     """``schema`` with the unit of every numeric column in its field metadata: ``unit`` (a
     UDUNITS-2 string) or ``unit_column`` (the column that holds each row's unit)."""
     fields = []
     for f in schema:
-        meta: dict[str, str] = {}
-        numeric = pa.types.is_integer(f.type) or pa.types.is_floating(f.type)
-        if numeric and f.name in UNIT_COLUMNS and UNIT_COLUMNS[f.name] in schema.names:
-            meta["unit_column"] = UNIT_COLUMNS[f.name]
-        elif numeric and f.name in FIXED_UNITS:
-            meta["unit"] = FIXED_UNITS[f.name]
-        if f.name in _UNIT_NOTES and meta:
-            meta["unit_note"] = _UNIT_NOTES[f.name]
-        fields.append(f.with_metadata(meta) if meta else f)
-    return pa.schema(fields)
+        meta = column_unit(f.name, _is_numeric(f.type), schema.names, extra)
+        fields.append(f.with_metadata({**(f.metadata or {}), **{k.encode(): v.encode() for k, v in meta.items()}})
+                      if meta else f)
+    return pa.schema(fields, metadata=schema.metadata)
+
+
+def describe_columns(schema: pa.Schema, extra: Mapping[str, str] | None = None) -> list[dict[str, str]]:
+    """Every column of an export with its type and unit, for the provenance record
+    (``columns``): ``name``, ``type`` (Arrow), and ``unit`` or ``unit_column`` for numbers."""
+    return [{"name": f.name, "type": str(f.type), **column_unit(f.name, _is_numeric(f.type), schema.names, extra)}
+            for f in schema]
+
+
+def query_schema(con: duckdb.DuckDBPyConnection, query: str) -> pa.Schema:
+    """The Arrow schema of a query's result (no rows are read)."""
+    return con.sql(query).limit(0).to_arrow_table().schema
 
 
 def kv_metadata_sql(meta: dict[str, Any], con: duckdb.DuckDBPyConnection | None = None,
@@ -151,7 +183,7 @@ def kv_metadata_sql(meta: dict[str, Any], con: duckdb.DuckDBPyConnection | None 
     """
     entries = {PARQUET_KEY: json.dumps(meta, default=str)}
     if con is not None and query is not None:
-        schema = unit_field_metadata(con.sql(query).limit(0).to_arrow_table().schema)
+        schema = unit_field_metadata(query_schema(con, query))
         entries["ARROW:schema"] = base64.b64encode(schema.serialize().to_pybytes()).decode("ascii")
     body = ", ".join(f"{sql_text(k)}: {sql_text(v)}" for k, v in entries.items())
     return f"KV_METADATA {{{body}}}"
@@ -162,11 +194,33 @@ def sidecar_path(path: Path) -> Path:
     return path.with_name(path.name + "-metadata.json")
 
 
-def write_sidecar(path: Path, meta: dict[str, Any], columns: list[tuple[str, str]] | None = None) -> Path:
+def csvw_name(title: str) -> str:
+    """A CSVW column ``name`` for a header text: every character but ASCII letters, digits and
+    ``_`` percent-encoded as UTF-8 (``Ostravix keldensis (per km2)`` ->
+    ``Ostravix%20keldensis%20%28per%20km2%29``), and a leading ``_`` too (names starting with
+    ``_`` are reserved). This is the default name CSVW derives from a title (W3C, Metadata
+    Vocabulary for Tabular Data, 2015, section 5.6, ``name``: the URI-template variable form,
+    RFC 6570 ``varname``); ``urllib.parse.unquote`` gives the title back.
+    """
+    out = []
+    for i, ch in enumerate(title):
+        if (ch.isascii() and (ch.isalnum() or ch == "_")) and not (i == 0 and ch == "_"):
+            out.append(ch)
+        else:
+            out.append("".join(f"%{b:02X}" for b in ch.encode("utf-8")))
+    return "".join(out) or "_"
+
+
+def write_sidecar(path: Path, meta: dict[str, Any], columns: list[tuple[str, str]] | None = None,
+                  units: Mapping[str, str] | None = None) -> Path:
     """Write the metadata of a CSV export beside it; returns the sidecar's path.
 
-    The document is CSVW-shaped (``@context``, ``url``, ``tableSchema``) with the harmonize
-    provenance under ``dc:provenance``, so CSVW tools and people can both read it.
+    The document is CSVW metadata (W3C, Metadata Vocabulary for Tabular Data, 2015): ``url``,
+    and a ``tableSchema`` whose columns have a valid ``name`` (:func:`csvw_name`), the header
+    text as ``titles``, the ``datatype``, ``separator`` ``|`` for list columns (CSV has no
+    lists), and the unit of every numeric column as ``schema:unitText`` (a fixed unit) or in
+    ``dc:description`` (the column that holds each row's unit). The harmonize provenance is
+    under ``dc:provenance``. ``units`` gives units of columns the export names itself.
     """
     doc: dict[str, Any] = {
         "@context": "http://www.w3.org/ns/csvw",
@@ -175,7 +229,23 @@ def write_sidecar(path: Path, meta: dict[str, Any], columns: list[tuple[str, str
         "dc:provenance": meta,
     }
     if columns:
-        doc["tableSchema"] = {"columns": [{"name": c, "datatype": _csvw_type(t)} for c, t in columns]}
+        names = [c for c, _ in columns]
+        cols = []
+        for name, sql_type in columns:
+            datatype = _csvw_type(sql_type)
+            col: dict[str, Any] = {"name": csvw_name(name), "titles": header_text(name), "datatype": datatype}
+            if sql_type.upper().endswith("[]"):
+                col["separator"] = "|"
+                col["datatype"] = _csvw_type(sql_type[:-2])
+            unit = column_unit(name, datatype in ("double", "integer"), names, units)
+            if "unit" in unit:
+                col["schema:unitText"] = unit["unit"]
+            if "unit_column" in unit:
+                col["dc:description"] = f"in the unit named on each row by column {unit['unit_column']}"
+            if "unit_note" in unit:
+                col["dc:description"] = unit["unit_note"]
+            cols.append(col)
+        doc["tableSchema"] = {"columns": cols}
     target = sidecar_path(path)
     target.write_text(json.dumps(doc, indent=2, default=str), encoding="utf-8")
     return target

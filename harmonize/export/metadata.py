@@ -111,7 +111,12 @@ FIXED_UNITS: dict[str, str] = {
     "n_vessels": "1", "n_values": "1", "count_observed": "1", "subsample_fraction": "1",
     "log_effort": "1", "events": "1", "share_zero": "1", "suppressed_events": "1",
     "year": "1", "season_year": "1", "source_row": "1",
+    # columns of the GeoPackage layers
+    "area_km2": "km2", "fishing_hours": "h", "n_rows": "1", "ix": "1", "iy": "1", "season_years": "1",
+    "first_season_year": "1", "last_season_year": "1",
 }
+#: Prefixes of exported count columns named after a source kind (``events_trawl``): unit "1".
+_COUNT_PREFIXES = ("events_",)
 #: Exported numeric columns whose unit is given on each row by another column.
 UNIT_COLUMNS: dict[str, str] = {
     "value": "unit", "effort": "effort_unit", "density": "density_unit",
@@ -122,6 +127,10 @@ _UNIT_NOTES = {
     "year": "calendar year (an index, not a quantity)",
     "season_year": "season year (an index, not a quantity)",
     "source_row": "1-based data row of the input file (an index)",
+    "ix": "grid column index in the study CRS (an index, not a quantity)",
+    "iy": "grid row index in the study CRS (an index, not a quantity)",
+    "first_season_year": "season year (an index, not a quantity)",
+    "last_season_year": "season year (an index, not a quantity)",
 }
 
 
@@ -140,6 +149,8 @@ def column_unit(name: str, numeric: bool, names: Sequence[str],
         meta["unit_column"] = UNIT_COLUMNS[name]
     elif numeric and name in FIXED_UNITS:
         meta["unit"] = FIXED_UNITS[name]
+    elif numeric and name.startswith(_COUNT_PREFIXES):
+        meta["unit"] = "1"
     if name in _UNIT_NOTES and meta:
         meta["unit_note"] = _UNIT_NOTES[name]
     return meta
@@ -170,6 +181,58 @@ def describe_columns(schema: pa.Schema, extra: Mapping[str, str] | None = None) 
 def query_schema(con: duckdb.DuckDBPyConnection, query: str) -> pa.Schema:
     """The Arrow schema of a query's result (no rows are read)."""
     return con.sql(query).limit(0).to_arrow_table().schema
+
+
+def describe_gpkg_columns(path: Path) -> int:
+    """Write the unit of every numeric column of every layer of the GeoPackage ``path`` into
+    its ``gpkg_data_columns`` table (``description``: "unit: km2", or the column holding each
+    row's unit), the GeoPackage Schema extension (OGC 12-128r18, GeoPackage Encoding Standard
+    1.3.1, Annex F.9 "Schema": tables gpkg_data_columns and gpkg_data_column_constraints,
+    registered in gpkg_extensions as gpkg_schema). GDAL (3.7 and later) shows a description as
+    the field's comment. Returns the number of columns described.
+    """
+    import sqlite3
+
+    numeric_types = ("INT", "REAL", "FLOAT", "DOUBLE", "NUMERIC")
+    con = sqlite3.connect(path)
+    try:
+        with con:
+            con.execute("""CREATE TABLE IF NOT EXISTS gpkg_data_columns (
+                table_name TEXT NOT NULL, column_name TEXT NOT NULL, name TEXT, title TEXT,
+                description TEXT, mime_type TEXT, constraint_name TEXT,
+                CONSTRAINT pk_gdc PRIMARY KEY (table_name, column_name),
+                CONSTRAINT gdc_tn UNIQUE (table_name, name))""")
+            con.execute("""CREATE TABLE IF NOT EXISTS gpkg_data_column_constraints (
+                constraint_name TEXT NOT NULL, constraint_type TEXT NOT NULL, value TEXT, min NUMERIC,
+                min_is_inclusive BOOLEAN, max NUMERIC, max_is_inclusive BOOLEAN, description TEXT,
+                CONSTRAINT gdcc_ntv UNIQUE (constraint_name, constraint_type, value))""")
+            for table in ("gpkg_data_columns", "gpkg_data_column_constraints"):
+                if not con.execute("SELECT 1 FROM gpkg_extensions WHERE table_name = ? AND extension_name = "
+                                   "'gpkg_schema'", [table]).fetchall():
+                    con.execute("INSERT INTO gpkg_extensions VALUES (?, NULL, 'gpkg_schema', "
+                                "'http://www.geopackage.org/spec/#extension_schema', 'read-write')", [table])
+            n = 0
+            layers = [r[0] for r in con.execute(
+                "SELECT table_name FROM gpkg_contents WHERE data_type IN ('features', 'attributes')")]
+            for layer in layers:
+                info = con.execute(f'PRAGMA table_info("{layer.replace(chr(34), chr(34) * 2)}")').fetchall()
+                names = [r[1] for r in info]
+                for _, column, sql_type, *_rest in info:
+                    if column == "fid":
+                        continue
+                    unit = column_unit(column, any(t in str(sql_type).upper() for t in numeric_types), names)
+                    if not unit:
+                        continue
+                    text = (f"unit: {unit['unit']}" if "unit" in unit
+                            else f"in the unit named on each row by column {unit['unit_column']}")
+                    if "unit_note" in unit:
+                        text += f"; {unit['unit_note']}"
+                    con.execute("INSERT OR REPLACE INTO gpkg_data_columns (table_name, column_name, name, "
+                                "description) VALUES (?, ?, ?, ?)", [layer, column, column, text])
+                    n += 1
+    finally:
+        con.close()
+    return n
 
 
 def kv_metadata_sql(meta: dict[str, Any], con: duckdb.DuckDBPyConnection | None = None,

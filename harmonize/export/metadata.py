@@ -10,6 +10,7 @@ from __future__ import annotations
 
 import base64
 import json
+import re
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -110,7 +111,7 @@ FIXED_UNITS: dict[str, str] = {
     "depth_min_m": "m", "depth_max_m": "m", "bottom_depth_m": "m",
     "n_vessels": "1", "n_values": "1", "count_observed": "1", "subsample_fraction": "1",
     "log_effort": "1", "events": "1", "share_zero": "1", "suppressed_events": "1",
-    "year": "1", "season_year": "1", "source_row": "1",
+    "year": "1", "season_year": "1", "source_row": "1", "source_record_rows": "1",
     # columns of the GeoPackage layers
     "area_km2": "km2", "fishing_hours": "h", "n_rows": "1", "ix": "1", "iy": "1", "season_years": "1",
     "first_season_year": "1", "last_season_year": "1",
@@ -127,6 +128,7 @@ _UNIT_NOTES = {
     "year": "calendar year (an index, not a quantity)",
     "season_year": "season year (an index, not a quantity)",
     "source_row": "1-based data row of the input file (an index)",
+    "source_record_rows": "1-based data rows of the records file (indices)",
     "ix": "grid column index in the study CRS (an index, not a quantity)",
     "iy": "grid row index in the study CRS (an index, not a quantity)",
     "first_season_year": "season year (an index, not a quantity)",
@@ -193,7 +195,7 @@ def describe_gpkg_columns(path: Path) -> int:
     """
     import sqlite3
 
-    numeric_types = ("INT", "REAL", "FLOAT", "DOUBLE", "NUMERIC")
+    numeric_type = re.compile(r"^((TINY|SMALL|MEDIUM|BIG)?INT(EGER)?|REAL|FLOAT|DOUBLE|NUMERIC)\b")
     con = sqlite3.connect(path)
     try:
         with con:
@@ -220,7 +222,7 @@ def describe_gpkg_columns(path: Path) -> int:
                 for _, column, sql_type, *_rest in info:
                     if column == "fid":
                         continue
-                    unit = column_unit(column, any(t in str(sql_type).upper() for t in numeric_types), names)
+                    unit = column_unit(column, bool(numeric_type.match(str(sql_type).upper())), names)
                     if not unit:
                         continue
                     text = (f"unit: {unit['unit']}" if "unit" in unit
@@ -295,11 +297,11 @@ def write_sidecar(path: Path, meta: dict[str, Any], columns: list[tuple[str, str
         names = [c for c, _ in columns]
         cols = []
         for name, sql_type in columns:
-            datatype = _csvw_type(sql_type)
+            is_list = sql_type.upper().endswith("[]")
+            datatype = _csvw_type(sql_type[:-2] if is_list else sql_type)
             col: dict[str, Any] = {"name": csvw_name(name), "titles": header_text(name), "datatype": datatype}
-            if sql_type.upper().endswith("[]"):
+            if is_list:
                 col["separator"] = "|"
-                col["datatype"] = _csvw_type(sql_type[:-2])
             unit = column_unit(name, datatype in ("double", "integer"), names, units)
             if "unit" in unit:
                 col["schema:unitText"] = unit["unit"]

@@ -229,3 +229,56 @@ def test_long_table_names_flags_row_flags(study: Study, tmp_path: Path) -> None:
         old = read_long(study, columns=["record_id", "flags"])
     assert list(old.columns) == ["record_id", "row_flags"]
     assert read_long(study, columns=["row_flags"])["row_flags"].map(len).sum() == frame["row_flags"].map(len).sum()
+
+
+# ------------------------------------------------------------------------------ docs/store.md
+def test_store_doc_names_every_table_view_and_column(study: Study) -> None:
+    doc = (ROOT / "docs" / "store.md").read_text(encoding="utf-8")
+    named = set(re.findall(r"`([A-Za-z_][A-Za-z0-9_]*)`", doc))
+    con = duckdb.connect(str(study.store_dir / "harmonized.duckdb"), read_only=True)
+    con.execute(f"SET file_search_path = '{study.store_dir}'")
+    relations = [r[0] for r in con.execute(
+        "SELECT table_name FROM information_schema.tables WHERE table_schema = 'main'").fetchall()]
+    columns = {r[0] for r in con.execute("DESCRIBE observations").fetchall()}
+    con.close()
+    assert relations
+    # each table and view has its own entry ("- `name`" at the start of a line)
+    entries = set(re.findall(r"^- `([a-z_]+)`", doc, flags=re.MULTILINE))
+    assert set(relations) <= entries, sorted(set(relations) - entries)
+    assert columns <= named, sorted(columns - named)
+
+
+def test_store_doc_stands_alone() -> None:
+    # every file the page points to is in the repository
+    doc = (ROOT / "docs" / "store.md").read_text(encoding="utf-8")
+    for ref in set(re.findall(r"[\w./-]+\.(?:md|json|py|toml)\b", doc)):
+        if ref.startswith(("study.toml", "profiles/")) or ref == "moving.json":
+            continue  # files of a user's study folder, and the staging journal a store holds
+        candidates = [ROOT / ref, ROOT / "docs" / ref, ROOT / ref.removeprefix("harmonize/")]
+        assert any(p.exists() for p in candidates), ref
+
+
+def test_store_doc_snippets_run_without_harmonize(study: Study, tmp_path: Path) -> None:
+    # the page's Python snippets, run as written against a store ("study/" is the study folder)
+    doc = (ROOT / "docs" / "store.md").read_text(encoding="utf-8")
+    blocks = re.findall(r"```python\n(.*?)```", doc, flags=re.DOTALL)
+    assert len(blocks) >= 2
+    study_parent = study.root.parent
+    link = study_parent / "study"
+    assert link.exists()
+    import os
+
+    here = os.getcwd()
+    os.chdir(study_parent)
+    try:
+        for block in blocks:
+            code = "\n".join(line.strip() if line.startswith("  ") else line for line in block.splitlines())
+            namespace: dict[str, object] = {}
+            exec(compile(code, "docs/store.md", "exec"), namespace)  # noqa: S102 (the doc's own code)
+            if "frame" in namespace:
+                frame = namespace["frame"]
+                # season_year reads as an integer: ordered comparisons work
+                assert str(frame["season_year"].dtype) == "int32"  # type: ignore[index]
+                assert (frame["season_year"] >= 2019).all()  # type: ignore[index,operator]
+    finally:
+        os.chdir(here)

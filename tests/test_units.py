@@ -179,3 +179,109 @@ def test_error_messages_are_one_line() -> None:
         with pytest.raises(units.UnitError) as info:
             units.conversion(dimension, unit)
         assert "\n" not in str(info.value)
+
+
+# ---------------------------------------------------------------- through the adapters
+def _trawl_store(study_dir, depth_unit: str, weight_unit: str):  # type: ignore[no-untyped-def]
+    from trawl_profiles import BASIC_PROFILE
+
+    from harmonize import Store, load_study, run
+
+    profile = BASIC_PROFILE.replace('bottom_depth_m = "fathom"', f'bottom_depth_m = "{depth_unit}"')
+    profile = profile.replace('weight = "g"', f'weight = "{weight_unit}"')
+    assert profile != BASIC_PROFILE or (depth_unit, weight_unit) == ("fathom", "g")
+    (study_dir / "profiles" / "trawl_basic.toml").write_text(profile)
+    (study_dir / "h.csv").write_text(
+        "HAUL_NO,START,END,LAT_S,LON_S,LAT_E,LON_E,WING_M,DEPTH_FM\n"
+        "A1,2021-07-01T06:00,2021-07-01T06:30,43.0,-153.0,43.025,-153.0,20,40\n")
+    (study_dir / "c.csv").write_text("HAUL,SPECIES,WT_G,N\nA1,keld cod,1000,2\n")
+    study = load_study(study_dir)
+    run(study, "trawl_basic", {"events": study_dir / "h.csv", "records": study_dir / "c.csv"})
+    with Store(study.store_dir).connect(read_only=True) as con:
+        return con.execute("""SELECT any_value(bottom_depth_m), max(value) FILTER (WHERE quantity = 'biomass')
+                              FROM observations""").fetchall()[0]
+
+
+@pytest.mark.parametrize(("depth_unit", "metres", "weight_unit", "kg"), [
+    # 40 fathoms = 73.152 m (1.8288 m each, NIST SP 811); 1000 g = 1 kg
+    ("fathoms", 73.152, "grams", 1.0),
+    # 40 ft = 12.192 m (0.3048 m each); 1000 t = 1e6 kg
+    ("feet", 12.192, "tonnes", 1e6),
+    ("fm", 73.152, "g", 1.0),
+])
+def test_profile_units_reach_the_store(study_dir, depth_unit: str, metres: float,  # type: ignore[no-untyped-def]
+                                       weight_unit: str, kg: float) -> None:
+    depth, biomass = _trawl_store(study_dir, depth_unit, weight_unit)
+    assert depth == pytest.approx(metres, rel=1e-12)
+    assert biomass == pytest.approx(kg, rel=1e-12)
+
+
+def test_bad_profile_unit_names_file_section_and_what_is_accepted(study_dir) -> None:  # type: ignore[no-untyped-def]
+    from harmonize.errors import ConfigError
+
+    with pytest.raises(ConfigError, match=r"trawl_basic\.toml: \[units\] bottom_depth_m: 'kg' is kilogram, a unit "
+                                          r"of \[mass\], not a length unit; give a length unit in UDUNITS or pint "
+                                          r"spelling, e\.g\. m, cm"):
+        _trawl_store(study_dir, "kg", "g")
+
+
+@pytest.mark.parametrize(("file_unit", "stored", "expected"), [
+    # UDUNITS-2 spellings of a chlorophyll concentration; 1 kg m-3 = 1e6 mg m-3 (SI prefixes)
+    ("mg m**-3", 0.5, 0.5),
+    ("mg m-3", 0.5, 0.5),
+    ("kg/m^3", 5e-7, 0.5),
+    ("0.001 kg m-3", 5e-4, 0.5),
+    ("microgram/L", 0.5, 0.5),
+])
+def test_cf_units_spellings_through_the_gridded_adapter(study_dir, file_unit: str, stored: float,  # type: ignore[no-untyped-def]
+                                                        expected: float) -> None:
+    from gridded_files import regular_file, write_profile
+
+    from harmonize import load_study
+    from harmonize.ingest import prepare
+
+    study = load_study(study_dir)
+    lat, lon = np.array([43.0, 43.1]), np.array([-152.0, -151.9])
+    path = regular_file(study_dir / "chl.nc", {"chl": (np.full((2, 2, 2), stored), {"units": file_unit})},
+                        lat, lon, time=[1.0, 2.0])
+    write_profile(study_dir, "chl", 'chl = "mass_concentration_of_chlorophyll_a_in_sea_water"')
+    adapter, profile = prepare(study, "chl")
+    out = adapter.read({"rows": path}, profile, study)
+    values = out.values["value"].to_numpy()
+    assert len(values) and values == pytest.approx(expected, rel=1e-12)
+    assert set(out.values["unit"]) == {"mg m-3"}
+
+
+def test_bad_cf_units_attribute_names_file_variable_and_unit(study_dir) -> None:  # type: ignore[no-untyped-def]
+    from gridded_files import regular_file, write_profile
+
+    from harmonize import load_study
+    from harmonize.errors import InputFileError
+    from harmonize.ingest import prepare
+
+    study = load_study(study_dir)
+    lat, lon = np.array([43.0, 43.1]), np.array([-152.0, -151.9])
+    path = regular_file(study_dir / "sst.nc", {"sst": (np.full((2, 2, 2), 9.0), {"units": "furlong"})},
+                        lat, lon, time=[1.0, 2.0])
+    write_profile(study_dir, "sst", 'sst = "sea_surface_temperature"')
+    adapter, profile = prepare(study, "sst")
+    with pytest.raises(InputFileError, match=r"sst\.nc: variable 'sst': units 'furlong' is furlong, a unit of "
+                                             r"\[length\], not a temperature unit; .* or set force_unit in "
+                                             r"\[variables\] of sst\.toml"):
+        adapter.read({"rows": path}, profile, study)
+
+
+def test_bad_speed_unit_of_pings_is_named(study_dir) -> None:  # type: ignore[no-untyped-def]
+    import shutil
+    from pathlib import Path
+
+    from harmonize import load_study, run
+    from harmonize.errors import ConfigError
+
+    fixtures = Path(__file__).resolve().parent.parent / "fixtures"
+    shutil.copy(fixtures / "effort" / "pings_hand.csv", study_dir / "pings_hand.csv")
+    profile = study_dir / "profiles" / "effort_pings.toml"
+    profile.write_text(profile.read_text().replace("[fishing]\n", '[units]\nspeed_kn = "kg"\n\n[fishing]\n', 1))
+    with pytest.raises(ConfigError, match=r"effort_pings\.toml: \[units\] speed_kn: 'kg' is kilogram, a unit of "
+                                          r"\[mass\], not a speed unit; give a speed unit"):
+        run(load_study(study_dir), "effort_pings", {"rows": study_dir / "pings_hand.csv"})

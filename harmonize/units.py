@@ -102,7 +102,6 @@ def _accepted(dimension: str) -> str:
             f"(harmonize converts to {canonical})")
 
 
-@lru_cache(maxsize=512)
 def conversion(dimension: str, unit: str) -> tuple[float, float]:
     """(scale, offset) taking values in ``unit`` to the canonical unit of ``dimension``.
 
@@ -119,7 +118,13 @@ def conversion(dimension: str, unit: str) -> tuple[float, float]:
         raise UnitError(f"'{dimension}' is not a unit dimension harmonize knows; one of {', '.join(DIMENSIONS)}")
     if not isinstance(unit, str) or not unit.strip():
         raise UnitError(f"{unit!r} is not a unit; give {_accepted(dimension)}")
-    text = " ".join(unit.split())
+    return _conversion(dimension, " ".join(unit.split()))
+
+
+@lru_cache(maxsize=512)
+def _conversion(dimension: str, text: str) -> tuple[float, float]:
+    # computed once per (dimension, unit text): the factor every array of that unit is multiplied by
+    unit = text
     if dimension == "salinity":
         if text in SALINITY_LABELS or text.casefold() in {s.casefold() for s in SALINITY_LABELS}:
             return (1.0, 0.0)

@@ -285,3 +285,9 @@ def test_bad_speed_unit_of_pings_is_named(study_dir) -> None:  # type: ignore[no
     with pytest.raises(ConfigError, match=r"effort_pings\.toml: \[units\] speed_kn: 'kg' is kilogram, a unit of "
                                           r"\[mass\], not a speed unit; give a speed unit"):
         run(load_study(study_dir), "effort_pings", {"rows": study_dir / "pings_hand.csv"})
+
+
+@pytest.mark.parametrize("unit", [["K"], 3, None, {"a": 1}])
+def test_a_unit_that_is_not_text_is_named(unit: object) -> None:
+    with pytest.raises(units.UnitError, match=r"is not a unit; give a temperature unit"):
+        units.conversion("temperature", unit)  # type: ignore[arg-type]

@@ -282,3 +282,19 @@ def test_store_doc_snippets_run_without_harmonize(study: Study, tmp_path: Path) 
                 assert (frame["season_year"] >= 2019).all()  # type: ignore[index,operator]
     finally:
         os.chdir(here)
+
+
+def test_season_year_is_an_integer_in_arrow_and_duckdb_readers(study: Study) -> None:
+    # pyarrow.dataset with the partitioning docs/store.md gives, and DuckDB's hive partitioning:
+    # season_year is an integer both ways (polars is not installed here)
+    import pyarrow.dataset as ds
+
+    root = study.store_dir / "observations"
+    part = ds.partitioning(pa.schema([("source_kind", pa.string()), ("season_year", pa.int32())]), flavor="hive")
+    table = ds.dataset(root, format="parquet", partitioning=part).to_table()
+    assert table.schema.field("season_year").type == pa.int32()
+    assert table.num_rows
+    types = duckdb.connect().execute(
+        "SELECT DISTINCT typeof(season_year) FROM read_parquet(?, hive_partitioning = true)",
+        [str(root / "**" / "*.parquet")]).fetchall()
+    assert types == [("BIGINT",)]

@@ -4,12 +4,14 @@ Every unit text harmonize accepts (a profile's ``[units]`` entry, a NetCDF varia
 ``units`` attribute, a gridded profile's ``unit``/``force_unit``) goes through this module.
 pint (a maintained unit library) does the parsing and the arithmetic; this module adds
 
-- the definitions marine data need and pint gets wrong or lacks: the international fathom,
-  6 international feet = 1.8288 m exactly (pint's ``fathom`` is 6 US survey feet,
-  1.8288037 m), the international nautical mile 1852 m and the knot (one nautical mile per
-  hour), set explicitly (NIST SP 811, 2008 ed., Appendix B.8: "fathom = 1.8288 m",
-  "mile, nautical = 1.852 km", "knot = 0.5144444 m/s"); ``fm`` is the fathom, not the
-  femtometre (no survey measures depth in femtometres);
+- the definitions marine data need and pint gets wrong or lacks, set explicitly: the
+  international fathom, 6 international feet of 0.3048 m = 1.8288 m exactly (International
+  Yard and Pound Agreement, 1959; pint's ``fathom`` is 6 US survey feet, 1.8288037 m, as is
+  the "fathom (based on U.S. survey foot)" entry of NIST SP 811, from memory), the
+  international nautical mile 1852 m and the knot, one nautical mile per hour (NIST SP 811,
+  2008 ed., Appendix B.8: "foot = 0.3048 m", "mile, nautical = 1852 m", "knot =
+  0.5144444 m/s"); ``fm`` is the fathom, not the femtometre (no survey measures depth in
+  femtometres);
 - the UDUNITS-2 spellings CF files use that pint reads otherwise or not at all: an integer
   power glued to a name (``m-3``, ``km2``), ``.`` between factors (``mg.m-3``), the
   Celsius and kelvin aliases (``degrees_C``, ``deg_C``, ``degree_C``; ``degrees_K``), and
@@ -56,7 +58,7 @@ DIMENSIONS: tuple[str, ...] = (*_CANONICAL, "salinity")
 SALINITY_LABELS: tuple[str, ...] = ("1", "1e-3", "0.001", "psu", "PSU", "pss-78", "PSS-78", "dimensionless")
 
 _DEFINITIONS = (
-    # NIST SP 811 (2008), Appendix B.8: fathom = 1.8288 m (6 international feet, 1959 agreement)
+    # 6 international feet of 0.3048 m (NIST SP 811 (2008) B.8; International Yard and Pound Agreement 1959)
     "fathom = 1.8288 * meter = fm",
     # NIST SP 811 (2008), Appendix B.8: nautical mile = 1852 m; knot = 1 nautical mile per hour
     "nautical_mile = 1852 * meter = nmi = NM",

@@ -18,9 +18,10 @@ UREG = pint.UnitRegistry()
 
 # ---------------------------------------------------------------- published definitions
 def test_fathom_nautical_mile_knot_are_the_international_definitions() -> None:
-    # NIST SP 811 (2008 ed.), Appendix B.8: fathom = 1.8288 m (exact: 6 international feet of
-    # 0.3048 m, International Yard and Pound Agreement 1959); nautical mile = 1852 m (exact);
-    # knot = 1852/3600 m/s; foot = 0.3048 m; pound (avoirdupois) = 0.45359237 kg.
+    # NIST SP 811 (2008 ed.), Appendix B.8: foot = 0.3048 m (exact), nautical mile = 1852 m
+    # (exact), knot = 1852/3600 m/s, pound (avoirdupois) = 0.45359237 kg (exact); the
+    # international fathom = 6 international feet = 1.8288 m (International Yard and Pound
+    # Agreement 1959).
     assert units.to_canonical(np.array([1.0]), "length", "fathom")[0] == 1.8288
     assert units.to_canonical(np.array([1.0]), "length", "fathoms")[0] == 1.8288
     assert units.to_canonical(np.array([1.0]), "length", "fm")[0] == 1.8288
@@ -203,7 +204,7 @@ def _trawl_store(study_dir, depth_unit: str, weight_unit: str):  # type: ignore[
 
 
 @pytest.mark.parametrize(("depth_unit", "metres", "weight_unit", "kg"), [
-    # 40 fathoms = 73.152 m (1.8288 m each, NIST SP 811); 1000 g = 1 kg
+    # 40 fathoms = 73.152 m (1.8288 m each: 6 international feet, 1959 agreement); 1000 g = 1 kg
     ("fathoms", 73.152, "grams", 1.0),
     # 40 ft = 12.192 m (0.3048 m each); 1000 t = 1e6 kg
     ("feet", 12.192, "tonnes", 1e6),

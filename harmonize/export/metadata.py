@@ -190,8 +190,7 @@ def describe_gpkg_columns(path: Path) -> int:
     its ``gpkg_data_columns`` table (``description``: "unit: km2", or the column holding each
     row's unit), the GeoPackage Schema extension (OGC 12-128r18, GeoPackage Encoding Standard
     1.3.1, Annex F.9 "Schema": tables gpkg_data_columns and gpkg_data_column_constraints,
-    registered in gpkg_extensions as gpkg_schema). GDAL (3.7 and later) shows a description as
-    the field's comment. Returns the number of columns described.
+    registered in gpkg_extensions as gpkg_schema). Returns the number of columns described.
     """
     import sqlite3
 

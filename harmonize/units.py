@@ -32,6 +32,7 @@ converted with one multiply and one add: ``canonical = value * scale + offset``.
 
 from __future__ import annotations
 
+import logging
 import re
 from functools import lru_cache
 
@@ -77,11 +78,17 @@ class UnitError(ValueError):
 @lru_cache(maxsize=1)
 def registry() -> pint.UnitRegistry:
     """The pint registry with harmonize's explicit definitions (built once per process)."""
-    # on_redefinition="warn" lets our definitions replace pint's (pint logs that to its own
-    # logger, which has no handler by default: nothing is printed)
+    # on_redefinition="warn" lets our definitions replace pint's; pint logs each replacement
+    # as a warning, which is intended here and would only alarm a user: its logger is muted
+    # while the definitions load
     ureg = pint.UnitRegistry(on_redefinition="warn", cache_folder=None)
-    for line in _DEFINITIONS:
-        ureg.define(line)
+    pint_log = logging.getLogger("pint.util")
+    was_disabled, pint_log.disabled = pint_log.disabled, True
+    try:
+        for line in _DEFINITIONS:
+            ureg.define(line)
+    finally:
+        pint_log.disabled = was_disabled
     return ureg
 
 

@@ -292,3 +292,14 @@ def test_bad_speed_unit_of_pings_is_named(study_dir) -> None:  # type: ignore[no
 def test_a_unit_that_is_not_text_is_named(unit: object) -> None:
     with pytest.raises(units.UnitError, match=r"is not a unit; give a temperature unit"):
         units.conversion("temperature", unit)  # type: ignore[arg-type]
+
+
+def test_building_the_registry_logs_nothing(caplog: pytest.LogCaptureFixture) -> None:
+    # the library never prints; pint's notes about our intended redefinitions are muted
+    import logging
+
+    units.registry.cache_clear()
+    units._conversion.cache_clear()
+    with caplog.at_level(logging.DEBUG):
+        assert units.conversion("length", "fathom") == (1.8288, 0.0)
+    assert not [r for r in caplog.records if r.name.startswith("pint")]

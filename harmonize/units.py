@@ -163,9 +163,14 @@ def _conversion(dimension: str, text: str) -> tuple[float, float]:
 
 
 def _significant(x: float) -> float:
-    # pint's factor arithmetic leaves float noise in the last bits (1 ug/L -> 0.9999999999999998
-    # mg m-3); 15 significant digits keep every exact decimal definition exact (0.3048, 1.8288)
-    return float(f"{float(x):.15g}")
+    # pint's factor arithmetic leaves float noise in the last bits of exact decimal factors
+    # (1 ug/L -> 0.9999999999999998 mg m-3, 1 ft -> 0.30479999999999996 m): a factor whose
+    # 15-significant-digit form is a shorter decimal is that decimal; any other factor (1/60,
+    # 3600/1852) is kept to the last bit as pint computed it
+    x = float(x)
+    text = f"{x:.15g}"
+    digits = re.sub(r"[^0-9]", "", text.split("e")[0]).lstrip("0")
+    return float(text) if len(digits) <= 12 else x
 
 
 def canonical_unit(dimension: str) -> str:

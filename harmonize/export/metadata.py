@@ -159,6 +159,9 @@ def column_unit(name: str, numeric: bool, names: Sequence[str],
 
 
 def _is_numeric(t: pa.DataType) -> bool:
+    # a list of numbers (source_record_rows) has the unit of its items
+    if pa.types.is_list(t) or pa.types.is_large_list(t):
+        return _is_numeric(t.value_type)
     return pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)
 
 

@@ -286,7 +286,7 @@ def test_fishing_aggregate_recovers_effort_without_disclosing(
     # 2020 they sum to 12 + 3 = 15 h resting on at least 5 vessels; E3 (3 vessels) alone
     assert sorted(rows["value"]) == [7.5, 15.0]
     assert (rows["n_vessels"] >= 3).all() and rows["cell_id"].isna().all()
-    assert rows["flags"].map(lambda f: AGGREGATED_FLAG in list(f)).all()
+    assert rows["row_flags"].map(lambda f: AGGREGATED_FLAG in list(f)).all()
     # every aggregated row, whatever the level, rests on at least three vessels
     every = read_long(study, ExportFilters.build(kinds="effort"), disclosure=rules)
     assert (every["n_vessels"] >= 3).all() and not every["event_id"].isin(["E1", "E2", "E3"]).any()

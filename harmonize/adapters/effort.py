@@ -637,10 +637,11 @@ class PingReader:
         unit = self.profile.units.get("speed_kn")
         if unit is None:
             return 1.0
-        if not units.is_known("speed", unit):
-            raise ConfigError(self.profile.path, "units.speed_kn",
-                              f"'{unit}' is not a known speed unit; use one of {', '.join(units.known_units('speed'))}")
-        return float(units.to_canonical(np.array([1.0]), "speed", unit)[0])
+        try:
+            scale, _ = units.conversion("speed", unit)
+        except units.UnitError as exc:
+            raise ConfigError(self.profile.path, "[units] speed_kn", str(exc)) from None
+        return scale
 
     def _stage1_sql(self, src: str, rownum: str, extra: str) -> str:
         """Typed pings with the first problem of each row (reason, message, raw).

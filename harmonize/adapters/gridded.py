@@ -30,6 +30,7 @@ import pandas as pd
 import pyproj
 import xarray as xr
 
+from harmonize import units
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
 from harmonize.adapters.reading import EARLIEST_TIME, file_sha256
 from harmonize.adapters.registry import register
@@ -55,8 +56,6 @@ from harmonize.gridded.cf import (
     is_longitude,
     is_time,
     is_vertical,
-    same_unit,
-    unit_conversion,
 )
 from harmonize.gridded.classic import classic_required_size
 from harmonize.profile import Profile
@@ -131,10 +130,11 @@ class GriddedSettings:
                                   f"'{name}' is not a physical variable harmonize knows; use a CF standard "
                                   f"name, one of: {known}")
             target = CANONICAL_VARIABLES[name]
-            if unit is not None and (not isinstance(unit, str) or unit_conversion(target.dimension, unit) is None):
-                raise ConfigError(profile.path, key,
-                                  f"unit {unit!r} is not a {target.dimension} unit harmonize converts to "
-                                  f"{target.unit}")
+            if unit is not None:
+                try:
+                    units.conversion(target.dimension, unit)
+                except units.UnitError as exc:
+                    raise ConfigError(profile.path, key, str(exc)) from None
             mappings.append(VariableMapping(file_name, target, unit, force))
         targets = [m.target.name for m in mappings]
         twice = sorted({t for t in targets if targets.count(t) > 1})
@@ -461,16 +461,17 @@ def plan_variable(ds: xr.Dataset, mapping: VariableMapping, settings: GriddedSet
                                  f"{profile.path.name}, e.g. {name} = {{ name = \"{target.name}\", unit = \"...\" }}")
         unit = mapping.unit
     else:
-        if unit_conversion(target.dimension, file_unit) is None:
-            raise InputFileError(path, f"variable '{name}' has units '{file_unit}', which is not a "
-                                 f"{target.dimension} unit harmonize converts to {target.unit}; correct the file, "
-                                 f"or set force_unit in [variables] of {profile.path.name}")
-        if mapping.unit is not None and not same_unit(target.dimension, file_unit, mapping.unit):
+        try:
+            units.conversion(target.dimension, file_unit)
+        except units.UnitError as exc:
+            raise InputFileError(path, f"variable '{name}': units {exc}; correct the file, "
+                                 f"or set force_unit in [variables] of {profile.path.name}") from None
+        if mapping.unit is not None and not units.same_unit(target.dimension, file_unit, mapping.unit):
             raise InputFileError(path, f"variable '{name}' has units '{file_unit}' but {profile.path.name} says "
                                  f"'{mapping.unit}'; check which is right (use force_unit to override the file)")
         unit = file_unit
     assert unit is not None
-    scale, offset = unit_conversion(target.dimension, unit)  # type: ignore[misc]
+    scale, offset = units.conversion(target.dimension, unit)
     try:
         packing = Packing.from_attrs(var.attrs, var.dtype)
     except PackingError as exc:  # scale_factor = 0: every value would be the offset

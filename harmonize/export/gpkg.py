@@ -25,7 +25,7 @@ import shapely
 
 from harmonize.disclosure import Disclosure
 from harmonize.export.atomic import all_or_nothing
-from harmonize.export.metadata import ExportResult, provenance
+from harmonize.export.metadata import ExportResult, describe_gpkg_columns, provenance
 from harmonize.export.selection import (
     BASE_VIEW,
     ExportFilters,
@@ -130,6 +130,7 @@ def export_gpkg(study: Study, out: str | Path, filters: ExportFilters | None = N
         cell_frame(study, cells).to_file(path, layer="cells", driver="GPKG", engine="pyogrio")
     pyogrio.write_dataframe(coverage, path, layer="cell_coverage", driver="GPKG")
     pyogrio.write_dataframe(_meta_table(meta), path, layer="export_metadata", driver="GPKG")
+    describe_gpkg_columns(path)  # the unit of every numeric column, in gpkg_data_columns
     return ExportResult("gpkg", path, int(located.sum()), meta, [path])
 
 

@@ -26,7 +26,14 @@ import pandas as pd
 
 from harmonize.disclosure import Disclosure
 from harmonize.export.atomic import all_or_nothing
-from harmonize.export.metadata import ExportResult, kv_metadata_sql, provenance, write_sidecar
+from harmonize.export.metadata import (
+    ExportResult,
+    describe_columns,
+    kv_metadata_sql,
+    provenance,
+    query_schema,
+    write_sidecar,
+)
 from harmonize.export.safe_csv import copy_safe_csv
 from harmonize.export.selection import (
     BASE_VIEW,
@@ -92,6 +99,7 @@ def export_grid(study: Study, out: str | Path, filters: ExportFilters | None = N
         ]
         options = {"cell_size_km": study.cell_size_km, "crs": study.crs}
         meta = provenance(con, study, "grid", filters, counts, options, notes)
+        meta["columns"] = describe_columns(query_schema(con, grid_query()))
         files = [path]
         if path.suffix.lower() == ".parquet":
             target = str(path).replace("'", "''")

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
 import logging
@@ -262,8 +263,16 @@ def store_output(
                 raise DuplicateIngestError(_duplicate_message(previous, main_path))
             return list(previous["ingest_id"])
 
+        edges = templates = None
+        if out.track_edges is not None:
+            # ping files: the pings at the edges of each vessel's part and the rows of their
+            # cell-periods, which the store joins across the files of the source (harmonize.parts)
+            edges = pa.Table.from_pandas(out.track_edges, preserve_index=False)
+            if out.edge_events is not None and len(out.edge_events):
+                templates = assemble(dataclasses.replace(out, events=out.edge_events, values=out.edge_values),
+                                     study, profile, kind, ingest_id)
         superseded = store.commit(record, files, staged, out.quarantine, [], on_conflict, masked=out.masked,
-                                  events_without_values=no_values)
+                                  events_without_values=no_values, track_edges=edges, edge_parts=templates)
         logger.info("ingest %s committed: %d observation rows", ingest_id, result.records_written)
     finally:
         store.discard(staged)

@@ -19,6 +19,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
+from harmonize import parts
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
 from harmonize.adapters.common import codes_in, distinct_present, swapped_position_notes
 from harmonize.adapters.registry import get_adapter, list_adapters
@@ -190,12 +191,12 @@ def study_path(study: Study, path: str | Path) -> str:
 
 def describe_ingests(previous: pd.DataFrame) -> str:
     """'ingest <id> of <path> (started <time>)', joined, for messages."""
-    parts = []
+    described = []
     for r in previous.itertuples():
         path = r.file_path if isinstance(r.file_path, str) and r.file_path else r.file_name
         started = f" (started {pd.Timestamp(r.started_at):%Y-%m-%d %H:%M} UTC)" if "started_at" in previous else ""
-        parts.append(f"ingest {r.ingest_id} of {path}{started}")
-    return "; ".join(parts)
+        described.append(f"ingest {r.ingest_id} of {path}{started}")
+    return "; ".join(described)
 
 
 def store_output(
@@ -274,6 +275,11 @@ def store_output(
         superseded = store.commit(record, files, staged, out.quarantine, [], on_conflict, masked=out.masked,
                                   events_without_values=no_values, track_edges=edges, edge_parts=templates)
         logger.info("ingest %s committed: %d observation rows", ingest_id, result.records_written)
+        if edges is not None and edges.num_rows:
+            with store.connect(read_only=True, view=False) as con:
+                note = parts.overlapping_tracks(con, profile.source_id, ingest_id)
+            if note:
+                result.notes.append(note)
     finally:
         store.discard(staged)
     result.status, result.ingest_id, result.superseded = "complete", ingest_id, superseded

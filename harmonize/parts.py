@@ -114,6 +114,27 @@ def record_edges(con: duckdb.DuckDBPyConnection, ingest_id: str, source_id: str,
             con.unregister("_incoming_templates")
 
 
+def overlapping_tracks(con: duckdb.DuckDBPyConnection, source_id: str, ingest_id: str) -> str | None:
+    """A note when vessels of this ingest have pings within the time span of the same vessels'
+    pings in other live files of the source (files that overlap in time, not a cut by time):
+    those tracks are joined only at the files' edges. None when there is none."""
+    rows = con.execute(f"""
+        WITH seg AS (SELECT e.ingest_id, e.vessel, min(e.t) AS t0, max(e.t) AS t1
+                     FROM {EDGES_TABLE} e JOIN ingests i USING (ingest_id)
+                     WHERE i.status = 'complete' AND e.source_id = ? GROUP BY ALL)
+        SELECT count(DISTINCT a.vessel), list_sort(list(DISTINCT i.file_name))
+        FROM seg a JOIN seg b ON a.vessel = b.vessel AND b.ingest_id <> a.ingest_id AND a.t0 < b.t1 AND b.t0 < a.t1
+        JOIN ingests i ON i.ingest_id = b.ingest_id
+        WHERE a.ingest_id = ?""", [source_id, ingest_id]).fetchall()
+    n, files = rows[0]
+    if not n:
+        return None
+    shown = ", ".join(files[:3]) + (f" and {len(files) - 3} more" if len(files) > 3 else "")
+    return (f"{n} vessel{'s' if n != 1 else ''} of this file also {'have' if n != 1 else 'has'} pings within "
+            f"the same hours in {shown}: such tracks are joined only at the files' edges, not ping by ping; "
+            "deliver each vessel's pings cut by time, or join the overlapping files before ingesting them")
+
+
 def _live(table: str, ingests: str) -> str:
     return (f"(SELECT x.* FROM {table} x WHERE x.ingest_id IN "
             f"(SELECT ingest_id FROM {ingests} WHERE status = 'complete'))")

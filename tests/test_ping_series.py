@@ -197,3 +197,18 @@ def test_a_jump_at_the_start_of_a_file_is_quarantined_with_its_message(study_dir
     assert q["source_row"].tolist() == [1] and q["reason_code"].tolist() == ["implausible_speed"]
     assert q["message"].iloc[0].startswith("position jump: the first ping of the vessel in this file, leaving it "
                                            "for row 2 takes")
+
+
+def test_files_that_overlap_in_time_are_named_in_the_ingest_notes(study_dir: Path) -> None:
+    """Two exports of the same hours of one vessel (every other ping in each): not a cut by
+    time, so the ingest says their tracks are joined only at the files' edges."""
+    rows = [("V-1", START + pd.Timedelta(minutes=20 * k), 42.9, -152.0 + 0.001 * k, 3.0, "OTB") for k in range(20)]
+    pings = pd.DataFrame(rows, columns=["vessel", "time", "lat", "lon", "sog", "gear"])
+    study = load_study(study_dir)
+    _write(pings.iloc[0::2], study_dir / "even.csv")
+    _write(pings.iloc[1::2], study_dir / "odd.csv")
+    first = run(study, "effort_pings", {"rows": study_dir / "even.csv"})
+    assert not any("joined only at the files' edges" in n for n in first.notes)
+    second = run(study, "effort_pings", {"rows": study_dir / "odd.csv"})
+    assert ("1 vessel of this file also has pings within the same hours in even.csv: such tracks are joined "
+            "only at the files' edges") in " ".join(second.notes)

@@ -77,6 +77,10 @@ def _task(name: str, args: list[str]) -> dict[str, Any]:
         result = run(load_study(study_dir), profile, inputs, engine=engine)
         stats.update(rows_read=result.rows_read, rows_quarantined=result.rows_quarantined,
                      rows_out=result.records_written)
+    elif name == "pings_floor":
+        from benchmarks.pings_floor import pings_floor
+
+        stats["rows_out"] = pings_floor(Path(args[0]), args[1], Path(args[2]), Path(args[3]))
     elif name == "gridded":
         from harmonize import load_study
         from harmonize.ingest import prepare, store_output

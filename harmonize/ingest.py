@@ -27,6 +27,7 @@ from harmonize.clock import utc_naive
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns, validate_observations
 from harmonize.engines import engine_scope
 from harmonize.errors import ConfigError, DuplicateIngestError, HarmonizeError
+from harmonize.files import digests_known
 from harmonize.profile import Profile, find_profile, load_profile, peek_kind
 from harmonize.store import IngestRecord, Store
 from harmonize.study import Study
@@ -138,6 +139,14 @@ def run(
     steps that support it (ping tracks -> fishing hours) on that engine; ``scheduler`` is
     the address of a Dask scheduler (see :mod:`harmonize.engines`). The result is the same.
     """
+    with digests_known():  # each input is read once for its sha256
+        return _run(study, profile, inputs, write=write, replace=replace, progress=progress, engine=engine,
+                    scheduler=scheduler, dry_run=dry_run, notice=notice)
+
+
+def _run(study: Study, profile: str | Path, inputs: Mapping[str, Path], *, write: bool, replace: bool,
+         progress: ProgressCallback | None, engine: str | None, scheduler: str | None, dry_run: bool,
+         notice: Callable[[str], None] | None) -> IngestResult:
     adapter, prof = prepare(study, profile)
     for role, path in inputs.items():
         if not Path(path).is_file():

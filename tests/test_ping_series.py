@@ -212,3 +212,22 @@ def test_files_that_overlap_in_time_are_named_in_the_ingest_notes(study_dir: Pat
     second = run(study, "effort_pings", {"rows": study_dir / "odd.csv"})
     assert ("1 vessel of this file also has pings within the same hours in even.csv: such tracks are joined "
             "only at the files' edges") in " ".join(second.notes)
+
+
+def test_an_ingest_reads_its_ping_file_once_for_the_hash(study_dir: Path) -> None:
+    """The sha256 of the input is taken once per ingest (it was taken twice), and a file
+    changed between two ingests is hashed afresh (its digest is not remembered across runs)."""
+    from unittest import mock
+
+    import harmonize.files as files
+
+    rows = [("V-1", START + pd.Timedelta(minutes=20 * k), 42.9, -152.0, 3.0, "OTB") for k in range(5)]
+    pings = pd.DataFrame(rows, columns=["vessel", "time", "lat", "lon", "sog", "gear"])
+    _write(pings, study_dir / "p.csv")
+    study = load_study(study_dir)
+    with mock.patch.object(files, "_sha256", side_effect=files._sha256) as spy:
+        run(study, "effort_pings", {"rows": study_dir / "p.csv"})
+        assert [c.args[0] for c in spy.call_args_list].count(study_dir / "p.csv") == 1
+        _write(pings.iloc[:4], study_dir / "p.csv")
+        result = run(study, "effort_pings", {"rows": study_dir / "p.csv"}, replace=True)
+    assert result.status == "complete" and result.rows_read == 4

@@ -831,7 +831,16 @@ class PingReader:
             LEFT JOIN gmap g ON p.gear_raw = g.gear_raw
         """)
         con.execute("DROP TABLE p")
-        # duplicates: the same vessel and time as an earlier row
+        # Pings in any order are sorted per vessel by time (the track's windows order by vessel,
+        # time and row): an ordinary AIS export interleaves vessels and repeats blocks, and a
+        # ping is not wrong for arriving out of order. A bad clock shows as an impossible jump.
+        # duplicates: the same vessel and time as an earlier row. A cheap count first (a hash
+        # aggregate, no sort): most files have none, and then the ordered pass is not needed.
+        accepted, keys = con.execute(
+            "SELECT count(*), count(DISTINCT (vid, t)) FROM q WHERE reason IS NULL").fetchall()[0]
+        if accepted == keys:
+            con.execute("CREATE TABLE dups (row BIGINT, r0 BIGINT, same BOOLEAN)")
+            return
         con.execute("""
             CREATE TABLE dups AS
             SELECT row, r0, same FROM (
@@ -842,9 +851,6 @@ class PingReader:
                 WINDOW w AS (PARTITION BY vid ORDER BY t, row))
             WHERE t = t0
         """)
-        # Pings in any order are sorted per vessel by time (the track's windows order by vessel,
-        # time and row): an ordinary AIS export interleaves vessels and repeats blocks, and a
-        # ping is not wrong for arriving out of order. A bad clock shows as an impossible jump.
 
     def _track_sql(self) -> str:
         """The track of the accepted pings (harmonize.tracks: neighbours, position jumps,

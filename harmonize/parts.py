@@ -25,20 +25,24 @@ ping tracks that cross file boundaries
     a vessel's track delivered as daily (or any) files is one track: the last ping of one
     file and the first of the next form an interval. A ping's hours depend only on the pings
     up to ``harmonize.tracks.RADIUS`` places from it (neighbours, position jumps, derived
-    speed), so each ping file writes the hours of its *interior* pings as parts, and keeps
-    in the ``ping_edges`` table the :data:`harmonize.tracks.EDGE` pings at both ends of
-    each vessel's part of the file (the *owned* ones, within RADIUS of an end, and the
-    pings beyond them that they depend on), with the event each would fish in; a file
-    writes a part, 0 hours or not, for every cell-period an owned ping lies in. The view
-    orders the edge pings of all live ingests of the source per vessel by time, applies the
-    track rules of :mod:`harmonize.tracks` to them (the gap cap, the speed window and the
-    jump rule exactly as within a file), and adds the hours, pings and vessels of the owned
-    ones as one more part of their cell-period. Cell-periods left with 0 hours are not
-    shown. The same pings as one file or as many files split by time or by vessel, in any
-    row and ingest order, give the same hours and vessel counts; ``--replace`` and
-    superseding change the edges with the ingest. A ping that two files both hold (the same
-    vessel and time) is counted once. Tracks of one vessel whose files overlap in time are
-    joined only at the files' edges (each file's interior is its own); the ingest says so.
+    speed). Each ping file writes its parts as a lone file gives them (hours and pings of all
+    its pings; ``vessel_ids`` and the ``speed_derived`` flag of its *interior* pings only,
+    those more than RADIUS places from both ends of their vessel's part of the file), and
+    keeps in the ``ping_edges`` table the :data:`harmonize.tracks.EDGE` pings at both ends of
+    each vessel's part (the *owned* ones, within RADIUS of an end, with the hours the file
+    gave them, and the pings beyond them they depend on), and in ``ping_edge_parts`` the rows
+    (0 hours) of the cell-periods the owned ones lie in. The view orders the edge pings of
+    all live ingests of the source per vessel by time, applies the track rules of
+    :mod:`harmonize.tracks` to them (the gap cap, the speed window and the jump rule exactly
+    as within a file, each ping with its file's settings), and adds one more part per
+    cell-period: the joined track's hours and pings of the owned pings minus those their
+    files gave them, with the joined track's vessels and flag. Cell-periods left with no
+    hours are not shown. The same pings as one file or as many files cut by time or by
+    vessel, in any row and ingest order, give the same hours, pings and vessel counts;
+    ``--replace`` and superseding change the edges with the ingest. A ping that two files
+    both hold (the same vessel and time) is counted once. Tracks of one vessel whose files
+    overlap in time are joined only at the files' edges (each file's interior is its own);
+    the ingest says so (:func:`overlapping_tracks`).
 
 A value with a single part reads exactly as written. Parquet files written before the parts
 existed lack these columns (they read as null): their parts merge weighted by their count of

@@ -128,6 +128,7 @@ def _assert_same(got: pd.DataFrame, want: pd.DataFrame) -> None:
     assert got["n_vessels"].tolist() == want["n_vessels"].tolist()
 
 
+@pytest.mark.slow
 @settings(max_examples=8, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture],
           phases=[Phase.explicit, Phase.reuse, Phase.generate])
 @given(seed=st.integers(0, 100_000), n_vessels=st.integers(1, 4), n_pings=st.integers(1, 25),
@@ -149,6 +150,7 @@ def test_time_split_files_in_any_order_give_the_reference_hours(study_dir: Path,
     assert _withheld(many) == {e for e, n in want["n_vessels"].items() if n < 3}
 
 
+@pytest.mark.slow
 @settings(max_examples=5, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture],
           phases=[Phase.explicit, Phase.reuse, Phase.generate])
 @given(seed=st.integers(0, 100_000), cuts=st.integers(1, 5))

@@ -26,6 +26,17 @@ def duckdb_floor(files: list[Path], out_dir: Path) -> int:
     return total
 
 
+def run_sql(sql_file: Path) -> int:
+    """Run one DuckDB statement (e.g. the same-work floor of :mod:`benchmarks.pings_floor`,
+    prepared by the parent so that this process imports DuckDB only); returns its row count."""
+    con = duckdb.connect()
+    try:
+        con.execute("SET TimeZone = 'UTC'")
+        return int(con.execute(sql_file.read_text()).fetchall()[0][0])
+    finally:
+        con.close()
+
+
 def netcdf_floor(path: Path, variable: str, block: int = 50) -> int:
     """Read every value of a (time, lat, lon) variable once, block by block; returns the count."""
     import netCDF4

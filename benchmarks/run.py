@@ -77,6 +77,10 @@ def _task(name: str, args: list[str]) -> dict[str, Any]:
         result = run(load_study(study_dir), profile, inputs, engine=engine)
         stats.update(rows_read=result.rows_read, rows_quarantined=result.rows_quarantined,
                      rows_out=result.records_written)
+    elif name == "pings_floor":
+        from benchmarks.floor import run_sql
+
+        stats["rows_out"] = run_sql(Path(args[0]))
     elif name == "gridded":
         from harmonize import load_study
         from harmonize.ingest import prepare, store_output

@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
 import logging
@@ -18,6 +19,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
+from harmonize import parts
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
 from harmonize.adapters.common import codes_in, distinct_present, swapped_position_notes
 from harmonize.adapters.registry import get_adapter, list_adapters
@@ -25,6 +27,7 @@ from harmonize.clock import utc_naive
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns, validate_observations
 from harmonize.engines import engine_scope
 from harmonize.errors import ConfigError, DuplicateIngestError, HarmonizeError
+from harmonize.files import digests_known
 from harmonize.profile import Profile, find_profile, load_profile, peek_kind
 from harmonize.store import IngestRecord, Store
 from harmonize.study import Study
@@ -136,6 +139,14 @@ def run(
     steps that support it (ping tracks -> fishing hours) on that engine; ``scheduler`` is
     the address of a Dask scheduler (see :mod:`harmonize.engines`). The result is the same.
     """
+    with digests_known():  # each input is read once for its sha256
+        return _run(study, profile, inputs, write=write, replace=replace, progress=progress, engine=engine,
+                    scheduler=scheduler, dry_run=dry_run, notice=notice)
+
+
+def _run(study: Study, profile: str | Path, inputs: Mapping[str, Path], *, write: bool, replace: bool,
+         progress: ProgressCallback | None, engine: str | None, scheduler: str | None, dry_run: bool,
+         notice: Callable[[str], None] | None) -> IngestResult:
     adapter, prof = prepare(study, profile)
     for role, path in inputs.items():
         if not Path(path).is_file():
@@ -189,12 +200,12 @@ def study_path(study: Study, path: str | Path) -> str:
 
 def describe_ingests(previous: pd.DataFrame) -> str:
     """'ingest <id> of <path> (started <time>)', joined, for messages."""
-    parts = []
+    described = []
     for r in previous.itertuples():
         path = r.file_path if isinstance(r.file_path, str) and r.file_path else r.file_name
         started = f" (started {pd.Timestamp(r.started_at):%Y-%m-%d %H:%M} UTC)" if "started_at" in previous else ""
-        parts.append(f"ingest {r.ingest_id} of {path}{started}")
-    return "; ".join(parts)
+        described.append(f"ingest {r.ingest_id} of {path}{started}")
+    return "; ".join(described)
 
 
 def store_output(
@@ -262,9 +273,22 @@ def store_output(
                 raise DuplicateIngestError(_duplicate_message(previous, main_path))
             return list(previous["ingest_id"])
 
+        edges = templates = None
+        if out.track_edges is not None:
+            # ping files: the pings at the edges of each vessel's part and the rows of their
+            # cell-periods, which the store joins across the files of the source (harmonize.parts)
+            edges = pa.Table.from_pandas(out.track_edges, preserve_index=False)
+            if out.edge_events is not None and len(out.edge_events):
+                templates = assemble(dataclasses.replace(out, events=out.edge_events, values=out.edge_values),
+                                     study, profile, kind, ingest_id)
         superseded = store.commit(record, files, staged, out.quarantine, [], on_conflict, masked=out.masked,
-                                  events_without_values=no_values)
+                                  events_without_values=no_values, track_edges=edges, edge_parts=templates)
         logger.info("ingest %s committed: %d observation rows", ingest_id, result.records_written)
+        if edges is not None and edges.num_rows:
+            with store.connect(read_only=True, view=False) as con:
+                note = parts.overlapping_tracks(con, profile.source_id, ingest_id)
+            if note:
+                result.notes.append(note)
     finally:
         store.discard(staged)
     result.status, result.ingest_id, result.superseded = "complete", ingest_id, superseded

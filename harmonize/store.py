@@ -279,6 +279,7 @@ class Store:
             else:
                 con.execute(_SCHEMA_SQL)
                 twins.ensure_tables(con)
+                parts.ensure_tables(con)
                 self._check_version(con)
                 if view:
                     self._define_view(con, temporary=False)
@@ -428,7 +429,8 @@ class Store:
         # view adds the store-wide flags (probable_duplicate, high_count) that harmonize.twins
         # recomputes at each commit
         con.execute(f"CREATE OR REPLACE {kind} observation_parts AS SELECT {select} FROM {source}")
-        con.execute(f"CREATE OR REPLACE {kind} observations_base AS {parts.merged_sql('observation_parts')}")
+        edges = parts.EDGES_TABLE if twins.has_table(con, parts.EDGES_TABLE) else None
+        con.execute(f"CREATE OR REPLACE {kind} observations_base AS {parts.merged_sql('observation_parts', edges)}")
         con.execute(f"CREATE OR REPLACE {kind} observations AS {twins.flagged_view_sql(con, 'observations_base')}")
         # the name docs/store.md gives readers without harmonize: the live rows with every flag
         con.execute(f"CREATE OR REPLACE {kind} current AS SELECT * FROM observations")
@@ -488,6 +490,8 @@ class Store:
         on_conflict: callable,  # type: ignore[valid-type]
         masked: pd.DataFrame | None = None,
         events_without_values: pa.Table | None = None,
+        track_edges: pa.Table | None = None,
+        edge_parts: pa.Table | None = None,
     ) -> list[str]:
         """Move staged parquet files into place and record the ingest in one transaction.
 
@@ -497,7 +501,8 @@ class Store:
 
         ``events_without_values`` (columns :data:`EVENTS_WITHOUT_VALUES_COLUMNS` but
         ingest_id) are the ingest's accepted events that yield no observation row; they are
-        recorded in the same transaction.
+        recorded in the same transaction; so are ``track_edges``, the pings at the edges of
+        a ping file, and ``edge_parts``, the rows of their cell-periods (harmonize.parts).
         """
         with self.connect(read_only=False) as con:
             self._remove_leftovers(con)
@@ -532,12 +537,13 @@ class Store:
             _crash_point("before_transaction")
             with interrupts.deferred():  # an interrupt waits for the commit or the rollback
                 return self._record(con, record, files, moved, staged, quarantine, supersede, masked,
-                                    events_without_values)
+                                    events_without_values, track_edges, edge_parts)
 
     def _record(self, con: duckdb.DuckDBPyConnection, record: IngestRecord, files: Sequence[dict[str, object]],
                 moved: list[tuple[str, int, str, int]], staged: Path, quarantine: pd.DataFrame,
                 supersede: list[str], masked: pd.DataFrame | None,
-                events_without_values: pa.Table | None) -> list[str]:
+                events_without_values: pa.Table | None, track_edges: pa.Table | None = None,
+                edge_parts: pa.Table | None = None) -> list[str]:
         """The commit's one transaction: the ingest, its files, quarantine and events, the view."""
         con.execute("BEGIN TRANSACTION")
         try:
@@ -587,6 +593,8 @@ class Store:
                             f"SELECT ?, {names} FROM _incoming_events", [record.ingest_id])
                 con.unregister("_incoming_events")
                 _crash_point("events_without_values")
+            if track_edges is not None and track_edges.num_rows:
+                parts.record_edges(con, record.ingest_id, record.source_id, track_edges, edge_parts)
             if record.duplicates is not None:
                 twins.record_settings(con, record.ingest_id, record.source_id, record.duplicates)
             self._define_view(con, temporary=False)

@@ -19,7 +19,7 @@ import pandas as pd
 import pyarrow as pa
 
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
-from harmonize.adapters.common import codes_in, distinct_present, swapped_position_notes
+from harmonize.adapters.common import codes_in, distinct_present, is_in, swapped_position_notes
 from harmonize.adapters.registry import get_adapter, list_adapters
 from harmonize.clock import utc_naive
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns, validate_observations
@@ -513,7 +513,7 @@ def events_without_values(out: AdapterOutput, study: Study, profile: Profile, ki
     events = out.events
     if events.empty:
         return _NO_VALUES_ARROW.empty_table()
-    lonely = events[~events["event_id"].isin(distinct_present(out.values["event_id"])).to_numpy()]
+    lonely = events[~is_in(events["event_id"], distinct_present(out.values["event_id"]))]
     if lonely.empty:
         return _NO_VALUES_ARROW.empty_table()
     ev = tag_events(lonely, study)  # tags are per event: tagging the few alone gives the same tags

@@ -21,6 +21,8 @@ store harmonize wrote from the same files.
 
 from __future__ import annotations
 
+import difflib
+import unicodedata
 from pathlib import Path
 
 import duckdb
@@ -31,6 +33,8 @@ import pyproj
 KM_PER_NMI = 1.852
 TOW_SPEED_KN = (0.5, 8.0)
 NA_TOKENS = ("", "na", "n/a", "nan", "null", "none", "-")
+#: Plural life stages written as the singular (as the adapters do).
+LIFE_STAGE_PLURALS = {"adults": "adult", "larvae": "larva", "juveniles": "juvenile", "eggs": "egg"}
 
 
 def _hauls(con: duckdb.DuckDBPyConnection, path: Path, study) -> pd.DataFrame:  # type: ignore[no-untyped-def]
@@ -84,16 +88,45 @@ def _hauls(con: duckdb.DuckDBPyConnection, path: Path, study) -> pd.DataFrame:  
     return h
 
 
-def _names(con: duckdb.DuckDBPyConnection, path: Path, study) -> tuple[pd.DataFrame, pd.DataFrame]:  # type: ignore[no-untyped-def]
-    """Distinct taxon names (canonical, closest known) and life stage texts (normalised)."""
-    from harmonize.adapters.common import normalise_life_stage, resolve_taxa
+def _fold(text: str) -> str:
+    """Lower case, no diacritics, single spaces (how names are compared for the closest one)."""
+    table = str.maketrans({"ø": "o", "æ": "ae", "œ": "oe", "ß": "ss", "ł": "l", "đ": "d"})
+    text = unicodedata.normalize("NFKD", str(text).casefold().translate(table))
+    return " ".join("".join(c for c in text if not unicodedata.combining(c)).split())
 
+
+def _closest(name: str, lookup: dict[str, str], taxa: list[str]) -> str | None:
+    """The known taxon a misspelt name most likely meant (whole name, then its first word)."""
+    keyed: dict[str, str] = {}
+    for known in [*lookup, *taxa]:
+        key = _fold(known)
+        keyed.setdefault(key, known)
+        first = key.split(" ")[0]
+        if first and first != key:
+            keyed.setdefault(first, known)
+    key = _fold(name)
+    hits = difflib.get_close_matches(key, list(keyed), n=6, cutoff=0.6)
+    hits += difflib.get_close_matches(key.split(" ")[0], list(keyed), n=3, cutoff=0.75)
+    return lookup.get(keyed[hits[0]].casefold(), keyed[hits[0]]) if hits else None
+
+
+def _names(con: duckdb.DuckDBPyConnection, path: Path, study) -> tuple[pd.DataFrame, pd.DataFrame]:  # type: ignore[no-untyped-def]
+    """Distinct taxon names (canonical, closest known) and life stage texts (normalised).
+
+    Written here rather than imported from harmonize.adapters, whose import brings pandera,
+    which a direct implementation does not need.
+    """
+    from harmonize.study import normalise_name, taxon_lookup
+
+    lookup = taxon_lookup(study.taxa)
     species = con.sql(f"SELECT DISTINCT species FROM read_csv('{path}', all_varchar = true)").df()["species"]
-    canonical, _, _, guess = resolve_taxa(species.astype("string"), study)
-    names = pd.DataFrame({"name": species.astype(object), "taxon": canonical.astype(object),
-                          "guess": guess.astype(object)})
+    canonical = normalise_name(species.astype("string")).map(lookup).astype(object)
+    taxa = list(study.taxa["taxon"])
+    guess = [None if pd.notna(c) or pd.isna(n) else _closest(n, lookup, taxa) for n, c in zip(species, canonical, strict=True)]
+    names = pd.DataFrame({"name": species.astype(object), "taxon": canonical, "guess": pd.Series(guess, dtype=object)})
     stages = con.sql(f"SELECT DISTINCT life_stage AS raw FROM read_csv('{path}', all_varchar = true)").df()
-    stages["stage"] = normalise_life_stage(stages["raw"].astype("string")).astype(object)
+    folded = stages["raw"].astype("string").str.strip().str.casefold().replace("", pd.NA)
+    stages["stage"] = folded.replace(LIFE_STAGE_PLURALS).astype(object)
     return names, stages
 
 

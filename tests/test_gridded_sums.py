@@ -61,3 +61,27 @@ def test_two_dimensional_field_without_levels() -> None:
     assert got["sum_w"].tolist() == [6.0, 4.0]
     assert got["sum_wx"].tolist() == [22.0, 12.0]
     assert got["n"].tolist() == [4, 1]
+
+
+@given(st.lists(st.tuples(st.integers(-(2**40), 2**40), st.integers(-(2**20), 2**20)), max_size=40))
+def test_unique_pairs_equal_a_row_wise_unique(pairs: list[tuple[int, int]]) -> None:
+    from harmonize.adapters.gridded import unique_pairs
+
+    ix = np.array([p[0] for p in pairs], np.int64)
+    iy = np.array([p[1] for p in pairs], np.int64)
+    got, inverse = unique_pairs(ix, iy)
+    if not pairs:
+        assert got.shape == (0, 2) and inverse.size == 0
+        return
+    want, want_inverse = np.unique(np.stack([ix, iy], axis=1), axis=0, return_inverse=True)
+    assert got.tolist() == want.tolist()
+    assert inverse.tolist() == want_inverse.ravel().tolist()
+
+
+def test_unique_pairs_beyond_the_key_range_falls_back() -> None:
+    from harmonize.adapters.gridded import unique_pairs
+
+    ix = np.array([-(2**62), 2**40, -(2**62)], np.int64)  # the grid's sentinel for unprojectable points
+    iy = np.array([5, -(2**30), 5], np.int64)
+    got, inverse = unique_pairs(ix, iy)
+    assert got.tolist() == [[-(2**62), 5], [2**40, -(2**30)]] and inverse.tolist() == [0, 1, 0]

@@ -47,6 +47,9 @@ ROOT = Path(__file__).resolve().parent.parent
 MAX_MEMORY_MB: float | None = 12 * 1024
 #: Another checkout whose harmonize is measured beside this one (``--before DIR``), or None.
 BEFORE: Path | None = None
+#: Runs of each measurement; the fastest is kept (``--repeat``): on a shared machine the
+#: slowest runs measure the other work, not ours.
+REPEAT = 1
 
 
 # ---------------------------------------------------------------------------- child tasks
@@ -160,15 +163,23 @@ def measure(name: str, *args: object, timeout: float | None = None, limit_mb: fl
             limit = int(cap_mb * 2**20)
             resource.setrlimit(resource.RLIMIT_AS, (limit, limit))
 
-    start = time.perf_counter()
-    proc = subprocess.run(cmd, capture_output=True, text=True, cwd=cwd or ROOT, timeout=timeout, preexec_fn=cap)
-    seconds = time.perf_counter() - start
-    if proc.returncode != 0:
-        tail = (proc.stderr.strip().splitlines() or ["(no output)"])[-1]
-        return {"error": f"exit {proc.returncode}: {tail}"}
-    stats = json.loads(proc.stdout.strip().splitlines()[-1])
-    stats["seconds"] = seconds  # the whole child process: start-up and imports included
-    return stats
+    best: dict[str, Any] | None = None
+    for i in range(REPEAT):
+        if i and name in ("harmonize", "gridded") and args and Path(str(args[0])).is_dir():
+            shutil.rmtree(Path(str(args[0])) / "store", ignore_errors=True)  # each run ingests afresh
+        start = time.perf_counter()
+        proc = subprocess.run(cmd, capture_output=True, text=True, cwd=cwd or ROOT, timeout=timeout, preexec_fn=cap)
+        seconds = time.perf_counter() - start
+        if proc.returncode != 0:
+            tail = (proc.stderr.strip().splitlines() or ["(no output)"])[-1]
+            return {"error": f"exit {proc.returncode}: {tail}"}
+        stats = json.loads(proc.stdout.strip().splitlines()[-1])
+        stats["seconds"] = seconds  # the whole child process: start-up and imports included
+        stats["load_average"] = os.getloadavg()[0]
+        if best is None or seconds < best["seconds"]:
+            best = stats
+    assert best is not None
+    return best
 
 
 # ---------------------------------------------------------------------------- comparisons
@@ -430,14 +441,17 @@ def main(argv: list[str] | None = None) -> None:
     parser.add_argument("--before", type=Path, default=None,
                         help="another checkout (e.g. `git archive` of an earlier commit) whose harmonize is "
                              "measured in the same run, beside this one")
+    parser.add_argument("--repeat", type=int, default=1,
+                        help="runs of each measurement; the fastest is reported (a shared machine)")
     parser.add_argument("--child", nargs="+", help=argparse.SUPPRESS)
     args = parser.parse_args(argv)
     if args.child:
         print(json.dumps(_task(args.child[0], args.child[1:])))
         return
 
-    global MAX_MEMORY_MB, BEFORE
+    global MAX_MEMORY_MB, BEFORE, REPEAT
     BEFORE = args.before.resolve() if args.before else None
+    REPEAT = max(1, args.repeat)
     MAX_MEMORY_MB = args.max_memory_gb * 1024 if args.max_memory_gb else None
     sizes = [int(s) for s in (args.sizes or ([1e5, 1e6] if args.quick else [1e5, 1e6, 1e7]))]
     store_sizes = [int(s) for s in (args.store_sizes or ([1e6, 1e7] if args.quick else [1e7, 1e8]))]

@@ -92,9 +92,9 @@ def gridded_floor(study_dir: Path, path: Path, variable: str, out: Path, chunk_m
         area = regular_pixel_area_km2(lat_lo[y0:y1], lat_hi[y0:y1], lon_lo[x0:x1], lon_hi[x0:x1]).ravel()
         inside = np.flatnonzero(inside_domain(study.domain, g_lon.ravel(), g_lat.ravel()) & (area > 0))
         ix, iy = Grid(study.crs, study.cell_size_km).indices(g_lon.ravel()[inside], g_lat.ravel()[inside])
-        x0, y0, span_y = int(ix.min()), int(iy.min()), int(iy.max() - iy.min()) + 1
-        keys, pixel_cell = np.unique((ix - x0) * span_y + (iy - y0), return_inverse=True)
-        cells = np.stack([keys // span_y + x0, keys % span_y + y0], axis=1)
+        cx0, cy0, span_y = int(ix.min()), int(iy.min()), int(iy.max() - iy.min()) + 1
+        keys, pixel_cell = np.unique((ix - cx0) * span_y + (iy - cy0), return_inverse=True)
+        cells = np.stack([keys // span_y + cx0, keys % span_y + cy0], axis=1)
         to_cells = sparse.csr_matrix((np.ones(inside.size), (pixel_cell.ravel(), np.arange(inside.size))),
                                      shape=(len(cells), inside.size))
         w = area[inside]

@@ -126,6 +126,10 @@ def _task(name: str, args: list[str]) -> dict[str, Any]:
     else:
         raise SystemExit(f"unknown task {name}")
     stats["work_seconds"] = time.perf_counter() - start
+    usage = resource.getrusage(resource.RUSAGE_SELF)
+    # CPU seconds of the whole process (all threads, imports included): on a shared machine
+    # the wall clock also measures the other work, the CPU time much less so
+    stats["cpu_seconds"] = usage.ru_utime + usage.ru_stime
     stats["peak_rss_mb"] = peak_rss_mb()
     return stats
 
@@ -361,6 +365,16 @@ def _ratio(a: dict[str, Any] | None, b: dict[str, Any] | None) -> str:
     return _fmt_ratio(a, b)
 
 
+def _cpu(m: dict[str, Any] | None) -> str:
+    return f"{m['cpu_seconds']:.1f} s" if m and "cpu_seconds" in m else "-"
+
+
+def _cpu_ratio(a: dict[str, Any] | None, b: dict[str, Any] | None) -> str:
+    if not a or not b or "cpu_seconds" not in a or "cpu_seconds" not in b:
+        return "-"
+    return f"{a['cpu_seconds'] / b['cpu_seconds']:.2f}"
+
+
 def _print_paired_row(r: dict[str, Any]) -> None:
     """harmonize / same-work floor, / copy floor, / pandas script (and the --before checkout)."""
     if not getattr(_print_paired_row, "header", False):
@@ -377,6 +391,10 @@ def _print_paired_row(r: dict[str, Any]) -> None:
         same = chk["harmonize_rows"] == chk["floor_rows"] and not chk.get("rows_unmatched") and not diff
         equal = f"yes ({chk['harmonize_rows']:,} rows)" if same else f"NO: {chk}"
     before = r.get("before")
+    cpu = [_cpu(r.get(k)) for k in ("same_floor", "harmonize", "before")]
+    print(f"CPU seconds (all threads): same-work floor {cpu[0]}, harmonize {cpu[1]}, before {cpu[2]}; "
+          f"harmonize / same-work floor {_cpu_ratio(r.get('harmonize'), r.get('same_floor'))}, "
+          f"before / same-work floor {_cpu_ratio(before, r.get('same_floor'))}", flush=True)
     print(f"| {r['what']} | {r['n']:.0e} | {_cell(r['same_floor'])} | {_cell(r['harmonize'])} "
           f"| {_ratio(r['harmonize'], r['same_floor'])} | {_ratio(r['harmonize'], r.get('floor'))} "
           f"| {_ratio(r['harmonize'], r.get('pandas'))} | {_cell(before) if before else '-'} "

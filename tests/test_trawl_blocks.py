@@ -276,3 +276,24 @@ def test_distinct_present_equals_the_set_of_values(events: list[str], values: li
     expected = [e in {v for v in values if v is not None} for e in events]
     assert ev.isin(distinct_present(va)).tolist() == expected
     assert ev.isin(distinct_present(va.astype("category"))).tolist() == expected
+
+
+_TEXT = st.one_of(st.none(), st.sampled_from(["H1", "H2", "h1", "H10", "", " H1"]))
+
+
+@given(st.lists(_TEXT, max_size=30), st.lists(_TEXT, max_size=10),
+       st.sampled_from(["string[pyarrow]", "category", "large_string"]))
+def test_is_in_answers_as_pandas_isin(values: list, lookup: list, dtype: str) -> None:
+    """is_in (Arrow or category codes) gives what pandas' isin on plain Python objects gives
+    (other dtypes go to pandas' isin itself)."""
+    from harmonize.adapters.common import is_in
+
+    if dtype == "large_string":
+        import pyarrow as pa
+
+        series = pd.Series(values, dtype=pd.ArrowDtype(pa.large_string()))
+    else:
+        series = pd.Series(values, dtype=dtype)
+    expected = pd.Series(values, dtype=object).isin(pd.Series(lookup, dtype=object)).to_numpy()
+    for as_ in (pd.Series(lookup, dtype="string[pyarrow]"), np.asarray(lookup, dtype=object)):
+        assert is_in(series, as_).tolist() == expected.tolist()

@@ -291,7 +291,7 @@ RECORDED_DEMO: dict[str, dict[str, str]] = {
         "status": "75b16f855150f33e"
     },
     "observations": {
-        "*": "d2b0fc55640b5815",
+        "*": "7717ae90325dbfa0",
         "behavior": "b37cd00fb839673c",
         "bottom_depth_m": "342f95348080ee76",
         "cell_id": "752bd8be4032d619",
@@ -301,7 +301,7 @@ RECORDED_DEMO: dict[str, dict[str, str]] = {
         "depth_layer": "b8a58acf1bc1ca5c",
         "depth_max_m": "5f2cc63a2fae697b",
         "depth_min_m": "41e4bb49de39df50",
-        "effort": "1ef06719ff4a5367",
+        "effort": "ab829a13ac739bc5",
         "effort_unit": "a7e7851134a5279d",
         "event_end": "af30e2139b4e5a8d",
         "event_id": "9aa07dc4c36d5899",
@@ -334,7 +334,7 @@ RECORDED_DEMO: dict[str, dict[str, str]] = {
         "track_start_lat": "7d97d66635caef77",
         "track_start_lon": "2e73b461ad39ce92",
         "unit": "d40aab27cd536140",
-        "value": "19c8d14b1d99aa09",
+        "value": "8e9f1642e749903f",
         "variable": "d8e14c9486f4d8ab",
         "variable_kind": "2222c05aa815a6db",
         "year": "1dae67367257b09e",

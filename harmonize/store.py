@@ -26,17 +26,18 @@ import os
 import re
 import shutil
 import time
-from collections.abc import Iterator, Sequence
+from collections.abc import Iterable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path, PurePosixPath
 
 import duckdb
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from harmonize import __version__, interrupts, parts, twins, units
+from harmonize import __version__, interrupts, parts, store_layout, twins, units
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns
 from harmonize.errors import StoreBusyError, StoreError
 from harmonize.files import file_digest, fsync_dir, fsync_file
@@ -45,6 +46,8 @@ from harmonize.locks import FileLock, is_free
 DB_NAME = "harmonized.duckdb"
 OBSERVATIONS_DIR = "observations"
 STAGING_DIR = "staging"
+#: In a staging folder: the ingest's part files, laid out as under ``observations/``.
+PARTS_DIR = "parts"
 #: In a staging folder: the store paths its files are about to be moved to (see Store.commit).
 JOURNAL_NAME = "moving.json"
 #: The OS lock writers take (flock) before they open the database to write.
@@ -60,7 +63,10 @@ LOCK_SUFFIX = ".lock"
 #: 4: event times written as parquet ``timestamp[us, tz=UTC]`` (older files hold UTC wall
 #: clocks: the views read them as UTC) and the persisted views name their files relative to
 #: the store folder (rewritten whenever harmonize opens the store for writing).
-STORE_VERSION = 4
+#: 5: every part file carries ``harmonize`` key-value metadata (harmonize.store_layout; files of
+#: older versions have none and are kept as they are), ``ingests.rebuilt_at`` (set on ingests
+#: whose manifest rows were rebuilt from their part files by ``harmonize repair --rebuild-manifest``).
+STORE_VERSION = 5
 _LOCK_RE = re.compile(r"\(PID (\d+)\)")
 
 #: Columns of ``events_without_values``, in table order (see docs/store.md).
@@ -94,7 +100,8 @@ CREATE TABLE IF NOT EXISTS ingests (
     tool_version VARCHAR,
     profile_file VARCHAR,
     damage_reason VARCHAR,
-    file_path VARCHAR
+    file_path VARCHAR,
+    rebuilt_at TIMESTAMP
 );
 CREATE TABLE IF NOT EXISTS ingest_files (
     ingest_id VARCHAR NOT NULL,
@@ -162,6 +169,7 @@ ALTER TABLE observation_files ADD COLUMN IF NOT EXISTS sha256 VARCHAR;
 ALTER TABLE observation_files ADD COLUMN IF NOT EXISTS size_bytes BIGINT;
 ALTER TABLE ingests ADD COLUMN IF NOT EXISTS damage_reason VARCHAR;
 ALTER TABLE ingests ADD COLUMN IF NOT EXISTS file_path VARCHAR;
+ALTER TABLE ingests ADD COLUMN IF NOT EXISTS rebuilt_at TIMESTAMP;
 """
 
 
@@ -474,6 +482,17 @@ class Store:
         self._staging_locks[path] = lock
         return path
 
+    def write_observations(self, staged: Path, blocks: Iterable[pa.Table], record: IngestRecord,
+                           files: Sequence[dict[str, object]]) -> tuple[int, int]:
+        """Write an ingest's observation rows (Arrow tables) into its staging folder.
+
+        The store alone decides the layout (:mod:`harmonize.store_layout`): partition folders,
+        file names, and the key-value metadata each file carries (``record`` and the input
+        ``files``, so that a file read alone says where it came from). Returns (rows written,
+        zero-filled rows written); :meth:`commit` then moves the files into place.
+        """
+        return store_layout.write_blocks(blocks, staged / PARTS_DIR, provenance(record, files))
+
     def commit(
         self,
         record: IngestRecord,
@@ -501,16 +520,16 @@ class Store:
                                       record.inputs_sha256)
             supersede = list(on_conflict(previous))
             moved: list[tuple[str, int, str, int]] = []
-            parts = sorted((staged / "parts").rglob("*.parquet"))
+            parts = sorted((staged / PARTS_DIR).rglob("*.parquet"))
             # the journal: where this ingest's files go, written before the first one moves, so
             # that whoever cleans up after a kill deletes these files and no others
-            journal = [(Path(OBSERVATIONS_DIR) / p.relative_to(staged / "parts")).as_posix() for p in parts]
+            journal = [(Path(OBSERVATIONS_DIR) / p.relative_to(staged / PARTS_DIR)).as_posix() for p in parts]
             (staged / JOURNAL_NAME).write_text(json.dumps(journal))
             fsync_file(staged / JOURNAL_NAME)
             fsync_dir(staged)
             folders: set[Path] = set()
             for part in parts:
-                rel = Path(OBSERVATIONS_DIR) / part.relative_to(staged / "parts")
+                rel = Path(OBSERVATIONS_DIR) / part.relative_to(staged / PARTS_DIR)
                 target = self.directory / rel
                 for folder in (target.parent, target.parent.parent, target.parent.parent.parent):
                     if not folder.is_dir():
@@ -886,6 +905,33 @@ class Store:
 
 
 _TIME_COLUMNS = ("event_start", "event_end")
+
+
+def provenance(record: IngestRecord, files: Sequence[dict[str, object]]) -> dict[str, object]:
+    """What every part file of an ingest says about it (:data:`store_layout.METADATA_KEY` metadata).
+
+    Versioned by ``version``; enough to rebuild the ingest's manifest rows
+    (:func:`harmonize.repair.rebuild_manifest`): the ``ingests`` row but the counts only the
+    whole set of files knows, the ``ingest_files`` rows (``inputs``) and the twin windows.
+    """
+    ingest = {
+        "ingest_id": record.ingest_id, "source_id": record.source_id, "source_kind": record.source_kind,
+        "provider_type": record.provider_type, "file_name": record.file_name,
+        "file_path": record.file_path or record.file_name, "file_sha256": record.file_sha256,
+        "inputs_sha256": record.inputs_sha256, "config_sha256": record.config_sha256,
+        "started_at": pd.Timestamp(record.started_at).isoformat(), "rows_read": int(record.rows_read),
+        "rows_accepted": int(record.rows_accepted), "rows_quarantined": int(record.rows_quarantined),
+        "profile_file": record.profile_file, "tool_version": __version__,
+    }
+    twin = record.duplicates
+    return {
+        "version": store_layout.METADATA_VERSION, "contract_version": CONTRACT_VERSION,
+        "store_version": STORE_VERSION, "tool_version": __version__, "ingest_id": record.ingest_id,
+        "source_id": record.source_id, "source_kind": record.source_kind, "ingest": ingest,
+        "inputs": [{k: (int(v) if isinstance(v, (int, np.integer)) else v) for k, v in f.items()} for f in files],
+        "twin_settings": None if twin is None else {"distance_km": twin.distance_km, "minutes": twin.minutes,
+                                                    "rank": twin.rank},
+    }
 
 
 def _parquet_source(paths: Sequence[str]) -> str:

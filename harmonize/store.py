@@ -22,6 +22,7 @@ checksum and reads it to the end; :mod:`harmonize.repair` takes damaged ingests 
 from __future__ import annotations
 
 import json
+import logging
 import os
 import re
 import shutil
@@ -46,6 +47,9 @@ from harmonize.locks import FileLock, is_free
 DB_NAME = "harmonized.duckdb"
 OBSERVATIONS_DIR = "observations"
 STAGING_DIR = "staging"
+#: Of the store: ``<ingest_id>.json`` per committed ingest (its "seal"), listing every part file
+#: with its rows, sha256 and size: what a manifest rebuild checks the part files against.
+SEALS_DIR = "ingests"
 #: In a staging folder: the ingest's part files, laid out as under ``observations/``.
 PARTS_DIR = "parts"
 #: In a staging folder: the store paths its files are about to be moved to (see Store.commit).
@@ -68,6 +72,7 @@ LOCK_SUFFIX = ".lock"
 #: whose manifest rows were rebuilt from their part files by ``harmonize repair --rebuild-manifest``).
 STORE_VERSION = 5
 _LOCK_RE = re.compile(r"\(PID (\d+)\)")
+logger = logging.getLogger(__name__)
 
 #: Columns of ``events_without_values``, in table order (see docs/store.md).
 EVENTS_WITHOUT_VALUES_COLUMNS = (
@@ -254,9 +259,9 @@ class Store:
         and writing, unless ``repairing`` (see :mod:`harmonize.repair`).
         """
         if not self.exists():
-            lost = self.lost_files()
+            lost = self.lost()
             if lost and not repairing:
-                raise StoreError(self._lost_message(lost))
+                raise StoreError(lost)
             if read_only:
                 raise StoreError(f"no store at {self.directory}; ingest a file first ('harmonize ingest')")
         self.directory.mkdir(parents=True, exist_ok=True)
@@ -368,6 +373,33 @@ class Store:
             except StoreError:
                 pass
 
+    def _parts_gone(self, con: duckdb.DuckDBPyConnection, missing: Sequence[str] | None = None,
+                    n_live: int | None = None) -> str | None:
+        """One line when live parquet files listed in the manifest are missing (None otherwise).
+
+        Without ``missing``, says so only when every live file is gone (a deleted
+        ``observations/`` folder: one line instead of one per file).
+        """
+        if missing is None:
+            try:
+                paths = self._live_paths(con)
+            except duckdb.CatalogException:
+                return None
+            missing = [p for p in paths if not (self.directory / p).is_file()]
+            if not paths or len(missing) < len(paths):
+                return None
+            n_live = len(paths)
+        if not missing:
+            return None
+        n_ingests = con.execute(
+            "SELECT count(DISTINCT ingest_id) FROM observation_files WHERE path = ANY(?::VARCHAR[])",
+            [list(missing)]).fetchall()[0][0]
+        folder = self.directory / OBSERVATIONS_DIR
+        where = f"{folder} is missing" if not folder.is_dir() else f"e.g. {missing[0]}"
+        return (f"the store's parquet files are gone: {len(missing):,} of the {n_live:,} live file(s) of "
+                f"{n_ingests:,} ingest(s) the manifest lists are missing ({where}); the store is damaged, not "
+                "empty: run 'harmonize repair' to see what it would do")
+
     def _live_paths(self, con: duckdb.DuckDBPyConnection) -> list[str]:
         rows = con.execute(
             """SELECT f.path FROM observation_files f JOIN ingests i USING (ingest_id)
@@ -393,6 +425,9 @@ class Store:
         cols = observation_sql_columns()
         present: set[str] = set()
         if paths:
+            missing_files = [p for p in paths if not (self.directory / p).is_file()]
+            if missing_files:
+                raise StoreError(self._parts_gone(con, missing_files, len(paths)) or "")
             try:
                 naive = _naive_time_files(con, paths)
             except duckdb.Error:
@@ -524,6 +559,8 @@ class Store:
             # the journal: where this ingest's files go, written before the first one moves, so
             # that whoever cleans up after a kill deletes these files and no others
             journal = [(Path(OBSERVATIONS_DIR) / p.relative_to(staged / PARTS_DIR)).as_posix() for p in parts]
+            seal_rel = f"{SEALS_DIR}/{record.ingest_id}.json"
+            journal.append(seal_rel)
             (staged / JOURNAL_NAME).write_text(json.dumps(journal))
             fsync_file(staged / JOURNAL_NAME)
             fsync_dir(staged)
@@ -542,6 +579,17 @@ class Store:
                 folders.add(target.parent)
                 moved.append((rel.as_posix(), int(n_rows), sha, size))
                 _crash_point("moving")
+            # the seal: the complete list of the ingest's files, moved in last (a manifest rebuild
+            # takes an ingest whose seal is missing for one that never committed)
+            seal = staged / "seal.json"
+            seal.write_text(json.dumps({"version": store_layout.METADATA_VERSION, "ingest_id": record.ingest_id,
+                                        "parts": [{"path": rel, "rows": n, "sha256": sha, "size_bytes": size}
+                                                  for rel, n, sha, size in moved],
+                                        "metadata": provenance(record, files)}, indent=1, default=str) + "\n")
+            fsync_file(seal)
+            (self.directory / SEALS_DIR).mkdir(exist_ok=True)
+            os.replace(seal, self.directory / seal_rel)
+            folders.update({self.directory / SEALS_DIR, self.directory})
             for folder in sorted(folders, key=lambda f: len(f.parts), reverse=True):
                 fsync_dir(folder)  # the renames durable before the commit that makes them live
             _crash_point("before_transaction")
@@ -613,6 +661,7 @@ class Store:
         except BaseException:
             _rollback(con)
             raise
+        self._write_marker(record.ingest_id)
         shutil.rmtree(staged, ignore_errors=True)
         return supersede
 
@@ -643,6 +692,7 @@ class Store:
             if planned:
                 if known is None:
                     known = {r[0] for r in con.execute("SELECT path FROM observation_files").fetchall()}
+                    known |= {f"{SEALS_DIR}/{r[0]}.json" for r in con.execute("SELECT ingest_id FROM ingests").fetchall()}
                 for rel in planned:
                     if isinstance(rel, str) and rel not in known and _inside(self.directory, rel):
                         (self.directory / rel).unlink(missing_ok=True)
@@ -764,6 +814,48 @@ class Store:
         obs_dir = self.directory / OBSERVATIONS_DIR
         return sorted(obs_dir.rglob("*.parquet")) if obs_dir.is_dir() else []
 
+    @property
+    def marker(self) -> Path:
+        """Beside the store folder, ``.<folder name>.ingested``: written after every commit, so that
+        a store folder deleted later is told apart from a study never ingested."""
+        return self.directory.with_name(f".{self.directory.name}.ingested")
+
+    def _write_marker(self, ingest_id: str) -> None:
+        text = json.dumps({"store": self.directory.name, "last_ingest": ingest_id,
+                           "committed_at": pd.Timestamp.now("UTC").isoformat()})
+        tmp = self.marker.with_name(self.marker.name + ".tmp")
+        try:
+            tmp.write_text(text + "\n")
+            os.replace(tmp, self.marker)
+        except OSError as exc:  # the commit stands; only the evidence of it outside the store is missing
+            logger.warning("could not write %s (%s); a deleted store folder would look like an empty study",
+                           self.marker, exc.strerror or exc)
+
+    def lost(self) -> str | None:
+        """Why the store is lost (one line), or None: an empty study and a sound store are not lost.
+
+        Lost: the database is missing while parquet files remain (:meth:`lost_files`), or the
+        database and every parquet file are missing while the marker beside the store folder
+        says ingests were committed (the store folder was deleted). A store whose database
+        remains but whose parquet files are gone is found by :meth:`check` and refused by
+        every reading connection (see :meth:`_define_view`).
+        """
+        if self.exists():
+            return None
+        files = self.lost_files()
+        if files:
+            return self._lost_message(files)
+        if self.marker.is_file():
+            try:
+                last = json.loads(self.marker.read_text()).get("last_ingest", "?")
+            except (OSError, ValueError, AttributeError):
+                last = "?"
+            return (f"the store at {self.directory} is gone (no database, no parquet files), but this study has "
+                    f"committed ingests (the last: {last}, recorded in {self.marker.name}); it is a lost store, not "
+                    "an empty study: restore the store folder from a backup, or run 'harmonize repair' to see what "
+                    "it would do")
+        return None
+
     def _lost_message(self, lost: Sequence[Path]) -> str:
         return (f"the store's database {self.db_path} is missing, but {len(lost):,} parquet file(s) remain "
                 f"under {self.directory / OBSERVATIONS_DIR}; nothing is written until the store is repaired: "
@@ -818,9 +910,9 @@ class Store:
         or in the quarantine. A store of an older version is brought up to date first (which
         records the checksums of its files) when the store can be written.
         """
-        lost = self.lost_files()
+        lost = self.lost()
         if lost:
-            return [self._lost_message(lost)]
+            return [lost]
         if not self.exists():
             return []
         self.upgrade()
@@ -829,6 +921,9 @@ class Store:
 
             row_traced_kinds = kinds(row_traced=True)
         with self.connect(view=False) as con:
+            gone = self._parts_gone(con)
+            if gone:
+                return [gone]
             problems = [str(d) for d in self._scrub(con, deep)]
             if problems:
                 return problems
@@ -839,10 +934,10 @@ class Store:
             ).fetchall()
             problems += [f"ingest {i}: rows_read {r} <> accepted {a} + quarantined {q}" for i, r, a, q in bad]
             bad = con.execute(
-                """SELECT i.ingest_id, i.rows_quarantined,
+                f"""SELECT i.ingest_id, i.rows_quarantined,
                           (SELECT count(*) FROM quarantine q WHERE q.ingest_id = i.ingest_id)
                           + (SELECT coalesce(sum(n_values), 0) FROM quarantine_summary m WHERE m.ingest_id = i.ingest_id) AS n
-                   FROM ingests i WHERE i.status = 'complete' AND i.rows_quarantined <> n"""
+                   FROM ingests i WHERE i.status = 'complete' AND i.rows_quarantined <> n AND {_not_rebuilt(con, 'i')}"""
             ).fetchall()
             problems += [f"ingest {i}: rows_quarantined {a} but {b} quarantined rows and values" for i, a, b in bad]
             bad = con.execute(
@@ -865,6 +960,21 @@ class Store:
             problems += self._row_accounting(con, row_traced_kinds)
         return problems
 
+    def rebuilt_note(self) -> str | None:
+        """One line when complete ingests were rebuilt from their part files (their quarantine is unknown)."""
+        if not self.exists():
+            return None
+        with self.connect(view=False) as con:
+            if _not_rebuilt(con, "i") == "TRUE":
+                return None
+            n, when = con.execute("SELECT count(*), max(rebuilt_at) FROM ingests i "
+                                  "WHERE status = 'complete' AND rebuilt_at IS NOT NULL").fetchall()[0]
+        if not n:
+            return None
+        return (f"{n:,} ingest(s) were rebuilt from their part files on {pd.Timestamp(when):%Y-%m-%d %H:%M} UTC: "
+                "their observation rows are checked, their quarantined rows are not in the store (ingest "
+                "their files again with --replace to restore them)")
+
     @staticmethod
     def _row_accounting(con: duckdb.DuckDBPyConnection, kinds: Sequence[str]) -> list[str]:
         """Every data row 1..rows_read of each row-traced input file is accepted or quarantined.
@@ -882,7 +992,7 @@ class Store:
             WITH files AS (
                 SELECT f.ingest_id, f.role, f.file_name, f.rows_read
                 FROM ingest_files f JOIN ingests i USING (ingest_id)
-                WHERE i.status = 'complete' AND i.source_kind IN ({traced})
+                WHERE i.status = 'complete' AND i.source_kind IN ({traced}) AND {_not_rebuilt(con, 'i')}
             ),
             seen AS (
                 SELECT ingest_id, source_file AS file_name, source_row AS row FROM observations
@@ -956,6 +1066,13 @@ def _naive_time_files(con: duckdb.DuckDBPyConnection, paths: Sequence[str]) -> s
             or any(f.endswith("/" + p) for f in found)}
 
 
+def _not_rebuilt(con: duckdb.DuckDBPyConnection, alias: str) -> str:
+    """SQL condition: the ingest's manifest rows were not rebuilt from its part files (whose
+    quarantine, kept only in the database, is then unknown)."""
+    columns = {r[0] for r in con.execute("DESCRIBE ingests").fetchall()}
+    return f"{alias}.rebuilt_at IS NULL" if "rebuilt_at" in columns else "TRUE"
+
+
 def _rollback(con: duckdb.DuckDBPyConnection) -> None:
     """Roll back; when the failure was the COMMIT itself there is nothing to roll back, and the
     original error (not "no transaction is active") is the one to report."""
@@ -974,6 +1091,8 @@ def _crash_point(name: str) -> None:
 def _inside(root: Path, rel: str) -> bool:
     """Whether a relative path from a journal stays inside the store folder."""
     target = (root / rel).resolve()
+    if target.suffix == ".json":  # the ingest's seal
+        return target.parent == (root / SEALS_DIR).resolve()
     return target.is_relative_to(root.resolve()) and target.suffix == ".parquet"
 
 

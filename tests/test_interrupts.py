@@ -93,6 +93,7 @@ def test_an_interrupted_ingest_says_so_in_one_line_and_leaves_the_store_whole(st
         if complete:  # start again from an empty store
             import shutil
             shutil.rmtree(study_dir / "store")
+            (study_dir / ".store.ingested").unlink()  # the marker: a store removed on purpose
     assert any(o.startswith("interrupted") for o in outcomes), outcomes
 
 

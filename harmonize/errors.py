@@ -91,7 +91,6 @@ def failure_line(exc: BaseException) -> tuple[str, int] | None:
     """
     import errno
     import re
-
     from pathlib import Path
 
     from harmonize.files import public_name

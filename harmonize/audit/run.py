@@ -179,7 +179,6 @@ class AuditResult:
     def write_html(self, path: str | Path) -> Path:
         """Write the self-contained HTML report to ``path``."""
         from harmonize.audit.report import render_html
-
         from harmonize.export.atomic import atomic_file
 
         path = Path(path)

@@ -377,18 +377,17 @@ class Store:
                     n_live: int | None = None) -> str | None:
         """One line when live parquet files listed in the manifest are missing (None otherwise).
 
-        Without ``missing``, says so only when every live file is gone (a deleted
-        ``observations/`` folder: one line instead of one per file).
+        Without ``missing``, says so only when the ``observations/`` folder is gone while live
+        files are listed (one line instead of one per file; :meth:`_scrub` names single files).
         """
         if missing is None:
+            if (self.directory / OBSERVATIONS_DIR).is_dir():
+                return None
             try:
                 paths = self._live_paths(con)
             except duckdb.CatalogException:
                 return None
-            missing = [p for p in paths if not (self.directory / p).is_file()]
-            if not paths or len(missing) < len(paths):
-                return None
-            n_live = len(paths)
+            missing, n_live = paths, len(paths)
         if not missing:
             return None
         n_ingests = con.execute(

@@ -195,7 +195,7 @@ def _repair_lost(store: Store, lost: list[Path], apply: bool) -> RepairPlan:
         return plan
     plan.set_aside = _set_aside(store, plan.unlisted)
     # an empty database, noting what happened, so the store can be written again
-    with store.connect(read_only=False) as db:
+    with store.connect(read_only=False, repairing=True) as db:
         db.execute("DELETE FROM store_meta WHERE key = 'lost_database_set_aside'")
         db.execute("INSERT INTO store_meta VALUES ('lost_database_set_aside', ?)",
                    [plan.set_aside.relative_to(store.directory).as_posix()])

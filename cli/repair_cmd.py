@@ -2,10 +2,15 @@
 
 from __future__ import annotations
 
+from typing import TYPE_CHECKING
+
 import typer
 from harmonize.cli.console import console, fmt_int, study_from
 
 from harmonize.errors import one_line
+
+if TYPE_CHECKING:
+    from harmonize.repair import RepairPlan
 
 
 def register(app: typer.Typer) -> None:
@@ -73,13 +78,14 @@ def repair_cmd(
         raise typer.Exit(1)
 
 
-def _report_rebuild(plan: object) -> None:
+def _report_rebuild(plan: RepairPlan) -> None:
     """Say what a manifest rebuild found and did; exit 1 after a dry run that would act."""
-    rb = plan.rebuild  # type: ignore[attr-defined]
+    rb = plan.rebuild
+    assert rb is not None
     if not rb.needed:
         console.print("nothing to rebuild: the store's database is readable (or there are no part files)", markup=False)
         return
-    will = "" if plan.applied else "would be "  # type: ignore[attr-defined]
+    will = "" if plan.applied else "would be "
     console.print(f"the store's database {rb.database_problem}; {fmt_int(len(rb.ingests))} ingest(s) {will}rebuilt "
                   "from the part files' metadata", markup=False)
     for r in rb.ingests.itertuples():
@@ -88,11 +94,11 @@ def _report_rebuild(plan: object) -> None:
                       f"{fmt_int(int(r.rows))} rows{one_line(why)}", markup=False)
     for rel, problem in rb.refused:
         console.print(f"refused: {one_line(rel)} {one_line(problem)}", markup=False)
-    if rb.refused or (plan.applied and rb.refused_to is not None):  # type: ignore[attr-defined]
-        where = f" to {rb.refused_to}" if rb.refused_to is not None else f" to store/{'refused_parts'}/<time>/"
+    if rb.refused or (plan.applied and rb.refused_to is not None):
+        where = f" to {rb.refused_to}" if rb.refused_to is not None else " to store/refused_parts/<time>/"
         console.print(f"{fmt_int(len(rb.refused))} refused file(s) {will}moved{where} (never deleted)", markup=False)
     console.print("the quarantine lived only in the database: ingest the files again with --replace to restore it",
                   markup=False)
-    if not plan.applied:  # type: ignore[attr-defined]
+    if not plan.applied:
         console.print("nothing was changed; run 'harmonize repair --rebuild-manifest --apply' to do this", markup=False)
         raise typer.Exit(1)

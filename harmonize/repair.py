@@ -110,7 +110,8 @@ def repair(store: Store, apply: bool = False, rebuild_manifest: bool = False) ->
     if rebuild_manifest:
         return rebuild(store, apply)
     lost = store.lost_files()
-    if lost:
+    seals = store.directory / SEALS_DIR
+    if lost or (not store.exists() and seals.is_dir() and any(seals.glob("*.json"))):
         return _repair_lost(store, lost, apply)
     plan = RepairPlan()
     if not store.exists():
@@ -193,7 +194,9 @@ def _repair_lost(store: Store, lost: list[Path], apply: bool) -> RepairPlan:
         plan.ingests = pd.DataFrame(columns=["ingest_id", "source_id", "profile_file", "files"])
     if not apply:
         return plan
-    plan.set_aside = _set_aside(store, plan.unlisted)
+    seals = store.directory / SEALS_DIR
+    sealed = [p.relative_to(store.directory).as_posix() for p in sorted(seals.glob("*.json"))] if seals.is_dir() else []
+    plan.set_aside = _set_aside(store, plan.unlisted + sealed)  # the seals belong to the lost database
     # an empty database, noting what happened, so the store can be written again
     with store.connect(read_only=False, repairing=True) as db:
         db.execute("DELETE FROM store_meta WHERE key = 'lost_database_set_aside'")
@@ -364,8 +367,9 @@ def rebuild(store: Store, apply: bool = False) -> RepairPlan:
     plan = RepairPlan(rebuild=rb)
     if rb.database_problem is None:
         return plan
-    obs = store.directory / OBSERVATIONS_DIR
-    if rb.database_problem == "is missing" and not (obs.is_dir() and any(obs.rglob("*.parquet"))):
+    obs, seals = store.directory / OBSERVATIONS_DIR, store.directory / SEALS_DIR
+    if rb.database_problem == "is missing" and not (obs.is_dir() and any(obs.rglob("*.parquet"))) \
+            and not (seals.is_dir() and any(seals.glob("*.json"))):
         rb.database_problem = None  # nothing to rebuild from (an empty study, or a deleted store folder)
         return plan
     writer = FileLock(store.directory / WRITE_LOCK)

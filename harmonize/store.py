@@ -842,7 +842,8 @@ class Store:
         if self.exists():
             return None
         files = self.lost_files()
-        if files:
+        seals = self.directory / SEALS_DIR
+        if files or (seals.is_dir() and any(seals.glob("*.json"))):
             return self._lost_message(files)
         if self.marker.is_file():
             try:
@@ -857,8 +858,10 @@ class Store:
 
     def _lost_message(self, lost: Sequence[Path]) -> str:
         return (f"the store's database {self.db_path} is missing, but {len(lost):,} parquet file(s) remain "
-                f"under {self.directory / OBSERVATIONS_DIR}; nothing is written until the store is repaired: "
-                "run 'harmonize repair' to see what it would do, then 'harmonize repair --apply'")
+                f"under {self.directory / OBSERVATIONS_DIR} (and the seals of its ingests under "
+                f"{self.directory / SEALS_DIR}); nothing is written until the store is repaired: run 'harmonize "
+                "repair --rebuild-manifest' to see how the database would be rebuilt from them, or 'harmonize "
+                "repair' to set them aside and start an empty store")
 
     def store_version(self) -> int:
         """The version of the store's tables (1 when the store predates the key)."""

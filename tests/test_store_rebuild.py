@@ -325,3 +325,66 @@ def test_the_seal_lists_every_file_of_its_ingest(study_copy: tuple[Path, list[st
                 assert hashlib.sha256((store.directory / rel).read_bytes()).hexdigest() == sha
     finally:
         con.close()
+
+
+def test_twin_windows_and_flags_survive_a_rebuild(tmp_path: Path) -> None:
+    # an agency transect sighting and a volunteer record 330 m and 20 minutes from it, under a
+    # profile whose windows are not the defaults: the rebuilt store flags the same twin
+    import pandas as pd
+    from factories import store_frames
+
+    study_dir = tmp_path / "study"
+    shutil.copytree(FIXTURES / "keldmar", study_dir)
+    profile = study_dir / "profiles" / "opportunistic_volunteer.toml"
+    profile.write_text(profile.read_text().replace("distance_km = 2.0", "distance_km = 0.5")
+                       .replace("minutes = 60", "minutes = 30"))
+    study = load_study(study_dir)
+    events = pd.DataFrame({"event_id": ["T1"], "event_start": ["2022-11-05T08:00"],
+                           "event_end": [pd.Timestamp("2022-11-05T08:10")], "lat": [43.5], "lon": [-152.0],
+                           "depth_min_m": [0.0], "depth_max_m": [0.0]})
+    values = pd.DataFrame({"event_id": ["T1"], "variable": ["Procellix keldica"], "value": [4.0]})
+    store_frames(study, events, values, source_id="keldmar_ship_survey", kind="transect", protocol=None)
+    vol = study_dir / "vol.csv"
+    vol.write_text("sighting_id,list_id,obs_time,latitude,longitude,observer_name,species,how_many,all_reported,"
+                   "minutes_watched,km_travelled\nA,,2022-11-05T08:20,43.503,-152.0,Ann Vell,keld fulmar,2,,,\n")
+    run(study, "opportunistic_volunteer", {"rows": vol})
+    store = Store(study.store_dir)
+
+    def state() -> tuple[object, ...]:
+        with store.connect() as con:
+            return (con.execute("SELECT ingest_id, source_id, distance_km, minutes, rank FROM twin_settings "
+                                "ORDER BY ALL").fetchall(),
+                    con.execute("SELECT source_id, twin_source_id, variable, distance_km, minutes FROM twins "
+                                "ORDER BY ALL").fetchall(),
+                    con.execute("SELECT source_id, event_id, flags FROM observations ORDER BY ALL").fetchall())
+
+    before = state()
+    assert before[0][0][2:4] == (0.5, 30.0) and len(before[1]) == 1
+    store.db_path.unlink()
+    assert repair(store, apply=True, rebuild_manifest=True).applied
+    assert state() == before
+
+
+def test_an_ingest_without_part_files_is_rebuilt_from_its_seal(tmp_path: Path) -> None:
+    # every row of this ingest went to quarantine: it wrote no part file, only its seal says it was done
+    study_dir = tmp_path / "study"
+    shutil.copytree(FIXTURES / "keldmar", study_dir)
+    for f in (FIXTURES / "trawl").glob("*.csv"):
+        shutil.copy(f, study_dir / f.name)
+    events = (study_dir / "hauls_messy.csv").read_text().splitlines()
+    (study_dir / "bad_hauls.csv").write_text(events[0] + "\n" + "\n".join(
+        ",".join(["X" + str(i)] + ["not a value"] * (events[0].count(","))) for i in range(3)) + "\n")
+    result = run(load_study(study_dir), "trawl_agency", {"events": study_dir / "bad_hauls.csv",
+                                                         "records": study_dir / "catch_messy.csv"})
+    assert result.status == "complete" and result.records_written == 0
+    store = Store(study_dir / "store")
+    assert _parts(store) == []
+    with store.connect(view=False) as con:
+        before = con.execute("SELECT ingest_id, status, rows_read, rows_quarantined, records_written FROM ingests"
+                             ).fetchall()
+    store.db_path.unlink()
+    code, out, err = cli(None, "--study", str(study_dir), "repair", "--rebuild-manifest", "--apply")
+    assert code == 0, err
+    with store.connect(view=False) as con:
+        assert con.execute("SELECT ingest_id, status, rows_read, rows_quarantined, records_written FROM ingests"
+                           ).fetchall() == before

@@ -372,6 +372,11 @@ class Store:
                 self._define_view(con, temporary=False)
             except StoreError:
                 pass
+        if version < 5 and not self.marker.exists():
+            # the evidence beside the store folder that ingests committed (see :meth:`lost`)
+            last = con.execute("SELECT max(ingest_id) FROM ingests").fetchall()[0][0]
+            if last is not None:
+                self._write_marker(last)
 
     def _parts_gone(self, con: duckdb.DuckDBPyConnection, missing: Sequence[str] | None = None,
                     n_live: int | None = None) -> str | None:
@@ -397,7 +402,7 @@ class Store:
         where = f"{folder} is missing" if not folder.is_dir() else f"e.g. {missing[0]}"
         return (f"the store's parquet files are gone: {len(missing):,} of the {n_live:,} live file(s) of "
                 f"{n_ingests:,} ingest(s) the manifest lists are missing ({where}); the store is damaged, not "
-                "empty: run 'harmonize repair' to see what it would do")
+                "empty: 'harmonize status --check' names the files, 'harmonize repair' takes their ingests out")
 
     def _live_paths(self, con: duckdb.DuckDBPyConnection) -> list[str]:
         rows = con.execute(
@@ -427,6 +432,11 @@ class Store:
             missing_files = [p for p in paths if not (self.directory / p).is_file()]
             if missing_files:
                 raise StoreError(self._parts_gone(con, missing_files, len(paths)) or "")
+            if _GLOB_CHARS.search(str(self.directory)):
+                # DuckDB globs the folders of file_search_path ("glob[1]*{a,b}" finds nothing):
+                # such a store names its files by their full paths, which DuckDB finds as they are
+                # (the views then break when the study folder moves)
+                paths = [str(self.directory / p) for p in paths]
             try:
                 naive = _naive_time_files(con, paths)
             except duckdb.Error:
@@ -1017,6 +1027,8 @@ class Store:
 
 
 _TIME_COLUMNS = ("event_start", "event_end")
+#: Characters DuckDB reads as a glob pattern in a file path.
+_GLOB_CHARS = re.compile(r"[*?\[\]{}]")
 
 
 def provenance(record: IngestRecord, files: Sequence[dict[str, object]]) -> dict[str, object]:

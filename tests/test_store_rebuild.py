@@ -301,7 +301,8 @@ def test_deleted_parts_with_the_database_left_are_a_damaged_store(study_copy: tu
     shutil.rmtree(store.directory / "observations")
     expected = (f"the store's parquet files are gone: {n_live} of the {n_live} live file(s) of {n_ingests} "
                 f"ingest(s) the manifest lists are missing ({store.directory / 'observations'} is missing); "
-                "the store is damaged, not empty: run 'harmonize repair' to see what it would do")
+                "the store is damaged, not empty: 'harmonize status --check' names the files, 'harmonize repair' "
+                "takes their ingests out")
     for args in READERS:
         args = tuple(str(tmp_path / a) if a == "OUT.csv" else a for a in args)
         code, out, err = cli(None, "--study", str(study_dir), *args)
@@ -388,3 +389,15 @@ def test_an_ingest_without_part_files_is_rebuilt_from_its_seal(tmp_path: Path) -
     with store.connect(view=False) as con:
         assert con.execute("SELECT ingest_id, status, rows_read, rows_quarantined, records_written FROM ingests"
                            ).fetchall() == before
+
+
+def test_an_older_store_gets_its_marker_when_brought_up_to_date(study_copy: tuple[Path, list[str]]) -> None:
+    # a store of version 4 had no marker: a deleted store folder would have looked empty
+    study_dir, ids = study_copy
+    store = Store(study_dir / "store")
+    store.marker.unlink()
+    con = duckdb.connect(str(store.db_path))
+    con.execute("UPDATE store_meta SET value = '4' WHERE key = 'store_version'")
+    con.close()
+    assert store.upgrade() and store.store_version() == 5
+    assert json.loads(store.marker.read_text())["last_ingest"] == max(ids)

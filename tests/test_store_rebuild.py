@@ -401,3 +401,46 @@ def test_an_older_store_gets_its_marker_when_brought_up_to_date(study_copy: tupl
     con.close()
     assert store.upgrade() and store.store_version() == 5
     assert json.loads(store.marker.read_text())["last_ingest"] == max(ids)
+
+
+@pytest.mark.parametrize(("change", "expected"), [
+    ({"version": "2.0"}, "has 'harmonize' metadata of version 2.0, this harmonize reads 1.0"),
+    ({"contract_version": "999"}, "was written under contract version 999, this harmonize writes "),
+    ({"ingest": None}, "has 'harmonize' metadata without ingest"),
+    ({"ingest": {"ingest_id": "x"}}, "has 'harmonize' metadata with an incomplete ingest record"),
+    ({"ingest_id": "someone-else"}, "has 'harmonize' metadata whose ingest_id (someone-else) differs from its ingest's"),
+    ("not json", "is unreadable ("),
+])
+def test_each_kind_of_bad_metadata_is_refused_by_name(study_copy: tuple[Path, list[str]],
+                                                      change: dict[str, object] | str, expected: str) -> None:
+    study_dir, (_, second, _) = study_copy
+    store = Store(study_dir / "store")
+    with store.connect(view=False) as con:
+        rel = con.execute("SELECT min(path) FROM observation_files WHERE ingest_id = ?", [second]).fetchall()[0][0]
+    path = store.directory / rel
+    if isinstance(change, str):
+        table = pq.read_table(path)
+        pq.write_table(table.replace_schema_metadata({b"harmonize": change.encode()}), path)
+    else:
+        if change.get("ingest") is None and "ingest" in change:
+            doc = json.loads(pq.read_metadata(path).metadata[b"harmonize"])
+            del doc["ingest"]
+            pq.write_table(pq.read_table(path).replace_schema_metadata({b"harmonize": json.dumps(doc).encode()}), path)
+        else:
+            _rewrite_metadata(path, change)
+    refused = _refused(study_dir)
+    assert list(refused) == [rel] and refused[rel].startswith(expected), refused
+    assert _ingest_of(store, second) == ("damaged", f"its file {rel} is refused")
+
+
+def test_a_part_disagreeing_with_its_seal_damages_its_ingest(study_copy: tuple[Path, list[str]]) -> None:
+    study_dir, (_, second, _) = study_copy
+    store = Store(study_dir / "store")
+    with store.connect(view=False) as con:
+        rel = con.execute("SELECT min(path) FROM observation_files WHERE ingest_id = ?", [second]).fetchall()[0][0]
+    doc = json.loads(pq.read_metadata(store.directory / rel).metadata[b"harmonize"])
+    _rewrite_metadata(store.directory / rel, {"ingest": {**doc["ingest"], "rows_read": 999}})
+    assert _refused(study_dir) == {}
+    status, reason = _ingest_of(store, second)
+    assert status == "damaged"
+    assert reason == f"its files disagree about the ingest (ingest: ingests/{second}.json and {rel})"

@@ -104,7 +104,7 @@ def repair(store: Store, apply: bool = False, rebuild_manifest: bool = False) ->
 
     Holds the store's write lock while it looks and acts (with ``apply``), so no ingest
     commits in between. With ``rebuild_manifest`` a lost or unreadable database is rebuilt
-    from the part files' metadata (:func:`rebuild_manifest`) instead of being replaced by an
+    from the part files' metadata (:func:`rebuild`) instead of being replaced by an
     empty one.
     """
     if rebuild_manifest:

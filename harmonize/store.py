@@ -17,6 +17,13 @@ visible; the next writer removes the files a dead ingest's journal names, and no
 
 Integrity: :meth:`Store.check` verifies every live file against its recorded size and
 checksum and reads it to the end; :mod:`harmonize.repair` takes damaged ingests out.
+
+Layout: only the store knows paths, file names and partitioning (:mod:`harmonize.store_layout`);
+the pipeline hands it Arrow tables (:meth:`Store.write_observations`). Every part file carries
+its ingest's record as key-value metadata, each committed ingest leaves a seal
+(``store/ingests/<ingest_id>.json``) listing its files, and a marker beside the store folder
+(``.store.ingested``) says that ingests committed: a lost database is rebuilt from the files
+(:func:`harmonize.repair.rebuild`), and a deleted store folder is told from an empty study.
 """
 
 from __future__ import annotations
@@ -1035,7 +1042,7 @@ def provenance(record: IngestRecord, files: Sequence[dict[str, object]]) -> dict
     """What every part file of an ingest says about it (:data:`store_layout.METADATA_KEY` metadata).
 
     Versioned by ``version``; enough to rebuild the ingest's manifest rows
-    (:func:`harmonize.repair.rebuild_manifest`): the ``ingests`` row but the counts only the
+    (:func:`harmonize.repair.rebuild`): the ``ingests`` row but the counts only the
     whole set of files knows, the ``ingest_files`` rows (``inputs``) and the twin windows.
     """
     ingest = {

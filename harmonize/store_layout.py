@@ -11,7 +11,7 @@ own ``version`` field (the way GeoParquet versions its ``"geo"`` entry): the con
 versions, the ingest that wrote the file with its provenance (source, input files and their
 sha256, configuration digest, row accounting), and the file's own row count. A file read
 alone says where it came from, and the manifest can be rebuilt from the files
-(:func:`harmonize.repair.rebuild_manifest`).
+(:func:`harmonize.repair.rebuild`).
 """
 
 from __future__ import annotations

@@ -302,6 +302,8 @@ class Store:
                 self._check_version(con)
                 if view:
                     self._define_view(con, temporary=False)
+            if not repairing:
+                self._refresh_marker(con)
             yield con
         finally:
             interrupts.untrack(con)
@@ -379,11 +381,6 @@ class Store:
                 self._define_view(con, temporary=False)
             except StoreError:
                 pass
-        if version < 5 and not self.marker.exists():
-            # the evidence beside the store folder that ingests committed (see :meth:`lost`)
-            last = con.execute("SELECT max(ingest_id) FROM ingests").fetchall()[0][0]
-            if last is not None:
-                self._write_marker(last)
 
     def _parts_gone(self, con: duckdb.DuckDBPyConnection, missing: Sequence[str] | None = None,
                     n_live: int | None = None) -> str | None:
@@ -836,23 +833,59 @@ class Store:
         a store folder deleted later is told apart from a study never ingested."""
         return self.directory.with_name(f".{self.directory.name}.ingested")
 
-    def _write_marker(self, ingest_id: str) -> None:
+    def _folder_identity(self) -> list[int] | None:
+        try:
+            st = os.stat(self.directory.parent)
+        except OSError:
+            return None
+        return [st.st_dev, st.st_ino]
+
+    def _marker_applies(self, doc: dict) -> bool:
+        """Whether a marker was written for this folder: the folder holding it has the recorded
+        path or the recorded device and inode (it was moved). A copy of the study made without
+        its store folder has neither: it is a new, empty study."""
+        return (doc.get("folder") == str(self.directory.parent)
+                or (doc.get("folder_id") is not None and doc.get("folder_id") == self._folder_identity()))
+
+    def _refresh_marker(self, con: duckdb.DuckDBPyConnection) -> None:
+        """Write the marker when it is missing or was written for another folder (a store of an
+        older version, or a study copied with its store) while the store holds ingests."""
+        try:
+            doc = json.loads(self.marker.read_text())
+            if isinstance(doc, dict) and self._marker_applies(doc):
+                return
+        except (OSError, ValueError):
+            pass
+        try:
+            last = con.execute("SELECT max(ingest_id) FROM ingests").fetchall()[0][0]
+        except duckdb.Error:
+            return
+        if last is not None:
+            self._write_marker(last, quiet=True)  # a read-only study folder is no error for a reader
+
+    def _write_marker(self, ingest_id: str, quiet: bool = False) -> None:
         text = json.dumps({"store": self.directory.name, "last_ingest": ingest_id,
-                           "committed_at": pd.Timestamp.now("UTC").isoformat()})
+                           "committed_at": pd.Timestamp.now("UTC").isoformat(),
+                           "folder": str(self.directory.parent), "folder_id": self._folder_identity()})
         tmp = self.marker.with_name(self.marker.name + ".tmp")
         try:
             tmp.write_text(text + "\n")
             os.replace(tmp, self.marker)
         except OSError as exc:  # the commit stands; only the evidence of it outside the store is missing
-            logger.warning("could not write %s (%s); a deleted store folder would look like an empty study",
-                           self.marker, exc.strerror or exc)
+            try:
+                tmp.unlink(missing_ok=True)
+            except OSError:
+                pass
+            log = logger.debug if quiet else logger.warning
+            log("could not write %s (%s); a deleted store folder would look like an empty study",
+                self.marker, exc.strerror or exc)
 
     def lost(self) -> str | None:
         """Why the store is lost (one line), or None: an empty study and a sound store are not lost.
 
         Lost: the database is missing while parquet files remain (:meth:`lost_files`), or the
         database and every parquet file are missing while the marker beside the store folder
-        says ingests were committed (the store folder was deleted). A store whose database
+        says ingests were committed here (the store folder was deleted; a copy of the study made without its store is not lost). A store whose database
         remains but whose parquet files are gone is found by :meth:`check` and refused by
         every reading connection (see :meth:`_define_view`).
         """
@@ -864,9 +897,16 @@ class Store:
             return self._lost_message(files)
         if self.marker.is_file():
             try:
-                last = json.loads(self.marker.read_text()).get("last_ingest", "?")
-            except (OSError, ValueError, AttributeError):
-                last = "?"
+                doc = json.loads(self.marker.read_text())
+                if not isinstance(doc, dict):
+                    raise ValueError("not an object")
+            except (OSError, ValueError):
+                doc = {}
+            if doc and not self._marker_applies(doc):
+                logger.info("%s was written for %s: a copy of the study without its store is an empty study",
+                            self.marker, doc.get("folder"))
+                return None
+            last = doc.get("last_ingest", "?")
             return (f"the store at {self.directory} is gone (no database, no parquet files), but this study has "
                     f"committed ingests (the last: {last}, recorded in {self.marker.name}); it is a lost store, not "
                     "an empty study: restore the store folder from a backup, or run 'harmonize repair' to see what "

@@ -270,6 +270,8 @@ def test_a_fresh_study_is_empty_not_lost(tmp_path: Path) -> None:
 
 def test_a_deleted_store_folder_is_a_lost_store(study_copy: tuple[Path, list[str]], tmp_path: Path) -> None:
     study_dir, (_, _, third) = study_copy
+    # the copy is used (which writes its own marker: the one it came with names the original folder)
+    assert cli(None, "--study", str(study_dir), "status")[0] == 0
     shutil.rmtree(study_dir / "store")
     for args in READERS:
         args = tuple(str(tmp_path / a) if a == "OUT.csv" else a for a in args)
@@ -391,7 +393,7 @@ def test_an_ingest_without_part_files_is_rebuilt_from_its_seal(tmp_path: Path) -
                            ).fetchall() == before
 
 
-def test_an_older_store_gets_its_marker_when_brought_up_to_date(study_copy: tuple[Path, list[str]]) -> None:
+def test_an_older_store_gets_its_marker_when_opened(study_copy: tuple[Path, list[str]]) -> None:
     # a store of version 4 had no marker: a deleted store folder would have looked empty
     study_dir, ids = study_copy
     store = Store(study_dir / "store")
@@ -399,8 +401,9 @@ def test_an_older_store_gets_its_marker_when_brought_up_to_date(study_copy: tupl
     con = duckdb.connect(str(store.db_path))
     con.execute("UPDATE store_meta SET value = '4' WHERE key = 'store_version'")
     con.close()
-    assert store.upgrade() and store.store_version() == 5
+    store.ingests()  # any command that reads the store
     assert json.loads(store.marker.read_text())["last_ingest"] == max(ids)
+    assert store.upgrade() and store.store_version() == 5
 
 
 @pytest.mark.parametrize(("change", "expected"), [
@@ -444,3 +447,22 @@ def test_a_part_disagreeing_with_its_seal_damages_its_ingest(study_copy: tuple[P
     status, reason = _ingest_of(store, second)
     assert status == "damaged"
     assert reason == f"its files disagree about the ingest (ingest: ingests/{second}.json and {rel})"
+
+
+def test_a_copy_of_the_study_without_its_store_is_empty_not_lost(study_copy: tuple[Path, list[str]],
+                                                                 tmp_path: Path) -> None:
+    # the marker travels with the copy, but names another folder: the copy is a new study
+    study_dir, _ = study_copy
+    copy = tmp_path / "copy"
+    shutil.copytree(study_dir, copy, ignore=shutil.ignore_patterns("store"))
+    assert (copy / ".store.ingested").is_file()
+    code, out, _ = cli(None, "--study", str(copy), "status", "--check")
+    assert code == 0 and "nothing ingested yet" in out
+    _ingest(copy)
+    # a study in use, moved (renamed) and then its store deleted, is still a lost store
+    assert cli(None, "--study", str(study_dir), "status")[0] == 0
+    moved = tmp_path / "moved"
+    study_dir.rename(moved)
+    shutil.rmtree(moved / "store")
+    code, out, _ = cli(None, "--study", str(moved), "status", "--check")
+    assert code == 1 and "is gone" in out

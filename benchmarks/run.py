@@ -213,6 +213,7 @@ def bench_ingest(sizes: list[int], work: Path, dask: bool = False,
                "harmonize": measure("harmonize", folder, "bench_pings", "duckdb", path)}
         if dask:
             shutil.rmtree(folder / "store", ignore_errors=True)
+            (folder / ".store.ingested").unlink(missing_ok=True)  # removed on purpose, not lost
             res["harmonize_dask"] = measure("harmonize", folder, "bench_pings", "dask", path)
         rows.append(res)
         _print_ingest_row(res)

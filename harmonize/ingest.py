@@ -6,11 +6,8 @@ import dataclasses
 import hashlib
 import json
 import logging
-import queue
-import re
-import threading
 import uuid
-from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -247,22 +244,25 @@ def store_output(
         return result
 
     store = Store(study.store_dir)
+    files = [{"role": f.role, "file_name": f.path.name, "file_sha256": f.sha256, "rows_read": f.rows_read,
+              "rows_accepted": f.rows_accepted, "rows_quarantined": f.rows_quarantined} for f in out.files]
+    main_file = next(f for f in out.files if f.path == main)
+    record = IngestRecord(
+        ingest_id=ingest_id, source_id=profile.source_id, source_kind=kind,
+        provider_type=profile.provider_type, file_name=main_name, file_sha256=main_file.sha256,
+        inputs_sha256=inputs_sha, config_sha256=config_sha, started_at=started,
+        finished_at=started, rows_read=result.rows_read,
+        rows_accepted=result.rows_accepted, rows_quarantined=result.rows_quarantined,
+        records_written=0, records_zero_filled=0,
+        profile_file=profile.path.name, duplicates=twin_settings(profile) if _finds_twins(kind) else None,
+        file_path=main_path,
+    )
     staged = store.staging_dir(ingest_id)
     try:
-        result.records_written, result.records_zero_filled = write_blocks(blocks, staged / "parts")
-        files = [{"role": f.role, "file_name": f.path.name, "file_sha256": f.sha256, "rows_read": f.rows_read,
-                  "rows_accepted": f.rows_accepted, "rows_quarantined": f.rows_quarantined} for f in out.files]
-        main_file = next(f for f in out.files if f.path == main)
-        record = IngestRecord(
-            ingest_id=ingest_id, source_id=profile.source_id, source_kind=kind,
-            provider_type=profile.provider_type, file_name=main_name, file_sha256=main_file.sha256,
-            inputs_sha256=inputs_sha, config_sha256=config_sha, started_at=started,
-            finished_at=pd.Timestamp.now("UTC").tz_localize(None), rows_read=result.rows_read,
-            rows_accepted=result.rows_accepted, rows_quarantined=result.rows_quarantined,
-            records_written=result.records_written, records_zero_filled=result.records_zero_filled,
-            profile_file=profile.path.name, duplicates=twin_settings(profile) if _finds_twins(kind) else None,
-            file_path=main_path,
-        )
+        # the store decides where and how the rows are written; each file carries the record
+        result.records_written, result.records_zero_filled = store.write_observations(staged, blocks, record, files)
+        record.records_written, record.records_zero_filled = result.records_written, result.records_zero_filled
+        record.finished_at = pd.Timestamp.now("UTC").tz_localize(None)
 
         def on_conflict(previous: pd.DataFrame) -> list[str]:
             same = previous[(previous["inputs_sha256"] == inputs_sha) & (previous["config_sha256"] == config_sha)]
@@ -682,94 +682,5 @@ def _main_file(out: AdapterOutput) -> Path:
     return out.files[0].path
 
 
-_PLAIN_PARTITION = re.compile(r"[A-Za-z0-9_.-]+")
-
-
-def write_partitions(table: pa.Table, folder: Path) -> None:
-    """Write observation rows as hive-partitioned zstd parquet under ``folder``.
-
-    Rows are sorted by source_kind, season_year, event_start, event_id. Only the sort keys
-    and a row index go through DuckDB's sort; the rows are then taken in that order by
-    Arrow and each partition, a contiguous slice, is copied to its own file. Sorting the
-    whole rows inside a partitioned COPY held about 3.5x the table in memory (BENCHMARKS.md).
-    """
-    if table.num_rows == 0:
-        return
-    con = duckdb.connect()
-    try:
-        keys = pa.table({"i": np.arange(table.num_rows, dtype=np.int64), "k": table["source_kind"],
-                         "y": table["season_year"], "t": table["event_start"], "e": table["event_id"]})
-        con.register("sort_keys", keys)
-        parts = con.execute("SELECT k, y, count(*) FROM sort_keys GROUP BY ALL ORDER BY k, y").fetchall()
-        if not all(k is not None and _PLAIN_PARTITION.fullmatch(k) for k, _, _ in parts):
-            _write_partitions_sorted_in_copy(con, table, folder)
-            return
-        order = con.sql("SELECT i FROM sort_keys ORDER BY k, y, t, e, i").to_arrow_table()["i"]
-        con.unregister("sort_keys")
-        del keys
-        in_order = np.array_equal(order.to_numpy(), np.arange(table.num_rows))
-        ordered = table if in_order else table.take(order)
-        offset = 0
-        for kind, year, n in parts:
-            target = folder / f"source_kind={kind}" / f"season_year={'__HIVE_DEFAULT_PARTITION__' if year is None else year}"
-            target.mkdir(parents=True, exist_ok=True)
-            con.register("part", ordered.slice(offset, n).drop_columns(["source_kind", "season_year"]))
-            name = str(target / f"part-{uuid.uuid4()}.parquet").replace("'", "''")
-            con.execute(f"COPY part TO '{name}' (FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 500000)")
-            con.unregister("part")
-            offset += n
-    finally:
-        con.close()
-
-
 def _zero_filled(block: pa.Table) -> int:
     return int(pa.compute.sum(block["zero_filled"]).as_py() or 0)
-
-
-def write_blocks(blocks: Iterable[pa.Table], folder: Path) -> tuple[int, int]:
-    """Write blocks of observation rows with :func:`write_partitions`, on a writer thread.
-
-    The next block is made while the last one is written (both mostly in DuckDB, outside
-    the GIL); at most two blocks wait at once. Each block becomes its own file(s) in its
-    partition(s). Returns (rows written, zero-filled rows written). An error of either side
-    is raised here.
-    """
-    waiting: queue.Queue[pa.Table | None] = queue.Queue(maxsize=1)
-    errors: list[BaseException] = []
-
-    def writer() -> None:
-        while (block := waiting.get()) is not None:
-            if not errors:  # after an error, drain without writing
-                try:
-                    write_partitions(block, folder)
-                except BaseException as exc:  # noqa: BLE001  (re-raised by the caller below)
-                    errors.append(exc)
-
-    thread = threading.Thread(target=writer, name="harmonize-writer", daemon=True)
-    thread.start()
-    rows = zeros = 0
-    try:
-        for block in blocks:
-            if errors:
-                break
-            rows += block.num_rows
-            zeros += _zero_filled(block)
-            waiting.put(block)
-            del block
-    finally:
-        waiting.put(None)
-        thread.join()
-    if errors:
-        raise errors[0]
-    return rows, zeros
-
-
-def _write_partitions_sorted_in_copy(con: duckdb.DuckDBPyConnection, table: pa.Table, folder: Path) -> None:
-    """DuckDB's own partitioned COPY, for partition values that need escaping in paths."""
-    con.register("obs", table)
-    target = str(folder).replace("'", "''")
-    con.execute(
-        f"""COPY (SELECT * FROM obs ORDER BY source_kind, season_year, event_start, event_id)
-            TO '{target}' (FORMAT parquet, PARTITION_BY (source_kind, season_year),
-            COMPRESSION zstd, ROW_GROUP_SIZE 500000, FILENAME_PATTERN 'part-{{uuid}}')"""
-    )

@@ -18,6 +18,7 @@ the variable, bad_time for undecodable time steps), counted in bulk.
 from __future__ import annotations
 
 import math
+import time
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -65,6 +66,10 @@ from harmonize.tagging import NEAR_BOTTOM, Grid, inside_domain, normalise_lon
 SURFACE = "surface"
 LAYER_MODES = (SURFACE, NEAR_BOTTOM, "by_layer")
 DEFAULT_CHUNK_MB = 128
+#: Seconds allowed for reading one gridded file ([aggregate] max_seconds_per_file). A 2.7 GB
+#: file of 1.4 billion values read in 156 s on 2 cores (docs/sources/gridded.md); ten minutes
+#: leaves room for that four times over and still stops a hostile or broken file.
+DEFAULT_MAX_SECONDS_PER_FILE = 600.0
 #: Working bytes per grid value in a block: stored value, float64 copy, masks, bin keys, weights.
 _BYTES_PER_VALUE = 48
 #: Pixels of a block whose values the unit sanity check (its median) looks at.
@@ -94,6 +99,7 @@ class GriddedSettings:
     layer: str = SURFACE
     chunk_mb: float = DEFAULT_CHUNK_MB
     coordinates: Mapping[str, str] = field(default_factory=dict)
+    max_seconds_per_file: float = DEFAULT_MAX_SECONDS_PER_FILE
 
     @classmethod
     def from_profile(cls, profile: Profile) -> GriddedSettings:
@@ -144,10 +150,10 @@ class GriddedSettings:
             raise ConfigError(profile.path, "[variables]",
                               f"several file variables map to '{twice[0]}'; use one profile per product")
         agg = profile.section("aggregate")
-        unknown = sorted(set(agg) - {"period", "layer", "chunk_mb"})
+        unknown = sorted(set(agg) - {"period", "layer", "chunk_mb", "max_seconds_per_file"})
         if unknown:
             raise ConfigError(profile.path, f"aggregate.{unknown[0]}",
-                              "unknown key; expected period, layer and optionally chunk_mb")
+                              "unknown key; expected period, layer and optionally chunk_mb, max_seconds_per_file")
         period = agg.get("period", "month")
         if period not in PERIODS:
             raise ConfigError(profile.path, "aggregate.period",
@@ -159,7 +165,12 @@ class GriddedSettings:
         chunk_mb = agg.get("chunk_mb", DEFAULT_CHUNK_MB)
         if isinstance(chunk_mb, bool) or not isinstance(chunk_mb, int | float) or not chunk_mb > 0:
             raise ConfigError(profile.path, "aggregate.chunk_mb", f"expected a number of megabytes above 0, got {chunk_mb!r}")
-        return cls(tuple(mappings), period, layer, float(chunk_mb), dict(profile.column_map("rows")))
+        seconds = agg.get("max_seconds_per_file", DEFAULT_MAX_SECONDS_PER_FILE)
+        if isinstance(seconds, bool) or not isinstance(seconds, int | float) or not 0 < seconds < math.inf:
+            raise ConfigError(profile.path, "aggregate.max_seconds_per_file",
+                              f"expected a finite number of seconds above 0, got {seconds!r}")
+        return cls(tuple(mappings), period, layer, float(chunk_mb), dict(profile.column_map("rows")),
+                   float(seconds))
 
 
 # ------------------------------------------------------------------ file access
@@ -709,9 +720,32 @@ def _blocks(plan: VariablePlan, chunk_mb: float) -> list[tuple[int, int, int, in
             for t0 in range(0, n_t, steps) for r0 in range(0, ny, rows)]
 
 
+class ReadBudget:
+    """The time allowed for reading one file, checked between blocks (a block is at most
+    ``chunk_mb``; one read of the netCDF library cannot be stopped half-way)."""
+
+    def __init__(self, seconds: float, path: Path) -> None:
+        self.seconds = seconds
+        self.path = path
+        self.started = time.monotonic()
+
+    def check(self, what: str) -> None:
+        """Raise InputFileError when the budget is spent; ``what`` says how far the reading got."""
+        spent = time.monotonic() - self.started
+        if spent > self.seconds:
+            raise InputFileError(
+                self.path, f"reading stopped after {spent:.1f} s, over the time budget of {self.seconds:g} s per file "
+                f"([aggregate] max_seconds_per_file), {what}; nothing of this file was written: raise the "
+                "budget for files this big, or split the file")
+
+
 def reduce_variable(ds: xr.Dataset, plan: VariablePlan, chunk_mb: float, path: Path,
-                    progress: ProgressCallback | None = None) -> tuple[pd.DataFrame, MaskCounts]:
-    """Read one variable block by block; per-(period, layer, cell) sums and the mask counts."""
+                    progress: ProgressCallback | None = None,
+                    budget: ReadBudget | None = None) -> tuple[pd.DataFrame, MaskCounts]:
+    """Read one variable block by block; per-(period, layer, cell) sums and the mask counts.
+
+    With ``budget``, the time spent on the file is checked before each block.
+    """
     geo = plan.geometry
     counts = MaskCounts()
     n_t = int(plan.time.year.size)
@@ -730,6 +764,8 @@ def reduce_variable(ds: xr.Dataset, plan: VariablePlan, chunk_mb: float, path: P
     blocks = _blocks(plan, chunk_mb)
     order = [plan.t_dim] + ([plan.z_dim] if plan.z_dim else []) + [geo.y_dim, geo.x_dim]
     for i, (t0, t1, r0, r1) in enumerate(blocks):
+        if budget is not None:
+            budget.check(f"with {i:,} of {len(blocks):,} blocks of '{name}' read")
         sel = (inside_row >= r0) & (inside_row < r1)
         if not sel.any():
             continue
@@ -913,6 +949,10 @@ class GriddedAdapter(Adapter):
             "layer": text("Layer mode of 3-D fields.", enum=("surface", "near_bottom", "by_layer"),
                           default="surface"),
             "chunk_mb": number("Block size read at a time (MB).", exclusive_minimum=0),
+            "max_seconds_per_file": number(
+                "Time budget for reading one file (seconds); a file that takes longer is stopped with a "
+                "one-line error and nothing of it is written.", exclusive_minimum=0,
+                default=DEFAULT_MAX_SECONDS_PER_FILE),
         }, "How grid values are aggregated."),
     }
     profile_example = """\
@@ -938,12 +978,14 @@ class GriddedAdapter(Adapter):
         sha = file_sha256(path) if path.is_file() else ""
         events, values, masked, notes = [], [], [], []
         total = used = quarantined = 0
+        budget = ReadBudget(settings.max_seconds_per_file, path)
         with open_netcdf(path) as ds:
             geometries: dict[tuple, PixelGeometry] = {}
             plans = [plan_variable(ds, m, settings, study, grid, path, profile, geometries)
                      for m in settings.variables]
             for plan in plans:
-                sums, counts = reduce_variable(ds, plan, settings.chunk_mb, path, progress)
+                budget.check(f"before reading '{plan.mapping.file_name}'")
+                sums, counts = reduce_variable(ds, plan, settings.chunk_mb, path, progress, budget)
                 name = plan.mapping.file_name
                 if counts.used + counts.masked != plan.n_values:
                     raise RuntimeError(f"internal accounting error for '{name}': {counts} vs {plan.n_values} values")

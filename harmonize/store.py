@@ -431,10 +431,6 @@ class Store:
             paths = self._live_paths(con)
         except duckdb.CatalogException:
             paths = []
-        if any(ch in str(self.directory) for ch in _GLOB_CHARACTERS):
-            # DuckDB cannot search a folder whose name holds glob characters: such a store's
-            # views name their files by absolute path (they read only where the study is)
-            paths = [str(self.directory / p) for p in paths]
         cols = observation_sql_columns()
         present: set[str] = set()
         if paths:
@@ -1115,10 +1111,6 @@ def provenance(record: IngestRecord, files: Sequence[dict[str, object]]) -> dict
         "twin_settings": None if twin is None else {"distance_km": twin.distance_km, "minutes": twin.minutes,
                                                     "rank": twin.rank},
     }
-
-
-#: characters DuckDB reads as a pattern in a file search path
-_GLOB_CHARACTERS = frozenset("*?[]{}")
 
 
 def _parquet_source(paths: Sequence[str]) -> str:

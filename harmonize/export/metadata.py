@@ -109,6 +109,7 @@ FIXED_UNITS: dict[str, str] = {
     "n_vessels": "1", "n_values": "1", "count_observed": "1", "subsample_fraction": "1",
     "log_effort": "1", "events": "1", "share_zero": "1", "suppressed_events": "1",
     "year": "1", "season_year": "1", "source_row": "1",
+    "cell_lon": "degrees_east", "cell_lat": "degrees_north", "cell_x_m": "m", "cell_y_m": "m",
 }
 #: Exported numeric columns whose unit is given on each row by another column.
 UNIT_COLUMNS: dict[str, str] = {

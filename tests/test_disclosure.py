@@ -225,7 +225,7 @@ def _event_positions(public_files: list[Path]) -> dict[str, pd.DataFrame]:
     for name in ("long.csv", "wide.csv"):
         frame = pd.read_csv(by[name], dtype={"event_id": str, "cell_id": str})
         out[name] = frame[["source_id", "event_id", "lat", "lon", "cell_id"]]
-    points = pyogrio.read_dataframe(by["layers.gpkg"], layer="events")
+    points = pyogrio.read_dataframe(by["layers.gpkg"], layer="samples")
     out["gpkg events"] = pd.DataFrame({"source_id": points["source_id"], "event_id": points["event_id"],
                                        "lat": points.geometry.y, "lon": points.geometry.x,
                                        "cell_id": points["cell_id"]})

@@ -27,7 +27,7 @@ from harmonize.export import FORMATS
 ExportFormat = Literal[FORMATS]  # type: ignore[valid-type]
 Quantity = Literal["count", "biomass"]
 
-_UNITS = {"long": "observation rows", "wide": "events", "grid": "rows", "gpkg": "event points",
+_UNITS = {"long": "observation rows", "wide": "events", "grid": "rows", "gpkg": "sample points",
           "dwca": "events"}
 #: The file written when OUT is '-' (then streamed to stdout): CSV for the tables.
 _STDOUT_NAME = {"long": "export.csv", "wide": "export.csv", "grid": "export.csv", "gpkg": "export.gpkg",

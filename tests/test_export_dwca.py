@@ -310,3 +310,18 @@ def test_an_independent_reader_opens_the_archive(archive: tuple[Path, ExportStor
         # every extension row belongs to a core row the reader found
         totals = sum(len(dwca.pd_read(ext.file_location)) for ext in dwca.descriptor.extensions)
         assert n_ext == totals > 0
+
+
+def test_cli_with_effort_and_gpkg_version(archive: tuple[Path, ExportStore], tmp_path: Path) -> None:
+    from cli_runner import run_cli
+
+    study_dir = str(archive[0].parent / "study")
+    done = run_cli("--study", study_dir, "export", "dwca", str(tmp_path / "e.zip"), "--with-effort")
+    assert done.exit_code == 0, done.stderr
+    assert "fleet_effort:E1" in {r["eventID"] for r in _tables(tmp_path / "e.zip")["event.txt"]}
+    done = run_cli("--study", study_dir, "export", "long", str(tmp_path / "l.csv"), "--with-effort")
+    assert done.exit_code == 2 and "--with-effort applies to the dwca format only" in done.stderr
+    done = run_cli("--study", study_dir, "export", "gpkg", str(tmp_path / "g.gpkg"), "--gpkg-version", "1.2")
+    assert done.exit_code == 0, done.stderr
+    done = run_cli("--study", study_dir, "export", "dwca", str(tmp_path / "x.zip"), "--gpkg-version", "1.2")
+    assert done.exit_code == 2 and "--gpkg-version applies to the gpkg format only" in done.stderr

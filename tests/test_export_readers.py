@@ -98,7 +98,7 @@ def _check_geoparquet(path: Path, lon: str, lat: str) -> None:
     # reader 2: DuckDB reads the column as a geometry in OGC:CRS84, one per placed row
     with duckdb.connect() as con:
         kind, n, text = con.execute(
-            f"""SELECT any_value(typeof(geometry)), count(geometry), count(ST_AsText(geometry))
+            """SELECT any_value(typeof(geometry)), count(geometry), count(ST_AsText(geometry))
                 FROM read_parquet(?)""", [str(path)]).fetchall()[0]
     assert kind.startswith("GEOMETRY") and "CRS84" in kind and n == text == len(placed)
     # reader 3: the WKB bytes as pyarrow reads them, decoded here by the Simple Features layout

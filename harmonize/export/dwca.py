@@ -252,8 +252,7 @@ def _select(columns: Sequence[Column]) -> str:
 
 
 def _events_sql(study: Study, generalise_deg: float, with_effort: bool = False) -> str:
-    effort_kinds = registered_kinds(is_fishing_effort=True) if with_effort else ()
-    kinds = ", ".join(sql_text(k) for k in (*sample_kinds(), *effort_kinds))
+    kinds = ", ".join(sql_text(k) for k in _archive_kinds(with_effort))
     sampled = "variable_kind = 'taxon' AND quantity IN ('count', 'biomass')"
     return f"""
         WITH ev AS (
@@ -414,7 +413,7 @@ def export_dwca(study: Study, out: str | Path, filters: ExportFilters | None = N
         options = {"generalise_deg": generalise_deg, "with_effort": with_effort, "files": {FILES[k]: v for k, v in written.items()}, **facts}
         meta = provenance(con, study, "dwca", filters, counts, options, notes)
         (folder / "meta.xml").write_bytes(meta_xml())
-        (folder / "eml.xml").write_bytes(eml_xml(study, meta, con))
+        (folder / "eml.xml").write_bytes(eml_xml(study, meta, con, _archive_kinds(with_effort)))
         staging = folder / "archive.zip"
         with zipfile.ZipFile(staging, "w", compression=zipfile.ZIP_DEFLATED) as zf:
             for member in ("meta.xml", "eml.xml", *FILES.values()):
@@ -461,12 +460,18 @@ def meta_xml() -> bytes:
     return ET.tostring(root, encoding="utf-8", xml_declaration=True)
 
 
-def eml_xml(study: Study, meta: dict[str, Any], con: Any) -> bytes:
+def _archive_kinds(with_effort: bool) -> tuple[str, ...]:
+    """The source kinds whose events are Event rows of the archive."""
+    return (*sample_kinds(), *(registered_kinds(is_fishing_effort=True) if with_effort else ()))
+
+
+def eml_xml(study: Study, meta: dict[str, Any], con: Any, kinds: Sequence[str] | None = None) -> bytes:
     """A minimal EML 2.2.0 document: title, coverage, methods, caution and harmonize provenance."""
     ET.register_namespace("eml", EML_NS)
+    listed = ", ".join(sql_text(k) for k in (kinds or _archive_kinds(True)))
     extent = con.execute(
         f"""SELECT min(lon), max(lon), min(lat), max(lat), min(event_start)::DATE, max(event_start)::DATE
-            FROM {BASE_VIEW} WHERE source_kind <> 'gridded'""").fetchall()[0]
+            FROM {BASE_VIEW} WHERE source_kind IN ({listed})""").fetchall()[0]
     root = ET.Element(f"{{{EML_NS}}}eml", {
         "packageId": f"harmonize-{_slug(study.name)}-{meta['generated_at']}", "system": "harmonize",
         "{http://www.w3.org/XML/1998/namespace}lang": "en"})

@@ -17,8 +17,8 @@ from harmonize.export.dwca import export_dwca, read_archive_table
 from harmonize.export.metadata import read_export_metadata
 
 # TDWG Darwin Core quick reference, recommended terms (Darwin Core Maintenance Group,
-# "Darwin Core List of Terms", vocabulary/term_versions.csv), shipped in the shared references.
-REFERENCE = Path("/work/shared/reference/darwin_core_terms.csv")
+# "Darwin Core List of Terms", vocabulary/term_versions.csv; CC BY 4.0), kept in fixtures/reference.
+REFERENCE = Path(__file__).resolve().parent.parent / "fixtures" / "reference" / "darwin_core_terms.csv"
 TEXT = "{http://rs.tdwg.org/dwc/text/}"
 # The two terms of the OBIS Extended Measurement or Fact extension that Darwin Core lacks (OBIS
 # Manual, "Extended MeasurementOrFact extension"; namespace http://rs.iobis.org/obis/terms/).
@@ -38,8 +38,6 @@ def archive(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, ExportStore
 
 
 def _recommended_iris() -> set[str]:
-    if not REFERENCE.is_file():
-        pytest.skip("the shared Darwin Core reference list is not available here")
     with REFERENCE.open(encoding="utf-8") as fh:
         return {row["iri"] for row in csv.DictReader(fh)}
 

@@ -45,10 +45,10 @@ pytestmark = pytest.mark.slow
 
 #: ISO 8601 UTC instant as harmonize writes it (seconds, an optional fraction, "Z")
 ISO_Z = r"^\d{4}-\d\d-\d\dT\d\d:\d\d:\d\d(\.\d+)?Z$"
-# Darwin Core terms: TDWG "Darwin Core List of Terms" (vocabulary/term_versions.csv, recommended),
-# shipped in the shared references; and the two OBIS eMoF terms (OBIS Manual, Extended
+# Darwin Core terms: TDWG "Darwin Core List of Terms" (vocabulary/term_versions.csv, recommended;
+# CC BY 4.0), kept in fixtures/reference; and the two OBIS eMoF terms (OBIS Manual, Extended
 # MeasurementOrFact extension).
-DWC_TERMS = Path("/work/shared/reference/darwin_core_terms.csv")
+DWC_TERMS = Path(__file__).resolve().parent.parent / "fixtures" / "reference" / "darwin_core_terms.csv"
 OBIS_TERMS = {"http://rs.iobis.org/obis/terms/measurementTypeID", "http://rs.iobis.org/obis/terms/measurementUnitID"}
 UTC = pa.timestamp("us", tz="UTC")
 

@@ -27,7 +27,8 @@ BIN = Path(sys.executable).parent / "harmonize"
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 #: kills per format: 2 in CI, 8 with HYPOTHESIS_PROFILE=dev
 KILLS = 8 if os.environ.get("HYPOTHESIS_PROFILE") == "dev" else 2
-GPKG_LAYERS = {"events", "cells", "cell_coverage", "export_metadata"}
+GPKG_LAYERS = {"domain", "strata", "samples", "gridded_cells", "fishing_cells", "cells", "cell_coverage",
+               "export_metadata"}
 
 
 @pytest.fixture(scope="module")
@@ -55,7 +56,7 @@ def _rows(path: Path) -> int:
     if suffix == ".gpkg":
         layers = {name for name, _ in pyogrio.list_layers(path)}
         assert layers == GPKG_LAYERS, layers
-        return len(pyogrio.read_dataframe(path, layer="events"))
+        return len(pyogrio.read_dataframe(path, layer="samples"))
     with zipfile.ZipFile(path) as zf:
         assert zf.testzip() is None
         names = set(zf.namelist())

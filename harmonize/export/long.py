@@ -19,6 +19,7 @@ import pyarrow as pa
 from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
 from harmonize.export.atomic import all_or_nothing
+from harmonize.export.geo import GEOMETRY_COLUMN, point_sql
 from harmonize.export.metadata import (
     ExportResult,
     describe_columns,
@@ -50,7 +51,8 @@ def _column(name: str) -> str:
     return f'"flags" AS "{ROW_FLAGS}"' if name == ROW_FLAGS else quoted
 
 
-def long_query(columns: list[str] | None = None, limit: int | None = None, ordered: bool = True) -> str:
+def long_query(columns: list[str] | None = None, limit: int | None = None, ordered: bool = True,
+               geometry: bool = False) -> str:
     """SELECT over ``export_base`` (optionally some columns, a row limit).
 
     The store's ``flags`` column comes out as ``row_flags`` (:data:`ROW_FLAGS`); asking for
@@ -58,9 +60,12 @@ def long_query(columns: list[str] | None = None, limit: int | None = None, order
 
     ``ordered`` sorts by source, time and event; file exports skip the sort (costly at
     tens of millions of rows) and keep the store's order: by source kind and season year,
-    then by time and event within each stored file.
+    then by time and event within each stored file. ``geometry`` adds the GeoParquet point of
+    the row's (already disclosed) lon/lat.
     """
     cols = ", ".join(_column(c) for c in columns) if columns else f'* RENAME ("flags" AS "{ROW_FLAGS}")'
+    if geometry:
+        cols += f", {point_sql('lon', 'lat')} AS {GEOMETRY_COLUMN}"
     sql = f"SELECT {cols} FROM {BASE_VIEW}" + (f" ORDER BY {ORDER}" if ordered else "")
     return sql + (f" LIMIT {int(limit)}" if limit is not None else "")
 
@@ -114,7 +119,9 @@ def export_long(study: Study, out: str | Path, filters: ExportFilters | None = N
                 disclosure: Disclosure | None = None) -> ExportResult:
     """Write the long table to ``out``: parquet (zstd) or CSV by the file's suffix.
 
-    The parquet file carries its provenance as key-value metadata (key ``harmonize``); a CSV
+    The parquet file is GeoParquet (a ``geometry`` point at each row's lon/lat, with the
+    ``geo`` metadata; :mod:`harmonize.export.geo`) and carries its provenance as key-value
+    metadata (key ``harmonize``); a CSV
     file gets a sidecar ``<name>-metadata.json`` and has every text cell guarded against
     formula injection (lists such as ``row_flags`` are joined with ``|``).
     """
@@ -129,9 +136,10 @@ def export_long(study: Study, out: str | Path, filters: ExportFilters | None = N
         files = [path]
         if path.suffix.lower() == ".parquet":
             target = str(path).replace("'", "''")
-            con.execute(f"COPY ({long_query(ordered=False)}) TO '{target}' "
+            query = long_query(ordered=False, geometry=True)
+            con.execute(f"COPY ({query}) TO '{target}' "
                         f"(FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 500000, "
-                        f"{kv_metadata_sql(meta, con, long_query(ordered=False))})")
+                        f"{kv_metadata_sql(meta, con, query)})")
         else:
             columns, _rows = copy_safe_csv(con, long_query(ordered=False), path)
             files.append(write_sidecar(path, meta, columns))

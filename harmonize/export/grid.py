@@ -119,9 +119,10 @@ def export_grid(study: Study, out: str | Path, filters: ExportFilters | None = N
         define_cell_centres(con, study, BASE_VIEW)
         options = {"cell_size_km": study.cell_size_km, "crs": study.crs}
         meta = provenance(con, study, "grid", filters, counts, options, notes)
-        meta["columns"] = describe_columns(query_schema(con, grid_query()))
+        parquet = path.suffix.lower() == ".parquet"
+        meta["columns"] = describe_columns(query_schema(con, grid_query(geometry=parquet)))
         files = [path]
-        if path.suffix.lower() == ".parquet":
+        if parquet:
             target = str(path).replace("'", "''")
             query = grid_query(geometry=True)
             n = con.execute(f"COPY ({query}) TO '{target}' "

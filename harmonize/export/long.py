@@ -132,9 +132,10 @@ def export_long(study: Study, out: str | Path, filters: ExportFilters | None = N
              "log_effort = ln(effort); null where effort is null (presence-only, no-effort values)"]
     with open_selection(study, filters, disclosure) as (con, counts):
         meta = provenance(con, study, "long", filters, counts, notes=notes)
-        meta["columns"] = describe_columns(query_schema(con, long_query(ordered=False)))
+        parquet = path.suffix.lower() == ".parquet"
+        meta["columns"] = describe_columns(query_schema(con, long_query(ordered=False, geometry=parquet)))
         files = [path]
-        if path.suffix.lower() == ".parquet":
+        if parquet:
             target = str(path).replace("'", "''")
             query = long_query(ordered=False, geometry=True)
             con.execute(f"COPY ({query}) TO '{target}' "

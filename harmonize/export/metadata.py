@@ -116,6 +116,7 @@ FIXED_UNITS: dict[str, str] = {
     "area_km2": "km2", "fishing_hours": "h", "n_rows": "1", "ix": "1", "iy": "1", "season_years": "1",
     "first_season_year": "1", "last_season_year": "1",
     "cell_lon": "degrees_east", "cell_lat": "degrees_north", "cell_x_m": "m", "cell_y_m": "m",
+    "cell_periods": "1",
 }
 #: Prefixes of exported count columns named after a source kind (``events_trawl``): unit "1".
 _COUNT_PREFIXES = ("events_",)

@@ -72,7 +72,7 @@ def pandas_trawl(events: Path, records: Path, out: Path) -> int:
     rc["catch_kg"] = pd.to_numeric(rc["catch_kg"], errors="coerce")
     rc["catch_n"] = pd.to_numeric(rc["catch_n"], errors="coerce")
     names = {}
-    for taxon, _group, aliases, _sensitive in TAXA:
+    for taxon, _group, aliases, _sensitive, *_ in TAXA:
         for name in [taxon, *filter(None, aliases.split("|"))]:
             names[name.casefold()] = taxon
     rc["taxon"] = rc["species"].str.strip().str.casefold().map(names)

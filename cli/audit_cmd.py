@@ -77,6 +77,11 @@ def audit_cmd(
         raise HarmonizeError("--fail-on-new needs --since PREVIOUS.json: new findings are those the previous audit did not have")
     study = study_from(ctx, study_dir)
     with status("auditing the store"):
+        from harmonize.export.atomic import refuse_store_target
+
+        for target in (json_out, html_out):
+            if target is not None and not is_stdout(target):
+                refuse_store_target(study, Path(target))  # never onto the store's own files
         result = audit(study, year=year, engine=engine, scheduler=scheduler, since=since)
     _print(result, limit)
     if result.since is not None:

@@ -200,7 +200,10 @@ def write_csv_out(frame: Any, out: Path) -> None:
         sys.stdout.write(buf.getvalue())
         sys.stdout.flush()
     else:
-        write_safe_csv(frame, out)
+        from harmonize.export.atomic import atomic_file
+
+        with atomic_file(out) as tmp:  # all or nothing, like the exports
+            write_safe_csv(frame, tmp)
 
 
 # ------------------------------------------------------------------ logging

@@ -27,7 +27,7 @@ from harmonize.export import FORMATS
 ExportFormat = Literal[FORMATS]  # type: ignore[valid-type]
 Quantity = Literal["count", "biomass"]
 
-_UNITS = {"long": "observation rows", "wide": "events", "grid": "rows", "gpkg": "event points",
+_UNITS = {"long": "observation rows", "wide": "events", "grid": "rows", "gpkg": "sample points",
           "dwca": "events"}
 #: The file written when OUT is '-' (then streamed to stdout): CSV for the tables.
 _STDOUT_NAME = {"long": "export.csv", "wide": "export.csv", "grid": "export.csv", "gpkg": "export.gpkg",
@@ -71,6 +71,13 @@ def export_cmd(
         False, "--consistent-taxa",
         help="long/wide/dwca: roll each taxon up to the finest level recorded the same way in every selected "
              "year and source."),
+    with_effort: bool = typer.Option(
+        False, "--with-effort",
+        help="dwca: also write the public fishing-effort cell-periods as events with their fishing hours."),
+    gpkg_version: str | None = typer.Option(
+        None, "--gpkg-version", metavar="VERSION",
+        help="gpkg: GeoPackage version to write (1.2, 1.3 or 1.4; default 1.4); 1.2 opens without warning "
+             "in older GIS tools."),
     memory_limit: str | None = typer.Option(
         None, "--memory-limit", metavar="SIZE",
         help="wide: DuckDB working memory, e.g. 4GB (default: HARMONIZE_EXPORT_MEMORY_LIMIT, else 2GB)."),
@@ -106,6 +113,14 @@ def export_cmd(
                                   "generalise_deg": generalise_deg}
     if fmt == "wide":
         options.update(quantity=quantity, by_life_stage=by_life_stage, memory_limit=memory_limit)
+    if with_effort and fmt != "dwca":
+        raise typer.BadParameter("--with-effort applies to the dwca format only")
+    if gpkg_version is not None and fmt != "gpkg":
+        raise typer.BadParameter("--gpkg-version applies to the gpkg format only")
+    if fmt == "dwca":
+        options.update(with_effort=with_effort)
+    if fmt == "gpkg" and gpkg_version is not None:
+        options.update(version=gpkg_version)
     if is_stdout(out):
         with tempfile.TemporaryDirectory(prefix="harmonize-export-") as tmp:
             result = export(study, fmt, Path(tmp) / _STDOUT_NAME[fmt], filters, **options)

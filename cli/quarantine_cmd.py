@@ -55,6 +55,10 @@ def quarantine(
     from harmonize.disclosure import Disclosure, public_quarantine_rows
 
     st = study_from(ctx, study)
+    if csv is not None and not is_stdout(csv):
+        from harmonize.export.atomic import refuse_store_target
+
+        refuse_store_target(st, Path(csv))  # never onto the store's own files
     if precise:
         warn_precise(st.min_vessels)
     rows = public_quarantine_rows(st, Disclosure.for_study(st, precise=precise),

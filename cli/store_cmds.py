@@ -49,7 +49,7 @@ def status(
 
     study = study_from(ctx, study_dir)
     store = Store(study.store_dir)
-    if not store.exists() and not store.lost_files():
+    if not store.exists() and store.lost() is None:
         console.print(f"the store of '{study.name}' is empty: nothing ingested yet ('harmonize ingest PROFILE FILES')")
         if as_json:
             emit_json("status", {"study": study.name, "store": str(study.store_dir), "empty": True, "ingests": [],
@@ -135,6 +135,9 @@ def status(
         console.print(t3)
     if check:
         console.print("integrity check passed: manifest, parquet files and row accounting agree")
+        note = store.rebuilt_note()
+        if note:
+            console.print(f"note: {note}", markup=False)
     if as_json:
         emit_json("status", {
             "study": study.name, "store": str(study.store_dir), "empty": False,

@@ -171,7 +171,8 @@ class StudyHandle:
 
         A relative ``out`` is taken from the current folder. ``options`` are the disclosure
         options of :func:`harmonize.export.run.export` (``precise``, ``fishing_aggregate``,
-        ``generalise_deg``) and the format's (``quantity``/``by_life_stage`` for wide).
+        ``generalise_deg``) and the format's (``quantity``/``by_life_stage`` for wide,
+        ``with_effort`` for dwca, ``version`` for gpkg).
         """
         if fmt not in EXPORTERS:
             raise HarmonizeError(f"unknown export format {fmt!r}; choose from {', '.join(EXPORTERS)}")

@@ -113,6 +113,7 @@ _PANDERA_DTYPES = {
     "boolean": None,
     "datetime": None,
     "array": None,
+    "list": None,
 }
 
 
@@ -144,6 +145,33 @@ def observation_columns() -> tuple[FieldSpec, ...]:
 def observation_sql_columns() -> list[tuple[str, str]]:
     """(column, DuckDB type) pairs of the observations table, in contract order."""
     return [(s.name, s.sql_type or "VARCHAR") for s in observation_columns()]
+
+
+#: Columns the long table (export and ``observations()``) adds after the store's columns.
+LONG_EXTRA_FIELDS: tuple[dict[str, Any], ...] = (
+    {"name": "data_generalizations", "type": "string",
+     "description": "What the disclosure rules changed on the row (coordinates rounded, cell withheld); "
+                    "null where nothing was changed."},
+    {"name": "log_effort", "type": "number", "unit": "1",
+     "description": "ln(effort) of effort in effort_unit: the offset of a count or biomass model; null where "
+                    "effort is null or not positive."},
+)
+#: Store column -> its name in the long table (``flags`` collides with ``pandas.DataFrame.flags``).
+LONG_RENAMED: dict[str, str] = {"flags": "row_flags"}
+
+
+def long_table_schema() -> dict[str, Any]:
+    """The Table Schema of the long table as exported (CSV and parquet): the shipped
+    ``observations`` schema with ``flags`` named ``row_flags``, plus :data:`LONG_EXTRA_FIELDS`.
+
+    A Table Schema v2 document (list columns are ``list`` fields with delimiter ``|``, as the
+    CSV writes them); frictionless validates a long CSV against it.
+    """
+    base = table_schema("observations")
+    fields_ = [{**f, "name": LONG_RENAMED.get(f["name"], f["name"])} for f in base["fields"]]
+    fields_ += [dict(f) for f in LONG_EXTRA_FIELDS]
+    return {**{k: v for k, v in base.items() if k not in ("fields", "primaryKey", "name")},
+            "name": "long", "fields": fields_, "primaryKey": list(base.get("primaryKey", []))}
 
 
 def validate_observations(frame: pd.DataFrame) -> None:

@@ -91,12 +91,21 @@ def failure_line(exc: BaseException) -> tuple[str, int] | None:
     """
     import errno
     import re
+    from pathlib import Path
+
+    from harmonize.files import public_name
 
     text = str(exc)
     path = getattr(exc, "filename", None)
     if path is None:
-        quoted = re.search(r'"([^"]+)"', text)
+        # DuckDB names the file in its message, with the quotes escaped when the message is
+        # wrapped in JSON ('Async write failed ...: {"exception_message": "... file \\"x\\" ..."}')
+        quoted = (re.search(r'[Ff]ile \\?"((?:[^"\\]|\\.)+?)\\?"', text)
+                  or re.search(r'"(/[^"]+)"', text))
         path = quoted.group(1) if quoted else None
+    if path:
+        # a file written all or nothing is named by the name it was to have
+        path = str(Path(path).with_name(public_name(Path(path))))
     where = f" at {path}" if path else ""
     code = getattr(exc, "errno", None)
     if code == errno.ENOSPC or "No space left on device" in text:

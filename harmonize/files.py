@@ -6,14 +6,48 @@ import hashlib
 import os
 import re
 import uuid
+from collections.abc import Iterator
+from contextlib import contextmanager
+from contextvars import ContextVar
 from pathlib import Path
 
 #: Bytes read at a time when hashing.
 _BLOCK = 1 << 20
 
 
+#: Digests already taken inside :func:`digests_known` (file identity -> sha256), so that an
+#: ingest reads each input once for its hash, not once per step that records it.
+_KNOWN: ContextVar[dict[tuple[int, ...], str] | None] = ContextVar("harmonize_known_digests", default=None)
+
+
+def _identity(path: str | Path) -> tuple[int, ...]:
+    st = os.stat(path)
+    return (st.st_dev, st.st_ino, st.st_size, st.st_mtime_ns, st.st_ctime_ns)
+
+
+@contextmanager
+def digests_known() -> Iterator[None]:
+    """Within the block, :func:`file_sha256` hashes a file once; a file changed meanwhile
+    (another size, modification or change time) is hashed again."""
+    token = _KNOWN.set({})
+    try:
+        yield
+    finally:
+        _KNOWN.reset(token)
+
+
 def file_sha256(path: str | Path) -> str:
     """The sha256 of a file's bytes, as 64 hex digits (read in 1 MiB blocks)."""
+    known = _KNOWN.get()
+    if known is not None:
+        key = _identity(path)
+        if key not in known:
+            known[key] = _sha256(path)
+        return known[key]
+    return _sha256(path)
+
+
+def _sha256(path: str | Path) -> str:
     digest = hashlib.sha256()
     with open(path, "rb") as fh:
         for block in iter(lambda: fh.read(_BLOCK), b""):

@@ -2,14 +2,12 @@
 
 from __future__ import annotations
 
+import dataclasses
 import hashlib
 import json
 import logging
-import queue
-import re
-import threading
 import uuid
-from collections.abc import Callable, Iterable, Iterator, Mapping, Sequence
+from collections.abc import Callable, Iterator, Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 
@@ -18,14 +16,15 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from harmonize import twin_windows, twins
+from harmonize import parts, twin_windows, twins
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
-from harmonize.adapters.common import codes_in, distinct_present, swapped_position_notes
+from harmonize.adapters.common import codes_in, distinct_present, is_in, swapped_position_notes
 from harmonize.adapters.registry import get_adapter, list_adapters
 from harmonize.clock import utc_naive
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns, validate_observations
 from harmonize.engines import engine_scope
 from harmonize.errors import ConfigError, DuplicateIngestError, HarmonizeError
+from harmonize.files import digests_known
 from harmonize.profile import Profile, find_profile, load_profile, peek_kind
 from harmonize.store import IngestRecord, Store
 from harmonize.study import Study
@@ -139,6 +138,14 @@ def run(
     steps that support it (ping tracks -> fishing hours) on that engine; ``scheduler`` is
     the address of a Dask scheduler (see :mod:`harmonize.engines`). The result is the same.
     """
+    with digests_known():  # each input is read once for its sha256
+        return _run(study, profile, inputs, write=write, replace=replace, progress=progress, engine=engine,
+                    scheduler=scheduler, dry_run=dry_run, notice=notice)
+
+
+def _run(study: Study, profile: str | Path, inputs: Mapping[str, Path], *, write: bool, replace: bool,
+         progress: ProgressCallback | None, engine: str | None, scheduler: str | None, dry_run: bool,
+         notice: Callable[[str], None] | None) -> IngestResult:
     adapter, prof = prepare(study, profile)
     for role, path in inputs.items():
         if not Path(path).is_file():
@@ -192,12 +199,12 @@ def study_path(study: Study, path: str | Path) -> str:
 
 def describe_ingests(previous: pd.DataFrame) -> str:
     """'ingest <id> of <path> (started <time>)', joined, for messages."""
-    parts = []
+    described = []
     for r in previous.itertuples():
         path = r.file_path if isinstance(r.file_path, str) and r.file_path else r.file_name
         started = f" (started {pd.Timestamp(r.started_at):%Y-%m-%d %H:%M} UTC)" if "started_at" in previous else ""
-        parts.append(f"ingest {r.ingest_id} of {path}{started}")
-    return "; ".join(parts)
+        described.append(f"ingest {r.ingest_id} of {path}{started}")
+    return "; ".join(described)
 
 
 def store_output(
@@ -239,24 +246,27 @@ def store_output(
         return result
 
     store = Store(study.store_dir)
+    files = [{"role": f.role, "file_name": f.path.name, "file_sha256": f.sha256, "rows_read": f.rows_read,
+              "rows_accepted": f.rows_accepted, "rows_quarantined": f.rows_quarantined} for f in out.files]
+    main_file = next(f for f in out.files if f.path == main)
+    record = IngestRecord(
+        ingest_id=ingest_id, source_id=profile.source_id, source_kind=kind,
+        provider_type=profile.provider_type, file_name=main_name, file_sha256=main_file.sha256,
+        inputs_sha256=inputs_sha, config_sha256=config_sha, started_at=started,
+        finished_at=started, rows_read=result.rows_read,
+        rows_accepted=result.rows_accepted, rows_quarantined=result.rows_quarantined,
+        records_written=0, records_zero_filled=0,
+        profile_file=profile.path.name,
+        hook_data={twin_windows.HOOK_NAME: twin_windows.twin_settings(profile.section("duplicates"), profile.path)}
+        if _finds_twins(kind) else {},
+        file_path=main_path,
+    )
     staged = store.staging_dir(ingest_id)
     try:
-        result.records_written, result.records_zero_filled = write_blocks(blocks, staged / "parts")
-        files = [{"role": f.role, "file_name": f.path.name, "file_sha256": f.sha256, "rows_read": f.rows_read,
-                  "rows_accepted": f.rows_accepted, "rows_quarantined": f.rows_quarantined} for f in out.files]
-        main_file = next(f for f in out.files if f.path == main)
-        record = IngestRecord(
-            ingest_id=ingest_id, source_id=profile.source_id, source_kind=kind,
-            provider_type=profile.provider_type, file_name=main_name, file_sha256=main_file.sha256,
-            inputs_sha256=inputs_sha, config_sha256=config_sha, started_at=started,
-            finished_at=pd.Timestamp.now("UTC").tz_localize(None), rows_read=result.rows_read,
-            rows_accepted=result.rows_accepted, rows_quarantined=result.rows_quarantined,
-            records_written=result.records_written, records_zero_filled=result.records_zero_filled,
-            profile_file=profile.path.name,
-            hook_data={twin_windows.HOOK_NAME: twin_windows.twin_settings(profile.section("duplicates"), profile.path)}
-            if _finds_twins(kind) else {},
-            file_path=main_path,
-        )
+        # the store decides where and how the rows are written; each file carries the record
+        result.records_written, result.records_zero_filled = store.write_observations(staged, blocks, record, files)
+        record.records_written, record.records_zero_filled = result.records_written, result.records_zero_filled
+        record.finished_at = pd.Timestamp.now("UTC").tz_localize(None)
 
         def on_conflict(previous: pd.DataFrame) -> list[str]:
             same = previous[(previous["inputs_sha256"] == inputs_sha) & (previous["config_sha256"] == config_sha)]
@@ -267,9 +277,22 @@ def store_output(
                 raise DuplicateIngestError(_duplicate_message(previous, main_path))
             return list(previous["ingest_id"])
 
+        edges = templates = None
+        if out.track_edges is not None:
+            # ping files: the pings at the edges of each vessel's part and the rows of their
+            # cell-periods, which the store joins across the files of the source (harmonize.parts)
+            edges = pa.Table.from_pandas(out.track_edges, preserve_index=False)
+            if out.edge_events is not None and len(out.edge_events):
+                templates = assemble(dataclasses.replace(out, events=out.edge_events, values=out.edge_values),
+                                     study, profile, kind, ingest_id)
         superseded = store.commit(record, files, staged, out.quarantine, [], on_conflict, masked=out.masked,
-                                  events_without_values=no_values)
+                                  events_without_values=no_values, track_edges=edges, edge_parts=templates)
         logger.info("ingest %s committed: %d observation rows", ingest_id, result.records_written)
+        if edges is not None and edges.num_rows:
+            with store.connect(read_only=True, view=False) as con:
+                note = parts.overlapping_tracks(con, profile.source_id, ingest_id)
+            if note:
+                result.notes.append(note)
     finally:
         store.discard(staged)
     result.status, result.ingest_id, result.superseded = "complete", ingest_id, superseded
@@ -447,10 +470,14 @@ def assemble_blocks(out: AdapterOutput, study: Study, profile: Profile, kind: st
             "ingest_id": "$1", "source_id": "$2", "source_kind": "$3", "provider_type": "$4", "protocol": "$5",
             # density only for counts and biomass; presence-only and no-effort values carry no effort
             "density": f"CASE WHEN {_HAS_DENSITY} THEN v.value / e.effort END",
-            "density_unit": f"CASE WHEN {_HAS_DENSITY} THEN {density_unit_sql('v.unit', 'e.effort_unit')} END",
+            "density_unit": f"CASE WHEN {_HAS_DENSITY} THEN {_density_unit_expr(con, va_tab, ev_tab)} END",
             "effort": "CASE WHEN v.quantity = 'presence' OR v.no_effort THEN NULL ELSE e.effort END",
             "effort_unit": "CASE WHEN v.quantity = 'presence' OR v.no_effort THEN NULL ELSE e.effort_unit END",
-            "flags": "list_sort(list_distinct(list_concat(e.event_flags, v.value_flags)))",
+            # the usual rows (no flag, or one value flag) skip the list sort: the same lists
+            "flags": "CASE WHEN len(e.event_flags) = 0 AND len(v.value_flags) = 0 THEN v.value_flags "
+                     "WHEN len(e.event_flags) = 0 AND len(v.value_flags) = 1 AND v.value_flags[1] IS NOT NULL "
+                     "THEN v.value_flags "
+                     "ELSE list_sort(list_distinct(list_concat(e.event_flags, v.value_flags))) END",
             "source_file": "$6",
         }
         select = []
@@ -494,6 +521,41 @@ def assemble_blocks(out: AdapterOutput, study: Study, profile: Profile, kind: st
         con.close()
 
 
+#: Most (unit, effort unit) pairs whose density units are written out as a CASE (see :func:`_density_unit_expr`).
+_MAX_UNIT_PAIRS = 64
+
+
+def _density_unit_expr(con: duckdb.DuckDBPyConnection, va_tab: pa.Table, ev_tab: pa.Table) -> str:
+    """SQL for the density unit of ``v.unit`` over ``e.effort_unit``: :func:`harmonize.units.density_unit_sql`
+    evaluated once per distinct pair of the ingest, then looked up per row by a CASE over the pairs.
+
+    Four regular expressions per row were a quarter of the assembling statement's time; the
+    pairs are few (a handful of value units times one or two effort units). Null where
+    either unit is null, as :func:`~harmonize.units.density_unit_sql`.
+    """
+    con.register("unit_values", va_tab.select(["unit"]))
+    con.register("unit_events", ev_tab.select(["effort_unit"]))
+    try:
+        pairs = con.execute(
+            f"SELECT u.unit, f.effort_unit, {density_unit_sql('u.unit', 'f.effort_unit')} "
+            "FROM (SELECT DISTINCT CAST(unit AS VARCHAR) AS unit FROM unit_values WHERE unit IS NOT NULL) u, "
+            "(SELECT DISTINCT effort_unit FROM unit_events WHERE effort_unit IS NOT NULL) f").fetchall()
+    finally:
+        con.unregister("unit_values")
+        con.unregister("unit_events")
+    if len(pairs) > _MAX_UNIT_PAIRS:
+        return density_unit_sql("v.unit", "e.effort_unit")
+    if not pairs:
+        return "CAST(NULL AS VARCHAR)"
+
+    def lit(text: str) -> str:
+        return "'" + text.replace("'", "''") + "'"
+
+    whens = " ".join(f"WHEN v.unit = {lit(u)} AND e.effort_unit = {lit(f)} THEN {lit(d) if d is not None else 'NULL'}"
+                     for u, f, d in pairs)
+    return f"CASE {whens} END"
+
+
 _NO_VALUES_ARROW = pa.schema([
     ("source_id", pa.string()), ("source_kind", pa.string()), ("provider_type", pa.string()),
     ("protocol", pa.string()), ("event_id", pa.string()), ("event_start", pa.timestamp("us")),
@@ -518,7 +580,7 @@ def events_without_values(out: AdapterOutput, study: Study, profile: Profile, ki
     events = out.events
     if events.empty:
         return _NO_VALUES_ARROW.empty_table()
-    lonely = events[~events["event_id"].isin(distinct_present(out.values["event_id"])).to_numpy()]
+    lonely = events[~is_in(events["event_id"], distinct_present(out.values["event_id"]))]
     if lonely.empty:
         return _NO_VALUES_ARROW.empty_table()
     ev = tag_events(lonely, study)  # tags are per event: tagging the few alone gives the same tags
@@ -624,94 +686,5 @@ def _main_file(out: AdapterOutput) -> Path:
     return out.files[0].path
 
 
-_PLAIN_PARTITION = re.compile(r"[A-Za-z0-9_.-]+")
-
-
-def write_partitions(table: pa.Table, folder: Path) -> None:
-    """Write observation rows as hive-partitioned zstd parquet under ``folder``.
-
-    Rows are sorted by source_kind, season_year, event_start, event_id. Only the sort keys
-    and a row index go through DuckDB's sort; the rows are then taken in that order by
-    Arrow and each partition, a contiguous slice, is copied to its own file. Sorting the
-    whole rows inside a partitioned COPY held about 3.5x the table in memory (BENCHMARKS.md).
-    """
-    if table.num_rows == 0:
-        return
-    con = duckdb.connect()
-    try:
-        keys = pa.table({"i": np.arange(table.num_rows, dtype=np.int64), "k": table["source_kind"],
-                         "y": table["season_year"], "t": table["event_start"], "e": table["event_id"]})
-        con.register("sort_keys", keys)
-        parts = con.execute("SELECT k, y, count(*) FROM sort_keys GROUP BY ALL ORDER BY k, y").fetchall()
-        if not all(k is not None and _PLAIN_PARTITION.fullmatch(k) for k, _, _ in parts):
-            _write_partitions_sorted_in_copy(con, table, folder)
-            return
-        order = con.sql("SELECT i FROM sort_keys ORDER BY k, y, t, e, i").to_arrow_table()["i"]
-        con.unregister("sort_keys")
-        del keys
-        in_order = np.array_equal(order.to_numpy(), np.arange(table.num_rows))
-        ordered = table if in_order else table.take(order)
-        offset = 0
-        for kind, year, n in parts:
-            target = folder / f"source_kind={kind}" / f"season_year={'__HIVE_DEFAULT_PARTITION__' if year is None else year}"
-            target.mkdir(parents=True, exist_ok=True)
-            con.register("part", ordered.slice(offset, n).drop_columns(["source_kind", "season_year"]))
-            name = str(target / f"part-{uuid.uuid4()}.parquet").replace("'", "''")
-            con.execute(f"COPY part TO '{name}' (FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 500000)")
-            con.unregister("part")
-            offset += n
-    finally:
-        con.close()
-
-
 def _zero_filled(block: pa.Table) -> int:
     return int(pa.compute.sum(block["zero_filled"]).as_py() or 0)
-
-
-def write_blocks(blocks: Iterable[pa.Table], folder: Path) -> tuple[int, int]:
-    """Write blocks of observation rows with :func:`write_partitions`, on a writer thread.
-
-    The next block is made while the last one is written (both mostly in DuckDB, outside
-    the GIL); at most two blocks wait at once. Each block becomes its own file(s) in its
-    partition(s). Returns (rows written, zero-filled rows written). An error of either side
-    is raised here.
-    """
-    waiting: queue.Queue[pa.Table | None] = queue.Queue(maxsize=1)
-    errors: list[BaseException] = []
-
-    def writer() -> None:
-        while (block := waiting.get()) is not None:
-            if not errors:  # after an error, drain without writing
-                try:
-                    write_partitions(block, folder)
-                except BaseException as exc:  # noqa: BLE001  (re-raised by the caller below)
-                    errors.append(exc)
-
-    thread = threading.Thread(target=writer, name="harmonize-writer", daemon=True)
-    thread.start()
-    rows = zeros = 0
-    try:
-        for block in blocks:
-            if errors:
-                break
-            rows += block.num_rows
-            zeros += _zero_filled(block)
-            waiting.put(block)
-            del block
-    finally:
-        waiting.put(None)
-        thread.join()
-    if errors:
-        raise errors[0]
-    return rows, zeros
-
-
-def _write_partitions_sorted_in_copy(con: duckdb.DuckDBPyConnection, table: pa.Table, folder: Path) -> None:
-    """DuckDB's own partitioned COPY, for partition values that need escaping in paths."""
-    con.register("obs", table)
-    target = str(folder).replace("'", "''")
-    con.execute(
-        f"""COPY (SELECT * FROM obs ORDER BY source_kind, season_year, event_start, event_id)
-            TO '{target}' (FORMAT parquet, PARTITION_BY (source_kind, season_year),
-            COMPRESSION zstd, ROW_GROUP_SIZE 500000, FILENAME_PATTERN 'part-{{uuid}}')"""
-    )

@@ -17,27 +17,37 @@ visible; the next writer removes the files a dead ingest's journal names, and no
 
 Integrity: :meth:`Store.check` verifies every live file against its recorded size and
 checksum and reads it to the end; :mod:`harmonize.repair` takes damaged ingests out.
+
+Layout: only the store knows paths, file names and partitioning (:mod:`harmonize.store_layout`);
+the pipeline hands it Arrow tables (:meth:`Store.write_observations`). Every part file carries
+its ingest's record as key-value metadata, each committed ingest leaves a seal
+(``store/ingests/<ingest_id>.json``) listing its files, and a marker beside the store folder
+(``.store.ingested``) says that ingests committed: a lost database is rebuilt from the files
+(:func:`harmonize.repair.rebuild`), and a deleted store folder is told from an empty study.
 """
 
 from __future__ import annotations
 
+import dataclasses
 import json
+import logging
 import os
 import re
 import shutil
 import time
-from collections.abc import Callable, Iterator, Sequence
+from collections.abc import Callable, Iterable, Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass, field
 from pathlib import Path, PurePosixPath
 from typing import Any
 
 import duckdb
+import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from harmonize import __version__, faults, interrupts, parts, settings, units
+from harmonize import __version__, faults, interrupts, parts, settings, store_layout, units
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns
 from harmonize.errors import StoreBusyError, StoreError
 from harmonize.files import file_digest, fsync_dir, fsync_file
@@ -46,6 +56,11 @@ from harmonize.locks import FileLock, is_free
 DB_NAME = "harmonized.duckdb"
 OBSERVATIONS_DIR = "observations"
 STAGING_DIR = "staging"
+#: Of the store: ``<ingest_id>.json`` per committed ingest (its "seal"), listing every part file
+#: with its rows, sha256 and size: what a manifest rebuild checks the part files against.
+SEALS_DIR = "ingests"
+#: In a staging folder: the ingest's part files, laid out as under ``observations/``.
+PARTS_DIR = "parts"
 #: In a staging folder: the store paths its files are about to be moved to (see Store.commit).
 JOURNAL_NAME = "moving.json"
 #: The OS lock writers take (flock) before they open the database to write.
@@ -61,8 +76,12 @@ LOCK_SUFFIX = ".lock"
 #: 4: event times written as parquet ``timestamp[us, tz=UTC]`` (older files hold UTC wall
 #: clocks: the views read them as UTC) and the persisted views name their files relative to
 #: the store folder (rewritten whenever harmonize opens the store for writing).
-STORE_VERSION = 4
+#: 5: every part file carries ``harmonize`` key-value metadata (harmonize.store_layout; files of
+#: older versions have none and are kept as they are), ``ingests.rebuilt_at`` (set on ingests
+#: whose manifest rows were rebuilt from their part files by ``harmonize repair --rebuild-manifest``).
+STORE_VERSION = 5
 _LOCK_RE = re.compile(r"\(PID (\d+)\)")
+logger = logging.getLogger(__name__)
 
 #: Columns of ``events_without_values``, in table order (see docs/store.md).
 EVENTS_WITHOUT_VALUES_COLUMNS = (
@@ -95,7 +114,8 @@ CREATE TABLE IF NOT EXISTS ingests (
     tool_version VARCHAR,
     profile_file VARCHAR,
     damage_reason VARCHAR,
-    file_path VARCHAR
+    file_path VARCHAR,
+    rebuilt_at TIMESTAMP
 );
 CREATE TABLE IF NOT EXISTS ingest_files (
     ingest_id VARCHAR NOT NULL,
@@ -166,6 +186,7 @@ ALTER TABLE observation_files ADD COLUMN IF NOT EXISTS sha256 VARCHAR;
 ALTER TABLE observation_files ADD COLUMN IF NOT EXISTS size_bytes BIGINT;
 ALTER TABLE ingests ADD COLUMN IF NOT EXISTS damage_reason VARCHAR;
 ALTER TABLE ingests ADD COLUMN IF NOT EXISTS file_path VARCHAR;
+ALTER TABLE ingests ADD COLUMN IF NOT EXISTS rebuilt_at TIMESTAMP;
 """
 
 
@@ -289,9 +310,9 @@ class Store:
         and writing, unless ``repairing`` (see :mod:`harmonize.repair`).
         """
         if not self.exists():
-            lost = self.lost_files()
+            lost = self.lost()
             if lost and not repairing:
-                raise StoreError(self._lost_message(lost))
+                raise StoreError(lost)
             if read_only:
                 raise StoreError(f"no store at {self.directory}; ingest a file first ('harmonize ingest')")
         self.directory.mkdir(parents=True, exist_ok=True)
@@ -321,9 +342,12 @@ class Store:
                     self._define_view(con, temporary=True)
             else:
                 con.execute(_SCHEMA_SQL)
+                parts.ensure_tables(con)
                 self._check_version(con)
                 if view:
                     self._define_view(con, temporary=False)
+            if not repairing:
+                self._refresh_marker(con)
             yield con
         finally:
             interrupts.untrack(con)
@@ -406,6 +430,32 @@ class Store:
         """The parquet files of the complete ingests, relative to the store folder (sorted)."""
         return self._live_paths(con)
 
+    def _parts_gone(self, con: duckdb.DuckDBPyConnection, missing: Sequence[str] | None = None,
+                    n_live: int | None = None) -> str | None:
+        """One line when live parquet files listed in the manifest are missing (None otherwise).
+
+        Without ``missing``, says so only when the ``observations/`` folder is gone while live
+        files are listed (one line instead of one per file; :meth:`_scrub` names single files).
+        """
+        if missing is None:
+            if (self.directory / OBSERVATIONS_DIR).is_dir():
+                return None
+            try:
+                paths = self._live_paths(con)
+            except duckdb.CatalogException:
+                return None
+            missing, n_live = paths, len(paths)
+        if not missing:
+            return None
+        n_ingests = con.execute(
+            "SELECT count(DISTINCT ingest_id) FROM observation_files WHERE path = ANY(?::VARCHAR[])",
+            [list(missing)]).fetchall()[0][0]
+        folder = self.directory / OBSERVATIONS_DIR
+        where = f"{folder} is missing" if not folder.is_dir() else f"e.g. {missing[0]}"
+        return (f"the store's parquet files are gone: {len(missing):,} of the {n_live:,} live file(s) of "
+                f"{n_ingests:,} ingest(s) the manifest lists are missing ({where}); the store is damaged, not "
+                "empty: 'harmonize status --check' names the files, 'harmonize repair' takes their ingests out")
+
     def _live_paths(self, con: duckdb.DuckDBPyConnection) -> list[str]:
         rows = con.execute(
             """SELECT f.path FROM observation_files f JOIN ingests i USING (ingest_id)
@@ -431,6 +481,14 @@ class Store:
         cols = observation_sql_columns()
         present: set[str] = set()
         if paths:
+            missing_files = [p for p in paths if not (self.directory / p).is_file()]
+            if missing_files:
+                raise StoreError(self._parts_gone(con, missing_files, len(paths)) or "")
+            if _GLOB_CHARS.search(str(self.directory)):
+                # DuckDB globs the folders of file_search_path ("glob[1]*{a,b}" finds nothing):
+                # such a store names its files by their full paths, which DuckDB finds as they are
+                # (the views then break when the study folder moves)
+                paths = [str(self.directory / p) for p in paths]
             try:
                 naive = _naive_time_files(con, paths)
             except duckdb.Error:
@@ -468,7 +526,8 @@ class Store:
         # observations_base holds one row per value, the parts of gridded and effort values
         # merged across the live ingests of their source (harmonize.parts)
         con.execute(f"CREATE OR REPLACE {kind} observation_parts AS SELECT {select} FROM {source}")
-        con.execute(f"CREATE OR REPLACE {kind} observations_base AS {parts.merged_sql('observation_parts')}")
+        edges = parts.EDGES_TABLE if has_table(con, parts.EDGES_TABLE) else None
+        con.execute(f"CREATE OR REPLACE {kind} observations_base AS {parts.merged_sql('observation_parts', edges)}")
         self._define_flagged_view(con, temporary)
 
     def _define_flagged_view(self, con: duckdb.DuckDBPyConnection, temporary: bool) -> None:
@@ -525,6 +584,17 @@ class Store:
         self._staging_locks[path] = lock
         return path
 
+    def write_observations(self, staged: Path, blocks: Iterable[pa.Table], record: IngestRecord,
+                           files: Sequence[dict[str, object]]) -> tuple[int, int]:
+        """Write an ingest's observation rows (Arrow tables) into its staging folder.
+
+        The store alone decides the layout (:mod:`harmonize.store_layout`): partition folders,
+        file names, and the key-value metadata each file carries (``record`` and the input
+        ``files``, so that a file read alone says where it came from). Returns (rows written,
+        zero-filled rows written); :meth:`commit` then moves the files into place.
+        """
+        return store_layout.write_blocks(blocks, staged / PARTS_DIR, provenance(record, files))
+
     def commit(
         self,
         record: IngestRecord,
@@ -535,6 +605,8 @@ class Store:
         on_conflict: callable,  # type: ignore[valid-type]
         masked: pd.DataFrame | None = None,
         events_without_values: pa.Table | None = None,
+        track_edges: pa.Table | None = None,
+        edge_parts: pa.Table | None = None,
     ) -> list[str]:
         """Move staged parquet files into place and record the ingest in one transaction.
 
@@ -544,7 +616,8 @@ class Store:
 
         ``events_without_values`` (columns :data:`EVENTS_WITHOUT_VALUES_COLUMNS` but
         ingest_id) are the ingest's accepted events that yield no observation row; they are
-        recorded in the same transaction.
+        recorded in the same transaction; so are ``track_edges``, the pings at the edges of
+        a ping file, and ``edge_parts``, the rows of their cell-periods (harmonize.parts).
         """
         with self.connect(read_only=False) as con:
             self._remove_leftovers(con)
@@ -552,16 +625,18 @@ class Store:
                                       record.inputs_sha256)
             supersede = list(on_conflict(previous))
             moved: list[tuple[str, int, str, int]] = []
-            parts = sorted((staged / "parts").rglob("*.parquet"))
+            parts = sorted((staged / PARTS_DIR).rglob("*.parquet"))
             # the journal: where this ingest's files go, written before the first one moves, so
             # that whoever cleans up after a kill deletes these files and no others
-            journal = [(Path(OBSERVATIONS_DIR) / p.relative_to(staged / "parts")).as_posix() for p in parts]
+            journal = [(Path(OBSERVATIONS_DIR) / p.relative_to(staged / PARTS_DIR)).as_posix() for p in parts]
+            seal_rel = f"{SEALS_DIR}/{record.ingest_id}.json"
+            journal.append(seal_rel)
             (staged / JOURNAL_NAME).write_text(json.dumps(journal))
             fsync_file(staged / JOURNAL_NAME)
             fsync_dir(staged)
             folders: set[Path] = set()
             for part in parts:
-                rel = Path(OBSERVATIONS_DIR) / part.relative_to(staged / "parts")
+                rel = Path(OBSERVATIONS_DIR) / part.relative_to(staged / PARTS_DIR)
                 target = self.directory / rel
                 for folder in (target.parent, target.parent.parent, target.parent.parent.parent):
                     if not folder.is_dir():
@@ -574,17 +649,29 @@ class Store:
                 folders.add(target.parent)
                 moved.append((rel.as_posix(), int(n_rows), sha, size))
                 faults.point("moving")
+            # the seal: the complete list of the ingest's files, moved in last (a manifest rebuild
+            # takes an ingest whose seal is missing for one that never committed)
+            seal = staged / "seal.json"
+            seal.write_text(json.dumps({"version": store_layout.METADATA_VERSION, "ingest_id": record.ingest_id,
+                                        "parts": [{"path": rel, "rows": n, "sha256": sha, "size_bytes": size}
+                                                  for rel, n, sha, size in moved],
+                                        "metadata": provenance(record, files)}, indent=1, default=str) + "\n")
+            fsync_file(seal)
+            (self.directory / SEALS_DIR).mkdir(exist_ok=True)
+            os.replace(seal, self.directory / seal_rel)
+            folders.update({self.directory / SEALS_DIR, self.directory})
             for folder in sorted(folders, key=lambda f: len(f.parts), reverse=True):
                 fsync_dir(folder)  # the renames durable before the commit that makes them live
             faults.point("before_transaction")
             with interrupts.deferred():  # an interrupt waits for the commit or the rollback
                 return self._record(con, record, files, moved, staged, quarantine, supersede, masked,
-                                    events_without_values)
+                                    events_without_values, track_edges, edge_parts)
 
     def _record(self, con: duckdb.DuckDBPyConnection, record: IngestRecord, files: Sequence[dict[str, object]],
                 moved: list[tuple[str, int, str, int]], staged: Path, quarantine: pd.DataFrame,
                 supersede: list[str], masked: pd.DataFrame | None,
-                events_without_values: pa.Table | None) -> list[str]:
+                events_without_values: pa.Table | None, track_edges: pa.Table | None = None,
+                edge_parts: pa.Table | None = None) -> list[str]:
         """The commit's one transaction: the ingest, its files, quarantine and events, the view."""
         con.execute("BEGIN TRANSACTION")
         try:
@@ -634,6 +721,8 @@ class Store:
                             f"SELECT ?, {names} FROM _incoming_events", [record.ingest_id])
                 con.unregister("_incoming_events")
                 faults.point("events_without_values")
+            if track_edges is not None and track_edges.num_rows:
+                parts.record_edges(con, record.ingest_id, record.source_id, track_edges, edge_parts)
             self.refresh_live(con, record)
             faults.point("before_commit")
             con.execute("COMMIT")
@@ -641,6 +730,7 @@ class Store:
         except BaseException:
             _rollback(con)
             raise
+        self._write_marker(record.ingest_id)
         shutil.rmtree(staged, ignore_errors=True)
         return supersede
 
@@ -682,6 +772,7 @@ class Store:
             if planned:
                 if known is None:
                     known = {r[0] for r in con.execute("SELECT path FROM observation_files").fetchall()}
+                    known |= {f"{SEALS_DIR}/{r[0]}.json" for r in con.execute("SELECT ingest_id FROM ingests").fetchall()}
                 for rel in planned:
                     if isinstance(rel, str) and rel not in known and _inside(self.directory, rel):
                         (self.directory / rel).unlink(missing_ok=True)
@@ -803,10 +894,98 @@ class Store:
         obs_dir = self.directory / OBSERVATIONS_DIR
         return sorted(obs_dir.rglob("*.parquet")) if obs_dir.is_dir() else []
 
+    @property
+    def marker(self) -> Path:
+        """Beside the store folder, ``.<folder name>.ingested``: written after every commit, so that
+        a store folder deleted later is told apart from a study never ingested."""
+        return self.directory.with_name(f".{self.directory.name}.ingested")
+
+    def _folder_identity(self) -> list[int] | None:
+        try:
+            st = os.stat(self.directory.parent)
+        except OSError:
+            return None
+        return [st.st_dev, st.st_ino]
+
+    def _marker_applies(self, doc: dict) -> bool:
+        """Whether a marker was written for this folder: the folder holding it has the recorded
+        path or the recorded device and inode (it was moved). A copy of the study made without
+        its store folder has neither: it is a new, empty study."""
+        return (doc.get("folder") == str(self.directory.parent)
+                or (doc.get("folder_id") is not None and doc.get("folder_id") == self._folder_identity()))
+
+    def _refresh_marker(self, con: duckdb.DuckDBPyConnection) -> None:
+        """Write the marker when it is missing or was written for another folder (a store of an
+        older version, or a study copied with its store) while the store holds ingests."""
+        try:
+            doc = json.loads(self.marker.read_text())
+            if isinstance(doc, dict) and self._marker_applies(doc):
+                return
+        except (OSError, ValueError):
+            pass
+        try:
+            last = con.execute("SELECT max(ingest_id) FROM ingests").fetchall()[0][0]
+        except duckdb.Error:
+            return
+        if last is not None:
+            self._write_marker(last, quiet=True)  # a read-only study folder is no error for a reader
+
+    def _write_marker(self, ingest_id: str, quiet: bool = False) -> None:
+        text = json.dumps({"store": self.directory.name, "last_ingest": ingest_id,
+                           "committed_at": pd.Timestamp.now("UTC").isoformat(),
+                           "folder": str(self.directory.parent), "folder_id": self._folder_identity()})
+        tmp = self.marker.with_name(self.marker.name + ".tmp")
+        try:
+            tmp.write_text(text + "\n")
+            os.replace(tmp, self.marker)
+        except OSError as exc:  # the commit stands; only the evidence of it outside the store is missing
+            try:
+                tmp.unlink(missing_ok=True)
+            except OSError:
+                pass
+            log = logger.debug if quiet else logger.warning
+            log("could not write %s (%s); a deleted store folder would look like an empty study",
+                self.marker, exc.strerror or exc)
+
+    def lost(self) -> str | None:
+        """Why the store is lost (one line), or None: an empty study and a sound store are not lost.
+
+        Lost: the database is missing while parquet files remain (:meth:`lost_files`), or the
+        database and every parquet file are missing while the marker beside the store folder
+        says ingests were committed here (the store folder was deleted; a copy of the study made without its store is not lost). A store whose database
+        remains but whose parquet files are gone is found by :meth:`check` and refused by
+        every reading connection (see :meth:`_define_view`).
+        """
+        if self.exists():
+            return None
+        files = self.lost_files()
+        seals = self.directory / SEALS_DIR
+        if files or (seals.is_dir() and any(seals.glob("*.json"))):
+            return self._lost_message(files)
+        if self.marker.is_file():
+            try:
+                doc = json.loads(self.marker.read_text())
+                if not isinstance(doc, dict):
+                    raise ValueError("not an object")
+            except (OSError, ValueError):
+                doc = {}
+            if doc and not self._marker_applies(doc):
+                logger.info("%s was written for %s: a copy of the study without its store is an empty study",
+                            self.marker, doc.get("folder"))
+                return None
+            last = doc.get("last_ingest", "?")
+            return (f"the store at {self.directory} is gone (no database, no parquet files), but this study has "
+                    f"committed ingests (the last: {last}, recorded in {self.marker.name}); it is a lost store, not "
+                    "an empty study: restore the store folder from a backup, or run 'harmonize repair' to see what "
+                    "it would do")
+        return None
+
     def _lost_message(self, lost: Sequence[Path]) -> str:
         return (f"the store's database {self.db_path} is missing, but {len(lost):,} parquet file(s) remain "
-                f"under {self.directory / OBSERVATIONS_DIR}; nothing is written until the store is repaired: "
-                "run 'harmonize repair' to see what it would do, then 'harmonize repair --apply'")
+                f"under {self.directory / OBSERVATIONS_DIR} (and the seals of its ingests under "
+                f"{self.directory / SEALS_DIR}); nothing is written until the store is repaired: run 'harmonize "
+                "repair --rebuild-manifest' to see how the database would be rebuilt from them, or 'harmonize "
+                "repair' to set them aside and start an empty store")
 
     def store_version(self) -> int:
         """The version of the store's tables (1 when the store predates the key)."""
@@ -857,9 +1036,9 @@ class Store:
         or in the quarantine. A store of an older version is brought up to date first (which
         records the checksums of its files) when the store can be written.
         """
-        lost = self.lost_files()
+        lost = self.lost()
         if lost:
-            return [self._lost_message(lost)]
+            return [lost]
         if not self.exists():
             return []
         self.upgrade()
@@ -868,6 +1047,9 @@ class Store:
 
             row_traced_kinds = kinds(row_traced=True)
         with self.connect(view=False) as con:
+            gone = self._parts_gone(con)
+            if gone:
+                return [gone]
             problems = [str(d) for d in self._scrub(con, deep)]
             if problems:
                 return problems
@@ -878,10 +1060,10 @@ class Store:
             ).fetchall()
             problems += [f"ingest {i}: rows_read {r} <> accepted {a} + quarantined {q}" for i, r, a, q in bad]
             bad = con.execute(
-                """SELECT i.ingest_id, i.rows_quarantined,
+                f"""SELECT i.ingest_id, i.rows_quarantined,
                           (SELECT count(*) FROM quarantine q WHERE q.ingest_id = i.ingest_id)
                           + (SELECT coalesce(sum(n_values), 0) FROM quarantine_summary m WHERE m.ingest_id = i.ingest_id) AS n
-                   FROM ingests i WHERE i.status = 'complete' AND i.rows_quarantined <> n"""
+                   FROM ingests i WHERE i.status = 'complete' AND i.rows_quarantined <> n AND {_not_rebuilt(con, 'i')}"""
             ).fetchall()
             problems += [f"ingest {i}: rows_quarantined {a} but {b} quarantined rows and values" for i, a, b in bad]
             bad = con.execute(
@@ -904,6 +1086,21 @@ class Store:
             problems += self._row_accounting(con, row_traced_kinds)
         return problems
 
+    def rebuilt_note(self) -> str | None:
+        """One line when complete ingests were rebuilt from their part files (their quarantine is unknown)."""
+        if not self.exists():
+            return None
+        with self.connect(view=False) as con:
+            if _not_rebuilt(con, "i") == "TRUE":
+                return None
+            n, when = con.execute("SELECT count(*), max(rebuilt_at) FROM ingests i "
+                                  "WHERE status = 'complete' AND rebuilt_at IS NOT NULL").fetchall()[0]
+        if not n:
+            return None
+        return (f"{n:,} ingest(s) were rebuilt from their part files on {pd.Timestamp(when):%Y-%m-%d %H:%M} UTC: "
+                "their observation rows are checked, their quarantined rows are not in the store (ingest "
+                "their files again with --replace to restore them)")
+
     @staticmethod
     def _row_accounting(con: duckdb.DuckDBPyConnection, kinds: Sequence[str]) -> list[str]:
         """Every data row 1..rows_read of each row-traced input file is accepted or quarantined.
@@ -921,7 +1118,7 @@ class Store:
             WITH files AS (
                 SELECT f.ingest_id, f.role, f.file_name, f.rows_read
                 FROM ingest_files f JOIN ingests i USING (ingest_id)
-                WHERE i.status = 'complete' AND i.source_kind IN ({traced})
+                WHERE i.status = 'complete' AND i.source_kind IN ({traced}) AND {_not_rebuilt(con, 'i')}
             ),
             seen AS (
                 SELECT ingest_id, source_file AS file_name, source_row AS row FROM observations
@@ -944,6 +1141,36 @@ class Store:
 
 
 _TIME_COLUMNS = ("event_start", "event_end")
+#: Characters DuckDB reads as a glob pattern in a file path.
+_GLOB_CHARS = re.compile(r"[*?\[\]{}]")
+
+
+def provenance(record: IngestRecord, files: Sequence[dict[str, object]]) -> dict[str, object]:
+    """What every part file of an ingest says about it (:data:`store_layout.METADATA_KEY` metadata).
+
+    Versioned by ``version``; enough to rebuild the ingest's manifest rows
+    (:func:`harmonize.repair.rebuild`): the ``ingests`` row but the counts only the
+    whole set of files knows, the ``ingest_files`` rows (``inputs``) and the twin windows.
+    """
+    ingest = {
+        "ingest_id": record.ingest_id, "source_id": record.source_id, "source_kind": record.source_kind,
+        "provider_type": record.provider_type, "file_name": record.file_name,
+        "file_path": record.file_path or record.file_name, "file_sha256": record.file_sha256,
+        "inputs_sha256": record.inputs_sha256, "config_sha256": record.config_sha256,
+        "started_at": pd.Timestamp(record.started_at).isoformat(), "rows_read": int(record.rows_read),
+        "rows_accepted": int(record.rows_accepted), "rows_quarantined": int(record.rows_quarantined),
+        "profile_file": record.profile_file, "tool_version": __version__,
+    }
+    hooks = {name: dataclasses.asdict(v) if dataclasses.is_dataclass(v) and not isinstance(v, type) else v
+             for name, v in record.hook_data.items()}
+    return {
+        "version": store_layout.METADATA_VERSION, "contract_version": CONTRACT_VERSION,
+        "store_version": STORE_VERSION, "tool_version": __version__, "ingest_id": record.ingest_id,
+        "source_id": record.source_id, "source_kind": record.source_kind, "ingest": ingest,
+        "inputs": [{k: (int(v) if isinstance(v, (int, np.integer)) else v) for k, v in f.items()} for f in files],
+        # what the commit hooks were given (e.g. the twin windows of a volunteer source)
+        "hook_data": hooks,
+    }
 
 
 def _parquet_source(paths: Sequence[str]) -> str:
@@ -966,6 +1193,13 @@ def _naive_time_files(con: duckdb.DuckDBPyConnection, paths: Sequence[str]) -> s
     # parquet_schema names files by their resolved path
     return {p for p in paths if p in found or str(Path(p)) in found
             or any(f.endswith("/" + p) for f in found)}
+
+
+def _not_rebuilt(con: duckdb.DuckDBPyConnection, alias: str) -> str:
+    """SQL condition: the ingest's manifest rows were not rebuilt from its part files (whose
+    quarantine, kept only in the database, is then unknown)."""
+    columns = {r[0] for r in con.execute("DESCRIBE ingests").fetchall()}
+    return f"{alias}.rebuilt_at IS NULL" if "rebuilt_at" in columns else "TRUE"
 
 
 def _rollback(con: duckdb.DuckDBPyConnection) -> None:
@@ -1018,6 +1252,8 @@ def _flagged_view_sql(con: duckdb.DuckDBPyConnection, base: str) -> str:
 def _inside(root: Path, rel: str) -> bool:
     """Whether a relative path from a journal stays inside the store folder."""
     target = (root / rel).resolve()
+    if target.suffix == ".json":  # the ingest's seal
+        return target.parent == (root / SEALS_DIR).resolve()
     return target.is_relative_to(root.resolve()) and target.suffix == ".parquet"
 
 

@@ -48,7 +48,7 @@ def test_received_rows_reasons_and_hashes(ingested) -> None:  # type: ignore[no-
 def test_effort_totals_sum_one_value_per_haul(ingested) -> None:  # type: ignore[no-untyped-def]
     hz, _, root = ingested
     result = hz.audit()
-    obs = hz.observations(columns=["source_id", "event_id", "season_year", "effort", "effort_unit", "flags"])
+    obs = hz.observations(columns=["source_id", "event_id", "season_year", "effort", "effort_unit", "row_flags"])
     per_event = obs.dropna(subset=["effort"]).drop_duplicates(["source_id", "event_id"])
     expected = per_event.groupby("season_year")["effort"].sum()
     eff = result.received.effort.set_index("season_year")

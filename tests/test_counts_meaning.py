@@ -55,7 +55,7 @@ def test_split_count_keeps_what_was_counted(study_dir: Path) -> None:
     nau = obs.loc["Nauplia keldica"]
     assert nau["value"] == 100 and nau["count_observed"] == 40
     assert nau["subsample_fraction"] == pytest.approx(40 / 100)
-    assert "mixed_subsample_fractions" in list(nau["flags"])
+    assert "mixed_subsample_fractions" in list(nau["row_flags"])
 
 
 def test_darwin_core_individual_count_is_the_number_counted(study_dir: Path, tmp_path: Path) -> None:

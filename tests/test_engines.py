@@ -235,3 +235,32 @@ def test_scratch_folder_must_exist(tmp_path: Path) -> None:
     with settings.applied(settings.Settings(dask_scratch=str(tmp_path))):
         assert scratch_parent() == str(tmp_path)
     assert scratch_parent() is None
+
+
+def test_ping_files_cut_by_time_on_dask_equal_one_file_on_duckdb(study_dir: Path, tmp_path: Path,
+                                                                  scheduler: str) -> None:
+    """The edges of the files the Dask engine writes join into the same tracks (harmonize.parts)."""
+    messy = tmp_path / "pings_messy.csv"
+    _messy_pings(messy)
+    frame = pd.read_csv(messy, dtype=str, keep_default_na=False)
+    day = frame["time_utc"].str[:10]
+    cuts = sorted(day.unique())
+    parts = []
+    for k, chunk in enumerate((cuts[: len(cuts) // 3], cuts[len(cuts) // 3: 2 * len(cuts) // 3],
+                               cuts[2 * len(cuts) // 3:])):
+        path = tmp_path / f"part{k}.csv"
+        frame[day.isin(chunk)].to_csv(path, index=False)
+        parts.append(path)
+    study_salt(study_dir)
+    one, split = tmp_path / "one", tmp_path / "split"
+    shutil.copytree(study_dir, one)
+    shutil.copytree(study_dir, split)
+    run(load_study(one), "effort_pings", {"rows": messy})
+    for path in reversed(parts):
+        run(load_study(split), "effort_pings", {"rows": path}, engine="dask", scheduler=scheduler)
+    cols = ["event_id", "value", "n_vessels", "n_values"]
+    a = _store_tables(one)["observations"][cols].sort_values("event_id").reset_index(drop=True)
+    b = _store_tables(split)["observations"][cols].sort_values("event_id").reset_index(drop=True)
+    assert len(a) > 20
+    pd.testing.assert_frame_equal(a[["event_id", "n_vessels", "n_values"]], b[["event_id", "n_vessels", "n_values"]])
+    np.testing.assert_allclose(b["value"], a["value"], rtol=0, atol=1e-9)

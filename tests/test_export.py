@@ -90,7 +90,7 @@ def test_long_csv_guards_text_and_has_sidecar(study: Study, built: ExportStore, 
     assert "'@V2" in set(raw["event_id"]) and "@V2" not in set(raw["event_id"])
     # numbers are not text: negative longitudes keep their sign
     assert raw["lon"].str.startswith("-").all()
-    assert "probable_duplicate" in set(raw["flags"])
+    assert "probable_duplicate" in set(raw["row_flags"])
     side = json.loads(sidecar_path(result.path).read_text())
     assert side["@context"] == "http://www.w3.org/ns/csvw" and side["url"] == "long.csv"
     assert [c["name"] for c in side["tableSchema"]["columns"]] == list(raw.columns)
@@ -119,7 +119,7 @@ def test_wide_sums_to_long(study: Study, built: ExportStore) -> None:
     wide = read_wide(study)
     long = read_long(study)
     taxa = long[(long["variable_kind"] == "taxon") & (long["quantity"] == "count")
-                & ~long["flags"].map(lambda f: "probable_duplicate" in list(f))]
+                & ~long["row_flags"].map(lambda f: "probable_duplicate" in list(f))]
     measure = taxa["density"].where(taxa["density"].notna(), taxa["value"])
     unit = ("per " + taxa["effort_unit"]).where(taxa["density"].notna(), "count, no effort")
     expected = measure.groupby(taxa["variable"] + " (" + unit + ")").sum()
@@ -185,7 +185,7 @@ def test_grid_matches_a_hand_aggregate(study: Study, built: ExportStore) -> None
     grid = read_grid(study)
     long = read_long(study)
     rows = long[(long["variable_kind"] == "taxon") & (long["quantity"] == "count")
-                & ~long["flags"].map(lambda f: "probable_duplicate" in list(f)) & long["effort"].notna()]
+                & ~long["row_flags"].map(lambda f: "probable_duplicate" in list(f)) & long["effort"].notna()]
     keys = ["source_kind", "cell_id", "season_year", "season", "depth_layer", "variable"]
     # sensitive events have no cell: their rows group under an empty cell_id
     per_event = rows.groupby([*keys, "event_id"], dropna=False).agg(value=("value", "sum"), effort=("effort", "max"),

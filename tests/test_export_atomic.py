@@ -27,7 +27,8 @@ BIN = Path(sys.executable).parent / "harmonize"
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 #: kills per format: 2 in CI, 8 with HYPOTHESIS_PROFILE=dev
 KILLS = 8 if os.environ.get("HYPOTHESIS_PROFILE") == "dev" else 2
-GPKG_LAYERS = {"events", "cells", "cell_coverage", "export_metadata"}
+GPKG_LAYERS = {"domain", "strata", "samples", "gridded_cells", "fishing_cells", "cells", "cell_coverage",
+               "export_metadata"}
 
 
 @pytest.fixture(scope="module")
@@ -55,7 +56,7 @@ def _rows(path: Path) -> int:
     if suffix == ".gpkg":
         layers = {name for name, _ in pyogrio.list_layers(path)}
         assert layers == GPKG_LAYERS, layers
-        return len(pyogrio.read_dataframe(path, layer="events"))
+        return len(pyogrio.read_dataframe(path, layer="samples"))
     with zipfile.ZipFile(path) as zf:
         assert zf.testzip() is None
         names = set(zf.namelist())
@@ -141,3 +142,75 @@ def test_an_export_into_the_store_is_refused(exported_study: Path, tmp_path: Pat
     with pytest.raises(HarmonizeError, match="inside the store folder"):
         export_long(load_study(study_dir), study_dir / "store" / "copy.csv")
     assert not (study_dir / "store" / "copy.csv").exists()
+
+
+# ------------------------------------------------------------------ the quarantine listing and the audit's files
+def _half_then_full(real: object, text_to_keep: int = 40):
+    """A writer that writes part of its output, then meets a full disk (errno 28, no file name)."""
+    def write(frame: pd.DataFrame, path: object, *args: object, **kw: object) -> None:
+        real(frame, path, *args, **kw)  # type: ignore[operator]
+        data = Path(path).read_bytes()  # type: ignore[arg-type]
+        Path(path).write_bytes(data[:text_to_keep])  # type: ignore[arg-type]
+        raise OSError(28, "No space left on device")
+    return write
+
+
+def test_a_quarantine_listing_failing_half_way_leaves_the_earlier_file(
+        exported_study: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from cli_runner import run_cli
+
+    from harmonize.export import safe_csv
+
+    target = tmp_path / "rejected.csv"
+    first = run_cli("--study", str(exported_study), "quarantine", "--csv", str(target))
+    assert first.exit_code == 0, first.stderr
+    before = target.read_bytes()
+    assert len(pd.read_csv(target)) == 11  # the fixture's quarantined rows: 6 hauls + 5 catch rows
+    monkeypatch.setattr(safe_csv, "write_safe_csv", _half_then_full(safe_csv.write_safe_csv))
+    second = run_cli("--study", str(exported_study), "quarantine", "--csv", str(target))
+    assert second.exit_code == 3
+    assert second.stderr == f"no space left on device at {target}; the store is unchanged\n"
+    assert target.read_bytes() == before
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["rejected.csv"]  # no partial file left
+
+
+def test_the_audit_files_failing_half_way_leave_the_earlier_files(
+        exported_study: Path, tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    from cli_runner import run_cli
+
+    from harmonize.export import atomic
+
+    json_out, html_out = tmp_path / "audit.json", tmp_path / "audit.html"
+    first = run_cli("--study", str(exported_study), "audit", "--json", str(json_out), "--html", str(html_out))
+    assert first.exit_code == 0, first.stderr
+    before = {p.name: p.read_bytes() for p in (json_out, html_out)}
+    real = atomic._replace_durably
+
+    def full_at_rename(written: Path, target: Path) -> None:
+        if target.name == "audit.html":  # the JSON went through; the report meets a full disk
+            written.write_bytes(written.read_bytes()[:100])
+            raise OSError(28, "No space left on device", str(target))
+        real(written, target)
+
+    monkeypatch.setattr(atomic, "_replace_durably", full_at_rename)
+    second = run_cli("--study", str(exported_study), "audit", "--json", str(json_out), "--html", str(html_out))
+    assert second.exit_code == 3
+    assert second.stderr == f"no space left on device at {html_out}; the store is unchanged\n"
+    assert html_out.read_bytes() == before["audit.html"]
+    assert sorted(p.name for p in tmp_path.iterdir()) == ["audit.html", "audit.json"]
+
+
+@pytest.mark.parametrize("args", [("quarantine", "--csv"), ("audit", "--json"), ("audit", "--html")])
+def test_the_quarantine_and_audit_files_are_refused_inside_the_store(exported_study: Path, tmp_path: Path,
+                                                                    args: tuple[str, str]) -> None:
+    from cli_runner import run_cli
+
+    study_dir = tmp_path / "study"
+    shutil.copytree(exported_study, study_dir)
+    target = study_dir / "store" / "harmonized.duckdb"
+    before = target.read_bytes()
+    result = run_cli("--study", str(study_dir), *args, str(target))
+    assert result.exit_code == 2
+    assert result.stderr.startswith(f"error: {target}: an export cannot be written inside the store folder")
+    assert len(result.stderr.strip().splitlines()) == 1
+    assert target.read_bytes() == before

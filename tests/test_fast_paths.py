@@ -190,7 +190,7 @@ def test_partition_writer_equals_duckdb_partitioned_copy(tmp_path: Path) -> None
     """Slices of the sorted table written one by one give DuckDB's own PARTITION_BY layout."""
     import duckdb
 
-    from harmonize.ingest import _write_partitions_sorted_in_copy, write_partitions
+    from harmonize.store_layout import _write_partitions_sorted_in_copy, write_partitions
 
     rng = np.random.default_rng(2)
     n = 5000

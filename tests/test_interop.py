@@ -146,10 +146,10 @@ def test_long_csv_and_gpkg_write_iso_8601_utc(study_dir: Path, tmp_path: Path) -
     con.execute("SET TimeZone = 'America/Halifax'")
     kind = con.execute("SELECT typeof(event_start) FROM read_csv(?) LIMIT 1", [str(tmp_path / "long.csv")]).fetchall()
     assert kind[0][0] == "TIMESTAMP WITH TIME ZONE"
-    # GeoPackage: pyogrio's raw text of the events layer ends in Z
+    # GeoPackage: pyogrio's raw text of the samples layer ends in Z
     pyogrio = pytest.importorskip("pyogrio")
     export(study, "gpkg", tmp_path / "out.gpkg")
-    layer = pyogrio.read_dataframe(tmp_path / "out.gpkg", layer="events", datetime_as_string=True)
+    layer = pyogrio.read_dataframe(tmp_path / "out.gpkg", layer="samples", datetime_as_string=True)
     assert layer["event_start"].str.match(ISO_UTC).all()
 
 

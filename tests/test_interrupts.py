@@ -93,6 +93,7 @@ def test_an_interrupted_ingest_says_so_in_one_line_and_leaves_the_store_whole(st
         if complete:  # start again from an empty store
             import shutil
             shutil.rmtree(study_dir / "store")
+            (study_dir / ".store.ingested").unlink()  # the marker: a store removed on purpose
     assert any(o.startswith("interrupted") for o in outcomes), outcomes
 
 
@@ -132,7 +133,7 @@ def test_a_full_disk_during_ingest_is_one_line(study_dir: Path, capsys: pytest.C
     def full(*args: object, **kwargs: object) -> None:
         raise OSError(errno.ENOSPC, "No space left on device", where)
 
-    with mock.patch("harmonize.ingest.write_partitions", full):
+    with mock.patch("harmonize.store_layout.write_partitions", full):
         code, _, err = cli(capsys, *_ingest_args(study_dir))
     assert code == 3
     assert err.strip() == f"no space left on device at {where}; the store is unchanged"
@@ -140,7 +141,7 @@ def test_a_full_disk_during_ingest_is_one_line(study_dir: Path, capsys: pytest.C
     def duck_full(*args: object, **kwargs: object) -> None:
         raise duckdb.IOException(f'Could not write file "{where}": No space left on device')
 
-    with mock.patch("harmonize.ingest.write_partitions", duck_full):
+    with mock.patch("harmonize.store_layout.write_partitions", duck_full):
         code, _, err = cli(capsys, *_ingest_args(study_dir))
     assert (code, err.strip()) == (3, f"no space left on device at {where}; the store is unchanged")
     store = Store(load_study(study_dir).store_dir)

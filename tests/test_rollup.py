@@ -69,10 +69,10 @@ def test_long_rows_zero_filled_flags_and_presence(study: Study) -> None:
     long = read_long(study, ExportFilters(taxon_level="genus"))
     k = long[long["variable"] == "Keldora"].set_index("event_id")
     assert k.loc["H4", "value"] == 8.0 and k.loc["H4", "density"] == 16.0
-    assert "taxon_rolled_up" in list(k.loc["H4", "flags"])
+    assert "taxon_rolled_up" in list(k.loc["H4", "row_flags"])
     assert bool(k.loc["H5", "zero_filled"]) is True          # both members inferred
     assert bool(k.loc["H6", "zero_filled"]) is False         # one member caught
-    assert "taxon_rolled_up" not in list(k.loc["H1", "flags"])   # the genus's own record
+    assert "taxon_rolled_up" not in list(k.loc["H1", "row_flags"])   # the genus's own record
     # presence: any member present -> present once (value 1, not the number of members)
     assert k.loc["P1", "quantity"] == "presence" and k.loc["P1", "value"] == 1.0
     assert k.loc["P2", "value"] == 1.0

@@ -29,7 +29,10 @@ from harmonize.ingest import assemble, prepare, store_output
 #: tested on their own: new nullable columns (count_observed, subsample_fraction,
 #: provider_record_id, track_*), the tow's track positions, and target windows read in season
 #: years (haul H011 of 2019-12-15 is in season year 2020: no zeros of the 2015-2019 target).
-MESSY_DIGEST = "64a2df5cbcfc27489ec566dadeb9dbbcd82b4a1603f095d4a53556df91b5d579"
+#: Renewed for issue 21 (zone-aware UTC event times, the new density_unit column); before
+#: renewing, the new content with times converted back to naive UTC and density_unit dropped
+#: gave exactly the previous digest 64a2df5c...d579.
+MESSY_DIGEST = "31434b70a528c040915549d7d3348c692eac661506b3fb36d6de99d53a2e626d"
 
 
 def _content(study_dir: Path, ingest_id: str | None = None) -> tuple[pd.DataFrame, pd.DataFrame, pd.DataFrame]:
@@ -274,3 +277,24 @@ def test_distinct_present_equals_the_set_of_values(events: list[str], values: li
     expected = [e in {v for v in values if v is not None} for e in events]
     assert ev.isin(distinct_present(va)).tolist() == expected
     assert ev.isin(distinct_present(va.astype("category"))).tolist() == expected
+
+
+_TEXT = st.one_of(st.none(), st.sampled_from(["H1", "H2", "h1", "H10", "", " H1"]))
+
+
+@given(st.lists(_TEXT, max_size=30), st.lists(_TEXT, max_size=10),
+       st.sampled_from(["string[pyarrow]", "category", "large_string"]))
+def test_is_in_answers_as_pandas_isin(values: list, lookup: list, dtype: str) -> None:
+    """is_in (Arrow or category codes) gives what pandas' isin on plain Python objects gives
+    (other dtypes go to pandas' isin itself)."""
+    from harmonize.adapters.common import is_in
+
+    if dtype == "large_string":
+        import pyarrow as pa
+
+        series = pd.Series(values, dtype=pd.ArrowDtype(pa.large_string()))
+    else:
+        series = pd.Series(values, dtype=dtype)
+    expected = pd.Series(values, dtype=object).isin(pd.Series(lookup, dtype=object)).to_numpy()
+    for as_ in (pd.Series(lookup, dtype="string[pyarrow]"), np.asarray(lookup, dtype=object)):
+        assert is_in(series, as_).tolist() == expected.tolist()

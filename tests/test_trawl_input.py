@@ -97,10 +97,14 @@ def test_declared_encoding_is_used(study_dir: Path) -> None:
 
 def test_unknown_unit_is_a_config_error(study_dir: Path) -> None:
     profile = study_dir / "profiles" / "trawl_basic.toml"
-    profile.write_text(profile.read_text().replace('weight = "g"', 'weight = "stone"'))
+    profile.write_text(profile.read_text().replace('weight = "g"', 'weight = "stane"'))
     study = load_study(study_dir)
-    with pytest.raises(ConfigError, match=r"units\.weight: 'stone' is not a known mass unit; use one of kg, g"):
+    with pytest.raises(ConfigError, match=r"trawl_basic.toml: \[units\] weight: 'stane' is not a unit pint or UDUNITS "
+                       r"reads .*; give a mass unit in UDUNITS or pint spelling, e\.g\. kg, g, grams"):
         run(study, "trawl_basic", _write(study_dir), write=False)
+    profile.write_text(profile.read_text().replace('weight = "stane"', 'weight = "fathoms"'))
+    with pytest.raises(ConfigError, match=r"\[units\] weight: 'fathoms' is fathom, a unit of \[length\], not a mass unit"):
+        run(load_study(study_dir), "trawl_basic", _write(study_dir), write=False)
 
 
 def test_profile_field_that_does_not_exist(study_dir: Path) -> None:

@@ -61,5 +61,5 @@ def test_each_taxon_column_states_its_unit(mixed, tmp_path: Path) -> None:  # ty
     assert result.metadata["options"]["taxon_units"] == expected
     csv = export_wide(mixed, tmp_path / "w.csv")
     side = json.loads(sidecar_path(csv.path).read_text())
-    units = {c["name"]: c.get("unit") for c in side["tableSchema"]["columns"]}
+    units = {c["titles"]: c.get("schema:unitText") for c in side["tableSchema"]["columns"]}
     assert {k: units[k] for k in expected} == expected

@@ -76,6 +76,14 @@ class AdapterOutput:
     #: part of the file's rows_quarantined.
     masked: pd.DataFrame = field(default_factory=lambda: pd.DataFrame(
         {"source_file": [], "reason_code": [], "n_values": [], "message": []}))
+    #: Ping sources: the pings at the edges of each vessel's part of the file
+    #: (:data:`harmonize.parts.EDGE_COLUMNS` but source_id); the store joins them across the
+    #: files of the source (harmonize.parts). None for every other input.
+    track_edges: pd.DataFrame | None = None
+    #: Ping sources: the cell-periods the owned edge pings lie in, as events and values of 0
+    #: hours: the store keeps them as the templates of the parts its view adds.
+    edge_events: pd.DataFrame | None = None
+    edge_values: pd.DataFrame | None = None
 
 
 class Adapter(ABC):

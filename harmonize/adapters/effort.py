@@ -62,6 +62,7 @@ from harmonize.config_spec import Map, Table, Value, number, text
 from harmonize.contract import FieldSpec, fields
 from harmonize.engines import current_engine
 from harmonize.errors import ConfigError, InputFileError, ReasonCode
+from harmonize.geodesy import M_PER_NMI, distance_sql
 from harmonize.privacy import pseudonymise, study_salt
 from harmonize.profile import Profile
 from harmonize.study import Study
@@ -74,6 +75,7 @@ from harmonize.tagging import (
     tag_season,
 )
 from harmonize.tagging import season_sql as study_season_sql
+from harmonize.tracks import track_sql
 
 #: Default fishing speed window (knots) for bottom trawls: common practice, supported by
 #: Skaar et al. 2011 and Mills et al. 2007 (otter trawl 1-6 kn, beam trawl 2-8 kn).
@@ -86,11 +88,6 @@ DEFAULT_MAX_SPEED_KN = 30.0
 #: Rejected pings listed one by one in the quarantine per file; beyond that they are
 #: counted per reason (the quarantine_summary table).
 DEFAULT_QUARANTINE_ROWS = 100_000
-M_PER_NMI = 1852.0  # exact (BIPM SI Brochure, 9th ed. 2019, Table 8); 1 knot = 1852 m/h
-# WGS84 ellipsoid (NIMA TR8350.2, 2000)
-WGS84_A = 6378137.0
-WGS84_F = 1 / 298.257223563
-_E2 = WGS84_F * (2 - WGS84_F)
 
 #: Gear contact with the sea floor, keyed by FAO ISSCFG code (International Standard
 #: Statistical Classification of Fishing Gear, FAO 2016 revision) and a few plain names.
@@ -107,6 +104,9 @@ GEAR_CONTACT: dict[str, str] = {
          "TROLL"], "pelagic"),
 }
 _NA = ("", "na", "n/a", "nan", "null", "none", "-")
+#: Time formats of a profile with ``dayfirst = true`` (day before month).
+DAYFIRST_FORMATS = ("%d/%m/%Y %H:%M:%S", "%d/%m/%Y %H:%M", "%d-%m-%Y %H:%M:%S", "%d-%m-%Y %H:%M",
+                    "%d.%m.%Y %H:%M:%S", "%d.%m.%Y %H:%M")
 # cell code = (ix + _OFF) * _MUL + (iy + _OFF): one BIGINT per grid cell
 _OFF = 2**30
 _MUL = 2**31
@@ -210,18 +210,10 @@ def fishing_settings(profile: Profile, study: Study) -> FishingSettings:
 
 # ---------------------------------------------------------------------------- geometry
 
-#: Distance (m) between two WGS84 points, as a DuckDB macro: the flat-earth formula with
-#: the ellipsoid's meridional (M) and prime-vertical (N) radii of curvature at the mean
-#: latitude. For the few-kilometre steps between pings it agrees with the geodesic
-#: (Karney 2013) to better than 1e-5 relative; tests check it against GeographicLib.
-_W = f"(1 - {_E2!r} * pow(sin(radians((lat1 + lat2) / 2)), 2))"
-DISTANCE_MACRO = f"""
-CREATE OR REPLACE TEMP MACRO geo_dist_m(lat1, lon1, lat2, lon2) AS sqrt(
-    pow({WGS84_A!r} * (1 - {_E2!r}) / pow({_W}, 1.5) * radians(lat2 - lat1), 2)
-  + pow({WGS84_A!r} / sqrt({_W}) * cos(radians((lat1 + lat2) / 2))
-        * radians(((lon2 - lon1 + 540.0) % 360.0) - 180.0), 2)
-);
-"""
+#: Distance (m) between two WGS84 points, as a DuckDB macro (harmonize.geodesy: the same
+#: formula and constants as the numpy function; tests check it against GeographicLib).
+DISTANCE_MACRO = ("CREATE OR REPLACE TEMP MACRO geo_dist_m(lat1, lon1, lat2, lon2) AS "
+                  + distance_sql("lat1", "lon1", "lat2", "lon2") + ";")
 
 
 def geodesic_distance_m(lat1: np.ndarray, lon1: np.ndarray, lat2: np.ndarray, lon2: np.ndarray) -> np.ndarray:
@@ -329,6 +321,15 @@ def season_bounds(study: Study, season: pd.Series, season_year: pd.Series) -> tu
 
 # ---------------------------------------------------------------------------- output
 
+def effort_event_ids(gear: pd.Series, ix: np.ndarray, iy: np.ndarray, season_year: pd.Series, season: pd.Series,
+                     depth_layer: pd.Series) -> pd.Series:
+    """Event id of a fishing cell-period: gear/cell/season_year-season/layer."""
+    cell_id = "x" + pd.Series(np.asarray(ix, np.int64)).astype(str) + "_y" + pd.Series(np.asarray(iy, np.int64)).astype(str)
+    return (pd.Series(gear).reset_index(drop=True) + "/" + cell_id + "/"
+            + pd.Series(season_year).reset_index(drop=True).astype(str) + "-"
+            + pd.Series(season).reset_index(drop=True) + "/" + pd.Series(depth_layer).reset_index(drop=True))
+
+
 def effort_output(
     cells: pd.DataFrame, study: Study, grid: Grid, contact: Mapping[str, str]
 ) -> tuple[pd.DataFrame, pd.DataFrame]:
@@ -337,13 +338,17 @@ def effort_output(
     ``cells`` has ix, iy, season_year, season, gear, depth_layer, hours, n_vessels,
     n_values and speed_derived (bool).
     """
-    cells = cells[cells["hours"] > 0].reset_index(drop=True)
+    keep = cells["hours"] > 0
+    if "edge" in cells:
+        # a cell an owned edge ping of a ping file lies in keeps its part, 0 hours or not: the
+        # store's view adds the hours of the edge pings, joined across files (harmonize.parts)
+        keep |= cells["edge"].astype(bool)
+    cells = cells[keep.to_numpy()].reset_index(drop=True)
     ix, iy = cells["ix"].to_numpy(np.int64), cells["iy"].to_numpy(np.int64)
     lon, lat = grid.cell_centres_lonlat(ix, iy)
     cell_id = "x" + pd.Series(ix).astype(str) + "_y" + pd.Series(iy).astype(str)
     start, end = season_bounds(study, cells["season"], cells["season_year"])
-    event_id = (cells["gear"] + "/" + cell_id + "/" + cells["season_year"].astype(str) + "-"
-                + cells["season"] + "/" + cells["depth_layer"])
+    event_id = effort_event_ids(cells["gear"], ix, iy, cells["season_year"], cells["season"], cells["depth_layer"])
     n = len(cells)
     events = pd.DataFrame({
         "event_id": event_id, "event_start": start.to_numpy(), "event_end": end.to_numpy(),
@@ -555,20 +560,30 @@ class PingReader:
         tokens = ", ".join(_sql_text(t) for t in _NA)
         return f"(length({text}) <= 5 AND lower(trim({text})) IN ({tokens}))"
 
+    def _written_sql(self, text: str) -> str | None:
+        """SQL: the wall-clock TIMESTAMP of a time written in the profile's format (``time_format``,
+        or the day-first formats), None when the profile names neither."""
+        if self.profile.time_format:
+            return f"try_strptime({text}, {_sql_text(self.profile.time_format)})"
+        if self.profile.dayfirst:
+            return f"try_strptime({text}, [{', '.join(map(_sql_text, DAYFIRST_FORMATS))}])"
+        return None
+
+    @staticmethod
+    def _plain_sql(text: str) -> str:
+        """SQL: the time has no offset or zone letter after its date (an ISO wall-clock time)."""
+        return (f"(strpos(substr({text}, 11), '+') = 0 AND strpos(substr({text}, 11), '-') = 0 "
+                f"AND right({text}, 1) BETWEEN '0' AND '9')")
+
     def _local_sql(self, text: str) -> str:
         """SQL: the wall-clock TIMESTAMP of a time read in the profile's zone (NULL for a time
         with an offset, and when the profile's zone is UTC, which has no clock changes)."""
         if self.profile.timezone == "UTC":
             return "CAST(NULL AS TIMESTAMP)"
-        if self.profile.time_format:
-            return f"try_strptime({text}, {_sql_text(self.profile.time_format)})"
-        if self.profile.dayfirst:
-            fmts = ["%d/%m/%Y %H:%M:%S", "%d/%m/%Y %H:%M", "%d-%m-%Y %H:%M:%S", "%d-%m-%Y %H:%M",
-                    "%d.%m.%Y %H:%M:%S", "%d.%m.%Y %H:%M"]
-            return f"try_strptime({text}, [{', '.join(map(_sql_text, fmts))}])"
-        plain = (f"(strpos(substr({text}, 11), '+') = 0 AND strpos(substr({text}, 11), '-') = 0 "
-                 f"AND right({text}, 1) BETWEEN '0' AND '9')")
-        return f"CASE WHEN {plain} THEN TRY_CAST({text} AS TIMESTAMP) END"
+        written = self._written_sql(text)
+        if written is not None:
+            return written
+        return f"CASE WHEN {self._plain_sql(text)} THEN TRY_CAST({text} AS TIMESTAMP) END"
 
     def _time_sql(self, text: str) -> str:
         """SQL: the UTC TIMESTAMP of a time cell, with harmonize.clock's rule at clock changes
@@ -608,20 +623,14 @@ class PingReader:
                 f"cell_txt(time_txt), {z}, {before}, {after}, strftime({local}, '%Y-%m-%d'))")
 
     def _instant_sql(self, text: str) -> str:
-        fmt = self.profile.time_format
         tz = _sql_text(self.profile.timezone)
-        if fmt:
-            return f"timezone('UTC', timezone({tz}, try_strptime({text}, {_sql_text(fmt)})))"
-        if self.profile.dayfirst:
-            fmts = ["%d/%m/%Y %H:%M:%S", "%d/%m/%Y %H:%M", "%d-%m-%Y %H:%M:%S", "%d-%m-%Y %H:%M",
-                    "%d.%m.%Y %H:%M:%S", "%d.%m.%Y %H:%M"]
-            return f"timezone('UTC', timezone({tz}, try_strptime({text}, [{', '.join(map(_sql_text, fmts))}])))"
+        written = self._written_sql(text)
+        if written is not None:
+            return f"timezone('UTC', timezone({tz}, {written}))"
         # "...Z" is UTC; a plain time in a UTC profile too: both take the fast TIMESTAMP cast
         # (which would silently drop any other offset). The rest is read as TIMESTAMPTZ:
         # with its offset, or in the session time zone (the profile's).
-        plain = (f"(strpos(substr({text}, 11), '+') = 0 AND strpos(substr({text}, 11), '-') = 0 "
-                 f"AND right({text}, 1) BETWEEN '0' AND '9')")
-        fast = f"right({text}, 1) = 'Z'" + (f" OR {plain}" if self.profile.timezone == "UTC" else "")
+        fast = f"right({text}, 1) = 'Z'" + (f" OR {self._plain_sql(text)}" if self.profile.timezone == "UTC" else "")
         return (f"CASE WHEN {fast} THEN TRY_CAST({text} AS TIMESTAMP) "
                 f"ELSE timezone('UTC', TRY_CAST({text} AS TIMESTAMPTZ)) END")
 
@@ -629,10 +638,11 @@ class PingReader:
         unit = self.profile.units.get("speed_kn")
         if unit is None:
             return 1.0
-        if not units.is_known("speed", unit):
-            raise ConfigError(self.profile.path, "units.speed_kn",
-                              f"'{unit}' is not a known speed unit; use one of {', '.join(units.known_units('speed'))}")
-        return float(units.to_canonical(np.array([1.0]), "speed", unit)[0])
+        try:
+            scale, _ = units.conversion("speed", unit)
+        except units.UnitError as exc:
+            raise ConfigError(self.profile.path, "[units] speed_kn", str(exc)) from None
+        return scale
 
     def _stage1_sql(self, src: str, rownum: str, extra: str) -> str:
         """Typed pings with the first problem of each row (reason, message, raw).
@@ -711,9 +721,10 @@ class PingReader:
     # -- the pipeline
     def run(self) -> AdapterOutput:
         tmp = Path(tempfile.mkdtemp(prefix="harmonize-pings-"))
-        # a scratch database file: the working tables live on disk behind DuckDB's buffer
-        # manager, so memory stays near memory_limit whatever the file's size
-        con = duckdb.connect(str(tmp / "work.duckdb"))
+        # an in-memory database whose buffer manager spills to the temporary folder beyond
+        # memory_limit: the working tables stay in memory while they fit (writing them to an
+        # on-disk scratch database cost 3-4x more at 1e7 pings), and memory stays bounded
+        con = duckdb.connect()
         try:
             con.execute(f"SET temp_directory = {_sql_text(str(tmp))}")
             con.execute(f"SET memory_limit = {_sql_text(self.settings.memory_limit)}")
@@ -758,7 +769,12 @@ class PingReader:
             fishing, derived = con.execute(
                 "SELECT count(*) FILTER (WHERE fishing), count(*) FILTER (WHERE sog IS NULL) FROM track WHERE NOT spike"
             ).fetchall()[0]
+            con.execute("CREATE TEMP TABLE track_edges AS SELECT row, vid, t, lat, lon, sog, smin, smax, code, gear, "
+                        "layer, owned, CASE WHEN fishing AND NOT spike AND hours > 0 THEN hours ELSE 0 END AS file_hours "
+                        "FROM track WHERE edge")
+        edges, edge_cells = self._edges(con)
         events, values = effort_output(cells_df, self.study, self.grid, contact)
+        edge_events, edge_values = effort_output(edge_cells, self.study, self.grid, contact)
         quarantine, masked = self._quarantine(con)
         n_bad = len(quarantine) + int(masked["n_values"].sum() if len(masked) else 0)
         files = [InputFile("rows", self.path, file_sha256(self.path), n_rows, n_rows - n_bad, n_bad)]
@@ -766,7 +782,8 @@ class PingReader:
                           f"({derived:,} with a speed derived from positions)")
         self.progress("done", 5, 5)
         return AdapterOutput(events=events, values=values, quarantine=quarantine, files=files,
-                             notes=self.notes, masked=masked)
+                             notes=self.notes, masked=masked, track_edges=edges, edge_events=edge_events,
+                             edge_values=edge_values)
 
     def _lookups(self, con: duckdb.DuckDBPyConnection) -> dict[str, str]:
         """Hash the distinct vessel ids and resolve the distinct gears (tables vmap, gmap)."""
@@ -807,7 +824,16 @@ class PingReader:
             LEFT JOIN gmap g ON p.gear_raw = g.gear_raw
         """)
         con.execute("DROP TABLE p")
-        # duplicates: the same vessel and time as an earlier row
+        # Pings in any order are sorted per vessel by time (the track's windows order by vessel,
+        # time and row): an ordinary AIS export interleaves vessels and repeats blocks, and a
+        # ping is not wrong for arriving out of order. A bad clock shows as an impossible jump.
+        # duplicates: the same vessel and time as an earlier row. A cheap count first (a hash
+        # aggregate, no sort): most files have none, and then the ordered pass is not needed.
+        accepted, keys = con.execute(
+            "SELECT count(*), count(DISTINCT (vid, t)) FROM q WHERE reason IS NULL").fetchall()[0]
+        if accepted == keys:
+            con.execute("CREATE TABLE dups (row BIGINT, r0 BIGINT, same BOOLEAN)")
+            return
         con.execute("""
             CREATE TABLE dups AS
             SELECT row, r0, same FROM (
@@ -818,96 +844,19 @@ class PingReader:
                 WINDOW w AS (PARTITION BY vid ORDER BY t, row))
             WHERE t = t0
         """)
-        # Pings in any order are sorted per vessel by time (the track's windows order by vessel,
-        # time and row): an ordinary AIS export interleaves vessels and repeats blocks, and a
-        # ping is not wrong for arriving out of order. A bad clock shows as an impossible jump.
 
     def _track_sql(self) -> str:
-        """Neighbours, position jumps, derived speed, fishing class and hours per ping.
-
-        Two windows over (vessel, time): the first gives each ping the speed of the link
-        from its previous ping (one distance per ping); the second looks at the links up to
-        three steps away to decide whether the ping or a neighbour is an isolated position
-        jump, which is then skipped, and attributes time.
-        """
+        """The track of the accepted pings (harmonize.tracks: neighbours, position jumps,
+        derived speed, fishing class, hours, and whether a ping lies at an edge of its
+        vessel's part of this file)."""
         s = self.settings
-        vmax, gap = repr(s.max_speed_kn), repr(s.max_gap_h)
-
-        def hours(a: str, b: str) -> str:
-            return f"((epoch_us({b}) - epoch_us({a})) / 3.6e9)"
-
-        def speed(a: str, b: str) -> str:  # knots from ping a to ping b (columns t_a, lat_a, ...)
-            return (f"(geo_dist_m(lat_{a}, lon_{a}, lat_{b}, lon_{b}) / {M_PER_NMI!r} "
-                    f"/ nullif({hours('t_' + a, 't_' + b)}, 0))")
-
-        # link k -> k+1 is fast when the later ping's speed-in exceeds the limit
-        fast = {("p3", "p2"): "f_p2", ("p2", "p1"): "f_p1", ("p1", "me"): "f_me",
-                ("me", "n1"): "f_n1", ("n1", "n2"): "f_n2", ("n2", "n3"): "f_n3"}
-
-        def spike(p2: str, p1: str, me: str, n1: str, n2: str) -> str:
-            # interior: too fast on both sides; first/last ping: too fast to a neighbour that
-            # itself goes on at a plausible speed
-            return f"""(CASE WHEN h_{p1} AND h_{n1} THEN {fast[(p1, me)]} AND {fast[(me, n1)]}
-                             WHEN h_{n1} THEN {fast[(me, n1)]} AND h_{n2} AND NOT {fast[(n1, n2)]}
-                             WHEN h_{p1} THEN {fast[(p1, me)]} AND h_{p2} AND NOT {fast[(p2, p1)]}
-                             ELSE false END)"""
-
-        flags = ", ".join([
-            f"coalesce(lag(s_in, 2) OVER w > {vmax}, false) AS f_p2",
-            f"coalesce(lag(s_in, 1) OVER w > {vmax}, false) AS f_p1",
-            f"coalesce(s_in > {vmax}, false) AS f_me",
-            f"coalesce(lead(s_in, 1) OVER w > {vmax}, false) AS f_n1",
-            f"coalesce(lead(s_in, 2) OVER w > {vmax}, false) AS f_n2",
-            f"coalesce(lead(s_in, 3) OVER w > {vmax}, false) AS f_n3",
-            "true AS h_me",
-        ] + [f"lag(row, {k}) OVER w IS NOT NULL AS h_p{k}" for k in (1, 2, 3)]
-          + [f"lead(row, {k}) OVER w IS NOT NULL AS h_n{k}" for k in (1, 2, 3)]
-          + [f"lag({c}, {k}) OVER w AS {c}_p{k}" for c in ("t", "lat", "lon") for k in (1, 2)]
-          + [f"lead({c}, {k}) OVER w AS {c}_n{k}" for c in ("t", "lat", "lon") for k in (1, 2)]
-          + ["lag(row) OVER w AS r_p1", "lead(row) OVER w AS r_n1", "lead(s_in) OVER w AS s_out"])
-
-        def pick(c: str, side: str) -> str:
-            near, far, flag = ("p1", "p2", "spike_p1") if side == "p" else ("n1", "n2", "spike_n1")
-            return f"CASE WHEN {flag} THEN {c}_{far} ELSE {c}_{near} END AS {c}_{side}e"
-
-        eff = ", ".join(pick(c, side) for c in ("t", "lat", "lon") for side in ("p", "n"))
-        dt_prev, dt_next = hours("t_pe", "t"), hours("t", "t_ne")
-        # half of each neighbouring interval, capped; no neighbour on a side gives 0 (DuckDB's
-        # least() would skip a NULL, so the cap is spelt out)
-        attributed = (f"(CASE WHEN t_pe IS NULL THEN 0 ELSE least({dt_prev}, {gap}) END) / 2 + "
-                      f"(CASE WHEN t_ne IS NULL THEN 0 ELSE least({dt_next}, {gap}) END) / 2")
-        # derived speed: mean of the speeds from the previous and to the next ping, using only
-        # intervals within max_gap_h (a skipped jump's neighbours are joined directly)
-        me = "t AS t_me, lat AS lat_me, lon AS lon_me"
-        sp_prev = (f"CASE WHEN {dt_prev} <= {gap} THEN CASE WHEN spike_p1 THEN {speed('pe', 'me')} "
-                   f"ELSE s_in END END")
-        sp_next = (f"CASE WHEN {dt_next} <= {gap} THEN CASE WHEN spike_n1 THEN {speed('me', 'ne')} "
-                   f"ELSE s_out END END")
+        pings = ("(SELECT row, vid, code, gear, layer, sog, smin, smax, t, lat, lon "
+                 "FROM q ANTI JOIN dups USING (row) WHERE q.reason IS NULL)")
         return f"""
             CREATE TABLE track AS
-            SELECT row, vid, t, code, gear, layer, sog, spike, r_p1, r_n1, s_in AS sp_in, s_out AS sp_out,
-                   hours, speed, coalesce(speed BETWEEN smin AND smax, false) AS fishing
-            FROM (
-                SELECT *, coalesce(sog, (coalesce(sp_prev, sp_next) + coalesce(sp_next, sp_prev)) / 2) AS speed
-                FROM (
-                    SELECT *, {attributed} AS hours, {sp_prev} AS sp_prev, {sp_next} AS sp_next
-                    FROM (
-                        SELECT *, {me}, {eff} FROM (
-                            SELECT *, {spike('p2', 'p1', 'me', 'n1', 'n2')} AS spike,
-                                   {spike('p3', 'p2', 'p1', 'me', 'n1')} AS spike_p1,
-                                   {spike('p1', 'me', 'n1', 'n2', 'n3')} AS spike_n1
-                            FROM (
-                                SELECT row, vid, code, gear, layer, sog, smin, smax, t, lat, lon, s_in, {flags}
-                                FROM (
-                                    SELECT *, {speed('prev', 'cur')} AS s_in FROM (
-                                        SELECT row, vid, code, gear, layer, sog, smin, smax, t, lat, lon,
-                                               t AS t_cur, lat AS lat_cur, lon AS lon_cur,
-                                               lag(t) OVER w0 AS t_prev, lag(lat) OVER w0 AS lat_prev,
-                                               lag(lon) OVER w0 AS lon_prev
-                                        FROM q ANTI JOIN dups USING (row)
-                                        WHERE q.reason IS NULL
-                                        WINDOW w0 AS (PARTITION BY vid ORDER BY t, row)))
-                                WINDOW w AS (PARTITION BY vid ORDER BY t, row))))))
+            SELECT row, vid, t, lat, lon, code, gear, layer, sog, smin, smax, spike, r_p1, r_n1,
+                   s_in AS sp_in, s_out AS sp_out, hours, speed, fishing, owned, edge
+            FROM ({track_sql(pings, "vid", "t, row", repr(s.max_speed_kn), repr(s.max_gap_h))})
         """
 
     def _track_on_dask(self, con: duckdb.DuckDBPyConnection, scheduler: str | None) -> tuple[pd.DataFrame, int, int]:
@@ -941,6 +890,13 @@ class PingReader:
         con.register("dask_spikes", result.spikes)
         con.execute("CREATE TEMP TABLE track AS SELECT row, r_p1, sp_in, r_n1, sp_out, true AS spike FROM dask_spikes")
         con.unregister("dask_spikes")
+        if result.edges is not None and len(result.edges):
+            con.register("dask_edges", result.edges)
+            con.execute("CREATE TEMP TABLE track_edges AS SELECT * FROM dask_edges")
+            con.unregister("dask_edges")
+        else:
+            con.execute("CREATE TEMP TABLE track_edges AS SELECT row, vid, t, lat, lon, sog, smin, smax, code, gear, "
+                        "layer, true AS owned, 0.0 AS file_hours FROM q LIMIT 0")
         cells = result.cells
         if result.vessels is not None and len(cells):
             # the vessels behind each cell (pseudonyms), so n_vessels merges across files
@@ -1043,17 +999,50 @@ class PingReader:
         return pa.table({"code": pa.chunked_array(parts, pa.int64())})
 
     def _aggregate(self, con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
+        """Fishing hours per cell of the file's pings. The vessels and the speed_derived flag
+        of a part are those of its interior pings: the store's view adds those of the owned
+        edge pings, joined across the files of the source (harmonize.parts)."""
         season, season_year = season_sql(self.study, "t")
         df = con.sql(f"""
             SELECT code, {season_year} AS season_year, {season} AS season, gear, layer AS depth_layer,
                    sum(hours) AS hours, count(DISTINCT vid) AS n_vessels, count(*) AS n_values,
-                   bool_or(sog IS NULL) AS speed_derived, list_sort(list(DISTINCT vessel)) AS vessel_ids
+                   coalesce(bool_or(sog IS NULL) FILTER (WHERE NOT owned), false) AS speed_derived,
+                   coalesce(list_sort(list(DISTINCT vessel) FILTER (WHERE NOT owned)), []::VARCHAR[]) AS vessel_ids
             FROM track LEFT JOIN (SELECT DISTINCT vid, vessel FROM vmap) USING (vid)
             WHERE fishing AND NOT spike AND hours > 0
             GROUP BY ALL ORDER BY ALL
         """).to_arrow_table().to_pandas()
         ix, iy = decode_cells(df["code"].to_numpy(np.int64))
         return df.assign(ix=ix, iy=iy).drop(columns="code")
+
+    def _edges(self, con: duckdb.DuckDBPyConnection) -> tuple[pd.DataFrame, pd.DataFrame]:
+        """The pings at the edges of each vessel's part of the file, and the cell-periods the
+        owned ones lie in (0 hours: the template of their part in the store).
+
+        Reads the table ``track_edges`` (row, vid, t, lat, lon, sog, smin, smax, code, gear,
+        layer, owned, file_hours). Returns (edges, cells): edges has the columns the store
+        keeps (harmonize.parts.EDGE_COLUMNS but the ids, ``row`` for source_row).
+        """
+        season, season_year = season_sql(self.study, "t")
+        edges = con.sql(f"""
+            SELECT m.vessel, e.t, e.lat, e.lon, e.sog, e.smin, e.smax, e.row, e.owned, e.file_hours, e.code,
+                   e.gear, e.layer AS depth_layer, {season_year} AS season_year, {season} AS season
+            FROM track_edges e JOIN (SELECT DISTINCT vid, vessel FROM vmap) m USING (vid)
+            ORDER BY m.vessel, e.t, e.row
+        """).to_arrow_table().to_pandas()
+        ix, iy = decode_cells(edges["code"].to_numpy(np.int64))
+        edges["event_id"] = effort_event_ids(edges["gear"], ix, iy, edges["season_year"], edges["season"],
+                                             edges["depth_layer"])
+        keys = ["ix", "iy", "season_year", "season", "gear", "depth_layer"]
+        owned = edges["owned"].to_numpy(bool)
+        cells = (edges[owned].assign(ix=ix[owned], iy=iy[owned])[keys].drop_duplicates()
+                 .sort_values(keys, kind="stable").reset_index(drop=True))
+        cells = cells.assign(hours=0.0, n_vessels=0, n_values=0, speed_derived=False, edge=True,
+                             vessel_ids=[[] for _ in range(len(cells))])
+        edges = edges.assign(max_speed_kn=self.settings.max_speed_kn, max_gap_h=self.settings.max_gap_h)
+        cols = ["vessel", "t", "lat", "lon", "sog", "smin", "smax", "max_speed_kn", "max_gap_h", "row", "owned",
+                "file_hours", "event_id"]
+        return edges[cols].reset_index(drop=True), cells
 
     def _quarantine(self, con: duckdb.DuckDBPyConnection) -> tuple[pd.DataFrame, pd.DataFrame]:
         """Rejected pings one by one (up to the limit), the rest counted per reason."""
@@ -1072,9 +1061,18 @@ class PingReader:
                                     'first is kept', r0) END, 3 FROM dups
             UNION ALL
             SELECT row, '{ReasonCode.IMPLAUSIBLE_SPEED}',
-                   printf('position jump: reaching this ping from row %d takes %.1f knots and leaving it for row %d '
-                          '%.1f knots, above the %s-knot limit; a bad position fix?',
-                          r_p1, sp_in, r_n1, sp_out, '{s.max_speed_kn:g}'), 4 FROM track WHERE spike
+                   CASE WHEN r_p1 IS NULL THEN
+                        printf('position jump: the first ping of the vessel in this file, leaving it for row %d takes '
+                               '%.1f knots, above the %s-knot limit, and the track goes on from there at a plausible '
+                               'speed; a bad position fix?', r_n1, sp_out, '{s.max_speed_kn:g}')
+                        WHEN r_n1 IS NULL THEN
+                        printf('position jump: the last ping of the vessel in this file, reaching it from row %d takes '
+                               '%.1f knots, above the %s-knot limit, and the track before it goes at a plausible '
+                               'speed; a bad position fix?', r_p1, sp_in, '{s.max_speed_kn:g}')
+                        ELSE
+                        printf('position jump: reaching this ping from row %d takes %.1f knots and leaving it for row %d '
+                               '%.1f knots, above the %s-knot limit; a bad position fix?',
+                               r_p1, sp_in, r_n1, sp_out, '{s.max_speed_kn:g}') END, 4 FROM track WHERE spike
             ) GROUP BY row
         """)
         vcol = _sql_text(self.found.get("vessel_id", "vessel_id"))

@@ -18,6 +18,7 @@ the variable, bad_time for undecodable time steps), counted in bulk.
 from __future__ import annotations
 
 import math
+import time
 from collections.abc import Iterator, Mapping
 from contextlib import contextmanager
 from dataclasses import dataclass, field
@@ -30,6 +31,7 @@ import pandas as pd
 import pyproj
 import xarray as xr
 
+from harmonize import units
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
 from harmonize.adapters.reading import EARLIEST_TIME, file_sha256
 from harmonize.adapters.registry import register
@@ -55,8 +57,6 @@ from harmonize.gridded.cf import (
     is_longitude,
     is_time,
     is_vertical,
-    same_unit,
-    unit_conversion,
 )
 from harmonize.gridded.classic import classic_required_size
 from harmonize.profile import Profile
@@ -66,8 +66,14 @@ from harmonize.tagging import NEAR_BOTTOM, Grid, inside_domain, normalise_lon
 SURFACE = "surface"
 LAYER_MODES = (SURFACE, NEAR_BOTTOM, "by_layer")
 DEFAULT_CHUNK_MB = 128
+#: Seconds allowed for reading one gridded file ([aggregate] max_seconds_per_file). A 2.7 GB
+#: file of 1.4 billion values read in 156 s on 2 cores (docs/sources/gridded.md); ten minutes
+#: leaves room for that four times over and still stops a hostile or broken file.
+DEFAULT_MAX_SECONDS_PER_FILE = 600.0
 #: Working bytes per grid value in a block: stored value, float64 copy, masks, bin keys, weights.
 _BYTES_PER_VALUE = 48
+#: Pixels of a block whose values the unit sanity check (its median) looks at.
+_PLAUSIBLE_SAMPLE_PIXELS = 4096
 _HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
 HDF5_CHUNK_CACHE_BYTES = 4 * 2**20
 _EARLIEST_YEAR = int(EARLIEST_TIME[:4])
@@ -93,6 +99,7 @@ class GriddedSettings:
     layer: str = SURFACE
     chunk_mb: float = DEFAULT_CHUNK_MB
     coordinates: Mapping[str, str] = field(default_factory=dict)
+    max_seconds_per_file: float = DEFAULT_MAX_SECONDS_PER_FILE
 
     @classmethod
     def from_profile(cls, profile: Profile) -> GriddedSettings:
@@ -127,10 +134,11 @@ class GriddedSettings:
                                   f"'{name}' is not a physical variable harmonize knows; use a CF standard "
                                   f"name, one of: {known}")
             target = CANONICAL_VARIABLES[name]
-            if unit is not None and (not isinstance(unit, str) or unit_conversion(target.dimension, unit) is None):
-                raise ConfigError(profile.path, key,
-                                  f"unit {unit!r} is not a {target.dimension} unit harmonize converts to "
-                                  f"{target.unit}")
+            if unit is not None:
+                try:
+                    units.conversion(target.dimension, unit)
+                except units.UnitError as exc:
+                    raise ConfigError(profile.path, key, str(exc)) from None
             mappings.append(VariableMapping(file_name, target, unit, force))
         targets = [m.target.name for m in mappings]
         twice = sorted({t for t in targets if targets.count(t) > 1})
@@ -149,7 +157,12 @@ class GriddedSettings:
         chunk_mb = agg.get("chunk_mb", DEFAULT_CHUNK_MB)
         if isinstance(chunk_mb, bool) or not isinstance(chunk_mb, int | float) or not chunk_mb > 0:
             raise ConfigError(profile.path, "aggregate.chunk_mb", f"expected a number of megabytes above 0, got {chunk_mb!r}")
-        return cls(tuple(mappings), period, layer, float(chunk_mb), dict(profile.column_map("rows")))
+        seconds = agg.get("max_seconds_per_file", DEFAULT_MAX_SECONDS_PER_FILE)
+        if isinstance(seconds, bool) or not isinstance(seconds, int | float) or not 0 < seconds < math.inf:
+            raise ConfigError(profile.path, "aggregate.max_seconds_per_file",
+                              f"expected a finite number of seconds above 0, got {seconds!r}")
+        return cls(tuple(mappings), period, layer, float(chunk_mb), dict(profile.column_map("rows")),
+                   float(seconds))
 
 
 # ------------------------------------------------------------------ file access
@@ -319,6 +332,25 @@ def _empty_geometry(y_dim: str, x_dim: str, n_total: int, extent: str) -> PixelG
                          extent)
 
 
+def unique_pairs(ix: np.ndarray, iy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    """``np.unique(np.stack([ix, iy], axis=1), axis=0, return_inverse=True)``, by one int64 key.
+
+    The key (ix - min) x span_y + (iy - min) sorts as the rows do (ix first), so the result
+    is the same; a row-wise unique sorts structured rows and took seconds for a grid's
+    pixels. Falls back to it where the key would overflow.
+    """
+    ix, iy = np.asarray(ix, np.int64), np.asarray(iy, np.int64)
+    if ix.size == 0:
+        return np.empty((0, 2), np.int64), np.empty(0, np.int64)
+    x0, y0 = int(ix.min()), int(iy.min())
+    span_x, span_y = int(ix.max()) - x0 + 1, int(iy.max()) - y0 + 1
+    if span_x * span_y >= 2**62:
+        uniq, inverse = np.unique(np.stack([ix, iy], axis=1), axis=0, return_inverse=True)
+        return uniq, inverse.ravel()
+    keys, inverse = np.unique((ix - x0) * span_y + (iy - y0), return_inverse=True)
+    return np.stack([keys // span_y + x0, keys % span_y + y0], axis=1), inverse.ravel()
+
+
 def _finish_geometry(dims: tuple[str, str], window: tuple[int, int, int, int], n_total: int,
                      lon: np.ndarray, lat: np.ndarray, area: np.ndarray, study: Study, grid: Grid,
                      extent: str) -> PixelGeometry:
@@ -326,8 +358,7 @@ def _finish_geometry(dims: tuple[str, str], window: tuple[int, int, int, int], n
     inside = inside_domain(study.domain, lon_f, lat_f) & np.isfinite(area.ravel()) & (area.ravel() > 0)
     inside_flat = np.flatnonzero(inside)
     ix, iy = grid.indices(lon_f[inside_flat], lat_f[inside_flat])
-    pairs = np.stack([ix, iy], axis=1)
-    uniq, compact = np.unique(pairs, axis=0, return_inverse=True)
+    uniq, compact = unique_pairs(ix, iy)
     c_lon, c_lat = grid.cell_centres_lonlat(uniq[:, 0], uniq[:, 1]) if len(uniq) else (np.array([]), np.array([]))
     ids = "x" + pd.Series(uniq[:, 0]).astype("string") + "_y" + pd.Series(uniq[:, 1]).astype("string")
     cells = pd.DataFrame({"cell_id": ids.astype(str), "lon": normalise_lon(np.asarray(c_lon)), "lat": np.asarray(c_lat)})
@@ -459,16 +490,17 @@ def plan_variable(ds: xr.Dataset, mapping: VariableMapping, settings: GriddedSet
                                  f"{profile.path.name}, e.g. {name} = {{ name = \"{target.name}\", unit = \"...\" }}")
         unit = mapping.unit
     else:
-        if unit_conversion(target.dimension, file_unit) is None:
-            raise InputFileError(path, f"variable '{name}' has units '{file_unit}', which is not a "
-                                 f"{target.dimension} unit harmonize converts to {target.unit}; correct the file, "
-                                 f"or set force_unit in [variables] of {profile.path.name}")
-        if mapping.unit is not None and not same_unit(target.dimension, file_unit, mapping.unit):
+        try:
+            units.conversion(target.dimension, file_unit)
+        except units.UnitError as exc:
+            raise InputFileError(path, f"variable '{name}': units {exc}; correct the file, "
+                                 f"or set force_unit in [variables] of {profile.path.name}") from None
+        if mapping.unit is not None and not units.same_unit(target.dimension, file_unit, mapping.unit):
             raise InputFileError(path, f"variable '{name}' has units '{file_unit}' but {profile.path.name} says "
                                  f"'{mapping.unit}'; check which is right (use force_unit to override the file)")
         unit = file_unit
     assert unit is not None
-    scale, offset = unit_conversion(target.dimension, unit)  # type: ignore[misc]
+    scale, offset = units.conversion(target.dimension, unit)
     try:
         packing = Packing.from_attrs(var.attrs, var.dtype)
     except PackingError as exc:  # scale_factor = 0: every value would be the offset
@@ -686,9 +718,32 @@ def _blocks(plan: VariablePlan, chunk_mb: float) -> list[tuple[int, int, int, in
             for t0 in range(0, n_t, steps) for r0 in range(0, ny, rows)]
 
 
+class ReadBudget:
+    """The time allowed for reading one file, checked between blocks (a block is at most
+    ``chunk_mb``; one read of the netCDF library cannot be stopped half-way)."""
+
+    def __init__(self, seconds: float, path: Path) -> None:
+        self.seconds = seconds
+        self.path = path
+        self.started = time.monotonic()
+
+    def check(self, what: str) -> None:
+        """Raise InputFileError when the budget is spent; ``what`` says how far the reading got."""
+        spent = time.monotonic() - self.started
+        if spent > self.seconds:
+            raise InputFileError(
+                self.path, f"reading stopped after {spent:.1f} s, over the time budget of {self.seconds:g} s per file "
+                f"([aggregate] max_seconds_per_file), {what}; nothing of this file was written: raise the "
+                "budget for files this big, or split the file")
+
+
 def reduce_variable(ds: xr.Dataset, plan: VariablePlan, chunk_mb: float, path: Path,
-                    progress: ProgressCallback | None = None) -> tuple[pd.DataFrame, MaskCounts]:
-    """Read one variable block by block; per-(period, layer, cell) sums and the mask counts."""
+                    progress: ProgressCallback | None = None,
+                    budget: ReadBudget | None = None) -> tuple[pd.DataFrame, MaskCounts]:
+    """Read one variable block by block; per-(period, layer, cell) sums and the mask counts.
+
+    With ``budget``, the time spent on the file is checked before each block.
+    """
     geo = plan.geometry
     counts = MaskCounts()
     n_t = int(plan.time.year.size)
@@ -707,6 +762,8 @@ def reduce_variable(ds: xr.Dataset, plan: VariablePlan, chunk_mb: float, path: P
     blocks = _blocks(plan, chunk_mb)
     order = [plan.t_dim] + ([plan.z_dim] if plan.z_dim else []) + [geo.y_dim, geo.x_dim]
     for i, (t0, t1, r0, r1) in enumerate(blocks):
+        if budget is not None:
+            budget.check(f"with {i:,} of {len(blocks):,} blocks of '{name}' read")
         sel = (inside_row >= r0) & (inside_row < r1)
         if not sel.any():
             continue
@@ -740,7 +797,11 @@ def reduce_variable(ds: xr.Dataset, plan: VariablePlan, chunk_mb: float, path: P
         if plan.offset != 0.0:
             values += plan.offset
         if usable.any():
-            _check_plausible(values[usable], plan, path)
+            # the unit check on a sample of pixels (every k-th, all steps and levels of the
+            # block): a median needs no more to tell kelvin from degC
+            k = max(1, n_pix // _PLAUSIBLE_SAMPLE_PIXELS)
+            sample = values[:, :, ::k][usable[:, :, ::k]] if k > 1 else values[usable]
+            _check_plausible(sample if sample.size else values[usable], plan, path)
         with np.errstate(invalid="ignore"):
             implausible = usable & ((values < lo) | (values > hi))
         counts.implausible += int(implausible.sum())
@@ -887,6 +948,10 @@ class GriddedAdapter(Adapter):
             "layer": text("Layer mode of 3-D fields.", enum=("surface", "near_bottom", "by_layer"),
                           default="surface"),
             "chunk_mb": number("Block size read at a time (MB).", exclusive_minimum=0),
+            "max_seconds_per_file": number(
+                "Time budget for reading one file (seconds); a file that takes longer is stopped with a "
+                "one-line error and nothing of it is written.", exclusive_minimum=0,
+                default=DEFAULT_MAX_SECONDS_PER_FILE),
         }, "How grid values are aggregated."),
     }
     profile_example = """\
@@ -912,12 +977,14 @@ class GriddedAdapter(Adapter):
         sha = file_sha256(path) if path.is_file() else ""
         events, values, masked, notes = [], [], [], []
         total = used = quarantined = 0
+        budget = ReadBudget(settings.max_seconds_per_file, path)
         with open_netcdf(path) as ds:
             geometries: dict[tuple, PixelGeometry] = {}
             plans = [plan_variable(ds, m, settings, study, grid, path, profile, geometries)
                      for m in settings.variables]
             for plan in plans:
-                sums, counts = reduce_variable(ds, plan, settings.chunk_mb, path, progress)
+                budget.check(f"before reading '{plan.mapping.file_name}'")
+                sums, counts = reduce_variable(ds, plan, settings.chunk_mb, path, progress, budget)
                 name = plan.mapping.file_name
                 if counts.used + counts.masked != plan.n_values:
                     raise RuntimeError(f"internal accounting error for '{name}': {counts} vs {plan.n_values} values")

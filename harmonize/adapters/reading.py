@@ -712,12 +712,11 @@ def _typed(
             values = values.mask(infinite)
         if spec.dimension and spec.name in profile.units:
             unit = profile.units[spec.name]
-            if not units.is_known(spec.dimension, unit):
-                raise ConfigError(
-                    profile.path, f"units.{spec.name}",
-                    f"'{unit}' is not a known {spec.dimension} unit; use one of {', '.join(units.known_units(spec.dimension))}",
-                )
-            values = pd.Series(units.to_canonical(values.to_numpy(), spec.dimension, unit), index=values.index)
+            try:
+                converted = units.to_canonical(values.to_numpy(), spec.dimension, unit)
+            except units.UnitError as exc:
+                raise ConfigError(profile.path, f"[units] {spec.name}", str(exc)) from None
+            values = pd.Series(converted, index=values.index)
         if spec.type == "integer":
             frac = (values % 1 != 0) & values.notna()
             if frac.any():

@@ -23,6 +23,7 @@ from harmonize.adapters.common import (
     STAGE_UNRESOLVED,
     catch_unknown,
     distinct_present,
+    is_in,
     normalise_life_stage,
     reject_outside_domain,
     reject_records_of_events,
@@ -153,7 +154,7 @@ count = "number"
 
         # A quarantined catch row of a live haul makes that haul's catch incomplete, and
         # its taxon (when known) is never zero-filled for that haul.
-        lost = ~rc_ok & rc["event_id"].isin(ev["event_id"][ev_alive]).to_numpy()
+        lost = ~rc_ok & is_in(rc["event_id"], ev["event_id"][ev_alive])
         incomplete = set(rc["event_id"][lost].dropna())
         # A quarantined catch row with no readable haul id (a malformed line, an empty id)
         # may belong to any haul: no haul's catch is known complete, so no absence is inferred.
@@ -178,7 +179,7 @@ count = "number"
         if unattributed:
             # a haul none of whose catch rows could be read has no known catch at all (not
             # even "nothing caught"): it is quarantined rather than stored without its catch
-            unknown_catch = ~hauls["event_id"].isin(distinct_present(catch["event_id"])).to_numpy()
+            unknown_catch = ~is_in(hauls["event_id"], distinct_present(catch["event_id"]))
             rej.add("events", hauls["source_row"].to_numpy()[unknown_catch] - 1, ReasonCode.MISSING_VALUE,
                     f"none of this haul's catch rows could be read, and {unattributed} catch row(s) in "
                     f"{rc_raw.path.name} have no readable haul id, so its catch is unknown; fix the catch "

@@ -19,6 +19,7 @@ import pandas as pd
 from harmonize.audit import metrics as m
 from harmonize.disclosure import Disclosure
 from harmonize.engines import ENGINES
+from harmonize.engines.audit_rules import EVENT_TAGS
 from harmonize.errors import HarmonizeError
 
 
@@ -96,13 +97,20 @@ def _on_dask(inputs: AuditInputs) -> m.Metrics:
     con, rules, max_year = inputs.con, inputs.rules, inputs.max_year
     tables = audit_tables(inputs.live_paths, duplicate_keys(con), max_year, inputs.scheduler)
     events = tables.events
-    merged = con.execute("""SELECT source_id, event_id, CAST(min(n_vessels) AS INTEGER) AS merged_vessels
-                            FROM observations WHERE source_kind = 'effort' GROUP BY ALL""").df()
-    if len(merged):
-        events = events.merge(merged, on=["source_id", "event_id"], how="left")
-        events["n_vessels"] = pd.array(events["merged_vessels"].where(events["merged_vessels"].notna(),
-                                                                      events["n_vessels"]), dtype="Int32")
-        events = events.drop(columns="merged_vessels")
+    # fishing cell-periods are taken whole from the merged view: the files hold their parts,
+    # and the hours of ping tracks joined across files (harmonize.parts) are in no file
+    tags = ", ".join(f"any_value({t}) AS {t}" for t in EVENT_TAGS)
+    year = "" if max_year is None else f" AND season_year <= {int(max_year)}"
+    effort = con.execute(f"""SELECT source_id, event_id, {tags}, true AS effort_bearing, false AS biological,
+                                    CAST(min(n_vessels) AS INTEGER) AS n_vessels
+                             FROM observations WHERE source_kind = 'effort'{year} GROUP BY ALL""").df()
+    if len(effort):
+        effort["season_year"] = pd.array(effort["season_year"], dtype="Int32")
+        effort["n_vessels"] = pd.array(effort["n_vessels"], dtype="Int32")
+        events = pd.concat([events[events["source_kind"].ne("effort").to_numpy()], effort[events.columns]],
+                           ignore_index=True)
+    else:
+        events = events[events["source_kind"].ne("effort").to_numpy()].reset_index(drop=True)
     sensitive = con.execute(f"""SELECT DISTINCT source_id, event_id, TRUE AS sensitive FROM observations
                                 WHERE {m.KEPT_SQL} AND {rules.sensitive_present_sql()}""").df()
     events = events.merge(sensitive, on=["source_id", "event_id"], how="left")

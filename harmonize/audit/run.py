@@ -169,18 +169,23 @@ class AuditResult:
 
     def write_json(self, path: str | Path) -> Path:
         """Write :meth:`to_json_dict` to ``path`` (UTF-8, indented)."""
+        from harmonize.export.atomic import atomic_file
+
         path = Path(path)
-        path.parent.mkdir(parents=True, exist_ok=True)
-        path.write_text(json.dumps(self.to_json_dict(), indent=2, ensure_ascii=False) + "\n", encoding="utf-8")
+        text = json.dumps(self.to_json_dict(), indent=2, ensure_ascii=False) + "\n"
+        with atomic_file(path) as tmp:  # all or nothing: an earlier file stays until this one is complete
+            tmp.write_text(text, encoding="utf-8")
         return path
 
     def write_html(self, path: str | Path) -> Path:
         """Write the self-contained HTML report to ``path``."""
         from harmonize.audit.report import render_html
+        from harmonize.export.atomic import atomic_file
 
         path = Path(path)
-        path.parent.mkdir(parents=True, exist_ok=True)
-        path.write_text(render_html(self), encoding="utf-8")
+        text = render_html(self)
+        with atomic_file(path) as tmp:  # all or nothing: an earlier file stays until this one is complete
+            tmp.write_text(text, encoding="utf-8")
         return path
 
 

@@ -40,17 +40,16 @@ from harmonize import settings
 from harmonize.engines.audit_rules import DUPLICATE_FLAG, EVENT_KEYS, EVENT_MEASURES, INPUT_COLUMNS
 from harmonize.engines.audit_rules import EVENT_TAGS as _EVENT_TAGS
 from harmonize.engines.audit_rules import RECORD_KEYS as _RECORD_KEYS
+from harmonize.geodesy import M_PER_NMI, distance_m
 from harmonize.tagging.season import local_times
+from harmonize.tracks import EDGE, RADIUS
 
-# WGS84 ellipsoid (NIMA TR8350.2, 2000); the same constants as the SQL distance macro
-WGS84_A = 6378137.0
-WGS84_F = 1 / 298.257223563
-_E2 = WGS84_F * (2 - WGS84_F)
-M_PER_NMI = 1852.0  # exact (BIPM SI Brochure, 9th ed. 2019, Table 8)
 _US_PER_H = 3.6e9
 
 #: Columns of the accepted-pings parquet the DuckDB stage writes for the Dask stage.
 PING_COLUMNS = ("row", "vid", "t", "lat", "lon", "sog", "gear", "layer", "smin", "smax", "code")
+#: Columns of the edge pings returned (as the table ``track_edges`` of PingReader).
+EDGE_COLUMNS = ["row", "vid", "t", "lat", "lon", "sog", "smin", "smax", "code", "gear", "layer", "owned", "file_hours"]
 #: Columns of the partial and final fishing-cell tables (as PingReader._aggregate).
 CELL_KEYS = ["code", "season_year", "season", "gear", "depth_layer"]
 
@@ -94,20 +93,6 @@ def dask_client(scheduler: str | None = None) -> Iterator[Any]:
 
 # ---------------------------------------------------------------------------- ping tracks
 
-def distance_m(lat1: np.ndarray, lon1: np.ndarray, lat2: np.ndarray, lon2: np.ndarray) -> np.ndarray:
-    """Distance (m) between WGS84 points: the flat-earth formula with the ellipsoid's radii.
-
-    The same formula as the SQL macro of :mod:`harmonize.adapters.effort` (meridional and
-    prime-vertical radii of curvature at the mean latitude); NaN in, NaN out.
-    """
-    mid = np.radians((lat1 + lat2) / 2)
-    w = 1 - _E2 * np.sin(mid) ** 2
-    dlon = np.fmod(lon2 - lon1 + 540.0, 360.0) - 180.0
-    north = WGS84_A * (1 - _E2) / w**1.5 * np.radians(lat2 - lat1)
-    east = WGS84_A / np.sqrt(w) * np.cos(mid) * np.radians(dlon)
-    return np.sqrt(north**2 + east**2)
-
-
 def ping_track(pings: pd.DataFrame, max_speed_kn: float, max_gap_h: float) -> pd.DataFrame:
     """Neighbours, position jumps, speed, fishing class and attributed hours of each ping.
 
@@ -119,7 +104,8 @@ def ping_track(pings: pd.DataFrame, max_speed_kn: float, max_gap_h: float) -> pd
     a missing speed is the mean of the speeds of the links within ``max_gap_h``.
 
     Returns the pings sorted by vessel, time and row, with added columns spike, r_p1, r_n1,
-    sp_in, sp_out, hours, speed and fishing.
+    sp_in, sp_out, hours, speed, fishing, owned (within ``RADIUS`` pings of an end of the
+    vessel's pings) and edge (within ``EDGE``), as ``harmonize.tracks.track_sql``.
     """
     df = pings.sort_values(["vid", "t", "row"], kind="stable").reset_index(drop=True)
     n = len(df)
@@ -203,7 +189,8 @@ def ping_track(pings: pd.DataFrame, max_speed_kn: float, max_gap_h: float) -> pd
         fishing = (speed_kn >= df["smin"].to_numpy(float)) & (speed_kn <= df["smax"].to_numpy(float))
     return df.assign(spike=is_spike, r_p1=pd.array(np.where(h["p1"], shift(row, 1), np.nan), dtype="Int64"),
                      r_n1=pd.array(np.where(h["n1"], shift(row, -1), np.nan), dtype="Int64"),
-                     sp_in=s_in, sp_out=s_out, hours=hours, speed=speed_kn, fishing=fishing)
+                     sp_in=s_in, sp_out=s_out, hours=hours, speed=speed_kn, fishing=fishing,
+                     owned=(pos < RADIUS) | (left < RADIUS), edge=(pos < EDGE) | (left < EDGE))
 
 
 def _fishing_pings(track: pd.DataFrame, season_names: Sequence[str], season_offsets: Sequence[int],
@@ -211,7 +198,8 @@ def _fishing_pings(track: pd.DataFrame, season_names: Sequence[str], season_offs
     """The pings that count as fishing, keyed by cell (:data:`CELL_KEYS`) in the study calendar.
 
     Only pings classified as fishing, not position jumps, with hours > 0 count, as in
-    ``PingReader._aggregate``.
+    ``PingReader._aggregate``; ``interior`` marks those that are not owned edge pings (whose
+    vessels and derived speeds the store adds when it joins the files of a source).
     """
     use = track[track["fishing"].to_numpy() & ~track["spike"].to_numpy() & (track["hours"].to_numpy() > 0)]
     local = local_times(use["t"], timezone)  # the study calendar (harmonize.tagging.season)
@@ -222,7 +210,7 @@ def _fishing_pings(track: pd.DataFrame, season_names: Sequence[str], season_offs
         "season": np.asarray(season_names, dtype=object)[month],
         "gear": use["gear"].to_numpy(object), "depth_layer": use["layer"].to_numpy(object),
         "hours": use["hours"].to_numpy(float), "vid": use["vid"].to_numpy(),
-        "derived": use["sog"].isna().to_numpy(),
+        "derived": use["sog"].isna().to_numpy(), "interior": ~use["owned"].to_numpy(bool),
     })
 
 
@@ -230,6 +218,7 @@ def fishing_partial(track: pd.DataFrame, season_names: Sequence[str], season_off
                     timezone: str = "UTC") -> pd.DataFrame:
     """Partial fishing-cell sums of whole vessels (columns :data:`CELL_KEYS` and sums)."""
     frame = _fishing_pings(track, season_names, season_offsets, timezone)
+    frame["derived"] &= frame["interior"]
     return frame.groupby(CELL_KEYS, sort=False, dropna=False).agg(
         hours=("hours", "sum"), n_vessels=("vid", "nunique"), n_values=("hours", "size"),
         speed_derived=("derived", "any")).reset_index()
@@ -237,9 +226,9 @@ def fishing_partial(track: pd.DataFrame, season_names: Sequence[str], season_off
 
 def cell_vessels(track: pd.DataFrame, season_names: Sequence[str], season_offsets: Sequence[int],
                  timezone: str = "UTC") -> pd.DataFrame:
-    """The distinct (CELL_KEYS, vid) pairs behind :func:`fishing_partial` (the vessels of each cell)."""
+    """The distinct (CELL_KEYS, vid) pairs of the interior pings behind :func:`fishing_partial`."""
     frame = _fishing_pings(track, season_names, season_offsets, timezone)
-    return frame[[*CELL_KEYS, "vid"]].drop_duplicates(ignore_index=True)
+    return frame.loc[frame["interior"].to_numpy(), [*CELL_KEYS, "vid"]].drop_duplicates(ignore_index=True)
 
 
 @dataclass
@@ -255,18 +244,29 @@ class TrackResult:
     n_derived: int
     #: The distinct (CELL_KEYS, vid) pairs: the vessels behind each cell.
     vessels: pd.DataFrame | None = None
+    #: The pings at the edges of each vessel's track (:data:`EDGE_COLUMNS`).
+    edges: pd.DataFrame | None = None
 
 
 def _bucket(paths: Sequence[str], max_speed_kn: float, max_gap_h: float, season_names: Sequence[str],
             season_offsets: Sequence[int], timezone: str = "UTC"
-            ) -> tuple[pd.DataFrame, pd.DataFrame, int, int, pd.DataFrame]:
+            ) -> tuple[pd.DataFrame, pd.DataFrame, int, int, pd.DataFrame, pd.DataFrame]:
     pings = pa.concat_tables([pq.read_table(p, columns=list(PING_COLUMNS)) for p in paths]).to_pandas()
     track = ping_track(pings, max_speed_kn, max_gap_h)
     kept = ~track["spike"].to_numpy()
     spikes = track.loc[~kept, ["row", "r_p1", "sp_in", "r_n1", "sp_out"]].reset_index(drop=True)
     return (fishing_partial(track, season_names, season_offsets, timezone), spikes,
             int((track["fishing"].to_numpy() & kept).sum()), int((track["sog"].isna().to_numpy() & kept).sum()),
-            cell_vessels(track, season_names, season_offsets, timezone))
+            cell_vessels(track, season_names, season_offsets, timezone),
+            _edge_pings(track))
+
+
+def _edge_pings(track: pd.DataFrame) -> pd.DataFrame:
+    """The edge pings of a track (:data:`EDGE_COLUMNS`), with the hours they count for in the file."""
+    edge = track.loc[track["edge"].to_numpy(), [*EDGE_COLUMNS[:-1], "fishing", "spike", "hours"]].reset_index(drop=True)
+    counted = edge["fishing"].to_numpy() & ~edge["spike"].to_numpy() & (edge["hours"].to_numpy() > 0)
+    edge["file_hours"] = np.where(counted, edge["hours"].to_numpy(float), 0.0)
+    return edge.drop(columns=["fishing", "spike", "hours"])
 
 
 def fishing_hours(buckets: Sequence[Sequence[str]], max_speed_kn: float, max_gap_h: float,
@@ -312,7 +312,8 @@ def fishing_hours(buckets: Sequence[Sequence[str]], max_speed_kn: float, max_gap
                                  "sp_in": pd.Series([], dtype=float), "r_n1": pd.Series([], dtype="Int64"),
                                  "sp_out": pd.Series([], dtype=float)}))
     vessels = pd.concat([p[4] for p in parts], ignore_index=True) if parts else None
-    return TrackResult(cells, spike_frame, sum(p[2] for p in parts), sum(p[3] for p in parts), vessels)
+    edges = pd.concat([p[5] for p in parts], ignore_index=True) if parts else None
+    return TrackResult(cells, spike_frame, sum(p[2] for p in parts), sum(p[3] for p in parts), vessels, edges)
 
 
 # ---------------------------------------------------------------------------- audit

@@ -1,5 +1,7 @@
 """All-or-nothing export files: written under a temporary name beside the target, renamed at the end.
 
+One implementation for every file harmonize writes outside the store: the exports
+(:func:`all_or_nothing`), the quarantine listing and the audit's files (:func:`atomic_file`).
 An export killed, interrupted or stopped by a full disk leaves the earlier file (if any)
 untouched: the new file replaces it only once complete (``os.replace`` within one folder is
 atomic on POSIX file systems), and its sidecars (``<name>-metadata.json``) follow it. A
@@ -11,7 +13,8 @@ from __future__ import annotations
 
 import functools
 import os
-from collections.abc import Callable, Sequence
+from collections.abc import Callable, Iterator, Sequence
+from contextlib import contextmanager
 from dataclasses import replace
 from pathlib import Path
 from typing import Any
@@ -54,6 +57,39 @@ def all_or_nothing(suffixes: Sequence[str]) -> Callable[[Callable[..., ExportRes
     return decorate
 
 
+@contextmanager
+def atomic_file(path: str | Path) -> Iterator[Path]:
+    """Write one file all or nothing: yields a temporary path beside ``path`` to write to.
+
+    When the block ends without an error, the file written there is synced and renamed onto
+    ``path`` (an earlier file is replaced only now, by a complete one); on an error it is
+    removed and ``path`` is untouched. The quarantine listing (``quarantine --csv``) and the
+    audit's JSON and HTML go through here, the exports through :func:`all_or_nothing`.
+    """
+    path = Path(path)
+    path.parent.mkdir(parents=True, exist_ok=True)
+    tmp = partial_path(path)
+    try:
+        try:
+            yield tmp
+        except OSError as exc:
+            if exc.filename is None and exc.errno is not None:  # e.g. pandas' full disk at close
+                raise OSError(exc.errno, exc.strerror or str(exc), str(path)) from exc
+            raise
+        if not tmp.is_file():
+            raise HarmonizeError(f"internal error: nothing was written for {path.name}; please report this")
+        _replace_durably(tmp, path)
+        fsync_dir(path.parent)
+    finally:
+        tmp.unlink(missing_ok=True)
+
+
+def _replace_durably(written: Path, target: Path) -> None:
+    """The bytes of ``written`` on the disk, then ``written`` renamed onto ``target`` (atomic on POSIX)."""
+    fsync_file(written)
+    os.replace(written, target)
+
+
 def _put_in_place(result: ExportResult, tmp: Path, path: Path) -> ExportResult:
     moved: list[Path] = []
     for written in result.files or [result.path]:
@@ -62,8 +98,7 @@ def _put_in_place(result: ExportResult, tmp: Path, path: Path) -> ExportResult:
             moved.append(written)   # not one of the temporary files (written in place by design)
             continue
         target = path.with_name(path.name + written.name[len(tmp.name):])
-        fsync_file(written)
-        os.replace(written, target)  # main file first: a sidecar never describes a file not there
+        _replace_durably(written, target)  # main file first: a sidecar never describes a file not there
         moved.append(target)
     fsync_dir(path.parent)
     if not moved or moved[0] != path:

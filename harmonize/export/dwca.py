@@ -6,19 +6,27 @@ naming one core (row type ``http://rs.tdwg.org/dwc/terms/Event``, with an ``id``
 extensions with a ``coreid``, every column mapped to a term URI, and an EML metadata
 document (``eml.xml``, Ecological Metadata Language 2.2.0). What goes where:
 
-- Event core: one row per sample event and fishing-effort cell-period, with sampling
-  protocol, effort (sampleSizeValue/sampleSizeUnit, samplingEffort), date interval,
-  coordinates and depth range. Gridded model or satellite fields are not biodiversity
-  events and are left out.
+- Event core: one row per sample event, with sampling protocol, effort
+  (sampleSizeValue/sampleSizeUnit, samplingEffort), date interval, coordinates and depth
+  range. Gridded model or satellite fields are not biodiversity events and are left out;
+  fishing-effort cell-periods (not samples of organisms either) only with ``with_effort``.
 - Occurrence extension: one row per event x taxon x life stage; occurrenceStatus "absent"
   where every value is zero (recorded zeros and absences inferred from complete-catch
   protocols), "present" otherwise. individualCount is the number counted, summed over
   behaviours (``behavior`` lists the behaviours seen); for a split plankton sample it is the
   number counted, the raised count being a measurement. catalogNumber carries the provider's
-  record id(s). Rows flagged ``probable_duplicate`` are left out.
+  record id(s). scientificNameID, taxonRank and kingdom come from taxa.csv (``taxon_id``,
+  ``rank``, ``kingdom``) where given. Rows flagged ``probable_duplicate`` are left out.
 - Extended Measurement or Fact (row type ``http://rs.iobis.org/obis/terms/
   ExtendedMeasurementOrFact``): counts, biomass, densities (value / effort), physical values
-  measured at the event and fishing hours.
+  measured at the event (and fishing hours with ``with_effort``). measurementTypeID and
+  measurementUnitID (OBIS terms) come from the shipped mapping ``schemas/dwca_vocabulary.json``
+  to the NERC Vocabulary Server collections P01 and P06; empty where it has no identifier.
+- Identifiers (eventID, occurrenceID, measurementID) are their parts joined by ``:``, each
+  part percent-encoded (RFC 3986, section 2.1) as ``urllib.parse.quote(part, safe="/")`` does,
+  with a leading ``-`` also encoded (``%2D``): no spaces, no ``:`` inside a part, nothing a
+  spreadsheet takes for a formula. :func:`decode_id` splits an id on ``:`` and unquotes each
+  part, giving back the source id, event id, taxon and life stage.
 - Disclosure (:mod:`harmonize.disclosure`, the same gate as every output): fishing-effort
   cell-periods resting on fewer than the study's ``min_vessels`` vessels are not in the
   archive at all (no Event row, no measurement); an event where a sensitive taxon was recorded
@@ -37,9 +45,12 @@ import json
 import math
 import os
 import tempfile
+import urllib.parse
 import zipfile
 from collections.abc import Sequence
 from dataclasses import dataclass
+from functools import cache
+from importlib import resources
 from pathlib import Path
 from typing import Any
 from xml.etree import ElementTree as ET
@@ -74,6 +85,9 @@ ROW_TYPES = {
     "emof": "http://rs.iobis.org/obis/terms/ExtendedMeasurementOrFact",
 }
 FILES = {"event": "event.txt", "occurrence": "occurrence.txt", "emof": "extendedmeasurementorfact.txt"}
+#: Namespace of the OBIS eMoF extension's own terms (measurementTypeID, measurementUnitID).
+OBIS = "http://rs.iobis.org/obis/terms/"
+VOCABULARY_FILE = "dwca_vocabulary.json"
 
 
 def effort_words() -> dict[str, str]:
@@ -92,10 +106,11 @@ class Column:
     term: str
     sql: str
     text: bool = True
+    namespace: str = DWC
 
     @property
     def uri(self) -> str:
-        return DWC + self.term
+        return self.namespace + self.term
 
 
 def _clean(expr: str) -> str:
@@ -104,8 +119,49 @@ def _clean(expr: str) -> str:
     return neutralise_sql(scrubbed)
 
 
+def id_part_sql(expr: str) -> str:
+    """SQL: one part of an identifier, percent-encoded (see the module docstring).
+
+    DuckDB's ``url_encode`` encodes every byte outside the RFC 3986 unreserved characters
+    (``A-Z a-z 0-9 - . _ ~``), as ``urllib.parse.quote(text, safe="")``; ``/`` is put back
+    (it separates the parts of fishing cell-period ids) and a leading ``-`` encoded.
+    """
+    return f"regexp_replace(replace(url_encode(CAST({expr} AS VARCHAR)), '%2F', '/'), '^-', '%2D')"
+
+
+def encode_id_part(text: str) -> str:
+    """Python twin of :func:`id_part_sql` (for readers and tests)."""
+    out = urllib.parse.quote(str(text), safe="/")
+    return "%2D" + out[1:] if out.startswith("-") else out
+
+
+def decode_id(identifier: str) -> list[str]:
+    """The parts of an archive identifier: ``source_id, event_id[, taxon[, life_stage]]``."""
+    return [urllib.parse.unquote(part) for part in identifier.split(":")]
+
+
 def _event_key(prefix: str = "") -> str:
-    return f"{prefix}source_id || ':' || {prefix}event_id"
+    return f"{id_part_sql(prefix + 'source_id')} || ':' || {id_part_sql(prefix + 'event_id')}"
+
+
+@cache
+def vocabulary() -> dict[str, Any]:
+    """The shipped mapping of measurement types and units to NERC vocabulary identifiers."""
+    text = resources.files("harmonize.schemas").joinpath(VOCABULARY_FILE).read_text(encoding="utf-8")
+    return dict(json.loads(text))
+
+
+def _vocabulary_tables(con: Any) -> None:
+    """Temporary tables ``dwca_vocab_types`` (key, id) and ``dwca_vocab_units`` (unit, id)."""
+    vocab = vocabulary()
+    for table, key, section in (("dwca_vocab_types", "key", "measurementType"),
+                                ("dwca_vocab_units", "unit", "measurementUnit")):
+        entries = vocab[section]
+        rows = pd.DataFrame({key: list(entries), "id": [e.get("id") for e in entries.values()]}, dtype=object)
+        con.register("_dwca_vocab", rows)
+        con.execute(f"CREATE OR REPLACE TEMP TABLE {table} AS SELECT CAST({key} AS VARCHAR) AS {key}, "
+                    f"CAST(id AS VARCHAR) AS id FROM _dwca_vocab")
+        con.unregister("_dwca_vocab")
 
 
 def _case(column: str, mapping: dict[str, str], default: str = "NULL") -> str:
@@ -145,7 +201,8 @@ def _event_columns(generalise_deg: float) -> list[Column]:
 
 
 def _occurrence_key() -> str:
-    return f"{_event_key()} || ':' || variable || coalesce(':' || life_stage, '')"
+    return (f"{_event_key()} || ':' || {id_part_sql('variable')} "
+            f"|| coalesce(':' || {id_part_sql('life_stage')}, '')")
 
 
 _COUNTED = "sum(coalesce(count_observed, value)) FILTER (WHERE quantity = 'count')"
@@ -155,8 +212,11 @@ _OCCURRENCE_COLUMNS = [
     Column("occurrenceID", _clean(_occurrence_key())),
     Column("basisOfRecord", "'HumanObservation'"),
     Column("scientificName", _clean("variable")),
-    # the user's authority identifier of the taxon (taxa.csv taxon_id), empty where none is given
-    Column("scientificNameID", _clean("(SELECT t.taxon_id FROM dwca_taxon_ids t WHERE t.taxon = variable)")),
+    # the user's authority identifier, rank and kingdom of the taxon (taxa.csv taxon_id, rank,
+    # kingdom), empty where none is given
+    Column("scientificNameID", _clean("any_value(dwc_taxon_id)")),
+    Column("taxonRank", _clean("any_value(dwc_rank)")),
+    Column("kingdom", _clean("any_value(dwc_kingdom)")),
     Column("lifeStage", _clean("life_stage")),
     Column("occurrenceStatus", "CASE WHEN bool_or(quantity = 'presence' OR value > 0) THEN 'present' ELSE 'absent' END"),
     # the individuals counted, summed over behaviours (birds on the water + birds in flight);
@@ -178,8 +238,10 @@ _EMOF_COLUMNS = [
     Column("occurrenceID", _clean("occurrence_key")),
     Column("measurementID", _clean("measurement_id")),
     Column("measurementType", _clean("measurement_type")),
+    Column("measurementTypeID", _clean("vt.id"), namespace=OBIS),
     Column("measurementValue", "measurement_value", text=False),
     Column("measurementUnit", _clean("measurement_unit")),
+    Column("measurementUnitID", _clean("vu.id"), namespace=OBIS),
     Column("measurementMethod", _clean("measurement_method")),
     Column("measurementRemarks", _clean("measurement_remarks")),
 ]
@@ -189,8 +251,8 @@ def _select(columns: Sequence[Column]) -> str:
     return ", ".join(f'{c.sql} AS "{c.term}"' for c in columns)
 
 
-def _events_sql(study: Study, generalise_deg: float) -> str:
-    kinds = ", ".join(sql_text(k) for k in (*sample_kinds(), *registered_kinds(is_fishing_effort=True)))
+def _events_sql(study: Study, generalise_deg: float, with_effort: bool = False) -> str:
+    kinds = ", ".join(sql_text(k) for k in _archive_kinds(with_effort))
     sampled = "variable_kind = 'taxon' AND quantity IN ('count', 'biomass')"
     return f"""
         WITH ev AS (
@@ -215,12 +277,13 @@ def _occurrences_sql() -> str:
     kinds = ", ".join(sql_text(k) for k in sample_kinds())
     return f"""
         SELECT {_select(_OCCURRENCE_COLUMNS)}
-        FROM {BASE_VIEW}
+        FROM (SELECT b.*, t.taxon_id AS dwc_taxon_id, t.rank AS dwc_rank, t.kingdom AS dwc_kingdom
+              FROM {BASE_VIEW} b LEFT JOIN dwca_taxa t ON t.taxon = b.variable)
         WHERE source_kind IN ({kinds}) AND variable_kind = 'taxon' AND NOT {duplicate_sql()}
         GROUP BY source_id, event_id, variable, life_stage"""
 
 
-def _emof_sql() -> str:
+def _emof_sql(with_effort: bool = False) -> str:
     kinds = ", ".join(sql_text(k) for k in sample_kinds())
     keep = f"source_kind IN ({kinds}) AND NOT {duplicate_sql()}"
     zero_note = "CASE WHEN zero_filled THEN 'inferred zero: target taxon of a complete-catch protocol' END"
@@ -235,49 +298,57 @@ def _emof_sql() -> str:
     what = ("CASE quantity WHEN 'count' THEN 'abundance (count of individuals' || "
             "CASE WHEN count_observed IS NOT NULL THEN ', raised to the whole sample' ELSE '' END || ')' "
             "ELSE quantity END || coalesce(', ' || replace(behavior, '_', ' '), '')")
+    raised = "CASE WHEN count_observed IS NOT NULL THEN 'count_raised' ELSE 'count' END"
+    rid = id_part_sql("record_id")
+    fishing = f"""
+            UNION ALL
+            SELECT source_id, event_id, NULL, {rid}, 'fishing hours', 'fishing_hours', value, unit,
+                   coalesce(protocol, source_kind),
+                   'fishing hours of the cell and period', variable, life_stage, quantity, 3
+            FROM {BASE_VIEW} WHERE source_kind = 'effort' AND value IS NOT NULL""" if with_effort else ""
     return f"""
         SELECT {_select(_EMOF_COLUMNS)} FROM (
-            SELECT source_id, event_id, {_occurrence_key()} AS occurrence_key, record_id AS measurement_id,
+            SELECT source_id, event_id, {_occurrence_key()} AS occurrence_key, {rid} AS measurement_id,
                    {what} AS measurement_type,
+                   CASE quantity WHEN 'count' THEN {raised} ELSE quantity END AS type_key,
                    value AS measurement_value, {taxon_unit} AS measurement_unit,
                    coalesce(protocol, source_kind) AS measurement_method, {zero_note} AS measurement_remarks,
                    variable, life_stage, quantity, 0 AS part
             FROM {taxa} WHERE quantity <> 'presence' AND {shown}
             UNION ALL
-            SELECT source_id, event_id, {_occurrence_key()}, record_id || ':counted',
+            SELECT source_id, event_id, {_occurrence_key()}, {rid} || ':counted',
                    'count of individuals in the counted subsample' || coalesce(', ' || replace(behavior, '_', ' '), ''),
-                   count_observed, 'individuals', 'counted in a subsample of the sample', NULL,
+                   'count_in_subsample', count_observed, 'individuals', 'counted in a subsample of the sample', NULL,
                    variable, life_stage, quantity, 0
             FROM {taxa} WHERE quantity = 'count' AND count_observed IS NOT NULL AND {shown}
             UNION ALL
-            SELECT source_id, event_id, {_occurrence_key()}, record_id || ':fraction',
+            SELECT source_id, event_id, {_occurrence_key()}, {rid} || ':fraction',
                    'subsample fraction counted' || coalesce(', ' || replace(behavior, '_', ' '), ''),
-                   subsample_fraction, 'dimensionless', 'share of the sample that was counted', NULL,
-                   variable, life_stage, quantity, 0
+                   'subsample_fraction', subsample_fraction, 'dimensionless', 'share of the sample that was counted',
+                   NULL, variable, life_stage, quantity, 0
             FROM {taxa} WHERE quantity = 'count' AND subsample_fraction IS NOT NULL AND {shown}
             UNION ALL
-            SELECT source_id, event_id, {_occurrence_key()}, record_id || ':density',
+            SELECT source_id, event_id, {_occurrence_key()}, {rid} || ':density',
                    CASE quantity WHEN 'count' THEN 'abundance' ELSE quantity END || ' per unit sampling effort'
                        || coalesce(', ' || replace(behavior, '_', ' '), ''),
+                   'density:' || quantity || ':' || effort_unit,
                    density, {taxon_unit} || '/' || effort_unit,
                    'value divided by the sampling effort of the event (' || effort_unit || ')', {zero_note},
                    variable, life_stage, quantity, 1
             FROM {taxa} WHERE density IS NOT NULL AND {shown}
             UNION ALL
-            SELECT source_id, event_id, NULL, record_id, variable, value, unit,
+            SELECT source_id, event_id, NULL, {rid}, variable, variable, value, unit,
                    coalesce(protocol, source_kind), NULL, variable, life_stage, quantity, 2
-            FROM {BASE_VIEW} WHERE {keep} AND variable_kind = 'physical' AND value IS NOT NULL
-            UNION ALL
-            SELECT source_id, event_id, NULL, record_id, 'fishing hours', value, unit,
-                   coalesce(protocol, source_kind),
-                   'fishing hours of the cell and period', variable, life_stage, quantity, 3
-            FROM {BASE_VIEW} WHERE source_kind = 'effort' AND value IS NOT NULL
-        )"""
+            FROM {BASE_VIEW} WHERE {keep} AND variable_kind = 'physical' AND value IS NOT NULL{fishing}
+        ) m
+        LEFT JOIN dwca_vocab_types vt ON vt.key = m.type_key
+        LEFT JOIN dwca_vocab_units vu ON vu.unit = m.measurement_unit"""
 
 
 @all_or_nothing(SUFFIXES)
 def export_dwca(study: Study, out: str | Path, filters: ExportFilters | None = None,
-                generalise_deg: float | None = None, disclosure: Disclosure | None = None) -> ExportResult:
+                generalise_deg: float | None = None, disclosure: Disclosure | None = None,
+                with_effort: bool = False) -> ExportResult:
     """Write a Darwin Core Archive (zip) to ``out``; see the module docstring for what it holds.
 
     Parameters
@@ -294,6 +365,10 @@ def export_dwca(study: Study, out: str | Path, filters: ExportFilters | None = N
         the study's ``[confidentiality] generalise_deg``. Ignored when ``disclosure`` is given.
     disclosure
         The disclosure rules (default: the study's; see :mod:`harmonize.disclosure`).
+    with_effort
+        Also write the public fishing-effort cell-periods as Event rows with their fishing
+        hours as measurements (default: left out; they are not samples of organisms, and
+        biodiversity portals read Event rows without occurrences as empty samples).
     """
     if disclosure is None:
         disclosure = Disclosure.for_study(study, generalise_deg=generalise_deg)
@@ -303,13 +378,17 @@ def export_dwca(study: Study, out: str | Path, filters: ExportFilters | None = N
     with open_selection(study, filters, disclosure) as (con, counts), \
             tempfile.TemporaryDirectory(dir=path.parent, prefix=".dwca-") as tmp:
         folder = Path(tmp)
-        con.register("_dwca_taxon_ids", study.taxa[["taxon", "taxon_id"]])
-        con.execute("CREATE OR REPLACE TEMP TABLE dwca_taxon_ids AS "
-                    "SELECT taxon, nullif(taxon_id, '') AS taxon_id FROM _dwca_taxon_ids")
-        con.unregister("_dwca_taxon_ids")
+        taxa = study.taxa.reindex(columns=["taxon", "taxon_id", "rank", "kingdom"]).astype(object)
+        con.register("_dwca_taxa", taxa)
+        con.execute("CREATE OR REPLACE TEMP TABLE dwca_taxa AS "
+                    "SELECT CAST(taxon AS VARCHAR) AS taxon, nullif(CAST(taxon_id AS VARCHAR), '') AS taxon_id, "
+                    "nullif(CAST(rank AS VARCHAR), '') AS rank, nullif(CAST(kingdom AS VARCHAR), '') AS kingdom "
+                    "FROM _dwca_taxa")
+        con.unregister("_dwca_taxa")
+        _vocabulary_tables(con)
         written: dict[str, int] = {}
-        for name, sql in (("event", _events_sql(study, generalise_deg)), ("occurrence", _occurrences_sql()),
-                          ("emof", _emof_sql())):
+        for name, sql in (("event", _events_sql(study, generalise_deg, with_effort)),
+                          ("occurrence", _occurrences_sql()), ("emof", _emof_sql(with_effort))):
             target = str(folder / FILES[name]).replace("'", "''")
             written[name] = int(con.execute(
                 f"COPY ({sql}) TO '{target}' (FORMAT csv, DELIMITER '\t', HEADER true, QUOTE '', ESCAPE '')"
@@ -323,12 +402,18 @@ def export_dwca(study: Study, out: str | Path, filters: ExportFilters | None = N
             "to the whole sample (count / subsample fraction) and the fraction are measurements of the occurrence",
             "catalogNumber holds the provider's own record id(s) where the provider gave one",
             "set a licence, creators and contacts in eml.xml before publishing",
+            "identifiers are their parts joined by ':', each part percent-encoded (RFC 3986; '/' kept, a leading "
+            "'-' encoded): split on ':' and percent-decode each part to get source id, event id, taxon, life stage",
+            "measurementTypeID and measurementUnitID: NERC Vocabulary Server P01 and P06 concepts where harmonize "
+            "knows one (schemas/dwca_vocabulary.json), empty otherwise",
+            ("fishing-effort cell-periods are Event rows with their fishing hours as measurements (with_effort)"
+             if with_effort else "fishing-effort cell-periods are not in the archive (ask for them with --with-effort)"),
         ]
         facts["fishing_values_withheld"] = counts["disclosure"]["effort_rows_withheld"]
-        options = {"generalise_deg": generalise_deg, "files": {FILES[k]: v for k, v in written.items()}, **facts}
+        options = {"generalise_deg": generalise_deg, "with_effort": with_effort, "files": {FILES[k]: v for k, v in written.items()}, **facts}
         meta = provenance(con, study, "dwca", filters, counts, options, notes)
         (folder / "meta.xml").write_bytes(meta_xml())
-        (folder / "eml.xml").write_bytes(eml_xml(study, meta, con))
+        (folder / "eml.xml").write_bytes(eml_xml(study, meta, con, _archive_kinds(with_effort)))
         staging = folder / "archive.zip"
         with zipfile.ZipFile(staging, "w", compression=zipfile.ZIP_DEFLATED) as zf:
             for member in ("meta.xml", "eml.xml", *FILES.values()):
@@ -375,12 +460,18 @@ def meta_xml() -> bytes:
     return ET.tostring(root, encoding="utf-8", xml_declaration=True)
 
 
-def eml_xml(study: Study, meta: dict[str, Any], con: Any) -> bytes:
+def _archive_kinds(with_effort: bool) -> tuple[str, ...]:
+    """The source kinds whose events are Event rows of the archive."""
+    return (*sample_kinds(), *(registered_kinds(is_fishing_effort=True) if with_effort else ()))
+
+
+def eml_xml(study: Study, meta: dict[str, Any], con: Any, kinds: Sequence[str] | None = None) -> bytes:
     """A minimal EML 2.2.0 document: title, coverage, methods, caution and harmonize provenance."""
     ET.register_namespace("eml", EML_NS)
+    listed = ", ".join(sql_text(k) for k in (kinds or _archive_kinds(True)))
     extent = con.execute(
         f"""SELECT min(lon), max(lon), min(lat), max(lat), min(event_start)::DATE, max(event_start)::DATE
-            FROM {BASE_VIEW} WHERE source_kind <> 'gridded'""").fetchall()[0]
+            FROM {BASE_VIEW} WHERE source_kind IN ({listed})""").fetchall()[0]
     root = ET.Element(f"{{{EML_NS}}}eml", {
         "packageId": f"harmonize-{_slug(study.name)}-{meta['generated_at']}", "system": "harmonize",
         "{http://www.w3.org/XML/1998/namespace}lang": "en"})

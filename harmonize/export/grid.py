@@ -9,7 +9,11 @@ once per variable; then per group:
 - ``mean_density``: mean of the events' densities (value / effort);
 - ``share_zero``: share of events where the taxon was recorded or inferred absent
   (count and biomass only);
-- ``total_value`` and ``mean_value``: for physical measurements and fishing hours.
+- ``total_value`` and ``mean_value``: for physical measurements and fishing hours;
+- ``cell_lon``, ``cell_lat`` (WGS84 degrees) and ``cell_x_m``, ``cell_y_m`` (metres in the
+  study CRS): the cell's centre, from the study grid (:class:`harmonize.tagging.Grid`); null
+  where the cell is null. The parquet file also has ``geometry``, the centre as a GeoParquet
+  point (:mod:`harmonize.export.geo`).
 
 Densities of different effort units and source kinds are never averaged together. Probable
 twins (``probable_duplicate``) and presence-only records are left out. The rows are the
@@ -26,7 +30,15 @@ import pandas as pd
 
 from harmonize.disclosure import Disclosure
 from harmonize.export.atomic import all_or_nothing
-from harmonize.export.metadata import ExportResult, kv_metadata_sql, provenance, write_sidecar
+from harmonize.export.geo import CELL_CENTRES, GEOMETRY_COLUMN, define_cell_centres, point_sql
+from harmonize.export.metadata import (
+    ExportResult,
+    describe_columns,
+    kv_metadata_sql,
+    provenance,
+    query_schema,
+    write_sidecar,
+)
 from harmonize.export.safe_csv import copy_safe_csv
 from harmonize.export.selection import (
     BASE_VIEW,
@@ -43,8 +55,12 @@ GROUP = ("source_kind", "cell_id", "season_year", "season", "depth_layer", "vari
          "quantity", "unit", "effort_unit")
 
 
-def grid_query() -> str:
-    """The SQL of the grid table over ``export_base``."""
+CELL_COLUMNS = ("cell_lon", "cell_lat", "cell_x_m", "cell_y_m")
+
+
+def grid_query(geometry: bool = False) -> str:
+    """The SQL of the grid table over ``export_base`` (and :data:`CELL_CENTRES`, see
+    :func:`harmonize.export.geo.define_cell_centres`); ``geometry`` adds the GeoParquet column."""
     group = ", ".join(GROUP)
     per_event = f"""
         SELECT {group}, source_id, event_id,
@@ -52,8 +68,14 @@ def grid_query() -> str:
         FROM {BASE_VIEW}
         WHERE quantity <> 'presence' AND NOT {duplicate_sql()}
         GROUP BY {group}, source_id, event_id"""
+    first = GROUP[: GROUP.index("cell_id") + 1]
+    rest = GROUP[GROUP.index("cell_id") + 1:]
+    columns = ", ".join([*(f"g.{c}" for c in first), *(f"c.{c}" for c in CELL_COLUMNS), *(f"g.{c}" for c in rest),
+                         "g.* EXCLUDE (" + ", ".join(GROUP) + ")"])
+    if geometry:
+        columns += f", {point_sql('c.cell_lon', 'c.cell_lat')} AS {GEOMETRY_COLUMN}"
     return f"""
-        WITH per_event AS ({per_event})
+        WITH per_event AS ({per_event}), summary AS (
         SELECT {group},
                CASE WHEN quantity IN ('count', 'biomass') THEN {density_unit_sql('unit', 'effort_unit')} END
                    AS density_unit,
@@ -65,8 +87,10 @@ def grid_query() -> str:
                sum(value) AS total_value,
                avg(value) AS mean_value
         FROM per_event
-        GROUP BY {group}
-        ORDER BY source_kind, variable, quantity, season_year, season, depth_layer, cell_id"""
+        GROUP BY {group})
+        SELECT {columns}
+        FROM summary g LEFT JOIN {CELL_CENTRES} c ON c.cell_id = g.cell_id
+        ORDER BY g.source_kind, g.variable, g.quantity, g.season_year, g.season, g.depth_layer, g.cell_id"""
 
 
 def read_grid(study: Study, filters: ExportFilters | None = None,
@@ -74,6 +98,7 @@ def read_grid(study: Study, filters: ExportFilters | None = None,
     """The grid table as a DataFrame."""
     filters = filters or ExportFilters()
     with open_selection(study, filters, disclosure) as (con, _counts):
+        define_cell_centres(con, study, BASE_VIEW)
         return con.sql(grid_query()).to_arrow_table().to_pandas()
 
 
@@ -89,14 +114,19 @@ def export_grid(study: Study, out: str | Path, filters: ExportFilters | None = N
             "densities of different source kinds and effort units are kept in separate rows",
             "presence-only records and rows flagged probable_duplicate are left out",
             "rows of events with a sensitive taxon are grouped under an empty cell_id (their cell is withheld)",
+            "cell_lon, cell_lat (WGS84) and cell_x_m, cell_y_m (study CRS, metres) are the cell's centre",
         ]
+        define_cell_centres(con, study, BASE_VIEW)
         options = {"cell_size_km": study.cell_size_km, "crs": study.crs}
         meta = provenance(con, study, "grid", filters, counts, options, notes)
+        parquet = path.suffix.lower() == ".parquet"
+        meta["columns"] = describe_columns(query_schema(con, grid_query(geometry=parquet)))
         files = [path]
-        if path.suffix.lower() == ".parquet":
+        if parquet:
             target = str(path).replace("'", "''")
-            n = con.execute(f"COPY ({grid_query()}) TO '{target}' "
-                            f"(FORMAT parquet, COMPRESSION zstd, {kv_metadata_sql(meta, con, grid_query())})"
+            query = grid_query(geometry=True)
+            n = con.execute(f"COPY ({query}) TO '{target}' "
+                            f"(FORMAT parquet, COMPRESSION zstd, {kv_metadata_sql(meta, con, query)})"
                             ).fetchall()[0][0]
         else:
             columns, n = copy_safe_csv(con, grid_query(), path)

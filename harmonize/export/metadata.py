@@ -10,6 +10,8 @@ from __future__ import annotations
 
 import base64
 import json
+import re
+from collections.abc import Mapping, Sequence
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -21,6 +23,7 @@ import pyarrow as pa
 from harmonize import __version__
 from harmonize.contract import CONTRACT_VERSION
 from harmonize.disclosure import Disclosure
+from harmonize.export.safe_csv import header_text
 from harmonize.export.selection import ExportFilters, sql_text
 from harmonize.files import public_name
 from harmonize.study import Study
@@ -108,8 +111,15 @@ FIXED_UNITS: dict[str, str] = {
     "depth_min_m": "m", "depth_max_m": "m", "bottom_depth_m": "m",
     "n_vessels": "1", "n_values": "1", "count_observed": "1", "subsample_fraction": "1",
     "log_effort": "1", "events": "1", "share_zero": "1", "suppressed_events": "1",
-    "year": "1", "season_year": "1", "source_row": "1",
+    "year": "1", "season_year": "1", "source_row": "1", "source_record_rows": "1",
+    # columns of the GeoPackage layers
+    "area_km2": "km2", "fishing_hours": "h", "n_rows": "1", "ix": "1", "iy": "1", "season_years": "1",
+    "first_season_year": "1", "last_season_year": "1",
+    "cell_lon": "degrees_east", "cell_lat": "degrees_north", "cell_x_m": "m", "cell_y_m": "m",
+    "cell_periods": "1",
 }
+#: Prefixes of exported count columns named after a source kind (``events_trawl``): unit "1".
+_COUNT_PREFIXES = ("events_",)
 #: Exported numeric columns whose unit is given on each row by another column.
 UNIT_COLUMNS: dict[str, str] = {
     "value": "unit", "effort": "effort_unit", "density": "density_unit",
@@ -120,24 +130,115 @@ _UNIT_NOTES = {
     "year": "calendar year (an index, not a quantity)",
     "season_year": "season year (an index, not a quantity)",
     "source_row": "1-based data row of the input file (an index)",
+    "source_record_rows": "1-based data rows of the records file (indices)",
+    "ix": "grid column index in the study CRS (an index, not a quantity)",
+    "iy": "grid row index in the study CRS (an index, not a quantity)",
+    "first_season_year": "season year (an index, not a quantity)",
+    "last_season_year": "season year (an index, not a quantity)",
 }
 
 
-def unit_field_metadata(schema: pa.Schema) -> pa.Schema:
+def column_unit(name: str, numeric: bool, names: Sequence[str],
+                extra: Mapping[str, str] | None = None) -> dict[str, str]:
+    """The unit entry of one exported column: ``{"unit": UDUNITS text}``, ``{"unit_column":
+    column}`` (the column that holds each row's unit) or ``{}`` (not numeric, no unit); with
+    ``unit_note`` for columns that are indices rather than quantities.
+
+    ``extra`` gives units of columns the export names itself (the wide table's taxon columns).
+    """
+    meta: dict[str, str] = {}
+    if extra and name in extra:
+        meta["unit"] = extra[name]
+    elif numeric and name in UNIT_COLUMNS and UNIT_COLUMNS[name] in names:
+        meta["unit_column"] = UNIT_COLUMNS[name]
+    elif numeric and name in FIXED_UNITS:
+        meta["unit"] = FIXED_UNITS[name]
+    elif numeric and name.startswith(_COUNT_PREFIXES):
+        meta["unit"] = "1"
+    if name in _UNIT_NOTES and meta:
+        meta["unit_note"] = _UNIT_NOTES[name]
+    return meta
+
+
+def _is_numeric(t: pa.DataType) -> bool:
+    # a list of numbers (source_record_rows) has the unit of its items
+    if pa.types.is_list(t) or pa.types.is_large_list(t):
+        return _is_numeric(t.value_type)
+    return pa.types.is_integer(t) or pa.types.is_floating(t) or pa.types.is_decimal(t)
+
+
+def unit_field_metadata(schema: pa.Schema, extra: Mapping[str, str] | None = None) -> pa.Schema:
     """``schema`` with the unit of every numeric column in its field metadata: ``unit`` (a
     UDUNITS-2 string) or ``unit_column`` (the column that holds each row's unit)."""
     fields = []
     for f in schema:
-        meta: dict[str, str] = {}
-        numeric = pa.types.is_integer(f.type) or pa.types.is_floating(f.type)
-        if numeric and f.name in UNIT_COLUMNS and UNIT_COLUMNS[f.name] in schema.names:
-            meta["unit_column"] = UNIT_COLUMNS[f.name]
-        elif numeric and f.name in FIXED_UNITS:
-            meta["unit"] = FIXED_UNITS[f.name]
-        if f.name in _UNIT_NOTES and meta:
-            meta["unit_note"] = _UNIT_NOTES[f.name]
-        fields.append(f.with_metadata(meta) if meta else f)
-    return pa.schema(fields)
+        meta = column_unit(f.name, _is_numeric(f.type), schema.names, extra)
+        fields.append(f.with_metadata({**(f.metadata or {}), **{k.encode(): v.encode() for k, v in meta.items()}})
+                      if meta else f)
+    return pa.schema(fields, metadata=schema.metadata)
+
+
+def describe_columns(schema: pa.Schema, extra: Mapping[str, str] | None = None) -> list[dict[str, str]]:
+    """Every column of an export with its type and unit, for the provenance record
+    (``columns``): ``name``, ``type`` (Arrow), and ``unit`` or ``unit_column`` for numbers."""
+    return [{"name": f.name, "type": str(f.type), **column_unit(f.name, _is_numeric(f.type), schema.names, extra)}
+            for f in schema]
+
+
+def query_schema(con: duckdb.DuckDBPyConnection, query: str) -> pa.Schema:
+    """The Arrow schema of a query's result (no rows are read)."""
+    return con.sql(query).limit(0).to_arrow_table().schema
+
+
+def describe_gpkg_columns(path: Path) -> int:
+    """Write the unit of every numeric column of every layer of the GeoPackage ``path`` into
+    its ``gpkg_data_columns`` table (``description``: "unit: km2", or the column holding each
+    row's unit), the GeoPackage Schema extension (OGC 12-128r18, GeoPackage Encoding Standard
+    1.3.1, Annex F.9 "Schema": tables gpkg_data_columns and gpkg_data_column_constraints,
+    registered in gpkg_extensions as gpkg_schema). Returns the number of columns described.
+    """
+    import sqlite3
+
+    numeric_type = re.compile(r"^((TINY|SMALL|MEDIUM|BIG)?INT(EGER)?|REAL|FLOAT|DOUBLE|NUMERIC)\b")
+    con = sqlite3.connect(path)
+    try:
+        with con:
+            con.execute("""CREATE TABLE IF NOT EXISTS gpkg_data_columns (
+                table_name TEXT NOT NULL, column_name TEXT NOT NULL, name TEXT, title TEXT,
+                description TEXT, mime_type TEXT, constraint_name TEXT,
+                CONSTRAINT pk_gdc PRIMARY KEY (table_name, column_name),
+                CONSTRAINT gdc_tn UNIQUE (table_name, name))""")
+            con.execute("""CREATE TABLE IF NOT EXISTS gpkg_data_column_constraints (
+                constraint_name TEXT NOT NULL, constraint_type TEXT NOT NULL, value TEXT, min NUMERIC,
+                min_is_inclusive BOOLEAN, max NUMERIC, max_is_inclusive BOOLEAN, description TEXT,
+                CONSTRAINT gdcc_ntv UNIQUE (constraint_name, constraint_type, value))""")
+            for table in ("gpkg_data_columns", "gpkg_data_column_constraints"):
+                if not con.execute("SELECT 1 FROM gpkg_extensions WHERE table_name = ? AND extension_name = "
+                                   "'gpkg_schema'", [table]).fetchall():
+                    con.execute("INSERT INTO gpkg_extensions VALUES (?, NULL, 'gpkg_schema', "
+                                "'http://www.geopackage.org/spec/#extension_schema', 'read-write')", [table])
+            n = 0
+            layers = [r[0] for r in con.execute(
+                "SELECT table_name FROM gpkg_contents WHERE data_type IN ('features', 'attributes')")]
+            for layer in layers:
+                info = con.execute(f'PRAGMA table_info("{layer.replace(chr(34), chr(34) * 2)}")').fetchall()
+                names = [r[1] for r in info]
+                for _, column, sql_type, *_rest in info:
+                    if column == "fid":
+                        continue
+                    unit = column_unit(column, bool(numeric_type.match(str(sql_type).upper())), names)
+                    if not unit:
+                        continue
+                    text = (f"unit: {unit['unit']}" if "unit" in unit
+                            else f"in the unit named on each row by column {unit['unit_column']}")
+                    if "unit_note" in unit:
+                        text += f"; {unit['unit_note']}"
+                    con.execute("INSERT OR REPLACE INTO gpkg_data_columns (table_name, column_name, name, "
+                                "description) VALUES (?, ?, ?, ?)", [layer, column, column, text])
+                    n += 1
+    finally:
+        con.close()
+    return n
 
 
 def kv_metadata_sql(meta: dict[str, Any], con: duckdb.DuckDBPyConnection | None = None,
@@ -151,7 +252,7 @@ def kv_metadata_sql(meta: dict[str, Any], con: duckdb.DuckDBPyConnection | None 
     """
     entries = {PARQUET_KEY: json.dumps(meta, default=str)}
     if con is not None and query is not None:
-        schema = unit_field_metadata(con.sql(query).limit(0).to_arrow_table().schema)
+        schema = unit_field_metadata(query_schema(con, query))
         entries["ARROW:schema"] = base64.b64encode(schema.serialize().to_pybytes()).decode("ascii")
     body = ", ".join(f"{sql_text(k)}: {sql_text(v)}" for k, v in entries.items())
     return f"KV_METADATA {{{body}}}"
@@ -162,11 +263,33 @@ def sidecar_path(path: Path) -> Path:
     return path.with_name(path.name + "-metadata.json")
 
 
-def write_sidecar(path: Path, meta: dict[str, Any], columns: list[tuple[str, str]] | None = None) -> Path:
+def csvw_name(title: str) -> str:
+    """A CSVW column ``name`` for a header text: every character but ASCII letters, digits and
+    ``_`` percent-encoded as UTF-8 (``Ostravix keldensis (per km2)`` ->
+    ``Ostravix%20keldensis%20%28per%20km2%29``), and a leading ``_`` too (names starting with
+    ``_`` are reserved). This is the default name CSVW derives from a title (W3C, Metadata
+    Vocabulary for Tabular Data, 2015, section 5.6, ``name``: the URI-template variable form,
+    RFC 6570 ``varname``); ``urllib.parse.unquote`` gives the title back.
+    """
+    out = []
+    for i, ch in enumerate(title):
+        if (ch.isascii() and (ch.isalnum() or ch == "_")) and not (i == 0 and ch == "_"):
+            out.append(ch)
+        else:
+            out.append("".join(f"%{b:02X}" for b in ch.encode("utf-8")))
+    return "".join(out) or "_"
+
+
+def write_sidecar(path: Path, meta: dict[str, Any], columns: list[tuple[str, str]] | None = None,
+                  units: Mapping[str, str] | None = None) -> Path:
     """Write the metadata of a CSV export beside it; returns the sidecar's path.
 
-    The document is CSVW-shaped (``@context``, ``url``, ``tableSchema``) with the harmonize
-    provenance under ``dc:provenance``, so CSVW tools and people can both read it.
+    The document is CSVW metadata (W3C, Metadata Vocabulary for Tabular Data, 2015): ``url``,
+    and a ``tableSchema`` whose columns have a valid ``name`` (:func:`csvw_name`), the header
+    text as ``titles``, the ``datatype``, ``separator`` ``|`` for list columns (CSV has no
+    lists), and the unit of every numeric column as ``schema:unitText`` (a fixed unit) or in
+    ``dc:description`` (the column that holds each row's unit). The harmonize provenance is
+    under ``dc:provenance``. ``units`` gives units of columns the export names itself.
     """
     doc: dict[str, Any] = {
         "@context": "http://www.w3.org/ns/csvw",
@@ -175,7 +298,23 @@ def write_sidecar(path: Path, meta: dict[str, Any], columns: list[tuple[str, str
         "dc:provenance": meta,
     }
     if columns:
-        doc["tableSchema"] = {"columns": [{"name": c, "datatype": _csvw_type(t)} for c, t in columns]}
+        names = [c for c, _ in columns]
+        cols = []
+        for name, sql_type in columns:
+            is_list = sql_type.upper().endswith("[]")
+            datatype = _csvw_type(sql_type[:-2] if is_list else sql_type)
+            col: dict[str, Any] = {"name": csvw_name(name), "titles": header_text(name), "datatype": datatype}
+            if is_list:
+                col["separator"] = "|"
+            unit = column_unit(name, datatype in ("double", "integer"), names, units)
+            if "unit" in unit:
+                col["schema:unitText"] = unit["unit"]
+            if "unit_column" in unit:
+                col["dc:description"] = f"in the unit named on each row by column {unit['unit_column']}"
+            if "unit_note" in unit:
+                col["dc:description"] = unit["unit_note"]
+            cols.append(col)
+        doc["tableSchema"] = {"columns": cols}
     target = sidecar_path(path)
     target.write_text(json.dumps(doc, indent=2, default=str), encoding="utf-8")
     return target

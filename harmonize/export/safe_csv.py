@@ -60,7 +60,7 @@ def copy_safe_csv(con: duckdb.DuckDBPyConnection, query: str, path: str | Path,
         t = str(sql_type).upper()
         if t.endswith("[]"):
             select.append(f"{neutralise_sql(f'array_to_string({ident}, {sep})')} AS {alias}")
-            columns.append((name, "VARCHAR"))
+            columns.append((name, t))  # a list: its sidecar says the separator
         elif t.startswith("TIMESTAMP"):
             select.append(f"{iso_utc_sql(ident, zoned=t != 'TIMESTAMP')} AS {alias}")
             columns.append((name, t))
@@ -85,6 +85,11 @@ def iso_utc_sql(expr: str, zoned: bool = True) -> str:
     utc = f"timezone('UTC', {expr})" if zoned else expr
     return (f"CASE WHEN microsecond({utc}) % 1000000 = 0 THEN strftime({utc}, '%Y-%m-%dT%H:%M:%SZ') "
             f"ELSE strftime({utc}, '%Y-%m-%dT%H:%M:%S.%fZ') END")
+
+
+def header_text(name: str) -> str:
+    """The header cell :func:`copy_safe_csv` writes for column ``name``."""
+    return _neutral_name(name)
 
 
 def _neutral_name(name: str) -> str:

@@ -46,7 +46,10 @@ from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import (
     PARQUET_KEY,
     ExportResult,
+    describe_columns,
     provenance,
+    query_schema,
+    unit_field_metadata,
     write_sidecar,
 )
 from harmonize.export.safe_csv import copy_safe_csv
@@ -430,6 +433,7 @@ def export_wide(study: Study, out: str | Path, filters: ExportFilters | None = N
         dups = con.execute(f"SELECT count(*) FROM {BASE_VIEW} WHERE {_samples_sql()} AND variable_kind = 'taxon' "
                            f"AND {duplicate_sql()}").fetchall()[0][0]
         units = {t: _unit_text(quantity, t[t.rindex("(") + 1:-1]) for t in taxa}
+        covariate_units = _covariate_units(con, physical, extra)
         notes += [
             f"one column per taxon and unit: 'Taxon (per km2)' holds {quantity} per unit effort (value / effort) of "
             "events whose effort is in km2, and so on for each effort unit; 'Taxon (count, no effort)' (or kg) holds "
@@ -442,25 +446,34 @@ def export_wide(study: Study, out: str | Path, filters: ExportFilters | None = N
         options = {"quantity": quantity, "by_life_stage": by_life_stage, "taxon_columns": taxa, "taxon_units": units,
                    "covariate_columns": covs, "rows_probable_duplicate_excluded": int(dups)}
         meta = provenance(con, study, "wide", filters, counts, options, notes)
+        # every column with its unit (the taxon columns' from their labels, the event columns' fixed)
+        meta["columns"] = describe_columns(query_schema(con, runs[0]), {**covariate_units, **units})
         files = [path]
         if path.suffix.lower() == ".parquet":
-            # written by Arrow in every case, so that each taxon field carries its unit
-            n_events = _write_parquet_runs(con, runs, path, meta, spill, units)
+            # written by Arrow in every case, so that each field carries its unit
+            n_events = _write_parquet_runs(con, runs, path, meta, spill, {**covariate_units, **units})
         else:
             columns, n_events = _write_csv_runs(con, runs, path, spill)
-            files.append(_with_units(write_sidecar(path, meta, columns), units))
+            files.append(write_sidecar(path, meta, columns, {**covariate_units, **units}))
     return ExportResult("wide", path, int(n_events), meta, files)
 
 
-def _with_units(sidecar: Path, units: dict[str, str]) -> Path:
-    """Add each taxon column's unit to a CSVW sidecar (``titles`` and ``unit`` of the column)."""
-    doc = json.loads(sidecar.read_text(encoding="utf-8"))
-    for col in doc.get("tableSchema", {}).get("columns", []):
-        if col["name"] in units:
-            col["titles"] = col["name"]
-            col["unit"] = units[col["name"]]
-    sidecar.write_text(json.dumps(doc, indent=2, default=str), encoding="utf-8")
-    return sidecar
+def _covariate_units(con: Any, physical: Sequence[str], extra: Sequence[str]) -> dict[str, str]:
+    """Units of the physical columns (the store's unit of the variable) and of the linked
+    ``gridded_<variable>[__<source>]`` columns (the gridded variable's unit); covariates a
+    caller gives have no unit harmonize knows."""
+    rows = con.execute("""SELECT variable, source_kind = 'gridded' AS gridded,
+                                  string_agg(DISTINCT unit, ' or ' ORDER BY unit) AS unit
+                           FROM observations WHERE variable_kind = 'physical' AND unit IS NOT NULL
+                           GROUP BY ALL""").fetchall()
+    own = {v: u for v, g, u in rows if not g}
+    grid = {v: u for v, g, u in rows if g}
+    out = {p: own[p] for p in physical if p in own}
+    for column in extra:
+        variable = column.removeprefix("gridded_").split("__", 1)[0]
+        if column.startswith("gridded_") and variable in grid:
+            out[column] = grid[variable]
+    return out
 
 
 def _write_parquet_runs(con: Any, runs: list[str], path: Path, meta: dict[str, Any], spill: Path,
@@ -479,9 +492,7 @@ def _write_parquet_runs(con: Any, runs: list[str], path: Path, meta: dict[str, A
     for key in ("source_id", "event_id"):
         i = schema.get_field_index(key)
         schema = schema.set(i, schema.field(i).with_nullable(False))
-    for name, unit in (units or {}).items():
-        i = schema.get_field_index(name)
-        schema = schema.set(i, schema.field(i).with_metadata({"unit": unit}))
+    schema = unit_field_metadata(schema, units)
     n = 0
     with pq.ParquetWriter(path, schema.with_metadata({PARQUET_KEY: json.dumps(meta, default=str)}),
                           compression="zstd", compression_level=3) as writer:   # DuckDB's zstd level

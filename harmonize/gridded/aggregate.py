@@ -109,22 +109,32 @@ class CellPeriodSums:
         local, inverse = np.unique(step_period, return_inverse=True)
         n_z = values.shape[1]
         layer = np.zeros(n_z, np.int64) if level_layer is None else np.asarray(level_layer, np.int64)
-        key = ((inverse[:, None, None] * self.n_layers + layer[None, :, None]) * self.n_cells
-               + np.asarray(pixel_cell, np.int64)[None, None, :])
-        key = key[valid]
-        w = np.broadcast_to(weight[None, :, :], values.shape)[valid]
-        x = values[valid]
-        size = local.size * self.n_layers * self.n_cells
-        sum_w = np.bincount(key, weights=w, minlength=size)
-        sum_wx = np.bincount(key, weights=w * x, minlength=size)
-        n = np.bincount(key, minlength=size)
-        hit = np.flatnonzero(n)
-        p_local, rest = np.divmod(hit, self.n_layers * self.n_cells)
-        lay, cell = np.divmod(rest, self.n_cells)
-        self._parts.append(pd.DataFrame({
-            "period": local[p_local], "layer": lay, "cell": cell,
-            "sum_w": sum_w[hit], "sum_wx": sum_wx[hit], "n": n[hit],
-        }))
+        # levels below the deepest layer (-1) hold no valid value: left out of the keys
+        levels = np.flatnonzero(layer >= 0)
+        key = (layer[levels, None] * self.n_cells + np.asarray(pixel_cell, np.int64)[None, :]).ravel()
+        w = np.asarray(weight, np.float64)[levels]
+        size = self.n_layers * self.n_cells
+        x = np.where(valid, values, 0.0)
+        lv = slice(None) if levels.size == n_z else levels  # a slice: no copy of the block
+        for j, period in enumerate(local.tolist()):
+            steps = np.flatnonzero(inverse == j)
+            run = slice(int(steps[0]), int(steps[-1]) + 1) if steps[-1] - steps[0] + 1 == steps.size else steps
+            # per-pixel sums over the period's time steps first (a reduction along one axis),
+            # then pixels (and levels) into cells: one weighted bincount over Z x P entries
+            # per quantity instead of one int64 key and three bincounts over every value
+            n_zp = valid[run][:, lv].sum(axis=0)
+            if not n_zp.any():
+                continue
+            s_zp = x[run][:, lv].sum(axis=0)
+            sum_w = np.bincount(key, weights=(w * n_zp).ravel(), minlength=size)
+            sum_wx = np.bincount(key, weights=(w * s_zp).ravel(), minlength=size)
+            n = np.bincount(key, weights=n_zp.ravel(), minlength=size).astype(np.int64)  # exact below 2**53
+            hit = np.flatnonzero(n)
+            lay, cell = np.divmod(hit, self.n_cells)
+            self._parts.append(pd.DataFrame({
+                "period": np.full(hit.size, period, dtype=local.dtype), "layer": lay, "cell": cell,
+                "sum_w": sum_w[hit], "sum_wx": sum_wx[hit], "n": n[hit],
+            }))
 
     def result(self) -> pd.DataFrame:
         """period, layer, cell, sum_w, sum_wx, n summed over all chunks."""

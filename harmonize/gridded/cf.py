@@ -1,4 +1,4 @@
-"""CF conventions: packed values, fill and valid ranges, time axes and calendars, units.
+"""CF conventions: packed values, fill and valid ranges, time axes and calendars, canonical variables.
 
 References
 ----------
@@ -73,46 +73,8 @@ CANONICAL_VARIABLES: dict[str, CanonicalVariable] = {
     )
 }
 
-# unit spelling -> (scale, offset) to the dimension's canonical unit: canonical = v * scale + offset.
-# 0 degC = 273.15 K exactly (BIPM SI Brochure, 9th ed. 2019, section 2.3.1); 1 ug/L = 1 mg m-3
-# and 1 kg m-3 = 1e6 mg m-3 (SI prefixes); percent = 0.01.
-_KELVIN = (1.0, -273.15)
-_CELSIUS = (1.0, 0.0)
-UNIT_SPELLINGS: dict[str, dict[str, tuple[float, float]]] = {
-    "temperature": {
-        **dict.fromkeys(("K", "kelvin", "Kelvin", "degK", "deg_K", "degrees_K", "degree_K"), _KELVIN),
-        **dict.fromkeys(("degC", "deg_C", "degrees_C", "degree_C", "degree_Celsius", "degrees_Celsius",
-                         "Celsius", "celsius", "C", "°C", "deg C", "degrees C"), _CELSIUS),
-    },
-    "concentration": {
-        **dict.fromkeys(("mg m-3", "mg m^-3", "mg/m3", "mg/m^3", "mg.m-3", "milligram m-3",
-                         "milligrams m-3", "ug L-1", "ug/L", "ug/l", "ug l-1", "µg/L", "µg L-1"),
-                        (1.0, 0.0)),
-        **dict.fromkeys(("kg m-3", "kg/m3", "kg m^-3"), (1e6, 0.0)),
-        **dict.fromkeys(("g m-3", "g/m3", "mg L-1", "mg/L", "mg/l"), (1e3, 0.0)),
-    },
-    "fraction": {
-        **dict.fromkeys(("1", "fraction", "dimensionless"), (1.0, 0.0)),
-        **dict.fromkeys(("%", "percent"), (0.01, 0.0)),
-    },
-    "salinity": dict.fromkeys(("1", "psu", "PSU", "1e-3", "0.001", "pss-78", "PSS-78"), (1.0, 0.0)),
-}
-
-
-def unit_conversion(dimension: str, unit: str) -> tuple[float, float] | None:
-    """(scale, offset) from ``unit`` to the canonical unit of ``dimension``; None if unknown."""
-    table = UNIT_SPELLINGS[dimension]
-    text = " ".join(str(unit).split())
-    if text in table:
-        return table[text]
-    folded = {k.casefold(): v for k, v in table.items() if k not in ("K", "C")}
-    return folded.get(text.casefold())
-
-
-def same_unit(dimension: str, a: str, b: str) -> bool:
-    """Whether two spellings name the same unit (same conversion to canonical)."""
-    ca, cb = unit_conversion(dimension, a), unit_conversion(dimension, b)
-    return ca is not None and ca == cb
+# Unit texts (the variables' `units` attributes and a profile's unit / force_unit) are read by
+# the one registry, harmonize.units (pint with UDUNITS spellings).
 
 
 # ------------------------------------------------------------------ packed values

@@ -62,9 +62,14 @@ class Grid:
         boxes = shapely.segmentize(self.cell_polygons(ix, iy), self.cell_size_m / densify)
         return shapely.transform(boxes, lambda xy: np.column_stack(self._to_lonlat.transform(xy[:, 0], xy[:, 1])))
 
-    def cell_centres_lonlat(self, ix: np.ndarray, iy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+    def cell_centres_xy(self, ix: np.ndarray, iy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Cell centres in the grid CRS (metres)."""
         s = self.cell_size_m
-        return self._to_lonlat.transform((ix + 0.5) * s, (iy + 0.5) * s)
+        return (np.asarray(ix, float) + 0.5) * s, (np.asarray(iy, float) + 0.5) * s
+
+    def cell_centres_lonlat(self, ix: np.ndarray, iy: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """Cell centres in WGS84 (the centre of :meth:`cell_centres_xy`, unprojected)."""
+        return self._to_lonlat.transform(*self.cell_centres_xy(ix, iy))
 
     def cells_covering(self, geometry: shapely.Geometry) -> pd.DataFrame:
         """Cells whose centre lies in ``geometry`` (WGS84): the study's domain cells.

@@ -1,0 +1,201 @@
+"""The store's physical layout: partition folders, part files and the metadata each part carries.
+
+Only the store (:mod:`harmonize.store`, :mod:`harmonize.repair`) uses this module: the
+pipeline hands Arrow tables to :meth:`harmonize.store.Store.write_observations` and knows no
+path, file name or partitioning.
+
+Observation rows are written as hive-partitioned zstd parquet,
+``source_kind=<kind>/season_year=<year>/part-<uuid>.parquet``. Every part file carries one
+key-value metadata entry, :data:`METADATA_KEY` (``"harmonize"``), holding JSON versioned by its
+own ``version`` field (the way GeoParquet versions its ``"geo"`` entry): the contract and store
+versions, the ingest that wrote the file with its provenance (source, input files and their
+sha256, configuration digest, row accounting), and the file's own row count. A file read
+alone says where it came from, and the manifest can be rebuilt from the files
+(:func:`harmonize.repair.rebuild`).
+"""
+
+from __future__ import annotations
+
+import json
+import queue
+import re
+import threading
+import uuid
+from collections.abc import Iterable, Mapping
+from pathlib import Path
+from typing import Any
+
+import duckdb
+import numpy as np
+import pyarrow as pa
+import pyarrow.compute as pc
+import pyarrow.parquet as pq
+
+#: The key of the part files' key-value metadata.
+METADATA_KEY = "harmonize"
+#: Version of the JSON under :data:`METADATA_KEY` (major.minor: a reader refuses another major).
+METADATA_VERSION = "1.0"
+#: Fields every part file's metadata holds (see docs/store.md, "Part-file metadata").
+REQUIRED_FIELDS = ("version", "contract_version", "store_version", "tool_version", "ingest_id",
+                   "source_id", "source_kind", "rows", "ingest")
+#: Fields of the ``ingest`` object: one row of the ``ingests`` table, less what only the whole
+#: set of files knows (records_written, records_zero_filled: the sums over the files).
+INGEST_FIELDS = ("ingest_id", "source_id", "source_kind", "provider_type", "file_name", "file_path",
+                 "file_sha256", "inputs_sha256", "config_sha256", "started_at", "rows_read",
+                 "rows_accepted", "rows_quarantined", "profile_file", "tool_version")
+
+_PLAIN_PARTITION = re.compile(r"[A-Za-z0-9_.-]+")
+_ROW_GROUP_ROWS = 500_000
+
+
+def part_metadata(provenance: Mapping[str, Any], rows: int | None, zero_filled: int | None) -> str:
+    """The JSON text of one part file's metadata: the ingest's ``provenance`` and the file's counts."""
+    doc = dict(provenance)
+    doc["rows"] = rows
+    doc["zero_filled"] = zero_filled
+    return json.dumps(doc, sort_keys=True, default=str)
+
+
+def read_part_metadata(path: str | Path) -> dict[str, Any] | None:
+    """The metadata of one part file, or None when it has none (a file of store version < 5).
+
+    Raises OSError / ArrowException when the footer cannot be read, ValueError when the
+    entry is not JSON.
+    """
+    kv = pq.read_metadata(path).metadata or {}
+    raw = kv.get(METADATA_KEY.encode())
+    if raw is None:
+        return None
+    doc = json.loads(raw.decode("utf-8"))
+    if not isinstance(doc, dict):
+        raise ValueError(f"the {METADATA_KEY!r} metadata is not a JSON object")
+    return doc
+
+
+def metadata_problem(doc: dict[str, Any] | None, footer_rows: int) -> str | None:
+    """Why a part file's metadata cannot rebuild its manifest entry, or None (words follow "file <path> ")."""
+    if doc is None:
+        return f"has no {METADATA_KEY!r} key-value metadata (written before store version 5)"
+    missing = [f for f in REQUIRED_FIELDS if f not in doc]
+    if missing:
+        return f"has {METADATA_KEY!r} metadata without {', '.join(missing)}"
+    major = str(doc["version"]).split(".")[0]
+    if major != METADATA_VERSION.split(".")[0]:
+        return f"has {METADATA_KEY!r} metadata of version {doc['version']}, this harmonize reads {METADATA_VERSION}"
+    ingest = doc["ingest"]
+    if not isinstance(ingest, dict) or any(f not in ingest for f in INGEST_FIELDS):
+        return f"has {METADATA_KEY!r} metadata with an incomplete ingest record"
+    for field in ("ingest_id", "source_id", "source_kind"):
+        if ingest[field] != doc[field]:
+            return f"has {METADATA_KEY!r} metadata whose {field} ({doc[field]}) differs from its ingest's ({ingest[field]})"
+    if doc["rows"] is not None and int(doc["rows"]) != footer_rows:
+        return f"holds {footer_rows:,} rows, its {METADATA_KEY!r} metadata says {int(doc['rows']):,}"
+    return None
+
+
+def write_partitions(table: pa.Table, folder: Path, provenance: Mapping[str, Any] | None = None) -> None:
+    """Write observation rows as hive-partitioned zstd parquet under ``folder``.
+
+    Rows are sorted by source_kind, season_year, event_start, event_id. Only the sort keys
+    and a row index go through DuckDB's sort; the rows are then taken in that order by
+    Arrow and each partition, a contiguous slice, is copied to its own file. Sorting the
+    whole rows inside a partitioned COPY held about 3.5x the table in memory (BENCHMARKS.md).
+    With ``provenance`` each file carries :data:`METADATA_KEY` metadata (:func:`part_metadata`).
+    """
+    if table.num_rows == 0:
+        return
+    con = duckdb.connect()
+    try:
+        keys = pa.table({"i": np.arange(table.num_rows, dtype=np.int64), "k": table["source_kind"],
+                         "y": table["season_year"], "t": table["event_start"], "e": table["event_id"]})
+        con.register("sort_keys", keys)
+        parts = con.execute("SELECT k, y, count(*) FROM sort_keys GROUP BY ALL ORDER BY k, y").fetchall()
+        if not all(k is not None and _PLAIN_PARTITION.fullmatch(k) for k, _, _ in parts):
+            _write_partitions_sorted_in_copy(con, table, folder, provenance)
+            return
+        order = con.sql("SELECT i FROM sort_keys ORDER BY k, y, t, e, i").to_arrow_table()["i"]
+        con.unregister("sort_keys")
+        del keys
+        in_order = np.array_equal(order.to_numpy(), np.arange(table.num_rows))
+        ordered = table if in_order else table.take(order)
+        offset = 0
+        for kind, year, n in parts:
+            target = folder / f"source_kind={kind}" / f"season_year={'__HIVE_DEFAULT_PARTITION__' if year is None else year}"
+            target.mkdir(parents=True, exist_ok=True)
+            part = ordered.slice(offset, n)
+            con.register("part", part.drop_columns(["source_kind", "season_year"]))
+            name = str(target / f"part-{uuid.uuid4()}.parquet").replace("'", "''")
+            kv = _kv_option(provenance, n, _zero_filled(part) if provenance is not None else None)
+            con.execute(f"COPY part TO '{name}' (FORMAT parquet, COMPRESSION zstd, "
+                        f"ROW_GROUP_SIZE {_ROW_GROUP_ROWS}{kv})")
+            con.unregister("part")
+            offset += n
+    finally:
+        con.close()
+
+
+def write_blocks(blocks: Iterable[pa.Table], folder: Path,
+                 provenance: Mapping[str, Any] | None = None) -> tuple[int, int]:
+    """Write blocks of observation rows with :func:`write_partitions`, on a writer thread.
+
+    The next block is made while the last one is written (both mostly in DuckDB, outside
+    the GIL); at most two blocks wait at once. Each block becomes its own file(s) in its
+    partition(s). Returns (rows written, zero-filled rows written). An error of either side
+    is raised here.
+    """
+    waiting: queue.Queue[pa.Table | None] = queue.Queue(maxsize=1)
+    errors: list[BaseException] = []
+
+    def writer() -> None:
+        while (block := waiting.get()) is not None:
+            if not errors:  # after an error, drain without writing
+                try:
+                    write_partitions(block, folder, provenance)
+                except BaseException as exc:  # noqa: BLE001  (re-raised by the caller below)
+                    errors.append(exc)
+
+    thread = threading.Thread(target=writer, name="harmonize-writer", daemon=True)
+    thread.start()
+    rows = zeros = 0
+    try:
+        for block in blocks:
+            if errors:
+                break
+            rows += block.num_rows
+            zeros += _zero_filled(block)
+            waiting.put(block)
+            del block
+    finally:
+        waiting.put(None)
+        thread.join()
+    if errors:
+        raise errors[0]
+    return rows, zeros
+
+
+def _zero_filled(block: pa.Table) -> int:
+    return int(pc.sum(block["zero_filled"]).as_py() or 0)
+
+
+def _kv_option(provenance: Mapping[str, Any] | None, rows: int | None, zero_filled: int | None) -> str:
+    if provenance is None:
+        return ""
+    text = part_metadata(provenance, rows, zero_filled).replace("'", "''")
+    return f", KV_METADATA {{{METADATA_KEY}: '{text}'}}"
+
+
+def _write_partitions_sorted_in_copy(con: duckdb.DuckDBPyConnection, table: pa.Table, folder: Path,
+                                     provenance: Mapping[str, Any] | None = None) -> None:
+    """DuckDB's own partitioned COPY, for partition values that need escaping in paths.
+
+    The files' metadata then carries no row count of its own (``rows`` null: the footer's
+    count is the file's): one COPY writes every partition.
+    """
+    con.register("obs", table)
+    target = str(folder).replace("'", "''")
+    con.execute(
+        f"""COPY (SELECT * FROM obs ORDER BY source_kind, season_year, event_start, event_id)
+            TO '{target}' (FORMAT parquet, PARTITION_BY (source_kind, season_year),
+            COMPRESSION zstd, ROW_GROUP_SIZE {_ROW_GROUP_ROWS}, FILENAME_PATTERN 'part-{{uuid}}'
+            {_kv_option(provenance, None, None)})"""
+    )

@@ -467,6 +467,7 @@ def _write_rebuilt(store: Store, rows: list[dict]) -> None:
                                 "VALUES (?, ?, ?, ?, ?)", [r["ingest_id"], p.rel, p.rows, p.sha256, p.size_bytes])
                 twin = (doc.get("hook_data") or {}).get(twin_windows.HOOK_NAME)
                 if twin:
+                    twins.ensure_tables(con)
                     twins.record_settings(con, r["ingest_id"], r["source_id"], twins.TwinSettings(**twin))
             con.execute("DELETE FROM store_meta WHERE key = 'manifest_rebuilt_at'")
             con.execute("INSERT INTO store_meta VALUES ('manifest_rebuilt_at', ?)", [now.isoformat()])

@@ -821,6 +821,10 @@ class Store:
     def ingests(self, include_superseded: bool = True) -> pd.DataFrame:
         """The ingests table (``include_superseded=False``: complete ingests only)."""
         with self.connect(view=False) as con:
+            if not has_table(con, "ingests"):
+                # a database a first writer created and was interrupted before it made the
+                # tables: no ingest yet (the next writer makes them)
+                return pd.DataFrame(columns=["ingest_id", "source_id", "status", "started_at"])
             where = "" if include_superseded else "WHERE status = 'complete'"
             return con.execute(f"SELECT * FROM ingests {where} ORDER BY started_at").df()
 

@@ -177,7 +177,7 @@ def test_wide_in_pyarrow_duckdb_and_pandas(demo: tuple[DemoRun, dict[str, Path]]
     assert text["event_start"].str.match(ISO_Z).all()
     sidecar = json.loads(Path(str(csv_path) + "-metadata.json").read_text())
     described = {c.get("titles", c["name"]): c for c in sidecar["tableSchema"]["columns"]}
-    assert all(described[f.name].get("unit") for f in taxon_columns if f.name in described)
+    assert all(f.name in described and described[f.name].get("schema:unitText") for f in taxon_columns)
     with duckdb.connect() as con:
         kind, n = con.execute("SELECT any_value(typeof(event_start)), count(*) FROM read_csv(?)",
                               [str(csv_path)]).fetchall()[0]

@@ -65,8 +65,12 @@ def tow_geometry(
 
 
 def area_swept_km2(distance_km: np.ndarray, net_width_m: np.ndarray) -> np.ndarray:
-    """Swept area a = D x w, in km2 (Sparre and Venema 1998, section 13.5)."""
-    return np.asarray(distance_km, float) * np.asarray(net_width_m, float) / 1000.0
+    """Swept area a = D x w, in km2 (Sparre and Venema 1998, section 13.5).
+
+    Values too large for a float give inf (no warning): the plausibility checks quarantine
+    the distance or width behind them."""
+    with np.errstate(over="ignore"):
+        return np.asarray(distance_km, float) * np.asarray(net_width_m, float) / 1000.0
 
 
 @register

@@ -54,6 +54,7 @@ import duckdb
 import numpy as np
 import pandas as pd
 
+from harmonize import geodesy
 from harmonize.store import IngestRecord, has_table, register_commit_hook
 from harmonize.twin_windows import HOOK_NAME, TwinSettings
 
@@ -65,10 +66,9 @@ MAX_COUNT_RATIO = 2.0
 DUPLICATE_FLAG = "probable_duplicate"
 HIGH_COUNT_FLAG = "high_count"
 
-# WGS84 (NIMA TR8350.2, 3rd ed. 2000): semi-major axis and flattening
-WGS84_A_M = 6378137.0
-WGS84_F = 1 / 298.257223563
-_E2 = WGS84_F * (2 - WGS84_F)
+# WGS84 (NIMA TR8350.2, 3rd ed. 2000), from the one geodesy module
+WGS84_A_M = geodesy.WGS84_A
+_E2 = geodesy.E2
 
 _TABLES_SQL = """
 CREATE TABLE IF NOT EXISTS twin_settings (
@@ -91,21 +91,11 @@ def local_distance_km(lon1: np.ndarray, lat1: np.ndarray, lon2: np.ndarray, lat2
     prime vertical N and the meridian M (Snyder 1987, eqs. 4-18 and 4-20). Good to about
     1e-5 relative for separations of a few km; this is the formula the store's SQL uses.
     """
-    phi = np.radians((np.asarray(lat1, float) + np.asarray(lat2, float)) / 2)
-    w = np.sqrt(1 - _E2 * np.sin(phi) ** 2)
-    n = WGS84_A_M / w
-    m = WGS84_A_M * (1 - _E2) / w**3
-    dlam = np.radians((np.asarray(lon2, float) - np.asarray(lon1, float) + 540.0) % 360.0 - 180.0)
-    dphi = np.radians(np.asarray(lat2, float) - np.asarray(lat1, float))
-    return np.sqrt((n * np.cos(phi) * dlam) ** 2 + (m * dphi) ** 2) / 1000.0
+    return geodesy.distance_m(lat1, lon1, lat2, lon2) / 1000.0
 
 
 def _distance_sql(a: str, b: str) -> str:
-    phi = f"radians(({a}.lat + {b}.lat) / 2)"
-    w = f"sqrt(1 - {_E2!r} * pow(sin({phi}), 2))"
-    dlam = f"radians((({b}.lon - {a}.lon + 540.0) % 360.0) - 180.0)"
-    return (f"sqrt(pow({WGS84_A_M!r} / {w} * cos({phi}) * {dlam}, 2) + "
-            f"pow({WGS84_A_M * (1 - _E2)!r} / pow({w}, 3) * radians({b}.lat - {a}.lat), 2)) / 1000.0")
+    return f"({geodesy.distance_sql(f'{a}.lat', f'{a}.lon', f'{b}.lat', f'{b}.lon')}) / 1000.0"
 
 
 def _track_distance_sql(a: str, b: str) -> str:

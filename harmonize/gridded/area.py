@@ -17,9 +17,11 @@ from __future__ import annotations
 import numpy as np
 import pyproj
 
+from harmonize import geodesy
+
 #: WGS84 semi-major axis (m) and flattening (NIMA TR8350.2, 3rd ed. 2000, table 3.1).
-WGS84_A_M = 6378137.0
-WGS84_F = 1 / 298.257223563
+WGS84_A_M = geodesy.WGS84_A
+WGS84_F = geodesy.WGS84_F
 #: Mean Earth radius R1 of IUGG (Moritz 2000, "Geodetic Reference System 1980", J. Geodesy 74).
 EARTH_MEAN_RADIUS_KM = 6371.0088
 

@@ -341,8 +341,8 @@ RECORDED_DEMO: dict[str, dict[str, str]] = {
         "zero_filled": "f4f2000e4fd1ad51"
     },
     "quarantine": {
-        "*": "e365e88b187b1f71",
-        "message": "941da49bc696130c",
+        "*": "011a8a0ae74c90f1",
+        "message": "3e6e28d9f18f880d",
         "raw": "5599ae4b8ef7b86f",
         "reason_code": "995817bd0955ed2f",
         "rows": "169",

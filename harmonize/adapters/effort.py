@@ -1126,7 +1126,7 @@ def _read_logbook(path: Path, profile: Profile, study: Study, settings: FishingS
     alive = ~rej.mask("rows", n)
     dup = alive & ev["event_id"].duplicated(keep="first").to_numpy() & ev["event_id"].notna().to_numpy()
     rej.add("rows", pos[dup], ReasonCode.DUPLICATE_RECORD,
-            [f"haul '{e}' appears earlier in the file; only the first row is kept" for e in ev["event_id"][dup]])
+            [f"haul '{e}' appears earlier in the file; only its first row counts (when that row is quarantined too, correct it and drop this one)" for e in ev["event_id"][dup]])
     alive &= ~dup
     start, end = ev["start_time"], ev["end_time"]
     hours = ((end - start).dt.total_seconds() / 3600.0).to_numpy(dtype=float, na_value=np.nan)

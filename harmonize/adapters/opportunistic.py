@@ -191,7 +191,7 @@ class OpportunisticAdapter(Adapter):
 
         dup = rows["record_id"].duplicated(keep="first").to_numpy() & rows["record_id"].notna().to_numpy()
         rej.add("rows", pos[dup], ReasonCode.DUPLICATE_RECORD,
-                [f"record '{r}' appears earlier in the file; only the first row is kept" for r in rows["record_id"][dup]])
+                [f"record '{r}' appears earlier in the file; only its first row counts (when that row is quarantined too, correct it and drop this one)" for r in rows["record_id"][dup]])
 
         count, not_count, fractional = parse_counts(rows["count"], presence_tokens)
         label = _label(prof, "count")

@@ -231,7 +231,7 @@ count = "number"
         pos = np.arange(n)
         dup = ev["event_id"].duplicated(keep="first").to_numpy() & ev["event_id"].notna().to_numpy()
         rej.add("events", pos[dup], ReasonCode.DUPLICATE_RECORD,
-                [f"haul '{e}' appears earlier in the file; only the first row is kept" for e in ev["event_id"][dup]])
+                [f"haul '{e}' appears earlier in the file; only its first row counts (when that row is quarantined too, correct it and drop this one)" for e in ev["event_id"][dup]])
 
         start, end = ev["start_time"], ev["end_time"]
         alive = ~rej.mask("events", n)

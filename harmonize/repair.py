@@ -150,6 +150,7 @@ def repair(store: Store, apply: bool = False, rebuild_manifest: bool = False) ->
             except BaseException:
                 con.execute("ROLLBACK")
                 raise
+            store.publish_index(con)
         if plan.unlisted:
             plan.set_aside = _set_aside(store, plan.unlisted)
     plan.applied = True
@@ -479,3 +480,4 @@ def _write_rebuilt(store: Store, rows: list[dict]) -> None:
             except duckdb.Error:
                 pass
             raise
+        store.publish_index(con)

@@ -730,6 +730,7 @@ class Store:
         except BaseException:
             _rollback(con)
             raise
+        self.publish_index(con)
         self._write_marker(record.ingest_id)
         shutil.rmtree(staged, ignore_errors=True)
         return supersede
@@ -744,6 +745,11 @@ class Store:
         for hook in commit_hooks():
             hook(con, record)
         self._define_flagged_view(con, temporary=False)
+
+    def publish_index(self, con: duckdb.DuckDBPyConnection) -> None:
+        """After a commit that changed the live set: rewrite ``store/index/`` (the store-wide
+        flags and the live part files as plain parquet, for readers without harmonize)."""
+        store_layout.write_index(con, self.directory, STORE_VERSION, CONTRACT_VERSION)
 
     def _remove_leftovers(self, con: duckdb.DuckDBPyConnection) -> None:
         """Delete what ingests that died left behind: their staging folders, and the files
@@ -1057,6 +1063,10 @@ class Store:
             problems = [str(d) for d in self._scrub(con, deep)]
             if problems:
                 return problems
+            stale = store_layout.index_problem(con, self.directory)
+        if stale:
+            problems += self._renew_index(stale)
+        with self.connect(view=False) as con:
             self._define_view(con, temporary=True)
             bad = con.execute(
                 """SELECT ingest_id, rows_read, rows_accepted, rows_quarantined FROM ingests
@@ -1089,6 +1099,21 @@ class Store:
                              for i, e in both]
             problems += self._row_accounting(con, row_traced_kinds)
         return problems
+
+    def _renew_index(self, stale: str) -> list[str]:
+        """Rewrite an index that is missing or out of date (a crash after a commit, or a store
+        written by an older version); a problem only when the store cannot be written now."""
+        try:
+            with self.connect(read_only=False, view=False) as con:
+                self.publish_index(con)
+        except StoreBusyError:  # a writer is committing: it writes the index itself
+            logger.info("store/%s: left to the writer that holds the store", stale)
+            return []
+        except (StoreError, OSError, duckdb.Error) as exc:
+            return [f"store/{stale}, and it cannot be rewritten now ({exc}); run 'harmonize status --check' "
+                    "where the store can be written"]
+        logger.info("store/%s: rewritten from the database", stale)
+        return []
 
     def rebuilt_note(self) -> str | None:
         """One line when complete ingests were rebuilt from their part files (their quarantine is unknown)."""

@@ -199,3 +199,62 @@ def _write_partitions_sorted_in_copy(con: duckdb.DuckDBPyConnection, table: pa.T
             COMPRESSION zstd, ROW_GROUP_SIZE {_ROW_GROUP_ROWS}, FILENAME_PATTERN 'part-{{uuid}}'
             {_kv_option(provenance, None, None)})"""
     )
+
+
+# ---------------------------------------------------------------------------- the index
+#: Of the store: plain parquet copies of what a reader without harmonize needs beside the part
+#: files, rewritten after every change of the live set: the store-wide flags
+#: (:data:`INDEX_FLAGS`) and the list of live part files (:data:`INDEX_LIVE_FILES`).
+INDEX_DIR = "index"
+INDEX_FLAGS = f"{INDEX_DIR}/flags.parquet"
+INDEX_LIVE_FILES = f"{INDEX_DIR}/live_files.parquet"
+#: What each index file holds: the query over the database, sorted so that equal contents give
+#: equal files.
+_INDEX_QUERIES = {
+    INDEX_FLAGS: "SELECT record_id, ingest_id, flag FROM store_flags ORDER BY ALL",
+    INDEX_LIVE_FILES: """SELECT f.path, f.ingest_id, i.source_id, i.source_kind, f.n_rows
+                         FROM observation_files f JOIN ingests i USING (ingest_id)
+                         WHERE i.status = 'complete' ORDER BY f.path, f.ingest_id""",
+}
+
+
+def index_tables(con: duckdb.DuckDBPyConnection) -> dict[str, pa.Table]:
+    """What the index files must hold, from the database (relative path -> table)."""
+    return {rel: con.sql(sql).to_arrow_table() for rel, sql in _INDEX_QUERIES.items()}
+
+
+def write_index(con: duckdb.DuckDBPyConnection, directory: Path, store_version: int, contract_version: str) -> None:
+    """Rewrite the index files of the store in ``directory`` from the committed database.
+
+    Each file is written beside its target and renamed over it, so a reader sees the old file
+    or the new one, never a part. Called after the commit: a crash in between leaves an index
+    older than the database, which :func:`index_problem` detects and the next write renews.
+    """
+    folder = directory / INDEX_DIR
+    folder.mkdir(exist_ok=True)
+    doc = json.dumps({"version": METADATA_VERSION, "store_version": store_version,
+                      "contract_version": contract_version})
+    for rel, table in index_tables(con).items():
+        target = directory / rel
+        tmp = target.with_name(f".{target.name}.{uuid.uuid4().hex}.tmp")
+        table = table.replace_schema_metadata({METADATA_KEY: doc})
+        try:
+            pq.write_table(table, tmp, compression="zstd")
+            tmp.replace(target)
+        finally:
+            tmp.unlink(missing_ok=True)
+
+
+def index_problem(con: duckdb.DuckDBPyConnection, directory: Path) -> str | None:
+    """One line when an index file is missing or disagrees with the database (None when sound)."""
+    for rel, expected in index_tables(con).items():
+        path = directory / rel
+        if not path.is_file():
+            return f"{rel} is missing"
+        try:
+            found = pq.read_table(path)
+        except (OSError, pa.ArrowException) as exc:
+            return f"{rel} is unreadable ({exc})"
+        if not found.replace_schema_metadata(None).equals(expected.replace_schema_metadata(None)):
+            return f"{rel} disagrees with the database ({found.num_rows:,} rows, {expected.num_rows:,} expected)"
+    return None

@@ -7,6 +7,7 @@ DuckDB, pandas, pyogrio) and states the expected rule independently of the code 
 from __future__ import annotations
 
 import hashlib
+import json
 import os
 import re
 import shutil
@@ -20,7 +21,7 @@ import pyarrow.parquet as pq
 import pytest
 from geographiclib.geodesic import Geodesic
 
-from harmonize import Store, load_study, run
+from harmonize import Store, load_study, run, store_layout
 from harmonize.export.run import export
 from harmonize.store import STORE_VERSION
 from harmonize.study import Study
@@ -182,7 +183,8 @@ def _at(distance_m: float, azimuth: float = 60.0) -> tuple[float, float]:
     return g["lat2"], g["lon2"]
 
 
-def test_flags_and_season_year_read_without_harmonize(study_dir: Path) -> None:
+def _agency_and_volunteers(study_dir: Path) -> Study:
+    """An agency transect sighting and two volunteer records 300 m from it, 5 and 15 minutes later."""
     study = load_study(study_dir)
     events = pd.DataFrame({"event_id": ["T1"], "event_start": ["2022-11-05T08:00"],
                            "event_end": [pd.Timestamp("2022-11-05T08:10")],
@@ -194,6 +196,11 @@ def test_flags_and_season_year_read_without_harmonize(study_dir: Path) -> None:
         HEADER + f"A,,2022-11-05T08:05,{near[0]:.7f},{near[1]:.7f},Ann Vell,keld fulmar,2,,,\n"
         + f"B,,2022-11-05T08:15,{near[0]:.7f},{near[1]:.7f},Bo Tarrin,keld fulmar,3,,,\n")
     run(study, PROFILE, {"rows": study_dir / "vol.csv"})
+    return study
+
+
+def test_flags_and_season_year_read_without_harmonize(study_dir: Path) -> None:
+    study = _agency_and_volunteers(study_dir)
     from harmonize.twins import twins_frame  # what 'harmonize twins' lists
     with Store(study.store_dir).connect() as con:
         listed = twins_frame(con)
@@ -209,6 +216,61 @@ def test_flags_and_season_year_read_without_harmonize(study_dir: Path) -> None:
     part = ds.partitioning(pa.schema([("source_kind", pa.string()), ("season_year", pa.int32())]), flavor="hive")
     frame = pd.read_parquet(store / "observations", partitioning=part)
     assert frame["season_year"].dtype == "int32" and (frame["season_year"] >= 2022).all()
+    # and in polars, which reads hive keys as integers by itself
+    import polars as pl
+    lazy = pl.scan_parquet(store / "observations" / "**" / "*.parquet", hive_partitioning=True)
+    assert lazy.collect_schema()["season_year"].is_integer()
+    assert lazy.filter(pl.col("season_year") >= 2022).select(pl.len()).collect().item() == len(frame)
+
+
+def test_flags_read_from_the_parquet_files_alone(study_dir: Path) -> None:
+    """store/index/ holds the store-wide flags and the live part files as plain parquet: a
+    reader with pandas or polars alone counts the twins 'harmonize twins' lists."""
+    study = _agency_and_volunteers(study_dir)
+    from harmonize.twins import twins_frame
+    with Store(study.store_dir).connect() as con:
+        listed = twins_frame(con)
+    assert len(listed) >= 1
+    store = study.store_dir
+    flags = pd.read_parquet(store / "index" / "flags.parquet")
+    twins_read = flags[flags["flag"] == "probable_duplicate"]
+    assert sorted(twins_read["record_id"]) == sorted(listed["record_id"])
+    # the rows themselves, from the live files only (the folder may hold files no ingest lists)
+    run(study, PROFILE, {"rows": study_dir / "vol.csv"}, replace=True)
+    live = pd.read_parquet(store / "index" / "live_files.parquet")
+    with Store(study.store_dir).connect() as con:
+        expected = con.execute("SELECT count(*) FROM observations").fetchall()[0][0]
+    assert live["n_rows"].sum() == expected
+    on_disk = {p.relative_to(store).as_posix() for p in (store / "observations").rglob("*.parquet")}
+    assert set(live["path"]) <= on_disk
+    rows = pd.concat([pd.read_parquet(store / rel) for rel in live["path"]], ignore_index=True)
+    flags = pd.read_parquet(store / "index" / "flags.parquet")
+    marked = rows.merge(flags[flags["flag"] == "probable_duplicate"], on=["record_id", "ingest_id"])
+    with Store(study.store_dir).connect() as con:
+        listed = twins_frame(con)
+    assert len(marked) == len(listed) >= 1
+    # polars reads the same files
+    import polars as pl
+    pl_flags = pl.read_parquet(store / "index" / "flags.parquet")
+    assert pl_flags.filter(pl.col("flag") == "probable_duplicate").height == len(listed)
+    # the index says which store wrote it, like every part file
+    meta = pq.read_schema(store / "index" / "flags.parquet").metadata
+    assert json.loads(meta[b"harmonize"])["version"] == "1.0"
+
+
+def test_a_stale_index_is_found_and_rewritten(study_dir: Path) -> None:
+    study = _trawl(study_dir)
+    store = Store(study.store_dir)
+    index = study.store_dir / "index" / "live_files.parquet"
+    good = index.read_bytes()
+    pq.write_table(pa.table({"path": ["observations/elsewhere.parquet"], "ingest_id": ["x"], "source_id": ["x"],
+                             "source_kind": ["trawl"], "n_rows": [1]}), index)
+    with store.connect() as con:
+        assert "disagrees with the database" in store_layout.index_problem(con, store.directory)
+    assert store.check() == []  # a writable store: rewritten from the database
+    assert pq.read_table(index).equals(pq.read_table(pa.BufferReader(good)))
+    index.unlink()
+    assert store.check() == [] and index.is_file()
 
 
 

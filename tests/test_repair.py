@@ -129,7 +129,7 @@ def test_an_ingest_never_deletes_a_parquet_file_it_does_not_know(study_copy: tup
 def test_repair_of_a_lost_database_sets_the_files_aside_and_starts_anew(study_copy: tuple[Path, str, str]) -> None:
     study_dir, first, second = study_copy
     store = Store(study_dir / "store")
-    files = sorted(p.relative_to(store.directory).as_posix() for p in store.directory.rglob("*.parquet"))
+    files = sorted(p.relative_to(store.directory).as_posix() for p in (store.directory / "observations").rglob("*.parquet"))
     store.db_path.unlink()
     dry = _cli(study_dir, "repair")
     assert dry.returncode == 1

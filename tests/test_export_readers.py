@@ -39,6 +39,7 @@ import pytest
 
 from harmonize.demo.build import DemoRun, build_demo
 from harmonize.export.run import export
+from harmonize.store import Store
 from harmonize.study import load_study
 
 pytestmark = pytest.mark.slow
@@ -341,3 +342,26 @@ def test_store_current_view_in_duckdb_and_pyarrow(demo: tuple[DemoRun, dict[str,
     frame = table.to_pandas()
     _no_spaces_unique(frame["record_id"], "store record_id")
     assert frame.loc[frame["value"].notna(), "unit"].notna().all()
+
+
+def test_store_index_counts_the_twins_harmonize_lists(demo: tuple[DemoRun, dict[str, Path]]) -> None:
+    """The demo's twins, read from parquet files alone (pandas and polars), are the ones the
+    'twins' command lists (docs/store.md, "Reading with parquet alone")."""
+    import polars as pl
+
+    from harmonize.twins import twins_frame
+
+    store = demo[0].folder / "store"
+    with Store(store).connect() as con:
+        listed = twins_frame(con)
+    assert len(listed) > 0
+    live = pd.read_parquet(store / "index" / "live_files.parquet")
+    volunteer = live[live["source_kind"] == "opportunistic"]
+    rows = pd.concat([pd.read_parquet(store / p, columns=["record_id", "ingest_id"]) for p in volunteer["path"]])
+    flags = pd.read_parquet(store / "index" / "flags.parquet")
+    flagged = rows.merge(flags[flags["flag"] == "probable_duplicate"], on=["record_id", "ingest_id"])
+    assert sorted(flagged["record_id"]) == sorted(listed["record_id"])
+    # reader 2: polars, the same join
+    pl_rows = pl.concat([pl.read_parquet(store / p, columns=["record_id", "ingest_id"]) for p in volunteer["path"]])
+    pl_flags = pl.read_parquet(store / "index" / "flags.parquet").filter(pl.col("flag") == "probable_duplicate")
+    assert pl_rows.join(pl_flags, on=["record_id", "ingest_id"]).height == len(listed)

@@ -749,7 +749,12 @@ class Store:
     def publish_index(self, con: duckdb.DuckDBPyConnection) -> None:
         """After a commit that changed the live set: rewrite ``store/index/`` (the store-wide
         flags and the live part files as plain parquet, for readers without harmonize)."""
-        store_layout.write_index(con, self.directory, STORE_VERSION, CONTRACT_VERSION)
+        try:
+            store_layout.write_index(con, self.directory, STORE_VERSION, CONTRACT_VERSION)
+        except (OSError, pa.ArrowException, duckdb.Error) as exc:
+            # the commit stands; the index is derived and 'status --check' rewrites it
+            logger.warning("store/%s/ not rewritten after the commit (%s); 'harmonize status --check' "
+                           "rewrites it", store_layout.INDEX_DIR, exc)
 
     def _remove_leftovers(self, con: duckdb.DuckDBPyConnection) -> None:
         """Delete what ingests that died left behind: their staging folders, and the files
@@ -1105,11 +1110,11 @@ class Store:
         written by an older version); a problem only when the store cannot be written now."""
         try:
             with self.connect(read_only=False, view=False) as con:
-                self.publish_index(con)
+                store_layout.write_index(con, self.directory, STORE_VERSION, CONTRACT_VERSION)
         except StoreBusyError:  # a writer is committing: it writes the index itself
             logger.info("store/%s: left to the writer that holds the store", stale)
             return []
-        except (StoreError, OSError, duckdb.Error) as exc:
+        except (StoreError, OSError, pa.ArrowException, duckdb.Error) as exc:
             return [f"store/{stale}, and it cannot be rewritten now ({exc}); run 'harmonize status --check' "
                     "where the store can be written"]
         logger.info("store/%s: rewritten from the database", stale)

@@ -149,8 +149,8 @@ class Packing:
             if in_unpacked:
                 unpacked_valid = (lo, hi)
             else:
-                if unsigned:
-                    lo, hi = (float(_as_stored(v, dtype, True)) for v in (lo, hi))
+                if unsigned:  # an absent valid_min or valid_max stays unbounded (not cast to the type)
+                    lo, hi = (float(_as_stored(v, dtype, True)) if np.isfinite(v) else v for v in (lo, hi))
                 packed_valid = (lo, hi)
         return cls(scale, offset, tuple(fills), packed_valid, unpacked_valid, unsigned)
 

@@ -157,23 +157,29 @@ def test_a_value_exactly_on_a_bound_is_kept_with_a_negative_scale_factor() -> No
     assert screen.canonical_sum(got.n, got.total)[0] == 20.0 + 8.0
 
 
-@given(st.lists(st.integers(0, 3), min_size=1, max_size=12), st.integers(0, 3), st.integers(0, 2**32 - 1))
-def test_pixel_sums_held_per_period_equal_adding_every_block(periods: list[int], max_open: int, seed: int) -> None:
-    # blocks of time steps in any period order; holding at most max_open periods (0: none) gives
-    # the same cell sums as handing every block over at once
+@given(st.lists(st.tuples(st.integers(0, 3), st.integers(0, 10)), min_size=1, max_size=12), st.integers(0, 3),
+       st.integers(0, 2**32 - 1))
+def test_pixel_sums_held_per_period_equal_adding_every_block(blocks: list[tuple[int, int]], max_open: int,
+                                                            seed: int) -> None:
+    # blocks of time steps (each as one or two runs of window positions, as blocks of grid rows)
+    # in any period order; holding at most max_open periods (0: none) gives the same cell sums as
+    # adding every block's inside pixels to the cells at once
     rng = np.random.default_rng(seed)
-    n_cells, n_pix = 3, 7
-    pixel_cell = rng.integers(0, n_cells, n_pix)
-    weight = rng.uniform(0.5, 2.0, (1, n_pix))
+    n_cells, window = 3, 10
+    inside = np.flatnonzero(rng.random(window) < 0.7)
+    pixel_cell = rng.integers(0, n_cells, inside.size)
+    weight = rng.uniform(0.5, 2.0, (1, inside.size))
     direct = CellPeriodSums(1, n_cells)
     held = CellPeriodSums(1, n_cells)
     key = held.cell_keys(pixel_cell, np.array([0]))
-    sums = PixelPeriodSums(held, key, weight, np.dtype(np.int64), lambda n, t: t * 0.5 + n, max_open)
-    for period in periods:
-        n = rng.integers(0, 3, (1, n_pix))
-        total = rng.integers(-100, 100, (1, n_pix)) * (n > 0)
-        direct.add_pixel_sums(period, key, n, total * 0.5 + n, weight)
-        sums.add(period, slice(0, n_pix), n, total)
+    sums = PixelPeriodSums(held, inside, window, key, weight, np.dtype(np.int64), lambda n, t: t * 0.5 + n, max_open)
+    for period, split in blocks:
+        n = rng.integers(0, 3, (1, window))
+        total = rng.integers(-100, 100, (1, window)) * (n > 0)
+        direct.add_pixel_sums(period, key, n[:, inside], total[:, inside] * 0.5 + n[:, inside], weight)
+        for span in (slice(0, split), slice(split, window)):
+            if span.stop > span.start:
+                sums.add(period, span.start, n[:, span], total[:, span])
     sums.close_all()
     a, b = direct.result(), held.result()
     assert a[["period", "layer", "cell", "n"]].to_numpy().tolist() == b[["period", "layer", "cell", "n"]].to_numpy().tolist()

@@ -777,9 +777,9 @@ def reduce_variable(ds: xr.Dataset, plan: VariablePlan, chunk_mb: float, path: P
     step_period = plan.periods.step_period
     last_step = np.full(len(plan.periods.table), -1, np.int64)
     np.maximum.at(last_step, step_period[step_period >= 0], np.flatnonzero(step_period >= 0))
-    held_bytes = max(levels.size * geo.n_inside * 16, 1)
-    pixel_sums = PixelPeriodSums(sums, sums.cell_keys(geo.pixel_cell, plan.level_layer[levels]), weight,
-                                 np.dtype(np.int64) if isinstance(screen, IntegerScreen) else np.dtype(np.float64),
+    held_bytes = max(levels.size * ny * nx * 16, 1)
+    pixel_sums = PixelPeriodSums(sums, geo.inside_flat, ny * nx, sums.cell_keys(geo.pixel_cell, plan.level_layer[levels]),
+                                 weight, np.dtype(np.int64) if isinstance(screen, IntegerScreen) else np.dtype(np.float64),
                                  screen.canonical_sum, int(chunk_mb * 2**20 // held_bytes))
     blocks = _blocks(plan, chunk_mb, screen.bytes_per_value)
     order = [plan.t_dim] + ([plan.z_dim] if plan.z_dim else []) + [geo.y_dim, geo.x_dim]
@@ -812,20 +812,19 @@ def reduce_variable(ds: xr.Dataset, plan: VariablePlan, chunk_mb: float, path: P
             steps = np.flatnonzero(block_period == period)
             run = slice(int(steps[0]), int(steps[-1]) + 1) if steps[-1] - steps[0] + 1 == steps.size else steps
             part = screen.reduce(stored[run][:, lv])
-            n, total, fill, invalid = ((x if whole else x[:, local]) for x in
-                                       (part.n, part.total, part.fill, part.invalid))
-            n_fill, n_invalid, n_used = int(fill.sum()), int(invalid.sum()), int(n.sum())
+            n_fill, n_invalid, n_used = (int(x.sum() if whole else x[:, local].sum())
+                                         for x in (part.fill, part.invalid, part.n))
             counts.fill += n_fill
             counts.invalid += n_invalid
             counts.used += n_used
             in_region = steps.size * levels.size * n_pix
             counts.implausible += in_region - n_fill - n_invalid - n_used
             usable += in_region - n_fill - n_invalid
-            reduced.append((period, n, total))
+            reduced.append((period, part.n, part.total))
         if usable:
             _check_plausible(_unit_sample(stored, local, time_ok, level_ok, screen), plan, path)
         for period, n, total in reduced:
-            pixel_sums.add(period, slice(a, b), n, total)
+            pixel_sums.add(period, r0 * nx, n, total)
         if r1 == ny:
             for period in np.flatnonzero((last_step >= t0) & (last_step < t1)).tolist():
                 pixel_sums.close(period)

@@ -169,28 +169,34 @@ class CellPeriodSums:
 class PixelPeriodSums:
     """Per-pixel counts and sums of the periods being read, handed to the cell sums when complete.
 
-    A period's per-pixel sums grow block by block (blocks of time steps, or of grid rows);
-    when its last time step has been read (:meth:`close`) its pixels go into cells once, by
-    :meth:`CellPeriodSums.add_pixel_sums`. At most ``max_open`` periods are held (each Z x P
-    counts and sums): opening one more first hands over the oldest (the cell sums merge
-    parts of a period), so memory stays bounded however the time axis is ordered. With
-    ``max_open = 0`` every block is handed over at once.
+    A period's sums grow block by block (blocks of time steps, or of grid rows) over the
+    positions of the read window; when its last time step has been read (:meth:`close`) its
+    inside pixels are picked and go into cells once, by :meth:`CellPeriodSums.add_pixel_sums`.
+    At most ``max_open`` periods are held (each a count and a sum per level and window
+    position): opening one more first hands over the oldest (the cell sums merge parts of a
+    period), so memory stays bounded however the time axis is ordered. With ``max_open = 0``
+    each block is handed over at once.
 
     Parameters
     ----------
     cells
         Where complete periods go.
+    inside, window_size
+        Sorted window positions of the P pixels inside the domain; positions in the window.
     key, weight
-        From :meth:`CellPeriodSums.cell_keys`, and (Z, P) weights, for the P pixels.
+        From :meth:`CellPeriodSums.cell_keys`, and (Z, P) weights, for the P inside pixels.
     total_dtype
         dtype of the sums (int64 for stored integers, float64 for decoded values).
     canonical_sum
         (n, total) -> sum of the canonical values, applied to a period's sums when handed over.
     """
 
-    def __init__(self, cells: CellPeriodSums, key: np.ndarray, weight: np.ndarray, total_dtype: np.dtype,
+    def __init__(self, cells: CellPeriodSums, inside: np.ndarray, window_size: int, key: np.ndarray,
+                 weight: np.ndarray, total_dtype: np.dtype,
                  canonical_sum: Callable[[np.ndarray, np.ndarray], np.ndarray], max_open: int) -> None:
         self.cells = cells
+        self.inside = inside
+        self.shape = (weight.shape[0], window_size)
         self.key = key
         self.weight = weight
         self.total_dtype = np.dtype(total_dtype)
@@ -198,26 +204,29 @@ class PixelPeriodSums:
         self.max_open = max_open
         self._open: dict[int, tuple[np.ndarray, np.ndarray]] = {}
 
-    def add(self, period: int, pixels: slice, n: np.ndarray, total: np.ndarray) -> None:
-        """Add (Z, len(pixels)) counts and sums of one block's steps of ``period`` for the pixels ``pixels``."""
+    def add(self, period: int, start: int, n: np.ndarray, total: np.ndarray) -> None:
+        """Add (Z, w) counts and sums of one block's steps of ``period`` at window positions start..start + w."""
         if self.max_open == 0:
-            shape = self.weight.shape
-            key = self.key.reshape(shape)[:, pixels].ravel()
-            self.cells.add_pixel_sums(period, key, n, self.canonical_sum(n, total), self.weight[:, pixels])
+            a, b = (int(i) for i in np.searchsorted(self.inside, [start, start + n.shape[1]]))
+            pick = self.inside[a:b] - start
+            key = self.key.reshape(self.weight.shape)[:, a:b].ravel()
+            self.cells.add_pixel_sums(period, key, n[:, pick], self.canonical_sum(n[:, pick], total[:, pick]),
+                                      self.weight[:, a:b])
             return
         if period not in self._open:
             if len(self._open) >= self.max_open:
                 self.close(next(iter(self._open)))
-            self._open[period] = (np.zeros(self.weight.shape, np.int64), np.zeros(self.weight.shape, self.total_dtype))
+            self._open[period] = (np.zeros(self.shape, np.int64), np.zeros(self.shape, self.total_dtype))
         acc_n, acc_total = self._open[period]
-        acc_n[:, pixels] += n
-        acc_total[:, pixels] += total
+        span = slice(start, start + n.shape[1])
+        acc_n[:, span] += n
+        acc_total[:, span] += total
 
     def close(self, period: int) -> None:
         """Hand a period's sums to the cell sums (nothing if it is not open)."""
         held = self._open.pop(period, None)
         if held is not None:
-            n, total = held
+            n, total = (x[:, self.inside] for x in held)
             self.cells.add_pixel_sums(period, self.key, n, self.canonical_sum(n, total), self.weight)
 
     def close_all(self) -> None:

@@ -116,7 +116,16 @@ class IntegerScreen(FloatScreen):
 
     def reduce(self, stored: np.ndarray) -> PixelReduction:
         raw = self.packing.reading(stored)
-        shape = raw.shape[1:]
+        steps, shape = raw.shape[0], raw.shape[1:]
+        # the narrowest exact accumulators: counts of up to 65,535 steps in uint16, sums in int32
+        # while steps x the largest stored magnitude stays below 2**31 (bool -> uint8 views and
+        # narrow sums are several times faster than numpy's default int64 reductions)
+        count_type = np.uint16 if steps < 2**16 else np.int64
+        sum_type = np.int32 if steps * max(-self.first, self.last) < 2**31 else np.int64
+
+        def count(mask: np.ndarray) -> np.ndarray:
+            return mask.view(np.uint8).sum(axis=0, dtype=count_type)
+
         fill = None
         for value in self.fills:
             fill = raw == value if fill is None else np.logical_or(fill, raw == value, out=fill)
@@ -124,15 +133,15 @@ class IntegerScreen(FloatScreen):
         if fill is not None and any(self.keep[0] <= v <= self.keep[1] for v in self.fills):
             keep = ~fill if keep is None else np.logical_and(keep, ~fill, out=keep)
         if keep is None:
-            n, total = np.full(shape, raw.shape[0], np.int64), raw.sum(axis=0, dtype=np.int64)
+            n, total = np.full(shape, steps, np.int64), raw.sum(axis=0, dtype=sum_type)
         else:
-            n, total = keep.sum(axis=0), np.where(keep, raw, 0).sum(axis=0, dtype=np.int64)
+            # a product with the mask, not np.where: the same integers, far cheaper
+            n, total = count(keep), (raw * keep).sum(axis=0, dtype=sum_type)
         invalid = np.zeros(shape, np.int64)
         valid = self._inside(raw, *self.valid)
         if valid is not None:
-            out = ~valid if fill is None else ~(valid | fill)
-            invalid = out.sum(axis=0)
-        return PixelReduction(n, total, fill.sum(axis=0) if fill is not None else np.zeros(shape, np.int64), invalid)
+            invalid = count(~valid if fill is None else ~(valid | fill))
+        return PixelReduction(n, total, count(fill) if fill is not None else np.zeros(shape, np.int64), invalid)
 
     def canonical_sum(self, n: np.ndarray, total: np.ndarray) -> np.ndarray:
         return self.a * np.asarray(total, np.float64) + self.b * np.asarray(n, np.float64)

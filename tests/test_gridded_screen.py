@@ -173,14 +173,17 @@ def test_pixel_sums_held_per_period_equal_adding_every_block(blocks: list[tuple[
     held = CellPeriodSums(1, n_cells)
     key = held.cell_keys(pixel_cell, np.array([0]))
     sums = PixelPeriodSums(held, inside, window, key, weight, np.dtype(np.int64), lambda n, t: t * 0.5 + n, max_open)
+    counted = np.zeros(3, np.int64)
     for period, split in blocks:
-        n = rng.integers(0, 3, (1, window))
+        n, fill, invalid = rng.integers(0, 3, (3, 1, window))
         total = rng.integers(-100, 100, (1, window)) * (n > 0)
         direct.add_pixel_sums(period, key, n[:, inside], total[:, inside] * 0.5 + n[:, inside], weight)
+        counted += [n[:, inside].sum(), fill[:, inside].sum(), invalid[:, inside].sum()]
         for span in (slice(0, split), slice(split, window)):
             if span.stop > span.start:
-                sums.add(period, span.start, n[:, span], total[:, span])
+                sums.add(period, span.start, n[:, span], total[:, span], fill[:, span], invalid[:, span])
     sums.close_all()
+    assert [sums.used, sums.fill, sums.invalid] == counted.tolist()
     a, b = direct.result(), held.result()
     assert a[["period", "layer", "cell", "n"]].to_numpy().tolist() == b[["period", "layer", "cell", "n"]].to_numpy().tolist()
     np.testing.assert_allclose(a["sum_w"], b["sum_w"], rtol=1e-12)

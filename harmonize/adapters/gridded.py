@@ -777,10 +777,12 @@ def reduce_variable(ds: xr.Dataset, plan: VariablePlan, chunk_mb: float, path: P
     step_period = plan.periods.step_period
     last_step = np.full(len(plan.periods.table), -1, np.int64)
     np.maximum.at(last_step, step_period[step_period >= 0], np.flatnonzero(step_period >= 0))
-    held_bytes = max(levels.size * ny * nx * 16, 1)
+    held_bytes = max(levels.size * ny * nx * 16, 1)  # one period: a count and a sum per level and position
+    max_open = max(0, int(chunk_mb * 2**20 // held_bytes) - 1)  # one more: the fill and invalid counts
     pixel_sums = PixelPeriodSums(sums, geo.inside_flat, ny * nx, sums.cell_keys(geo.pixel_cell, plan.level_layer[levels]),
                                  weight, np.dtype(np.int64) if isinstance(screen, IntegerScreen) else np.dtype(np.float64),
-                                 screen.canonical_sum, int(chunk_mb * 2**20 // held_bytes))
+                                 screen.canonical_sum, max_open)
+    in_region = 0
     blocks = _blocks(plan, chunk_mb, screen.bytes_per_value)
     order = [plan.t_dim] + ([plan.z_dim] if plan.z_dim else []) + [geo.y_dim, geo.x_dim]
     for i, (t0, t1, r0, r1) in enumerate(blocks):
@@ -798,7 +800,6 @@ def reduce_variable(ds: xr.Dataset, plan: VariablePlan, chunk_mb: float, path: P
             raise InputFileError(path, f"reading '{name}' (time steps {t0 + 1}-{t1}) failed ({type(exc).__name__}: "
                                  f"{exc}); the file is corrupt or truncated: download or export it again") from None
         stored = stored.reshape(t1 - t0, plan.n_levels, -1)
-        whole = local.size == stored.shape[2]  # every pixel of the rows is inside: no gathering
         block_period = step_period[t0:t1]
         time_ok = block_period >= 0
         n_pix = local.size
@@ -806,31 +807,24 @@ def reduce_variable(ds: xr.Dataset, plan: VariablePlan, chunk_mb: float, path: P
         counts.early += n_early * plan.n_levels * n_pix
         counts.bad_time += (int((~time_ok).sum()) - n_early) * plan.n_levels * n_pix
         counts.below += int(time_ok.sum()) * int((~level_ok).sum()) * n_pix
-        usable = 0
-        reduced = []
+        in_region += int(time_ok.sum()) * levels.size * n_pix
+        # the unit check first: a block in the wrong unit stops the file before it is summed
+        sample = _unit_sample(stored, local, time_ok, level_ok, screen)
+        if sample.size:
+            _check_plausible(sample, plan, path)
         for period in np.unique(block_period[time_ok]).tolist():
             steps = np.flatnonzero(block_period == period)
             run = slice(int(steps[0]), int(steps[-1]) + 1) if steps[-1] - steps[0] + 1 == steps.size else steps
             part = screen.reduce(stored[run][:, lv])
-            n_fill, n_invalid, n_used = (int(x.sum() if whole else x[:, local].sum())
-                                         for x in (part.fill, part.invalid, part.n))
-            counts.fill += n_fill
-            counts.invalid += n_invalid
-            counts.used += n_used
-            in_region = steps.size * levels.size * n_pix
-            counts.implausible += in_region - n_fill - n_invalid - n_used
-            usable += in_region - n_fill - n_invalid
-            reduced.append((period, part.n, part.total))
-        if usable:
-            _check_plausible(_unit_sample(stored, local, time_ok, level_ok, screen), plan, path)
-        for period, n, total in reduced:
-            pixel_sums.add(period, r0 * nx, n, total)
+            pixel_sums.add(period, r0 * nx, part.n, part.total, part.fill, part.invalid)
         if r1 == ny:
             for period in np.flatnonzero((last_step >= t0) & (last_step < t1)).tolist():
                 pixel_sums.close(period)
         if progress:
             progress(f"reading {name}", i + 1, len(blocks))
     pixel_sums.close_all()
+    counts.used, counts.fill, counts.invalid = pixel_sums.used, pixel_sums.fill, pixel_sums.invalid
+    counts.implausible = in_region - pixel_sums.used - pixel_sums.fill - pixel_sums.invalid
     return sums.result(), counts
 
 
@@ -838,15 +832,19 @@ def _unit_sample(stored: np.ndarray, local: np.ndarray, time_ok: np.ndarray, lev
                  screen: FloatScreen) -> np.ndarray:
     """The canonical values the unit check of a block looks at: the usable values (not fill, valid,
     at a good time and level) of every k-th inside pixel (about _PLAUSIBLE_SAMPLE_PIXELS of them),
-    all steps and levels of the block; every usable value when that sample holds none."""
+    all steps and levels of the block; every usable value of the block when that sample holds
+    none (decoded step by step); empty when the block has no usable value."""
     k = max(1, local.size // _PLAUSIBLE_SAMPLE_PIXELS)
     region = time_ok[:, None, None] & level_ok[None, :, None]
-    for pick in ((local[::k], local) if k > 1 else (local,)):
-        values, fill, invalid = screen.canonical(stored[:, :, pick])
-        sample = values[region & ~fill & ~invalid]
-        if sample.size:
-            break
-    return sample
+    values, fill, invalid = screen.canonical(stored[:, :, local[::k]])
+    sample = values[region & ~fill & ~invalid]
+    if sample.size or k == 1:
+        return sample
+    parts = []
+    for t in np.flatnonzero(time_ok).tolist():
+        values, fill, invalid = screen.canonical(stored[t:t + 1, :, local])
+        parts.append(values[region[t:t + 1] & ~fill & ~invalid])
+    return np.concatenate(parts) if parts else sample
 
 
 def _check_plausible(values: np.ndarray, plan: VariablePlan, path: Path) -> None:

@@ -175,7 +175,9 @@ class PixelPeriodSums:
     At most ``max_open`` periods are held (each a count and a sum per level and window
     position): opening one more first hands over the oldest (the cell sums merge parts of a
     period), so memory stays bounded however the time axis is ordered. With ``max_open = 0``
-    each block is handed over at once.
+    each block is handed over at once. The values used, fill and invalid of the inside pixels
+    are counted on the way (:attr:`used`, :attr:`fill`, :attr:`invalid`, complete after
+    :meth:`close_all`).
 
     Parameters
     ----------
@@ -202,33 +204,49 @@ class PixelPeriodSums:
         self.total_dtype = np.dtype(total_dtype)
         self.canonical_sum = canonical_sum
         self.max_open = max_open
+        self.used = self.fill = self.invalid = 0
         self._open: dict[int, tuple[np.ndarray, np.ndarray]] = {}
+        # fill and invalid counts per window position, picked once at the end (held mode)
+        self._masked = (np.zeros(self.shape, np.int64), np.zeros(self.shape, np.int64)) if max_open else None
 
-    def add(self, period: int, start: int, n: np.ndarray, total: np.ndarray) -> None:
-        """Add (Z, w) counts and sums of one block's steps of ``period`` at window positions start..start + w."""
-        if self.max_open == 0:
-            a, b = (int(i) for i in np.searchsorted(self.inside, [start, start + n.shape[1]]))
+    def add(self, period: int, start: int, n: np.ndarray, total: np.ndarray, fill: np.ndarray,
+            invalid: np.ndarray) -> None:
+        """Add (Z, w) counts and sums of one block's steps of ``period`` at window positions start..start + w:
+        values kept ``n`` and their sum ``total``, fill values and invalid values."""
+        span = slice(start, start + n.shape[1])
+        if self._masked is None:
+            a, b = (int(i) for i in np.searchsorted(self.inside, [span.start, span.stop]))
             pick = self.inside[a:b] - start
+            n = n[:, pick]
+            self.used += int(n.sum())
+            self.fill += int(fill[:, pick].sum())
+            self.invalid += int(invalid[:, pick].sum())
             key = self.key.reshape(self.weight.shape)[:, a:b].ravel()
-            self.cells.add_pixel_sums(period, key, n[:, pick], self.canonical_sum(n[:, pick], total[:, pick]),
-                                      self.weight[:, a:b])
+            self.cells.add_pixel_sums(period, key, n, self.canonical_sum(n, total[:, pick]), self.weight[:, a:b])
             return
         if period not in self._open:
             if len(self._open) >= self.max_open:
                 self.close(next(iter(self._open)))
             self._open[period] = (np.zeros(self.shape, np.int64), np.zeros(self.shape, self.total_dtype))
         acc_n, acc_total = self._open[period]
-        span = slice(start, start + n.shape[1])
         acc_n[:, span] += n
         acc_total[:, span] += total
+        self._masked[0][:, span] += fill
+        self._masked[1][:, span] += invalid
 
     def close(self, period: int) -> None:
         """Hand a period's sums to the cell sums (nothing if it is not open)."""
         held = self._open.pop(period, None)
         if held is not None:
             n, total = (x[:, self.inside] for x in held)
+            self.used += int(n.sum())
             self.cells.add_pixel_sums(period, self.key, n, self.canonical_sum(n, total), self.weight)
 
     def close_all(self) -> None:
+        """Hand over every open period and finish the counts."""
         for period in list(self._open):
             self.close(period)
+        if self._masked is not None:
+            self.fill += int(self._masked[0][:, self.inside].sum())
+            self.invalid += int(self._masked[1][:, self.inside].sum())
+            self._masked = (np.zeros(self.shape, np.int64), np.zeros(self.shape, np.int64))

@@ -80,7 +80,7 @@ class FloatScreen:
 class IntegerScreen(FloatScreen):
     """Mask and sum packed integers (8 to 32 bits) without decoding them; see the module docstring."""
 
-    #: Working bytes per value of a block: stored value, three masks, the kept values.
+    #: Working bytes per value of a block (int16; see __init__): the stored value, masks, the kept values.
     bytes_per_value = 12
 
     def __init__(self, packing: Packing, dtype: np.dtype, dimension: str, unit: str,
@@ -88,6 +88,9 @@ class IntegerScreen(FloatScreen):
         super().__init__(packing, dimension, unit, plausible)
         reading = np.dtype(f"u{np.dtype(dtype).itemsize}") if packing.unsigned else np.dtype(dtype)
         info = np.iinfo(reading)
+        # the stored value and the kept values (product with the mask) in the stored type, and
+        # up to eight one-byte masks and comparison results alive at a time
+        self.bytes_per_value = 8 + 2 * reading.itemsize
         self.first, self.last = int(info.min), int(info.max)
         self.fills = tuple(sorted({int(v) for v in packing.stored_fill_values(reading)}))
         self.valid = packing.valid_stored(reading)

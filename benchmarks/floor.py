@@ -76,9 +76,10 @@ def gridded_floor(study_dir: Path, path: Path, variable: str, out: Path, chunk_m
     from scipy import sparse
 
     from harmonize.gridded.area import axis_bounds, regular_pixel_area_km2
-    from harmonize.gridded.cf import CANONICAL_VARIABLES, unit_conversion
+    from harmonize.gridded.cf import CANONICAL_VARIABLES
     from harmonize.study import load_study
     from harmonize.tagging import Grid, inside_domain, normalise_lon
+    from harmonize.units import conversion as unit_conversion
 
     study = load_study(study_dir)
     with netCDF4.Dataset(path) as nc:

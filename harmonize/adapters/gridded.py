@@ -37,7 +37,13 @@ from harmonize.adapters.reading import EARLIEST_TIME, file_sha256
 from harmonize.adapters.registry import register
 from harmonize.config_spec import Map, Table, Value, number, text
 from harmonize.errors import ConfigError, InputFileError, ReasonCode
-from harmonize.gridded.aggregate import PERIODS, CellPeriodSums, Periods, assign_periods
+from harmonize.gridded.aggregate import (
+    PERIODS,
+    CellPeriodSums,
+    Periods,
+    PixelPeriodSums,
+    assign_periods,
+)
 from harmonize.gridded.area import (
     axis_bounds,
     corners_from_centres,
@@ -59,6 +65,7 @@ from harmonize.gridded.cf import (
     is_vertical,
 )
 from harmonize.gridded.classic import classic_required_size
+from harmonize.gridded.screen import FloatScreen, IntegerScreen, screen_for
 from harmonize.profile import Profile
 from harmonize.study import Study
 from harmonize.tagging import NEAR_BOTTOM, Grid, inside_domain, normalise_lon
@@ -70,8 +77,6 @@ DEFAULT_CHUNK_MB = 128
 #: file of 1.4 billion values read in 156 s on 2 cores (docs/sources/gridded.md); ten minutes
 #: leaves room for that four times over and still stops a hostile or broken file.
 DEFAULT_MAX_SECONDS_PER_FILE = 600.0
-#: Working bytes per grid value in a block: stored value, float64 copy, masks, bin keys, weights.
-_BYTES_PER_VALUE = 48
 #: Pixels of a block whose values the unit sanity check (its median) looks at.
 _PLAUSIBLE_SAMPLE_PIXELS = 4096
 _HDF5_SIGNATURE = b"\x89HDF\r\n\x1a\n"
@@ -706,12 +711,13 @@ class MaskCounts:
         return self.outside + self.below + self.bad_time + self.early + self.fill + self.invalid + self.implausible
 
 
-def _blocks(plan: VariablePlan, chunk_mb: float) -> list[tuple[int, int, int, int]]:
-    """(t0, t1, row0, row1) blocks of the window that fit the memory budget."""
+def _blocks(plan: VariablePlan, chunk_mb: float, bytes_per_value: int) -> list[tuple[int, int, int, int]]:
+    """(t0, t1, row0, row1) blocks of the window that fit the memory budget (``bytes_per_value``: working
+    bytes of the screen per grid value, :attr:`harmonize.gridded.screen.FloatScreen.bytes_per_value`)."""
     ny, nx = plan.geometry.window_shape
     n_t = int(plan.time.year.size)
     budget = chunk_mb * 2**20
-    per_row = max(nx * plan.n_levels * _BYTES_PER_VALUE, 1)
+    per_row = max(nx * plan.n_levels * bytes_per_value, 1)
     rows = int(min(ny, max(1, budget // per_row)))
     steps = int(min(n_t, max(1, budget // (per_row * rows))))
     return [(t0, min(t0 + steps, n_t), r0, min(r0 + rows, ny))
@@ -742,7 +748,11 @@ def reduce_variable(ds: xr.Dataset, plan: VariablePlan, chunk_mb: float, path: P
                     budget: ReadBudget | None = None) -> tuple[pd.DataFrame, MaskCounts]:
     """Read one variable block by block; per-(period, layer, cell) sums and the mask counts.
 
-    With ``budget``, the time spent on the file is checked before each block.
+    Each block's values are masked and summed per pixel along time, period by period
+    (:mod:`harmonize.gridded.screen`: on the stored integers for packed data); the per-pixel
+    sums of a period go into cells once its last step is read
+    (:class:`harmonize.gridded.aggregate.PixelPeriodSums`). With ``budget``, the time spent on
+    the file is checked before each block.
     """
     geo = plan.geometry
     counts = MaskCounts()
@@ -753,21 +763,35 @@ def reduce_variable(ds: xr.Dataset, plan: VariablePlan, chunk_mb: float, path: P
         return sums.result(), counts
     name = plan.mapping.file_name
     var = ds[name]
+    target = plan.mapping.target
+    screen = screen_for(plan.packing, var.dtype, target.dimension, plan.file_unit, target.plausible)
     y0, _, x0, x1 = geo.window
-    nx = x1 - x0
-    inside_row = geo.inside_flat // nx
+    ny, nx = geo.window_shape
+    inside_row = geo.inside_flat // nx  # ascending: the inside pixels of a run of rows are a slice
     level_ok = plan.level_layer >= 0
-    weight_z = plan.level_weight[:, None] * geo.area_km2[None, :]
-    lo, hi = plan.mapping.target.plausible
-    blocks = _blocks(plan, chunk_mb)
+    levels = np.flatnonzero(level_ok)
+    lv = slice(None) if levels.size == plan.n_levels else levels  # a slice: no copy of the block
+    weight = plan.level_weight[levels, None] * geo.area_km2[None, :]
+    # a period is complete after its last time step; its per-pixel sums are held until then,
+    # as many periods at a time as the budget allows (each: a count and a sum per level and pixel)
+    step_period = plan.periods.step_period
+    last_step = np.full(len(plan.periods.table), -1, np.int64)
+    np.maximum.at(last_step, step_period[step_period >= 0], np.flatnonzero(step_period >= 0))
+    held_bytes = max(levels.size * ny * nx * 16, 1)  # one period: a count and a sum per level and position
+    max_open = max(0, int(chunk_mb * 2**20 // held_bytes) - 1)  # one more: the fill and invalid counts
+    pixel_sums = PixelPeriodSums(sums, geo.inside_flat, ny * nx, sums.cell_keys(geo.pixel_cell, plan.level_layer[levels]),
+                                 weight, np.dtype(np.int64) if isinstance(screen, IntegerScreen) else np.dtype(np.float64),
+                                 screen.canonical_sum, max_open)
+    in_region = 0
+    blocks = _blocks(plan, chunk_mb, screen.bytes_per_value)
     order = [plan.t_dim] + ([plan.z_dim] if plan.z_dim else []) + [geo.y_dim, geo.x_dim]
     for i, (t0, t1, r0, r1) in enumerate(blocks):
         if budget is not None:
             budget.check(f"with {i:,} of {len(blocks):,} blocks of '{name}' read")
-        sel = (inside_row >= r0) & (inside_row < r1)
-        if not sel.any():
+        a, b = (int(j) for j in np.searchsorted(inside_row, [r0, r1]))
+        if a == b:
             continue
-        local = geo.inside_flat[sel] - r0 * nx
+        local = geo.inside_flat[a:b] - r0 * nx
         index = {plan.t_dim: slice(t0, t1), geo.y_dim: slice(y0 + r0, y0 + r1), geo.x_dim: slice(x0, x1),
                  **plan.fixed}
         try:
@@ -775,43 +799,52 @@ def reduce_variable(ds: xr.Dataset, plan: VariablePlan, chunk_mb: float, path: P
         except Exception as exc:  # noqa: BLE001 - HDF5/netCDF raise many kinds
             raise InputFileError(path, f"reading '{name}' (time steps {t0 + 1}-{t1}) failed ({type(exc).__name__}: "
                                  f"{exc}); the file is corrupt or truncated: download or export it again") from None
-        stored = stored.reshape(t1 - t0, plan.n_levels, -1)[:, :, local]
-        values, fill, invalid = plan.packing.decode(stored)
-        del stored
-        step_period = plan.periods.step_period[t0:t1]
-        time_ok = step_period >= 0
+        stored = stored.reshape(t1 - t0, plan.n_levels, -1)
+        block_period = step_period[t0:t1]
+        time_ok = block_period >= 0
         n_pix = local.size
         n_early = int(plan.early[t0:t1].sum())
         counts.early += n_early * plan.n_levels * n_pix
         counts.bad_time += (int((~time_ok).sum()) - n_early) * plan.n_levels * n_pix
         counts.below += int(time_ok.sum()) * int((~level_ok).sum()) * n_pix
-        region = time_ok[:, None, None] & level_ok[None, :, None]
-        fill &= region
-        invalid &= region
-        counts.fill += int(fill.sum())
-        counts.invalid += int(invalid.sum())
-        usable = region & ~fill & ~invalid
-        del fill, invalid
-        if plan.scale != 1.0:
-            values *= plan.scale
-        if plan.offset != 0.0:
-            values += plan.offset
-        if usable.any():
-            # the unit check on a sample of pixels (every k-th, all steps and levels of the
-            # block): a median needs no more to tell kelvin from degC
-            k = max(1, n_pix // _PLAUSIBLE_SAMPLE_PIXELS)
-            sample = values[:, :, ::k][usable[:, :, ::k]] if k > 1 else values[usable]
-            _check_plausible(sample if sample.size else values[usable], plan, path)
-        with np.errstate(invalid="ignore"):
-            implausible = usable & ((values < lo) | (values > hi))
-        counts.implausible += int(implausible.sum())
-        usable &= ~implausible
-        counts.used += int(usable.sum())
-        sums.add(np.where(time_ok, step_period, 0), values, usable, geo.pixel_cell[sel], weight_z[:, sel],
-                 plan.level_layer if plan.z_dim else None)
+        in_region += int(time_ok.sum()) * levels.size * n_pix
+        # the unit check first: a block in the wrong unit stops the file before it is summed
+        sample = _unit_sample(stored, local, time_ok, level_ok, screen)
+        if sample.size:
+            _check_plausible(sample, plan, path)
+        for period in np.unique(block_period[time_ok]).tolist():
+            steps = np.flatnonzero(block_period == period)
+            run = slice(int(steps[0]), int(steps[-1]) + 1) if steps[-1] - steps[0] + 1 == steps.size else steps
+            part = screen.reduce(stored[run][:, lv])
+            pixel_sums.add(period, r0 * nx, part.n, part.total, part.fill, part.invalid)
+        if r1 == ny:
+            for period in np.flatnonzero((last_step >= t0) & (last_step < t1)).tolist():
+                pixel_sums.close(period)
         if progress:
             progress(f"reading {name}", i + 1, len(blocks))
+    pixel_sums.close_all()
+    counts.used, counts.fill, counts.invalid = pixel_sums.used, pixel_sums.fill, pixel_sums.invalid
+    counts.implausible = in_region - pixel_sums.used - pixel_sums.fill - pixel_sums.invalid
     return sums.result(), counts
+
+
+def _unit_sample(stored: np.ndarray, local: np.ndarray, time_ok: np.ndarray, level_ok: np.ndarray,
+                 screen: FloatScreen) -> np.ndarray:
+    """The canonical values the unit check of a block looks at: the usable values (not fill, valid,
+    at a good time and level) of every k-th inside pixel (about _PLAUSIBLE_SAMPLE_PIXELS of them),
+    all steps and levels of the block; every usable value of the block when that sample holds
+    none (decoded step by step); empty when the block has no usable value."""
+    k = max(1, local.size // _PLAUSIBLE_SAMPLE_PIXELS)
+    region = time_ok[:, None, None] & level_ok[None, :, None]
+    values, fill, invalid = screen.canonical(stored[:, :, local[::k]])
+    sample = values[region & ~fill & ~invalid]
+    if sample.size or k == 1:
+        return sample
+    parts = []
+    for t in np.flatnonzero(time_ok).tolist():
+        values, fill, invalid = screen.canonical(stored[t:t + 1, :, local])
+        parts.append(values[region[t:t + 1] & ~fill & ~invalid])
+    return np.concatenate(parts) if parts else sample
 
 
 def _check_plausible(values: np.ndarray, plan: VariablePlan, path: Path) -> None:

@@ -13,7 +13,7 @@ packed type when they have the type of the stored data).
 from __future__ import annotations
 
 import re
-from collections.abc import Mapping
+from collections.abc import Callable, Mapping
 from dataclasses import dataclass
 from typing import Any
 
@@ -149,10 +149,41 @@ class Packing:
             if in_unpacked:
                 unpacked_valid = (lo, hi)
             else:
-                if unsigned:
-                    lo, hi = (float(_as_stored(v, dtype, True)) for v in (lo, hi))
+                if unsigned:  # an absent valid_min or valid_max stays unbounded (not cast to the type)
+                    lo, hi = (float(_as_stored(v, dtype, True)) if np.isfinite(v) else v for v in (lo, hi))
                 packed_valid = (lo, hi)
         return cls(scale, offset, tuple(fills), packed_valid, unpacked_valid, unsigned)
+
+    def reading(self, stored: np.ndarray) -> np.ndarray:
+        """The stored numbers as they are meant to be read: a view as unsigned with ``_Unsigned``."""
+        raw = np.asarray(stored)
+        if self.unsigned:
+            raw = raw.view(np.dtype(f"u{raw.dtype.itemsize}"))
+        return raw
+
+    def stored_fill_values(self, dtype: np.dtype) -> list[Any]:
+        """The fill/missing values as numbers of the stored reading's ``dtype`` (NaN fills left out:
+        a NaN is missing whatever the attributes say)."""
+        dtype = np.dtype(dtype)
+        out = []
+        for fv in self.fill_values:
+            if np.isnan(fv):
+                continue
+            out.append(np.asarray(fv).astype(dtype)[()] if dtype.kind in "iu" else fv)
+        return out
+
+    def unpack(self, values: np.ndarray) -> np.ndarray:
+        """Unpack float64 ``values`` in place (CF 8.1: packed x scale_factor + add_offset) and return them.
+
+        The one place where stored numbers become physical ones: the float decode, the
+        integer-domain bounds (:meth:`valid_stored`) and the summing of stored integers
+        (:mod:`harmonize.gridded.screen`) all follow it.
+        """
+        if self.scale_factor != 1.0:
+            values *= self.scale_factor
+        if self.add_offset != 0.0:
+            values += self.add_offset
+        return values
 
     def decode(self, stored: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
         """Unpack stored numbers.
@@ -163,14 +194,10 @@ class Packing:
             float64 unpacked values (NaN where fill or invalid), the mask of fill/missing
             values (and NaN), and the mask of values outside the valid range (not fill).
         """
-        raw = np.asarray(stored)
-        if self.unsigned:
-            raw = raw.view(np.dtype(f"u{raw.dtype.itemsize}"))
+        raw = self.reading(stored)
         fill = np.zeros(raw.shape, dtype=bool)
-        for fv in self.fill_values:
-            if np.isnan(fv):
-                continue
-            fill |= raw == np.asarray(fv).astype(raw.dtype) if raw.dtype.kind in "iu" else raw == fv
+        for fv in self.stored_fill_values(raw.dtype):
+            fill |= raw == fv
         if raw.dtype.kind == "f":
             fill |= np.isnan(raw)
         values = raw.astype(np.float64)
@@ -179,10 +206,7 @@ class Packing:
         if np.isfinite(lo) or np.isfinite(hi):
             with np.errstate(invalid="ignore"):
                 invalid |= (values < lo) | (values > hi)
-        if self.scale_factor != 1.0:
-            values *= self.scale_factor
-        if self.add_offset != 0.0:
-            values += self.add_offset
+        self.unpack(values)
         lo, hi = self.valid_unpacked
         if np.isfinite(lo) or np.isfinite(hi):
             with np.errstate(invalid="ignore"):
@@ -191,9 +215,54 @@ class Packing:
         values[fill | invalid] = np.nan
         return values, fill, invalid
 
+    def valid_stored(self, dtype: np.dtype) -> tuple[int, int]:
+        """The stored integers of the reading ``dtype`` that :meth:`decode` calls valid, as [lo, hi].
+
+        Exact, not estimated: each bound is found by bisection with the float arithmetic of
+        :meth:`decode` itself (comparing the integer as a float64 with valid_packed, then its
+        unpacked value with valid_unpacked), so a value on a bound, rounding and a negative
+        scale_factor are classified as the decode classifies them. An empty range has lo > hi.
+        """
+        dtype = np.dtype(dtype)
+        info = np.iinfo(dtype)
+        lo, hi = integer_interval(lambda r: r.astype(np.float64), *self.valid_packed, int(info.min), int(info.max))
+        u_lo, u_hi = integer_interval(lambda r: self.unpack(r.astype(np.float64)), *self.valid_unpacked,
+                                      int(info.min), int(info.max), increasing=self.scale_factor > 0)
+        return max(lo, u_lo), min(hi, u_hi)
+
     def describe_fill(self) -> str:
         shown = ", ".join(f"{v:g}" for v in self.fill_values)
         return f"_FillValue/missing_value ({shown})" if shown else "NaN"
+
+
+def integer_interval(decode: Callable[[np.ndarray], np.ndarray], lo: float, hi: float, first: int, last: int,
+                     increasing: bool = True) -> tuple[int, int]:
+    """The integers r in [first, last] with lo <= decode(r) <= hi, as [r_lo, r_hi] (r_lo > r_hi: none).
+
+    ``decode`` maps an int64 array to float64 and must be monotone (non-decreasing when
+    ``increasing``): an affine map in IEEE arithmetic is, since rounding to nearest keeps
+    order. The bounds are found by bisection with ``decode`` itself, so they hold exactly
+    for the float arithmetic the caller uses, including values on a bound.
+    """
+    def at(r: int) -> float:
+        return float(decode(np.array([r], np.int64))[0])
+
+    def first_true(test: Callable[[float], bool]) -> int:
+        # the least r in [first, last] where test(decode(r)) holds (monotone: false, then true); last + 1 if none
+        a, b = first, last + 1
+        while a < b:
+            mid = (a + b) // 2
+            if test(at(mid)):
+                b = mid
+            else:
+                a = mid + 1
+        return a
+
+    # kept means "not (v < lo) and not (v > hi)", the negation of the callers' rejection test, so a
+    # NaN bound rejects nothing, as the comparisons it replaces
+    if increasing:
+        return first_true(lambda v: not v < lo), first_true(lambda v: v > hi) - 1
+    return first_true(lambda v: not v > hi), first_true(lambda v: v < lo) - 1
 
 
 def _scalar(value: Any, default: float) -> float:

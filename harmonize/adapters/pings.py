@@ -131,10 +131,13 @@ _WITHHELD = '{"note": "row text withheld: it may identify a vessel"}'
 class PingReader:
     """The ping pipeline of one file, in DuckDB. See the module docstring for the method.
 
-    Tables: ``p`` typed pings with the first row-level problem; ``q`` adds the hashed
-    vessel, the gear rule and the grid cell; ``dups`` holds the pings rejected as duplicates
-    (same vessel and time); ``track`` the accepted pings, sorted per vessel by time, with
-    neighbours, class and hours.
+    Tables: ``p`` typed pings with the first row-level problem (the only table of the
+    whole file); ``rej`` the pings rejected by a row-level check, an unknown gear or the
+    domain; the view ``accepted`` the other pings with their hashed vessel's number, gear
+    rule and grid cell (joined as they stream, never stored); ``track`` the accepted pings'
+    track (one ordered pass per vessel; only the rows something downstream reads: fishing,
+    derived speeds, position jumps, edges); ``dups`` the pings with the same vessel and time
+    as an earlier row, made by a second ordered pass only when the track found one.
     """
 
     def __init__(self, path: Path, profile: Profile, study: Study, settings: FishingSettings,
@@ -151,6 +154,9 @@ class PingReader:
             self.delimiter = read_header(path, profile)[1]
         self.grid = Grid(study.crs, study.cell_size_km)
         self.notes: list[str] = []
+        self.tmp = Path(tempfile.gettempdir())  # the run's own temporary folder, set by run()
+        self.unknown_gears: list[str] = []  # raw gear names with no rule (set by _lookups)
+        self.n_outside = 0  # pings outside the domain (set by _locate)
 
     def _resolve(self, columns: list[str]) -> dict[str, str]:
         empty = RawTable(self.path, "rows", pd.DataFrame(columns=columns), "")
@@ -358,6 +364,7 @@ class PingReader:
             shutil.rmtree(tmp, ignore_errors=True)
 
     def _run(self, con: duckdb.DuckDBPyConnection, tmp: Path) -> AdapterOutput:
+        self.tmp = tmp
         self.progress("reading pings", 0, 5)
         if not self._read_fast(con):
             self._read_lines(con, tmp / "lines.parquet")
@@ -371,23 +378,29 @@ class PingReader:
         con.register("cells", self._locate(con))
         self.progress("tracks", 3, 5)
         self._checks(con)
-        con.unregister("cells")
         # once per file, with a count: positions that would lie inside the domain swapped (not port pings)
-        off = con.execute(f"SELECT lat, lon FROM q WHERE reason IN ('{ReasonCode.OUTSIDE_DOMAIN}', "
-                          f"'{ReasonCode.OUT_OF_RANGE}') AND lat IS NOT NULL AND lon IS NOT NULL").fetchnumpy()
+        off = con.execute(f"SELECT lat, lon FROM rej WHERE reason IN ('{ReasonCode.OUTSIDE_DOMAIN}', "
+                          f"'{ReasonCode.OUT_OF_RANGE}') AND lat IS NOT NULL AND lon IS NOT NULL "
+                          "ORDER BY row").fetchnumpy()
         self.notes += swapped_position_notes(self.study, [(self.path.name, off["lat"], off["lon"])])
         self.progress("fishing time", 4, 5)
         engine = current_engine()
         if engine.name == "dask":
             cells_df, fishing, derived = self._track_on_dask(con, engine.scheduler)
         else:
-            con.execute(self._track_sql())
+            self._track(con)
+            # the accepted pings are in the track, the rejected ones in rej and dups: the
+            # typed file is no longer needed
+            con.execute("DROP VIEW accepted")
+            con.execute("DROP VIEW p")
+            con.unregister("cells")
             cells_df = self._aggregate(con)
             fishing, derived = con.execute(
                 "SELECT count(*) FILTER (WHERE fishing), count(*) FILTER (WHERE sog IS NULL) FROM track WHERE NOT spike"
             ).fetchall()[0]
-            con.execute("CREATE TEMP TABLE track_edges AS SELECT row, vid, t, lat, lon, sog, smin, smax, code, gear, "
-                        "layer, owned, CASE WHEN fishing AND NOT spike AND hours > 0 THEN hours ELSE 0 END AS file_hours "
+            con.execute("CREATE TEMP TABLE track_edges AS SELECT row, vid, t, lat, lon, sog, smin_of(gi) AS smin, "
+                        "smax_of(gi) AS smax, code, gear_of(gi) AS gear, layer_of(gi) AS layer, owned, "
+                        "CASE WHEN fishing AND NOT spike AND hours > 0 THEN hours ELSE 0 END AS file_hours "
                         "FROM track WHERE edge")
         edges, edge_cells = self._edges(con)
         events, values = effort_output(cells_df, self.study, self.grid, contact)
@@ -412,7 +425,22 @@ class PingReader:
                                        "vid": vid}))
         gears = con.sql("SELECT DISTINCT gear_raw FROM p WHERE gear_raw IS NOT NULL").to_arrow_table()["gear_raw"].to_pylist()
         rules = {g: self.settings.rule(g, self.study) for g in gears}
+        self.unknown_gears = [g for g, r in rules.items() if r is None]
+        # a known gear's rule by its number (1-based): the track's sort carries the number only
+        known = [r for r in rules.values() if r is not None]
+        number = {g: i + 1 for i, g in enumerate(g for g, r in rules.items() if r is not None)}
+
+        def lookup(name: str, values: list[str], kind: str) -> None:
+            items = [f"CAST({v} AS {kind})" for v in values] or [f"CAST(NULL AS {kind})"]
+            con.execute(f"CREATE OR REPLACE TEMP MACRO {name}(i) AS ([{', '.join(items)}])[i]")
+
+        lookup("gear_of", [sql_text(r.gear) for r in known], "VARCHAR")
+        lookup("layer_of", [sql_text(r.layer) for r in known], "VARCHAR")
+        # the window's ends as the exact doubles of the settings (a text cast is correctly rounded)
+        lookup("smin_of", [sql_text(repr(r.speed_min_kn)) for r in known], "DOUBLE")
+        lookup("smax_of", [sql_text(repr(r.speed_max_kn)) for r in known], "DOUBLE")
         con.register("gmap", pa.table({
+            "gi": pa.array([number.get(g) for g in rules], pa.int16()),
             "gear_raw": pa.array(list(rules), pa.string()),
             "gear": pa.array([r.gear if r else None for r in rules.values()], pa.string()),
             "layer": pa.array([r.layer if r else None for r in rules.values()], pa.string()),
@@ -422,58 +450,94 @@ class PingReader:
         return {r.gear: r.contact for r in rules.values() if r is not None}
 
     def _checks(self, con: duckdb.DuckDBPyConnection) -> None:
-        """Gear, domain and duplicates (tables q, dups)."""
+        """Gear and domain: the rejected pings (table ``rej``, with what the quarantine shows
+        of each) and the view ``accepted`` of the others.
+
+        The rejected pings are found by three selective scans (a row-level problem; else an
+        unknown gear; else a position outside the domain, by the rows :meth:`_locate` found),
+        so that a file with few of them costs little here.
+        """
         unknown_gear = ("printf('gear ''%s'' is not a known gear code; add a [fishing.gears.\"%s\"] table "
                         "with contact = \"bottom\" or \"pelagic\" to the profile', cell_txt(p.gear_raw), cell_txt(upper(trim(p.gear_raw))))")
         outside = "printf('position (%.4f, %.4f) lies outside the study domain', p.lat, p.lon)"
+        unknown = "(" + ", ".join(sql_text(g) for g in self.unknown_gears) + ")" if self.unknown_gears else None
+        parts = ["SELECT p.row, p.v_raw, p.t, p.lat, p.lon, p.sog, g.gear, p.raw, p.reason, p.message "
+                 "FROM p LEFT JOIN gmap g ON p.gear_raw = g.gear_raw WHERE p.reason IS NOT NULL"]
+        if unknown:
+            parts.append(f"SELECT p.row, p.v_raw, p.t, p.lat, p.lon, p.sog, NULL, p.raw, '{ReasonCode.UNKNOWN_GEAR}', "
+                         f"{unknown_gear} FROM p WHERE p.reason IS NULL AND p.gear_raw IN {unknown}")
+        if self.n_outside:
+            known = f" AND p.gear_raw NOT IN {unknown}" if unknown else ""
+            parts.append(f"SELECT p.row, p.v_raw, p.t, p.lat, p.lon, p.sog, g.gear, p.raw, "
+                         f"'{ReasonCode.OUTSIDE_DOMAIN}', {outside} FROM p SEMI JOIN outside USING (row) "
+                         f"LEFT JOIN gmap g ON p.gear_raw = g.gear_raw WHERE p.reason IS NULL{known}")
+        union = " UNION ALL ".join(parts)
         con.execute(f"""
-            CREATE TABLE q AS
-            SELECT p.row, vm.vid, p.t, p.lat, p.lon, p.sog, g.gear, g.layer, g.smin, g.smax,
-                   c.code, p.raw,
-                   CASE WHEN p.reason IS NOT NULL THEN p.reason
-                        WHEN g.gear IS NULL THEN '{ReasonCode.UNKNOWN_GEAR}'
-                        WHEN c.code = {OUTSIDE} THEN '{ReasonCode.OUTSIDE_DOMAIN}' END AS reason,
-                   CASE WHEN p.reason IS NOT NULL THEN p.message
-                        WHEN g.gear IS NULL THEN {unknown_gear}
-                        WHEN c.code = {OUTSIDE} THEN {outside} END AS message
-            FROM (p POSITIONAL JOIN cells c)
-            LEFT JOIN vmap vm ON p.v_raw = vm.v_raw
-            LEFT JOIN gmap g ON p.gear_raw = g.gear_raw
+            CREATE TABLE rej AS
+            SELECT r.*, vm.vessel FROM ({union}) r(row, v_raw, t, lat, lon, sog, gear, raw, reason, message)
+            LEFT JOIN vmap vm ON r.v_raw = vm.v_raw
         """)
-        con.execute("DROP TABLE p")
-        # Pings in any order are sorted per vessel by time (the track's windows order by vessel,
-        # time and row): an ordinary AIS export interleaves vessels and repeats blocks, and a
-        # ping is not wrong for arriving out of order. A bad clock shows as an impossible jump.
-        # duplicates: the same vessel and time as an earlier row. A cheap count first (a hash
-        # aggregate, no sort): most files have none, and then the ordered pass is not needed.
-        accepted, keys = con.execute(
-            "SELECT count(*), count(DISTINCT (vid, t)) FROM q WHERE reason IS NULL").fetchall()[0]
-        if accepted == keys:
-            con.execute("CREATE TABLE dups (row BIGINT, r0 BIGINT, same BOOLEAN)")
-            return
+        # the vessel's number comes from the small table of distinct vessels (each hashed once)
+        con.execute(f"""
+            CREATE TEMP VIEW accepted AS
+            SELECT p.row, vm.vid, p.t, p.lat, p.lon, p.sog, g.gi, gear_of(g.gi) AS gear, layer_of(g.gi) AS layer,
+                   smin_of(g.gi) AS smin, smax_of(g.gi) AS smax, c.code
+            FROM (p POSITIONAL JOIN cells c)
+            JOIN vmap vm ON p.v_raw = vm.v_raw
+            JOIN gmap g ON p.gear_raw = g.gear_raw
+            WHERE p.reason IS NULL AND g.gi IS NOT NULL AND c.code <> {OUTSIDE}
+        """)
+
+    def _duplicates(self, con: duckdb.DuckDBPyConnection) -> None:
+        """Table ``dups``: the accepted pings with the same vessel and time as an earlier row
+        (one ordered pass), with what the quarantine shows of each."""
         con.execute("""
-            CREATE TABLE dups AS
-            SELECT row, r0, same FROM (
-                SELECT row, t, lag(t) OVER w AS t0, lag(row) OVER w AS r0,
+            CREATE OR REPLACE TABLE dups AS
+            SELECT row, r0, same, vid, t, lat, lon, sog, gear FROM (
+                SELECT row, vid, t, lat, lon, sog, gear, lag(t) OVER w AS t0, lag(row) OVER w AS r0,
                        (lag(lat) OVER w IS NOT DISTINCT FROM lat AND lag(lon) OVER w IS NOT DISTINCT FROM lon
                         AND lag(sog) OVER w IS NOT DISTINCT FROM sog) AS same
-                FROM q WHERE reason IS NULL
+                FROM accepted
                 WINDOW w AS (PARTITION BY vid ORDER BY t, row))
             WHERE t = t0
         """)
 
-    def _track_sql(self) -> str:
-        """The track of the accepted pings (harmonize.tracks: neighbours, position jumps,
-        derived speed, fishing class, hours, and whether a ping lies at an edge of its
-        vessel's part of this file)."""
+    def _track(self, con: duckdb.DuckDBPyConnection) -> None:
+        """Tables ``track`` (harmonize.tracks: neighbours, position jumps, derived speed,
+        fishing class, hours, and whether a ping lies at an edge of its vessel's part of this
+        file), ``dups`` and ``spikes``.
+
+        Pings in any order are sorted per vessel by time (the track's windows order by vessel,
+        time and row): an ordinary AIS export interleaves vessels and repeats blocks, and a ping
+        is not wrong for arriving out of order. A bad clock shows as an impossible jump.
+        Duplicates (the same vessel and time as an earlier row) are found by the track's own
+        sort: a ping whose previous ping on the track has its time. Most files have none, and
+        then the one ordered pass is all; otherwise they are taken out and the track made again.
+        """
+        con.execute(self._track_sql("accepted"))
+        if con.execute("SELECT count(*) FROM track WHERE dup").fetchall()[0][0]:
+            self._duplicates(con)
+            con.execute(self._track_sql("(SELECT * FROM accepted ANTI JOIN dups USING (row))"))
+        else:
+            con.execute("CREATE OR REPLACE TABLE dups (row BIGINT, r0 BIGINT, same BOOLEAN, vid INTEGER, "
+                        "t TIMESTAMP, lat DOUBLE, lon DOUBLE, sog DOUBLE, gear VARCHAR)")
+        con.execute("CREATE TABLE spikes AS SELECT row, vid, t, lat, lon, sog, gear_of(gi) AS gear, r_p1, sp_in, r_n1, "
+                    "sp_out FROM track WHERE spike")
+
+    def _track_sql(self, pings: str) -> str:
+        """The statement making table ``track`` from a relation of accepted pings: the rows
+        that the fishing cells, the counts, the edges and the quarantine read (fishing pings,
+        derived speeds, position jumps, edges) and those that repeat an earlier ping (``dup``)."""
         s = self.settings
-        pings = ("(SELECT row, vid, code, gear, layer, sog, smin, smax, t, lat, lon "
-                 "FROM q ANTI JOIN dups USING (row) WHERE q.reason IS NULL)")
+        # the sorts carry the gear's number, not its names and window
+        track = track_sql(f"(SELECT row, vid, code, gi, sog, t, lat, lon FROM {pings})",
+                          "vid", "t, row", repr(s.max_speed_kn), repr(s.max_gap_h), "smin_of(gi)", "smax_of(gi)")
         return f"""
-            CREATE TABLE track AS
-            SELECT row, vid, t, lat, lon, code, gear, layer, sog, smin, smax, spike, r_p1, r_n1,
-                   s_in AS sp_in, s_out AS sp_out, hours, speed, fishing, owned, edge
-            FROM ({track_sql(pings, "vid", "t, row", repr(s.max_speed_kn), repr(s.max_gap_h))})
+            CREATE OR REPLACE TABLE track AS
+            SELECT row, vid, t, lat, lon, code, gi, sog, spike, r_p1, r_n1,
+                   s_in AS sp_in, s_out AS sp_out, hours, fishing, owned, edge, dup
+            FROM (SELECT *, coalesce(t_p1 = t, false) AS dup FROM ({track}))
+            WHERE fishing OR spike OR edge OR sog IS NULL OR dup
         """
 
     def _track_on_dask(self, con: duckdb.DuckDBPyConnection, scheduler: str | None) -> tuple[pd.DataFrame, int, int]:
@@ -489,12 +553,17 @@ class PingReader:
 
         scratch = Path(tempfile.mkdtemp(prefix="harmonize-pings-", dir=scratch_parent()))
         try:
-            n = con.execute("SELECT count(*) FROM q WHERE reason IS NULL").fetchall()[0][0]
+            n, keys = con.execute("SELECT count(*), count(DISTINCT (vid, t)) FROM accepted").fetchall()[0]
+            if n == keys:  # no duplicates: a cheap count (a hash aggregate, no sort) says so
+                con.execute("CREATE OR REPLACE TABLE dups (row BIGINT, r0 BIGINT, same BOOLEAN, vid INTEGER, "
+                            "t TIMESTAMP, lat DOUBLE, lon DOUBLE, sog DOUBLE, gear VARCHAR)")
+            else:
+                self._duplicates(con)
             buckets = max(2, min(512, n // 1_000_000))  # about a million pings per Dask task
             target = sql_text(str(scratch / "pings"))
             con.execute(f"""
                 COPY (SELECT row, vid, t, lat, lon, sog, gear, layer, smin, smax, code, vid % {buckets} AS bucket
-                      FROM q ANTI JOIN dups USING (row) WHERE q.reason IS NULL)
+                      FROM accepted ANTI JOIN dups USING (row))
                 TO {target} (FORMAT parquet, PARTITION_BY (bucket))""")
             folders = sorted(p for p in (scratch / "pings").glob("bucket=*") if p.is_dir())
             files = [sorted(str(f) for f in d.glob("*.parquet")) for d in folders]
@@ -505,7 +574,8 @@ class PingReader:
         finally:
             shutil.rmtree(scratch, ignore_errors=True)
         con.register("dask_spikes", result.spikes)
-        con.execute("CREATE TEMP TABLE track AS SELECT row, r_p1, sp_in, r_n1, sp_out, true AS spike FROM dask_spikes")
+        con.execute("CREATE TEMP TABLE spikes AS SELECT s.row, a.vid, a.t, a.lat, a.lon, a.sog, a.gear, s.r_p1, "
+                    "s.sp_in, s.r_n1, s.sp_out FROM dask_spikes s JOIN accepted a USING (row)")
         con.unregister("dask_spikes")
         if result.edges is not None and len(result.edges):
             con.register("dask_edges", result.edges)
@@ -513,7 +583,7 @@ class PingReader:
             con.unregister("dask_edges")
         else:
             con.execute("CREATE TEMP TABLE track_edges AS SELECT row, vid, t, lat, lon, sog, smin, smax, code, gear, "
-                        "layer, true AS owned, 0.0 AS file_hours FROM q LIMIT 0")
+                        "layer, true AS owned, 0.0 AS file_hours FROM accepted LIMIT 0")
         cells = result.cells
         if result.vessels is not None and len(cells):
             # the vessels behind each cell (pseudonyms), so n_vessels merges across files
@@ -541,7 +611,7 @@ class PingReader:
         if self.path.suffix.lower() == ".parquet":
             src = _csv_source(self.path, self.profile)[:-1] + ", file_row_number = true)"
             sql = self._stage1_sql(src, "file_row_number + 1", "CAST(NULL AS INTEGER) AS nf, false AS odd")
-            con.execute(f"CREATE TABLE p AS {sql}")
+            self._keep_typed(con, sql)
             return True
         try:
             probe = con.sql(f"SELECT * FROM {_csv_source(self.path, self.profile, self.delimiter, rejects=False)} LIMIT 0")
@@ -561,12 +631,12 @@ class PingReader:
         sql = self._stage1_sql(_csv_source(self.path, self.profile, self.delimiter), "row_number() OVER ()",
                                f"CAST(NULL AS INTEGER) AS nf, {odd} AS odd")
         try:
-            con.execute(f"CREATE TABLE p AS {sql}")
+            self._keep_typed(con, sql)
         except duckdb.Error:
             return False
         rejected = con.execute("SELECT count(*) FROM ping_rejects").fetchall()[0][0]
         if rejected or con.execute("SELECT count(*) FROM p WHERE odd").fetchall()[0][0]:
-            con.execute("DROP TABLE p")
+            con.execute("DROP VIEW p")
             return False
         return True
 
@@ -600,19 +670,36 @@ class PingReader:
         for i, c in enumerate(self.columns):
             self.colref.setdefault(c, names[i])
         sql = self._stage1_sql(f"read_parquet({sql_text(str(target))})", "row", "nf, false AS odd")
-        con.execute(f"CREATE TABLE p AS {sql}")
+        self._keep_typed(con, sql)
+
+    def _keep_typed(self, con: duckdb.DuckDBPyConnection, sql: str) -> None:
+        """The typed pings as the view ``p``, over a parquet file written once in the temporary
+        folder: compressed and outside DuckDB's memory limit (an in-memory table of 1e7 typed
+        pings filled the limit by itself and was spilled and read back uncompressed)."""
+        target = sql_text(str(self.tmp / "typed.parquet"))
+        con.execute(f"COPY ({sql}) TO {target} (FORMAT parquet)")
+        con.execute(f"CREATE OR REPLACE VIEW p AS SELECT * FROM read_parquet({target})")
 
     def _locate(self, con: duckdb.DuckDBPyConnection) -> pa.Table:
-        """Cell code per row (in table order): OUTSIDE outside the domain, null without a position."""
-        parts = []
-        for batch in con.sql("SELECT lon, lat FROM p").to_arrow_reader(1_000_000):
-            lon = batch.column(0).to_numpy(zero_copy_only=False).astype(float)
-            lat = batch.column(1).to_numpy(zero_copy_only=False).astype(float)
+        """Cell code per row (in table order): OUTSIDE outside the domain, null without a position.
+
+        Also registers ``outside``: the rows of the positions outside the domain.
+        """
+        parts, outside = [], []
+        for batch in con.sql("SELECT row, lon, lat FROM p").to_arrow_reader(1_000_000):
+            lon = batch.column(1).to_numpy(zero_copy_only=False).astype(float)
+            lat = batch.column(2).to_numpy(zero_copy_only=False).astype(float)
             ok = np.isfinite(lon) & np.isfinite(lat) & (np.abs(lat) <= 90)
             code = np.full(lon.shape[0], OUTSIDE, dtype=np.int64)
             if ok.any():
                 code[ok] = locate(self.study, self.grid, lon[ok], lat[ok])
             parts.append(pa.array(code, mask=~ok))
+            out = ok & (code == OUTSIDE)
+            if out.any():
+                outside.append(batch.column(0).to_numpy(zero_copy_only=False)[out].astype(np.int64))
+        rows = np.concatenate(outside) if outside else np.zeros(0, np.int64)
+        self.n_outside = int(rows.size)
+        con.register("outside", pa.table({"row": pa.array(rows, pa.int64())}))
         return pa.table({"code": pa.chunked_array(parts, pa.int64())})
 
     def _aggregate(self, con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
@@ -621,7 +708,7 @@ class PingReader:
         edge pings, joined across the files of the source (harmonize.parts)."""
         season, season_year = season_sql("t", self.study.seasons, self.study.timezone)
         df = con.sql(f"""
-            SELECT code, {season_year} AS season_year, {season} AS season, gear, layer AS depth_layer,
+            SELECT code, {season_year} AS season_year, {season} AS season, gear_of(gi) AS gear, layer_of(gi) AS depth_layer,
                    sum(hours) AS hours, count(DISTINCT vid) AS n_vessels, count(*) AS n_values,
                    coalesce(bool_or(sog IS NULL) FILTER (WHERE NOT owned), false) AS speed_derived,
                    coalesce(list_sort(list(DISTINCT vessel) FILTER (WHERE NOT owned)), []::VARCHAR[]) AS vessel_ids
@@ -670,7 +757,7 @@ class PingReader:
             CREATE TEMP VIEW rejected AS
             -- one reason per ping (a ping can break several rules): the first in this order
             SELECT row, arg_min(reason, prio) AS reason, arg_min(message, prio) AS message FROM (
-            SELECT row, reason, message, 1 AS prio FROM q WHERE reason IS NOT NULL
+            SELECT row, reason, message, 1 AS prio FROM rej
             UNION ALL
             SELECT row, '{ReasonCode.DUPLICATE_RECORD}',
                    CASE WHEN same THEN printf('exact duplicate of row %d (same vessel, time and position)', r0)
@@ -689,19 +776,25 @@ class PingReader:
                         ELSE
                         printf('position jump: reaching this ping from row %d takes %.1f knots and leaving it for row %d '
                                '%.1f knots, above the %s-knot limit; a bad position fix?',
-                               r_p1, sp_in, r_n1, sp_out, '{s.max_speed_kn:g}') END, 4 FROM track WHERE spike
+                               r_p1, sp_in, r_n1, sp_out, '{s.max_speed_kn:g}') END, 4 FROM spikes
             ) GROUP BY row
         """)
         vcol = sql_text(self.found.get("vessel_id", "vessel_id"))
-        typed = [(f, e) for f, e in (("time", f"strftime(q.t, {iso})"), ("lat", "q.lat"), ("lon", "q.lon"),
-                                     ("speed_kn", "q.sog"), ("gear", "q.gear")) if f in self.found]
+        typed = [(f, e) for f, e in (("time", f"strftime(d.t, {iso})"), ("lat", "d.lat"), ("lon", "d.lon"),
+                                     ("speed_kn", "d.sog"), ("gear", "d.gear")) if f in self.found]
         typed_raw = "json_object(" + ", ".join(f"{sql_text(self.found[f])}, {e}" for f, e in typed) + ")"
         name = self.path.name
         rows = con.sql(f"""
             SELECT {sql_text(name)} AS source_file, r.row AS source_row, r.reason AS reason_code, r.message,
-                   CAST(json_merge_patch(json_object({vcol}, vmap.vessel), coalesce(q.raw, {typed_raw})) AS VARCHAR) AS raw
-            FROM (SELECT * FROM rejected ORDER BY row LIMIT {int(limit)}) r JOIN q USING (row)
-            LEFT JOIN (SELECT DISTINCT vid, vessel FROM vmap) vmap ON q.vid = vmap.vid
+                   CAST(json_merge_patch(json_object({vcol}, d.vessel), coalesce(d.raw, {typed_raw})) AS VARCHAR) AS raw
+            FROM (SELECT * FROM rejected ORDER BY row LIMIT {int(limit)}) r JOIN (
+                -- what is shown of each rejected ping: its hashed vessel and typed fields
+                SELECT row, vessel, t, lat, lon, sog, gear, raw FROM rej
+                UNION ALL
+                SELECT x.row, m.vessel, x.t, x.lat, x.lon, x.sog, x.gear, NULL FROM (
+                    SELECT row, vid, t, lat, lon, sog, gear FROM dups
+                    UNION ALL SELECT row, vid, t, lat, lon, sog, gear FROM spikes) x
+                LEFT JOIN (SELECT DISTINCT vid, vessel FROM vmap) m USING (vid)) d USING (row)
             ORDER BY r.row
         """).to_arrow_table().to_pandas()
         rows["message"] = rows["message"].map(one_line)  # at most `limit` rows

@@ -27,7 +27,7 @@ import numpy as np
 import pandas as pd
 
 from harmonize import load_study
-from harmonize.adapters.effort import fishing_settings
+from harmonize.adapters.fishing import fishing_settings
 from harmonize.geodesy import closed_form
 from harmonize.ingest import prepare
 from harmonize.tagging import season_sql

@@ -175,6 +175,7 @@ def measure(name: str, *args: object, timeout: float | None = None, limit_mb: fl
     for i in range(REPEAT):
         if i and name in ("harmonize", "gridded") and args and Path(str(args[0])).is_dir():
             shutil.rmtree(Path(str(args[0])) / "store", ignore_errors=True)  # each run ingests afresh
+            (Path(str(args[0])) / ".store.ingested").unlink(missing_ok=True)  # removed on purpose, not lost
         start = time.perf_counter()
         proc = subprocess.run(cmd, capture_output=True, text=True, cwd=cwd or ROOT, timeout=timeout, preexec_fn=cap)
         seconds = time.perf_counter() - start
@@ -207,16 +208,30 @@ def bench_ingest(sizes: list[int], work: Path, dask: bool = False,
             break
         folder = work / f"pings_{n}"
         path = ping_study(folder, n)
+        from benchmarks.pings_floor import check_equal, floor_sql
+
+        sql = folder / "floor.sql"  # prepared here: the measured process runs the one statement
+        sql.write_text(floor_sql(folder, "bench_pings", path, folder / "floor_cells.parquet"))
         res = {"what": "pings", "n": n, "file_mb": path.stat().st_size / 2**20,
                "floor": measure("floor", folder / "floor", path),
-               "pandas": measure("pandas_pings", path, folder / "pandas.parquet"),
-               "harmonize": measure("harmonize", folder, "bench_pings", "duckdb", path)}
+               "same_floor": measure("pings_floor", sql),
+               "pandas": measure("pandas_pings", path, folder / "pandas.parquet")}
+        if BEFORE is not None:
+            res["before"] = measure("harmonize", folder, "bench_pings", "duckdb", path, cwd=BEFORE)
+            shutil.rmtree(folder / "store", ignore_errors=True)
+            (folder / ".store.ingested").unlink(missing_ok=True)  # removed on purpose, not lost
+        res["harmonize"] = measure("harmonize", folder, "bench_pings", "duckdb", path)
+        if "error" not in res["harmonize"] and "error" not in res["same_floor"]:
+            # the floor's cells equal the store's (raises otherwise): hours, vessels, pings
+            cells = int(check_equal(folder / "floor_cells.parquet", folder)["cell_periods"])
+            res["same_floor_check"] = {"harmonize_rows": cells, "floor_rows": cells}
         if dask:
             shutil.rmtree(folder / "store", ignore_errors=True)
             (folder / ".store.ingested").unlink(missing_ok=True)  # removed on purpose, not lost
             res["harmonize_dask"] = measure("harmonize", folder, "bench_pings", "dask", path)
         rows.append(res)
         _print_ingest_row(res)
+        _print_paired_row(res)
         shutil.rmtree(folder, ignore_errors=True)
     for n in sizes:
         if "trawl" not in inputs:

@@ -1,6 +1,6 @@
 """Distances on the WGS84 ellipsoid between nearby points: one formula, in numpy and as SQL text.
 
-The ping tracks (harmonize.adapters.effort, the Dask engine and the store's view that joins
+The ping tracks (harmonize.adapters.pings, the Dask engine and the store's view that joins
 tracks across files) measure the few-kilometre links between consecutive pings with the
 flat-earth formula on the ellipsoid's meridional (M) and prime-vertical (N) radii of
 curvature at the mean latitude (Snyder 1987, "Map Projections - A Working Manual", USGS

@@ -34,7 +34,7 @@ RADIUS = 3
 EDGE = 2 * RADIUS
 
 
-def track_sql(pings: str, key: str, order: str, vmax: str, gap: str) -> str:
+def track_sql(pings: str, key: str, order: str, vmax: str, gap: str, smin: str = "smin", smax: str = "smax") -> str:
     """SELECT adding the track columns to every column of ``pings``.
 
     Parameters
@@ -42,8 +42,8 @@ def track_sql(pings: str, key: str, order: str, vmax: str, gap: str) -> str:
     pings
         A relation (table name or parenthesised query) with columns ``row`` (any tie-breaker
         that names the ping in messages), ``t`` (TIMESTAMP, UTC), ``lat``, ``lon``, ``sog``
-        (knots, NULL when not reported), ``smin``, ``smax`` (the gear's speed window), and
-        the columns of ``key``.
+        (knots, NULL when not reported), ``smin``, ``smax`` (the gear's speed window, unless
+        given below), and the columns of ``key``.
     key
         The track's partition, e.g. ``vid`` or ``source_id, vessel``.
     order
@@ -51,6 +51,10 @@ def track_sql(pings: str, key: str, order: str, vmax: str, gap: str) -> str:
     vmax, gap
         SQL for the position-jump speed limit (knots) and the gap cap (hours): literals or
         columns of ``pings``.
+    smin, smax
+        SQL for the gear's speed window (knots), evaluated after the ordering: columns of
+        ``pings`` by default, or expressions of them (e.g. a lookup by a gear number, so that
+        the sort carries one small number instead of the window).
 
     Returns
     -------
@@ -112,7 +116,7 @@ def track_sql(pings: str, key: str, order: str, vmax: str, gap: str) -> str:
     sp_next = (f"CASE WHEN {dt_next} <= {gap} THEN CASE WHEN spike_n1 THEN {speed('me', 'ne')} "
                f"ELSE s_out END END")
     return f"""
-        SELECT *, coalesce(speed BETWEEN smin AND smax, false) AS fishing, NOT (h_p{RADIUS} AND h_n{RADIUS}) AS owned
+        SELECT *, coalesce(speed BETWEEN {smin} AND {smax}, false) AS fishing, NOT (h_p{RADIUS} AND h_n{RADIUS}) AS owned
         FROM (
             SELECT *, coalesce(sog, (coalesce(sp_prev, sp_next) + coalesce(sp_next, sp_prev)) / 2) AS speed
             FROM (

@@ -20,8 +20,9 @@ import pytest
 from geographiclib.geodesic import Geodesic
 
 from harmonize import Store, load_study, run
-from harmonize.adapters.effort import M_PER_NMI, geodesic_distance_m, split_tows_by_cell
+from harmonize.adapters.logbooks import split_tows_by_cell
 from harmonize.errors import ConfigError
+from harmonize.geodesy import M_PER_NMI, distance_m
 from harmonize.tagging import Grid
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
@@ -136,7 +137,9 @@ def test_vessel_ids_never_reach_the_store(ping_study: Path) -> None:
 
 
 def test_distance_formula_against_geographiclib() -> None:
-    """The SQL distance between pings vs the geodesic (Karney 2013, J. Geodesy 87:43-55)."""
+    """The distance of a logbook tow (harmonize.geodesy's numpy form; its SQL twin, which the
+    ping tracks use, is checked in tests/test_geodesy.py) vs the geodesic (Karney 2013,
+    J. Geodesy 87:43-55)."""
     rng = np.random.default_rng(3)
     n = 2000
     lat1 = rng.uniform(-70, 70, n)
@@ -146,15 +149,15 @@ def test_distance_formula_against_geographiclib() -> None:
     ends = [GEOD.Direct(a, b, c, d) for a, b, c, d in zip(lat1, lon1, azi, dist, strict=True)]
     lat2 = np.array([e["lat2"] for e in ends])
     lon2 = np.array([e["lon2"] for e in ends])
-    got = geodesic_distance_m(lat1, lon1, lat2, lon2)
+    got = distance_m(lat1, lon1, lat2, lon2)
     assert np.max(np.abs(got - dist) / dist) < 1e-5  # the accuracy the adapter documents
     # GeographicLib documentation check values: 1 degree of longitude along the equator and
     # of latitude from 0 to 1 N
-    assert geodesic_distance_m(np.array([0.0]), np.array([0.0]), np.array([0.0]), np.array([1.0]))[0] == pytest.approx(111_319.491, abs=0.01)
-    assert geodesic_distance_m(np.array([0.0]), np.array([0.0]), np.array([1.0]), np.array([0.0]))[0] == pytest.approx(110_574.389, abs=1.0)
+    assert distance_m(np.array([0.0]), np.array([0.0]), np.array([0.0]), np.array([1.0]))[0] == pytest.approx(111_319.491, abs=0.01)
+    assert distance_m(np.array([0.0]), np.array([0.0]), np.array([1.0]), np.array([0.0]))[0] == pytest.approx(110_574.389, abs=1.0)
     # across the antimeridian
     e = GEOD.Inverse(10.0, 179.99, 10.01, -179.99)
-    assert geodesic_distance_m(np.array([10.0]), np.array([179.99]), np.array([10.01]), np.array([-179.99]))[0] == pytest.approx(e["s12"], rel=1e-6)
+    assert distance_m(np.array([10.0]), np.array([179.99]), np.array([10.01]), np.array([-179.99]))[0] == pytest.approx(e["s12"], rel=1e-6)
 
 
 def test_knot_is_1852_metres_per_hour() -> None:
@@ -336,7 +339,7 @@ def _quarantined(result) -> list[tuple[int, str, str]]:  # type: ignore[no-untyp
 
 def test_fast_reader_and_line_reader_number_rows_alike(ping_study: Path) -> None:
     """A well-formed file stays on DuckDB's fast path; the line reader gives the same result."""
-    from harmonize.adapters.effort import PingReader
+    from harmonize.adapters.pings import PingReader
 
     lines = (FIXTURES / "effort" / "pings_hand.csv").read_text().splitlines()
     clean = [line for line in lines if not line.endswith(",extra")]  # the row with a field too many
@@ -360,7 +363,7 @@ def test_rows_are_counted_as_a_person_counts_them(ping_study: Path, block_rows: 
     semi = [line.replace(",", ";") for line in lines[2:4]]  # data rows 2 and 3
     text = "\n".join([lines[0], ",,,,,", lines[1], "", semi[0], " , ,", "", semi[1], "\r", *lines[4:]]) + "\n"
     (ping_study / "odd.csv").write_text(text)
-    with mock.patch("harmonize.adapters.effort.FALLBACK_BLOCK_ROWS", block_rows):
+    with mock.patch("harmonize.adapters.pings.FALLBACK_BLOCK_ROWS", block_rows):
         result = run(load_study(ping_study), "effort_pings", {"rows": ping_study / "odd.csv"}, write=False)
     assert (result.rows_read, result.rows_accepted, result.rows_quarantined) == (31, 19, 12)
     got = {row: reason for row, reason, _ in _quarantined(result)}

@@ -4,7 +4,7 @@
    DuckDB, the accepted pings are written as parquet in buckets of whole vessels
    (``vid % n_buckets``). Each bucket is one Dask task: it sorts its vessels' pings by
    time, finds the neighbours, position jumps, derived speeds, fishing class and attributed
-   hours exactly as :class:`harmonize.adapters.effort.PingReader` does in SQL, and reduces
+   hours exactly as :class:`harmonize.adapters.pings.PingReader` does in SQL, and reduces
    them to partial cell sums. As every vessel lies in one bucket, the distinct vessels of a
    cell are the sum of the buckets' distinct vessels, so the final reduction is a plain sum
    over small partial tables.

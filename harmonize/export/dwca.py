@@ -71,8 +71,8 @@ from harmonize.export.selection import (
     open_selection,
     prepare_target,
     sample_kinds,
-    sql_text,
 )
+from harmonize.sql import sql_text
 from harmonize.study import Study
 
 SUFFIXES = (".zip",)

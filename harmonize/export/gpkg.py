@@ -49,8 +49,8 @@ from harmonize.export.selection import (
     open_selection,
     prepare_target,
     source_kinds,
-    sql_text,
 )
+from harmonize.sql import sql_text
 from harmonize.study import Study
 from harmonize.tagging import Grid
 

@@ -24,8 +24,9 @@ from harmonize import __version__
 from harmonize.contract import CONTRACT_VERSION
 from harmonize.disclosure import Disclosure
 from harmonize.export.safe_csv import header_text
-from harmonize.export.selection import ExportFilters, sql_text
+from harmonize.export.selection import ExportFilters
 from harmonize.files import public_name
+from harmonize.sql import sql_text
 from harmonize.study import Study
 
 PARQUET_KEY = "harmonize"

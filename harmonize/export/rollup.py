@@ -32,7 +32,8 @@ import duckdb
 import pandas as pd
 
 from harmonize.errors import HarmonizeError
-from harmonize.export.selection import BASE_VIEW, duplicate_sql, sql_ident
+from harmonize.export.selection import BASE_VIEW, duplicate_sql
+from harmonize.sql import sql_ident
 from harmonize.study import Study
 from harmonize.taxonomy import RANKS, Hierarchy, coarsest_targets, consistent_targets
 

@@ -24,6 +24,7 @@ from harmonize import parts, settings
 from harmonize.adapters.registry import kinds
 from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
+from harmonize.sql import sql_text
 from harmonize.store import Store
 from harmonize.study import Study
 
@@ -47,16 +48,6 @@ DEFAULT_MEMORY_LIMIT = "2GB"
 MEMORY_LIMIT_ENV = settings.ENVIRONMENT["export_memory_limit"]
 
 _YEAR_RANGE = re.compile(r"^\s*(\d{4})\s*(?:(?:-|\.\.)\s*(\d{4}))?\s*$")
-
-
-def sql_text(value: str) -> str:
-    """A SQL string literal (single quotes doubled)."""
-    return "'" + str(value).replace("'", "''") + "'"
-
-
-def sql_ident(name: str) -> str:
-    """A quoted SQL identifier (double quotes doubled)."""
-    return '"' + str(name).replace('"', '""') + '"'
 
 
 def _text_list(values: Iterable[str]) -> str:

@@ -61,9 +61,8 @@ from harmonize.export.selection import (
     open_selection,
     prepare_target,
     sample_kinds,
-    sql_ident,
-    sql_text,
 )
+from harmonize.sql import sql_ident, sql_text
 from harmonize.study import Study
 
 SUFFIXES = (".parquet", ".csv")

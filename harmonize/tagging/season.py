@@ -106,3 +106,30 @@ def season_sql(column: str, seasons: Mapping[str, tuple[int, ...]], timezone: st
     local = local_sql(column, timezone)
     return (f"({names_sql})[month({local})]",
             f"CAST(year({local}) + ({offsets})[month({local})] AS INTEGER)")
+
+
+def season_bounds(
+    season: pd.Series, season_year: pd.Series, seasons: Mapping[str, tuple[int, ...]], timezone: str = UTC
+) -> tuple[pd.Series, pd.Series]:
+    """First instant of each (season, season_year) and the first instant after it (exclusive
+    end), as naive UTC ``datetime64[us]``: local midnights of the study calendar.
+
+    A season's months run from its first month in season-year order (the months that
+    :func:`season_year_offsets` shifts come first) to its last.
+    """
+    offsets = season_year_offsets(seasons)
+    starts, ends = {}, {}
+    for name, months in seasons.items():
+        firsts = sorted((-int(offsets[m]), m) for m in months)  # (year shift, month)
+        starts[name] = firsts[0]
+        ends[name] = firsts[-1]
+    sy = pd.Series(season_year).astype("int64").to_numpy()
+    first = np.array([starts[s] for s in season], dtype=np.int64).reshape(-1, 2)
+    last = np.array([ends[s] for s in season], dtype=np.int64).reshape(-1, 2)
+    start = pd.to_datetime(pd.DataFrame({"year": sy + first[:, 0], "month": first[:, 1], "day": 1}))
+    end = (pd.to_datetime(pd.DataFrame({"year": sy + last[:, 0], "month": last[:, 1], "day": 1}))
+           + pd.DateOffset(months=1))
+    if timezone != UTC:  # local midnights of the study calendar, as UTC instants
+        start, end = (t.dt.tz_localize(timezone, ambiguous=np.ones(len(t), bool), nonexistent="shift_forward")
+                      .dt.tz_convert(UTC).dt.tz_localize(None) for t in (start, end))
+    return start.astype("datetime64[us]"), end.astype("datetime64[us]")

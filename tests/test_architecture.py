@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import ast
 import csv
+import functools
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -28,9 +29,15 @@ def _modules() -> dict[str, Path]:
 MODULES = _modules()
 
 
+@functools.cache
+def _tree(path: Path) -> ast.Module:
+    """The parsed source of a file (parsed once per test process; the tests only read it)."""
+    return ast.parse(path.read_text(encoding="utf-8"))
+
+
 def _imports(path: Path) -> Iterator[tuple[str, str | None, int]]:
     """(module imported, name imported from it or None, line) for every import in a file."""
-    for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+    for node in ast.walk(_tree(path)):
         if isinstance(node, ast.Import):
             for alias in node.names:
                 yield alias.name, None, node.lineno
@@ -110,7 +117,7 @@ def test_exports_use_only_the_public_api_of_the_store() -> None:
 def _attribute_uses(attr_of: str, attr: str) -> list[str]:
     found = []
     for mod, path in sorted(MODULES.items()):
-        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+        for node in ast.walk(_tree(path)):
             if (isinstance(node, ast.Attribute) and node.attr == attr and isinstance(node.value, ast.Name)
                     and node.value.id == attr_of):
                 found.append(f"{mod} line {node.lineno}")
@@ -234,7 +241,7 @@ def test_no_list_of_kind_names_outside_the_adapters() -> None:
     for mod, path in sorted(MODULES.items()):
         if _under(mod, "harmonize.adapters") or _under(mod, "harmonize.demo"):
             continue
-        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+        for node in ast.walk(_tree(path)):
             if isinstance(node, ast.Tuple | ast.List | ast.Set):
                 named = [e.value for e in node.elts if isinstance(e, ast.Constant) and e.value in names]
                 if len(named) >= 2:

@@ -9,6 +9,7 @@ from __future__ import annotations
 import ast
 import csv
 import functools
+import re
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -255,3 +256,37 @@ def test_merged_kinds_come_from_the_adapter_classes() -> None:
 
     by_attribute = {kind for kind, cls in list_adapters().items() if cls.merges_parts}
     assert set(parts.merged_kinds()) == by_attribute == {"gridded", "effort"}   # docs/store.md: values that span files
+
+
+
+def _kind_texts(tree: ast.Module, names: tuple[str, ...]) -> list[tuple[int, list[str]]]:
+    """String constants (an f-string's literal parts included) quoting two or more kind names."""
+    quoted = re.compile("['\"]({})['\"]".format("|".join(re.escape(k) for k in names)))
+    found = []
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Constant) and isinstance(node.value, str):
+            named = sorted(set(quoted.findall(node.value)))
+            if len(named) >= 2:
+                found.append((node.lineno, named))
+    return found
+
+
+def test_no_list_of_kind_names_in_sql_text_outside_the_adapters() -> None:
+    # the same for lists written inside SQL or other text, e.g. "source_kind IN ('trawl',
+    # 'plankton')": a second copy of a list the adapters' attributes define
+    from harmonize.adapters.registry import kinds
+
+    found = [f"{mod} line {line}: {named}" for mod, path in sorted(MODULES.items())
+             if not (_under(mod, "harmonize.adapters") or _under(mod, "harmonize.demo"))
+             for line, named in _kind_texts(_tree(path), kinds())]
+    assert found == []
+
+
+def test_the_kind_text_check_can_fail(tmp_path: Path) -> None:
+    from harmonize.adapters.registry import kinds
+
+    a, b = kinds()[:2]
+    path = tmp_path / "leak.py"
+    path.write_text(f"SQL = f\"WHERE source_kind IN ('{a}', '{b}') AND x = {{1}}\"\nONE = \"kind = '{a}'\"\n",
+                    encoding="utf-8")
+    assert _kind_texts(_tree(path), kinds()) == [(1, sorted([a, b]))]

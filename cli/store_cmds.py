@@ -44,6 +44,7 @@ def status(
     consoles.json = as_json
     from rich.table import Table
 
+    from harmonize.adapters.registry import kinds
     from harmonize.store import Store
     from harmonize.twins import volunteer_only
 
@@ -57,7 +58,8 @@ def status(
                                  "integrity_problems": [] if check else None})
         return
     # the integrity check runs first: a lost database or a damaged file would stop the listing below
-    problems = store.check() if check else []
+    # ingests of stores older than version 6 did not record whether their rows are traced
+    problems = store.check(legacy_row_traced_kinds=kinds(row_traced=True)) if check else []
     for p in problems:
         console.print(f"integrity problem: {one_line(p)}", markup=False)
     if problems:

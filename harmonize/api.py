@@ -20,6 +20,7 @@ from typing import Any
 
 import pandas as pd
 
+from harmonize.adapters.registry import kinds as adapter_kinds
 from harmonize.disclosure import Disclosure, public_quarantine_rows
 from harmonize.errors import HarmonizeError
 from harmonize.export.grid import read_grid
@@ -111,7 +112,8 @@ class StudyHandle:
     def status(self, check: bool = False, include_superseded: bool = False) -> StoreStatus:
         """Ingests and rows by kind, season year, season and layer (``harmonize status``)."""
         return StoreStatus(self.store.ingests(include_superseded=include_superseded), self.store.summary(),
-                           self.store.check() if check else [], self.store.events_without_values())
+                           self.store.check(legacy_row_traced_kinds=adapter_kinds(row_traced=True)) if check else [],
+                           self.store.events_without_values())
 
     def quarantine(self, reason: str | None = None, ingest_id: str | None = None, source_id: str | None = None,
                    limit: int | None = None, precise: bool = False) -> pd.DataFrame:

@@ -19,7 +19,7 @@ import pyarrow as pa
 from harmonize import parts, twin_windows, twins
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
 from harmonize.adapters.common import codes_in, distinct_present, is_in, swapped_position_notes
-from harmonize.adapters.registry import get_adapter, list_adapters
+from harmonize.adapters.registry import adapter_class, get_adapter, list_adapters
 from harmonize.clock import utc_naive
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns, validate_observations
 from harmonize.engines import engine_scope
@@ -260,6 +260,7 @@ def store_output(
         hook_data={twin_windows.HOOK_NAME: twin_windows.twin_settings(profile.section("duplicates"), profile.path)}
         if _finds_twins(kind) else {},
         file_path=main_path,
+        row_traced=adapter_class(kind).row_traced,
     )
     staged = store.staging_dir(ingest_id)
     try:

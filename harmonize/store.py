@@ -79,7 +79,10 @@ LOCK_SUFFIX = ".lock"
 #: 5: every part file carries ``harmonize`` key-value metadata (harmonize.store_layout; files of
 #: older versions have none and are kept as they are), ``ingests.rebuilt_at`` (set on ingests
 #: whose manifest rows were rebuilt from their part files by ``harmonize repair --rebuild-manifest``).
-STORE_VERSION = 5
+#: 6: ``ingests.row_traced`` (whether every data row of the ingest's files is traced one by one
+#: to the observations or the quarantine; recorded at commit from what the pipeline says of the
+#: ingest, so the store's check needs no knowledge of source kinds; NULL on older ingests).
+STORE_VERSION = 6
 _LOCK_RE = re.compile(r"\(PID (\d+)\)")
 logger = logging.getLogger(__name__)
 
@@ -115,7 +118,8 @@ CREATE TABLE IF NOT EXISTS ingests (
     profile_file VARCHAR,
     damage_reason VARCHAR,
     file_path VARCHAR,
-    rebuilt_at TIMESTAMP
+    rebuilt_at TIMESTAMP,
+    row_traced BOOLEAN
 );
 CREATE TABLE IF NOT EXISTS ingest_files (
     ingest_id VARCHAR NOT NULL,
@@ -187,6 +191,7 @@ ALTER TABLE observation_files ADD COLUMN IF NOT EXISTS size_bytes BIGINT;
 ALTER TABLE ingests ADD COLUMN IF NOT EXISTS damage_reason VARCHAR;
 ALTER TABLE ingests ADD COLUMN IF NOT EXISTS file_path VARCHAR;
 ALTER TABLE ingests ADD COLUMN IF NOT EXISTS rebuilt_at TIMESTAMP;
+ALTER TABLE ingests ADD COLUMN IF NOT EXISTS row_traced BOOLEAN;
 """
 
 
@@ -254,6 +259,9 @@ class IngestRecord:
     hook_data: dict[str, Any] = field(default_factory=dict)
     #: the main input's path relative to the study folder (as given when outside it)
     file_path: str | None = None
+    #: whether every data row of the input files is accepted or quarantined one by one (checked by
+    #: :meth:`Store.check`); false for inputs counted in bulk (grid values, pings)
+    row_traced: bool = True
 
 
 @dataclass(frozen=True)
@@ -684,14 +692,14 @@ class Store:
                 """INSERT INTO ingests (ingest_id, source_id, source_kind, provider_type, file_name,
                    file_sha256, inputs_sha256, config_sha256, started_at, finished_at, status,
                    rows_read, rows_accepted, rows_quarantined, records_written,
-                   records_zero_filled, superseded_by, tool_version, profile_file, file_path)
-                   VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULL, ?, ?, ?)""",
+                   records_zero_filled, superseded_by, tool_version, profile_file, file_path, row_traced)
+                   VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULL, ?, ?, ?, ?)""",
                 [record.ingest_id, record.source_id, record.source_kind, record.provider_type,
                  record.file_name, record.file_sha256, record.inputs_sha256, record.config_sha256,
                  record.started_at, record.finished_at, record.status, record.rows_read,
                  record.rows_accepted, record.rows_quarantined, record.records_written,
                  record.records_zero_filled, __version__, record.profile_file,
-                 record.file_path or record.file_name],
+                 record.file_path or record.file_name, bool(record.row_traced)],
             )
             for f in files:
                 con.execute(
@@ -1038,7 +1046,7 @@ class Store:
                 found.append(Damage(ingest_id, rel, problem))
         return found
 
-    def check(self, deep: bool = True, row_traced_kinds: Sequence[str] | None = None) -> list[str]:
+    def check(self, deep: bool = True, legacy_row_traced_kinds: Sequence[str] = ()) -> list[str]:
         """Integrity problems (empty list = the store is sound).
 
         Checks that the database is there when parquet files are (a lost database is a
@@ -1046,10 +1054,13 @@ class Store:
         and sha256 recorded when it was committed, is readable to the last page (``deep``)
         and holds the rows the manifest says; that every complete ingest satisfies
         rows_read = rows_accepted + rows_quarantined and records_written = rows in its files;
-        and that every data row of every input file of the ``row_traced_kinds`` (default: the
-        registered kinds whose ``Adapter.row_traced`` is true) is found among the accepted rows
-        or in the quarantine. A store of an older version is brought up to date first (which
-        records the checksums of its files) when the store can be written.
+        and that every data row of every input file of the ingests recorded as row-traced
+        (``ingests.row_traced``, written at commit) is found among the accepted rows or in the
+        quarantine. Ingests committed before store version 6 did not record it: theirs are traced
+        when their source kind is among ``legacy_row_traced_kinds`` (the caller, which knows the
+        adapters, passes the row-traced kinds; the store knows no source kind). A store of an older
+        version is brought up to date first (which records the checksums of its files) when the
+        store can be written.
         """
         lost = self.lost()
         if lost:
@@ -1057,10 +1068,6 @@ class Store:
         if not self.exists():
             return []
         self.upgrade()
-        if row_traced_kinds is None:
-            from harmonize.adapters.registry import kinds
-
-            row_traced_kinds = kinds(row_traced=True)
         with self.connect(view=False) as con:
             gone = self._parts_gone(con)
             if gone:
@@ -1102,7 +1109,7 @@ class Store:
                 ).fetchall()
                 problems += [f"ingest {i}: event {e} is among the events without values but has observation rows"
                              for i, e in both]
-            problems += self._row_accounting(con, row_traced_kinds)
+            problems += self._row_accounting(con, legacy_row_traced_kinds)
         return problems
 
     def _renew_index(self, stale: str) -> list[str]:
@@ -1136,15 +1143,14 @@ class Store:
                 "their files again with --replace to restore them)")
 
     @staticmethod
-    def _row_accounting(con: duckdb.DuckDBPyConnection, kinds: Sequence[str]) -> list[str]:
+    def _row_accounting(con: duckdb.DuckDBPyConnection, legacy_kinds: Sequence[str]) -> list[str]:
         """Every data row 1..rows_read of each row-traced input file is accepted or quarantined.
 
         Accepted rows are found in the observations (events row, records rows) and, for
         accepted events that yield no observation row, in ``events_without_values``.
         """
-        if not kinds:
-            return []
-        traced = ", ".join("'" + k.replace("'", "''") + "'" for k in kinds)
+        # the kinds are bound as a parameter (the only one of the query)
+        traced = "i.row_traced OR (i.row_traced IS NULL AND i.source_kind = ANY(?::VARCHAR[]))"
         no_values = ("UNION SELECT ingest_id, source_file, source_row FROM events_without_values "
                      "WHERE source_row IS NOT NULL" if has_table(con, "events_without_values") else "")
         rows = con.execute(
@@ -1152,7 +1158,7 @@ class Store:
             WITH files AS (
                 SELECT f.ingest_id, f.role, f.file_name, f.rows_read
                 FROM ingest_files f JOIN ingests i USING (ingest_id)
-                WHERE i.status = 'complete' AND i.source_kind IN ({traced}) AND {_not_rebuilt(con, 'i')}
+                WHERE i.status = 'complete' AND ({traced}) AND {_not_rebuilt(con, 'i')}
             ),
             seen AS (
                 SELECT ingest_id, source_file AS file_name, source_row AS row FROM observations
@@ -1168,7 +1174,7 @@ class Store:
             FROM files f LEFT JOIN seen s ON s.ingest_id = f.ingest_id AND s.file_name = f.file_name
                  AND s.row BETWEEN 1 AND f.rows_read
             GROUP BY ALL HAVING count(DISTINCT s.row) <> f.rows_read
-            """
+            """, [list(legacy_kinds)]
         ).fetchall()
         return [f"ingest {i}: {name} has {n} data rows but only {k} are accepted or quarantined"
                 for i, name, n, k in rows]
@@ -1194,6 +1200,7 @@ def provenance(record: IngestRecord, files: Sequence[dict[str, object]]) -> dict
         "started_at": pd.Timestamp(record.started_at).isoformat(), "rows_read": int(record.rows_read),
         "rows_accepted": int(record.rows_accepted), "rows_quarantined": int(record.rows_quarantined),
         "profile_file": record.profile_file, "tool_version": __version__,
+        "row_traced": bool(record.row_traced),
     }
     hooks = {name: dataclasses.asdict(v) if dataclasses.is_dataclass(v) and not isinstance(v, type) else v
              for name, v in record.hook_data.items()}

@@ -1,8 +1,9 @@
 """Vessel ping tracks -> fishing hours per ping: the rules, once, as DuckDB SQL.
 
-One definition serves the ping adapter (a file's pings) and the store's view (the pings at
-the edges of the files of one source, joined across file boundaries; harmonize.parts). The
-Dask engine's numpy twin (``harmonize.engines.dask_engine.ping_track``) is tested equal.
+One definition serves the ping adapter (a file's pings), the store's view (the pings at
+the edges of the files of one source, joined across file boundaries; harmonize.parts) and
+the Dask engine, which runs this text in DuckDB on each bucket of whole vessels
+(``harmonize.engines.dask_engine.ping_track``).
 
 Per vessel, pings ordered by time:
 

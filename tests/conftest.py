@@ -15,7 +15,7 @@ FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 
 # "fast": make test-fast (the development lane); "ci": make test; "dev": thorough. Tests that
 # set their own max_examples scale it with tests/examples.py:scaled().
-settings.register_profile("fast", max_examples=10, deadline=None)
+settings.register_profile("fast", max_examples=5, deadline=None)
 settings.register_profile("ci", max_examples=40, deadline=None)
 settings.register_profile("dev", max_examples=400, deadline=None)
 settings.load_profile(os.environ.get("HYPOTHESIS_PROFILE", "ci"))

@@ -1,8 +1,10 @@
 """How many examples a hypothesis test runs, scaled by the hypothesis profile of the run.
 
 A test that needs more (or fewer) examples than the profile's default writes
-``@settings(max_examples=scaled(100))``: 100 under the "ci" profile (``make test``), a quarter
-under "fast" (``make test-fast``), ten times under "dev" (``HYPOTHESIS_PROFILE=dev``).
+``@settings(max_examples=scaled(100))``: 100 under the "ci" profile (``make test``), an eighth
+under "fast" (``make test-fast``), ten times under "dev" (``HYPOTHESIS_PROFILE=dev``). A test
+whose every example is a whole ingest (or several) may ask for ``at_least=1`` so that the fast
+lane runs one small example of it.
 """
 
 from __future__ import annotations

@@ -19,7 +19,10 @@ Study: the Keldmar fixture (EPSG:6933, 25 km cells, min_vessels = 3). Sources:
 
 from __future__ import annotations
 
+import atexit
+import copy
 import shutil
+import tempfile
 from dataclasses import dataclass
 from pathlib import Path
 
@@ -134,8 +137,22 @@ def build_export_store(study: Study) -> ExportStore:
     return ExportStore(ingests, {"E1": cells[0], "E2": cells[0], "E3": cells[1]})
 
 
+#: The store is built once per test process and copied for each caller (its files name
+#: nothing outside the study folder, so a copy is the same store): (template folder, facts).
+_BUILT: dict[str, tuple[Path, ExportStore]] = {}
+
+
 def export_study(folder: Path) -> tuple[Study, ExportStore]:
-    """A copy of the Keldmar fixture in ``folder`` with the export test store built in it."""
-    shutil.copytree(FIXTURE, folder)
-    study = load_study(folder)
-    return study, build_export_store(study)
+    """A copy of the Keldmar fixture in ``folder`` with the export test store built in it.
+
+    The store is built once per process (in a temporary folder removed at exit) and copied:
+    every caller gets its own study folder, which it may change.
+    """
+    if "template" not in _BUILT:
+        template = Path(tempfile.mkdtemp(prefix="export-store-")) / "study"
+        atexit.register(shutil.rmtree, template.parent, True)
+        shutil.copytree(FIXTURE, template)
+        _BUILT["template"] = (template, build_export_store(load_study(template)))
+    template, facts = _BUILT["template"]
+    shutil.copytree(template, folder)
+    return load_study(folder), copy.deepcopy(facts)

@@ -8,6 +8,8 @@ from __future__ import annotations
 
 import ast
 import csv
+import functools
+import re
 from collections.abc import Iterator
 from pathlib import Path
 
@@ -28,9 +30,15 @@ def _modules() -> dict[str, Path]:
 MODULES = _modules()
 
 
+@functools.cache
+def _tree(path: Path) -> ast.Module:
+    """The parsed source of a file (parsed once per test process; the tests only read it)."""
+    return ast.parse(path.read_text(encoding="utf-8"))
+
+
 def _imports(path: Path) -> Iterator[tuple[str, str | None, int]]:
     """(module imported, name imported from it or None, line) for every import in a file."""
-    for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+    for node in ast.walk(_tree(path)):
         if isinstance(node, ast.Import):
             for alias in node.names:
                 yield alias.name, None, node.lineno
@@ -52,11 +60,15 @@ def _under(module: str, prefix: str) -> bool:
     return module == prefix or module.startswith(prefix + ".")
 
 
-def test_the_graph_reader_sees_lazy_imports() -> None:
-    # the reader must see an import inside a function (the kind a leak hides in): Store.check
-    # imports the adapter registry for its default (the kinds whose rows are traced)
-    lazy = [e for e in _edges("harmonize.store") if e[1] == "harmonize.adapters.registry"]
-    assert lazy, "the import inside Store.check was not seen"
+def test_the_graph_reader_sees_lazy_imports(tmp_path: Path) -> None:
+    # the reader must see an import inside a function (the kind a leak hides in)
+    path = tmp_path / "lazy.py"
+    path.write_text("def f():\n    if True:\n        from harmonize.adapters import registry\n"
+                    "        import harmonize.twins\n", encoding="utf-8")
+    assert sorted(_imports(path)) == [("harmonize.adapters.registry", None, 3), ("harmonize.twins", None, 4)]
+    # ... as in the library: the audit imports its Dask implementation only when it is chosen
+    lazy = [e for e in _edges("harmonize.audit") if e[1] == "harmonize.engines.dask_engine"]
+    assert lazy, "the import inside the audit's Dask engine lookup was not seen"
 
 
 @pytest.mark.parametrize(("importer", "forbidden"), [
@@ -68,6 +80,8 @@ def test_the_graph_reader_sees_lazy_imports() -> None:
     ("harmonize.store", "harmonize.audit"),
     ("harmonize.store", "harmonize.export"),
     ("harmonize.store", "harmonize.api"),
+    # ... nor of adapters: what it checks per ingest (row tracing) is recorded at commit
+    ("harmonize.store", "harmonize.adapters"),
     # engines implement steps; the audit chooses them by name, never the other way
     ("harmonize.engines", "harmonize.audit"),
     # adapters read files: they know no store, no twins, no audit or export
@@ -104,7 +118,7 @@ def test_exports_use_only_the_public_api_of_the_store() -> None:
 def _attribute_uses(attr_of: str, attr: str) -> list[str]:
     found = []
     for mod, path in sorted(MODULES.items()):
-        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+        for node in ast.walk(_tree(path)):
             if (isinstance(node, ast.Attribute) and node.attr == attr and isinstance(node.value, ast.Name)
                     and node.value.id == attr_of):
                 found.append(f"{mod} line {node.lineno}")
@@ -228,7 +242,7 @@ def test_no_list_of_kind_names_outside_the_adapters() -> None:
     for mod, path in sorted(MODULES.items()):
         if _under(mod, "harmonize.adapters") or _under(mod, "harmonize.demo"):
             continue
-        for node in ast.walk(ast.parse(path.read_text(encoding="utf-8"))):
+        for node in ast.walk(_tree(path)):
             if isinstance(node, ast.Tuple | ast.List | ast.Set):
                 named = [e.value for e in node.elts if isinstance(e, ast.Constant) and e.value in names]
                 if len(named) >= 2:
@@ -242,3 +256,37 @@ def test_merged_kinds_come_from_the_adapter_classes() -> None:
 
     by_attribute = {kind for kind, cls in list_adapters().items() if cls.merges_parts}
     assert set(parts.merged_kinds()) == by_attribute == {"gridded", "effort"}   # docs/store.md: values that span files
+
+
+
+def _kind_texts(tree: ast.Module, names: tuple[str, ...]) -> list[tuple[int, list[str]]]:
+    """String constants (an f-string's literal parts included) quoting two or more kind names."""
+    quoted = re.compile("['\"]({})['\"]".format("|".join(re.escape(k) for k in names)))
+    found = []
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Constant) and isinstance(node.value, str):
+            named = sorted(set(quoted.findall(node.value)))
+            if len(named) >= 2:
+                found.append((node.lineno, named))
+    return found
+
+
+def test_no_list_of_kind_names_in_sql_text_outside_the_adapters() -> None:
+    # the same for lists written inside SQL or other text, e.g. "source_kind IN ('trawl',
+    # 'plankton')": a second copy of a list the adapters' attributes define
+    from harmonize.adapters.registry import kinds
+
+    found = [f"{mod} line {line}: {named}" for mod, path in sorted(MODULES.items())
+             if not (_under(mod, "harmonize.adapters") or _under(mod, "harmonize.demo"))
+             for line, named in _kind_texts(_tree(path), kinds())]
+    assert found == []
+
+
+def test_the_kind_text_check_can_fail(tmp_path: Path) -> None:
+    from harmonize.adapters.registry import kinds
+
+    a, b = kinds()[:2]
+    path = tmp_path / "leak.py"
+    path.write_text(f"SQL = f\"WHERE source_kind IN ('{a}', '{b}') AND x = {{1}}\"\nONE = \"kind = '{a}'\"\n",
+                    encoding="utf-8")
+    assert _kind_texts(_tree(path), kinds()) == [(1, sorted([a, b]))]

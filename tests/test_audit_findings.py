@@ -18,7 +18,7 @@ from audit_stores import (
 )
 from factories import store_frames
 
-from harmonize.audit.run import audit
+from harmonize.audit.run import AuditResult, audit
 from harmonize.errors import ConfigError, HarmonizeError
 from harmonize.study import Study, load_study
 
@@ -29,13 +29,19 @@ def known(tmp_path_factory: pytest.TempPathFactory) -> tuple[Study, KnownGaps]:
     return study, build_known_gaps(study)
 
 
+@pytest.fixture(scope="module")
+def known_audit(known: tuple[Study, KnownGaps]) -> AuditResult:
+    """The audit of the known store, run once for the tests that only read it."""
+    return audit(known[0])
+
+
 def _place(f) -> tuple:  # type: ignore[no-untyped-def]
     return (f.code, f.severity, f.source_kind, f.season_year, f.season, f.depth_layer, f.stratum, f.variable)
 
 
-def test_every_known_gap_is_found_and_nothing_else(known: tuple[Study, KnownGaps]) -> None:
+def test_every_known_gap_is_found_and_nothing_else(known: tuple[Study, KnownGaps], known_audit: AuditResult) -> None:
     study, _ = known
-    found = [_place(f) for f in audit(study).findings]
+    found = [_place(f) for f in known_audit.findings]
     assert found == [
         # errors first
         ("no_samples", "error", "trawl", 2021, "winter", None, None, None),
@@ -57,9 +63,9 @@ def test_every_known_gap_is_found_and_nothing_else(known: tuple[Study, KnownGaps
     ]
 
 
-def test_no_samples_counts_the_earlier_years(known: tuple[Study, KnownGaps]) -> None:
+def test_no_samples_counts_the_earlier_years(known: tuple[Study, KnownGaps], known_audit: AuditResult) -> None:
     study, _ = known
-    f = next(f for f in audit(study).findings if f.code == "no_samples" and f.severity == "error")
+    f = next(f for f in known_audit.findings if f.code == "no_samples" and f.severity == "error")
     # trawl had data in 2018-2020 before 2021, winter sampled in all three
     # 20 winter hauls in each earlier year: none by chance has probability exp(-20) (Poisson)
     assert dict(f.details) == {"level": "season", "earlier_years": 3, "earlier_years_sampled": 3,
@@ -67,9 +73,9 @@ def test_no_samples_counts_the_earlier_years(known: tuple[Study, KnownGaps]) -> 
     assert "winter 2021" in f.message and "ingest" in f.message
 
 
-def test_coverage_drop_against_the_median_of_earlier_years(known: tuple[Study, KnownGaps]) -> None:
+def test_coverage_drop_against_the_median_of_earlier_years(known: tuple[Study, KnownGaps], known_audit: AuditResult) -> None:
     study, gaps = known
-    f = next(f for f in audit(study).findings if f.code == "coverage_drop")
+    f = next(f for f in known_audit.findings if f.code == "coverage_drop")
     n = gaps.n_domain_cells
     earlier = [len(set(gaps.trawl_cells[(y, "summer")])) / n for y in range(2018, 2022)]
     # median of the earlier shares with the standard library (statistics.median)
@@ -79,9 +85,9 @@ def test_coverage_drop_against_the_median_of_earlier_years(known: tuple[Study, K
     assert f.details["coverage_fraction"] < study.audit.coverage_drop * f.details["earlier_median"]
 
 
-def test_few_encounters_counts_non_zero_records(known: tuple[Study, KnownGaps]) -> None:
+def test_few_encounters_counts_non_zero_records(known: tuple[Study, KnownGaps], known_audit: AuditResult) -> None:
     study, _ = known
-    result = audit(study)
+    result = known_audit
     f = next(f for f in result.findings if f.code == "few_encounters")
     # three hauls caught it, out of 4 x 20 + 8 summer hauls (samples)
     assert f.details["encounters"] == 3 and f.details["samples"] == 4 * 20 + 8
@@ -95,9 +101,9 @@ def test_few_encounters_counts_non_zero_records(known: tuple[Study, KnownGaps]) 
     assert row["share_zeros"] == pytest.approx(1 - 3 / 88)
 
 
-def test_probable_duplicates_are_not_counted(known: tuple[Study, KnownGaps]) -> None:
+def test_probable_duplicates_are_not_counted(known: tuple[Study, KnownGaps], known_audit: AuditResult) -> None:
     study, _ = known
-    result = audit(study)
+    result = known_audit
     # The only Larivox pallens record is a flagged volunteer twin: no finding, no extent, no event.
     assert not any(f.variable == "Larivox pallens" for f in result.findings)
     opp = result.extent[result.extent["source_kind"] == "opportunistic"]
@@ -105,15 +111,15 @@ def test_probable_duplicates_are_not_counted(known: tuple[Study, KnownGaps]) -> 
     assert int(opp["presence_only_events"].sum()) == 12 and int(opp["events"].sum()) == 0
 
 
-def test_volunteer_only_names_the_season_and_layer(known: tuple[Study, KnownGaps]) -> None:
+def test_volunteer_only_names_the_season_and_layer(known: tuple[Study, KnownGaps], known_audit: AuditResult) -> None:
     study, _ = known
-    f = next(f for f in audit(study).findings if f.code == "volunteer_only")
+    f = next(f for f in known_audit.findings if f.code == "volunteer_only")
     assert f.details["events"] == 12 and f.details["source_kinds"] == ["opportunistic"]
 
 
-def test_source_disagreement_reports_the_offset_and_spread(known: tuple[Study, KnownGaps]) -> None:
+def test_source_disagreement_reports_the_offset_and_spread(known: tuple[Study, KnownGaps], known_audit: AuditResult) -> None:
     study, gaps = known
-    f = next(f for f in audit(study).findings if f.code == "source_disagreement")
+    f = next(f for f in known_audit.findings if f.code == "source_disagreement")
     diffs = np.asarray(gaps.paired_differences)
     # mean and sample standard deviation (ddof=1) of the paired differences, by numpy
     assert f.details["mean_difference"] == pytest.approx(np.mean(diffs), abs=1e-9)
@@ -191,9 +197,9 @@ def test_a_protocol_keeps_its_series_across_sources(study) -> None:  # type: ign
                                "years_with_records": [2018, 2020]})]
 
 
-def test_volunteer_only_counts_samples_and_presence_only_apart(known: tuple[Study, KnownGaps]) -> None:
+def test_volunteer_only_counts_samples_and_presence_only_apart(known: tuple[Study, KnownGaps], known_audit: AuditResult) -> None:
     study, _ = known
-    f = next(f for f in audit(study).findings if f.code == "volunteer_only")
+    f = next(f for f in known_audit.findings if f.code == "volunteer_only")
     # 3 presence-only sightings a winter, 2019-2022; the extent matrix shows them as presence-only, not samples
     assert (f.details["samples"], f.details["presence_only_events"]) == (0, 12)
     assert "(0 samples and 12 presence-only events)" in f.message

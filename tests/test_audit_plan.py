@@ -4,6 +4,7 @@ from __future__ import annotations
 
 import json
 import os
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -48,6 +49,19 @@ def aligned_study(study_dir: Path) -> Path:
     lon/lat rectangles are exactly unions of grid cells: each stratum's area share is then
     its polygon area share, computed below without the code under test.
     """
+    return _align(study_dir)
+
+
+@pytest.fixture(scope="module")
+def one_haul_study(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The aligned study with one haul, built once for the tests that only read it."""
+    folder = tmp_path_factory.mktemp("plan") / "study"
+    shutil.copytree(Path(__file__).resolve().parent.parent / "fixtures" / "keldmar", folder)
+    _hauls(_align(folder), [(IX0, IY0)])
+    return folder
+
+
+def _align(study_dir: Path) -> Path:
     total = sum(COLUMNS.values())
     (study_dir / "domain.geojson").write_text(json.dumps({"type": "FeatureCollection", "features": [
         {"type": "Feature", "properties": {"name": "test"}, "geometry": _rect(IX0, IX0 + total)}]}))
@@ -193,10 +207,9 @@ def test_shortfall_is_a_note_not_an_error(aligned_study: Path) -> None:
     ({"source_kind": "trawl", "n_samples": 1, "keep": [f"x{IX0}_y{IY0}", f"x{IX0 + 1}_y{IY0}"]}, "2 cells to keep but only 1 samples to add"),
     ({"source_kind": "trawl", "n_samples": 3, "seasons": ["winter"]}, "the store holds no trawl samples in winter"),
 ])
-def test_bad_arguments_are_named(aligned_study: Path, kwargs: dict, message: str) -> None:
-    _hauls(aligned_study, [(IX0, IY0)])
+def test_bad_arguments_are_named(one_haul_study: Path, kwargs: dict, message: str) -> None:
     with pytest.raises(HarmonizeError) as err:
-        plan_samples(load_study(aligned_study), **kwargs)
+        plan_samples(load_study(one_haul_study), **kwargs)
     assert message in str(err.value)
     assert "\n" not in str(err.value)
 

@@ -6,6 +6,7 @@ import hashlib
 import json
 import os
 import random
+import shutil
 import subprocess
 import sys
 from pathlib import Path
@@ -19,9 +20,10 @@ from harmonize.audit.report import render_html
 from harmonize.audit.run import audit, domain_cells
 from harmonize.audit.since import AUDIT_SCHEMA_VERSION, finding_key
 from harmonize.errors import HarmonizeError
-from harmonize.study import Study
+from harmonize.study import Study, load_study
 
 BIN = Path(sys.executable).parent / "harmonize"
+FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 
 
 def _survey(study: Study, year: int, cells: pd.DataFrame, values: list[float], *, replace: bool = False) -> None:
@@ -34,23 +36,39 @@ def _survey(study: Study, year: int, cells: pd.DataFrame, values: list[float], *
                  file_name=f"hauls_{year}.csv", replace=replace)
 
 
-@pytest.fixture
-def two_audits(study: Study, tmp_path: Path) -> dict:
+@pytest.fixture(scope="module")
+def built(tmp_path_factory: pytest.TempPathFactory) -> tuple[Path, pd.DataFrame]:
     """A first audit of 2018, 2019 and 2021 (2020 missing); then 2020 and a reduced 2022 arrive,
-    and a corrected 2021 file changes three values and adds one haul."""
+    and a corrected 2021 file changes three values and adds one haul. Built once; each test
+    works on a copy (:func:`two_audits`)."""
+    folder = tmp_path_factory.mktemp("since") / "study"
+    shutil.copytree(FIXTURES / "keldmar", folder)
+    study = load_study(folder)
     cells = domain_cells(study).sort_values("cell_id").reset_index(drop=True)
     full = cells.iloc[:30]
     for year in (2018, 2019, 2021):
         _survey(study, year, full, [float(k + 1) for k in range(30)])
-    first = audit(study)
-    first_path = first.write_json(tmp_path / "audit_first.json")
+    audit(study).write_json(folder / "audit_first.json")
     _survey(study, 2020, full, [float(k + 1) for k in range(30)])
     _survey(study, 2022, cells.iloc[31:37], [1.0] * 6)  # 6 hauls, in 6 cells sampled by no other file
     corrected = [float(k + 1) for k in range(31)]
     for k in (0, 5, 9):
         corrected[k] += 0.5
     _survey(study, 2021, cells.iloc[:31], corrected, replace=True)
-    return {"first": first, "first_path": first_path, "cells": cells, "store_dir": study.store_dir}
+    return folder, cells
+
+
+@pytest.fixture
+def study(built: tuple[Path, pd.DataFrame], tmp_path: Path) -> Study:
+    """A copy of the built study for one test (tests may change it)."""
+    folder = tmp_path / "study"
+    shutil.copytree(built[0], folder)
+    return load_study(folder)
+
+
+@pytest.fixture
+def two_audits(built: tuple[Path, pd.DataFrame], study: Study) -> dict:
+    return {"first_path": study.root / "audit_first.json", "cells": built[1], "store_dir": study.store_dir}
 
 
 def test_the_json_carries_what_the_comparison_needs(two_audits: dict) -> None:

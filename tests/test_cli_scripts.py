@@ -6,6 +6,7 @@ import io
 import json
 import logging
 import os
+import shutil
 import subprocess
 import sys
 import time
@@ -20,15 +21,29 @@ from harmonize.cli.console import JSON_FORMAT_VERSION
 #: outside its protocol's 2015-2019 target window, so it gets no inferred zeros (targets.csv).
 MESSY_TRAWL_ROWS = 29
 
+FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 VERBS = ("init", "check", "ingest", "status", "quarantine", "audit", "export", "demo", "colocate", "twins")
 
 
-@pytest.fixture
-def ingested(study_dir: Path) -> Path:
+@pytest.fixture(scope="module")
+def ingested_once(tmp_path_factory: pytest.TempPathFactory) -> Path:
+    """The messy trawl fixture ingested through the command line, once per module."""
+    study_dir = tmp_path_factory.mktemp("cli_scripts") / "study"
+    shutil.copytree(FIXTURES / "keldmar", study_dir)
+    for f in (FIXTURES / "trawl").glob("*.csv"):
+        shutil.copy(f, study_dir / f.name)
     files = ["--events", str(study_dir / "hauls_messy.csv"), "--records", str(study_dir / "catch_messy.csv")]
     result = run_cli("--study", str(study_dir), "ingest", "trawl_agency", *files)
     assert result.exit_code == 0, result.stderr
     return study_dir
+
+
+@pytest.fixture
+def ingested(ingested_once: Path, tmp_path: Path) -> Path:
+    """A copy of the ingested study for one test (tests may write into it)."""
+    target = tmp_path / "study"
+    shutil.copytree(ingested_once, target)
+    return target
 
 
 def _one_document(stdout: str, command: str) -> dict:

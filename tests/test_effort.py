@@ -311,6 +311,7 @@ def test_profile_mistakes_name_the_key(study_dir: Path) -> None:
         run(load_study(study_dir), "effort_pings", {"rows": FIXTURES / "effort" / "pings_hand.csv"}, write=False)
 
 
+@pytest.mark.slow   # the demo's whole fleet: its ping and logbook files at demo size
 def test_demo_fleet(tmp_path: Path) -> None:
     """The demo's invented fleet: junk pings quarantined, cells with fewer than 3 vessels exist."""
     from harmonize.demo.sea import write_study

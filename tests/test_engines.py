@@ -24,8 +24,8 @@ from harmonize import Store, load_study, run
 from harmonize.audit.run import audit
 from harmonize.demo.sources.effort import simulate_pings
 from harmonize.engines import EngineChoice, check_engine, current_engine, engine_scope
-from harmonize.engines.dask_engine import distance_m
 from harmonize.errors import HarmonizeError
+from harmonize.geodesy import distance_m
 from harmonize.privacy import study_salt
 
 pytestmark = pytest.mark.dask

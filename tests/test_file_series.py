@@ -123,7 +123,7 @@ def test_replace_and_superseding_work_per_file(study_dir: Path) -> None:
 MONTHS = pd.date_range("2019-10-01", "2020-09-01", freq="MS")
 
 
-@settings(max_examples=scaled(6), deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture],
+@settings(max_examples=scaled(6, at_least=1), deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture],
           phases=[Phase.explicit, Phase.reuse, Phase.generate])
 @given(
     values=st.lists(st.floats(-1.5, 29.0, allow_nan=False, width=32), min_size=6, max_size=12),
@@ -196,7 +196,7 @@ def _effort_view(study: Study) -> pd.DataFrame:
                               WHERE source_kind = 'effort' ORDER BY event_id""").df().set_index("event_id")
 
 
-@settings(max_examples=scaled(5), deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture],
+@settings(max_examples=scaled(5, at_least=1), deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture],
           phases=[Phase.explicit, Phase.reuse, Phase.generate])
 @given(seed=st.integers(0, 10_000), n_vessels=st.integers(3, 7), n_files=st.integers(2, 4))
 def test_pings_in_one_file_in_vessel_files_or_shuffled_give_the_same_cells(study_dir: Path, seed: int, n_vessels: int,

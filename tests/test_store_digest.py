@@ -403,6 +403,7 @@ def bench_inputs(tmp_path_factory: pytest.TempPathFactory) -> dict[str, tuple[Pa
             "gridded": (grid_dir, {"rows": nc}, "bench_sst")}
 
 
+@pytest.mark.slow   # the benchmark inputs at 20,000 rows each: run by make test, or name the file
 def test_benchmark_generators_make_the_same_files(bench_inputs) -> None:  # type: ignore[no-untyped-def]
     found = {}
     for what, (_, inputs, _) in bench_inputs.items():
@@ -413,6 +414,7 @@ def test_benchmark_generators_make_the_same_files(bench_inputs) -> None:  # type
     assert found == RECORDED_INPUTS
 
 
+@pytest.mark.slow   # stores of the 20,000-row benchmark inputs
 @pytest.mark.parametrize("what", ["pings", "trawl", "gridded"])
 def test_benchmark_input_store_content(bench_inputs, what: str) -> None:  # type: ignore[no-untyped-def]
     folder, inputs, profile = bench_inputs[what]

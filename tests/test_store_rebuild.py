@@ -23,6 +23,7 @@ from cli_runner import cli
 from harmonize import Store, load_study
 from harmonize.ingest import run
 from harmonize.repair import REFUSED_DIR, repair
+from harmonize.store import STORE_VERSION
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 
@@ -97,7 +98,7 @@ def test_a_part_file_read_alone_says_where_it_came_from(study_copy: tuple[Path, 
         assert (doc["ingest_id"], doc["rows"]) == (ingest_id, n_rows) == (ingest_id, meta.num_rows)
         assert doc["source_id"] == source_of[ingest_id]
         assert doc["source_kind"] == profile["source"]["kind"] == path.parent.parent.name.split("=")[1]
-        assert doc["contract_version"] and doc["store_version"] == 5
+        assert doc["contract_version"] and doc["store_version"] == STORE_VERSION == 6
         sha = {f["role"]: f["file_sha256"] for f in doc["inputs"]}
         if ingest_id != third:  # the replacing ingest read the re-delivered catch file
             assert sha["records"] == hashlib.sha256(
@@ -403,7 +404,7 @@ def test_an_older_store_gets_its_marker_when_opened(study_copy: tuple[Path, list
     con.close()
     store.ingests()  # any command that reads the store
     assert json.loads(store.marker.read_text())["last_ingest"] == max(ids)
-    assert store.upgrade() and store.store_version() == 5
+    assert store.upgrade() and store.store_version() == STORE_VERSION
 
 
 @pytest.mark.parametrize(("change", "expected"), [

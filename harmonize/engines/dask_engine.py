@@ -4,8 +4,9 @@
    DuckDB, the accepted pings are written as parquet in buckets of whole vessels
    (``vid % n_buckets``). Each bucket is one Dask task: it sorts its vessels' pings by
    time, finds the neighbours, position jumps, derived speeds, fishing class and attributed
-   hours exactly as :class:`harmonize.adapters.pings.PingReader` does in SQL, and reduces
-   them to partial cell sums. As every vessel lies in one bucket, the distinct vessels of a
+   hours by running the one SQL definition of the track rules (:func:`harmonize.tracks.track_sql`,
+   which the DuckDB engine runs on the whole file) in an in-memory DuckDB on the bucket, and
+   reduces them to partial cell sums. As every vessel lies in one bucket, the distinct vessels of a
    cell are the sum of the buckets' distinct vessels, so the final reduction is a plain sum
    over small partial tables.
 2. **The audit's aggregations.** The per-event table (one row per event and its tags),
@@ -40,11 +41,8 @@ from harmonize import settings
 from harmonize.engines.audit_rules import DUPLICATE_FLAG, EVENT_KEYS, EVENT_MEASURES, INPUT_COLUMNS
 from harmonize.engines.audit_rules import EVENT_TAGS as _EVENT_TAGS
 from harmonize.engines.audit_rules import RECORD_KEYS as _RECORD_KEYS
-from harmonize.geodesy import M_PER_NMI, distance_m
 from harmonize.tagging.season import local_times
-from harmonize.tracks import EDGE, RADIUS
-
-_US_PER_H = 3.6e9
+from harmonize.tracks import track_sql
 
 #: Columns of the accepted-pings parquet the DuckDB stage writes for the Dask stage.
 PING_COLUMNS = ("row", "vid", "t", "lat", "lon", "sog", "gear", "layer", "smin", "smax", "code")
@@ -93,104 +91,36 @@ def dask_client(scheduler: str | None = None) -> Iterator[Any]:
 
 # ---------------------------------------------------------------------------- ping tracks
 
-def ping_track(pings: pd.DataFrame, max_speed_kn: float, max_gap_h: float) -> pd.DataFrame:
+def ping_track(pings: pa.Table | pd.DataFrame, max_speed_kn: float, max_gap_h: float) -> pd.DataFrame:
     """Neighbours, position jumps, speed, fishing class and attributed hours of each ping.
 
     ``pings`` holds whole vessels (columns :data:`PING_COLUMNS`; ``t`` a timestamp). The
-    rules are those of ``PingReader._track_sql``: a ping is a position jump (``spike``) when
-    reaching it and leaving it both take more than ``max_speed_kn`` (at a track's end: when
-    the one link is too fast and the next one is not); the neighbours of a jump are joined
-    directly; each ping gets half of each neighbouring interval, capped at ``max_gap_h``;
-    a missing speed is the mean of the speeds of the links within ``max_gap_h``.
+    rules are the one SQL definition of :func:`harmonize.tracks.track_sql`, run by an
+    in-memory DuckDB on this partition (the DuckDB engine runs the same text on the whole
+    file), so the two engines cannot apply different rules.
 
     Returns the pings sorted by vessel, time and row, with added columns spike, r_p1, r_n1,
     sp_in, sp_out, hours, speed, fishing, owned (within ``RADIUS`` pings of an end of the
-    vessel's pings) and edge (within ``EDGE``), as ``harmonize.tracks.track_sql``.
+    vessel's pings) and edge (within ``EDGE``).
     """
-    df = pings.sort_values(["vid", "t", "row"], kind="stable").reset_index(drop=True)
-    n = len(df)
-    vid = df["vid"].to_numpy()
-    idx = np.arange(n)
-    new = np.ones(n, dtype=bool)
-    new[1:] = vid[1:] != vid[:-1]
-    start = np.maximum.accumulate(np.where(new, idx, 0))
-    end = np.empty(n, dtype=np.int64)  # one past the last ping of the vessel
-    bounds = np.append(np.flatnonzero(new), n)
-    end[:] = np.repeat(bounds[1:], np.diff(bounds))
-    pos, left = idx - start, end - idx - 1
-
-    def has_prev(k: int) -> np.ndarray:
-        return pos >= k
-
-    def has_next(k: int) -> np.ndarray:
-        return left >= k
-
-    def shift(a: np.ndarray, k: int) -> np.ndarray:
-        """Value k pings earlier (k > 0) or later (k < 0) of the same vessel; NaN beyond."""
-        out = np.full(n, np.nan)
-        if k > 0:
-            out[k:] = a[:-k] if k < n else out[k:]
-            out[~has_prev(k)] = np.nan
-        else:
-            out[:k] = a[-k:] if -k < n else out[:k]
-            out[~has_next(-k)] = np.nan
-        return out
-
-    t = df["t"].to_numpy("datetime64[us]").astype(np.int64).astype(float)
-    lat, lon = df["lat"].to_numpy(float), df["lon"].to_numpy(float)
-    row = df["row"].to_numpy(np.int64).astype(float)
-
-    def speed(ta: np.ndarray, la: np.ndarray, oa: np.ndarray, tb: np.ndarray, lb: np.ndarray, ob: np.ndarray) -> np.ndarray:
-        hours = (tb - ta) / _US_PER_H
-        with np.errstate(divide="ignore", invalid="ignore"):
-            return np.where(hours == 0, np.nan, distance_m(la, oa, lb, ob) / M_PER_NMI / hours)
-
-    pt, pla, plo = shift(t, 1), shift(lat, 1), shift(lon, 1)
-    s_in = speed(pt, pla, plo, t, lat, lon)
-    with np.errstate(invalid="ignore"):
-        fast = {k: np.nan_to_num(shift(s_in, k) if k else s_in, nan=-np.inf) > max_speed_kn
-                for k in (2, 1, 0, -1, -2, -3)}
-    f = {"p2": fast[2], "p1": fast[1], "me": fast[0], "n1": fast[-1], "n2": fast[-2], "n3": fast[-3]}
-    link = {("p3", "p2"): "p2", ("p2", "p1"): "p1", ("p1", "me"): "me",
-            ("me", "n1"): "n1", ("n1", "n2"): "n2", ("n2", "n3"): "n3"}
-    h = {"me": np.ones(n, dtype=bool), **{f"p{k}": has_prev(k) for k in (1, 2, 3)},
-         **{f"n{k}": has_next(k) for k in (1, 2, 3)}}
-
-    def spike(p2: str, p1: str, me: str, n1: str, n2: str) -> np.ndarray:
-        both = h[p1] & h[n1]
-        out = np.where(both, f[link[(p1, me)]] & f[link[(me, n1)]], False)
-        only_next = ~both & h[n1]
-        out = np.where(only_next, f[link[(me, n1)]] & h[n2] & ~f[link[(n1, n2)]], out)
-        only_prev = ~both & ~h[n1] & h[p1]
-        return np.where(only_prev, f[link[(p1, me)]] & h[p2] & ~f[link[(p2, p1)]], out)
-
-    is_spike = spike("p2", "p1", "me", "n1", "n2")
-    spike_p1 = spike("p3", "p2", "p1", "me", "n1")
-    spike_n1 = spike("p1", "me", "n1", "n2", "n3")
-
-    t_pe = np.where(spike_p1, shift(t, 2), pt)
-    la_pe = np.where(spike_p1, shift(lat, 2), pla)
-    lo_pe = np.where(spike_p1, shift(lon, 2), plo)
-    t_ne = np.where(spike_n1, shift(t, -2), shift(t, -1))
-    la_ne = np.where(spike_n1, shift(lat, -2), shift(lat, -1))
-    lo_ne = np.where(spike_n1, shift(lon, -2), shift(lon, -1))
-    dt_prev, dt_next = (t - t_pe) / _US_PER_H, (t_ne - t) / _US_PER_H
-    gap = float(max_gap_h)
-    hours = (np.where(np.isnan(t_pe), 0.0, np.minimum(dt_prev, gap)) / 2
-             + np.where(np.isnan(t_ne), 0.0, np.minimum(dt_next, gap)) / 2)
-    s_out = shift(s_in, -1)
-    with np.errstate(invalid="ignore"):
-        sp_prev = np.where(dt_prev <= gap, np.where(spike_p1, speed(t_pe, la_pe, lo_pe, t, lat, lon), s_in), np.nan)
-        sp_next = np.where(dt_next <= gap, np.where(spike_n1, speed(t, lat, lon, t_ne, la_ne, lo_ne), s_out), np.nan)
-    derived = (np.where(np.isnan(sp_prev), sp_next, sp_prev) + np.where(np.isnan(sp_next), sp_prev, sp_next)) / 2
-    sog = df["sog"].to_numpy(float)
-    speed_kn = np.where(np.isnan(sog), derived, sog)
-    with np.errstate(invalid="ignore"):
-        fishing = (speed_kn >= df["smin"].to_numpy(float)) & (speed_kn <= df["smax"].to_numpy(float))
-    return df.assign(spike=is_spike, r_p1=pd.array(np.where(h["p1"], shift(row, 1), np.nan), dtype="Int64"),
-                     r_n1=pd.array(np.where(h["n1"], shift(row, -1), np.nan), dtype="Int64"),
-                     sp_in=s_in, sp_out=s_out, hours=hours, speed=speed_kn, fishing=fishing,
-                     owned=(pos < RADIUS) | (left < RADIUS), edge=(pos < EDGE) | (left < EDGE))
+    rules = track_sql("partition", "vid", "t, row", repr(float(max_speed_kn)), repr(float(max_gap_h)))
+    con = duckdb.connect()
+    try:
+        # one thread per task: the Dask workers already run one task per core; UTC so that a
+        # time zone-aware ``t`` comes back as it went in
+        con.execute("SET threads = 1; SET TimeZone = 'UTC'")
+        con.register("partition", pings)
+        table = con.sql(f"""
+            SELECT {", ".join(PING_COLUMNS)}, spike, r_p1, r_n1, s_in AS sp_in, s_out AS sp_out,
+                   hours, speed, fishing, owned, edge
+            FROM ({rules}) ORDER BY vid, t, row""").to_arrow_table()
+    finally:
+        con.close()
+    frame = table.drop_columns(["r_p1", "r_n1"]).to_pandas()
+    # the neighbours' rows (NULL at a track's end) stay integers: they name pings in messages
+    for name in ("r_p1", "r_n1"):
+        frame[name] = table[name].cast(pa.int64()).to_pandas(types_mapper={pa.int64(): pd.Int64Dtype()}.get)
+    return frame
 
 
 def _fishing_pings(track: pd.DataFrame, season_names: Sequence[str], season_offsets: Sequence[int],
@@ -251,7 +181,7 @@ class TrackResult:
 def _bucket(paths: Sequence[str], max_speed_kn: float, max_gap_h: float, season_names: Sequence[str],
             season_offsets: Sequence[int], timezone: str = "UTC"
             ) -> tuple[pd.DataFrame, pd.DataFrame, int, int, pd.DataFrame, pd.DataFrame]:
-    pings = pa.concat_tables([pq.read_table(p, columns=list(PING_COLUMNS)) for p in paths]).to_pandas()
+    pings = pa.concat_tables([pq.read_table(p, columns=list(PING_COLUMNS)) for p in paths])
     track = ping_track(pings, max_speed_kn, max_gap_h)
     kept = ~track["spike"].to_numpy()
     spikes = track.loc[~kept, ["row", "r_p1", "sp_in", "r_n1", "sp_out"]].reset_index(drop=True)

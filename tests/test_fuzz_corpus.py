@@ -31,15 +31,7 @@ def test_every_corpus_file_has_a_case() -> None:
     assert files == set(CASES)
 
 
-#: Cases that still fail, with the reason; strict: a fix makes the test fail until removed here.
-KNOWN_BUGS = {
-}
-
-
-@pytest.mark.parametrize("name", [
-    pytest.param(n, marks=pytest.mark.xfail(strict=True, reason=KNOWN_BUGS[n])) if n in KNOWN_BUGS else n
-    for n in sorted(CASES)
-])
+@pytest.mark.parametrize("name", sorted(CASES))
 def test_corpus_case(study: Study, tmp_path: Path, name: str) -> None:
     case = CASES[name]
     profile, originals = TARGETS[case["kind"]]

@@ -148,7 +148,7 @@ def test_long_csv_and_gpkg_write_iso_8601_utc(study_dir: Path, tmp_path: Path) -
     kind = con.execute("SELECT typeof(event_start) FROM read_csv(?) LIMIT 1", [str(tmp_path / "long.csv")]).fetchall()
     assert kind[0][0] == "TIMESTAMP WITH TIME ZONE"
     # GeoPackage: pyogrio's raw text of the samples layer ends in Z
-    pyogrio = pytest.importorskip("pyogrio")
+    import pyogrio
     export(study, "gpkg", tmp_path / "out.gpkg")
     layer = pyogrio.read_dataframe(tmp_path / "out.gpkg", layer="samples", datetime_as_string=True)
     assert layer["event_start"].str.match(ISO_UTC).all()
@@ -281,7 +281,7 @@ def _pint_text(udunits: str) -> str:
 
 
 def test_density_unit_is_the_unit_of_value_over_effort(study_dir: Path, tmp_path: Path) -> None:
-    pint = pytest.importorskip("pint")
+    import pint
     ureg = pint.UnitRegistry()
     study = _trawl(study_dir)
     export(study, "long", tmp_path / "long.parquet")

@@ -122,7 +122,7 @@ def test_the_library_reads_no_environment_variable(owner: str, attr: str) -> Non
 
 @pytest.mark.parametrize(("owner", "attr", "allowed"), [
     ("netCDF4", "set_chunk_cache", set()),
-    ("csv", "field_size_limit", {"harmonize.adapters.reading"}),   # csv_field_limit: set and put back
+    ("csv", "field_size_limit", {"harmonize.reading.text"}),   # csv_field_limit: raised while parsing, under a lock
     ("np", "seterr", set()),
     ("pd", "set_option", set()),
     ("warnings", "simplefilter", set()),
@@ -139,8 +139,8 @@ def test_no_process_wide_setting_changed_by_the_library(owner: str, attr: str, a
 
 
 def test_csv_field_limit_is_put_back_after_reading(tmp_path: Path) -> None:
-    from harmonize.adapters.reading import MAX_FIELD_CHARS, LineReader, csv_field_limit
     from harmonize.profile import Profile
+    from harmonize.reading.text import MAX_FIELD_CHARS, LineReader, csv_field_limit
 
     before = csv.field_size_limit()
     assert before != MAX_FIELD_CHARS

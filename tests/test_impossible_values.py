@@ -122,7 +122,7 @@ def test_a_date_alone_is_local_whatever_its_separators(text: str) -> None:
 
     import pandas as pd
 
-    from harmonize.adapters.reading import parse_times
+    from harmonize.clock import parse_times
 
     profile = types.SimpleNamespace(time_format=None, dayfirst=True, timezone="Pacific/Auckland", ambiguous_times=None)
     out, bad, *_ = parse_times(pd.Series([text, "2021-01-01T08:00:00+02:00"], dtype="string"), profile)

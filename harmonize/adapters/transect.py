@@ -21,41 +21,32 @@ pseudonym (harmonize.privacy) reaches the store, also in the raw rows kept in qu
 
 from __future__ import annotations
 
-from collections.abc import Mapping
 from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pyarrow as pa
 import pyproj
 
-from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
-from harmonize.adapters.common import (
+from harmonize.adapters.domain import reject_outside_domain
+from harmonize.adapters.event_record import EventRecordAdapter, Opening, RecordCheck, flag_tuples
+from harmonize.adapters.registry import register
+from harmonize.adapters.zero_filling import (
     STAGE_UNRESOLVED,
     catch_unknown,
-    reject_outside_domain,
-    reject_records_of_events,
-    resolve_taxa,
     stage_unresolved_events,
     target_years,
-    unattributed_note,
-    unattributed_records,
     zero_fill,
 )
-from harmonize.adapters.plankton import flag_tuples
-from harmonize.adapters.reading import (
-    RawTable,
-    Rejections,
-    resolve_columns,
-)
-from harmonize.adapters.registry import register
 from harmonize.clock import add_hours
 from harmonize.config_spec import Table, number, text
 from harmonize.contract import fields
 from harmonize.errors import ConfigError, ReasonCode
 from harmonize.privacy import pseudonymise, study_salt
 from harmonize.profile import Profile
+from harmonize.reading.fields import resolve_columns
+from harmonize.reading.quarantine import Rejections
+from harmonize.reading.text import RawTable
 from harmonize.study import Study
 from harmonize.tagging import normalise_lon, tag_season
 
@@ -106,7 +97,7 @@ class StripRules:
 
 
 @register
-class TransectAdapter(Adapter):
+class TransectAdapter(EventRecordAdapter):
     kind = "transect"
     description = "Ship-based seabird strip-transect segments and their birds by taxon; effort = strip area (km2)."
     tables = {"events": "transect_events", "records": "transect_records"}
@@ -115,6 +106,7 @@ class TransectAdapter(Adapter):
     default_protocol = "standard_seabird_strip"
     display_order = 30
     joins_date_time = True
+    event_word, record_word = "segment", "bird"
     profile_sections = {
         "strip": Table({
             "flying": text("How flying birds were counted.", enum=("snapshot", "continuous"), default="snapshot"),
@@ -127,43 +119,22 @@ class TransectAdapter(Adapter):
 # max_speed_kn = 30           # faster segments -> implausible_speed
 """
 
-    def read(
-        self,
-        inputs: Mapping[str, Path],
-        profile: Profile,
-        study: Study,
-        progress: ProgressCallback | None = None,
-    ) -> AdapterOutput:
-        rules = StripRules.from_profile(profile)
-        rej = Rejections()
-        raw, typed = self.read_fields(inputs, profile, rej)
-        ev_raw, rc_raw = raw["events"], raw["records"]
-        ev, rc = typed["events"], typed["records"]
-        if progress:
-            progress("read", 1, 3)
-        observer_id = pseudonymise(ev["observer"], study_salt(study.root))
-        _hide_observers(ev_raw, rc_raw, profile, study)
-        if progress:
-            progress("validate", 2, 3)
+    def profile_rules(self, profile: Profile) -> StripRules:
+        return StripRules.from_profile(profile)
 
-        segments, flags = _segments(ev, observer_id, study, rej, rules)
-        ev_alive = ~rej.mask("events", len(ev))
-        rc_alive = ~rej.mask("records", len(rc))
-        rc_alive = reject_records_of_events(
-            rc, rc_alive, ev["event_id"], ev_alive, rej.first_reasons("events"), rej, "segment"
-        )
-        taxon, unknown, messages, guess = resolve_taxa(rc["taxon"], study)
-        unknown = unknown & rc_alive
-        rej.add("records", np.flatnonzero(unknown), ReasonCode.UNKNOWN_TAXON, messages[unknown])
-        rc_ok = ~rej.mask("records", len(rc))
+    def validate_events(self, opening: Opening, study: Study) -> tuple[pd.DataFrame, dict[str, np.ndarray]]:
+        observer_id = pseudonymise(opening.ev["observer"], study_salt(study.root))
+        _hide_observers(opening.ev_raw, opening.rc_raw, opening.profile, study)
+        return _segments(opening.ev, observer_id, study, opening.rejections, opening.rules)
 
-        lost = ~rc_ok & rc["event_id"].isin(ev["event_id"][ev_alive]).to_numpy()
-        incomplete = rc["event_id"][lost].dropna().unique()
-        blocked = pd.DataFrame({"event_id": rc["event_id"][lost], "variable": taxon.fillna(guess)[lost]}).dropna()
+    def convert(self, opening: Opening, records: RecordCheck, segments: pd.DataFrame, flags: dict[str, np.ndarray],
+                study: Study) -> tuple[pd.DataFrame, pd.DataFrame, list[str]]:
+        profile = opening.profile
+        rc, rc_raw = opening.rc, opening.rc_raw
+        taxon, rc_ok, incomplete, unattributed = records.taxon, records.kept, records.incomplete, records.unattributed
         # A quarantined bird row with no readable segment id (a malformed line, an empty id)
         # may belong to any segment: no segment's counts are known complete, no absence is inferred.
-        unattributed = unattributed_records(rc_ok, rc["event_id"])
-        notes = [unattributed_note(rc_raw.path.name, unattributed, "bird", "segment")] if unattributed else []
+        notes = [self.unattributed_note(rc_raw.path.name, unattributed)] if unattributed else []
 
         # Without an in_flight column the source does not tell flying birds apart: no behavior.
         split = "in_flight" in resolve_columns(rc_raw, fields("transect_records"), profile) or "in_flight" in profile.constants
@@ -185,7 +156,7 @@ class TransectAdapter(Adapter):
         for b in ((ON_WATER, IN_FLIGHT) if split else (None,)):
             seen = birds if b is None else birds[birds["behavior"] == b]
             z = zero_fill(events_year, seen[["event_id", "variable"]].assign(life_stage=pd.NA),
-                          blocked, study, profile.protocol, [("count", "1")])
+                          records.blocked, study, profile.protocol, [("count", "1")])
             parts.append(z.assign(behavior=b))
         zeros = pd.concat(parts, ignore_index=True)
         zeros = zeros.assign(variable_kind="taxon", zero_filled=True, flags=[()] * len(zeros),
@@ -193,7 +164,7 @@ class TransectAdapter(Adapter):
         values = pd.concat([values, zeros], ignore_index=True)
         values["behavior"] = values["behavior"].astype("string")
         values["n_vessels"] = pd.NA
-        continuous = (values["behavior"] == IN_FLIGHT).fillna(False).to_numpy() & (rules.flying == "continuous")
+        continuous = (values["behavior"] == IN_FLIGHT).fillna(False).to_numpy() & (opening.rules.flying == "continuous")
         values["no_effort"] = continuous
         if continuous.any():
             values.loc[continuous, "flags"] = pd.Series(
@@ -203,9 +174,7 @@ class TransectAdapter(Adapter):
             profile.protocol)).to_numpy()
         flags["counts_incomplete"] = segments["event_id"].isin(incomplete).to_numpy() | (unattributed > 0)
         segments["flags"] = flag_tuples(flags)
-        if progress:
-            progress("convert", 3, 3)
-        return finish([ev_raw, rc_raw], rej, segments, values, notes)
+        return segments, values, notes
 
 
 
@@ -233,9 +202,6 @@ def _segments(
     """Validate segments and compute length, strip area, midpoint and midpoint time."""
     n = len(ev)
     pos = np.arange(n)
-    dup = ev["event_id"].duplicated(keep="first").to_numpy() & ev["event_id"].notna().to_numpy()
-    rej.add("events", pos[dup], ReasonCode.DUPLICATE_RECORD,
-            [f"segment '{e}' appears earlier in the file; only its first row counts (when that row is quarantined too, correct it and drop this one)" for e in ev["event_id"][dup]])
     alive = ~rej.mask("events", n)
 
     start, end = ev["start_time"], ev["end_time"]

@@ -170,7 +170,7 @@ def parse_times(text: pd.Series, profile: TimeReading
     twice = np.zeros(len(text), dtype=bool)
     never = np.zeros(len(text), dtype=bool)
     present = text.notna().to_numpy()
-    has_zone = (text.str.contains(r"(?:[zZ]|[+-]\d{2}:?\d{2})$", regex=True)
+    has_zone = (text.str.contains(r"(?:[zZ]|[+-]\d{2}:?\d{2}|:\d{2}(?:[.,]\d+)?[+-]\d{2})$", regex=True)
                 & ~text.str.fullmatch(_DATE_ALONE)).fillna(False).to_numpy()
     out = pd.Series(pd.NaT, index=text.index, dtype="datetime64[us]")
     fmt = profile.time_format or "ISO8601"
@@ -179,10 +179,10 @@ def parse_times(text: pd.Series, profile: TimeReading
         if not sel.any():
             continue
         part = text[sel]
-        parsed = pd.to_datetime(part, format=fmt, errors="coerce", utc=zoned, dayfirst=profile.dayfirst)
+        parsed = _to_datetime(part, fmt, zoned, profile.dayfirst)
         retry = parsed.isna()
         if retry.any() and profile.time_format is None:
-            again = pd.to_datetime(part[retry], format="mixed", errors="coerce", utc=zoned, dayfirst=profile.dayfirst)
+            again = _to_datetime(part[retry], "mixed", zoned, profile.dayfirst)
             parsed = parsed.copy()
             parsed[retry] = again
         if zoned:
@@ -199,3 +199,22 @@ def parse_times(text: pd.Series, profile: TimeReading
     future = (out > pd.Timestamp(now)).fillna(False).to_numpy()
     out = out.mask(future)
     return out, bad, future, twice, never
+
+
+def _to_datetime(text: pd.Series, fmt: str, zoned: bool, dayfirst: bool) -> pd.Series:
+    """``pd.to_datetime`` of present texts: UTC-aware for texts with an offset (``zoned``), else
+    naive. A text read as naive in which the parser still finds an offset, in a form the
+    offset pattern of :func:`parse_times` does not know (``08:20:25.5+05``, ``UTC-6``), is
+    unparseable (NaT) rather than read in the wrong zone."""
+    if zoned:
+        return pd.to_datetime(text, format=fmt, errors="coerce", utc=True, dayfirst=dayfirst)
+    try:
+        parsed = pd.to_datetime(text, format=fmt, errors="coerce", dayfirst=dayfirst)
+        if not isinstance(parsed.dtype, pd.DatetimeTZDtype):
+            return parsed
+    except ValueError:  # "Mixed timezones detected": offsets on some of the texts only
+        pass
+    # rare (such offsets are not a provider's usual form): the texts one by one
+    one = [pd.to_datetime(t, format=fmt, errors="coerce", dayfirst=dayfirst) for t in text]
+    return pd.Series([pd.NaT if pd.isna(t) or t.tzinfo is not None else t for t in one],
+                     index=text.index, dtype="datetime64[us]")

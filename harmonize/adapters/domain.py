@@ -32,6 +32,20 @@ def reject_outside_domain(
     return inside
 
 
+def reject_live_outside(
+    study: Study, lon: np.ndarray, lat: np.ndarray, alive: np.ndarray, rejections: Rejections,
+    what: str = "position", role: str = "events",
+) -> np.ndarray:
+    """Quarantine the rows still alive whose (finite) point lies outside the study domain.
+
+    Returns the rows of ``role`` that no rejection has hit so far.
+    """
+    pos = np.arange(len(lon))
+    checkable = alive & np.isfinite(lon) & np.isfinite(lat)
+    reject_outside_domain(study, lon[checkable], lat[checkable], pos[checkable], role, rejections, what)
+    return ~rejections.mask(role, len(lon))
+
+
 def swapped_positions(study: Study, lat: np.ndarray, lon: np.ndarray) -> int:
     """How many positions lie outside the domain (or off the globe) but inside it once swapped.
 

@@ -22,12 +22,14 @@ import pandas as pd
 
 from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
 from harmonize.errors import ReasonCode
+from harmonize.geodesy import track_geometry
 from harmonize.membership import distinct_present, is_in
 from harmonize.profile import Profile
 from harmonize.reading.quarantine import Rejections, reject_repeated_ids
 from harmonize.reading.taxa import resolve_taxa
 from harmonize.reading.text import RawTable
 from harmonize.study import Study
+from harmonize.tagging import normalise_lon
 
 
 @dataclass
@@ -148,6 +150,66 @@ class EventRecordAdapter(Adapter):
         """The ingest note for ``n`` quarantined records that no event can claim."""
         return unattributed_note(file_name, n, self.record_word, self.event_word,
                                  what=self.records_called, flag=self.incomplete_flag)
+
+
+def event_times(ev: pd.DataFrame, rejections: Rejections, alive: np.ndarray, start_field: str = "start_time",
+                start_words: str = "start_time") -> tuple[pd.Series, pd.Series, np.ndarray, np.ndarray]:
+    """Start, end and duration (h) of each event; an end before the start is quarantined.
+
+    The duration is end - start where both are given, else the ``duration`` field. Returns
+    (start, end, duration_h, alive) with the events that ended before they started taken
+    out of ``alive``; ``start_words`` names the start in the message.
+    """
+    start, end = ev[start_field], ev["end_time"]
+    backwards = alive & (end < start).fillna(False).to_numpy()
+    rejections.add("events", np.flatnonzero(backwards), ReasonCode.END_BEFORE_START,
+                   [f"end_time {e} is before {start_words} {s}"
+                    for s, e in zip(start[backwards], end[backwards], strict=True)])
+    duration_h = ((end - start).dt.total_seconds() / 3600.0).to_numpy(dtype=float, na_value=np.nan)
+    duration_h = np.where(np.isnan(duration_h), ev["duration"].to_numpy(float), duration_h)
+    return start, end, duration_h, alive & ~backwards
+
+
+@dataclass
+class Track:
+    """The start and end positions of events that cover a line (tows, transect segments).
+
+    ``have_end``: both positions are given; ``length_km`` the geodesic between them (0 where
+    not ``have_end``); ``lon``, ``lat`` the event's representative point: the geodesic
+    midpoint, or the start where there is no end.
+    """
+
+    start_lon: np.ndarray
+    start_lat: np.ndarray
+    end_lon: np.ndarray
+    end_lat: np.ndarray
+    have_end: np.ndarray
+    length_km: np.ndarray
+    lon: np.ndarray
+    lat: np.ndarray
+
+    @classmethod
+    def of(cls, ev: pd.DataFrame) -> Track:
+        """The track of each event from its start_lat/start_lon and end_lat/end_lon fields."""
+        slon, slat = ev["start_lon"].to_numpy(float), ev["start_lat"].to_numpy(float)
+        elon, elat = ev["end_lon"].to_numpy(float), ev["end_lat"].to_numpy(float)
+        have_end = np.isfinite(elon) & np.isfinite(elat) & np.isfinite(slon) & np.isfinite(slat)
+        length_km, mid_lon, mid_lat = track_geometry(
+            np.where(have_end, slon, 0), np.where(have_end, slat, 0),
+            np.where(have_end, elon, 0), np.where(have_end, elat, 0),
+        )
+        return cls(slon, slat, elon, elat, have_end, length_km,
+                   np.where(have_end, mid_lon, normalise_lon(slon)), np.where(have_end, mid_lat, slat))
+
+    def columns(self) -> dict[str, np.ndarray]:
+        """The optional track_* event columns (null where the event has no end position)."""
+        have = self.have_end
+        return {
+            "track_start_lat": np.where(have, self.start_lat, np.nan),
+            "track_start_lon": np.where(have, normalise_lon(self.start_lon), np.nan),
+            "track_end_lat": np.where(have, self.end_lat, np.nan),
+            "track_end_lon": np.where(have, normalise_lon(self.end_lon), np.nan),
+        }
 
 
 def reject_records_of_events(

@@ -22,8 +22,14 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from harmonize.adapters.domain import reject_outside_domain
-from harmonize.adapters.event_record import EventRecordAdapter, Opening, RecordCheck, flag_tuples
+from harmonize.adapters.domain import reject_live_outside
+from harmonize.adapters.event_record import (
+    EventRecordAdapter,
+    Opening,
+    RecordCheck,
+    event_times,
+    flag_tuples,
+)
 from harmonize.adapters.life_stages import normalise_life_stage
 from harmonize.adapters.registry import register
 from harmonize.adapters.zero_filling import (
@@ -173,13 +179,7 @@ def _tows(ev: pd.DataFrame, study: Study, rej: Rejections, rules: TowRules) -> t
     pos = np.arange(n)
     alive = ~rej.mask("events", n)
 
-    start, end = ev["time"], ev["end_time"]
-    backwards = alive & (end < start).fillna(False).to_numpy()
-    rej.add("events", pos[backwards], ReasonCode.END_BEFORE_START,
-            [f"end_time {e} is before the tow's start time {s}" for s, e in zip(start[backwards], end[backwards], strict=True)])
-    alive &= ~backwards
-    duration_h = ((end - start).dt.total_seconds() / 3600.0).to_numpy(dtype=float, na_value=np.nan)
-    duration_h = np.where(np.isnan(duration_h), ev["duration"].to_numpy(float), duration_h)
+    start, end, duration_h, alive = event_times(ev, rej, alive, "time", "the tow's start time")
 
     dmin, dmax = ev["depth_min_m"].to_numpy(float), ev["depth_max_m"].to_numpy(float)
     upside = alive & (dmin > dmax)
@@ -240,9 +240,7 @@ def _tows(ev: pd.DataFrame, study: Study, rej: Rejections, rules: TowRules) -> t
         alive &= ~low
 
     lon, lat = normalise_lon(ev["lon"].to_numpy(float)), ev["lat"].to_numpy(float)
-    checkable = alive & np.isfinite(lon) & np.isfinite(lat)
-    reject_outside_domain(study, lon[checkable], lat[checkable], pos[checkable], "events", rej, "station")
-    alive = ~rej.mask("events", n)
+    alive = reject_live_outside(study, lon, lat, alive, rej, "station")
 
     event_end = end.where(end.notna(), add_hours(start, duration_h))
     tows = pd.DataFrame({

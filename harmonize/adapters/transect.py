@@ -26,10 +26,16 @@ from dataclasses import dataclass
 import numpy as np
 import pandas as pd
 import pyarrow as pa
-import pyproj
 
-from harmonize.adapters.domain import reject_outside_domain
-from harmonize.adapters.event_record import EventRecordAdapter, Opening, RecordCheck, flag_tuples
+from harmonize.adapters.domain import reject_live_outside
+from harmonize.adapters.event_record import (
+    EventRecordAdapter,
+    Opening,
+    RecordCheck,
+    Track,
+    event_times,
+    flag_tuples,
+)
 from harmonize.adapters.registry import register
 from harmonize.adapters.zero_filling import (
     STAGE_UNRESOLVED,
@@ -42,32 +48,22 @@ from harmonize.clock import add_hours
 from harmonize.config_spec import Table, number, text
 from harmonize.contract import fields
 from harmonize.errors import ConfigError, ReasonCode
+from harmonize.geodesy import KM_PER_NMI
 from harmonize.privacy import pseudonymise, study_salt
 from harmonize.profile import Profile
 from harmonize.reading.fields import resolve_columns
 from harmonize.reading.quarantine import Rejections
 from harmonize.reading.text import RawTable
 from harmonize.study import Study
-from harmonize.tagging import normalise_lon, tag_season
+from harmonize.tagging import tag_season
 
 #: The standard strip width for ship-based seabird counts (Tasker et al. 1984, The Auk 101:567-577).
 DEFAULT_STRIP_WIDTH_M = 300.0
 #: Survey ships count seabirds while steaming at about 5-15 knots (common practice); a
 #: segment implying more than this is a wrong position, length or time.
 MAX_SHIP_SPEED_KN = 30.0
-KM_PER_NMI = 1.852  # exact, by definition of the international nautical mile
 ON_WATER, IN_FLIGHT = "on_water", "in_flight"
 FLYING_MODES = ("snapshot", "continuous")
-_GEOD = pyproj.Geod(ellps="WGS84")
-
-
-def segment_geometry(
-    start_lon: np.ndarray, start_lat: np.ndarray, end_lon: np.ndarray, end_lat: np.ndarray
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Geodesic segment length (km) on WGS84 and the geodesic midpoint (lon, lat) of each segment."""
-    az, _, dist_m = _GEOD.inv(start_lon, start_lat, end_lon, end_lat)
-    mid_lon, mid_lat, _ = _GEOD.fwd(start_lon, start_lat, az, np.asarray(dist_m) / 2.0)
-    return np.asarray(dist_m) / 1000.0, normalise_lon(mid_lon), np.asarray(mid_lat)
 
 
 def strip_area_km2(length_km: np.ndarray, strip_width_m: np.ndarray) -> np.ndarray:
@@ -204,27 +200,15 @@ def _segments(
     pos = np.arange(n)
     alive = ~rej.mask("events", n)
 
-    start, end = ev["start_time"], ev["end_time"]
-    backwards = alive & (end < start).fillna(False).to_numpy()
-    rej.add("events", pos[backwards], ReasonCode.END_BEFORE_START,
-            [f"end_time {e} is before start_time {s}" for s, e in zip(start[backwards], end[backwards], strict=True)])
-    alive &= ~backwards
-    duration_h = ((end - start).dt.total_seconds() / 3600.0).to_numpy(dtype=float, na_value=np.nan)
-    duration_h = np.where(np.isnan(duration_h), ev["duration"].to_numpy(float), duration_h)
+    start, end, duration_h, alive = event_times(ev, rej, alive)
     zero_time = alive & (duration_h <= 0)
     rej.add("events", pos[zero_time], ReasonCode.BAD_EFFORT,
             "segment duration is 0: start and end times are equal; check the end time")
     alive &= ~zero_time
 
-    slon, slat = ev["start_lon"].to_numpy(float), ev["start_lat"].to_numpy(float)
-    elon, elat = ev["end_lon"].to_numpy(float), ev["end_lat"].to_numpy(float)
-    have_end = np.isfinite(elon) & np.isfinite(elat) & np.isfinite(slon) & np.isfinite(slat)
-    geo_km, mid_lon, mid_lat = segment_geometry(
-        np.where(have_end, slon, 0), np.where(have_end, slat, 0),
-        np.where(have_end, elon, 0), np.where(have_end, elat, 0),
-    )
-    given_km = ev["length_km"].to_numpy(float)
-    length_km = np.where(have_end, geo_km, given_km)
+    track = Track.of(ev)
+    have_end = track.have_end
+    length_km = np.where(have_end, track.length_km, ev["length_km"].to_numpy(float))
     no_length = alive & ~np.isfinite(length_km)
     rej.add("events", pos[no_length], ReasonCode.MISSING_VALUE,
             "segment length cannot be computed: give end_lat and end_lon, or length_km")
@@ -248,11 +232,7 @@ def _segments(
              for v, d, h in zip(speed_kn[fast], length_km[fast], duration_h[fast], strict=True)])
     alive &= ~fast
 
-    lon = np.where(have_end, mid_lon, normalise_lon(slon))
-    lat = np.where(have_end, mid_lat, slat)
-    checkable = alive & np.isfinite(lon) & np.isfinite(lat)
-    reject_outside_domain(study, lon[checkable], lat[checkable], pos[checkable], "events", rej, "segment midpoint")
-    alive = ~rej.mask("events", n)
+    alive = reject_live_outside(study, track.lon, track.lat, alive, rej, "segment midpoint")
 
     event_end = end.where(end.notna(), add_hours(start, duration_h))
     midpoint_time = start + (event_end - start).fillna(pd.Timedelta(0)) / 2
@@ -263,8 +243,8 @@ def _segments(
         "event_end": event_end,
         "season": season,
         "season_year": season_year,
-        "lat": lat,
-        "lon": lon,
+        "lat": track.lat,
+        "lon": track.lon,
         # birds at the sea surface: a point depth of 0 falls in the study's top layer
         "depth_min_m": 0.0,
         "depth_max_m": 0.0,
@@ -274,10 +254,7 @@ def _segments(
         "effort_unit": "km2",
         "source_row": pos + 1,
         "observer_id": observer_id,
-        "track_start_lat": np.where(have_end, slat, np.nan),
-        "track_start_lon": np.where(have_end, normalise_lon(slon), np.nan),
-        "track_end_lat": np.where(have_end, elat, np.nan),
-        "track_end_lon": np.where(have_end, normalise_lon(elon), np.nan),
+        **track.columns(),
     })[alive].reset_index(drop=True)
     return segments, {"length_given": (~have_end)[alive], "strip_width_default": width_default[alive],
                       "speed_unchecked": ~np.isfinite(speed_kn)[alive]}

@@ -5,7 +5,7 @@ Sparre and Venema 1998, FAO Fisheries Technical Paper 306/1 Rev. 2, section 13.5
 distance is the logged distance when the provider gives one (flag distance_logged; a straight
 line between the positions that differs from it by more than 10 % is flagged
 distance_disagrees); otherwise the WGS84 geodesic between start and end positions
-(pyproj.Geod, Karney 2013); without either, speed x duration.
+(:func:`harmonize.geodesy.track_geometry`, Karney 2013); without either, speed x duration.
 """
 
 from __future__ import annotations
@@ -13,10 +13,15 @@ from __future__ import annotations
 import numpy as np
 import pandas as pd
 import pyarrow as pa
-import pyproj
 
-from harmonize.adapters.domain import reject_outside_domain
-from harmonize.adapters.event_record import EventRecordAdapter, Opening, RecordCheck
+from harmonize.adapters.domain import reject_live_outside
+from harmonize.adapters.event_record import (
+    EventRecordAdapter,
+    Opening,
+    RecordCheck,
+    Track,
+    event_times,
+)
 from harmonize.adapters.life_stages import normalise_life_stage
 from harmonize.adapters.registry import register
 from harmonize.adapters.zero_filling import (
@@ -29,31 +34,20 @@ from harmonize.adapters.zero_filling import (
 from harmonize.clock import add_hours
 from harmonize.contract import fields
 from harmonize.errors import ReasonCode
+from harmonize.geodesy import KM_PER_NMI
 from harmonize.membership import distinct_present, is_in
 from harmonize.reading.fields import resolve_columns
 from harmonize.reading.quarantine import Rejections
 from harmonize.study import Study
-from harmonize.tagging import normalise_lon
 
 #: Towing speeds outside this window (knots) are not a survey tow. Standard survey tows run
 #: at 3-4 knots (common practice); the window is wide on purpose.
 TOW_SPEED_KN = (0.5, 8.0)
-KM_PER_NMI = 1.852  # exact, by definition of the international nautical mile
 #: A straight start-end line that differs from the logged distance by more than this share of
 #: the logged distance is flagged: a tow that turned, a wrong position or a wrong log (common
 #: practice; survey tows are run straight, so a few percent is usual).
 DISTANCE_TOLERANCE = 0.10
 DISTANCE_LOGGED, DISTANCE_DISAGREES = "distance_logged", "distance_disagrees"
-_GEOD = pyproj.Geod(ellps="WGS84")
-
-
-def tow_geometry(
-    start_lon: np.ndarray, start_lat: np.ndarray, end_lon: np.ndarray, end_lat: np.ndarray
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Geodesic tow length (km) on WGS84 and the geodesic midpoint (lon, lat) of each tow."""
-    az, _, dist_m = _GEOD.inv(start_lon, start_lat, end_lon, end_lat)
-    mid_lon, mid_lat, _ = _GEOD.fwd(start_lon, start_lat, az, dist_m / 2.0)
-    return np.asarray(dist_m) / 1000.0, normalise_lon(mid_lon), np.asarray(mid_lat)
 
 
 def area_swept_km2(distance_km: np.ndarray, net_width_m: np.ndarray) -> np.ndarray:
@@ -199,25 +193,13 @@ count = "number"
         """Validate hauls and compute distance, duration, area swept and the tow midpoint."""
         n = len(ev)
         pos = np.arange(n)
-        start, end = ev["start_time"], ev["end_time"]
-        alive = ~rej.mask("events", n)
-        backwards = alive & (end < start).fillna(False).to_numpy()
-        rej.add("events", pos[backwards], ReasonCode.END_BEFORE_START,
-                [f"end_time {e} is before start_time {s}" for s, e in zip(start[backwards], end[backwards], strict=True)])
-        alive &= ~backwards
-        duration_h = ((end - start).dt.total_seconds() / 3600.0).to_numpy(dtype=float, na_value=np.nan)
-        duration_h = np.where(np.isnan(duration_h), ev["duration"].to_numpy(float), duration_h)
+        start, end, duration_h, alive = event_times(ev, rej, ~rej.mask("events", n))
         zero_time = alive & (duration_h <= 0)
         rej.add("events", pos[zero_time], ReasonCode.BAD_EFFORT, "tow duration is 0; start and end times are equal")
         alive &= ~zero_time
 
-        slon, slat = ev["start_lon"].to_numpy(float), ev["start_lat"].to_numpy(float)
-        elon, elat = ev["end_lon"].to_numpy(float), ev["end_lat"].to_numpy(float)
-        have_end = np.isfinite(elon) & np.isfinite(elat) & np.isfinite(slon) & np.isfinite(slat)
-        geo_km, mid_lon, mid_lat = tow_geometry(
-            np.where(have_end, slon, 0), np.where(have_end, slat, 0),
-            np.where(have_end, elon, 0), np.where(have_end, elat, 0),
-        )
+        track = Track.of(ev)
+        have_end, geo_km = track.have_end, track.length_km
         logged_km = ev["distance"].to_numpy(float)
         logged = np.isfinite(logged_km)
         speed_kn = ev["speed"].to_numpy(float)
@@ -232,8 +214,6 @@ count = "number"
         rej.add("events", pos[no_distance], ReasonCode.MISSING_VALUE,
                 "distance towed cannot be computed: give end_lat/end_lon, a distance, or speed and duration")
         alive &= ~no_distance
-        lon = np.where(have_end, mid_lon, normalise_lon(slon))
-        lat = np.where(have_end, mid_lat, slat)
 
         width_m = ev["net_width_m"].to_numpy(float)
         area_km2 = area_swept_km2(distance_km, width_m)
@@ -252,9 +232,7 @@ count = "number"
                  "check positions, times and units" for v, d, h in
                  zip(tow_speed[bad_speed], distance_km[bad_speed], duration_h[bad_speed], strict=True)])
         alive &= ~bad_speed
-        checkable = alive & np.isfinite(lon) & np.isfinite(lat)
-        reject_outside_domain(study, lon[checkable], lat[checkable], pos[checkable], "events", rej, "tow midpoint")
-        alive = ~rej.mask("events", n)
+        alive = reject_live_outside(study, track.lon, track.lat, alive, rej, "tow midpoint")
 
         gear = ev["gear_depth_m"].to_numpy(float)
         bottom = ev["bottom_depth_m"].to_numpy(float)
@@ -266,8 +244,8 @@ count = "number"
             "event_id": ev["event_id"],
             "event_start": start,
             "event_end": event_end,
-            "lat": lat,
-            "lon": lon,
+            "lat": track.lat,
+            "lon": track.lon,
             "depth_min_m": depth,
             "depth_max_m": depth,
             "bottom_depth_m": bottom,
@@ -276,10 +254,7 @@ count = "number"
             "effort_unit": "km2",
             "source_row": pos + 1,
             "observer_id": pd.NA,
-            "track_start_lat": np.where(have_end, slat, np.nan),
-            "track_start_lon": np.where(have_end, normalise_lon(slon), np.nan),
-            "track_end_lat": np.where(have_end, elat, np.nan),
-            "track_end_lon": np.where(have_end, normalise_lon(elon), np.nan),
+            **track.columns(),
             "bottom_temperature": ev["bottom_temperature"],
         })[alive].reset_index(drop=True)
         flag_lists = []

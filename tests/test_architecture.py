@@ -75,6 +75,10 @@ def test_the_graph_reader_sees_lazy_imports() -> None:
     ("harmonize.adapters", "harmonize.twins"),
     ("harmonize.adapters", "harmonize.audit"),
     ("harmonize.adapters", "harmonize.export"),
+    # reading provider files (text, fields, quarantine, taxa) serves the adapters, never the other way
+    ("harmonize.reading", "harmonize.adapters"),
+    ("harmonize.reading", "harmonize.store"),
+    ("harmonize.reading", "harmonize.ingest"),
     ("harmonize.twins", "harmonize.profile"),
     ("harmonize.twins", "harmonize.adapters"),
     # audit and exports read the store; they never run the pipeline

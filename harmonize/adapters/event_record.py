@@ -114,7 +114,6 @@ class EventRecordAdapter(Adapter):
         del raw, typed
         if progress:
             progress("read", 1, 3)
-        if progress:
             progress("validate", 2, 3)
         reject_repeated_ids(rej, "events", opening.ev["event_id"], self.event_word)
         events, flags = self.validate_events(opening, study)

@@ -70,3 +70,22 @@ def test_the_volunteer_record_id_uses_the_same_wording(study_dir: Path) -> None:
     assert q["reason_code"].tolist() == ["duplicate_record"]
     assert q["message"].iloc[0] == ("record 'R1' appears earlier in the file; only its first row counts (when "
                                     "that row is quarantined too, correct it and drop this one)")
+
+
+def test_repeated_ids_count_from_the_first_row_and_skip_rows_without_an_id() -> None:
+    import numpy as np
+    import pandas as pd
+
+    from harmonize.reading.quarantine import Rejections, reject_repeated_ids
+
+    ids = pd.Series(["a", "b", "a", "a", None, None], dtype="string")
+    rej = Rejections()
+    hit = reject_repeated_ids(rej, "rows", ids, "haul")
+    assert np.flatnonzero(hit).tolist() == [2, 3]   # the first "a" counts; no id is no repeat
+    # only rows still alive (a logbook checks repeats after typing): row 3 was rejected before
+    rej = Rejections()
+    hit = reject_repeated_ids(rej, "rows", ids, "haul", within=np.array([True, True, True, False, True, True]))
+    assert np.flatnonzero(hit).tolist() == [2]
+    assert rej.first_reasons("rows")["message"].tolist() == [
+        "haul 'a' appears earlier in the file; only its first row counts (when that row is quarantined too, "
+        "correct it and drop this one)"]

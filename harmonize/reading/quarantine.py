@@ -103,13 +103,17 @@ def repeated_id_messages(word: str, ids: Iterable[object]) -> list[str]:
             "quarantined too, correct it and drop this one)" for i in ids]
 
 
-def reject_repeated_ids(rejections: Rejections, role: str, ids: pd.Series, word: str) -> np.ndarray:
+def reject_repeated_ids(rejections: Rejections, role: str, ids: pd.Series, word: str,
+                        within: np.ndarray | None = None) -> np.ndarray:
     """Quarantine (duplicate_record) every row of ``role`` whose id appeared on an earlier row.
 
     Rows without an id are left alone (their missing value is reported where the id is
-    required). Returns the mask of the rows rejected here.
+    required); with ``within`` (a mask), only those rows are rejected here (rows rejected
+    before then keep their message without this one). Returns the mask of the rows rejected here.
     """
     repeated = ids.duplicated(keep="first").to_numpy() & ids.notna().to_numpy()
+    if within is not None:
+        repeated &= within
     rejections.add(role, np.flatnonzero(repeated), ReasonCode.DUPLICATE_RECORD,
                    repeated_id_messages(word, ids[repeated]))
     return repeated

@@ -11,10 +11,12 @@ from typing import ClassVar
 import numpy as np
 import pandas as pd
 
-from harmonize.adapters.reading import RawTable, Rejections, coerce_fields, read_table
 from harmonize.config_spec import Map, Table
 from harmonize.contract import fields
 from harmonize.profile import Profile
+from harmonize.reading.fields import coerce_fields
+from harmonize.reading.quarantine import Rejections
+from harmonize.reading.text import RawTable, read_table
 from harmonize.study import Study
 
 #: progress(stage, done, total) — the CLI turns it into a progress bar.
@@ -141,7 +143,7 @@ class Adapter(ABC):
     profile_example: ClassVar[str] = ""
     #: A worked example profile written by ``harmonize init`` instead of the generated template.
     profile_starter: ClassVar[str | None] = None
-    #: Fields are typed by reading.coerce_fields, which applies [formats] (degrees and
+    #: Fields are typed by reading.fields.coerce_fields, which applies [formats] (degrees and
     #: minutes, percent); False for kinds that read their files otherwise.
     reads_formats: ClassVar[bool] = True
     #: A date-time field may be mapped onto two provider columns ([date, time]).

@@ -16,14 +16,16 @@ import numpy as np
 import pandas as pd
 
 from harmonize.adapters.base import AdapterOutput, ProgressCallback, finish
-from harmonize.adapters.common import reject_outside_domain
+from harmonize.adapters.domain import reject_outside_domain
 from harmonize.adapters.fishing import FishingSettings, GearRule, effort_output
-from harmonize.adapters.reading import Rejections, coerce_fields, read_table, resolve_columns
 from harmonize.contract import FieldSpec, fields
 from harmonize.errors import ReasonCode
 from harmonize.geodesy import M_PER_NMI, distance_m
 from harmonize.privacy import pseudonymise, study_salt
 from harmonize.profile import Profile
+from harmonize.reading.fields import coerce_fields, resolve_columns
+from harmonize.reading.quarantine import Rejections
+from harmonize.reading.text import read_table
 from harmonize.study import Study
 from harmonize.tagging import Grid, normalise_lon, tag_season
 

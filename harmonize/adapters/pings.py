@@ -37,7 +37,7 @@ import pyarrow.parquet as pq
 
 from harmonize import units
 from harmonize.adapters.base import AdapterOutput, InputFile, ProgressCallback
-from harmonize.adapters.common import swapped_position_notes
+from harmonize.adapters.domain import swapped_position_notes
 from harmonize.adapters.fishing import (
     OUTSIDE,
     FishingSettings,
@@ -46,22 +46,16 @@ from harmonize.adapters.fishing import (
     effort_output,
     locate,
 )
-from harmonize.adapters.reading import (
-    NA_TOKENS,
-    LineReader,
-    RawTable,
-    file_sha256,
-    one_line,
-    read_header,
-    resolve_columns,
-)
 from harmonize.clock import sql_local_problem, sql_offset_text, sql_resolved
 from harmonize.contract import fields
 from harmonize.engines import current_engine
-from harmonize.errors import ConfigError, InputFileError, ReasonCode
+from harmonize.errors import ConfigError, InputFileError, ReasonCode, one_line
+from harmonize.files import file_sha256
 from harmonize.geodesy import distance_sql
 from harmonize.privacy import pseudonymise, study_salt
 from harmonize.profile import Profile
+from harmonize.reading.fields import NA_TOKENS, resolve_columns
+from harmonize.reading.text import LineReader, RawTable, read_header
 from harmonize.sql import sql_ident, sql_text
 from harmonize.study import Study
 from harmonize.tagging import Grid, season_sql, season_year_offsets

@@ -24,7 +24,7 @@ from harmonize.geodesy import M_PER_NMI, distance_m
 from harmonize.privacy import pseudonymise, study_salt
 from harmonize.profile import Profile
 from harmonize.reading.fields import coerce_fields, resolve_columns
-from harmonize.reading.quarantine import Rejections
+from harmonize.reading.quarantine import Rejections, reject_repeated_ids
 from harmonize.reading.text import read_table
 from harmonize.study import Study
 from harmonize.tagging import Grid, normalise_lon, tag_season
@@ -94,9 +94,7 @@ def read_logbook(path: Path, profile: Profile, study: Study, settings: FishingSe
         progress("validate", 1, 3)
 
     alive = ~rej.mask("rows", n)
-    dup = alive & ev["event_id"].duplicated(keep="first").to_numpy() & ev["event_id"].notna().to_numpy()
-    rej.add("rows", pos[dup], ReasonCode.DUPLICATE_RECORD,
-            [f"haul '{e}' appears earlier in the file; only its first row counts (when that row is quarantined too, correct it and drop this one)" for e in ev["event_id"][dup]])
+    dup = reject_repeated_ids(rej, "rows", ev["event_id"], "haul", within=alive)
     alive &= ~dup
     start, end = ev["start_time"], ev["end_time"]
     hours = ((end - start).dt.total_seconds() / 3600.0).to_numpy(dtype=float, na_value=np.nan)

@@ -429,13 +429,15 @@ def _concat_values(parts: list[pd.DataFrame]) -> pd.DataFrame:
     """Concatenate value frames; text columns become categoricals sharing their categories."""
     parts = [p for p in parts if len(p)] or parts[:1]
     for col in ("event_id", "variable", "life_stage", "quantity", "unit", "variable_kind"):
-        cats = [p[col].astype("category").cat.categories for p in parts]
-        union = pd.Index(pd.unique(np.concatenate([c.to_numpy(dtype=object) for c in cats])), dtype=object) \
-            if cats else pd.Index([], dtype=object)
         if col == "event_id" and isinstance(parts[0][col].dtype, pd.CategoricalDtype):
             union = parts[0][col].cat.categories  # the hauls, shared by every part
+        else:
+            cats = [p[col].astype("category").cat.categories for p in parts]
+            union = pd.Index(pd.unique(np.concatenate([c.to_numpy(dtype=object) for c in cats])), dtype=object) \
+                if cats else pd.Index([], dtype=object)
         for p in parts:
-            p[col] = p[col].astype("category").cat.set_categories(union)
+            if not (isinstance(p[col].dtype, pd.CategoricalDtype) and p[col].cat.categories is union):
+                p[col] = p[col].astype("category").cat.set_categories(union)
     return pd.concat(parts, ignore_index=True)
 
 
@@ -542,12 +544,20 @@ class TrawlValues(ValueSource):
 
     def _values(self, catch: pd.DataFrame, zero_events: pd.DataFrame, hauls: np.ndarray) -> pd.DataFrame:
         """Catch sums of ``catch``, zeros of ``zero_events`` and the temperatures of the hauls in the mask."""
+        # haul ids as categories of this run's hauls only: every step after this one looks
+        # up categories, and the run's are a few thousand where the file's are a million
+        in_run = np.flatnonzero(hauls)
+        run_ids = self.haul_ids[in_run]
+        local = np.full(len(self.haul_ids) + 1, -1, dtype=np.int64)
+        local[in_run] = np.arange(in_run.size)
+        catch = catch.assign(event_id=pd.Categorical.from_codes(local[catch["event_id"].cat.codes.to_numpy()],
+                                                                categories=run_ids))
         values = _catch_values(catch)
         zeros = _zero_values(zero_events, catch[["event_id", "variable", "life_stage"]], self.blocked, self.study,
-                             self.protocol, self.quantities, self.haul_ids)
+                             self.protocol, self.quantities, run_ids)
         measured = hauls & np.isfinite(self.temperature)
         temps = _temperature_values(pd.DataFrame({"event_id": self.haul_ids[measured],
-                                                  "bottom_temperature": self.temperature[measured]}), self.haul_ids)
+                                                  "bottom_temperature": self.temperature[measured]}), run_ids)
         values = _concat_values([values, zeros, temps])
         values["n_vessels"] = pd.Series(pd.NA, index=values.index, dtype="Int32")
         return values

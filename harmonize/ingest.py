@@ -237,12 +237,12 @@ def store_output(
     notes = list(out.notes) + swapped_position_notes(study, out.positions)
     result = IngestResult("checked", profile.source_id, kind, None, out.files, 0, 0, out.quarantine, notes=notes)
     result.masked = out.masked
-    no_values = events_without_values(out, study, profile, kind)
-    result.events_without_values = no_values.to_pandas()
     if not write:
         for block in blocks:
             result.records_written += block.num_rows
             result.records_zero_filled += _zero_filled(block)
+        # after the blocks: a value source then knows which events had values
+        result.events_without_values = events_without_values(out, study, profile, kind).to_pandas()
         return result
 
     store = Store(study.store_dir)
@@ -265,6 +265,8 @@ def store_output(
     try:
         # the store decides where and how the rows are written; each file carries the record
         result.records_written, result.records_zero_filled = store.write_observations(staged, blocks, record, files)
+        no_values = events_without_values(out, study, profile, kind)
+        result.events_without_values = no_values.to_pandas()
         record.records_written, record.records_zero_filled = result.records_written, result.records_zero_filled
         record.finished_at = pd.Timestamp.now("UTC").tz_localize(None)
 

@@ -492,6 +492,7 @@ class TrawlValues(ValueSource):
         self.zero_haul = haul_ids.get_indexer(zero_events["event_id"])
         self.blocked = blocked
         self.study, self.protocol, self.quantities = study, protocol, quantities
+        self._valued: np.ndarray | None = None  # hauls with values, once every run was made
 
     def blocks(self, order: np.ndarray, rows: int) -> Iterator[pd.DataFrame]:
         n = len(self.haul_ids)
@@ -513,17 +514,28 @@ class TrawlValues(ValueSource):
         by_rank = np.argsort(catch_rank, kind="stable")
         starts = np.searchsorted(catch_rank[by_rank], cuts)
         starts[-1] = len(by_rank)
+        valued = np.zeros(n, dtype=bool)
         for (lo, hi), (a, b) in zip(zip(cuts[:-1], cuts[1:], strict=True),
                                     zip(starts[:-1], starts[1:], strict=True), strict=True):
             in_run = np.zeros(n, dtype=bool)
             in_run[order[lo:hi]] = True
-            yield self._values(self.catch.iloc[np.sort(by_rank[a:b])],
-                               self.zero_events.iloc[np.flatnonzero((zero_rank >= lo) & (zero_rank < hi))], in_run)
+            values = self._values(self.catch.iloc[np.sort(by_rank[a:b])],
+                                  self.zero_events.iloc[np.flatnonzero((zero_rank >= lo) & (zero_rank < hi))], in_run)
+            codes = values["event_id"].cat.codes.to_numpy()
+            valued[np.flatnonzero(in_run)[codes[codes >= 0]]] = True
+            yield values
+        self._valued = valued  # every run made: which hauls have values is known
 
     def frame(self) -> pd.DataFrame:
         return self._values(self.catch, self.zero_events, np.ones(len(self.haul_ids), dtype=bool))
 
     def event_ids(self) -> np.ndarray:
+        if self._valued is not None:
+            return np.asarray(self.haul_ids[self._valued], dtype=object)
+        return self._event_ids()
+
+    def _event_ids(self) -> np.ndarray:
+        """The hauls with values, found without making them: catch, temperature or a zero."""
         has = np.zeros(len(self.haul_ids), dtype=bool)
         has[self.catch_haul[self.catch_haul >= 0]] = True  # every accepted catch row has a weight or a count
         has |= np.isfinite(self.temperature)

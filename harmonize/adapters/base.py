@@ -169,6 +169,9 @@ class Adapter(ABC):
     reads_formats: ClassVar[bool] = True
     #: A date-time field may be mapped onto two provider columns ([date, time]).
     joins_date_time: ClassVar[bool] = False
+    #: Table roles read and typed in blocks of rows (:mod:`harmonize.adapters.record_blocks`):
+    #: text fields come back as categoricals and the raw table reads rejected rows' text again.
+    reads_in_blocks: ClassVar[tuple[str, ...]] = ()
 
     def table_fields(self) -> dict[str, set[str]]:
         """Field names per table role, for profile validation."""
@@ -185,6 +188,11 @@ class Adapter(ABC):
         raw: dict[str, RawTable] = {}
         typed: dict[str, pd.DataFrame] = {}
         for role, schema in self.tables.items():
+            if role in self.reads_in_blocks and Path(inputs[role]).suffix.lower() != ".parquet":
+                from harmonize.adapters.record_blocks import read_typed_blocks
+
+                raw[role], typed[role] = read_typed_blocks(inputs[role], profile, role, fields(schema), rejections, schema)
+                continue
             table, malformed = read_table(inputs[role], profile, role)
             raw[role] = table
             typed[role] = coerce_fields(table, fields(schema), profile, rejections, schema, malformed)

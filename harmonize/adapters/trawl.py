@@ -83,6 +83,7 @@ class TrawlAdapter(Adapter):
     effort_words = "area swept by the net"
     effort_label = "area swept"
     default_protocol = "standard_bottom_trawl"
+    reads_in_blocks = ("records",)  # a catch file may hold millions of rows
     display_order = 10
     joins_date_time = True
     profile_starter = """\

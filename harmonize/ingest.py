@@ -25,6 +25,7 @@ from harmonize.contract import CONTRACT_VERSION, observation_sql_columns, valida
 from harmonize.engines import engine_scope
 from harmonize.errors import ConfigError, DuplicateIngestError, HarmonizeError
 from harmonize.files import digests_known
+from harmonize.memory import release_free_memory
 from harmonize.profile import Profile, find_profile, load_profile, peek_kind
 from harmonize.store import IngestRecord, Store
 from harmonize.study import Study
@@ -176,6 +177,7 @@ def _run(study: Study, profile: str | Path, inputs: Mapping[str, Path], *, write
                 prof.path.name, adapter.kind)
     with engine_scope(engine, scheduler):
         out = adapter.read(inputs, prof, study, progress)
+    release_free_memory()  # what reading freed is not reused by the block-wise writing
     logger.info("%s: %d rows read, %d accepted, %d quarantined", main_path, sum(f.rows_read for f in out.files),
                 sum(f.rows_accepted for f in out.files), sum(f.rows_quarantined for f in out.files))
     logger.debug("input sha256 %s, configuration sha256 %s", inputs_sha, config_sha)
@@ -418,7 +420,10 @@ def _keep(frame: pd.DataFrame, column: str, computed: pd.Series) -> pd.Series:
 
 
 #: Observation rows made (and written) per block: memory holds one block of rows, not all of them.
-BLOCK_ROWS = 250_000
+#: Each row of a block costs about 3 KB of peak memory while it is made and written (the
+#: values, their Arrow columns, DuckDB's result, the writer's queue and parquet buffers):
+#: 100,000 rows keep that part of a trawl ingest's peak near 0.4 GB (BENCHMARKS.md).
+BLOCK_ROWS = 100_000
 #: Rows of the assembled output checked against the contract (pandera), spread over the blocks.
 SAMPLE_ROWS = 200_000
 

@@ -4,6 +4,9 @@ Timestamps are microseconds (``datetime64[us]``, years 1 to 9999), never nanosec
 range ends on 2262-04-11. A duration becomes a whole number of microseconds by rounding, not
 truncation: a 20-minute checklist (1/3 h, not exact in binary) from 18:30 ends at 18:50:00.
 
+Date-time text is parsed here too (:func:`parse_times`): with an offset it is converted to UTC,
+without one it is read in the provider's time zone.
+
 A local time without an offset is ambiguous when the clocks go back (it happens twice) and
 does not exist when they go forward (it is skipped). Neither is guessed: such times are
 quarantined with a message that names the clock change, unless the profile's ``[source]
@@ -15,6 +18,7 @@ applies this rule.
 from __future__ import annotations
 
 import datetime as dt
+from typing import Protocol
 from zoneinfo import ZoneInfo
 
 import numpy as np
@@ -22,6 +26,17 @@ import pandas as pd
 
 MICROSECONDS_PER_HOUR = 3_600_000_000
 AMBIGUOUS_CHOICES = ("earlier", "later")
+#: Earlier date-times are typing errors (a lone "-1" parses as year -1), not survey data.
+EARLIEST_TIME = "1800-01-01"
+
+
+class TimeReading(Protocol):
+    """How a provider writes its date-times (a profile's ``[source]`` keys)."""
+
+    time_format: str | None
+    dayfirst: bool
+    timezone: str
+    ambiguous_times: str | None
 
 
 def add_hours(start: pd.Series, hours: np.ndarray | pd.Series) -> pd.Series:
@@ -134,3 +149,72 @@ def sql_resolved(local: str, zone: str, choice: str) -> str:
     candidates = ", ".join([utc] + [f"{utc} {op} INTERVAL {s}" for s in shifts for op in ("+", "-")])
     pick = "list_min" if choice == "earlier" else "list_max"
     return f"{pick}([x FOR x IN [{candidates}] IF timezone({z}, x) = {local}])"
+
+
+#: A date without a time (see parse_times): it never carries an offset.
+_DATE_ALONE = r"\s*\d{1,4}[-/.]\d{1,2}[-/.]\d{1,4}\s*"
+
+
+def parse_times(text: pd.Series, profile: TimeReading
+                ) -> tuple[pd.Series, np.ndarray, np.ndarray, np.ndarray, np.ndarray]:
+    """Parse date-time strings into naive UTC timestamps (microseconds, years 1800-9999).
+
+    Strings with an offset (Z, +02:00) are converted to UTC; strings without one are read in
+    the profile's time zone (:func:`localize`). The rule: a date alone
+    (``01-01-2021``, ``2021-01-01``, ``1.1.2021``) has no offset, so the year of a day-first
+    date with dashes is never read as an offset "-2021" and that date is local like
+    "2021-01-01"; an offset (``Z``, ``+hh:mm``, ``-hhmm``) is recognised at the end of a date
+    with a time. Returns (timestamps, unparseable mask, future mask, ambiguous-local-time
+    mask, nonexistent-local-time mask); a row is in at most one mask.
+    """
+    twice = np.zeros(len(text), dtype=bool)
+    never = np.zeros(len(text), dtype=bool)
+    present = text.notna().to_numpy()
+    has_zone = (text.str.contains(r"(?:[zZ]|[+-]\d{2}:?\d{2}|:\d{2}(?:[.,]\d+)?[+-]\d{2})$", regex=True)
+                & ~text.str.fullmatch(_DATE_ALONE)).fillna(False).to_numpy()
+    out = pd.Series(pd.NaT, index=text.index, dtype="datetime64[us]")
+    fmt = profile.time_format or "ISO8601"
+    for zoned in (True, False):
+        sel = present & (has_zone == zoned)
+        if not sel.any():
+            continue
+        part = text[sel]
+        parsed = _to_datetime(part, fmt, zoned, profile.dayfirst)
+        retry = parsed.isna()
+        if retry.any() and profile.time_format is None:
+            again = _to_datetime(part[retry], "mixed", zoned, profile.dayfirst)
+            parsed = parsed.copy()
+            parsed[retry] = again
+        if zoned:
+            parsed = parsed.dt.tz_convert("UTC").dt.tz_localize(None)
+        elif profile.timezone != "UTC":
+            parsed, amb, non = localize(parsed, profile.timezone, profile.ambiguous_times)
+            twice[sel], never[sel] = amb, non
+        out[sel] = parsed.astype("datetime64[us]").to_numpy()
+    # Dates before EARLIEST_TIME are typing errors, not survey data.
+    ancient = (out < pd.Timestamp(EARLIEST_TIME)).fillna(False).to_numpy()
+    out = out.mask(ancient)
+    bad = present & out.isna().to_numpy() & ~twice & ~never
+    now = dt.datetime.now(dt.UTC).replace(tzinfo=None) + dt.timedelta(days=1)
+    future = (out > pd.Timestamp(now)).fillna(False).to_numpy()
+    out = out.mask(future)
+    return out, bad, future, twice, never
+
+
+def _to_datetime(text: pd.Series, fmt: str, zoned: bool, dayfirst: bool) -> pd.Series:
+    """``pd.to_datetime`` of present texts: UTC-aware for texts with an offset (``zoned``), else
+    naive. A text read as naive in which the parser still finds an offset, in a form the
+    offset pattern of :func:`parse_times` does not know (``08:20:25.5+05``, ``UTC-6``), is
+    unparseable (NaT) rather than read in the wrong zone."""
+    if zoned:
+        return pd.to_datetime(text, format=fmt, errors="coerce", utc=True, dayfirst=dayfirst)
+    try:
+        parsed = pd.to_datetime(text, format=fmt, errors="coerce", dayfirst=dayfirst)
+        if not isinstance(parsed.dtype, pd.DatetimeTZDtype):
+            return parsed
+    except ValueError:  # "Mixed timezones detected": offsets on some of the texts only
+        pass
+    # rare (such offsets are not a provider's usual form): the texts one by one
+    one = [pd.to_datetime(t, format=fmt, errors="coerce", dayfirst=dayfirst) for t in text]
+    return pd.Series([pd.NaT if pd.isna(t) or t.tzinfo is not None else t for t in one],
+                     index=text.index, dtype="datetime64[us]")

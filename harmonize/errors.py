@@ -82,6 +82,12 @@ def one_line(text: str) -> str:
     return text if text.isprintable() else "".join(c if c.isprintable() else ascii(c)[1:-1] for c in text)
 
 
+def short_text(value: object, limit: int = 60) -> str:
+    """A cell as shown in a message: at most ``limit`` characters, on one line."""
+    text = str(value)
+    return one_line(text if len(text) <= limit else text[: limit - 3] + "...")
+
+
 def failure_line(exc: BaseException) -> tuple[str, int] | None:
     """A one-line message and exit code for failures of the machine, not of harmonize.
 

@@ -12,8 +12,10 @@ function, so that both engines and the view compute the same number.
 
 from __future__ import annotations
 
+import functools
 import math
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
@@ -24,6 +26,7 @@ WGS84_F = 1 / 298.257223563
 E2 = WGS84_F * (2 - WGS84_F)
 #: Metres per international nautical mile: exact (BIPM SI Brochure, 9th ed. 2019, Table 8).
 M_PER_NMI = 1852.0
+KM_PER_NMI = M_PER_NMI / 1000.0
 
 
 def distance_m(lat1: np.ndarray, lon1: np.ndarray, lat2: np.ndarray, lon2: np.ndarray) -> np.ndarray:
@@ -113,5 +116,25 @@ def closed_form(crs: object) -> CylindricalEqualArea | None:
         x0=params.get("False easting", (0.0, ""))[0], y0=params.get("False northing", (0.0, ""))[0])
 
 
-__all__ = ["E2", "M_PER_NMI", "WGS84_A", "WGS84_F", "CylindricalEqualArea", "closed_form", "distance_m",
-           "distance_sql"]
+@functools.cache
+def _wgs84_geod() -> Any:
+    import pyproj
+
+    return pyproj.Geod(ellps="WGS84")
+
+
+def track_geometry(
+    start_lon: np.ndarray, start_lat: np.ndarray, end_lon: np.ndarray, end_lat: np.ndarray
+) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+    """Geodesic length (km) on WGS84 of each start-end line (a tow, a transect segment) and
+    its geodesic midpoint (lon in [-180, 180), lat), by pyproj.Geod (Karney 2013)."""
+    from harmonize.tagging import normalise_lon
+
+    geod = _wgs84_geod()
+    az, _, dist_m = geod.inv(start_lon, start_lat, end_lon, end_lat)
+    mid_lon, mid_lat, _ = geod.fwd(start_lon, start_lat, az, np.asarray(dist_m) / 2.0)
+    return np.asarray(dist_m) / 1000.0, normalise_lon(mid_lon), np.asarray(mid_lat)
+
+
+__all__ = ["E2", "KM_PER_NMI", "M_PER_NMI", "WGS84_A", "WGS84_F", "CylindricalEqualArea", "closed_form",
+           "distance_m", "distance_sql", "track_geometry"]

@@ -18,13 +18,14 @@ import pyarrow as pa
 
 from harmonize import parts, twin_windows, twins
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
-from harmonize.adapters.common import codes_in, distinct_present, is_in, swapped_position_notes
+from harmonize.adapters.domain import swapped_position_notes
 from harmonize.adapters.registry import get_adapter, list_adapters
 from harmonize.clock import utc_naive
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns, validate_observations
 from harmonize.engines import engine_scope
 from harmonize.errors import ConfigError, DuplicateIngestError, HarmonizeError
-from harmonize.files import digests_known
+from harmonize.files import digests_known, file_sha256
+from harmonize.membership import codes_in, distinct_present, is_in
 from harmonize.memory import release_free_memory
 from harmonize.profile import Profile, find_profile, load_profile, peek_kind
 from harmonize.store import IngestRecord, Store
@@ -151,8 +152,6 @@ def _run(study: Study, profile: str | Path, inputs: Mapping[str, Path], *, write
     for role, path in inputs.items():
         if not Path(path).is_file():
             raise HarmonizeError(f"{path}: no such file ({role})")
-    from harmonize.adapters.reading import file_sha256
-
     shas = {role: file_sha256(Path(p)) for role, p in inputs.items()}
     main_role = "events" if "events" in inputs else next(iter(inputs))
     inputs_sha = _digest(sorted(shas.items()))

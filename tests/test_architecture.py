@@ -75,6 +75,10 @@ def test_the_graph_reader_sees_lazy_imports() -> None:
     ("harmonize.adapters", "harmonize.twins"),
     ("harmonize.adapters", "harmonize.audit"),
     ("harmonize.adapters", "harmonize.export"),
+    # reading provider files (text, fields, quarantine, taxa) serves the adapters, never the other way
+    ("harmonize.reading", "harmonize.adapters"),
+    ("harmonize.reading", "harmonize.store"),
+    ("harmonize.reading", "harmonize.ingest"),
     ("harmonize.twins", "harmonize.profile"),
     ("harmonize.twins", "harmonize.adapters"),
     # audit and exports read the store; they never run the pipeline
@@ -122,7 +126,7 @@ def test_the_library_reads_no_environment_variable(owner: str, attr: str) -> Non
 
 @pytest.mark.parametrize(("owner", "attr", "allowed"), [
     ("netCDF4", "set_chunk_cache", set()),
-    ("csv", "field_size_limit", {"harmonize.adapters.reading"}),   # csv_field_limit: set and put back
+    ("csv", "field_size_limit", {"harmonize.reading.text"}),   # csv_field_limit: raised while parsing, under a lock
     ("np", "seterr", set()),
     ("pd", "set_option", set()),
     ("warnings", "simplefilter", set()),
@@ -139,8 +143,8 @@ def test_no_process_wide_setting_changed_by_the_library(owner: str, attr: str, a
 
 
 def test_csv_field_limit_is_put_back_after_reading(tmp_path: Path) -> None:
-    from harmonize.adapters.reading import MAX_FIELD_CHARS, LineReader, csv_field_limit
     from harmonize.profile import Profile
+    from harmonize.reading.text import MAX_FIELD_CHARS, LineReader, csv_field_limit
 
     before = csv.field_size_limit()
     assert before != MAX_FIELD_CHARS
@@ -163,6 +167,47 @@ def test_csv_field_limit_is_put_back_after_reading(tmp_path: Path) -> None:
     assert csv.field_size_limit() == before
     with csv_field_limit(123):
         assert csv.field_size_limit() == 123
+    assert csv.field_size_limit() == before
+
+
+def test_readers_in_threads_leave_the_csv_field_limit_as_they_found_it(tmp_path: Path) -> None:
+    # Each reader saves the limit, raises it and puts the saved value back. Unserialised, two
+    # threads interleave (A saves 128 KiB, B saves A's raised value, A restores, B restores
+    # the raised value) and the process keeps the raised limit; or one thread's restore lowers
+    # the limit under another thread's parse, which then fails on its long cell.
+    import threading
+
+    from harmonize.profile import Profile
+    from harmonize.reading.text import LineReader
+
+    before = csv.field_size_limit()
+    long_cell = "x" * (before + 10)
+    paths = []
+    for k in range(4):
+        path = tmp_path / f"rows{k}.csv"
+        path.write_text("a,b\n" + "".join(f"{i},{long_cell if i % 3 == 0 else 'y'}\n" for i in range(1, 40)),
+                        encoding="utf-8")
+        paths.append(path)
+    profile = Profile(path=tmp_path / "p.toml", source_id="s", kind="trawl", provider_type="agency",
+                      protocol=None, delimiter=",")
+    failures: list[BaseException] = []
+    counts: list[int] = []
+
+    def read(path: Path) -> None:
+        try:
+            for _ in range(20):
+                with LineReader(path, profile) as reader:
+                    counts.append(sum(len(b.rows) for b in reader.blocks(size=2)))
+        except BaseException as exc:  # noqa: BLE001 (reported by the main thread)
+            failures.append(exc)
+
+    threads = [threading.Thread(target=read, args=(p,)) for p in paths]
+    for t in threads:
+        t.start()
+    for t in threads:
+        t.join()
+    assert failures == []
+    assert counts == [39] * 80
     assert csv.field_size_limit() == before
 
 

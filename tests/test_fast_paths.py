@@ -19,11 +19,12 @@ import pytest
 from hypothesis import given
 from hypothesis import strategies as st
 
-from harmonize.adapters import reading
-from harmonize.adapters.reading import read_table
 from harmonize.adapters.trawl import _catch_values
 from harmonize.ingest import _list_array
 from harmonize.profile import Profile
+from harmonize.reading import fields
+from harmonize.reading import text as reading_text
+from harmonize.reading.text import read_table
 
 
 def _profile(tmp_path: Path, **kw: object) -> Profile:
@@ -33,9 +34,9 @@ def _profile(tmp_path: Path, **kw: object) -> Profile:
 
 def _both(path: Path, profile: Profile, monkeypatch: pytest.MonkeyPatch) -> tuple[pd.DataFrame, pd.DataFrame]:
     fast, bad_fast = read_table(path, profile, "events")
-    assert reading._read_csv_arrow(path, profile) is not None, "the fast reader should accept this file"
+    assert reading_text._read_csv_arrow(path, profile) is not None, "the fast reader should accept this file"
     with monkeypatch.context() as m:
-        m.setattr(reading, "_read_csv_arrow", lambda *a: None)
+        m.setattr(reading_text, "_read_csv_arrow", lambda *a: None)
         plain, bad_plain = read_table(path, profile, "events")
     assert bad_fast == bad_plain == []
     return fast.frame, plain.frame
@@ -82,15 +83,15 @@ def test_fast_reader_random_cells(tmp_path_factory: pytest.TempPathFactory, rows
     path = tmp_path_factory.mktemp("csv") / "f.csv"
     path.write_text(buf.getvalue(), encoding="utf-8")
     profile = _profile(path.parent, delimiter=",")
-    fast = reading._read_csv_arrow(path, profile)
+    fast = reading_text._read_csv_arrow(path, profile)
     if fast is None:  # a file the fast reader hands to the line-by-line reader is fine
         return
-    original = reading._read_csv_arrow
-    reading._read_csv_arrow = lambda *a: None  # the line-by-line reader (Python's csv module)
+    original = reading_text._read_csv_arrow
+    reading_text._read_csv_arrow = lambda *a: None  # the line-by-line reader (Python's csv module)
     try:
         plain, malformed = read_table(path, profile, "rows")
     finally:
-        reading._read_csv_arrow = original
+        reading_text._read_csv_arrow = original
     assert malformed == []
     assert fast.to_numpy().tolist() == plain.frame.to_numpy().tolist()
 
@@ -99,7 +100,7 @@ def test_malformed_rows_fall_back_with_row_numbers(tmp_path: Path) -> None:
     path = tmp_path / "f.csv"
     path.write_text("id,name\n1,a\n2\n3,c,extra\n4,d\n", encoding="utf-8")
     profile = _profile(tmp_path)
-    assert reading._read_csv_arrow(path, profile) is None
+    assert reading_text._read_csv_arrow(path, profile) is None
     table, malformed = read_table(path, profile, "events")
     assert malformed == [(2, "2", 1), (3, "3,c,extra", 3)]  # (data row, text, fields found)
     assert table.frame["id"].tolist() == ["1", "", "", "4"]
@@ -109,7 +110,7 @@ def test_other_encodings_use_the_line_reader(tmp_path: Path) -> None:
     path = tmp_path / "f.csv"
     path.write_bytes("id,name\n1,Ø\n".encode("latin-1"))
     profile = _profile(tmp_path, encoding="latin-1")
-    assert reading._read_csv_arrow(path, profile) is None
+    assert reading_text._read_csv_arrow(path, profile) is None
     assert read_table(path, profile, "events")[0].frame["name"].tolist() == ["Ø"]
 
 
@@ -174,16 +175,16 @@ NUMBERISH = st.one_of(
 def test_to_float_equals_pandas_to_numeric(cells: list[str | None]) -> None:
     text = pd.Series(cells, dtype="string").str.strip()
     expected = pd.to_numeric(text, errors="coerce").astype("float64").to_numpy()
-    got = reading.to_float(text).to_numpy()
+    got = fields.to_float(text).to_numpy()
     np.testing.assert_array_equal(got, expected)  # NaN == NaN here; same cells fail
 
 
-@given(st.lists(st.one_of(st.none(), st.sampled_from(sorted(reading.NA_TOKENS)).map(str.upper),
+@given(st.lists(st.one_of(st.none(), st.sampled_from(sorted(fields.NA_TOKENS)).map(str.upper),
                           st.text(max_size=6)), max_size=30))
 def test_na_tokens_equal_casefold_lookup(cells: list[str | None]) -> None:
     text = pd.Series(cells, dtype="string")
-    expected = (text.isna() | text.str.casefold().isin(reading.NA_TOKENS)).to_numpy(dtype=bool)
-    assert reading._na_tokens(text).to_numpy(dtype=bool).tolist() == expected.tolist()
+    expected = (text.isna() | text.str.casefold().isin(fields.NA_TOKENS)).to_numpy(dtype=bool)
+    assert fields._na_tokens(text).to_numpy(dtype=bool).tolist() == expected.tolist()
 
 
 def test_partition_writer_equals_duckdb_partitioned_copy(tmp_path: Path) -> None:

@@ -16,9 +16,9 @@ from fuzzing import Mutation, mutate_all, mutations
 from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
-from harmonize.adapters import reading
 from harmonize.errors import InputFileError
 from harmonize.profile import Profile
+from harmonize.reading import text as reading_text
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
 SAMPLES = sorted(p for kind in ("trawl", "plankton", "transect", "opportunistic", "effort")
@@ -32,7 +32,7 @@ def _profile(tmp: Path) -> Profile:
 
 def _read(path: Path, profile: Profile) -> tuple[list[str], list[list[object]], list[tuple[int, str]]] | str:
     try:
-        table, malformed = reading.read_table(path, profile, "rows")
+        table, malformed = reading_text.read_table(path, profile, "rows")
     except InputFileError as exc:
         return f"refused: {exc.problem}"
     return list(table.frame.columns), table.frame.to_numpy().tolist(), list(malformed)
@@ -45,7 +45,7 @@ def test_arrow_and_line_readers_agree_on_broken_files(tmp_path: Path, sample: Pa
     path.write_bytes(mutate_all(sample.read_bytes(), ms))
     profile = _profile(tmp_path)
     either = _read(path, profile)
-    with mock.patch.object(reading, "_read_csv_arrow", lambda *_: None):
+    with mock.patch.object(reading_text, "_read_csv_arrow", lambda *_: None):
         line_by_line = _read(path, profile)
     assert either == line_by_line
 
@@ -60,7 +60,7 @@ def test_long_line_guard_matches_the_longest_line(tmp_path: Path, data: bytes, l
     path.write_bytes(text)
     longest = max(len(run) for run in text.replace(b"\r", b"\n").split(b"\n"))
     try:
-        reading.refuse_long_lines(path, limit=limit, block_size=block)
+        reading_text.refuse_long_lines(path, limit=limit, block_size=block)
         refused = False
     except InputFileError as exc:
         refused = True

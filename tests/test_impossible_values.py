@@ -122,7 +122,7 @@ def test_a_date_alone_is_local_whatever_its_separators(text: str) -> None:
 
     import pandas as pd
 
-    from harmonize.adapters.reading import parse_times
+    from harmonize.clock import parse_times
 
     profile = types.SimpleNamespace(time_format=None, dayfirst=True, timezone="Pacific/Auckland", ambiguous_times=None)
     out, bad, *_ = parse_times(pd.Series([text, "2021-01-01T08:00:00+02:00"], dtype="string"), profile)
@@ -130,3 +130,44 @@ def test_a_date_alone_is_local_whatever_its_separators(text: str) -> None:
     assert not bad.any()
     assert out.iloc[0] == pd.Timestamp(local_midnight)  # 2020-12-31 11:00 UTC (NZDT, UTC+13)
     assert out.iloc[1] == pd.Timestamp("2021-01-01 06:00")  # an offset after a time still counts
+
+
+@pytest.mark.parametrize(("text", "utc"), [
+    ("2022-11-06 08:20:25-06", "2022-11-06 14:20:25"),
+    ("2022-11-06T08:20-06", "2022-11-06 14:20:00"),
+    ("2022-11-06T08:20:25.5+05", "2022-11-06 03:20:25.5"),
+])
+def test_an_offset_of_whole_hours_after_a_time_is_honoured(text: str, utc: str) -> None:
+    # ISO 8601 lets an offset be written as hours alone (+hh), from memory. Such a text among
+    # texts without an offset crashed the retry parse ("Mixed timezones detected"), found by
+    # tests/test_fuzz_adapters.py; the offset now counts, as +hh:mm does.
+    import types
+
+    import pandas as pd
+
+    from harmonize.clock import parse_times
+
+    profile = types.SimpleNamespace(time_format=None, dayfirst=False, timezone="America/Chicago", ambiguous_times=None)
+    out, bad, *_ = parse_times(pd.Series([text, "2022-11-06 08:00"], dtype="string"), profile)
+    assert not bad.any()
+    assert out.iloc[0] == pd.Timestamp(utc)
+    assert out.iloc[1] == pd.Timestamp("2022-11-06 14:00")  # CST (UTC-6) after the clocks went back
+
+
+@pytest.mark.parametrize("odd", ["20221106 082025-06", "2022-11-06 08:20:25 UTC-6"])
+def test_an_offset_in_an_unknown_form_is_a_bad_time_not_a_crash(odd: str, study_dir: Path) -> None:
+    # an offset the reader does not know as one must not be read in the profile's zone
+    # (a silent shift), nor crash the reader: the row is quarantined bad_time
+    hauls = (study_dir / "hauls_messy.csv").read_text(encoding="utf-8").splitlines()
+    header = hauls[0].split(",")
+    col = header.index("START")
+    cells = hauls[1].split(",")
+    cells[col] = odd
+    bad = study_dir / "hauls_odd_offset.csv"
+    bad.write_text("\n".join([hauls[0], ",".join(cells), *hauls[2:]]) + "\n", encoding="utf-8")
+    result = run(load_study(study_dir), "trawl_agency", {"events": bad, "records": study_dir / "catch_messy.csv"},
+                 write=False)
+    q = result.quarantine
+    row = q[(q["source_file"] == "hauls_odd_offset.csv") & (q["source_row"] == 1)]
+    assert row["reason_code"].tolist() == ["bad_time"]
+    assert f"holds '{odd}', which is not a date-time" in row["message"].iloc[0]

@@ -51,8 +51,9 @@ import numpy as np
 import pandas as pd
 
 from harmonize.adapters.base import Adapter, AdapterOutput, finish
-from harmonize.adapters.common import reject_outside_domain, resolve_taxa
-from harmonize.adapters.reading import Rejections
+from harmonize.adapters.domain import reject_outside_domain
+from harmonize.reading.taxa import resolve_taxa
+from harmonize.reading.quarantine import Rejections
 from harmonize.errors import ReasonCode
 
 

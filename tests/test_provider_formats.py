@@ -12,10 +12,10 @@ from cli_runner import run_cli
 from hypothesis import given
 from hypothesis import strategies as st
 
-from harmonize.adapters.provider_formats import parse_angles, parse_fractions
-from harmonize.adapters.reading import to_float
 from harmonize.errors import ConfigError
 from harmonize.ingest import run
+from harmonize.reading.fields import to_float
+from harmonize.reading.formats import parse_angles, parse_fractions
 from harmonize.store import Store
 from harmonize.study import load_study
 

@@ -15,8 +15,9 @@ from hypothesis import given
 from hypothesis import strategies as st
 
 from harmonize import Store, load_study, run
-from harmonize.adapters.transect import DEFAULT_STRIP_WIDTH_M, segment_geometry, strip_area_km2
+from harmonize.adapters.transect import DEFAULT_STRIP_WIDTH_M, strip_area_km2
 from harmonize.errors import ConfigError
+from harmonize.geodesy import track_geometry
 from harmonize.privacy import pseudonymise, study_salt
 
 FIXTURES = Path(__file__).resolve().parent.parent / "fixtures" / "transect"
@@ -58,7 +59,7 @@ def test_geodesic_lengths_match_geographiclib_check_values() -> None:
     # GeographicLib documentation check values (Karney 2013, Algorithms for geodesics,
     # J. Geodesy 87:43-55): one degree of longitude on the equator 111,319.491 m; the
     # inverse problem (-41.32, 174.81) -> (40.96, -5.50) s12 = 19,959,679.267 m.
-    km, _, _ = segment_geometry(np.array([0.0, 174.81]), np.array([0.0, -41.32]),
+    km, _, _ = track_geometry(np.array([0.0, 174.81]), np.array([0.0, -41.32]),
                                 np.array([1.0, -5.50]), np.array([0.0, 40.96]))
     assert km[0] * 1000 == pytest.approx(111_319.491, abs=1e-3)
     assert km[1] * 1000 == pytest.approx(19_959_679.267, abs=1e-3)
@@ -71,7 +72,7 @@ def test_geodesic_lengths_match_geographiclib_check_values() -> None:
 def test_segment_length_and_midpoint_agree_with_geographiclib(lat1: float, lon1: float, azimuth: float, dist_m: float) -> None:
     # Reference: geographiclib (Karney 2013) solves the same WGS84 geodesic problems.
     end = WGS84.Direct(lat1, lon1, azimuth, dist_m)
-    km, mid_lon, mid_lat = segment_geometry(np.array([lon1]), np.array([lat1]), np.array([end["lon2"]]), np.array([end["lat2"]]))
+    km, mid_lon, mid_lat = track_geometry(np.array([lon1]), np.array([lat1]), np.array([end["lon2"]]), np.array([end["lat2"]]))
     inv = WGS84.Inverse(lat1, lon1, end["lat2"], end["lon2"])
     assert km[0] * 1000 == pytest.approx(inv["s12"], abs=1e-6)
     mid = WGS84.Direct(lat1, lon1, inv["azi1"], inv["s12"] / 2)

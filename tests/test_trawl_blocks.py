@@ -20,7 +20,7 @@ from hypothesis import strategies as st
 import harmonize.ingest as ingest
 from harmonize import Store, load_study
 from harmonize.adapters.base import AdapterOutput
-from harmonize.adapters.common import zero_fill
+from harmonize.adapters.zero_filling import zero_fill
 from harmonize.ingest import assemble, prepare, store_output
 
 #: Content digest of the messy trawl fixture's store (observation rows without ingest ids),
@@ -251,7 +251,7 @@ def test_zero_fill_by_codes_equals_merges(data: st.DataObject) -> None:
 
 
 def test_keep_only_keeps_rejected_rows_raw_text(tmp_path: Path) -> None:
-    from harmonize.adapters.reading import read_table
+    from harmonize.reading.text import read_table
 
     path = tmp_path / "c.csv"
     path.write_text("haul,taxon\nH1,a\nH2,b\nH3,\"c, d\"\nH4,e\n", encoding="utf-8")
@@ -270,7 +270,7 @@ def test_keep_only_keeps_rejected_rows_raw_text(tmp_path: Path) -> None:
 def test_distinct_present_equals_the_set_of_values(events: list[str], values: list[str | None]) -> None:
     # The distinct-id lookup behind events_without_values and the trawl adapter gives what a
     # row-by-row isin gives, for plain text ids and for categorical ones (coded catch keys).
-    from harmonize.adapters.common import distinct_present
+    from harmonize.membership import distinct_present
 
     ev = pd.Series(events, dtype="str")
     va = pd.Series(values, dtype="str")
@@ -287,7 +287,7 @@ _TEXT = st.one_of(st.none(), st.sampled_from(["H1", "H2", "h1", "H10", "", " H1"
 def test_is_in_answers_as_pandas_isin(values: list, lookup: list, dtype: str) -> None:
     """is_in (Arrow or category codes) gives what pandas' isin on plain Python objects gives
     (other dtypes go to pandas' isin itself)."""
-    from harmonize.adapters.common import is_in
+    from harmonize.membership import is_in
 
     if dtype == "large_string":
         import pyarrow as pa

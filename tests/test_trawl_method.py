@@ -8,7 +8,8 @@ import pytest
 from geographiclib.geodesic import Geodesic
 
 from harmonize import units
-from harmonize.adapters.trawl import KM_PER_NMI, area_swept_km2, tow_geometry
+from harmonize.adapters.trawl import area_swept_km2
+from harmonize.geodesy import track_geometry
 
 UREG = pint.UnitRegistry()
 
@@ -17,7 +18,7 @@ def test_tow_distance_matches_geographiclib_test_value() -> None:
     # GeographicLib documentation example (Karney 2013, "Algorithms for geodesics",
     # J. Geodesy 87:43-55): inverse problem (-41.32, 174.81) -> (40.96, -5.50),
     # s12 = 19,959,679.267 m on WGS84.
-    km, _, _ = tow_geometry(np.array([174.81]), np.array([-41.32]), np.array([-5.50]), np.array([40.96]))
+    km, _, _ = track_geometry(np.array([174.81]), np.array([-41.32]), np.array([-5.50]), np.array([40.96]))
     assert km[0] * 1000 == pytest.approx(19_959_679.267, abs=1e-3)
 
 
@@ -26,7 +27,7 @@ def test_tow_distances_match_geographiclib_to_1_mm() -> None:
     rng = np.random.default_rng(42)
     lon1, lat1 = rng.uniform(-180, 180, 200), rng.uniform(-80, 80, 200)
     lon2, lat2 = lon1 + rng.normal(0, 0.05, 200), np.clip(lat1 + rng.normal(0, 0.05, 200), -89, 89)
-    km, mid_lon, mid_lat = tow_geometry(lon1, lat1, lon2, lat2)
+    km, mid_lon, mid_lat = track_geometry(lon1, lat1, lon2, lat2)
     ref = np.array([Geodesic.WGS84.Inverse(a, b, c, d)["s12"] for a, b, c, d in zip(lat1, lon1, lat2, lon2, strict=True)])
     assert np.abs(km * 1000 - ref).max() < 1e-3
     # the midpoint lies half way along the geodesic
@@ -36,7 +37,7 @@ def test_tow_distances_match_geographiclib_to_1_mm() -> None:
 
 def test_one_degree_of_longitude_on_the_equator() -> None:
     # GeographicLib: 1 degree of longitude along the equator = 111,319.491 m on WGS84.
-    km, _, _ = tow_geometry(np.array([0.0]), np.array([0.0]), np.array([1.0]), np.array([0.0]))
+    km, _, _ = track_geometry(np.array([0.0]), np.array([0.0]), np.array([1.0]), np.array([0.0]))
     assert km[0] * 1000 == pytest.approx(111_319.491, abs=1e-3)
 
 
@@ -44,7 +45,7 @@ def test_area_swept_worked_example() -> None:
     # Swept-area method a = D x hr x X2 (Sparre and Venema 1998, FAO Fisheries Technical Paper
     # 306/1 Rev. 2, section 13.5). Worked example: 3 knots for 0.5 h gives D = 2,778 m;
     # headrope 20 m with X2 = 0.5 gives an effective width of 10 m; a = 27,780 m2.
-    distance_km = 3.0 * KM_PER_NMI * 0.5
+    distance_km = 3.0 * 1.852 * 0.5  # 1 nmi = 1.852 km exactly (BIPM SI Brochure 2019, Table 8)
     assert distance_km * 1000 == pytest.approx(2778.0)
     assert area_swept_km2(distance_km, 20.0 * 0.5) * 1e6 == pytest.approx(27_780.0)
 

@@ -1,6 +1,6 @@
 """A catch file read in blocks of rows gives what the whole file read at once gives.
 
-The trawl adapter reads its catch file block by block (harmonize.adapters.record_blocks)
+The trawl adapter reads its catch file block by block (harmonize.reading.blocks)
 and makes its values a run of hauls at a time (TrawlValues); the store must not depend on
 where blocks and runs begin and end. Tiny blocks (a few rows, a few bytes of text) force
 many of them, rows that span blocks, and the fall-back to the line-by-line reader after
@@ -19,12 +19,14 @@ from examples import scaled
 from hypothesis import given, settings
 from hypothesis import strategies as st
 
-import harmonize.adapters.record_blocks as record_blocks
 import harmonize.ingest as ingest
+import harmonize.reading.blocks as record_blocks
 from harmonize import Store, load_study
-from harmonize.adapters.reading import Rejections, coerce_fields, read_table
 from harmonize.contract import fields
 from harmonize.ingest import prepare
+from harmonize.reading.fields import coerce_fields
+from harmonize.reading.quarantine import Rejections
+from harmonize.reading.text import read_table
 
 FIXTURE = Path(__file__).resolve().parent.parent / "fixtures" / "keldmar"
 

@@ -23,7 +23,7 @@ from hypothesis import given, settings
 from hypothesis import strategies as st
 
 from harmonize import load_study, run
-from harmonize.adapters.common import stage_unresolved_events, zero_fill
+from harmonize.adapters.zero_filling import stage_unresolved_events, zero_fill
 from harmonize.store import Store
 
 TAXA = ["A a", "B b", "C c"]

@@ -11,11 +11,13 @@ from typing import ClassVar
 import numpy as np
 import pandas as pd
 
-from harmonize.adapters.reading import RawTable, Rejections, coerce_fields, read_table
 from harmonize.adapters.value_source import ValueSource
 from harmonize.config_spec import Map, Table
 from harmonize.contract import fields
 from harmonize.profile import Profile
+from harmonize.reading.fields import coerce_fields
+from harmonize.reading.quarantine import Rejections
+from harmonize.reading.text import RawTable, read_table
 from harmonize.study import Study
 
 #: progress(stage, done, total) — the CLI turns it into a progress bar.
@@ -164,12 +166,12 @@ class Adapter(ABC):
     profile_example: ClassVar[str] = ""
     #: A worked example profile written by ``harmonize init`` instead of the generated template.
     profile_starter: ClassVar[str | None] = None
-    #: Fields are typed by reading.coerce_fields, which applies [formats] (degrees and
+    #: Fields are typed by reading.fields.coerce_fields, which applies [formats] (degrees and
     #: minutes, percent); False for kinds that read their files otherwise.
     reads_formats: ClassVar[bool] = True
     #: A date-time field may be mapped onto two provider columns ([date, time]).
     joins_date_time: ClassVar[bool] = False
-    #: Table roles read and typed in blocks of rows (:mod:`harmonize.adapters.record_blocks`):
+    #: Table roles read and typed in blocks of rows (:mod:`harmonize.reading.blocks`):
     #: text fields come back as categoricals and the raw table reads rejected rows' text again.
     reads_in_blocks: ClassVar[tuple[str, ...]] = ()
 
@@ -189,7 +191,7 @@ class Adapter(ABC):
         typed: dict[str, pd.DataFrame] = {}
         for role, schema in self.tables.items():
             if role in self.reads_in_blocks and Path(inputs[role]).suffix.lower() != ".parquet":
-                from harmonize.adapters.record_blocks import read_typed_blocks
+                from harmonize.reading.blocks import read_typed_blocks
 
                 raw[role], typed[role] = read_typed_blocks(inputs[role], profile, role, fields(schema), rejections, schema)
                 continue

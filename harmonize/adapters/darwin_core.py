@@ -30,8 +30,9 @@ import numpy as np
 import pandas as pd
 from defusedxml import DefusedXmlException
 
-from harmonize.adapters.reading import MAX_FIELD_CHARS, RawTable, csv_field_limit, file_sha256
 from harmonize.errors import InputFileError
+from harmonize.files import file_sha256
+from harmonize.reading.text import MAX_FIELD_CHARS, RawTable, csv_field_limit
 
 DWC = "http://rs.tdwg.org/dwc/terms/"
 ROW_OCCURRENCE = DWC + "Occurrence"

@@ -44,27 +44,20 @@ import pyarrow.parquet as pq
 
 from harmonize import units
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback, finish
-from harmonize.adapters.common import reject_outside_domain, swapped_position_notes
-from harmonize.adapters.reading import (
-    LineReader,
-    RawTable,
-    Rejections,
-    coerce_fields,
-    file_sha256,
-    one_line,
-    read_header,
-    read_table,
-    resolve_columns,
-)
+from harmonize.adapters.domain import reject_outside_domain, swapped_position_notes
 from harmonize.adapters.registry import register
 from harmonize.clock import sql_local_problem, sql_offset_text, sql_resolved
 from harmonize.config_spec import Map, Table, Value, number, text
 from harmonize.contract import FieldSpec, fields
 from harmonize.engines import current_engine
-from harmonize.errors import ConfigError, InputFileError, ReasonCode
+from harmonize.errors import ConfigError, InputFileError, ReasonCode, one_line
+from harmonize.files import file_sha256
 from harmonize.geodesy import M_PER_NMI, distance_sql
 from harmonize.privacy import pseudonymise, study_salt
 from harmonize.profile import Profile
+from harmonize.reading.fields import coerce_fields, resolve_columns
+from harmonize.reading.quarantine import Rejections
+from harmonize.reading.text import LineReader, RawTable, read_header, read_table
 from harmonize.study import Study
 from harmonize.tagging import (
     NEAR_BOTTOM,

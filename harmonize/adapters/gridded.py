@@ -33,10 +33,11 @@ import xarray as xr
 
 from harmonize import units
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
-from harmonize.adapters.reading import EARLIEST_TIME, file_sha256
 from harmonize.adapters.registry import register
+from harmonize.clock import EARLIEST_TIME
 from harmonize.config_spec import Map, Table, Value, number, text
 from harmonize.errors import ConfigError, InputFileError, ReasonCode
+from harmonize.files import file_sha256
 from harmonize.gridded.aggregate import PERIODS, CellPeriodSums, Periods, assign_periods
 from harmonize.gridded.area import (
     axis_bounds,

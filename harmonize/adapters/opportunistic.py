@@ -24,32 +24,25 @@ import pandas as pd
 
 from harmonize.adapters import darwin_core
 from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
-from harmonize.adapters.common import (
+from harmonize.adapters.domain import reject_outside_domain
+from harmonize.adapters.life_stages import normalise_life_stage
+from harmonize.adapters.registry import register
+from harmonize.adapters.zero_filling import (
     STAGE_UNRESOLVED,
-    normalise_life_stage,
-    reject_outside_domain,
-    resolve_taxa,
     stage_unresolved_events,
     target_years,
     zero_fill,
 )
-from harmonize.adapters.reading import (
-    NA_TOKENS,
-    RawTable,
-    Rejections,
-    _short,
-    coerce_fields,
-    parse_times,
-    read_table,
-    resolve_columns,
-)
-from harmonize.adapters.registry import register
-from harmonize.clock import add_hours
+from harmonize.clock import add_hours, parse_times
 from harmonize.config_spec import Table, Value, number, text
 from harmonize.contract import fields
-from harmonize.errors import ConfigError, ReasonCode
+from harmonize.errors import ConfigError, ReasonCode, short_text
 from harmonize.privacy import pseudonymise, study_salt
 from harmonize.profile import Profile
+from harmonize.reading.fields import NA_TOKENS, coerce_fields, resolve_columns
+from harmonize.reading.quarantine import Rejections, reject_repeated_ids
+from harmonize.reading.taxa import resolve_taxa
+from harmonize.reading.text import RawTable, read_table
 from harmonize.study import Study
 from harmonize.tagging import normalise_lon
 from harmonize.twin_windows import twin_settings
@@ -189,15 +182,13 @@ class OpportunisticAdapter(Adapter):
             duration_h = np.where(np.isnan(duration_h), parse_effort_text(work.frame["samplingEffort"]), duration_h)
         date_only = ~rows["time"].isna().to_numpy() & ~_has_clock(work, prof)
 
-        dup = rows["record_id"].duplicated(keep="first").to_numpy() & rows["record_id"].notna().to_numpy()
-        rej.add("rows", pos[dup], ReasonCode.DUPLICATE_RECORD,
-                [f"record '{r}' appears earlier in the file; only its first row counts (when that row is quarantined too, correct it and drop this one)" for r in rows["record_id"][dup]])
+        reject_repeated_ids(rej, "rows", rows["record_id"], "record")
 
         count, not_count, fractional = parse_counts(rows["count"], presence_tokens)
         label = _label(prof, "count")
         marker = " or ".join(f"'{tok}'" for tok in presence_tokens)
         rej.add("rows", pos[not_count], ReasonCode.BAD_TYPE,
-                [f"{label} holds '{_short(v)}'; expected a whole number, or empty or {marker} for present but "
+                [f"{label} holds '{short_text(v)}'; expected a whole number, or empty or {marker} for present but "
                  "not counted (map your provider's marker with [presence] tokens in the profile)"
                  for v in rows["count"][not_count]])
         rej.add("rows", pos[fractional], ReasonCode.BAD_TYPE,
@@ -210,7 +201,7 @@ class OpportunisticAdapter(Adapter):
         present = status.map(_STATUS).astype("boolean").to_numpy(dtype=object, na_value=None)
         bad_status = status.notna().to_numpy() & pd.isna(present)
         rej.add("rows", pos[bad_status], ReasonCode.BAD_TYPE,
-                [f"{_label(prof, 'occurrence_status')} holds '{_short(v)}'; expected present or absent "
+                [f"{_label(prof, 'occurrence_status')} holds '{short_text(v)}'; expected present or absent "
                  "(or detected / notDetected)" for v in rows["occurrence_status"][bad_status]])
         absent = np.array([p is False for p in present]) | (count == 0)
         contradiction = absent & (count > 0)

@@ -16,34 +16,34 @@ down, a distance through the water that no net covers in the tow's duration
 
 from __future__ import annotations
 
-from collections.abc import Mapping
 from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
-from harmonize.adapters.common import (
+from harmonize.adapters.domain import reject_live_outside
+from harmonize.adapters.event_record import (
+    EventRecordAdapter,
+    Opening,
+    RecordCheck,
+    event_times,
+    flag_tuples,
+)
+from harmonize.adapters.life_stages import normalise_life_stage
+from harmonize.adapters.registry import register
+from harmonize.adapters.zero_filling import (
     STAGE_UNRESOLVED,
     catch_unknown,
-    normalise_life_stage,
-    reject_outside_domain,
-    reject_records_of_events,
-    resolve_taxa,
     stage_unresolved_events,
     target_years,
-    unattributed_note,
-    unattributed_records,
     zero_fill,
 )
-from harmonize.adapters.reading import Rejections
-from harmonize.adapters.registry import register
 from harmonize.clock import add_hours
 from harmonize.config_spec import Table, Value, number
 from harmonize.errors import ConfigError, ReasonCode
 from harmonize.profile import Profile
+from harmonize.reading.quarantine import Rejections
 from harmonize.study import Study
 from harmonize.tagging import normalise_lon
 
@@ -104,7 +104,7 @@ class TowRules:
 
 
 @register
-class PlanktonAdapter(Adapter):
+class PlanktonAdapter(EventRecordAdapter):
     kind = "plankton"
     description = "Plankton net tows and their counts by taxon and life stage; effort = volume filtered (m3)."
     tables = {"events": "plankton_events", "records": "plankton_records"}
@@ -113,6 +113,7 @@ class PlanktonAdapter(Adapter):
     default_protocol = "standard_plankton_net"
     display_order = 20
     joins_date_time = True
+    event_word, record_word = "tow", "count"
     profile_sections = {
         "tow": Table({"max_speed_m_s": number("Faster distance through the water -> implausible_speed.",
                                               exclusive_minimum=0, default=3.0)}, "Tow plausibility."),
@@ -130,45 +131,21 @@ class PlanktonAdapter(Adapter):
 # min_efficiency = 0.7        # net flowmeter distance / reference flowmeter distance
 """
 
-    def read(
-        self,
-        inputs: Mapping[str, Path],
-        profile: Profile,
-        study: Study,
-        progress: ProgressCallback | None = None,
-    ) -> AdapterOutput:
-        rules = TowRules.from_profile(profile)
-        rej = Rejections()
-        raw, typed = self.read_fields(inputs, profile, rej)
-        ev_raw, rc_raw = raw["events"], raw["records"]
-        ev, rc = typed["events"], typed["records"]
-        if progress:
-            progress("read", 1, 3)
-        if progress:
-            progress("validate", 2, 3)
+    def profile_rules(self, profile: Profile) -> TowRules:
+        return TowRules.from_profile(profile)
 
-        tows, flags = _tows(ev, study, rej, rules)
-        ev_alive = ~rej.mask("events", len(ev))
-        rc_alive = ~rej.mask("records", len(rc))
-        rc_alive = reject_records_of_events(
-            rc, rc_alive, ev["event_id"], ev_alive, rej.first_reasons("events"), rej, "tow"
-        )
-        taxon, unknown, messages, guess = resolve_taxa(rc["taxon"], study)
-        unknown = unknown & rc_alive
-        rej.add("records", np.flatnonzero(unknown), ReasonCode.UNKNOWN_TAXON, messages[unknown])
-        rc_ok = ~rej.mask("records", len(rc))
+    def validate_events(self, opening: Opening, study: Study) -> tuple[pd.DataFrame, dict[str, np.ndarray]]:
+        return _tows(opening.ev, study, opening.rejections, opening.rules)
 
+    def convert(self, opening: Opening, records: RecordCheck, tows: pd.DataFrame, flags: dict[str, np.ndarray],
+                study: Study) -> tuple[pd.DataFrame, pd.DataFrame, list[str]]:
+        profile = opening.profile
+        rc = opening.rc
+        taxon, rc_ok, incomplete, unattributed = records.taxon, records.kept, records.incomplete, records.unattributed
         stage = normalise_life_stage(rc["life_stage"])
-        # A quarantined count row of a live tow makes that tow's counts incomplete; its taxon
-        # (when known) is never zero-filled for that tow.
-        lost = ~rc_ok & rc["event_id"].isin(ev["event_id"][ev_alive]).to_numpy()
-        incomplete = rc["event_id"][lost].dropna().unique()
-        blocked = pd.DataFrame({"event_id": rc["event_id"][lost], "variable": taxon.fillna(guess)[lost]})
         # A quarantined count row with no readable tow id (a malformed line, an empty id) may
         # belong to any tow: no tow's counts are known complete, so no absence is inferred.
-        unattributed = unattributed_records(rc_ok, rc["event_id"])
-        notes = [unattributed_note(rc_raw.path.name, unattributed, "count", "tow")] if unattributed else []
-        blocked = blocked.dropna()
+        notes = [self.unattributed_note(opening.rc_raw.path.name, unattributed)] if unattributed else []
 
         counts = pd.DataFrame({
             "event_id": rc["event_id"][rc_ok],
@@ -183,7 +160,7 @@ class PlanktonAdapter(Adapter):
         zeros = zero_fill(
             target_years(tows[~catch_unknown(tows, incomplete, counts["event_id"])], study)
             .iloc[:0 if unattributed else None],
-            counts[["event_id", "variable", "life_stage"]], blocked, study, profile.protocol, [("count", "1")],
+            counts[["event_id", "variable", "life_stage"]], records.blocked, study, profile.protocol, [("count", "1")],
         )
         zeros = zeros.assign(variable_kind="taxon", zero_filled=True, flags=[()] * len(zeros),
                              source_record_rows=[()] * len(zeros), n_values=0)
@@ -193,27 +170,16 @@ class PlanktonAdapter(Adapter):
             stage_unresolved_events(counts, study, profile.protocol)).to_numpy()
         flags["counts_incomplete"] = tows["event_id"].isin(incomplete).to_numpy() | (unattributed > 0)
         tows["flags"] = flag_tuples(flags)
-        if progress:
-            progress("convert", 3, 3)
-        return finish([ev_raw, rc_raw], rej, tows, values, notes)
+        return tows, values, notes
 
 
 def _tows(ev: pd.DataFrame, study: Study, rej: Rejections, rules: TowRules) -> tuple[pd.DataFrame, dict[str, np.ndarray]]:
     """Validate tows and compute mouth area, volume filtered and the tow's depth range."""
     n = len(ev)
     pos = np.arange(n)
-    dup = ev["event_id"].duplicated(keep="first").to_numpy() & ev["event_id"].notna().to_numpy()
-    rej.add("events", pos[dup], ReasonCode.DUPLICATE_RECORD,
-            [f"tow '{e}' appears earlier in the file; only its first row counts (when that row is quarantined too, correct it and drop this one)" for e in ev["event_id"][dup]])
     alive = ~rej.mask("events", n)
 
-    start, end = ev["time"], ev["end_time"]
-    backwards = alive & (end < start).fillna(False).to_numpy()
-    rej.add("events", pos[backwards], ReasonCode.END_BEFORE_START,
-            [f"end_time {e} is before the tow's start time {s}" for s, e in zip(start[backwards], end[backwards], strict=True)])
-    alive &= ~backwards
-    duration_h = ((end - start).dt.total_seconds() / 3600.0).to_numpy(dtype=float, na_value=np.nan)
-    duration_h = np.where(np.isnan(duration_h), ev["duration"].to_numpy(float), duration_h)
+    start, end, duration_h, alive = event_times(ev, rej, alive, "time", "the tow's start time")
 
     dmin, dmax = ev["depth_min_m"].to_numpy(float), ev["depth_max_m"].to_numpy(float)
     upside = alive & (dmin > dmax)
@@ -274,9 +240,7 @@ def _tows(ev: pd.DataFrame, study: Study, rej: Rejections, rules: TowRules) -> t
         alive &= ~low
 
     lon, lat = normalise_lon(ev["lon"].to_numpy(float)), ev["lat"].to_numpy(float)
-    checkable = alive & np.isfinite(lon) & np.isfinite(lat)
-    reject_outside_domain(study, lon[checkable], lat[checkable], pos[checkable], "events", rej, "station")
-    alive = ~rej.mask("events", n)
+    alive = reject_live_outside(study, lon, lat, alive, rej, "station")
 
     event_end = end.where(end.notna(), add_hours(start, duration_h))
     tows = pd.DataFrame({
@@ -318,15 +282,3 @@ def _count_values(counts: pd.DataFrame) -> pd.DataFrame:
         "source_record_rows": agg["row_list"], "n_values": n,
         "count_observed": observed, "subsample_fraction": np.where(np.isfinite(fraction), fraction, np.nan),
     })
-
-
-def flag_tuples(bits: Mapping[str, np.ndarray]) -> list[tuple[str, ...]]:
-    """Per row, the names of the flags whose mask is true (vectorised: one lookup per distinct combination)."""
-    names = list(bits)
-    if not names:
-        return []
-    code = np.zeros(len(next(iter(bits.values()))), dtype=np.int64)
-    for i, name in enumerate(names):
-        code |= np.asarray(bits[name], dtype=bool).astype(np.int64) << i
-    table = {c: tuple(n for i, n in enumerate(names) if c >> i & 1) for c in np.unique(code).tolist()}
-    return pd.Series(code).map(table).tolist()

@@ -21,62 +21,49 @@ pseudonym (harmonize.privacy) reaches the store, also in the raw rows kept in qu
 
 from __future__ import annotations
 
-from collections.abc import Mapping
 from dataclasses import dataclass
-from pathlib import Path
 
 import numpy as np
 import pandas as pd
 import pyarrow as pa
-import pyproj
 
-from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
-from harmonize.adapters.common import (
-    STAGE_UNRESOLVED,
-    catch_unknown,
-    reject_outside_domain,
-    reject_records_of_events,
-    resolve_taxa,
-    stage_unresolved_events,
-    target_years,
-    unattributed_note,
-    unattributed_records,
-    zero_fill,
-)
-from harmonize.adapters.plankton import flag_tuples
-from harmonize.adapters.reading import (
-    RawTable,
-    Rejections,
-    resolve_columns,
+from harmonize.adapters.domain import reject_live_outside
+from harmonize.adapters.event_record import (
+    EventRecordAdapter,
+    Opening,
+    RecordCheck,
+    Track,
+    event_times,
+    flag_tuples,
 )
 from harmonize.adapters.registry import register
+from harmonize.adapters.zero_filling import (
+    STAGE_UNRESOLVED,
+    catch_unknown,
+    stage_unresolved_events,
+    target_years,
+    zero_fill,
+)
 from harmonize.clock import add_hours
 from harmonize.config_spec import Table, number, text
 from harmonize.contract import fields
 from harmonize.errors import ConfigError, ReasonCode
+from harmonize.geodesy import KM_PER_NMI
 from harmonize.privacy import pseudonymise, study_salt
 from harmonize.profile import Profile
+from harmonize.reading.fields import resolve_columns
+from harmonize.reading.quarantine import Rejections
+from harmonize.reading.text import RawTable
 from harmonize.study import Study
-from harmonize.tagging import normalise_lon, tag_season
+from harmonize.tagging import tag_season
 
 #: The standard strip width for ship-based seabird counts (Tasker et al. 1984, The Auk 101:567-577).
 DEFAULT_STRIP_WIDTH_M = 300.0
 #: Survey ships count seabirds while steaming at about 5-15 knots (common practice); a
 #: segment implying more than this is a wrong position, length or time.
 MAX_SHIP_SPEED_KN = 30.0
-KM_PER_NMI = 1.852  # exact, by definition of the international nautical mile
 ON_WATER, IN_FLIGHT = "on_water", "in_flight"
 FLYING_MODES = ("snapshot", "continuous")
-_GEOD = pyproj.Geod(ellps="WGS84")
-
-
-def segment_geometry(
-    start_lon: np.ndarray, start_lat: np.ndarray, end_lon: np.ndarray, end_lat: np.ndarray
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Geodesic segment length (km) on WGS84 and the geodesic midpoint (lon, lat) of each segment."""
-    az, _, dist_m = _GEOD.inv(start_lon, start_lat, end_lon, end_lat)
-    mid_lon, mid_lat, _ = _GEOD.fwd(start_lon, start_lat, az, np.asarray(dist_m) / 2.0)
-    return np.asarray(dist_m) / 1000.0, normalise_lon(mid_lon), np.asarray(mid_lat)
 
 
 def strip_area_km2(length_km: np.ndarray, strip_width_m: np.ndarray) -> np.ndarray:
@@ -106,7 +93,7 @@ class StripRules:
 
 
 @register
-class TransectAdapter(Adapter):
+class TransectAdapter(EventRecordAdapter):
     kind = "transect"
     description = "Ship-based seabird strip-transect segments and their birds by taxon; effort = strip area (km2)."
     tables = {"events": "transect_events", "records": "transect_records"}
@@ -115,6 +102,7 @@ class TransectAdapter(Adapter):
     default_protocol = "standard_seabird_strip"
     display_order = 30
     joins_date_time = True
+    event_word, record_word = "segment", "bird"
     profile_sections = {
         "strip": Table({
             "flying": text("How flying birds were counted.", enum=("snapshot", "continuous"), default="snapshot"),
@@ -127,43 +115,22 @@ class TransectAdapter(Adapter):
 # max_speed_kn = 30           # faster segments -> implausible_speed
 """
 
-    def read(
-        self,
-        inputs: Mapping[str, Path],
-        profile: Profile,
-        study: Study,
-        progress: ProgressCallback | None = None,
-    ) -> AdapterOutput:
-        rules = StripRules.from_profile(profile)
-        rej = Rejections()
-        raw, typed = self.read_fields(inputs, profile, rej)
-        ev_raw, rc_raw = raw["events"], raw["records"]
-        ev, rc = typed["events"], typed["records"]
-        if progress:
-            progress("read", 1, 3)
-        observer_id = pseudonymise(ev["observer"], study_salt(study.root))
-        _hide_observers(ev_raw, rc_raw, profile, study)
-        if progress:
-            progress("validate", 2, 3)
+    def profile_rules(self, profile: Profile) -> StripRules:
+        return StripRules.from_profile(profile)
 
-        segments, flags = _segments(ev, observer_id, study, rej, rules)
-        ev_alive = ~rej.mask("events", len(ev))
-        rc_alive = ~rej.mask("records", len(rc))
-        rc_alive = reject_records_of_events(
-            rc, rc_alive, ev["event_id"], ev_alive, rej.first_reasons("events"), rej, "segment"
-        )
-        taxon, unknown, messages, guess = resolve_taxa(rc["taxon"], study)
-        unknown = unknown & rc_alive
-        rej.add("records", np.flatnonzero(unknown), ReasonCode.UNKNOWN_TAXON, messages[unknown])
-        rc_ok = ~rej.mask("records", len(rc))
+    def validate_events(self, opening: Opening, study: Study) -> tuple[pd.DataFrame, dict[str, np.ndarray]]:
+        observer_id = pseudonymise(opening.ev["observer"], study_salt(study.root))
+        _hide_observers(opening.ev_raw, opening.rc_raw, opening.profile, study)
+        return _segments(opening.ev, observer_id, study, opening.rejections, opening.rules)
 
-        lost = ~rc_ok & rc["event_id"].isin(ev["event_id"][ev_alive]).to_numpy()
-        incomplete = rc["event_id"][lost].dropna().unique()
-        blocked = pd.DataFrame({"event_id": rc["event_id"][lost], "variable": taxon.fillna(guess)[lost]}).dropna()
+    def convert(self, opening: Opening, records: RecordCheck, segments: pd.DataFrame, flags: dict[str, np.ndarray],
+                study: Study) -> tuple[pd.DataFrame, pd.DataFrame, list[str]]:
+        profile = opening.profile
+        rc, rc_raw = opening.rc, opening.rc_raw
+        taxon, rc_ok, incomplete, unattributed = records.taxon, records.kept, records.incomplete, records.unattributed
         # A quarantined bird row with no readable segment id (a malformed line, an empty id)
         # may belong to any segment: no segment's counts are known complete, no absence is inferred.
-        unattributed = unattributed_records(rc_ok, rc["event_id"])
-        notes = [unattributed_note(rc_raw.path.name, unattributed, "bird", "segment")] if unattributed else []
+        notes = [self.unattributed_note(rc_raw.path.name, unattributed)] if unattributed else []
 
         # Without an in_flight column the source does not tell flying birds apart: no behavior.
         split = "in_flight" in resolve_columns(rc_raw, fields("transect_records"), profile) or "in_flight" in profile.constants
@@ -185,7 +152,7 @@ class TransectAdapter(Adapter):
         for b in ((ON_WATER, IN_FLIGHT) if split else (None,)):
             seen = birds if b is None else birds[birds["behavior"] == b]
             z = zero_fill(events_year, seen[["event_id", "variable"]].assign(life_stage=pd.NA),
-                          blocked, study, profile.protocol, [("count", "1")])
+                          records.blocked, study, profile.protocol, [("count", "1")])
             parts.append(z.assign(behavior=b))
         zeros = pd.concat(parts, ignore_index=True)
         zeros = zeros.assign(variable_kind="taxon", zero_filled=True, flags=[()] * len(zeros),
@@ -193,7 +160,7 @@ class TransectAdapter(Adapter):
         values = pd.concat([values, zeros], ignore_index=True)
         values["behavior"] = values["behavior"].astype("string")
         values["n_vessels"] = pd.NA
-        continuous = (values["behavior"] == IN_FLIGHT).fillna(False).to_numpy() & (rules.flying == "continuous")
+        continuous = (values["behavior"] == IN_FLIGHT).fillna(False).to_numpy() & (opening.rules.flying == "continuous")
         values["no_effort"] = continuous
         if continuous.any():
             values.loc[continuous, "flags"] = pd.Series(
@@ -203,9 +170,7 @@ class TransectAdapter(Adapter):
             profile.protocol)).to_numpy()
         flags["counts_incomplete"] = segments["event_id"].isin(incomplete).to_numpy() | (unattributed > 0)
         segments["flags"] = flag_tuples(flags)
-        if progress:
-            progress("convert", 3, 3)
-        return finish([ev_raw, rc_raw], rej, segments, values, notes)
+        return segments, values, notes
 
 
 
@@ -233,32 +198,17 @@ def _segments(
     """Validate segments and compute length, strip area, midpoint and midpoint time."""
     n = len(ev)
     pos = np.arange(n)
-    dup = ev["event_id"].duplicated(keep="first").to_numpy() & ev["event_id"].notna().to_numpy()
-    rej.add("events", pos[dup], ReasonCode.DUPLICATE_RECORD,
-            [f"segment '{e}' appears earlier in the file; only its first row counts (when that row is quarantined too, correct it and drop this one)" for e in ev["event_id"][dup]])
     alive = ~rej.mask("events", n)
 
-    start, end = ev["start_time"], ev["end_time"]
-    backwards = alive & (end < start).fillna(False).to_numpy()
-    rej.add("events", pos[backwards], ReasonCode.END_BEFORE_START,
-            [f"end_time {e} is before start_time {s}" for s, e in zip(start[backwards], end[backwards], strict=True)])
-    alive &= ~backwards
-    duration_h = ((end - start).dt.total_seconds() / 3600.0).to_numpy(dtype=float, na_value=np.nan)
-    duration_h = np.where(np.isnan(duration_h), ev["duration"].to_numpy(float), duration_h)
+    start, end, duration_h, alive = event_times(ev, rej, alive)
     zero_time = alive & (duration_h <= 0)
     rej.add("events", pos[zero_time], ReasonCode.BAD_EFFORT,
             "segment duration is 0: start and end times are equal; check the end time")
     alive &= ~zero_time
 
-    slon, slat = ev["start_lon"].to_numpy(float), ev["start_lat"].to_numpy(float)
-    elon, elat = ev["end_lon"].to_numpy(float), ev["end_lat"].to_numpy(float)
-    have_end = np.isfinite(elon) & np.isfinite(elat) & np.isfinite(slon) & np.isfinite(slat)
-    geo_km, mid_lon, mid_lat = segment_geometry(
-        np.where(have_end, slon, 0), np.where(have_end, slat, 0),
-        np.where(have_end, elon, 0), np.where(have_end, elat, 0),
-    )
-    given_km = ev["length_km"].to_numpy(float)
-    length_km = np.where(have_end, geo_km, given_km)
+    track = Track.of(ev)
+    have_end = track.have_end
+    length_km = np.where(have_end, track.length_km, ev["length_km"].to_numpy(float))
     no_length = alive & ~np.isfinite(length_km)
     rej.add("events", pos[no_length], ReasonCode.MISSING_VALUE,
             "segment length cannot be computed: give end_lat and end_lon, or length_km")
@@ -282,11 +232,7 @@ def _segments(
              for v, d, h in zip(speed_kn[fast], length_km[fast], duration_h[fast], strict=True)])
     alive &= ~fast
 
-    lon = np.where(have_end, mid_lon, normalise_lon(slon))
-    lat = np.where(have_end, mid_lat, slat)
-    checkable = alive & np.isfinite(lon) & np.isfinite(lat)
-    reject_outside_domain(study, lon[checkable], lat[checkable], pos[checkable], "events", rej, "segment midpoint")
-    alive = ~rej.mask("events", n)
+    alive = reject_live_outside(study, track.lon, track.lat, alive, rej, "segment midpoint")
 
     event_end = end.where(end.notna(), add_hours(start, duration_h))
     midpoint_time = start + (event_end - start).fillna(pd.Timedelta(0)) / 2
@@ -297,8 +243,8 @@ def _segments(
         "event_end": event_end,
         "season": season,
         "season_year": season_year,
-        "lat": lat,
-        "lon": lon,
+        "lat": track.lat,
+        "lon": track.lon,
         # birds at the sea surface: a point depth of 0 falls in the study's top layer
         "depth_min_m": 0.0,
         "depth_max_m": 0.0,
@@ -308,10 +254,7 @@ def _segments(
         "effort_unit": "km2",
         "source_row": pos + 1,
         "observer_id": observer_id,
-        "track_start_lat": np.where(have_end, slat, np.nan),
-        "track_start_lon": np.where(have_end, normalise_lon(slon), np.nan),
-        "track_end_lat": np.where(have_end, elat, np.nan),
-        "track_end_lon": np.where(have_end, normalise_lon(elon), np.nan),
+        **track.columns(),
     })[alive].reset_index(drop=True)
     return segments, {"length_given": (~have_end)[alive], "strip_width_default": width_default[alive],
                       "speed_unchecked": ~np.isfinite(speed_kn)[alive]}

@@ -5,65 +5,53 @@ Sparre and Venema 1998, FAO Fisheries Technical Paper 306/1 Rev. 2, section 13.5
 distance is the logged distance when the provider gives one (flag distance_logged; a straight
 line between the positions that differs from it by more than 10 % is flagged
 distance_disagrees); otherwise the WGS84 geodesic between start and end positions
-(pyproj.Geod, Karney 2013); without either, speed x duration.
+(:func:`harmonize.geodesy.track_geometry`, Karney 2013); without either, speed x duration.
 """
 
 from __future__ import annotations
 
-from collections.abc import Iterator, Mapping
-from pathlib import Path
+from collections.abc import Iterator
 
 import numpy as np
 import pandas as pd
 import pyarrow as pa
-import pyproj
 
-from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, finish
-from harmonize.adapters.common import (
+from harmonize.adapters.domain import reject_live_outside
+from harmonize.adapters.event_record import (
+    EventRecordAdapter,
+    Opening,
+    RecordCheck,
+    Track,
+    event_times,
+)
+from harmonize.adapters.life_stages import normalise_life_stage
+from harmonize.adapters.registry import register
+from harmonize.adapters.value_source import ValueSource
+from harmonize.adapters.zero_filling import (
     STAGE_UNRESOLVED,
     catch_unknown,
-    distinct_present,
-    is_in,
-    normalise_life_stage,
-    reject_outside_domain,
-    reject_records_of_events,
-    resolve_taxa,
     stage_unresolved_events,
     target_years,
-    unattributed_note,
-    unattributed_records,
     zero_fill,
     zero_pairs,
 )
-from harmonize.adapters.reading import Rejections, resolve_columns
-from harmonize.adapters.registry import register
-from harmonize.adapters.value_source import ValueSource
 from harmonize.clock import add_hours
 from harmonize.contract import fields
 from harmonize.errors import ReasonCode
-from harmonize.profile import Profile
+from harmonize.geodesy import KM_PER_NMI
+from harmonize.membership import distinct_present, is_in
+from harmonize.reading.fields import resolve_columns
+from harmonize.reading.quarantine import Rejections
 from harmonize.study import Study
-from harmonize.tagging import normalise_lon
 
 #: Towing speeds outside this window (knots) are not a survey tow. Standard survey tows run
 #: at 3-4 knots (common practice); the window is wide on purpose.
 TOW_SPEED_KN = (0.5, 8.0)
-KM_PER_NMI = 1.852  # exact, by definition of the international nautical mile
 #: A straight start-end line that differs from the logged distance by more than this share of
 #: the logged distance is flagged: a tow that turned, a wrong position or a wrong log (common
 #: practice; survey tows are run straight, so a few percent is usual).
 DISTANCE_TOLERANCE = 0.10
 DISTANCE_LOGGED, DISTANCE_DISAGREES = "distance_logged", "distance_disagrees"
-_GEOD = pyproj.Geod(ellps="WGS84")
-
-
-def tow_geometry(
-    start_lon: np.ndarray, start_lat: np.ndarray, end_lon: np.ndarray, end_lat: np.ndarray
-) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
-    """Geodesic tow length (km) on WGS84 and the geodesic midpoint (lon, lat) of each tow."""
-    az, _, dist_m = _GEOD.inv(start_lon, start_lat, end_lon, end_lat)
-    mid_lon, mid_lat, _ = _GEOD.fwd(start_lon, start_lat, az, dist_m / 2.0)
-    return np.asarray(dist_m) / 1000.0, normalise_lon(mid_lon), np.asarray(mid_lat)
 
 
 def area_swept_km2(distance_km: np.ndarray, net_width_m: np.ndarray) -> np.ndarray:
@@ -76,7 +64,7 @@ def area_swept_km2(distance_km: np.ndarray, net_width_m: np.ndarray) -> np.ndarr
 
 
 @register
-class TrawlAdapter(Adapter):
+class TrawlAdapter(EventRecordAdapter):
     kind = "trawl"
     description = "Bottom-trawl hauls and their catch by taxon; effort = area swept (km2)."
     tables = {"events": "trawl_events", "records": "trawl_records"}
@@ -86,6 +74,8 @@ class TrawlAdapter(Adapter):
     reads_in_blocks = ("records",)  # a catch file may hold millions of rows
     display_order = 10
     joins_date_time = True
+    event_word, record_word = "haul", "catch"
+    records_called, incomplete_flag = "catch", "catch_incomplete"
     profile_starter = """\
 #:schema ../schemas/profile-trawl.schema.json
 # A profile maps one provider's files onto the trawl adapter's fields.
@@ -128,50 +118,28 @@ count = "number"
 # date and time in two columns: in [columns.events] write start_time = ["DATE", "TIME"]
 """
 
-    def read(
-        self,
-        inputs: Mapping[str, Path],
-        profile: Profile,
-        study: Study,
-        progress: ProgressCallback | None = None,
-    ) -> AdapterOutput:
-        rej = Rejections()
-        raw, typed = self.read_fields(inputs, profile, rej)
-        ev_raw, rc_raw = raw["events"], raw["records"]
-        ev, rc = typed["events"], typed["records"]
-        if progress:
-            progress("read", 1, 3)
-        if progress:
-            progress("validate", 2, 3)
+    def validate_events(self, opening: Opening, study: Study) -> tuple[pd.DataFrame, list[list[str]]]:
+        return self._hauls(opening.ev, study, opening.rejections)
 
-        hauls, flags = self._hauls(ev, study, rej)
-        ev_alive = ~rej.mask("events", len(ev))
-        rc_alive = ~rej.mask("records", len(rc))
-        rc_alive = reject_records_of_events(
-            rc, rc_alive, ev["event_id"], ev_alive, rej.first_reasons("events"), rej, "haul"
-        )
-        # taxon names and quantities of the catch rows that are still alive
-        taxon, unknown, messages, guess = resolve_taxa(rc["taxon"], study)
-        unknown = unknown & rc_alive
-        rej.add("records", np.flatnonzero(unknown), ReasonCode.UNKNOWN_TAXON, messages[unknown])
-        no_quantity = rc_alive & rc["weight"].isna().to_numpy() & rc["count"].isna().to_numpy()
-        rej.add("records", np.flatnonzero(no_quantity & ~unknown), ReasonCode.MISSING_VALUE,
-                "catch row has neither a weight nor a count")
-        rc_ok = ~rej.mask("records", len(rc))
+    def reject_records(self, rc: pd.DataFrame, alive: np.ndarray, rejections: Rejections) -> None:
+        no_quantity = alive & rc["weight"].isna().to_numpy() & rc["count"].isna().to_numpy()
+        rejections.add("records", np.flatnonzero(no_quantity), ReasonCode.MISSING_VALUE,
+                       "catch row has neither a weight nor a count")
 
-        # A quarantined catch row of a live haul makes that haul's catch incomplete, and
-        # its taxon (when known) is never zero-filled for that haul.
-        lost = ~rc_ok & is_in(rc["event_id"], ev["event_id"][ev_alive])
-        incomplete = set(rc["event_id"][lost].dropna())
+    def convert(self, opening: Opening, records: RecordCheck, hauls: pd.DataFrame, flags: list[list[str]],
+                study: Study) -> tuple[pd.DataFrame, pd.DataFrame, list[str]]:
+        profile = opening.profile
+        ev_raw, rc_raw, rc, rej = opening.ev_raw, opening.rc_raw, opening.rc, opening.rejections
+        taxon, rc_ok, blocked, unattributed = records.taxon, records.kept, records.blocked, records.unattributed
+        records.taxon = None  # the catch rows' taxa are copied below: free them once used
+        # a quarantined catch row of a live haul leaves that haul's catch incomplete
+        incomplete = set(records.incomplete)
         # A quarantined catch row with no readable haul id (a malformed line, an empty id)
         # may belong to any haul: no haul's catch is known complete, so no absence is inferred.
-        unattributed = unattributed_records(rc_ok, rc["event_id"])
         notes = []
         if unattributed:
             incomplete = set(hauls["event_id"])
-            notes.append(unattributed_note(rc_raw.path.name, unattributed, "catch", "haul",
-                                           what="catch", flag="catch_incomplete"))
-        blocked = pd.DataFrame({"event_id": rc["event_id"][lost], "variable": taxon.fillna(guess)[lost]}).dropna()
+            notes.append(self.unattributed_note(rc_raw.path.name, unattributed))
 
         # the catch rows that stay, with haul, taxon and life stage as integer codes
         catch = pd.DataFrame({
@@ -182,7 +150,7 @@ count = "number"
             "count": rc["count"][rc_ok].to_numpy(float),
             "row": np.flatnonzero(rc_ok) + 1,
         })
-        del taxon, guess
+        del taxon
         if unattributed:
             # a haul none of whose catch rows could be read has no known catch at all (not
             # even "nothing caught"): it is quarantined rather than stored without its catch
@@ -219,38 +187,20 @@ count = "number"
             notes.append(f"{ev_raw.path.name}: {n_disagree} haul(s) have a logged distance and a straight "
                          f"start-end line that differ by more than {DISTANCE_TOLERANCE:.0%}; the logged distance "
                          f"is used (flag {DISTANCE_DISAGREES}): check their positions and logs")
-        if progress:
-            progress("convert", 3, 3)
-        return finish([ev_raw, rc_raw], rej, hauls.drop(columns=["bottom_temperature"]), values, notes)
+        return hauls.drop(columns=["bottom_temperature"]), values, notes
 
     @staticmethod
     def _hauls(ev: pd.DataFrame, study: Study, rej: Rejections) -> tuple[pd.DataFrame, list[list[str]]]:
         """Validate hauls and compute distance, duration, area swept and the tow midpoint."""
         n = len(ev)
         pos = np.arange(n)
-        dup = ev["event_id"].duplicated(keep="first").to_numpy() & ev["event_id"].notna().to_numpy()
-        rej.add("events", pos[dup], ReasonCode.DUPLICATE_RECORD,
-                [f"haul '{e}' appears earlier in the file; only its first row counts (when that row is quarantined too, correct it and drop this one)" for e in ev["event_id"][dup]])
-
-        start, end = ev["start_time"], ev["end_time"]
-        alive = ~rej.mask("events", n)
-        backwards = alive & (end < start).fillna(False).to_numpy()
-        rej.add("events", pos[backwards], ReasonCode.END_BEFORE_START,
-                [f"end_time {e} is before start_time {s}" for s, e in zip(start[backwards], end[backwards], strict=True)])
-        alive &= ~backwards
-        duration_h = ((end - start).dt.total_seconds() / 3600.0).to_numpy(dtype=float, na_value=np.nan)
-        duration_h = np.where(np.isnan(duration_h), ev["duration"].to_numpy(float), duration_h)
+        start, end, duration_h, alive = event_times(ev, rej, ~rej.mask("events", n))
         zero_time = alive & (duration_h <= 0)
         rej.add("events", pos[zero_time], ReasonCode.BAD_EFFORT, "tow duration is 0; start and end times are equal")
         alive &= ~zero_time
 
-        slon, slat = ev["start_lon"].to_numpy(float), ev["start_lat"].to_numpy(float)
-        elon, elat = ev["end_lon"].to_numpy(float), ev["end_lat"].to_numpy(float)
-        have_end = np.isfinite(elon) & np.isfinite(elat) & np.isfinite(slon) & np.isfinite(slat)
-        geo_km, mid_lon, mid_lat = tow_geometry(
-            np.where(have_end, slon, 0), np.where(have_end, slat, 0),
-            np.where(have_end, elon, 0), np.where(have_end, elat, 0),
-        )
+        track = Track.of(ev)
+        have_end, geo_km = track.have_end, track.length_km
         logged_km = ev["distance"].to_numpy(float)
         logged = np.isfinite(logged_km)
         speed_kn = ev["speed"].to_numpy(float)
@@ -265,8 +215,6 @@ count = "number"
         rej.add("events", pos[no_distance], ReasonCode.MISSING_VALUE,
                 "distance towed cannot be computed: give end_lat/end_lon, a distance, or speed and duration")
         alive &= ~no_distance
-        lon = np.where(have_end, mid_lon, normalise_lon(slon))
-        lat = np.where(have_end, mid_lat, slat)
 
         width_m = ev["net_width_m"].to_numpy(float)
         area_km2 = area_swept_km2(distance_km, width_m)
@@ -285,9 +233,7 @@ count = "number"
                  "check positions, times and units" for v, d, h in
                  zip(tow_speed[bad_speed], distance_km[bad_speed], duration_h[bad_speed], strict=True)])
         alive &= ~bad_speed
-        checkable = alive & np.isfinite(lon) & np.isfinite(lat)
-        reject_outside_domain(study, lon[checkable], lat[checkable], pos[checkable], "events", rej, "tow midpoint")
-        alive = ~rej.mask("events", n)
+        alive = reject_live_outside(study, track.lon, track.lat, alive, rej, "tow midpoint")
 
         gear = ev["gear_depth_m"].to_numpy(float)
         bottom = ev["bottom_depth_m"].to_numpy(float)
@@ -299,8 +245,8 @@ count = "number"
             "event_id": ev["event_id"],
             "event_start": start,
             "event_end": event_end,
-            "lat": lat,
-            "lon": lon,
+            "lat": track.lat,
+            "lon": track.lon,
             "depth_min_m": depth,
             "depth_max_m": depth,
             "bottom_depth_m": bottom,
@@ -309,10 +255,7 @@ count = "number"
             "effort_unit": "km2",
             "source_row": pos + 1,
             "observer_id": pd.NA,
-            "track_start_lat": np.where(have_end, slat, np.nan),
-            "track_start_lon": np.where(have_end, normalise_lon(slon), np.nan),
-            "track_end_lat": np.where(have_end, elat, np.nan),
-            "track_end_lon": np.where(have_end, normalise_lon(elon), np.nan),
+            **track.columns(),
             "bottom_temperature": ev["bottom_temperature"],
         })[alive].reset_index(drop=True)
         flag_lists = []
@@ -387,7 +330,7 @@ def _key_codes(column: pd.Series) -> tuple[np.ndarray, int]:
 
 
 def _folded_categorical(text: pd.Series) -> pd.Categorical:
-    """Life stages normalised (:func:`~harmonize.adapters.common.normalise_life_stage`) as a
+    """Life stages normalised (:func:`~harmonize.adapters.life_stages.normalise_life_stage`) as a
     categorical: each distinct text is normalised once."""
     code, uniques = pd.factorize(text, use_na_sentinel=True)
     folded = pd.Categorical(normalise_life_stage(pd.Series(uniques, dtype="string")))
@@ -414,7 +357,7 @@ def _no_lists(n: int, value_type: pa.DataType) -> pa.Array:
 
 def _zero_values(events: pd.DataFrame, caught: pd.DataFrame, blocked: pd.DataFrame, study: Study,
                  protocol: str | None, quantities: list[tuple[str, str]], haul_ids: pd.Index) -> pd.DataFrame:
-    """Inferred zeros (:func:`~harmonize.adapters.common.zero_fill`) with categorical haul ids
+    """Inferred zeros (:func:`~harmonize.adapters.zero_filling.zero_fill`) with categorical haul ids
     and the value columns as Arrow arrays."""
     zeros = zero_fill(events, caught, blocked, study, protocol, quantities, event_categories=haul_ids)
     n = len(zeros)
@@ -478,7 +421,7 @@ class TrawlValues(ValueSource):
     zero_events
         event_id and year of the hauls that get inferred zeros (:func:`target_years`).
     blocked, study, protocol, quantities
-        As :func:`~harmonize.adapters.common.zero_fill`.
+        As :func:`~harmonize.adapters.zero_filling.zero_fill`.
     """
 
     def __init__(self, catch: pd.DataFrame, haul_ids: pd.Index, temperature: np.ndarray,

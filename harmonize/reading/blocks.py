@@ -14,20 +14,20 @@ import pyarrow as pa
 import pyarrow.csv as pacsv
 from pandas.api.types import union_categoricals
 
-from harmonize.adapters.reading import (
+from harmonize.contract import FieldSpec
+from harmonize.errors import InputFileError
+from harmonize.files import file_sha256
+from harmonize.profile import Profile
+from harmonize.reading.fields import coerce_fields
+from harmonize.reading.quarantine import Rejections
+from harmonize.reading.text import (
     _HEAD_BYTES,
     LineReader,
     RawTable,
-    Rejections,
     _check_header_names,
     _sniff_delimiter,
-    coerce_fields,
-    file_sha256,
     refuse_long_lines,
 )
-from harmonize.contract import FieldSpec
-from harmonize.errors import InputFileError
-from harmonize.profile import Profile
 
 #: Bytes of text Arrow reads per block (a catch file of 1e7 rows is ~400 MB: a few blocks).
 BLOCK_BYTES = 64 << 20
@@ -39,12 +39,12 @@ _Block = tuple[int, pd.DataFrame, list[tuple[int, str, int]]]
 
 
 class _NotForArrow(Exception):
-    """The file needs the line-by-line reader (see ``reading._read_csv_arrow``)."""
+    """The file needs the line-by-line reader (see ``harmonize.reading.text._read_csv_arrow``)."""
 
 
 @dataclass
 class BlockRawTable(RawTable):
-    """A :class:`~harmonize.adapters.reading.RawTable` that holds no text until asked: the
+    """A :class:`~harmonize.reading.text.RawTable` that holds no text until asked: the
     rows at given positions are read again from the file (by the same reader, so with the
     same row numbers and cells)."""
 
@@ -85,8 +85,8 @@ def read_typed_blocks(path: str | object, profile: Profile, role: str, specs: Se
                       schema_name: str) -> tuple[BlockRawTable, pd.DataFrame]:
     """A table's typed fields, read and typed block by block, and its raw table.
 
-    The result equals :func:`~harmonize.adapters.reading.read_table` followed by
-    :func:`~harmonize.adapters.reading.coerce_fields` on the whole file (same rejections,
+    The result equals :func:`~harmonize.reading.text.read_table` followed by
+    :func:`~harmonize.reading.fields.coerce_fields` on the whole file (same rejections,
     same messages, same row numbers), except that text fields come back as categoricals and
     the raw table holds no text (:class:`BlockRawTable`). Memory holds one block of text.
     """
@@ -163,7 +163,7 @@ def _line_blocks(path, profile: Profile) -> Iterator[_Block]:  # type: ignore[no
 
 def _arrow_blocks(path, profile: Profile) -> Iterator[_Block]:  # type: ignore[no-untyped-def]
     """Blocks of a well-formed UTF-8 CSV file read by Arrow's streaming reader; raises
-    :class:`_NotForArrow` (possibly after some blocks) where ``reading._read_csv_arrow``
+    :class:`_NotForArrow` (possibly after some blocks) where ``harmonize.reading.text._read_csv_arrow``
     would give the file to the line-by-line reader."""
     if profile.encoding.lower().replace("_", "-") not in ("utf-8", "utf8"):
         raise _NotForArrow

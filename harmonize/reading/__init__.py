@@ -1,0 +1,1 @@
+"""Reading provider files: text, field coercion, quarantine, taxon names."""

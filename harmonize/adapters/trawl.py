@@ -434,7 +434,8 @@ class TrawlValues(ValueSource):
         self.catch_haul = catch["event_id"].cat.codes.to_numpy()
         self.zero_events = zero_events.reset_index(drop=True)
         self.zero_haul = haul_ids.get_indexer(zero_events["event_id"])
-        self.blocked = blocked
+        # plain text: the few blocked pairs are looked up in every run
+        self.blocked = blocked.astype({"event_id": object, "variable": object})
         self.study, self.protocol, self.quantities = study, protocol, quantities
         self._valued: np.ndarray | None = None  # hauls with values, once every run was made
 

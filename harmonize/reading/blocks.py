@@ -17,6 +17,7 @@ from pandas.api.types import union_categoricals
 from harmonize.contract import FieldSpec
 from harmonize.errors import InputFileError
 from harmonize.files import file_sha256
+from harmonize.memory import release_free_memory
 from harmonize.profile import Profile
 from harmonize.reading.fields import coerce_fields
 from harmonize.reading.quarantine import Rejections
@@ -120,6 +121,8 @@ def _typed(path, profile, role, specs, rejections, schema_name, sha, arrow: bool
         found.append(block_rej)
         parts.append(_categories(typed, specs))
         n = offset + len(text)
+        del table, typed, text
+        release_free_memory()  # the block's text and its typing are freed: hand them back
     if header is None:
         if arrow:
             raise _NotForArrow

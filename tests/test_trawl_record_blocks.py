@@ -9,6 +9,7 @@ some blocks were read.
 
 from __future__ import annotations
 
+import re
 import shutil
 from pathlib import Path
 
@@ -23,6 +24,7 @@ import harmonize.ingest as ingest
 import harmonize.reading.blocks as record_blocks
 from harmonize import Store, load_study
 from harmonize.contract import fields
+from harmonize.errors import InputFileError
 from harmonize.ingest import prepare
 from harmonize.reading.fields import coerce_fields
 from harmonize.reading.quarantine import Rejections
@@ -106,7 +108,10 @@ def test_tiny_blocks_and_runs_write_the_same_store_as_one(
     from harmonize import run
 
     whole = _study(tmp_path_factory.mktemp("whole"), files)
-    run(load_study(whole), "trawl_agency", {"events": whole / "h.csv", "records": whole / "c.csv"})
+    try:
+        run(load_study(whole), "trawl_agency", {"events": whole / "h.csv", "records": whole / "c.csv"})
+    except InputFileError:  # a catch file of blank lines only: refused alike (the test below)
+        return
     tiny = _study(tmp_path_factory.mktemp("tiny"), files)
     with pytest.MonkeyPatch.context() as mp:
         mp.setattr(record_blocks, "BLOCK_BYTES", block_bytes)
@@ -130,13 +135,18 @@ def test_block_reader_equals_whole_file_reader(tmp_path_factory: pytest.TempPath
     specs = fields("trawl_records")
     path = study_dir / "c.csv"
     expected_rej = Rejections()
-    table, malformed = read_table(path, profile, "records")
-    expected = coerce_fields(table, specs, profile, expected_rej, "trawl_records", malformed)
     got_rej = Rejections()
     with pytest.MonkeyPatch.context() as mp:
         mp.setattr(record_blocks, "BLOCK_BYTES", block_bytes)
         mp.setattr(record_blocks, "LINE_BLOCK_ROWS", line_rows)
+        try:
+            table, malformed = read_table(path, profile, "records")
+        except InputFileError as exc:  # e.g. only blank lines: the same refusal
+            with pytest.raises(InputFileError, match=re.escape(str(exc))):
+                record_blocks.read_typed_blocks(path, profile, "records", specs, got_rej, "trawl_records")
+            return
         raw, got = record_blocks.read_typed_blocks(path, profile, "records", specs, got_rej, "trawl_records")
+    expected = coerce_fields(table, specs, profile, expected_rej, "trawl_records", malformed)
     assert raw.n_rows == table.n_rows
     assert list(raw.frame.columns) == list(table.frame.columns)
     for spec in specs:

@@ -245,6 +245,7 @@ def bench_ingest(sizes: list[int], work: Path, dask: bool = False,
         if BEFORE is not None:
             res["before"] = measure("harmonize", folder, "bench_trawl", "duckdb", ev, rc, cwd=BEFORE)
             shutil.rmtree(folder / "store", ignore_errors=True)
+            (folder / ".store.ingested").unlink(missing_ok=True)  # removed on purpose, not lost
         res["harmonize"] = measure("harmonize", folder, "bench_trawl", "duckdb", ev, rc)
         if "error" not in res["harmonize"] and "error" not in res["same_floor"]:
             from benchmarks.trawl_floor import check_trawl_floor

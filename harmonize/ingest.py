@@ -26,6 +26,7 @@ from harmonize.engines import engine_scope
 from harmonize.errors import ConfigError, DuplicateIngestError, HarmonizeError
 from harmonize.files import digests_known, file_sha256
 from harmonize.membership import codes_in, distinct_present, is_in
+from harmonize.memory import release_free_memory
 from harmonize.profile import Profile, find_profile, load_profile, peek_kind
 from harmonize.store import IngestRecord, Store
 from harmonize.study import Study
@@ -175,6 +176,7 @@ def _run(study: Study, profile: str | Path, inputs: Mapping[str, Path], *, write
                 prof.path.name, adapter.kind)
     with engine_scope(engine, scheduler):
         out = adapter.read(inputs, prof, study, progress)
+    release_free_memory()  # what reading freed is not reused by the block-wise writing
     logger.info("%s: %d rows read, %d accepted, %d quarantined", main_path, sum(f.rows_read for f in out.files),
                 sum(f.rows_accepted for f in out.files), sum(f.rows_quarantined for f in out.files))
     logger.debug("input sha256 %s, configuration sha256 %s", inputs_sha, config_sha)
@@ -236,12 +238,12 @@ def store_output(
     notes = list(out.notes) + swapped_position_notes(study, out.positions)
     result = IngestResult("checked", profile.source_id, kind, None, out.files, 0, 0, out.quarantine, notes=notes)
     result.masked = out.masked
-    no_values = events_without_values(out, study, profile, kind)
-    result.events_without_values = no_values.to_pandas()
     if not write:
         for block in blocks:
             result.records_written += block.num_rows
             result.records_zero_filled += _zero_filled(block)
+        # after the blocks: a value source then knows which events had values
+        result.events_without_values = events_without_values(out, study, profile, kind).to_pandas()
         return result
 
     store = Store(study.store_dir)
@@ -265,6 +267,8 @@ def store_output(
     try:
         # the store decides where and how the rows are written; each file carries the record
         result.records_written, result.records_zero_filled = store.write_observations(staged, blocks, record, files)
+        no_values = events_without_values(out, study, profile, kind)
+        result.events_without_values = no_values.to_pandas()
         record.records_written, record.records_zero_filled = result.records_written, result.records_zero_filled
         record.finished_at = pd.Timestamp.now("UTC").tz_localize(None)
 
@@ -416,7 +420,10 @@ def _keep(frame: pd.DataFrame, column: str, computed: pd.Series) -> pd.Series:
 
 
 #: Observation rows made (and written) per block: memory holds one block of rows, not all of them.
-BLOCK_ROWS = 250_000
+#: Each row of a block costs about 3 KB of peak memory while it is made and written (the
+#: values, their Arrow columns, DuckDB's result, the writer's queue and parquet buffers):
+#: 100,000 rows keep that part of a trawl ingest's peak near 0.4 GB (BENCHMARKS.md).
+BLOCK_ROWS = 100_000
 #: Rows of the assembled output checked against the contract (pandera), spread over the blocks.
 SAMPLE_ROWS = 200_000
 
@@ -442,7 +449,9 @@ def assemble_blocks(out: AdapterOutput, study: Study, profile: Profile, kind: st
     to end, are the rows :func:`assemble` returns; a block is made only when the previous one
     has been consumed, so a caller that writes each block holds one block of rows at a time.
     Values are kept as Arrow columns (strings dictionary-encoded when the adapter gave
-    categoricals) until their block is made.
+    categoricals) until their block is made. When the adapter gives a value source
+    (:class:`~harmonize.adapters.value_source.ValueSource`), its values are asked for a run
+    of events at a time, in store order, and never held all at once.
     """
     block_rows = block_rows or BLOCK_ROWS
     ev = tag_events(out.events, study)
@@ -451,48 +460,21 @@ def assemble_blocks(out: AdapterOutput, study: Study, profile: Profile, kind: st
         if col not in ev:
             ev[col] = None
     ev_tab = _to_arrow(ev, _EVENT_ARROW)  # flags that are not lists become []
-    va_tab = _values_to_arrow(out.values)
     unique = ev["event_id"].is_unique
-    if unique:
-        # each value's event row, found by integer code when the adapter gave categoricals
-        position = codes_in(out.values["event_id"], pd.Index(ev["event_id"])).astype(np.int64)
-        missing = int((position < 0).sum())
-        if missing:
-            raise HarmonizeError(f"internal error: {missing} values have no event; please report this")
-        order = _store_order(position, ev)
+    source = out.value_source if unique else None
+    ev_index = pd.Index(ev["event_id"])
+    rank = _event_rank(ev)
     del ev
     con = duckdb.connect()
     try:
-        cols = dict(observation_sql_columns())
         params = [ingest_id, profile.source_id, kind, profile.provider_type, profile.protocol, Path(_main_file(out)).name]
-        exprs = {
-            "record_id": "substr(md5(concat_ws('|', $2, e.event_id, v.variable, coalesce(v.life_stage, ''), v.quantity, v.behavior)), 1, 24)",  # concat_ws skips a null behavior: ids without one are unchanged
-            "ingest_id": "$1", "source_id": "$2", "source_kind": "$3", "provider_type": "$4", "protocol": "$5",
-            # density only for counts and biomass; presence-only and no-effort values carry no effort
-            "density": f"CASE WHEN {_HAS_DENSITY} THEN v.value / e.effort END",
-            "density_unit": f"CASE WHEN {_HAS_DENSITY} THEN {_density_unit_expr(con, va_tab, ev_tab)} END",
-            "effort": "CASE WHEN v.quantity = 'presence' OR v.no_effort THEN NULL ELSE e.effort END",
-            "effort_unit": "CASE WHEN v.quantity = 'presence' OR v.no_effort THEN NULL ELSE e.effort_unit END",
-            # the usual rows (no flag, or one value flag) skip the list sort: the same lists
-            "flags": "CASE WHEN len(e.event_flags) = 0 AND len(v.value_flags) = 0 THEN v.value_flags "
-                     "WHEN len(e.event_flags) = 0 AND len(v.value_flags) = 1 AND v.value_flags[1] IS NOT NULL "
-                     "THEN v.value_flags "
-                     "ELSE list_sort(list_distinct(list_concat(e.event_flags, v.value_flags))) END",
-            "source_file": "$6",
-        }
-        select = []
-        for col, typ in cols.items():
-            expr = exprs.get(col)
-            if expr is None:
-                expr = f"v.{col}" if col in _VALUE_ARROW.names else f"e.{col}"
-            select.append(f"CAST({expr} AS {typ}) AS \"{col}\"")
-        # the mergeable parts, when the adapter gives them (gridded and effort sources)
-        select += [f'v."{p.name}"' for p in _PART_ARROW if p.name in out.values]
         if not unique:
             # a hash join over all rows (events whose ids repeat are rare and small)
+            va_tab = _values_to_arrow(out.values)
             con.register("ev", ev_tab)
             con.register("va", _decoded(va_tab))
-            table = con.sql(f"SELECT {', '.join(select)} FROM va v JOIN ev e USING (event_id)", params=params).to_arrow_table()
+            select = _select_sql(con, va_tab, ev_tab, out.values.columns)
+            table = con.sql(f"SELECT {select} FROM va v JOIN ev e USING (event_id)", params=params).to_arrow_table()
             missing = con.execute("SELECT count(*) FROM va v ANTI JOIN ev e USING (event_id)").fetchall()[0][0]
             if missing:
                 raise HarmonizeError(f"internal error: {missing} values have no event; please report this")
@@ -504,21 +486,89 @@ def assemble_blocks(out: AdapterOutput, study: Study, profile: Profile, kind: st
                 _validate_block(block, len(starts), i)
                 yield block
             return
-        # each block: its values (taken in store order) beside their event rows, by position;
-        # the POSITIONAL JOIN keeps that order, which a hash join would not
-        sql = f"SELECT {', '.join(select)} FROM va v POSITIONAL JOIN ev_rows e"
-        starts = range(0, max(len(order), 1), block_rows)
-        for i in starts:
-            take = pa.array(order[i:i + block_rows], pa.int64())
-            con.register("va", _decoded(va_tab.take(take)))
-            con.register("ev_rows", ev_tab.take(pa.array(position[take.to_numpy()], pa.int64())))
-            block = con.sql(sql, params=params).to_arrow_table()
-            con.unregister("va")
-            con.unregister("ev_rows")
-            _validate_block(block, len(starts), i)
-            yield block
+        if source is None:
+            frames: Iterator[pd.DataFrame] = iter([out.values])
+            n_blocks = -(-max(len(out.values), 1) // block_rows)
+        else:
+            frames = source.blocks(np.argsort(rank, kind="stable"), block_rows)
+            n_blocks = max(_VALUE_ROWS_PER_EVENT * len(rank), 1) // block_rows + 1
+        done = 0
+        empty = None
+        for values in frames:
+            if not len(values):
+                empty = values
+                continue
+            for block in _positional_blocks(con, values, ev_tab, ev_index, rank, params, block_rows):
+                _validate_block(block, n_blocks, done)
+                done += block.num_rows
+                yield block
+        if not done:  # no values: one empty table
+            for block in _positional_blocks(con, out.values if empty is None else empty, ev_tab, ev_index, rank,
+                                            params, block_rows):
+                _validate_block(block, 1, 0)
+                yield block
     finally:
         con.close()
+
+
+def _positional_blocks(con: duckdb.DuckDBPyConnection, values: pd.DataFrame, ev_tab: pa.Table, ev_index: pd.Index,
+                       rank: np.ndarray, params: list, block_rows: int) -> Iterator[pa.Table]:
+    """Observation rows of ``values`` (events with distinct ids) in blocks of ``block_rows``, in
+    the order of their events' ``rank`` (values of one event in their given order); one
+    empty table when ``values`` is empty."""
+    va_tab = _values_to_arrow(values)
+    # each value's event row, found by integer code when the adapter gave categoricals
+    position = codes_in(values["event_id"], ev_index).astype(np.int64)
+    missing = int((position < 0).sum())
+    if missing:
+        raise HarmonizeError(f"internal error: {missing} values have no event; please report this")
+    order = np.argsort(rank[position], kind="stable")
+    # each block: its values (taken in store order) beside their event rows, by position;
+    # the POSITIONAL JOIN keeps that order, which a hash join would not
+    sql = f"SELECT {_select_sql(con, va_tab, ev_tab, values.columns)} FROM va v POSITIONAL JOIN ev_rows e"
+    del values
+    for i in range(0, max(len(order), 1), block_rows):
+        take = pa.array(order[i:i + block_rows], pa.int64())
+        con.register("va", _decoded(va_tab.take(take)))
+        con.register("ev_rows", ev_tab.take(pa.array(position[take.to_numpy()], pa.int64())))
+        block = con.sql(sql, params=params).to_arrow_table()
+        con.unregister("va")
+        con.unregister("ev_rows")
+        yield block
+
+
+#: Value rows per event assumed when sizing the contract's samples of a value source's blocks.
+_VALUE_ROWS_PER_EVENT = 20
+
+
+def _select_sql(con: duckdb.DuckDBPyConnection, va_tab: pa.Table, ev_tab: pa.Table, value_columns: Sequence[str]) -> str:
+    """The select list that turns values ``v`` beside their events ``e`` into observation rows,
+    each column cast to the contract's type (parameters: ingest id, source id, kind, provider
+    type, protocol, source file)."""
+    exprs = {
+        "record_id": "substr(md5(concat_ws('|', $2, e.event_id, v.variable, coalesce(v.life_stage, ''), v.quantity, v.behavior)), 1, 24)",  # concat_ws skips a null behavior: ids without one are unchanged
+        "ingest_id": "$1", "source_id": "$2", "source_kind": "$3", "provider_type": "$4", "protocol": "$5",
+        # density only for counts and biomass; presence-only and no-effort values carry no effort
+        "density": f"CASE WHEN {_HAS_DENSITY} THEN v.value / e.effort END",
+        "density_unit": f"CASE WHEN {_HAS_DENSITY} THEN {_density_unit_expr(con, va_tab, ev_tab)} END",
+        "effort": "CASE WHEN v.quantity = 'presence' OR v.no_effort THEN NULL ELSE e.effort END",
+        "effort_unit": "CASE WHEN v.quantity = 'presence' OR v.no_effort THEN NULL ELSE e.effort_unit END",
+        # the usual rows (no flag, or one value flag) skip the list sort: the same lists
+        "flags": "CASE WHEN len(e.event_flags) = 0 AND len(v.value_flags) = 0 THEN v.value_flags "
+                 "WHEN len(e.event_flags) = 0 AND len(v.value_flags) = 1 AND v.value_flags[1] IS NOT NULL "
+                 "THEN v.value_flags "
+                 "ELSE list_sort(list_distinct(list_concat(e.event_flags, v.value_flags))) END",
+        "source_file": "$6",
+    }
+    select = []
+    for col, typ in dict(observation_sql_columns()).items():
+        expr = exprs.get(col)
+        if expr is None:
+            expr = f"v.{col}" if col in _VALUE_ARROW.names else f"e.{col}"
+        select.append(f"CAST({expr} AS {typ}) AS \"{col}\"")
+    # the mergeable parts, when the adapter gives them (gridded and effort sources)
+    select += [f'v."{p.name}"' for p in _PART_ARROW if p.name in value_columns]
+    return ", ".join(select)
 
 
 #: Most (unit, effort unit) pairs whose density units are written out as a CASE (see :func:`_density_unit_expr`).
@@ -580,7 +630,8 @@ def events_without_values(out: AdapterOutput, study: Study, profile: Profile, ki
     events = out.events
     if events.empty:
         return _NO_VALUES_ARROW.empty_table()
-    lonely = events[~is_in(events["event_id"], distinct_present(out.values["event_id"]))]
+    valued = out.value_source.event_ids() if out.value_source is not None else distinct_present(out.values["event_id"])
+    lonely = events[~is_in(events["event_id"], valued)]
     if lonely.empty:
         return _NO_VALUES_ARROW.empty_table()
     ev = tag_events(lonely, study)  # tags are per event: tagging the few alone gives the same tags
@@ -640,17 +691,17 @@ def _decoded(table: pa.Table) -> pa.Table:
     return pa.Table.from_arrays(arrays, schema=schema)
 
 
-def _store_order(position: np.ndarray, events: pd.DataFrame) -> np.ndarray:
-    """Order of the values (by their event's position) in which the store's files hold them.
+def _event_rank(events: pd.DataFrame) -> np.ndarray:
+    """Each event's place in the store's order: by season_year, event_start, event_id (nulls last).
 
-    Events sort by season_year, event_start, event_id (nulls last); values of one event keep
-    their order. :func:`write_partitions` then finds each block sorted already.
+    Values are written in the order of their events' ranks, the values of one event in the
+    order the adapter gives them; :func:`write_partitions` then finds each block sorted already.
     """
     ordered = events.reset_index(drop=True).sort_values(["season_year", "event_start", "event_id"],
                                                         na_position="last", kind="stable")
     rank = np.empty(len(events), dtype=np.int64)
     rank[ordered.index.to_numpy()] = np.arange(len(events))
-    return np.argsort(rank[position], kind="stable")
+    return rank
 
 
 def _validate_block(block: pa.Table, n_blocks: int, start: int) -> None:

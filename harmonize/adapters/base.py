@@ -11,6 +11,7 @@ from typing import ClassVar
 import numpy as np
 import pandas as pd
 
+from harmonize.adapters.value_source import ValueSource
 from harmonize.config_spec import Map, Table
 from harmonize.contract import fields
 from harmonize.profile import Profile
@@ -64,6 +65,10 @@ class AdapterOutput:
     rejected input row (source_file, source_row, reason_code, message, raw); ``files`` the
     per-file accounting. Events may also carry pre-computed tags (cell_id, season,
     season_year, depth_layer) which the pipeline then keeps.
+
+    An adapter whose values would not fit in memory at once gives a ``value_source``
+    (:class:`~harmonize.adapters.value_source.ValueSource`) instead: the pipeline then asks
+    it for the values a run of events at a time, and ``values`` is made only when read.
     """
 
     events: pd.DataFrame
@@ -86,6 +91,24 @@ class AdapterOutput:
     #: hours: the store keeps them as the templates of the parts its view adds.
     edge_events: pd.DataFrame | None = None
     edge_values: pd.DataFrame | None = None
+    #: Values made on demand (see above); None when ``values`` holds them.
+    value_source: ValueSource | None = None
+
+
+def _values(self: AdapterOutput) -> pd.DataFrame:
+    """The values as one frame; made from ``value_source`` (once) when it gives them."""
+    if self._values is None and self.value_source is not None:
+        self._values = self.value_source.frame()
+    return self._values
+
+
+def _set_values(self: AdapterOutput, values: pd.DataFrame | None) -> None:
+    self._values = values
+
+
+# ``values`` stays a field of the dataclass (its __init__ and dataclasses.replace set it),
+# read through this property so that a value source's frame is made only when someone reads it
+AdapterOutput.values = property(_values, _set_values)  # type: ignore[assignment]
 
 
 class Adapter(ABC):
@@ -148,6 +171,9 @@ class Adapter(ABC):
     reads_formats: ClassVar[bool] = True
     #: A date-time field may be mapped onto two provider columns ([date, time]).
     joins_date_time: ClassVar[bool] = False
+    #: Table roles read and typed in blocks of rows (:mod:`harmonize.reading.blocks`):
+    #: text fields come back as categoricals and the raw table reads rejected rows' text again.
+    reads_in_blocks: ClassVar[tuple[str, ...]] = ()
 
     def table_fields(self) -> dict[str, set[str]]:
         """Field names per table role, for profile validation."""
@@ -164,6 +190,11 @@ class Adapter(ABC):
         raw: dict[str, RawTable] = {}
         typed: dict[str, pd.DataFrame] = {}
         for role, schema in self.tables.items():
+            if role in self.reads_in_blocks and Path(inputs[role]).suffix.lower() != ".parquet":
+                from harmonize.reading.blocks import read_typed_blocks
+
+                raw[role], typed[role] = read_typed_blocks(inputs[role], profile, role, fields(schema), rejections, schema)
+                continue
             table, malformed = read_table(inputs[role], profile, role)
             raw[role] = table
             typed[role] = coerce_fields(table, fields(schema), profile, rejections, schema, malformed)
@@ -184,10 +215,15 @@ def finish(
     tables: list[RawTable],
     rejections: Rejections,
     events: pd.DataFrame,
-    values: pd.DataFrame,
+    values: pd.DataFrame | ValueSource,
     notes: list[str] | None = None,
 ) -> AdapterOutput:
-    """Build the AdapterOutput with per-file accounting from the rejections."""
+    """Build the AdapterOutput with per-file accounting from the rejections.
+
+    ``values`` is a frame, or a :class:`~harmonize.adapters.value_source.ValueSource` that
+    makes them on demand.
+    """
+    source = values if isinstance(values, ValueSource) else None
     files = []
     for t in tables:
         n_bad = rejections.count(t.role)
@@ -203,9 +239,10 @@ def finish(
         )
     return AdapterOutput(
         events=events.reset_index(drop=True),
-        values=values.reset_index(drop=True),
+        values=None if source is not None else values.reset_index(drop=True),
         quarantine=rejections.to_frame(tables),
         files=files,
         positions=list(rejections.positions),
         notes=list(notes or []),
+        value_source=source,
     )

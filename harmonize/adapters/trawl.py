@@ -10,6 +10,8 @@ distance_disagrees); otherwise the WGS84 geodesic between start and end position
 
 from __future__ import annotations
 
+from collections.abc import Iterator
+
 import numpy as np
 import pandas as pd
 import pyarrow as pa
@@ -24,12 +26,14 @@ from harmonize.adapters.event_record import (
 )
 from harmonize.adapters.life_stages import normalise_life_stage
 from harmonize.adapters.registry import register
+from harmonize.adapters.value_source import ValueSource
 from harmonize.adapters.zero_filling import (
     STAGE_UNRESOLVED,
     catch_unknown,
     stage_unresolved_events,
     target_years,
     zero_fill,
+    zero_pairs,
 )
 from harmonize.clock import add_hours
 from harmonize.contract import fields
@@ -67,6 +71,7 @@ class TrawlAdapter(EventRecordAdapter):
     effort_words = "area swept by the net"
     effort_label = "area swept"
     default_protocol = "standard_bottom_trawl"
+    reads_in_blocks = ("records",)  # a catch file may hold millions of rows
     display_order = 10
     joins_date_time = True
     event_word, record_word = "haul", "catch"
@@ -161,21 +166,17 @@ count = "number"
             table.keep_only(rej.mask(table.role, table.n_rows))
         haul_ids = pd.Index(hauls["event_id"])
         catch["event_id"] = catch["event_id"].cat.set_categories(haul_ids)
-        values = _catch_values(catch)
         # the protocol records the quantities the catch file has a column for
         provided = resolve_columns(rc_raw, fields("trawl_records"), profile)
         quantities = [(q, u) for q, u, col in (("biomass", "kg", "weight"), ("count", "1", "count"))
                       if col in provided or col in profile.constants]
-        zeros = _zero_values(
-            target_years(hauls[~catch_unknown(hauls, list(incomplete), catch["event_id"])], study)
-            .iloc[:0 if unattributed else None],
-            catch[["event_id", "variable", "life_stage"]], blocked, study, profile.protocol, quantities, haul_ids,
-        )
+        zero_events = target_years(hauls[~catch_unknown(hauls, list(incomplete), catch["event_id"])], study) \
+            .iloc[:0 if unattributed else None]
         unresolved = set(stage_unresolved_events(catch, study, profile.protocol))
+        values = TrawlValues(catch, haul_ids, hauls["bottom_temperature"].to_numpy(dtype=float, na_value=np.nan),
+                             zero_events,
+                             blocked, study, profile.protocol, quantities)
         del catch
-        temps = _temperature_values(hauls, haul_ids)
-        values = _concat_values([values, zeros, temps])
-        values["n_vessels"] = pd.Series(pd.NA, index=values.index, dtype="Int32")
 
         hauls["flags"] = [
             f + ([STAGE_UNRESOLVED] if e in unresolved else []) + (["catch_incomplete"] if e in incomplete else [])
@@ -372,13 +373,15 @@ def _concat_values(parts: list[pd.DataFrame]) -> pd.DataFrame:
     """Concatenate value frames; text columns become categoricals sharing their categories."""
     parts = [p for p in parts if len(p)] or parts[:1]
     for col in ("event_id", "variable", "life_stage", "quantity", "unit", "variable_kind"):
-        cats = [p[col].astype("category").cat.categories for p in parts]
-        union = pd.Index(pd.unique(np.concatenate([c.to_numpy(dtype=object) for c in cats])), dtype=object) \
-            if cats else pd.Index([], dtype=object)
         if col == "event_id" and isinstance(parts[0][col].dtype, pd.CategoricalDtype):
             union = parts[0][col].cat.categories  # the hauls, shared by every part
+        else:
+            cats = [p[col].astype("category").cat.categories for p in parts]
+            union = pd.Index(pd.unique(np.concatenate([c.to_numpy(dtype=object) for c in cats])), dtype=object) \
+                if cats else pd.Index([], dtype=object)
         for p in parts:
-            p[col] = p[col].astype("category").cat.set_categories(union)
+            if not (isinstance(p[col].dtype, pd.CategoricalDtype) and p[col].cat.categories is union):
+                p[col] = p[col].astype("category").cat.set_categories(union)
     return pd.concat(parts, ignore_index=True)
 
 
@@ -396,3 +399,122 @@ def _temperature_values(hauls: pd.DataFrame, haul_ids: pd.Index) -> pd.DataFrame
         "source_record_rows": _arrow_series(_no_lists(n, pa.int64())),
         "n_values": np.ones(n, dtype=np.int64), "no_effort": True,
     })
+
+
+class TrawlValues(ValueSource):
+    """The values of a trawl ingest (catch sums, inferred zeros, bottom temperatures), made a
+    run of hauls at a time from the integer-coded catch rows.
+
+    Holding the catch rows as codes costs about 30 bytes per row; the values they become
+    (about 2.5 per catch row, each with its lists of source rows and flags) would cost
+    several times that, and were the largest part of a large ingest's memory.
+
+    Parameters
+    ----------
+    catch
+        The accepted catch rows in file order: event_id (categorical over ``haul_ids``),
+        variable, life_stage (categoricals), weight, count, row (1-based file row).
+    haul_ids
+        The accepted hauls' ids, in the order of the output's events.
+    temperature
+        Bottom temperature of each haul (NaN: none), in the same order.
+    zero_events
+        event_id and year of the hauls that get inferred zeros (:func:`target_years`).
+    blocked, study, protocol, quantities
+        As :func:`~harmonize.adapters.zero_filling.zero_fill`.
+    """
+
+    def __init__(self, catch: pd.DataFrame, haul_ids: pd.Index, temperature: np.ndarray,
+                 zero_events: pd.DataFrame, blocked: pd.DataFrame, study: Study, protocol: str | None,
+                 quantities: list[tuple[str, str]]) -> None:
+        self.catch = catch
+        self.haul_ids = haul_ids
+        self.temperature = temperature
+        # the haul (position) of each catch row; -1 for none (then no event: the pipeline refuses it)
+        self.catch_haul = catch["event_id"].cat.codes.to_numpy()
+        self.zero_events = zero_events.reset_index(drop=True)
+        self.zero_haul = haul_ids.get_indexer(zero_events["event_id"])
+        # plain text: the few blocked pairs are looked up in every run
+        self.blocked = blocked.astype({"event_id": object, "variable": object})
+        self.study, self.protocol, self.quantities = study, protocol, quantities
+        self._valued: np.ndarray | None = None  # hauls with values, once every run was made
+
+    def blocks(self, order: np.ndarray, rows: int) -> Iterator[pd.DataFrame]:
+        n = len(self.haul_ids)
+        if n == 0:
+            yield self.frame()
+            return
+        order = np.asarray(order, dtype=np.int64)
+        rank = np.empty(n, dtype=np.int64)
+        rank[order] = np.arange(n)
+        # each catch row's haul by its place in ``order``; a row without a haul (none is
+        # expected: the pipeline refuses values without an event) goes with the last run
+        catch_rank = np.where(self.catch_haul >= 0, rank[np.maximum(self.catch_haul, 0)], n)
+        zero_rank = rank[self.zero_haul]
+        # runs of hauls of about ``rows`` values: two per catch row (biomass and count), the
+        # protocol's zeros and a temperature per haul, roughly
+        per_haul = (np.bincount(catch_rank, minlength=n + 1)[:n] * 2 + 2 * len(self.quantities) + 1)[order]
+        run = (np.cumsum(per_haul) - per_haul) // max(rows, 1)
+        cuts = np.concatenate([[0], np.flatnonzero(np.diff(run)) + 1, [n]])
+        by_rank = np.argsort(catch_rank, kind="stable")
+        starts = np.searchsorted(catch_rank[by_rank], cuts)
+        starts[-1] = len(by_rank)
+        valued = np.zeros(n, dtype=bool)
+        for (lo, hi), (a, b) in zip(zip(cuts[:-1], cuts[1:], strict=True),
+                                    zip(starts[:-1], starts[1:], strict=True), strict=True):
+            in_run = np.zeros(n, dtype=bool)
+            in_run[order[lo:hi]] = True
+            values = self._values(self.catch.iloc[np.sort(by_rank[a:b])],
+                                  self.zero_events.iloc[np.flatnonzero((zero_rank >= lo) & (zero_rank < hi))], in_run)
+            codes = values["event_id"].cat.codes.to_numpy()
+            valued[np.flatnonzero(in_run)[codes[codes >= 0]]] = True
+            yield values
+        self._valued = valued  # every run made: which hauls have values is known
+
+    def frame(self) -> pd.DataFrame:
+        return self._values(self.catch, self.zero_events, np.ones(len(self.haul_ids), dtype=bool))
+
+    def event_ids(self) -> np.ndarray:
+        if self._valued is not None:
+            return np.asarray(self.haul_ids[self._valued], dtype=object)
+        return self._event_ids()
+
+    def _event_ids(self) -> np.ndarray:
+        """The hauls with values, found without making them: catch, temperature or a zero."""
+        has = np.zeros(len(self.haul_ids), dtype=bool)
+        has[self.catch_haul[self.catch_haul >= 0]] = True  # every accepted catch row has a weight or a count
+        has |= np.isfinite(self.temperature)
+        if self.quantities:
+            step = 200_000  # the zero pairs of a bounded number of hauls at a time
+            for i in range(0, len(self.zero_events), step):
+                part = self.zero_events.iloc[i:i + step]
+                zero_rows, _ = zero_pairs(part, self._caught(part), self.blocked, self.study, self.protocol)
+                has[self.zero_haul[i + zero_rows]] = True
+        return np.asarray(self.haul_ids[has], dtype=object)
+
+    def _caught(self, events: pd.DataFrame) -> pd.DataFrame:
+        """Catch keys of the catch rows of ``events``."""
+        hauls = np.zeros(len(self.haul_ids), dtype=bool)
+        hauls[self.haul_ids.get_indexer(events["event_id"])] = True
+        mine = hauls[np.maximum(self.catch_haul, 0)] & (self.catch_haul >= 0)
+        return self.catch.loc[mine, ["event_id", "variable", "life_stage"]]
+
+    def _values(self, catch: pd.DataFrame, zero_events: pd.DataFrame, hauls: np.ndarray) -> pd.DataFrame:
+        """Catch sums of ``catch``, zeros of ``zero_events`` and the temperatures of the hauls in the mask."""
+        # haul ids as categories of this run's hauls only: every step after this one looks
+        # up categories, and the run's are a few thousand where the file's are a million
+        in_run = np.flatnonzero(hauls)
+        run_ids = self.haul_ids[in_run]
+        local = np.full(len(self.haul_ids) + 1, -1, dtype=np.int64)
+        local[in_run] = np.arange(in_run.size)
+        catch = catch.assign(event_id=pd.Categorical.from_codes(local[catch["event_id"].cat.codes.to_numpy()],
+                                                                categories=run_ids))
+        values = _catch_values(catch)
+        zeros = _zero_values(zero_events, catch[["event_id", "variable", "life_stage"]], self.blocked, self.study,
+                             self.protocol, self.quantities, run_ids)
+        measured = hauls & np.isfinite(self.temperature)
+        temps = _temperature_values(pd.DataFrame({"event_id": self.haul_ids[measured],
+                                                  "bottom_temperature": self.temperature[measured]}), run_ids)
+        values = _concat_values([values, zeros, temps])
+        values["n_vessels"] = pd.Series(pd.NA, index=values.index, dtype="Int32")
+        return values

@@ -447,7 +447,7 @@ def plan_variable(ds: xr.Dataset, mapping: VariableMapping, settings: GriddedSet
         raise InputFileError(path, f"the time axis '{t_dim}' of '{name}' has no steps: the file holds no values "
                              "to read")
     time, at, time_notes = _time_steps(ds, t_name, name, path)
-    # the earliest-date rule of the tabular sources (reading.EARLIEST_TIME): older steps are bad times
+    # the earliest-date rule of the tabular sources (harmonize.clock.EARLIEST_TIME): older steps are bad times
     early = at.valid & (at.year < _EARLIEST_YEAR)
     periods = assign_periods(at.year, at.month, at.valid & ~early, settings.period, study.seasons)
 

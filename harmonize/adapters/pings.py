@@ -12,7 +12,7 @@ distinct vessels (harmonize.adapters.fishing). Ping files are the largest inputs
 runs in DuckDB SQL (window functions over vessel and time), streaming with bounded memory;
 only the domain test and the grid cell of each position run in numpy, batch by batch.
 
-Rows are numbered as every other reader of harmonize numbers them (``reading.LineReader``):
+Rows are numbered as every other reader of harmonize numbers them (``harmonize.reading.text.LineReader``):
 data rows as a person counts them, the header excluded, blank lines and lines made only of
 delimiters not counted. DuckDB's fast CSV reader is used for well-formed files; when it
 rejects a line, fails, or meets a row it reads differently (all cells blank, a cell that

@@ -22,6 +22,7 @@ from harmonize import Store, load_study
 from harmonize.adapters.base import AdapterOutput
 from harmonize.adapters.zero_filling import zero_fill
 from harmonize.ingest import assemble, prepare, store_output
+from tests.trawl_profiles import GENERATED_TRAWL_PROFILE
 
 #: Content digest of the messy trawl fixture's store (observation rows without ingest ids),
 #: made by the implementation before the block-wise change (commit 8ccd175: one table, Python
@@ -114,20 +115,6 @@ def _trawl_files(draw: st.DrawFn) -> tuple[str, str]:
     return "\n".join(hauls) + "\n", "\n".join(rows) + "\n"
 
 
-_PROFILE = """\
-[source]
-id = "gen_trawl"
-kind = "trawl"
-provider_type = "agency"
-protocol = "keldmar_bottom_trawl"
-
-[columns.events]
-event_id = "haul_id"
-
-[columns.records]
-event_id = "haul_id"
-taxon = "species"
-"""
 
 
 @settings(max_examples=scaled(15), deadline=None)
@@ -139,7 +126,7 @@ def test_generated_trawl_input_coded_blocks_equal_plain_one_table(
 
     study_dir = tmp_path_factory.mktemp("gen") / "study"
     shutil.copytree(Path(__file__).resolve().parent.parent / "fixtures" / "keldmar", study_dir)
-    (study_dir / "profiles" / "trawl_agency.toml").write_text(_PROFILE, encoding="utf-8")
+    (study_dir / "profiles" / "trawl_agency.toml").write_text(GENERATED_TRAWL_PROFILE, encoding="utf-8")
     (study_dir / "h.csv").write_text(files[0], encoding="utf-8")
     (study_dir / "c.csv").write_text(files[1], encoding="utf-8")
     study = load_study(study_dir)

@@ -29,23 +29,10 @@ from harmonize.ingest import prepare
 from harmonize.reading.fields import coerce_fields
 from harmonize.reading.quarantine import Rejections
 from harmonize.reading.text import read_table
+from tests.trawl_profiles import GENERATED_TRAWL_PROFILE
 
 FIXTURE = Path(__file__).resolve().parent.parent / "fixtures" / "keldmar"
 
-_PROFILE = """\
-[source]
-id = "gen_trawl"
-kind = "trawl"
-provider_type = "agency"
-protocol = "keldmar_bottom_trawl"
-
-[columns.events]
-event_id = "haul_id"
-
-[columns.records]
-event_id = "haul_id"
-taxon = "species"
-"""
 
 _TAXA = ["Ostravix keldensis", "keld cod", "LUMB PAL", "Syrranthus minor", "Gadoides ignotus", "\"red, calverion\"", ""]
 
@@ -83,7 +70,7 @@ def _files(draw: st.DrawFn) -> tuple[str, str]:
 def _study(root: Path, files: tuple[str, str]) -> Path:
     study_dir = root / "study"
     shutil.copytree(FIXTURE, study_dir)
-    (study_dir / "profiles" / "trawl_agency.toml").write_text(_PROFILE, encoding="utf-8")
+    (study_dir / "profiles" / "trawl_agency.toml").write_text(GENERATED_TRAWL_PROFILE, encoding="utf-8")
     (study_dir / "h.csv").write_text(files[0], encoding="utf-8")
     (study_dir / "c.csv").write_text(files[1], encoding="utf-8")
     return study_dir

@@ -29,3 +29,20 @@ count = "N"
 bottom_depth_m = "fathom"
 weight = "g"
 """
+
+
+#: The trawl profile of the generated hauls and catch rows of the block tests (minimal columns).
+GENERATED_TRAWL_PROFILE = """\
+[source]
+id = "gen_trawl"
+kind = "trawl"
+provider_type = "agency"
+protocol = "keldmar_bottom_trawl"
+
+[columns.events]
+event_id = "haul_id"
+
+[columns.records]
+event_id = "haul_id"
+taxon = "species"
+"""

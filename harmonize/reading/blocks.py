@@ -27,6 +27,8 @@ from harmonize.reading.text import (
     RawTable,
     _check_header_names,
     _sniff_delimiter,
+    drop_blank_rows,
+    first_row_header,
     refuse_long_lines,
 )
 
@@ -210,16 +212,11 @@ def _arrow_blocks(path, profile: Profile) -> Iterator[_Block]:  # type: ignore[n
                 raise _NotForArrow from None
             if batch.num_columns != width:
                 raise _NotForArrow
-            blank = None
-            for column in batch.columns:
-                empty = pa.compute.equal(pa.compute.utf8_trim_whitespace(column), "")
-                blank = empty if blank is None else pa.compute.and_(blank, empty)
-            if blank is not None and pa.compute.any(blank).as_py():
-                batch = batch.filter(pa.compute.invert(blank))
+            batch = drop_blank_rows(batch)
             if header is None:
                 if batch.num_rows == 0:
                     continue
-                header = [str(h).strip().lstrip("\ufeff") for h in batch.slice(0, 1).to_pylist()[0].values()]
+                header = first_row_header(batch)
                 if len(set(header)) != len(header):
                     raise _NotForArrow
                 _check_header_names(path, header)

@@ -17,6 +17,7 @@ from collections.abc import Iterator, Sequence
 from contextlib import contextmanager
 from dataclasses import dataclass
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 import pandas as pd
@@ -24,6 +25,9 @@ import pandas as pd
 from harmonize.errors import InputFileError, short_text
 from harmonize.files import file_sha256
 from harmonize.profile import Profile
+
+if TYPE_CHECKING:
+    import pyarrow as pa
 
 #: The longest cell the line-by-line reader parses (Arrow's reader has no such limit).
 MAX_FIELD_CHARS = 1_000_000
@@ -358,16 +362,10 @@ def _read_csv_arrow(path: Path, profile: Profile) -> pd.DataFrame | None:
         return None
     if table.num_columns != width:
         return None
-    # rows whose cells are all blank are not data rows (nor a header)
-    blank = None
-    for column in table.columns:
-        empty = pa.compute.equal(pa.compute.utf8_trim_whitespace(column), "")
-        blank = empty if blank is None else pa.compute.and_(blank, empty)
-    if blank is not None and pa.compute.any(blank).as_py():
-        table = table.filter(pa.compute.invert(blank))
+    table = drop_blank_rows(table)
     if table.num_rows < 2:
         return None
-    header = [str(h).strip().lstrip("\ufeff") for h in table.slice(0, 1).to_pylist()[0].values()]
+    header = first_row_header(table)
     if len(set(header)) != len(header):
         return None
     body = table.slice(1)
@@ -377,6 +375,26 @@ def _read_csv_arrow(path: Path, profile: Profile) -> pd.DataFrame | None:
     return pd.DataFrame({name: pd.Series(pd.arrays.ArrowStringArray(body.column(i).combine_chunks(), dtype=text))
                          for i, name in enumerate(header)})
 
+
+
+def drop_blank_rows(table: pa.Table | pa.RecordBatch) -> pa.Table | pa.RecordBatch:
+    """The rows of a text table read by Arrow less those whose cells are all blank (they are
+    neither data rows nor a header)."""
+    import pyarrow as pa
+    import pyarrow.compute  # noqa: F401  (pa.compute)
+
+    blank = None
+    for column in table.columns:
+        empty = pa.compute.equal(pa.compute.utf8_trim_whitespace(column), "")
+        blank = empty if blank is None else pa.compute.and_(blank, empty)
+    if blank is not None and pa.compute.any(blank).as_py():
+        table = table.filter(pa.compute.invert(blank))
+    return table
+
+
+def first_row_header(table: pa.Table | pa.RecordBatch) -> list[str]:
+    """The column names a text table read without names holds in its first row (trimmed, no BOM)."""
+    return [str(h).strip().lstrip("\ufeff") for h in table.slice(0, 1).to_pylist()[0].values()]
 
 
 def refuse_long_lines(path: Path, limit: int = MAX_LINE_BYTES, block_size: int = 1 << 20) -> None:

@@ -3,8 +3,6 @@ text of a row read again from the file only when the quarantine needs it."""
 
 from __future__ import annotations
 
-import csv
-import io
 from collections.abc import Iterator, Sequence
 from dataclasses import dataclass
 
@@ -22,11 +20,10 @@ from harmonize.profile import Profile
 from harmonize.reading.fields import coerce_fields
 from harmonize.reading.quarantine import Rejections
 from harmonize.reading.text import (
-    _HEAD_BYTES,
     LineReader,
     RawTable,
     _check_header_names,
-    _sniff_delimiter,
+    arrow_layout,
     drop_blank_rows,
     first_row_header,
     refuse_long_lines,
@@ -170,24 +167,10 @@ def _arrow_blocks(path, profile: Profile) -> Iterator[_Block]:  # type: ignore[n
     """Blocks of a well-formed UTF-8 CSV file read by Arrow's streaming reader; raises
     :class:`_NotForArrow` (possibly after some blocks) where ``harmonize.reading.text._read_csv_arrow``
     would give the file to the line-by-line reader."""
-    if profile.encoding.lower().replace("_", "-") not in ("utf-8", "utf8"):
+    layout = arrow_layout(path, profile)
+    if layout is None:
         raise _NotForArrow
-    with open(path, "rb") as fh:
-        head = fh.read(_HEAD_BYTES)
-    text = head.decode("utf-8-sig", errors="ignore")
-    if len(head) == _HEAD_BYTES and "\n" not in text and "\r" not in text:
-        raise _NotForArrow
-    delimiter = profile.delimiter or _sniff_delimiter(text, path)
-    if len(delimiter) != 1:
-        raise _NotForArrow
-    try:
-        first = next((c for c in csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
-                      if any(x.strip() for x in c)), None)
-    except csv.Error:
-        raise _NotForArrow from None
-    if not first:
-        raise _NotForArrow
-    width = len(first)
+    delimiter, width = layout
     try:
         reader = pacsv.open_csv(
             path,

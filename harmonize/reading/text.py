@@ -318,6 +318,30 @@ def read_header(path: Path, profile: Profile) -> tuple[list[str], str]:
 _HEAD_BYTES = 1 << 16
 
 
+def arrow_layout(path: Path, profile: Profile) -> tuple[str, int] | None:
+    """The delimiter and the number of fields of a UTF-8 CSV file Arrow's reader can take, or
+    None where the line-by-line reader must (another encoding, a first line longer than the
+    sniffing window, a delimiter of more than one character, no row with a non-blank cell)."""
+    if profile.encoding.lower().replace("_", "-") not in ("utf-8", "utf8"):
+        return None
+    with open(path, "rb") as fh:
+        head = fh.read(_HEAD_BYTES)
+    text = head.decode("utf-8-sig", errors="ignore")
+    if len(head) == _HEAD_BYTES and "\n" not in text and "\r" not in text:
+        return None
+    delimiter = profile.delimiter or _sniff_delimiter(text, path)
+    if len(delimiter) != 1:
+        return None
+    try:
+        first = next((c for c in csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
+                      if any(x.strip() for x in c)), None)
+    except csv.Error:
+        return None
+    if not first:
+        return None
+    return delimiter, len(first)
+
+
 def _read_csv_arrow(path: Path, profile: Profile) -> pd.DataFrame | None:
     """The data rows of a well-formed UTF-8 CSV file as text, read by Arrow's CSV reader.
 
@@ -331,24 +355,10 @@ def _read_csv_arrow(path: Path, profile: Profile) -> pd.DataFrame | None:
     import pyarrow as pa
     import pyarrow.csv as pacsv
 
-    if profile.encoding.lower().replace("_", "-") not in ("utf-8", "utf8"):
+    layout = arrow_layout(path, profile)
+    if layout is None:
         return None
-    with open(path, "rb") as fh:
-        head = fh.read(_HEAD_BYTES)
-    text = head.decode("utf-8-sig", errors="ignore")
-    if len(head) == _HEAD_BYTES and "\n" not in text and "\r" not in text:
-        return None  # a first line longer than the sniffing window
-    delimiter = profile.delimiter or _sniff_delimiter(text, path)
-    if len(delimiter) != 1:
-        return None
-    try:
-        first = next((c for c in csv.reader(io.StringIO(text, newline=""), delimiter=delimiter)
-                      if any(x.strip() for x in c)), None)
-    except csv.Error:
-        return None
-    if not first:
-        return None
-    width = len(first)
+    delimiter, width = layout
     try:  # a row with another number of fields than the first raises: the line reader takes over
         table = pacsv.read_csv(
             path,

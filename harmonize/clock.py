@@ -24,6 +24,8 @@ from zoneinfo import ZoneInfo
 import numpy as np
 import pandas as pd
 
+from harmonize.sql import sql_text
+
 MICROSECONDS_PER_HOUR = 3_600_000_000
 AMBIGUOUS_CHOICES = ("earlier", "later")
 #: Earlier date-times are typing errors (a lone "-1" parses as year -1), not survey data.
@@ -125,7 +127,7 @@ def sql_local_problem(local: str, zone: str) -> str:
     happens twice (every clock change of the tz database moves the clocks by at most two
     hours: common practice, from memory).
     """
-    z = "'" + zone.replace("'", "''") + "'"
+    z = sql_text(zone)
     utc = f"timezone({z}, {local})"
     back = f"timezone({z}, {utc})"
     shifts = ("30 MINUTE", "1 HOUR", "2 HOUR")
@@ -135,7 +137,7 @@ def sql_local_problem(local: str, zone: str) -> str:
 
 def sql_offset_text(instant: str, zone: str) -> str:
     """DuckDB expression: the UTC offset of ``zone`` at a TIMESTAMPTZ, as text 'UTC+01:00'."""
-    z = "'" + zone.replace("'", "''") + "'"
+    z = sql_text(zone)
     minutes = f"CAST(round(epoch(timezone({z}, {instant}) - timezone('UTC', {instant})) / 60) AS INTEGER)"
     return (f"printf('UTC%s%02d:%02d', CASE WHEN {minutes} < 0 THEN '-' ELSE '+' END, "
             f"abs({minutes}) // 60, abs({minutes}) % 60)")
@@ -143,7 +145,7 @@ def sql_offset_text(instant: str, zone: str) -> str:
 
 def sql_resolved(local: str, zone: str, choice: str) -> str:
     """DuckDB expression: the earlier or later UTC instant (TIMESTAMPTZ) shown as ``local``."""
-    z = "'" + zone.replace("'", "''") + "'"
+    z = sql_text(zone)
     utc = f"timezone({z}, {local})"
     shifts = ("30 MINUTE", "1 HOUR", "2 HOUR")
     candidates = ", ".join([utc] + [f"{utc} {op} INTERVAL {s}" for s in shifts for op in ("+", "-")])

@@ -34,6 +34,8 @@ import duckdb
 import numpy as np
 import pandas as pd
 
+from harmonize.sql import sql_text
+
 log = logging.getLogger(__name__)
 
 #: Start and end positions of an event's track (tow, transect segment): exact positions, so
@@ -62,10 +64,6 @@ def generalisation_text(generalise_deg: float) -> str:
     """The sentence that goes with every generalised event (dataGeneralizations)."""
     return (f"coordinates rounded to {generalise_deg:g} degree and grid cell withheld: a sensitive taxon was "
             "recorded at this event (Chapman 2020, GBIF)")
-
-
-def _sql_text(value: str) -> str:
-    return "'" + str(value).replace("'", "''") + "'"
 
 
 @dataclass(frozen=True)
@@ -118,7 +116,7 @@ class Disclosure:
         """SQL condition on observation rows: a sensitive taxon recorded present."""
         if not self.sensitive_taxa:
             return "FALSE"
-        names = ", ".join(_sql_text(t) for t in self.sensitive_taxa)
+        names = ", ".join(sql_text(t) for t in self.sensitive_taxa)
         return f"(variable IN ({names}) AND (quantity = 'presence' OR value > 0))"
 
     def rounded_sql(self, column: str) -> str:
@@ -138,7 +136,7 @@ class Disclosure:
         """
         if self.precise:
             return f"SELECT *, CAST(NULL AS VARCHAR) AS {GENERALISATION_COLUMN} FROM {source} WHERE {where}"
-        note = _sql_text(generalisation_text(self.generalise_deg))
+        note = sql_text(generalisation_text(self.generalise_deg))
         sens = (f"SELECT DISTINCT source_id, event_id FROM {source} WHERE {self.sensitive_present_sql()}"
                 if self.sensitive_taxa else
                 "SELECT CAST(NULL AS VARCHAR) AS source_id, CAST(NULL AS VARCHAR) AS event_id WHERE FALSE")
@@ -317,7 +315,7 @@ def _prepare_aggregate(rules: Disclosure, con: duckdb.DuckDBPyConnection, study:
                CAST(NULL AS VARCHAR) AS life_stage, 'measurement' AS quantity, value, unit, effort, effort_unit,
                CASE WHEN effort > 0 THEN value / effort END AS density, FALSE AS zero_filled,
                CAST(n_vessels AS INTEGER) AS n_vessels, n_values,
-               [{_sql_text(AGGREGATED_FLAG)}] AS flags, CAST(NULL AS VARCHAR) AS source_file,
+               [{sql_text(AGGREGATED_FLAG)}] AS flags, CAST(NULL AS VARCHAR) AS source_file,
                CAST(NULL AS BIGINT) AS source_row, CAST(NULL AS VARCHAR) AS {GENERALISATION_COLUMN}
         FROM _disclosure_blocks""")
     return replace(rules, level=chosen, aggregate_withheld=withheld)

@@ -28,6 +28,7 @@ from harmonize.files import digests_known, file_sha256
 from harmonize.membership import codes_in, distinct_present, is_in
 from harmonize.memory import release_free_memory
 from harmonize.profile import Profile, find_profile, load_profile, peek_kind
+from harmonize.sql import sql_text
 from harmonize.store import IngestRecord, Store
 from harmonize.study import Study
 from harmonize.tagging import (
@@ -598,10 +599,7 @@ def _density_unit_expr(con: duckdb.DuckDBPyConnection, va_tab: pa.Table, ev_tab:
     if not pairs:
         return "CAST(NULL AS VARCHAR)"
 
-    def lit(text: str) -> str:
-        return "'" + text.replace("'", "''") + "'"
-
-    whens = " ".join(f"WHEN v.unit = {lit(u)} AND e.effort_unit = {lit(f)} THEN {lit(d) if d is not None else 'NULL'}"
+    whens = " ".join(f"WHEN v.unit = {sql_text(u)} AND e.effort_unit = {sql_text(f)} THEN {sql_text(d) if d is not None else 'NULL'}"
                      for u, f, d in pairs)
     return f"CASE {whens} END"
 

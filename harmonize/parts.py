@@ -57,6 +57,7 @@ import duckdb
 import pyarrow as pa
 
 from harmonize.contract import observation_sql_columns
+from harmonize.sql import sql_text
 from harmonize.tracks import track_sql
 
 
@@ -68,7 +69,7 @@ def merged_kinds() -> tuple[str, ...]:
 
 
 def _kinds_sql() -> str:
-    return ", ".join("'" + k.replace("'", "''") + "'" for k in merged_kinds())
+    return ", ".join(sql_text(k) for k in merged_kinds())
 
 #: Merged fishing hours at or below this are a cell-period with no fishing (the parts and
 #: the joined edges cancel up to rounding); 1e-9 h is 3.6 microseconds.

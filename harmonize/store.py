@@ -52,6 +52,7 @@ from harmonize.contract import CONTRACT_VERSION, observation_sql_columns
 from harmonize.errors import StoreBusyError, StoreError
 from harmonize.files import file_digest, fsync_dir, fsync_file
 from harmonize.locks import FileLock, is_free
+from harmonize.sql import sql_text
 
 DB_NAME = "harmonized.duckdb"
 OBSERVATIONS_DIR = "observations"
@@ -476,8 +477,8 @@ class Store:
     def _search_here(self, con: duckdb.DuckDBPyConnection) -> None:
         """Resolve relative parquet paths against the store folder (the views name their files
         relative to it, so that a moved study folder still reads)."""
-        folder = str(self.directory).replace("'", "''")
-        con.execute(f"SET file_search_path = '{folder}'")
+        folder = sql_text(str(self.directory))
+        con.execute(f"SET file_search_path = {folder}")
 
     def _define_view(self, con: duckdb.DuckDBPyConnection, temporary: bool) -> None:
         """(Re)define the observations views over the live files."""
@@ -1215,7 +1216,7 @@ def provenance(record: IngestRecord, files: Sequence[dict[str, object]]) -> dict
 
 
 def _parquet_source(paths: Sequence[str]) -> str:
-    listing = ", ".join("'" + p.replace("'", "''") + "'" for p in paths)
+    listing = ", ".join(sql_text(p) for p in paths)
     return (f"read_parquet([{listing}], hive_partitioning = true, "
             "hive_types = {'source_kind': VARCHAR, 'season_year': INTEGER}, union_by_name = true)")
 
@@ -1225,7 +1226,7 @@ def _naive_time_files(con: duckdb.DuckDBPyConnection, paths: Sequence[str]) -> s
 
     Read from the parquet footers (isAdjustedToUTC=0): files of store versions 1 to 3.
     """
-    listing = ", ".join("'" + p.replace("'", "''") + "'" for p in paths)
+    listing = ", ".join(sql_text(p) for p in paths)
     found = {r[0] for r in con.execute(
         f"""SELECT DISTINCT file_name FROM parquet_schema([{listing}])
             WHERE name = 'event_start' AND logical_type LIKE '%isAdjustedToUTC=0%'""").fetchall()}
@@ -1280,7 +1281,7 @@ def _flagged_view_sql(con: duckdb.DuckDBPyConnection, base: str) -> str:
         "SELECT DISTINCT i.source_kind FROM store_flags f JOIN ingests i USING (ingest_id) ORDER BY 1").fetchall()]
     if not flagged:
         return f"SELECT {plain} FROM {base}"
-    kinds = ", ".join("'" + k.replace("'", "''") + "'" for k in flagged)
+    kinds = ", ".join(sql_text(k) for k in flagged)
     select = ", ".join(
         'CASE WHEN f.extra IS NULL THEN b.flags ELSE list_sort(list_distinct(list_concat(b.flags, f.extra))) END AS "flags"'
         if c == "flags" else f'b."{c}"' for c in cols)

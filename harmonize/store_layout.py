@@ -31,6 +31,8 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
+from harmonize.sql import sql_text
+
 #: The key of the part files' key-value metadata.
 METADATA_KEY = "harmonize"
 #: Version of the JSON under :data:`METADATA_KEY` (major.minor: a reader refuses another major).
@@ -124,9 +126,9 @@ def write_partitions(table: pa.Table, folder: Path, provenance: Mapping[str, Any
             target.mkdir(parents=True, exist_ok=True)
             part = ordered.slice(offset, n)
             con.register("part", part.drop_columns(["source_kind", "season_year"]))
-            name = str(target / f"part-{uuid.uuid4()}.parquet").replace("'", "''")
+            name = sql_text(str(target / f"part-{uuid.uuid4()}.parquet"))
             kv = _kv_option(provenance, n, _zero_filled(part) if provenance is not None else None)
-            con.execute(f"COPY part TO '{name}' (FORMAT parquet, COMPRESSION zstd, "
+            con.execute(f"COPY part TO {name} (FORMAT parquet, COMPRESSION zstd, "
                         f"ROW_GROUP_SIZE {_ROW_GROUP_ROWS}{kv})")
             con.unregister("part")
             offset += n
@@ -180,8 +182,8 @@ def _zero_filled(block: pa.Table) -> int:
 def _kv_option(provenance: Mapping[str, Any] | None, rows: int | None, zero_filled: int | None) -> str:
     if provenance is None:
         return ""
-    text = part_metadata(provenance, rows, zero_filled).replace("'", "''")
-    return f", KV_METADATA {{{METADATA_KEY}: '{text}'}}"
+    text = sql_text(part_metadata(provenance, rows, zero_filled))
+    return f", KV_METADATA {{{METADATA_KEY}: {text}}}"
 
 
 def _write_partitions_sorted_in_copy(con: duckdb.DuckDBPyConnection, table: pa.Table, folder: Path,
@@ -192,10 +194,10 @@ def _write_partitions_sorted_in_copy(con: duckdb.DuckDBPyConnection, table: pa.T
     count is the file's): one COPY writes every partition.
     """
     con.register("obs", table)
-    target = str(folder).replace("'", "''")
+    target = sql_text(str(folder))
     con.execute(
         f"""COPY (SELECT * FROM obs ORDER BY source_kind, season_year, event_start, event_id)
-            TO '{target}' (FORMAT parquet, PARTITION_BY (source_kind, season_year),
+            TO {target} (FORMAT parquet, PARTITION_BY (source_kind, season_year),
             COMPRESSION zstd, ROW_GROUP_SIZE {_ROW_GROUP_ROWS}, FILENAME_PATTERN 'part-{{uuid}}'
             {_kv_option(provenance, None, None)})"""
     )

@@ -34,6 +34,7 @@ import duckdb
 import pandas as pd
 
 from harmonize.errors import HarmonizeError
+from harmonize.sql import sql_text
 
 if TYPE_CHECKING:
     from harmonize.audit.findings import Finding
@@ -245,7 +246,7 @@ def _changed_values(con: duckdb.DuckDBPyConnection, store_dir: Path, old: str, n
         full = [store_dir / p for p in rel]
         if not full or not all(p.is_file() for p in full):
             return None
-        paths[ingest] = ", ".join("'" + str(p).replace("'", "''") + "'" for p in full)
+        paths[ingest] = ", ".join(sql_text(str(p)) for p in full)
 
     def src(ingest: str) -> str:
         return (f"read_parquet([{paths[ingest]}], hive_partitioning = true, union_by_name = true, "

@@ -389,9 +389,9 @@ def export_dwca(study: Study, out: str | Path, filters: ExportFilters | None = N
         written: dict[str, int] = {}
         for name, sql in (("event", _events_sql(study, generalise_deg, with_effort)),
                           ("occurrence", _occurrences_sql()), ("emof", _emof_sql(with_effort))):
-            target = str(folder / FILES[name]).replace("'", "''")
+            target = sql_text(str(folder / FILES[name]))
             written[name] = int(con.execute(
-                f"COPY ({sql}) TO '{target}' (FORMAT csv, DELIMITER '\t', HEADER true, QUOTE '', ESCAPE '')"
+                f"COPY ({sql}) TO {target} (FORMAT csv, DELIMITER '\t', HEADER true, QUOTE '', ESCAPE '')"
             ).fetchall()[0][0])
         facts = _facts(con, folder)
         notes = [
@@ -430,8 +430,8 @@ def _facts(con: Any, folder: Path) -> dict[str, int]:
             FROM {BASE_VIEW}""").fetchall()[0]
 
     def read(name: str) -> str:
-        path = str(folder / FILES[name]).replace("'", "''")
-        return f"read_csv('{path}', delim = '\t', header = true, quote = '', escape = '', all_varchar = true)"
+        path = sql_text(str(folder / FILES[name]))
+        return f"read_csv({path}, delim = '\t', header = true, quote = '', escape = '', all_varchar = true)"
 
     generalised = con.execute(
         f"SELECT count(*) FROM {read('event')} WHERE coalesce(\"dataGeneralizations\", '') <> ''").fetchall()[0][0]

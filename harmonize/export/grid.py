@@ -47,6 +47,7 @@ from harmonize.export.selection import (
     open_selection,
     prepare_target,
 )
+from harmonize.sql import sql_text
 from harmonize.study import Study
 from harmonize.units import density_unit_sql
 
@@ -123,9 +124,9 @@ def export_grid(study: Study, out: str | Path, filters: ExportFilters | None = N
         meta["columns"] = describe_columns(query_schema(con, grid_query(geometry=parquet)))
         files = [path]
         if parquet:
-            target = str(path).replace("'", "''")
+            target = sql_text(str(path))
             query = grid_query(geometry=True)
-            n = con.execute(f"COPY ({query}) TO '{target}' "
+            n = con.execute(f"COPY ({query}) TO {target} "
                             f"(FORMAT parquet, COMPRESSION zstd, {kv_metadata_sql(meta, con, query)})"
                             ).fetchall()[0][0]
         else:

@@ -30,6 +30,7 @@ from harmonize.export.metadata import (
 )
 from harmonize.export.safe_csv import copy_safe_csv
 from harmonize.export.selection import BASE_VIEW, ExportFilters, open_selection, prepare_target
+from harmonize.sql import sql_ident, sql_text
 from harmonize.study import Study
 
 SUFFIXES = (".parquet", ".csv")
@@ -43,7 +44,7 @@ ROW_FLAGS = "row_flags"
 
 
 def _column(name: str) -> str:
-    quoted = '"' + name.replace('"', '""') + '"'
+    quoted = sql_ident(name)
     if name == "flags":
         warnings.warn("the long table's column 'flags' is named 'row_flags' since harmonize 0.1 (store "
                       "version 4); ask for 'row_flags'", DeprecationWarning, stacklevel=4)
@@ -136,9 +137,9 @@ def export_long(study: Study, out: str | Path, filters: ExportFilters | None = N
         meta["columns"] = describe_columns(query_schema(con, long_query(ordered=False, geometry=parquet)))
         files = [path]
         if parquet:
-            target = str(path).replace("'", "''")
+            target = sql_text(str(path))
             query = long_query(ordered=False, geometry=True)
-            con.execute(f"COPY ({query}) TO '{target}' "
+            con.execute(f"COPY ({query}) TO {target} "
                         f"(FORMAT parquet, COMPRESSION zstd, ROW_GROUP_SIZE 500000, "
                         f"{kv_metadata_sql(meta, con, query)})")
         else:

@@ -13,6 +13,8 @@ from pathlib import Path
 import duckdb
 import pandas as pd
 
+from harmonize.sql import sql_ident, sql_text
+
 # OWASP ASVS 5.0 V1.2.10: a text cell starting with = + - @ tab or CR (or NUL) is read as a
 # formula by spreadsheets; prefix it with a single quote. Numbers are left alone.
 _TRIGGERS = ("=", "+", "-", "@", "\t", "\r", "\0")
@@ -52,11 +54,11 @@ def copy_safe_csv(con: duckdb.DuckDBPyConnection, query: str, path: str | Path,
     described = con.execute(f"DESCRIBE ({query})").fetchall()
     select: list[str] = []
     columns: list[tuple[str, str]] = []
-    sep = "'" + list_separator.replace("'", "''") + "'"
+    sep = sql_text(list_separator)
     for name, sql_type, *_ in described:
-        ident = '"' + name.replace('"', '""') + '"'
+        ident = sql_ident(name)
         # the header is text too: a column named after a taxon or variable is guarded as well
-        alias = '"' + _neutral_name(name).replace('"', '""') + '"'
+        alias = sql_ident(_neutral_name(name))
         t = str(sql_type).upper()
         if t.endswith("[]"):
             select.append(f"{neutralise_sql(f'array_to_string({ident}, {sep})')} AS {alias}")
@@ -70,9 +72,9 @@ def copy_safe_csv(con: duckdb.DuckDBPyConnection, query: str, path: str | Path,
         else:
             select.append(f"{ident} AS {alias}")
             columns.append((name, t))
-    target = str(path).replace("'", "''")
+    target = sql_text(str(path))
     written = con.execute(
-        f"COPY (SELECT {', '.join(select)} FROM ({query})) TO '{target}' (FORMAT csv, HEADER {str(header).lower()})").fetchall()
+        f"COPY (SELECT {', '.join(select)} FROM ({query})) TO {target} (FORMAT csv, HEADER {str(header).lower()})").fetchall()
     return columns, int(written[0][0])
 
 

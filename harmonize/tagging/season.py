@@ -14,6 +14,8 @@ from collections.abc import Mapping
 import numpy as np
 import pandas as pd
 
+from harmonize.sql import sql_text
+
 UTC = "UTC"
 
 
@@ -89,7 +91,7 @@ def local_sql(column: str, timezone: str = UTC) -> str:
     """DuckDB expression: the wall-clock TIMESTAMP in ``timezone`` of a UTC TIMESTAMP column."""
     if timezone == UTC:
         return column
-    zone = "'" + timezone.replace("'", "''") + "'"
+    zone = sql_text(timezone)
     # timezone('UTC', naive) reads the wall clock as UTC -> TIMESTAMPTZ; timezone(zone, tz) gives
     # the wall clock there (DuckDB ICU functions)
     return f"timezone({zone}, timezone('UTC', CAST({column} AS TIMESTAMP)))"
@@ -102,7 +104,7 @@ def season_sql(column: str, seasons: Mapping[str, tuple[int, ...]], timezone: st
     for name, months in seasons.items():
         names[list(months)] = name
     offsets = season_year_offsets(seasons)[1:].tolist()
-    names_sql = "[" + ", ".join("'" + str(n).replace("'", "''") + "'" for n in names[1:]) + "]"
+    names_sql = "[" + ", ".join(sql_text(str(n)) for n in names[1:]) + "]"
     local = local_sql(column, timezone)
     return (f"({names_sql})[month({local})]",
             f"CAST(year({local}) + ({offsets})[month({local})] AS INTEGER)")

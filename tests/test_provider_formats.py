@@ -264,6 +264,13 @@ def test_port_pings_are_not_taken_for_swapped_coordinates(study_dir: Path) -> No
     notes = [n for n in json.loads(swap_run.stdout)["results"][0]["notes"] if "swapped" in n]
     assert notes == ["swapped.csv: 3 positions lie outside the study domain but would lie inside it with latitude "
                      "and longitude swapped; check which columns the profile maps to the latitude and longitude fields"]
+    # one such ping: the sentence in the singular
+    (study_dir / "one.csv").write_text(_pings(fishing[0] + swapped[0][:1], fishing[1] + swapped[1][:1],
+                                              fishing[2] + [3.0]))
+    one_run = run_cli("--study", str(study_dir), "check", "effort_pings", str(study_dir / "one.csv"), "--json")
+    notes = [n for n in json.loads(one_run.stdout)["results"][0]["notes"] if "swapped" in n]
+    assert notes == ["one.csv: 1 position lies outside the study domain but would lie inside it with latitude "
+                     "and longitude swapped; check which columns the profile maps to the latitude and longitude fields"]
 
 
 def test_demo_provider_ingests_as_sent(tmp_path: Path) -> None:

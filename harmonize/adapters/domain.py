@@ -71,6 +71,6 @@ def swapped_position_notes(study: Study, positions: list[tuple[str, np.ndarray, 
     counts: dict[str, int] = {}
     for file_name, lat, lon in positions:
         counts[file_name] = counts.get(file_name, 0) + swapped_positions(study, lat, lon)
-    return [f"{name}: {n:,} position{'s' if n != 1 else ''} lie outside the study domain but would lie inside "
+    return [f"{name}: {n:,} position{'s lie' if n != 1 else ' lies'} outside the study domain but would lie inside "
             "it with latitude and longitude swapped; check which columns the profile maps to the latitude "
             "and longitude fields" for name, n in counts.items() if n]

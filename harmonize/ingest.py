@@ -16,7 +16,7 @@ import numpy as np
 import pandas as pd
 import pyarrow as pa
 
-from harmonize import parts, twin_windows, twins
+from harmonize import connections, parts, twin_windows, twins
 from harmonize.adapters.base import Adapter, AdapterOutput, InputFile, ProgressCallback
 from harmonize.adapters.domain import swapped_position_notes
 from harmonize.adapters.registry import adapter_class, get_adapter, list_adapters
@@ -466,7 +466,7 @@ def assemble_blocks(out: AdapterOutput, study: Study, profile: Profile, kind: st
     ev_index = pd.Index(ev["event_id"])
     rank = _event_rank(ev)
     del ev
-    con = duckdb.connect()
+    con = connections.connect()
     try:
         params = [ingest_id, profile.source_id, kind, profile.provider_type, profile.protocol, Path(_main_file(out)).name]
         if not unique:

@@ -21,7 +21,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
-from harmonize import store_layout, twin_windows, twins
+from harmonize import connections, store_layout, twin_windows, twins
 from harmonize.errors import StoreError
 from harmonize.files import file_digest, fsync_dir
 from harmonize.locks import FileLock
@@ -174,7 +174,7 @@ def _repair_lost(store: Store, lost: list[Path], apply: bool) -> RepairPlan:
     """The database is gone: list what the files hold; with ``apply``, set them aside, start anew."""
     plan = RepairPlan(lost_database=True,
                       unlisted=[p.relative_to(store.directory).as_posix() for p in lost])
-    con = duckdb.connect()
+    con = connections.connect()
     found = []
     try:
         for path in lost:
@@ -230,7 +230,7 @@ def _database_problem(store: Store) -> str | None:
     if not store.db_path.is_file():
         return "is missing"
     try:
-        con = duckdb.connect(str(store.db_path), read_only=True)
+        con = connections.connect(str(store.db_path), read_only=True)
     except duckdb.Error as exc:
         text = str(exc).splitlines()[0] if str(exc) else type(exc).__name__
         if "lock" in text.lower():

@@ -23,6 +23,7 @@ ENVIRONMENT = {
     "export_memory_limit": "HARMONIZE_EXPORT_MEMORY_LIMIT",
     "wide_run_rows": "HARMONIZE_WIDE_RUN_ROWS",
     "lock_timeout_s": "HARMONIZE_LOCK_TIMEOUT",
+    "threads": "HARMONIZE_THREADS",
 }
 
 
@@ -44,6 +45,8 @@ class Settings:
         Sample rows per run of the wide export's pivot.
     lock_timeout_s
         Seconds to wait for another process to release the store.
+    threads
+        Threads of each DuckDB connection (:mod:`harmonize.connections`; unset: every core).
     """
 
     engine: str | None = None
@@ -52,6 +55,7 @@ class Settings:
     export_memory_limit: str | None = None
     wide_run_rows: str | None = None
     lock_timeout_s: str | None = None
+    threads: str | None = None
 
 
 _DEFAULTS = Settings()

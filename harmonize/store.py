@@ -47,7 +47,16 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from harmonize import __version__, faults, interrupts, parts, settings, store_layout, units
+from harmonize import (
+    __version__,
+    connections,
+    faults,
+    interrupts,
+    parts,
+    settings,
+    store_layout,
+    units,
+)
 from harmonize.contract import CONTRACT_VERSION, observation_sql_columns
 from harmonize.errors import StoreBusyError, StoreError
 from harmonize.files import file_digest, fsync_dir, fsync_file
@@ -369,7 +378,7 @@ class Store:
         delay = 0.05
         while True:
             try:
-                return duckdb.connect(str(self.db_path), read_only=read_only)
+                return connections.connect(str(self.db_path), read_only=read_only)
             except duckdb.IOException as exc:
                 text = str(exc)
                 if "lock" not in text.lower():

@@ -31,6 +31,7 @@ import pyarrow as pa
 import pyarrow.compute as pc
 import pyarrow.parquet as pq
 
+from harmonize import connections
 from harmonize.sql import sql_text
 
 #: The key of the part files' key-value metadata.
@@ -106,7 +107,7 @@ def write_partitions(table: pa.Table, folder: Path, provenance: Mapping[str, Any
     """
     if table.num_rows == 0:
         return
-    con = duckdb.connect()
+    con = connections.connect()
     try:
         keys = pa.table({"i": np.arange(table.num_rows, dtype=np.int64), "k": table["source_kind"],
                          "y": table["season_year"], "t": table["event_start"], "e": table["event_id"]})

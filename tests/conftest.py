@@ -34,3 +34,18 @@ def study_dir(tmp_path: Path) -> Path:
 @pytest.fixture
 def study(study_dir: Path) -> Study:
     return load_study(study_dir)
+
+
+@pytest.fixture(autouse=True)
+def _one_duckdb_thread_per_worker() -> object:
+    """Under pytest-xdist (two processes on two cores) each DuckDB connection takes one thread,
+    as ``HARMONIZE_THREADS=1`` would: without it every worker's connections start a thread per
+    core and the processes oversubscribe the cores (about 11 % slower, measured). A single
+    process (``make test``) runs with DuckDB's default."""
+    if not os.environ.get("PYTEST_XDIST_WORKER"):
+        yield None
+        return
+    from harmonize import settings as run_settings
+
+    with run_settings.applied(run_settings.Settings(threads="1")):
+        yield None

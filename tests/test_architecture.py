@@ -253,6 +253,7 @@ def test_settings_come_from_the_boundary_not_the_environment(tmp_path: Path, mon
     from harmonize.errors import StoreError
     from harmonize.store import DEFAULT_LOCK_TIMEOUT_S, Store
 
+    outside = settings.current()  # the test run's own (tests/conftest.py), unchanged by the library
     monkeypatch.setenv("HARMONIZE_LOCK_TIMEOUT", "7")
     assert Store(tmp_path).lock_timeout_s == DEFAULT_LOCK_TIMEOUT_S == 60.0
     with settings.applied(settings.from_environment({"HARMONIZE_LOCK_TIMEOUT": "7"})):
@@ -262,18 +263,20 @@ def test_settings_come_from_the_boundary_not_the_environment(tmp_path: Path, mon
         with pytest.raises(StoreError, match="HARMONIZE_LOCK_TIMEOUT='soon' is not a number of seconds"):
             Store(tmp_path)
     assert settings.from_environment({"HARMONIZE_ENGINE": "  ", "OTHER": "x"}) == settings.Settings()
-    assert settings.current() == settings.Settings()
+    assert settings.current() == outside
 
 
 def test_the_cli_reads_the_environment_for_one_command(study_dir: Path) -> None:
     from cli_runner import run_cli
 
+    from harmonize import settings
+
+    outside = settings.current()  # the test run's own (tests/conftest.py)
     # the command line applies HARMONIZE_LOCK_TIMEOUT: a bad value is its one-line usage error
     result = run_cli("--study", str(study_dir), "status", env={"HARMONIZE_LOCK_TIMEOUT": "soon"})
     assert result.exit_code == 2
     assert "HARMONIZE_LOCK_TIMEOUT='soon' is not a number of seconds" in result.stderr
-    from harmonize import settings
-    assert settings.current() == settings.Settings()   # nothing left behind in this process
+    assert settings.current() == outside   # nothing left behind in this process
 
 
 

@@ -35,7 +35,7 @@ import pandas as pd
 import pyarrow as pa
 import pyarrow.parquet as pq
 
-from harmonize import units
+from harmonize import connections, units
 from harmonize.adapters.base import AdapterOutput, InputFile, ProgressCallback
 from harmonize.adapters.domain import swapped_position_notes
 from harmonize.adapters.fishing import (
@@ -101,7 +101,7 @@ def file_columns(path: Path, profile: Profile) -> list[str]:
         raise InputFileError(path, "the file is empty; expected a header row and data rows")
     if path.suffix.lower() != ".parquet":
         return read_header(path, profile)[0]
-    con = duckdb.connect()
+    con = connections.connect()
     try:
         rel = con.sql(f"SELECT * FROM {_csv_source(path, profile)} LIMIT 0")
         return [c.strip().lstrip("\ufeff") for c in rel.columns]
@@ -341,7 +341,7 @@ class PingReader:
         # an in-memory database whose buffer manager spills to the temporary folder beyond
         # memory_limit: the working tables stay in memory while they fit (writing them to an
         # on-disk scratch database cost 3-4x more at 1e7 pings), and memory stays bounded
-        con = duckdb.connect()
+        con = connections.connect()
         try:
             con.execute(f"SET temp_directory = {sql_text(str(tmp))}")
             con.execute(f"SET memory_limit = {sql_text(self.settings.memory_limit)}")

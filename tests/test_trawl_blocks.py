@@ -22,7 +22,7 @@ from harmonize import Store, load_study
 from harmonize.adapters.base import AdapterOutput
 from harmonize.adapters.zero_filling import zero_fill
 from harmonize.ingest import assemble, prepare, store_output
-from tests.trawl_profiles import GENERATED_TRAWL_PROFILE
+from tests.trawl_profiles import GENERATED_TRAWL_PROFILE, generated_hauls
 
 #: Content digest of the messy trawl fixture's store (observation rows without ingest ids),
 #: made by the implementation before the block-wise change (commit 8ccd175: one table, Python
@@ -95,13 +95,7 @@ _TAXA = ["Ostravix keldensis", "keld cod", "LUMB PAL", "Syrranthus minor", "Gado
 @st.composite
 def _trawl_files(draw: st.DrawFn) -> tuple[str, str]:
     n_hauls = draw(st.integers(1, 6))
-    hauls = ["haul_id,start_time,end_time,start_lat,start_lon,end_lat,end_lon,net_width_m,bottom_depth_m,"
-             "bottom_temperature"]
-    for i in range(n_hauls):
-        year = draw(st.sampled_from([2014, 2018, 2021]))
-        temp = draw(st.sampled_from(["4.5", "", "x"]))
-        hauls.append(f"H{i},{year}-07-0{i % 9 + 1}T08:00,{year}-07-0{i % 9 + 1}T08:30,"
-                     f"56.{i},4.{i},56.{i}3,4.{i}2,17,80,{temp}")
+    hauls = generated_hauls(draw, n_hauls)
     rows = ["haul_id,species,life_stage,weight,count"]
     for _ in range(draw(st.integers(0, 25))):
         haul = draw(st.sampled_from([f"H{i}" for i in range(n_hauls)] + ["H99", ""]))

@@ -29,7 +29,7 @@ from harmonize.ingest import prepare
 from harmonize.reading.fields import coerce_fields
 from harmonize.reading.quarantine import Rejections
 from harmonize.reading.text import read_table
-from tests.trawl_profiles import GENERATED_TRAWL_PROFILE
+from tests.trawl_profiles import GENERATED_TRAWL_PROFILE, generated_hauls
 
 FIXTURE = Path(__file__).resolve().parent.parent / "fixtures" / "keldmar"
 
@@ -42,13 +42,7 @@ def _files(draw: st.DrawFn) -> tuple[str, str]:
     """A haul file and a catch file with the usual troubles: unknown hauls and taxa, bad
     numbers, empty cells, blank lines, quoted delimiters, and (sometimes) a malformed line."""
     n_hauls = draw(st.integers(1, 5))
-    hauls = ["haul_id,start_time,end_time,start_lat,start_lon,end_lat,end_lon,net_width_m,bottom_depth_m,"
-             "bottom_temperature"]
-    for i in range(n_hauls):
-        year = draw(st.sampled_from([2014, 2018, 2021]))
-        temp = draw(st.sampled_from(["4.5", "", "x"]))
-        hauls.append(f"H{i},{year}-07-0{i % 9 + 1}T08:00,{year}-07-0{i % 9 + 1}T08:30,"
-                     f"56.{i},4.{i},56.{i}3,4.{i}2,17,80,{temp}")
+    hauls = generated_hauls(draw, n_hauls)
     rows = ["haul_id,species,life_stage,weight,count"]
     for _ in range(draw(st.integers(1, 30))):
         kind = draw(st.sampled_from(["row"] * 8 + ["blank", "malformed"]))

@@ -254,26 +254,9 @@ def _block_sql(k: int, period: str, where: str, source: str) -> str:
         GROUP BY source_id, gear, block_x, block_y, season_year, {season}, depth_layer"""
 
 
-def season_year_bounds(seasons: Any, season_year: pd.Series) -> tuple[np.ndarray, np.ndarray]:
-    """First instant of each season year and the first instant after it (UTC).
-
-    Month m of season year y lies in calendar year ``y - offset[m]``
-    (:func:`harmonize.tagging.season_year_offsets`).
-    """
-    from harmonize.tagging import season_year_offsets
-
-    offsets = season_year_offsets(seasons)
-    months = sorted((-int(offsets[m]), m) for m in range(1, 13))
-    (y0, m0), (y1, m1) = months[0], months[-1]
-    sy = season_year.astype("int64").to_numpy()
-    start = pd.to_datetime(pd.DataFrame({"year": sy + y0, "month": m0, "day": 1}), utc=True)
-    end = pd.to_datetime(pd.DataFrame({"year": sy + y1, "month": m1, "day": 1}), utc=True) + pd.DateOffset(months=1)
-    return start.to_numpy(), end.to_numpy()
-
-
 def _prepare_aggregate(rules: Disclosure, con: duckdb.DuckDBPyConnection, study: Any, where: str,
                        source: str) -> Disclosure:
-    from harmonize.tagging import Grid
+    from harmonize.tagging import Grid, season_year_bounds
 
     # The store keeps vessel counts, not vessel identities: distinct vessels across the parts
     # of a block cannot be counted, but the largest part is a proven lower bound.
@@ -295,7 +278,8 @@ def _prepare_aggregate(rules: Disclosure, con: duckdb.DuckDBPyConnection, study:
     lon, lat = grid.cell_centres_lonlat(centre, blocks["block_y"].to_numpy(float) * k + k / 2 - 0.5)
     blocks["lon"], blocks["lat"] = np.asarray(lon, float), np.asarray(lat, float)
     if period == "year" and len(blocks):
-        blocks["event_start"], blocks["event_end"] = season_year_bounds(study.seasons, blocks["season_year"])
+        start, end = season_year_bounds(blocks["season_year"], study.seasons, study.timezone)
+        blocks["event_start"], blocks["event_end"] = start.dt.tz_localize("UTC"), end.dt.tz_localize("UTC")
     period_text = blocks["season_year"].astype(str) + "-" + (blocks["season"].fillna("all")
                                                              if period == "season" else "all")
     blocks["event_id"] = (blocks["gear"] + f"/k{k}_x" + blocks["block_x"].astype(str) + "_y"

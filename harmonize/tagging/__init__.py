@@ -7,6 +7,7 @@ from harmonize.tagging.season import (
     local_times,
     season_bounds,
     season_sql,
+    season_year_bounds,
     season_year_offsets,
     tag_season,
 )
@@ -24,6 +25,7 @@ __all__ = [
     "normalise_lon",
     "season_bounds",
     "season_sql",
+    "season_year_bounds",
     "season_year_offsets",
     "tag_depth_layer",
     "tag_season",

@@ -120,14 +120,31 @@ def season_bounds(
     :func:`season_year_offsets` shifts come first) to its last.
     """
     offsets = season_year_offsets(seasons)
-    starts, ends = {}, {}
-    for name, months in seasons.items():
-        firsts = sorted((-int(offsets[m]), m) for m in months)  # (year shift, month)
-        starts[name] = firsts[0]
-        ends[name] = firsts[-1]
+    names = list(seasons)
+    spans = [sorted((-int(offsets[m]), m) for m in seasons[n]) for n in names]  # (year shift, month)
+    codes = pd.Categorical(season, categories=names).codes
+    first = np.array([span[0] for span in spans], dtype=np.int64)[codes]
+    last = np.array([span[-1] for span in spans], dtype=np.int64)[codes]
+    return _month_span(season_year, first, last, timezone)
+
+
+def season_year_bounds(
+    season_year: pd.Series, seasons: Mapping[str, tuple[int, ...]], timezone: str = UTC
+) -> tuple[pd.Series, pd.Series]:
+    """First instant of each season year and the first instant after it (all its seasons), as
+    naive UTC ``datetime64[us]``: local midnights of the study calendar."""
+    offsets = season_year_offsets(seasons)
+    months = sorted((-int(offsets[m]), m) for m in range(1, 13))
+    n = len(season_year)
+    return _month_span(season_year, np.tile(months[0], (n, 1)), np.tile(months[-1], (n, 1)), timezone)
+
+
+def _month_span(season_year: pd.Series, first: np.ndarray, last: np.ndarray,
+                timezone: str) -> tuple[pd.Series, pd.Series]:
+    """From the first day of month ``first`` to the end of month ``last`` ((year shift, month)
+    rows) of each season year, local midnights of ``timezone`` as naive UTC."""
     sy = pd.Series(season_year).astype("int64").to_numpy()
-    first = np.array([starts[s] for s in season], dtype=np.int64).reshape(-1, 2)
-    last = np.array([ends[s] for s in season], dtype=np.int64).reshape(-1, 2)
+    first, last = np.asarray(first, np.int64).reshape(-1, 2), np.asarray(last, np.int64).reshape(-1, 2)
     start = pd.to_datetime(pd.DataFrame({"year": sy + first[:, 0], "month": first[:, 1], "day": 1}))
     end = (pd.to_datetime(pd.DataFrame({"year": sy + last[:, 0], "month": last[:, 1], "day": 1}))
            + pd.DateOffset(months=1))

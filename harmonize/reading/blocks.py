@@ -105,7 +105,7 @@ def read_typed_blocks(path: str | object, profile: Profile, role: str, specs: Se
 
 def _typed(path, profile, role, specs, rejections, schema_name, sha, arrow: bool):  # type: ignore[no-untyped-def]
     parts: list[pd.DataFrame] = []
-    found: list[Rejections] = []
+    found: list[tuple[int, Rejections]] = []
     header: list[str] | None = None
     n = 0
     blocks = _arrow_blocks(path, profile) if arrow else _line_blocks(path, profile)
@@ -115,9 +115,7 @@ def _typed(path, profile, role, specs, rejections, schema_name, sha, arrow: bool
         table = RawTable(path, role, text, sha)
         typed = coerce_fields(table, specs, profile, block_rej, schema_name,
                               [(r - offset, line, k) for r, line, k in malformed])
-        for part in block_rej._parts:  # noqa: SLF001 (positions of the block -> of the file)
-            part["pos"] += offset
-        found.append(block_rej)
+        found.append((offset, block_rej))
         parts.append(_categories(typed, specs))
         n = offset + len(text)
         del table, typed, text
@@ -126,10 +124,10 @@ def _typed(path, profile, role, specs, rejections, schema_name, sha, arrow: bool
         if arrow:
             raise _NotForArrow
         raise InputFileError(path, "the file has a header but no data rows")
-    for block_rej in found:
-        rejections._parts.extend(block_rej._parts)  # noqa: SLF001
+    for offset, block_rej in found:
+        rejections.extend(block_rej, offset)  # positions of the block -> of the file
     if found:  # the positions read, one entry per lat/lon pair as for a whole file
-        for entries in zip(*(r.positions for r in found), strict=True):
+        for entries in zip(*(r.positions for _, r in found), strict=True):
             rejections.positions.append((entries[0][0], np.concatenate([e[1] for e in entries]),
                                          np.concatenate([e[2] for e in entries])))
     frame = _concat(parts)

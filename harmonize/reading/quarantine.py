@@ -38,6 +38,12 @@ class Rejections:
             pd.DataFrame({"role": role, "pos": pos, "reason_code": str(reason), "message": msgs})
         )
 
+    def extend(self, other: Rejections, offset: int = 0) -> None:
+        """Take the rejections of ``other``, whose row positions count from ``offset`` (a block
+        of a table read block by block: its positions become the table's)."""
+        for part in other._parts:
+            self._parts.append(part.assign(pos=part["pos"].to_numpy() + offset) if offset else part)
+
     def _all(self) -> pd.DataFrame:
         if not self._parts:
             return pd.DataFrame({"role": [], "pos": np.array([], dtype=np.int64), "reason_code": [], "message": []})

@@ -33,9 +33,13 @@ test: $(STAMP) /usr/bin/chromium
 
 # The development lane: everything in-process but the slow, browser and Dask tests (make test
 # runs all, child processes included), on two processes (pytest-xdist), with the "fast"
-# hypothesis profile (fewer examples).
+# hypothesis profile (fewer examples). The tests' folders go to the memory file system when it
+# has room (2 GB; a container's 64 MB /dev/shm does not): creating and deleting thousands of
+# small stores there costs about a sixth less of the lane's time than on a disk.
+FAST_TMP := $(shell [ -w /dev/shm ] && [ "$$(df --output=avail -k /dev/shm 2>/dev/null | tail -1)" -gt 2000000 ] 2>/dev/null && echo /dev/shm || echo $${TMPDIR:-/tmp})
+
 test-fast: $(STAMP)
-	HYPOTHESIS_PROFILE=fast $(BIN)/python -m pytest -q -n 2 --dist loadfile -m "not slow and not browser and not dask and not subprocess"
+	TMPDIR=$(FAST_TMP) HYPOTHESIS_PROFILE=fast $(BIN)/python -m pytest -q -n 2 --dist loadfile -m "not slow and not browser and not dask and not subprocess"
 	$(BIN)/ruff check harmonize cli tests
 
 lint: $(STAMP)

@@ -29,6 +29,7 @@ its ingest's record as key-value metadata, each committed ingest leaves a seal
 from __future__ import annotations
 
 import dataclasses
+import hashlib
 import json
 import logging
 import os
@@ -489,8 +490,16 @@ class Store:
         folder = sql_text(str(self.directory))
         con.execute(f"SET file_search_path = {folder}")
 
-    def _define_view(self, con: duckdb.DuckDBPyConnection, temporary: bool) -> None:
-        """(Re)define the observations views over the live files."""
+    def _define_view(self, con: duckdb.DuckDBPyConnection, temporary: bool, flagged: bool = True) -> None:
+        """(Re)define the observations views over the live files (``flagged=False``: only
+        ``observation_parts`` and ``observations_base``, which the commit hooks read)."""
+        sqls = self._base_view_sql(con)
+        if flagged:
+            sqls |= _flagged_view_sqls(con)
+        self._create_views(con, sqls, temporary)
+
+    def _base_view_sql(self, con: duckdb.DuckDBPyConnection) -> dict[str, str]:
+        """The SELECTs of ``observation_parts`` and ``observations_base`` over the live files."""
         self._search_here(con)
         try:
             paths = self._live_paths(con)
@@ -539,23 +548,43 @@ class Store:
             else f'CAST({missing[c] if c in missing and paths else "NULL"} AS {t}) AS "{c}"'
             for c, t in cols + list(parts.PART_COLUMNS)
         )
-        kind = "TEMP VIEW" if temporary else "VIEW"
         # the parquet rows as written (with the mergeable parts of values that span files);
         # observations_base holds one row per value, the parts of gridded and effort values
         # merged across the live ingests of their source (harmonize.parts)
-        con.execute(f"CREATE OR REPLACE {kind} observation_parts AS SELECT {select} FROM {source}")
         edges = parts.EDGES_TABLE if has_table(con, parts.EDGES_TABLE) else None
-        con.execute(f"CREATE OR REPLACE {kind} observations_base AS {parts.merged_sql('observation_parts', edges)}")
-        self._define_flagged_view(con, temporary)
+        return {"observation_parts": f"SELECT {select} FROM {source}",
+                "observations_base": parts.merged_sql("observation_parts", edges)}
+
+    def _create_views(self, con: duckdb.DuckDBPyConnection, sqls: dict[str, str], temporary: bool) -> None:
+        """Create the views ``sqls`` (name -> SELECT), skipping those the database holds already.
+
+        Creating a view binds its whole stack of views down to the parquet footers (about a
+        quarter of a second on the demo store, paid by every command). The SELECT of each
+        persisted view is recorded by its digest in ``store_meta``; a view whose SELECT is
+        unchanged is not created again, and a reading connection whose views are all current
+        uses the persisted ones instead of defining temporary ones. Any change of the live
+        files, of the flags' kinds or of the code that writes the SELECTs changes the text and
+        so the digest.
+        """
+        digests = {name: hashlib.sha256(sql.encode()).hexdigest() for name, sql in sqls.items()}
+        recorded = _recorded_view_digests(con)
+        if temporary:
+            if any(recorded.get(name) != d for name, d in digests.items()):
+                for name, sql in sqls.items():
+                    con.execute(f"CREATE OR REPLACE TEMP VIEW {name} AS {sql}")
+            return
+        for name, sql in sqls.items():
+            if recorded.get(name) == digests[name]:
+                continue
+            con.execute(f"CREATE OR REPLACE VIEW {name} AS {sql}")
+            con.execute("DELETE FROM store_meta WHERE key = ?", [_VIEW_KEY + name])
+            con.execute("INSERT INTO store_meta VALUES (?, ?)", [_VIEW_KEY + name, digests[name]])
 
     def _define_flagged_view(self, con: duckdb.DuckDBPyConnection, temporary: bool) -> None:
         """(Re)define ``observations`` (and ``current``): ``observations_base`` with the
         store-wide flags of the ``store_flags`` table (which the commit hooks write, e.g.
         probable_duplicate and high_count of harmonize.twins) added to ``flags``."""
-        kind = "TEMP VIEW" if temporary else "VIEW"
-        con.execute(f"CREATE OR REPLACE {kind} observations AS {_flagged_view_sql(con, 'observations_base')}")
-        # the name docs/store.md gives readers without harmonize: the live rows with every flag
-        con.execute(f"CREATE OR REPLACE {kind} current AS SELECT * FROM observations")
+        self._create_views(con, _flagged_view_sqls(con), temporary)
 
     # ------------------------------------------------------------------ ingest support
     def previous_ingests(self, source_id: str, file_path: str, inputs_sha256: str) -> pd.DataFrame:
@@ -757,7 +786,7 @@ class Store:
         """After the live set changed, inside the caller's transaction: redefine the views over
         the live files and run the commit hooks (``record``: the ingest being committed, None
         for a change that commits no ingest, such as a repair)."""
-        self._define_view(con, temporary=False)
+        self._define_view(con, temporary=False, flagged=False)
         # what spans sources and ingests (the volunteer twins) is recomputed over the whole
         # store by the commit hooks, in this transaction
         for hook in commit_hooks():
@@ -1273,6 +1302,29 @@ def _lock_timeout(text: str | None) -> float:
     if not value >= 0:
         raise StoreError(f"HARMONIZE_LOCK_TIMEOUT={text!r} is not a number of seconds; write e.g. 60, or unset it")
     return value
+
+
+#: store_meta key prefix of the digest of each persisted view's SELECT (see Store._create_views)
+_VIEW_KEY = "view_sql:"
+
+
+def _recorded_view_digests(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
+    """The digests of the persisted views' SELECTs (name -> sha256), of views that exist."""
+    try:
+        rows = con.execute(
+            "SELECT substr(m.key, ?), m.value FROM store_meta m JOIN duckdb_views() v "
+            "ON v.view_name = substr(m.key, ?) AND NOT v.temporary AND v.schema_name = 'main' "
+            "WHERE starts_with(m.key, ?)", [len(_VIEW_KEY) + 1, len(_VIEW_KEY) + 1, _VIEW_KEY]).fetchall()
+    except duckdb.CatalogException:  # no store_meta yet
+        return {}
+    return dict(rows)
+
+
+def _flagged_view_sqls(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
+    """The SELECTs of ``observations`` and ``current`` (see :meth:`Store._define_flagged_view`)."""
+    # current: the name docs/store.md gives readers without harmonize (the live rows, every flag)
+    return {"observations": _flagged_view_sql(con, "observations_base"),
+            "current": "SELECT * FROM observations"}
 
 
 def _flagged_view_sql(con: duckdb.DuckDBPyConnection, base: str) -> str:

@@ -15,12 +15,25 @@ from __future__ import annotations
 
 import difflib
 import json
+import tomllib
 from collections.abc import Mapping, Sequence
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
 from harmonize.errors import ConfigError
+
+
+def read_toml(path: Path) -> dict[str, Any]:
+    """The tables of a study.toml or profile file; a ConfigError naming the file when it is not
+    UTF-8 text or not valid TOML."""
+    try:
+        return tomllib.loads(Path(path).read_text(encoding="utf-8"))
+    except tomllib.TOMLDecodeError as exc:
+        raise ConfigError(path, None, f"is not valid TOML ({exc})") from None
+    except UnicodeDecodeError:
+        raise ConfigError(path, None, "is not UTF-8 text") from None
+
 
 SCHEMA_DIALECT = "https://json-schema.org/draft/2020-12/schema"
 SCHEMA_FOLDER = "config"  # inside the harmonize.schemas package

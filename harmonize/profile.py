@@ -5,7 +5,6 @@ from __future__ import annotations
 import difflib
 import hashlib
 import json
-import tomllib
 import zoneinfo
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -20,6 +19,7 @@ from harmonize.config_spec import (
     check_known,
     kinds,
     profile_spec,
+    read_toml,
 )
 from harmonize.errors import ConfigError
 from harmonize.study import Study, resolve_inside
@@ -103,12 +103,7 @@ def load_profile(path: str | Path, study: Study, table_fields: Mapping[str, set[
     """
     path = Path(path).resolve()
     resolve_inside(study.root, str(path), path, "profile")
-    try:
-        raw = tomllib.loads(path.read_text(encoding="utf-8"))
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(path, None, f"is not valid TOML ({exc})") from None
-    except UnicodeDecodeError:
-        raise ConfigError(path, None, "is not UTF-8 text") from None
+    raw = read_toml(path)
 
     src = raw.get("source")
     if not isinstance(src, Mapping):
@@ -208,10 +203,7 @@ def load_profile(path: str | Path, study: Study, table_fields: Mapping[str, set[
 
 def peek_kind(path: Path) -> str:
     """The [source] kind of a profile, read before the adapter is known."""
-    try:
-        raw = tomllib.loads(Path(path).read_text(encoding="utf-8"))
-    except (tomllib.TOMLDecodeError, UnicodeDecodeError) as exc:
-        raise ConfigError(path, None, f"is not valid TOML ({exc})") from None
+    raw = read_toml(path)
     src = raw.get("source")
     if not isinstance(src, Mapping):
         raise ConfigError(path, "[source]", "section is missing; it needs id, kind and provider_type")

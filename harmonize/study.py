@@ -5,7 +5,6 @@ from __future__ import annotations
 import hashlib
 import json
 import math
-import tomllib
 import zoneinfo
 from collections.abc import Mapping
 from dataclasses import dataclass, field
@@ -19,7 +18,7 @@ import pyproj
 import shapely
 from shapely.geometry import shape
 
-from harmonize.config_spec import STUDY, check_known
+from harmonize.config_spec import STUDY, check_known, read_toml
 from harmonize.errors import ConfigError
 from harmonize.taxonomy import HIERARCHY_COLUMNS, validate_hierarchy
 
@@ -129,12 +128,7 @@ def load_study(root: str | Path = ".") -> Study:
         raise ConfigError(
             path, None, "no study.toml here; run 'harmonize init DIR' or pass --study DIR"
         )
-    try:
-        raw = tomllib.loads(path.read_text(encoding="utf-8"))
-    except tomllib.TOMLDecodeError as exc:
-        raise ConfigError(path, None, f"is not valid TOML ({exc})") from None
-    except UnicodeDecodeError:
-        raise ConfigError(path, None, "is not UTF-8 text") from None
+    raw = read_toml(path)
 
     # every section and key must be known: a misspelt [season] would silently keep the defaults
     check_known(path, raw, STUDY)

@@ -56,3 +56,17 @@ def test_unknown_key_of_a_variable_table(study_dir: Path) -> None:
     with pytest.raises(ConfigError, match=r"variables.sst.units: unknown key; did you mean 'unit'\? Valid names in "
                                           r"\[variables.sst\]: name, unit, force_unit"):
         prepare(load_study(study_dir), "sst_sat")
+
+
+@pytest.mark.parametrize(("content", "message"), [
+    (b'[source]\nid = "keldmar_trawl\n', r"trawl_agency\.toml: is not valid TOML \("),
+    ('[source]\nid = "kj\u00f8l"\n'.encode("latin-1"), r"trawl_agency\.toml: is not UTF-8 text"),
+])
+def test_a_profile_that_is_not_toml_text_is_named(study_dir: Path, content: bytes, message: str) -> None:
+    """study.toml and the profiles are read by one function: the same two messages for both."""
+    (study_dir / "profiles" / "trawl_agency.toml").write_bytes(content)
+    with pytest.raises(ConfigError, match=message):
+        prepare(load_study(study_dir), "trawl_agency")
+    (study_dir / "study.toml").write_bytes(content)
+    with pytest.raises(ConfigError, match=message.replace("trawl_agency", "study")):
+        load_study(study_dir)

@@ -263,6 +263,7 @@ def store_output(
         if _finds_twins(kind) else {},
         file_path=main_path,
         row_traced=adapter_class(kind).row_traced,
+        merge_rule=parts.merge_rule(adapter_class(kind).merges_parts, adapter_class(kind).parts_add_up),
     )
     staged = store.staging_dir(ingest_id)
     try:

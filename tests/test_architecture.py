@@ -82,6 +82,8 @@ def test_the_graph_reader_sees_lazy_imports(tmp_path: Path) -> None:
     ("harmonize.store", "harmonize.api"),
     # ... nor of adapters: what it checks per ingest (row tracing) is recorded at commit
     ("harmonize.store", "harmonize.adapters"),
+    # ... nor does the merging of parts it defines its views with (the rules are recorded at commit)
+    ("harmonize.parts", "harmonize.adapters"),
     # engines implement steps; the audit chooses them by name, never the other way
     ("harmonize.engines", "harmonize.audit"),
     # adapters read files: they know no store, no twins, no audit or export
@@ -298,12 +300,14 @@ def test_no_list_of_kind_names_outside_the_adapters() -> None:
     assert found == []
 
 
-def test_merged_kinds_come_from_the_adapter_classes() -> None:
+def test_merge_rules_come_from_the_adapter_classes() -> None:
     from harmonize import parts
     from harmonize.adapters.registry import list_adapters
 
-    by_attribute = {kind for kind, cls in list_adapters().items() if cls.merges_parts}
-    assert set(parts.merged_kinds()) == by_attribute == {"gridded", "effort"}   # docs/store.md: values that span files
+    rules = {kind: parts.merge_rule(cls.merges_parts, cls.parts_add_up) for kind, cls in list_adapters().items()}
+    # docs/store.md: values that span files; fishing hours add up, a grid cell's value is the
+    # area-weighted mean of its parts
+    assert {kind: rule for kind, rule in rules.items() if rule} == {"effort": "sum", "gridded": "mean"}
 
 
 

@@ -342,3 +342,15 @@ def test_the_kind_text_check_can_fail(tmp_path: Path) -> None:
     path.write_text(f"SQL = f\"WHERE source_kind IN ('{a}', '{b}') AND x = {{1}}\"\nONE = \"kind = '{a}'\"\n",
                     encoding="utf-8")
     assert _kind_texts(_tree(path), kinds()) == [(1, sorted([a, b]))]
+
+
+def _private_imports(prefix: str) -> list[str]:
+    """Names with a leading underscore that modules under ``prefix`` import from library modules."""
+    return [f"{mod} line {line}: {target}.{name}" for mod, target, name, line in _edges(prefix)
+            if name is not None and name.startswith("_") and not name.startswith("__")]
+
+
+def test_the_readers_use_each_other_through_public_names() -> None:
+    # the block reader shares the text reader's header check through its public name (one
+    # implementation, no reach into another module's private parts)
+    assert _private_imports("harmonize.reading") == []

@@ -59,7 +59,6 @@ import duckdb
 import pyarrow as pa
 
 from harmonize.contract import observation_sql_columns
-from harmonize.errors import StoreError
 from harmonize.sql import sql_in
 from harmonize.tracks import track_sql
 
@@ -82,21 +81,17 @@ def merge_rule(merges_parts: bool, parts_add_up: bool) -> str | None:
 def merge_rules(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
     """source_kind -> merge rule, from the ``ingests`` table the store holds.
 
-    A rule is recorded per ingest and applies to every ingest of its kind (those committed
-    before the store recorded rules, version 7, follow the later ones of their kind). Empty
-    for a store without the table or the column.
+    A rule is recorded per ingest and applies to every ingest of its kind: the latest one
+    recorded, as the kind's adapter says it now (ingests committed before the store recorded
+    rules, version 7, follow the later ones of their kind). Empty for a store without the column.
     """
     known = con.execute("SELECT count(*) FROM duckdb_columns() WHERE table_name = 'ingests' "
                         "AND column_name = 'merge_rule'").fetchall()[0][0]
     if not known:
         return {}
-    rows = con.execute("SELECT source_kind, min(merge_rule), max(merge_rule) FROM ingests "
+    rows = con.execute("SELECT source_kind, arg_max(merge_rule, started_at) FROM ingests "
                        "WHERE merge_rule IS NOT NULL GROUP BY ALL ORDER BY ALL").fetchall()
-    bad = [kind for kind, low, high in rows if low != high or low not in MERGE_RULES]
-    if bad:
-        raise StoreError(f"the store's ingests of source kind '{bad[0]}' record different or unknown "
-                         "merge rules; re-ingest them with the same harmonize")
-    return {kind: rule for kind, rule, _ in rows}
+    return {kind: rule for kind, rule in rows if rule in MERGE_RULES}
 
 
 def _kinds(rules: Mapping[str, str], *chosen: str) -> tuple[str, ...]:

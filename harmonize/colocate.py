@@ -23,6 +23,7 @@ import duckdb
 import numpy as np
 import pandas as pd
 
+from harmonize.adapters.registry import kinds_sql
 from harmonize.clock import utc_naive
 from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
@@ -105,7 +106,7 @@ def colocate(
     with _connection(study, con) as con:
         available = con.execute(
             f"""SELECT variable, source_id, {FIXED_LAYER_SQL} AS fixed
-                FROM observations WHERE source_kind = 'gridded' GROUP BY ALL ORDER BY ALL"""
+                FROM observations WHERE {kinds_sql(grid_values=True)} GROUP BY ALL ORDER BY ALL"""
         ).df()
         pairs = _pairs(available, variables, sources)
         samples = _samples(con, events, study, disclosure or Disclosure.for_study(study))
@@ -145,7 +146,7 @@ def _values(con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
                    o.effort AS valid_area_km2
             FROM observations o JOIN _pairs p
               ON o.variable = p.variable AND o.source_id = p.gridded_source_id
-            WHERE o.source_kind = 'gridded'
+            WHERE {kinds_sql('o.source_kind', grid_values=True)}
         ),
         wanted AS (SELECT s.*, p.variable, p.gridded_source_id, p.fixed_layer
                    FROM _samples s CROSS JOIN _pairs p)
@@ -210,11 +211,12 @@ def _samples(con: duckdb.DuckDBPyConnection, events: pd.DataFrame | None, study:
              rules: Disclosure) -> pd.DataFrame:
     """source_id, event_id, event_start, cell_id, depth_layer of the sample events."""
     if events is None:
-        rules = rules.prepare(con, study, "source_kind <> 'gridded'")
+        samples = kinds_sql(negate=True, grid_values=True)
+        rules = rules.prepare(con, study, samples)
         events = con.sql(
             f"""SELECT source_id, event_id, min(event_start) AS event_start, any_value(cell_id) AS cell_id,
                        any_value(lat) AS lat, any_value(lon) AS lon, any_value(depth_layer) AS depth_layer
-                FROM ({rules.public_sql("source_kind <> 'gridded'")}) GROUP BY source_id, event_id"""
+                FROM ({rules.public_sql(samples)}) GROUP BY source_id, event_id"""
         ).to_arrow_table().to_pandas()
     need = {"source_id", "event_id", "event_start"}
     missing = sorted(need - set(events.columns))

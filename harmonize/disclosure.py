@@ -34,6 +34,8 @@ import duckdb
 import numpy as np
 import pandas as pd
 
+from harmonize.adapters.registry import kinds as registered_kinds
+from harmonize.adapters.registry import kinds_sql
 from harmonize.sql import sql_text
 
 log = logging.getLogger(__name__)
@@ -109,7 +111,7 @@ class Disclosure:
     # ------------------------------------------------------------------ SQL pieces
     def confidential_sql(self, prefix: str = "") -> str:
         """SQL condition: an effort row that does not meet the rule of three."""
-        return (f"({prefix}source_kind = 'effort' AND ({prefix}n_vessels IS NULL "
+        return (f"({kinds_sql(prefix + 'source_kind', locates_vessels=True)} AND ({prefix}n_vessels IS NULL "
                 f"OR {prefix}n_vessels < {int(self.min_vessels)}))")
 
     def sensitive_present_sql(self) -> str:
@@ -152,7 +154,7 @@ class Disclosure:
         if not self.fishing_aggregate:
             return rows
         return f"""
-            SELECT * FROM ({rows}) WHERE source_kind <> 'effort'
+            SELECT * FROM ({rows}) WHERE {kinds_sql(negate=True, locates_vessels=True)}
             UNION ALL BY NAME
             SELECT * FROM {AGGREGATED_VIEW}"""
 
@@ -240,7 +242,8 @@ def _block_sql(k: int, period: str, where: str, source: str) -> str:
     season = "season" if period == "season" else "CAST(NULL AS VARCHAR)"
     return f"""
         SELECT gear, block_x, block_y, season_year, {season} AS season, depth_layer,
-               any_value(source_id) AS source_id, any_value(ingest_id) AS ingest_id,
+               any_value(source_id) AS source_id, any_value(source_kind) AS source_kind,
+               any_value(ingest_id) AS ingest_id,
                any_value(provider_type) AS provider_type, any_value(protocol) AS protocol,
                sum(value) AS value, sum(effort) AS effort, any_value(effort_unit) AS effort_unit,
                any_value(unit) AS unit, sum(n_values)::BIGINT AS n_values,
@@ -250,7 +253,7 @@ def _block_sql(k: int, period: str, where: str, source: str) -> str:
                              ELSE coalesce(protocol, '') END AS gear,
                      floor(CAST(regexp_extract(cell_id, {cell}, 1) AS BIGINT) / {k})::BIGINT AS block_x,
                      floor(CAST(regexp_extract(cell_id, {cell}, 2) AS BIGINT) / {k})::BIGINT AS block_y
-              FROM {source} WHERE ({where}) AND source_kind = 'effort' AND cell_id IS NOT NULL)
+              FROM {source} WHERE ({where}) AND {kinds_sql(locates_vessels=True)} AND cell_id IS NOT NULL)
         GROUP BY source_id, gear, block_x, block_y, season_year, {season}, depth_layer"""
 
 
@@ -289,7 +292,7 @@ def _prepare_aggregate(rules: Disclosure, con: duckdb.DuckDBPyConnection, study:
     con.execute(f"""
         CREATE OR REPLACE TEMP VIEW {AGGREGATED_VIEW} AS
         SELECT 'agg:' || source_id || ':' || event_id AS record_id, ingest_id, source_id,
-               'effort' AS source_kind, provider_type, protocol, event_id,
+               source_kind, provider_type, protocol, event_id,
                CAST(event_start AS TIMESTAMPTZ) AS event_start, CAST(event_end AS TIMESTAMPTZ) AS event_end,
                CAST(year(CAST(event_start AS TIMESTAMPTZ)) AS INTEGER) AS year,
                CAST(season_year AS INTEGER) AS season_year, season, depth_layer, lat, lon,
@@ -390,7 +393,7 @@ def public_quarantine(rows: pd.DataFrame, kinds: pd.Series, study: Any, rules: D
     out["withheld"] = pd.Series([None] * len(out), index=out.index, dtype=object)
     if rules.precise or out.empty:
         return out
-    effort = kinds.reset_index(drop=True).eq("effort").to_numpy()
+    effort = kinds.reset_index(drop=True).isin(registered_kinds(locates_vessels=True)).to_numpy()
     names: list[str] = []
     taxa = study.taxa[study.taxa["sensitive"].astype(bool)]
     for taxon, aliases in zip(taxa["taxon"], taxa["aliases"], strict=True):

@@ -248,6 +248,7 @@ def store_output(
         return result
 
     store = Store(study.store_dir)
+    adapter_cls = adapter_class(kind)
     files = [{"role": f.role, "file_name": f.path.name, "file_sha256": f.sha256, "rows_read": f.rows_read,
               "rows_accepted": f.rows_accepted, "rows_quarantined": f.rows_quarantined} for f in out.files]
     main_file = next(f for f in out.files if f.path == main)
@@ -262,7 +263,8 @@ def store_output(
         hook_data={twin_windows.HOOK_NAME: twin_windows.twin_settings(profile.section("duplicates"), profile.path)}
         if _finds_twins(kind) else {},
         file_path=main_path,
-        row_traced=adapter_class(kind).row_traced,
+        row_traced=adapter_cls.row_traced,
+        merge_rule=parts.merge_rule(adapter_cls.merges_parts, adapter_cls.parts_add_up),
     )
     staged = store.staging_dir(ingest_id)
     try:

@@ -53,23 +53,49 @@ with ``--replace`` for exact merges. Other source kinds pass through unchanged.
 
 from __future__ import annotations
 
+from collections.abc import Mapping
+
 import duckdb
 import pyarrow as pa
 
 from harmonize.contract import observation_sql_columns
-from harmonize.sql import sql_text
+from harmonize.sql import sql_in
 from harmonize.tracks import track_sql
 
+#: How the parts of a source's values merge (``ingests.merge_rule``, recorded at commit from
+#: what the pipeline says of the ingest's source kind, so that the store needs no knowledge
+#: of source kinds): the parts add up (fishing hours), or their area-weighted mean (a grid's
+#: cell value). NULL: the rows pass through as written.
+SUM = "sum"
+MEAN = "mean"
+MERGE_RULES = (SUM, MEAN)
 
-def merged_kinds() -> tuple[str, ...]:
-    """Kinds whose values span files and are merged across ingests (``Adapter.merges_parts``)."""
-    from harmonize.adapters.registry import kinds  # the adapters' class attributes say which
 
-    return kinds(merges_parts=True)
+def merge_rule(merges_parts: bool, parts_add_up: bool) -> str | None:
+    """The ``ingests.merge_rule`` of an ingest whose source kind merges parts or not (see above)."""
+    if not merges_parts:
+        return None
+    return SUM if parts_add_up else MEAN
 
 
-def _kinds_sql() -> str:
-    return ", ".join(sql_text(k) for k in merged_kinds())
+def merge_rules(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
+    """source_kind -> merge rule, from the ``ingests`` table the store holds.
+
+    A rule is recorded per ingest and applies to every ingest of its kind: the latest one
+    recorded, as the kind's adapter says it now (ingests committed before the store recorded
+    rules, version 7, follow the later ones of their kind). Empty for a store without the column.
+    """
+    known = con.execute("SELECT count(*) FROM duckdb_columns() WHERE table_name = 'ingests' "
+                        "AND column_name = 'merge_rule'").fetchall()[0][0]
+    if not known:
+        return {}
+    rows = con.execute("SELECT source_kind, arg_max(merge_rule, started_at) FROM ingests "
+                       "WHERE merge_rule IS NOT NULL GROUP BY ALL ORDER BY ALL").fetchall()
+    return {kind: rule for kind, rule in rows if rule in MERGE_RULES}
+
+
+def _kinds(rules: Mapping[str, str], *chosen: str) -> tuple[str, ...]:
+    return tuple(kind for kind, rule in rules.items() if rule in chosen)
 
 #: Merged fishing hours at or below this are a cell-period with no fishing (the parts and
 #: the joined edges cancel up to rounding); 1e-9 h is 3.6 microseconds.
@@ -181,10 +207,11 @@ def seam_sql(edges: str = EDGES_TABLE, ingests: str = "ingests") -> str:
                FROM ({joined}) j FULL OUTER JOIN ({alone}) a USING (source_id, event_id)"""
 
 
-def merged_sql(parts: str, edges: str | None = None) -> str:
+def merged_sql(parts: str, rules: Mapping[str, str], edges: str | None = None) -> str:
     """SELECT of one row per value from the view ``parts`` (contract columns, then the parts).
 
-    Rows of kinds other than :func:`merged_kinds` pass through; rows of those kinds are
+    ``rules`` maps source kinds to their merge rule (:func:`merge_rules`). Rows of other
+    kinds pass through; rows of those kinds are
     grouped by source and record_id (the record id hashes source, event, variable, life stage,
     quantity and behaviour, and no ingest or file) and merged as the module docstring says.
     ``edges`` names the ``ping_edges`` table (None for a store without it): the hours of
@@ -192,7 +219,9 @@ def merged_sql(parts: str, edges: str | None = None) -> str:
     """
     types = dict(observation_sql_columns())
     cols = list(types)
-    kinds = _kinds_sql()
+    merged = _kinds(rules, SUM, MEAN)
+    summed = sql_in("source_kind", _kinds(rules, SUM))
+    averaged = _kinds(rules, MEAN)
     single = "count(*) = 1"
     weighted = "count(part_weight) = count(*) AND sum(part_weight) > 0"
     exprs = {
@@ -201,11 +230,11 @@ def merged_sql(parts: str, edges: str | None = None) -> str:
         "source_kind": "source_kind",
         # one ingest of those merged (the smallest id); observation_parts lists them all
         "ingest_id": "min(ingest_id)",
-        "value": f"""CASE WHEN source_kind = 'effort' THEN sum(value)
+        "value": f"""CASE WHEN {summed} THEN sum(value)
                           WHEN {weighted} THEN sum(part_sum) / sum(part_weight)
                           WHEN {single} THEN min(value)
                           ELSE sum(value * n_values) / nullif(sum(n_values), 0) END""",
-        "effort": f"""CASE WHEN source_kind = 'effort' THEN sum(effort)
+        "effort": f"""CASE WHEN {summed} THEN sum(effort)
                            WHEN {weighted} AND count(period_steps) = count(*) THEN sum(part_weight) / min(period_steps)
                            WHEN {single} THEN min(effort)
                            ELSE sum(effort * n_values) / nullif(sum(n_values), 0) END""",
@@ -226,32 +255,34 @@ def merged_sql(parts: str, edges: str | None = None) -> str:
     for c in cols:
         exprs.setdefault(c, f'min("{c}")')
     plain = ", ".join(f'"{c}"' for c in cols)
-    if not kinds:
+    if not merged:
         return f"SELECT {plain} FROM {parts}"
-    merged = ", ".join(f'CAST({exprs[c]} AS {types[c]}) AS "{c}"' for c in cols)
+    merged_cols = ", ".join(f'CAST({exprs[c]} AS {types[c]}) AS "{c}"' for c in cols)
     # time steps of each period in the live files of a gridded source: every cell of a file
     # has its file's steps, whether or not the cell had a valid value in them
     key = "source_id, variable, depth_layer, event_start"
     steps = (f"SELECT {key}, sum(steps) AS period_steps FROM (SELECT {key}, ingest_id, max(part_steps) AS steps "
-             f"FROM {parts} WHERE source_kind = 'gridded' GROUP BY ALL) GROUP BY ALL")
+             f"FROM {parts} WHERE {sql_in('source_kind', averaged)} GROUP BY ALL) GROUP BY ALL")
     source = parts
     if edges is not None:
         templates = _live(EDGE_PARTS_TABLE, "ingests")
-        seam = (f"SELECT r.record_id, 'effort' AS source_kind, s.source_id, s.hours AS value, "
+        # the seam's rows take their kind from the cell-period rows they join (of a ping source)
+        seam = (f"SELECT r.record_id, r.source_kind, s.source_id, s.hours AS value, "
                 f"s.hours AS effort, s.n_values, s.vessel_ids, "
                 f"CASE WHEN s.speed_derived THEN ['speed_derived'] ELSE [] END::VARCHAR[] AS flags, "
                 f"[]::BIGINT[] AS source_record_rows, false AS zero_filled "
-                f"FROM ({seam_sql(edges)}) s JOIN (SELECT DISTINCT source_id, event_id, record_id FROM {templates}) r "
+                f"FROM ({seam_sql(edges)}) s JOIN (SELECT DISTINCT source_id, event_id, record_id, source_kind "
+                f"FROM {templates}) r "
                 f"USING (source_id, event_id)")
         source = f"(SELECT * FROM {parts} UNION ALL BY NAME SELECT * FROM {templates} UNION ALL BY NAME {seam})"
     joined = (f"SELECT p.*, s.period_steps FROM {source} p LEFT JOIN ({steps}) s "
-              "ON p.source_kind = 'gridded' AND s.source_id = p.source_id AND s.variable = p.variable "
+              f"ON {sql_in('p.source_kind', averaged)} AND s.source_id = p.source_id AND s.variable = p.variable "
               "AND s.depth_layer = p.depth_layer AND s.event_start = p.event_start "
-              f"WHERE p.source_kind IN ({kinds})")
-    return (f"SELECT {plain} FROM {parts} WHERE source_kind NOT IN ({kinds}) UNION ALL "
-            f"SELECT {merged} FROM ({joined}) GROUP BY source_kind, source_id, record_id "
+              f"WHERE {sql_in('p.source_kind', merged)}")
+    return (f"SELECT {plain} FROM {parts} WHERE {sql_in('source_kind', merged, negate=True)} UNION ALL "
+            f"SELECT {merged_cols} FROM ({joined}) GROUP BY source_kind, source_id, record_id "
             # a cell-period whose only part is a file edge's, with no hours joined to it
-            f"HAVING source_kind <> 'effort' OR sum(value) > {ZERO_HOURS!r}")
+            f"HAVING NOT {summed} OR sum(value) > {ZERO_HOURS!r}")
 
 
 def ingests_behind(con: duckdb.DuckDBPyConnection, where: str) -> list[str]:
@@ -259,13 +290,13 @@ def ingests_behind(con: duckdb.DuckDBPyConnection, where: str) -> list[str]:
 
     The merged row names one ingest; the provenance of an export lists them all.
     """
-    kinds = _kinds_sql()
+    kinds = _kinds(merge_rules(con), SUM, MEAN)
     if not kinds:
         return []
     rows = con.execute(
         f"""SELECT DISTINCT p.ingest_id FROM observation_parts p
             SEMI JOIN (SELECT source_id, record_id FROM observations
-                       WHERE source_kind IN ({kinds}) AND ({where})) s
+                       WHERE {sql_in('source_kind', kinds)} AND ({where})) s
               ON p.source_id = s.source_id AND p.record_id = s.record_id
             ORDER BY 1"""
     ).fetchall()

@@ -451,13 +451,14 @@ def _write_rebuilt(store: Store, rows: list[dict]) -> None:
                     """INSERT INTO ingests (ingest_id, source_id, source_kind, provider_type, file_name, file_sha256,
                        inputs_sha256, config_sha256, started_at, finished_at, status, rows_read, rows_accepted,
                        rows_quarantined, records_written, records_zero_filled, superseded_by, tool_version,
-                       profile_file, damage_reason, file_path, rebuilt_at, row_traced)
-                       VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)""",
+                       profile_file, damage_reason, file_path, rebuilt_at, row_traced, merge_rule)
+                       VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?)""",
                     [r["ingest_id"], r["source_id"], r["source_kind"], r["provider_type"], r["file_name"],
                      r["file_sha256"], r["inputs_sha256"], r["config_sha256"], r["started_at"], r["finished_at"],
                      r["status"], r["rows_read"], r["rows_accepted"], r["rows_quarantined"], r["records_written"],
                      r["records_zero_filled"], r["superseded_by"], r["tool_version"], r["profile_file"],
-                     r["damage_reason"], r["file_path"], now, r["doc"]["ingest"].get("row_traced")])
+                     r["damage_reason"], r["file_path"], now, r["doc"]["ingest"].get("row_traced"),
+                     r["doc"]["ingest"].get("merge_rule")])
                 doc = r["doc"]
                 for f in doc.get("inputs") or []:
                     con.execute("INSERT INTO ingest_files VALUES (?, ?, ?, ?, ?, ?, ?)",

@@ -6,6 +6,8 @@ Values are bound as parameters where DuckDB allows it; these are for the places 
 
 from __future__ import annotations
 
+from collections.abc import Iterable
+
 
 def sql_text(value: object) -> str:
     """A SQL string literal (single quotes doubled)."""
@@ -17,4 +19,16 @@ def sql_ident(name: object) -> str:
     return '"' + str(name).replace('"', '""') + '"'
 
 
-__all__ = ["sql_ident", "sql_text"]
+def sql_in(column: str, values: Iterable[object], negate: bool = False) -> str:
+    """SQL condition: ``column`` is one of ``values`` (``NOT IN`` with ``negate``).
+
+    With no values the condition is always false (always true with ``negate``), so that a
+    selection by a trait no source kind has selects nothing instead of failing.
+    """
+    listed = ", ".join(sql_text(v) for v in values)
+    if not listed:
+        return "TRUE" if negate else "FALSE"
+    return f"{column} {'NOT IN' if negate else 'IN'} ({listed})"
+
+
+__all__ = ["sql_ident", "sql_in", "sql_text"]

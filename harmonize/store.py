@@ -93,7 +93,11 @@ LOCK_SUFFIX = ".lock"
 #: 6: ``ingests.row_traced`` (whether every data row of the ingest's files is traced one by one
 #: to the observations or the quarantine; recorded at commit from what the pipeline says of the
 #: ingest, so the store's check needs no knowledge of source kinds; NULL on older ingests).
-STORE_VERSION = 6
+#: 7: ``ingests.merge_rule`` (how the ingest's values merge with the parts other ingests of its
+#: source wrote: harmonize.parts; recorded at commit from what the pipeline says of the ingest,
+#: so the store's views need no knowledge of source kinds; NULL on older ingests, which follow
+#: the later ingests of their source kind).
+STORE_VERSION = 7
 _LOCK_RE = re.compile(r"\(PID (\d+)\)")
 logger = logging.getLogger(__name__)
 
@@ -130,7 +134,8 @@ CREATE TABLE IF NOT EXISTS ingests (
     damage_reason VARCHAR,
     file_path VARCHAR,
     rebuilt_at TIMESTAMP,
-    row_traced BOOLEAN
+    row_traced BOOLEAN,
+    merge_rule VARCHAR
 );
 CREATE TABLE IF NOT EXISTS ingest_files (
     ingest_id VARCHAR NOT NULL,
@@ -203,6 +208,7 @@ ALTER TABLE ingests ADD COLUMN IF NOT EXISTS damage_reason VARCHAR;
 ALTER TABLE ingests ADD COLUMN IF NOT EXISTS file_path VARCHAR;
 ALTER TABLE ingests ADD COLUMN IF NOT EXISTS rebuilt_at TIMESTAMP;
 ALTER TABLE ingests ADD COLUMN IF NOT EXISTS row_traced BOOLEAN;
+ALTER TABLE ingests ADD COLUMN IF NOT EXISTS merge_rule VARCHAR;
 """
 
 
@@ -273,6 +279,9 @@ class IngestRecord:
     #: whether every data row of the input files is accepted or quarantined one by one (checked by
     #: :meth:`Store.check`); false for inputs counted in bulk (grid values, pings)
     row_traced: bool = True
+    #: how the values merge with other ingests' parts of them (:data:`harmonize.parts.MERGE_RULES`);
+    #: None: the rows are read as written
+    merge_rule: str | None = None
 
 
 @dataclass(frozen=True)
@@ -553,7 +562,7 @@ class Store:
         # merged across the live ingests of their source (harmonize.parts)
         edges = parts.EDGES_TABLE if has_table(con, parts.EDGES_TABLE) else None
         return {"observation_parts": f"SELECT {select} FROM {source}",
-                "observations_base": parts.merged_sql("observation_parts", edges)}
+                "observations_base": parts.merged_sql("observation_parts", parts.merge_rules(con), edges)}
 
     def _create_views(self, con: duckdb.DuckDBPyConnection, sqls: dict[str, str], temporary: bool) -> None:
         """Create the views ``sqls`` (name -> SELECT), skipping those the database holds already.
@@ -731,14 +740,15 @@ class Store:
                 """INSERT INTO ingests (ingest_id, source_id, source_kind, provider_type, file_name,
                    file_sha256, inputs_sha256, config_sha256, started_at, finished_at, status,
                    rows_read, rows_accepted, rows_quarantined, records_written,
-                   records_zero_filled, superseded_by, tool_version, profile_file, file_path, row_traced)
-                   VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULL, ?, ?, ?, ?)""",
+                   records_zero_filled, superseded_by, tool_version, profile_file, file_path, row_traced,
+                   merge_rule)
+                   VALUES (?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, ?, NULL, ?, ?, ?, ?, ?)""",
                 [record.ingest_id, record.source_id, record.source_kind, record.provider_type,
                  record.file_name, record.file_sha256, record.inputs_sha256, record.config_sha256,
                  record.started_at, record.finished_at, record.status, record.rows_read,
                  record.rows_accepted, record.rows_quarantined, record.records_written,
                  record.records_zero_filled, __version__, record.profile_file,
-                 record.file_path or record.file_name, bool(record.row_traced)],
+                 record.file_path or record.file_name, bool(record.row_traced), record.merge_rule],
             )
             for f in files:
                 con.execute(
@@ -1239,7 +1249,7 @@ def provenance(record: IngestRecord, files: Sequence[dict[str, object]]) -> dict
         "started_at": pd.Timestamp(record.started_at).isoformat(), "rows_read": int(record.rows_read),
         "rows_accepted": int(record.rows_accepted), "rows_quarantined": int(record.rows_quarantined),
         "profile_file": record.profile_file, "tool_version": __version__,
-        "row_traced": bool(record.row_traced),
+        "row_traced": bool(record.row_traced), "merge_rule": record.merge_rule,
     }
     hooks = {name: dataclasses.asdict(v) if dataclasses.is_dataclass(v) and not isinstance(v, type) else v
              for name, v in record.hook_data.items()}

@@ -82,6 +82,8 @@ def test_the_graph_reader_sees_lazy_imports(tmp_path: Path) -> None:
     ("harmonize.store", "harmonize.api"),
     # ... nor of adapters: what it checks per ingest (row tracing) is recorded at commit
     ("harmonize.store", "harmonize.adapters"),
+    # ... nor does the merging of parts it defines its views with (the rules are recorded at commit)
+    ("harmonize.parts", "harmonize.adapters"),
     # engines implement steps; the audit chooses them by name, never the other way
     ("harmonize.engines", "harmonize.audit"),
     # adapters read files: they know no store, no twins, no audit or export
@@ -298,12 +300,14 @@ def test_no_list_of_kind_names_outside_the_adapters() -> None:
     assert found == []
 
 
-def test_merged_kinds_come_from_the_adapter_classes() -> None:
+def test_merge_rules_come_from_the_adapter_classes() -> None:
     from harmonize import parts
     from harmonize.adapters.registry import list_adapters
 
-    by_attribute = {kind for kind, cls in list_adapters().items() if cls.merges_parts}
-    assert set(parts.merged_kinds()) == by_attribute == {"gridded", "effort"}   # docs/store.md: values that span files
+    rules = {kind: parts.merge_rule(cls.merges_parts, cls.parts_add_up) for kind, cls in list_adapters().items()}
+    # docs/store.md: values that span files; fishing hours add up, a grid cell's value is the
+    # area-weighted mean of its parts
+    assert {kind: rule for kind, rule in rules.items() if rule} == {"effort": "sum", "gridded": "mean"}
 
 
 
@@ -338,3 +342,92 @@ def test_the_kind_text_check_can_fail(tmp_path: Path) -> None:
     path.write_text(f"SQL = f\"WHERE source_kind IN ('{a}', '{b}') AND x = {{1}}\"\nONE = \"kind = '{a}'\"\n",
                     encoding="utf-8")
     assert _kind_texts(_tree(path), kinds()) == [(1, sorted([a, b]))]
+
+
+_LOG_CALLS = {"debug", "info", "warning", "error", "exception", "critical", "warn"}
+
+
+def _prose(tree: ast.Module) -> set[int]:
+    """ids of the string constants that are prose: docstrings and the texts of log calls."""
+    out: set[int] = set()
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Module | ast.ClassDef | ast.FunctionDef | ast.AsyncFunctionDef) and node.body:
+            first = node.body[0]
+            if isinstance(first, ast.Expr) and isinstance(first.value, ast.Constant):
+                out.add(id(first.value))
+        elif (isinstance(node, ast.Call) and isinstance(node.func, ast.Attribute)
+              and node.func.attr in _LOG_CALLS):
+            out.update(id(n) for arg in node.args for n in ast.walk(arg))
+    return out
+
+
+def _single_kind_uses(tree: ast.Module, names: tuple[str, ...]) -> list[tuple[int, str]]:
+    """Single kind names a module selects by: quoted in SQL text, or compared with in Python.
+
+    SQL text: a string constant (an f-string's literal parts included; docstrings and log
+    messages aside) holding a kind name in single quotes, e.g. ``source_kind = 'gridded'``.
+    The variable kind ``'effort'`` (a column of its own, ``variable_kind``) is not a source kind.
+    Python: ``==``, ``!=``, ``in``, ``not in`` with a kind name, or ``.eq`` / ``.ne`` / ``.isin``
+    of one (pandas), unless the other side is a variable_kind.
+    """
+    kind = "|".join(re.escape(k) for k in names)
+    quoted = re.compile(f"'({kind})'")
+    variable_kind = re.compile(rf"variable_kind\s*(?:=|<>|!=)\s*'({kind})'|'({kind})'\s+AS\s+variable_kind", re.I)
+    prose = _prose(tree)
+
+    def constant_kinds(node: ast.AST) -> list[str]:
+        elts = node.elts if isinstance(node, ast.Tuple | ast.List | ast.Set) else [node]
+        return [e.value for e in elts if isinstance(e, ast.Constant) and e.value in names]
+
+    found = []
+    for node in ast.walk(tree):
+        if isinstance(node, ast.Constant) and isinstance(node.value, str) and id(node) not in prose:
+            found += [(node.lineno, k) for k in quoted.findall(variable_kind.sub("", node.value))]
+        elif isinstance(node, ast.Compare):
+            sides = [node.left, *node.comparators]
+            if not any("variable_kind" in ast.unparse(s) for s in sides):
+                found += [(node.lineno, k) for s in sides for k in constant_kinds(s)]
+        elif (isinstance(node, ast.Call) and isinstance(node.func, ast.Attribute)
+              and node.func.attr in ("eq", "ne", "isin") and "variable_kind" not in ast.unparse(node.func.value)):
+            found += [(node.lineno, k) for a in node.args for k in constant_kinds(a)]
+    return sorted(found)
+
+
+def test_no_single_kind_name_in_sql_or_comparisons_outside_the_adapters() -> None:
+    # what a behaviour depends on is an attribute of the adapter classes (e.g. grid_values,
+    # locates_vessels, the merge rule of parts), selected through registry.kinds_sql; a
+    # "source_kind = 'gridded'" outside the adapters is a kind's knowledge in a second place
+    from harmonize.adapters.registry import kinds
+
+    found = [f"{mod} line {line}: '{name}'" for mod, path in sorted(MODULES.items())
+             if not (_under(mod, "harmonize.adapters") or _under(mod, "harmonize.demo"))
+             for line, name in _single_kind_uses(_tree(path), kinds())]
+    assert found == []
+
+
+def test_the_single_kind_check_can_fail(tmp_path: Path) -> None:
+    from harmonize.adapters.registry import kinds
+
+    a, b = kinds()[:2]
+    path = tmp_path / "leak.py"
+    path.write_text(
+        f'"""A docstring may name \'{a}\'."""\n'
+        f"SQL = f\"WHERE source_kind <> '{a}' AND x = {{1}}\"\n"
+        f"PANDAS = frame['source_kind'].ne('{b}')\n"
+        f"PLAIN = kind == '{a}'\n"
+        "FINE = \"'effort' AS variable_kind, variable_kind = 'effort'\"\n"
+        f"log.warning(\"nothing of kind '{a}'\")\n",
+        encoding="utf-8")
+    assert _single_kind_uses(ast.parse(path.read_text(encoding="utf-8")), kinds()) == [(2, a), (3, b), (4, a)]
+
+
+def _private_imports(prefix: str) -> list[str]:
+    """Names with a leading underscore that modules under ``prefix`` import from library modules."""
+    return [f"{mod} line {line}: {target}.{name}" for mod, target, name, line in _edges(prefix)
+            if name is not None and name.startswith("_") and not name.startswith("__")]
+
+
+def test_the_readers_use_each_other_through_public_names() -> None:
+    # the block reader shares the text reader's header check through its public name (one
+    # implementation, no reach into another module's private parts)
+    assert _private_imports("harmonize.reading") == []

@@ -289,3 +289,27 @@ def test_a_store_written_before_the_parts_still_reads_one_row_per_cell_period(st
     np.testing.assert_allclose(old["value"], exact["value"], rtol=0, atol=1e-9)
     np.testing.assert_allclose(old["effort"], exact["effort"], rtol=1e-12)
     assert store.check() == []
+
+
+def test_the_merge_rule_is_recorded_at_commit_and_older_ingests_follow_their_kind(study_dir: Path) -> None:
+    """The store merges parts by ``ingests.merge_rule``, written at commit from the adapter
+    (store version 7): the store's views consult no adapter. An ingest committed before the
+    rule was recorded (null) follows the later ingests of its source kind."""
+    import duckdb
+
+    study = _winter_case(study_dir)
+    exact = _view(study)
+    store = Store(study.store_dir)
+    with store.connect() as con:
+        # docs/store.md: a grid cell's value is the area-weighted mean of its parts
+        assert con.execute("SELECT DISTINCT source_kind, merge_rule FROM ingests").fetchall() == [("gridded", "mean")]
+    con = duckdb.connect(str(store.db_path))
+    con.execute("UPDATE ingests SET merge_rule = NULL WHERE ingest_id = (SELECT min(ingest_id) FROM ingests)")
+    con.close()
+    pd.testing.assert_frame_equal(_view(study), exact)
+    # with no rule recorded the rows are read as each file wrote them: one part per file
+    con = duckdb.connect(str(store.db_path))
+    con.execute("UPDATE ingests SET merge_rule = NULL")
+    con.close()
+    parts = _view(study)
+    assert not parts["event_id"].is_unique and len(parts) > len(exact)

@@ -25,6 +25,8 @@ from harmonize.errors import HarmonizeWarning
 from harmonize.export import FORMATS
 
 KIND = "seal_colony"
+#: A second outside kind, declaring that its rows locate vessels (``Adapter.locates_vessels``).
+BOAT_KIND = "boat_seal"
 PACKAGE = "keldmar_seal_plugin"
 
 SCHEMA = {
@@ -92,6 +94,17 @@ class SealColonyAdapter(Adapter):
             "flags": [()] * k, "source_record_rows": [()] * k, "n_values": 1, "no_effort": True,
         })
         return finish([raw["rows"]], rej, events, values)
+
+
+class BoatSealAdapter(SealColonyAdapter):
+    """The same counts, photographed from fishing vessels: a count locates the vessel."""
+
+    kind = "boat_seal"
+    description = "Seals counted from fishing vessels; a count locates the vessel."
+    display_order = 69
+    grid_values = False
+    merges_parts = False
+    locates_vessels = True
 '''
 
 PROFILE = f'''
@@ -127,11 +140,13 @@ def _write_plugin(site: Path) -> None:
     dist.mkdir()
     (dist / "METADATA").write_text(f"Metadata-Version: 2.1\nName: {PACKAGE}\nVersion: 0.1\n", encoding="utf-8")
     (dist / "entry_points.txt").write_text(
-        f"[{registry.ENTRY_POINT_GROUP}]\n{KIND} = {PACKAGE}:SealColonyAdapter\n", encoding="utf-8")
+        f"[{registry.ENTRY_POINT_GROUP}]\n{KIND} = {PACKAGE}:SealColonyAdapter\n"
+        f"{BOAT_KIND} = {PACKAGE}:BoatSealAdapter\n", encoding="utf-8")
 
 
 def _forget_plugin() -> None:
     registry._REGISTRY.pop(KIND, None)
+    registry._REGISTRY.pop(BOAT_KIND, None)
     registry._load_all.cache_clear()
     for name in [m for m in sys.modules if m == PACKAGE or m.startswith(PACKAGE + ".")]:
         del sys.modules[name]
@@ -165,6 +180,38 @@ def test_the_entry_point_adapter_is_listed_with_its_traits(plugin: None) -> None
     assert registry.kinds()[-1] == KIND  # display_order 70: after the six built-in kinds (10..60)
     assert KIND in registry.kinds(is_sample=True) and KIND in registry.kinds(row_traced=True)
     assert KIND not in registry.kinds(finds_twins=True)
+    # what the rest of the tool selects by: the outside kinds' declared attributes
+    assert registry.kinds(locates_vessels=True) == ("effort", BOAT_KIND)
+    assert registry.kinds(grid_values=True) == ("gridded",)
+    assert KIND not in registry.kinds(merges_parts=True) and BOAT_KIND not in registry.kinds(merges_parts=True)
+    assert registry.kinds_sql("o.source_kind", locates_vessels=True) == f"o.source_kind IN ('effort', '{BOAT_KIND}')"
+    assert registry.kinds_sql(negate=True, grid_values=True) == "source_kind NOT IN ('gridded')"
+    # a trait no kind has selects nothing (and its negation everything)
+    assert registry.kinds_sql(grid_values=True, locates_vessels=True) == "FALSE"
+    assert registry.kinds_sql(negate=True, grid_values=True, locates_vessels=True) == "TRUE"
+
+
+def test_an_outside_kind_that_locates_vessels_is_withheld_under_the_rule_of_three(
+        plugin: None, seal_study: Path, tmp_path: Path) -> None:
+    # the disclosure rule follows the declared attribute, not a list of kind names: the boat
+    # counts carry no vessel count, so every one falls under the rule of three and no export
+    # or listing shows them (docs/privacy.md); the same counts as seal_colony rows are shown
+    boats = seal_study / "profiles" / "boats.toml"
+    boats.write_text(PROFILE.replace(f'kind = "{KIND}"', f'kind = "{BOAT_KIND}"')
+                     .replace('id = "keldmar_seal_survey"', 'id = "keldmar_seal_boats"'), encoding="utf-8")
+    study = ["--study", str(seal_study)]
+    for profile in ("seals", "boats"):
+        out = run_cli(*study, "ingest", profile, str(seal_study / "seals.csv"))
+        assert out.exit_code in (0, 1), out.stderr
+    target = tmp_path / "long.csv"
+    out = run_cli(*study, "export", "long", str(target))
+    assert out.exit_code == 0, out.stderr
+    text = target.read_text()
+    assert "keldmar_seal_survey" in text and "keldmar_seal_boats" not in text
+    listing = run_cli(*study, "quarantine")
+    assert listing.exit_code == 0, listing.stderr
+    # the boat source's rejected rows keep file and row, their text is withheld
+    assert listing.stdout.count("Phoca nonexistens") == 1
 
 
 def test_without_the_plugin_the_kind_is_refused_naming_the_installed_ones(seal_study: Path) -> None:

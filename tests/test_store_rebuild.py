@@ -98,7 +98,7 @@ def test_a_part_file_read_alone_says_where_it_came_from(study_copy: tuple[Path, 
         assert (doc["ingest_id"], doc["rows"]) == (ingest_id, n_rows) == (ingest_id, meta.num_rows)
         assert doc["source_id"] == source_of[ingest_id]
         assert doc["source_kind"] == profile["source"]["kind"] == path.parent.parent.name.split("=")[1]
-        assert doc["contract_version"] and doc["store_version"] == STORE_VERSION == 6
+        assert doc["contract_version"] and doc["store_version"] == STORE_VERSION == 7
         sha = {f["role"]: f["file_sha256"] for f in doc["inputs"]}
         if ingest_id != third:  # the replacing ingest read the re-delivered catch file
             assert sha["records"] == hashlib.sha256(

@@ -141,6 +141,18 @@ class Adapter(ABC):
     #: daily ping files): each ingest writes its part and the store merges the parts of the
     #: live ingests of a source (harmonize.parts).
     merges_parts: ClassVar[bool] = False
+    #: With ``merges_parts``: the parts of a value add up (hours of fishing in many files), and a
+    #: merged value of zero is no value (a cell-period only a file's edge touched); False: the
+    #: merged value is the area-weighted mean of the parts (a cell's value on a grid).
+    parts_add_up: ClassVar[bool] = False
+    #: Its values are physical fields on a grid of cells (a model or satellite product): they
+    #: are colocated with the samples (harmonize.colocate, the wide table's gridded_ columns)
+    #: and compared with in-situ measurements in the audit, never counted among them.
+    grid_values: ClassVar[bool] = False
+    #: Its rows locate fishing vessels: a value behind fewer than ``[confidentiality]
+    #: min_vessels`` vessels is withheld or summed into coarser blocks (rule of three, see
+    #: harmonize.disclosure), and a rejected row's text is withheld from the quarantine listing.
+    locates_vessels: ClassVar[bool] = False
     #: Yearly effort totals add this kind's effort up (False: gridded valid pixel area).
     sums_effort: ClassVar[bool] = True
     #: What one event is called where events of kinds are counted apart ("samples" for

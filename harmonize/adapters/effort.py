@@ -33,7 +33,9 @@ class EffortAdapter(Adapter):
     is_sample = False
     row_traced = False
     merges_parts = True
+    parts_add_up = True
     is_fishing_effort = True
+    locates_vessels = True
     effort_label = "fishing hours"
     events_called = "fishing cell-periods"
     designed = False

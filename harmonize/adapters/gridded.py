@@ -965,6 +965,7 @@ class GriddedAdapter(Adapter):
     is_sample = False
     row_traced = False
     merges_parts = True
+    grid_values = True
     default_provider_type = "remote_sensing"
     sums_effort = False
     events_called = "gridded cell-periods"

@@ -9,6 +9,7 @@ from importlib.metadata import entry_points
 
 from harmonize.adapters.base import Adapter
 from harmonize.errors import AdapterNotFoundError, HarmonizeWarning
+from harmonize.sql import sql_in
 
 ENTRY_POINT_GROUP = "harmonize.adapters"
 _BUILTIN_MODULES = (
@@ -75,6 +76,16 @@ def kinds(**traits: object) -> tuple[str, ...]:
     chosen = [a for a in list_adapters().values()
               if all(getattr(a, t) == v for t, v in traits.items())]
     return tuple(a.kind for a in sorted(chosen, key=lambda a: (a.display_order, a.kind)))
+
+
+def kinds_sql(column: str = "source_kind", negate: bool = False, **traits: object) -> str:
+    """SQL condition: ``column`` names one of :func:`kinds` ``(**traits)`` (none of them with ``negate``).
+
+    ``kinds_sql(grid_values=True)`` -> ``source_kind IN ('gridded')``; always false (always
+    true with ``negate``) when no kind has the traits. The one place a selection of source
+    kinds becomes SQL text.
+    """
+    return sql_in(column, kinds(**traits), negate=negate)
 
 
 def adapter_class(kind: str) -> type[Adapter]:

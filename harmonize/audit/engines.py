@@ -16,11 +16,13 @@ from dataclasses import dataclass
 import duckdb
 import pandas as pd
 
+from harmonize.adapters.registry import kinds as registered_kinds
 from harmonize.audit import metrics as m
 from harmonize.disclosure import Disclosure
 from harmonize.engines import ENGINES
 from harmonize.engines.audit_rules import EVENT_TAGS
 from harmonize.errors import HarmonizeError
+from harmonize.sql import sql_in
 
 
 @dataclass(frozen=True)
@@ -101,16 +103,17 @@ def _on_dask(inputs: AuditInputs) -> m.Metrics:
     # and the hours of ping tracks joined across files (harmonize.parts) are in no file
     tags = ", ".join(f"any_value({t}) AS {t}" for t in EVENT_TAGS)
     year = "" if max_year is None else f" AND season_year <= {int(max_year)}"
+    whole = registered_kinds(locates_vessels=True)
     effort = con.execute(f"""SELECT source_id, event_id, {tags}, true AS effort_bearing, false AS biological,
                                     CAST(min(n_vessels) AS INTEGER) AS n_vessels
-                             FROM observations WHERE source_kind = 'effort'{year} GROUP BY ALL""").df()
+                             FROM observations WHERE {sql_in('source_kind', whole)}{year} GROUP BY ALL""").df()
+    events = events[~events["source_kind"].isin(whole).to_numpy()]
     if len(effort):
         effort["season_year"] = pd.array(effort["season_year"], dtype="Int32")
         effort["n_vessels"] = pd.array(effort["n_vessels"], dtype="Int32")
-        events = pd.concat([events[events["source_kind"].ne("effort").to_numpy()], effort[events.columns]],
-                           ignore_index=True)
+        events = pd.concat([events, effort[events.columns]], ignore_index=True)
     else:
-        events = events[events["source_kind"].ne("effort").to_numpy()].reset_index(drop=True)
+        events = events.reset_index(drop=True)
     sensitive = con.execute(f"""SELECT DISTINCT source_id, event_id, TRUE AS sensitive FROM observations
                                 WHERE {m.KEPT_SQL} AND {rules.sensitive_present_sql()}""").df()
     events = events.merge(sensitive, on=["source_id", "event_id"], how="left")

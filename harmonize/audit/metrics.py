@@ -24,6 +24,7 @@ from dataclasses import dataclass, field
 import duckdb
 import pandas as pd
 
+from harmonize.adapters.registry import kinds_sql
 from harmonize.colocate import FIXED_LAYER_SQL, match_sql
 from harmonize.disclosure import Disclosure
 from harmonize.engines.audit_rules import DUPLICATE_FLAG as DUPLICATE_FLAG
@@ -298,22 +299,23 @@ def comparisons(con: duckdb.DuckDBPyConnection, max_year: int | None = None) -> 
     """
     refs = ", ".join(f"'{p}'" for p in REFERENCE_PROVIDERS)
     kept = f"variable_kind = 'physical' AND value IS NOT NULL AND cell_id IS NOT NULL AND {_KEPT}"
+    grid, in_situ = kinds_sql(grid_values=True), kinds_sql(negate=True, grid_values=True)
     return con.execute(
         f"""
         WITH fields AS (
             SELECT source_id, variable, {FIXED_LAYER_SQL} AS fixed_layer
-            FROM observations WHERE source_kind = 'gridded' GROUP BY ALL
+            FROM observations WHERE {grid} GROUP BY ALL
         ),
         gridded AS (
             SELECT source_id, source_kind, provider_type, variable, unit, cell_id, event_start, event_end,
                    depth_layer, season_year, value, fixed_layer
             FROM observations JOIN fields USING (source_id, variable)
-            WHERE source_kind = 'gridded' AND {kept}
+            WHERE {grid} AND {kept}
         ),
         in_situ AS (
             SELECT source_id, source_kind, provider_type, variable, unit, cell_id, event_start, depth_layer,
                    season_year, value
-            FROM observations WHERE source_kind <> 'gridded' AND event_start IS NOT NULL AND {kept}
+            FROM observations WHERE {in_situ} AND event_start IS NOT NULL AND {kept}
         ),
         pairs AS (
             SELECT s.variable, g.depth_layer, s.source_id AS source_a, g.source_id AS source_b,

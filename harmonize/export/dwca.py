@@ -59,7 +59,7 @@ import defusedxml.ElementTree as SafeET
 import pandas as pd
 
 from harmonize.adapters.registry import kinds as registered_kinds
-from harmonize.adapters.registry import list_adapters
+from harmonize.adapters.registry import kinds_sql, list_adapters
 from harmonize.disclosure import Disclosure
 from harmonize.export.atomic import all_or_nothing
 from harmonize.export.metadata import CAUTION, ExportResult, provenance
@@ -305,7 +305,7 @@ def _emof_sql(with_effort: bool = False) -> str:
             SELECT source_id, event_id, NULL, {rid}, 'fishing hours', 'fishing_hours', value, unit,
                    coalesce(protocol, source_kind),
                    'fishing hours of the cell and period', variable, life_stage, quantity, 3
-            FROM {BASE_VIEW} WHERE source_kind = 'effort' AND value IS NOT NULL""" if with_effort else ""
+            FROM {BASE_VIEW} WHERE {kinds_sql(is_fishing_effort=True)} AND value IS NOT NULL""" if with_effort else ""
     return f"""
         SELECT {_select(_EMOF_COLUMNS)} FROM (
             SELECT source_id, event_id, {_occurrence_key()} AS occurrence_key, {rid} AS measurement_id,

@@ -38,7 +38,7 @@ import pandas as pd
 import pyogrio
 import shapely
 
-from harmonize.adapters.registry import kinds as registered_kinds
+from harmonize.adapters.registry import kinds_sql
 from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
 from harmonize.export.atomic import all_or_nothing
@@ -62,10 +62,6 @@ VERSIONS = ("1.2", "1.3", "1.4")
 
 _GEOMETRY_TYPES = {"samples": "Point", "fishing_blocks": "Point", "gridded_cells": "Polygon",
                    "fishing_cells": "Polygon", "cells": "Polygon", "strata": "Polygon", "domain": "Polygon"}
-
-
-def _in(column: str, values: tuple[str, ...]) -> str:
-    return f"{column} IN ({', '.join(sql_text(v) for v in values) or 'NULL'})"
 
 
 def _events(con: object, where: str = "TRUE") -> pd.DataFrame:
@@ -115,7 +111,7 @@ def _gridded_cells(con: object) -> pd.DataFrame:
         f"""SELECT cell_id, source_id, count(DISTINCT event_id) AS cell_periods,
                    string_agg(DISTINCT variable, '|' ORDER BY variable) AS variables,
                    min(season_year) AS first_season_year, max(season_year) AS last_season_year
-            FROM {BASE_VIEW} WHERE {_in('source_kind', registered_kinds(is_sample=False, is_fishing_effort=False))}
+            FROM {BASE_VIEW} WHERE {kinds_sql(is_sample=False, is_fishing_effort=False)}
                  AND cell_id IS NOT NULL
             GROUP BY cell_id, source_id ORDER BY source_id, cell_id"""
     ).to_arrow_table().to_pandas()
@@ -129,7 +125,7 @@ def _fishing(con: object) -> pd.DataFrame:
                    any_value(depth_layer) AS depth_layer,
                    sum(value) FILTER (WHERE variable = 'fishing_hours') AS fishing_hours,
                    max(n_vessels) AS n_vessels, any_value(lat) AS lat, any_value(lon) AS lon
-            FROM {BASE_VIEW} WHERE {_in('source_kind', registered_kinds(is_fishing_effort=True))}
+            FROM {BASE_VIEW} WHERE {kinds_sql(is_fishing_effort=True)}
             GROUP BY source_id, event_id ORDER BY source_id, event_start, event_id"""
     ).to_arrow_table().to_pandas()
 
@@ -177,7 +173,7 @@ def export_gpkg(study: Study, out: str | Path, filters: ExportFilters | None = N
     path = prepare_target(out, SUFFIXES)
     filters = filters or ExportFilters()
     with open_selection(study, filters, disclosure) as (con, counts):
-        samples = _events(con, _in("source_kind", registered_kinds(is_sample=True)))
+        samples = _events(con, kinds_sql(is_sample=True))
         gridded = _gridded_cells(con)
         fishing = _fishing(con)
         cells = _cells(con)

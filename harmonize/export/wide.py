@@ -40,6 +40,7 @@ import pyarrow as pa
 import pyarrow.parquet as pq
 
 from harmonize import settings
+from harmonize.adapters.registry import kinds_sql
 from harmonize.disclosure import Disclosure
 from harmonize.errors import HarmonizeError
 from harmonize.export.atomic import all_or_nothing
@@ -337,7 +338,7 @@ def _resolve_covariates(con: Any, study: Study, covariates: pd.DataFrame | None,
     if covariates is not None or not link_gridded:
         return covariates, []
     gridded = [r[0] for r in con.execute(
-        "SELECT DISTINCT variable FROM observations WHERE source_kind = 'gridded' ORDER BY 1").fetchall()]
+        f"SELECT DISTINCT variable FROM observations WHERE {kinds_sql(grid_values=True)} ORDER BY 1").fetchall()]
     events = con.sql(f"""SELECT source_id, event_id, min(event_start) AS event_start, any_value(lat) AS lat,
                                 any_value(lon) AS lon, any_value(cell_id) AS cell_id,
                                 any_value(depth_layer) AS depth_layer
@@ -461,7 +462,7 @@ def _covariate_units(con: Any, physical: Sequence[str], extra: Sequence[str]) ->
     """Units of the physical columns (the store's unit of the variable) and of the linked
     ``gridded_<variable>[__<source>]`` columns (the gridded variable's unit); covariates a
     caller gives have no unit harmonize knows."""
-    rows = con.execute("""SELECT variable, source_kind = 'gridded' AS gridded,
+    rows = con.execute(f"""SELECT variable, {kinds_sql(grid_values=True)} AS gridded,
                                   string_agg(DISTINCT unit, ' or ' ORDER BY unit) AS unit
                            FROM observations WHERE variable_kind = 'physical' AND unit IS NOT NULL
                            GROUP BY ALL""").fetchall()

@@ -22,8 +22,8 @@ from harmonize.reading.quarantine import Rejections
 from harmonize.reading.text import (
     LineReader,
     RawTable,
-    _check_header_names,
     arrow_layout,
+    check_header_names,
     drop_blank_rows,
     first_row_header,
     refuse_long_lines,
@@ -200,7 +200,7 @@ def _arrow_blocks(path, profile: Profile) -> Iterator[_Block]:  # type: ignore[n
                 header = first_row_header(batch)
                 if len(set(header)) != len(header):
                     raise _NotForArrow
-                _check_header_names(path, header)
+                check_header_names(path, header)
                 batch = batch.slice(1)
             if batch.num_rows == 0:
                 continue

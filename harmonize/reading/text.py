@@ -118,7 +118,7 @@ def read_table(path: Path, profile: Profile, role: str) -> tuple[RawTable, list[
 
     fast = _read_csv_arrow(path, profile)
     if fast is not None:
-        _check_header_names(path, list(fast.columns))
+        check_header_names(path, list(fast.columns))
         return RawTable(path, role, fast, sha), []
     with LineReader(path, profile) as reader:
         rows: list[list[str]] = []
@@ -264,7 +264,7 @@ class LineReader:
         except csv.Error as exc:
             raise InputFileError(self.path, f"the header row cannot be read ({exc})") from None
         header = [h.strip().lstrip("\ufeff") for h in header]
-        _check_header_names(self.path, header)
+        check_header_names(self.path, header)
         seen: set[str] = set()  # one pass: header.count(h) per name was quadratic in the width
         dupes = sorted({h for h in header if h and (h in seen or seen.add(h))})
         if dupes:
@@ -445,7 +445,7 @@ def refuse_long_lines(path: Path, limit: int = MAX_LINE_BYTES, block_size: int =
 
 
 
-def _check_header_names(path: Path, header: Sequence[str]) -> None:
+def check_header_names(path: Path, header: Sequence[str]) -> None:
     """Refuse a header whose column names span lines (an unclosed quote swallowed the rows)."""
     broken = [h for h in header if "\n" in h or "\r" in h]
     if broken:

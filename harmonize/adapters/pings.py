@@ -119,7 +119,7 @@ _BLANK_CHARS = " \t\n\r\x0b\x0c"
 #: Data rows per block written by the line reader's fallback (bounded memory).
 FALLBACK_BLOCK_ROWS = 100_000
 #: Accepted pings per bucket of whole vessels whose track is made in one pass (bounded memory).
-PINGS_PER_BUCKET = 2_000_000
+PINGS_PER_BUCKET = 1_000_000
 #: The raw row of a row that could not be split: its text may identify a vessel.
 _WITHHELD = '{"note": "row text withheld: it may identify a vessel"}'
 
@@ -518,6 +518,15 @@ class PingReader:
         """
         buckets = max(1, -(-n_rows // PINGS_PER_BUCKET))
         self._empty_dups(con)
+        # every step of the track orders its rows by vessel, time and row: the order in which
+        # a bucket's pings arrive does not matter, and need not be kept
+        con.execute("SET preserve_insertion_order = false")
+        try:
+            return self._track_each_bucket(con, buckets)
+        finally:
+            con.execute("SET preserve_insertion_order = true")
+
+    def _track_each_bucket(self, con: duckdb.DuckDBPyConnection, buckets: int) -> tuple[pd.DataFrame, int, int]:
         season, season_year = season_sql("t", self.study.seasons, self.study.timezone)
         outside: list[np.ndarray] = []
         fishing = derived = 0

@@ -10,7 +10,8 @@ a long gap is not fishing time). Missing speeds are derived from consecutive pos
 are summed per grid cell x season_year x season x gear (x depth layer), with the number of
 distinct vessels (harmonize.adapters.fishing). Ping files are the largest inputs: everything
 runs in DuckDB SQL (window functions over vessel and time), streaming with bounded memory;
-only the domain test and the grid cell of each position run in numpy, batch by batch.
+only the domain test and the grid cell of each position run in numpy, bucket of whole
+vessels by bucket (see :meth:`PingReader._track_buckets`).
 
 Rows are numbered as every other reader of harmonize numbers them (``harmonize.reading.text.LineReader``):
 data rows as a person counts them, the header excluded, blank lines and lines made only of
@@ -127,13 +128,15 @@ _WITHHELD = '{"note": "row text withheld: it may identify a vessel"}'
 class PingReader:
     """The ping pipeline of one file, in DuckDB. See the module docstring for the method.
 
-    Tables: ``p`` typed pings with the first row-level problem (the only table of the
-    whole file); ``rej`` the pings rejected by a row-level check, an unknown gear or the
-    domain; the view ``accepted`` the other pings with their hashed vessel's number, gear
-    rule and grid cell (joined as they stream, never stored); ``track`` the accepted pings'
-    track (one ordered pass per vessel; only the rows something downstream reads: fishing,
-    derived speeds, position jumps, edges); ``dups`` the pings with the same vessel and time
-    as an earlier row, made by a second ordered pass only when the track found one.
+    Tables: ``p`` typed pings with the first row-level problem (the view of a temporary
+    parquet file, the only table of the whole file); ``rej`` the pings rejected by a
+    row-level check, an unknown gear or the domain; ``track`` the track of one bucket of
+    whole vessels' accepted pings (one ordered pass per vessel; only the rows something
+    downstream reads: fishing, derived speeds, position jumps, edges), from which each
+    bucket appends to ``spikes``, ``track_edges`` and ``cell_parts`` (fishing hours per cell);
+    ``dups`` the pings with the same vessel and time as an earlier row, made by a second
+    ordered pass only when the track found one. The Dask path reads the view ``accepted``
+    (the accepted pings with their vessel's number, gear and grid cell) instead.
     """
 
     def __init__(self, path: Path, profile: Profile, study: Study, settings: FishingSettings,
@@ -441,11 +444,11 @@ class PingReader:
 
     def _checks(self, con: duckdb.DuckDBPyConnection) -> None:
         """Gear and domain: the rejected pings (table ``rej``, with what the quarantine shows
-        of each) and the view ``accepted`` of the others.
+        of each).
 
         The rejected pings are found by three selective scans (a row-level problem; else an
-        unknown gear; else a position outside the domain, by the rows :meth:`_locate` found),
-        so that a file with few of them costs little here.
+        unknown gear; else a position outside the domain, by the rows of the table
+        ``outside`` that the domain test found), so that a file with few of them costs little here.
         """
         unknown_gear = ("printf('gear ''%s'' is not a known gear code; add a [fishing.gears.\"%s\"] table "
                         "with contact = \"bottom\" or \"pelagic\" to the profile', cell_txt(p.gear_raw), cell_txt(upper(trim(p.gear_raw))))")
@@ -764,7 +767,8 @@ class PingReader:
         con.execute(f"CREATE OR REPLACE VIEW p AS SELECT * FROM read_parquet({target})")
 
     def _locate(self, con: duckdb.DuckDBPyConnection) -> pa.Table:
-        """Cell code per row (in table order): OUTSIDE outside the domain, null without a position.
+        """Cell code per row of ``p`` (in table order; the Dask path): OUTSIDE outside the domain,
+        null without a position.
 
         Also registers ``outside``: the rows of the positions outside the domain.
         """

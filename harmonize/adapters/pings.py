@@ -10,7 +10,8 @@ a long gap is not fishing time). Missing speeds are derived from consecutive pos
 are summed per grid cell x season_year x season x gear (x depth layer), with the number of
 distinct vessels (harmonize.adapters.fishing). Ping files are the largest inputs: everything
 runs in DuckDB SQL (window functions over vessel and time), streaming with bounded memory;
-only the domain test and the grid cell of each position run in numpy, batch by batch.
+only the domain test and the grid cell of each position run in numpy, bucket of whole
+vessels by bucket (see :meth:`PingReader._track_buckets`).
 
 Rows are numbered as every other reader of harmonize numbers them (``harmonize.reading.text.LineReader``):
 data rows as a person counts them, the header excluded, blank lines and lines made only of
@@ -118,6 +119,8 @@ CELL_MACRO = "CREATE OR REPLACE TEMP MACRO cell_txt(x) AS CASE WHEN length(x) > 
 _BLANK_CHARS = " \t\n\r\x0b\x0c"
 #: Data rows per block written by the line reader's fallback (bounded memory).
 FALLBACK_BLOCK_ROWS = 100_000
+#: Accepted pings per bucket of whole vessels whose track is made in one pass (bounded memory).
+PINGS_PER_BUCKET = 1_000_000
 #: The raw row of a row that could not be split: its text may identify a vessel.
 _WITHHELD = '{"note": "row text withheld: it may identify a vessel"}'
 
@@ -125,13 +128,15 @@ _WITHHELD = '{"note": "row text withheld: it may identify a vessel"}'
 class PingReader:
     """The ping pipeline of one file, in DuckDB. See the module docstring for the method.
 
-    Tables: ``p`` typed pings with the first row-level problem (the only table of the
-    whole file); ``rej`` the pings rejected by a row-level check, an unknown gear or the
-    domain; the view ``accepted`` the other pings with their hashed vessel's number, gear
-    rule and grid cell (joined as they stream, never stored); ``track`` the accepted pings'
-    track (one ordered pass per vessel; only the rows something downstream reads: fishing,
-    derived speeds, position jumps, edges); ``dups`` the pings with the same vessel and time
-    as an earlier row, made by a second ordered pass only when the track found one.
+    Tables: ``p`` typed pings with the first row-level problem (the view of a temporary
+    parquet file, the only table of the whole file); ``rej`` the pings rejected by a
+    row-level check, an unknown gear or the domain; ``track`` the track of one bucket of
+    whole vessels' accepted pings (one ordered pass per vessel; only the rows something
+    downstream reads: fishing, derived speeds, position jumps, edges), from which each
+    bucket appends to ``spikes``, ``track_edges`` and ``cell_parts`` (fishing hours per cell);
+    ``dups`` the pings with the same vessel and time as an earlier row, made by a second
+    ordered pass only when the track found one. The Dask path reads the view ``accepted``
+    (the accepted pings with their vessel's number, gear and grid cell) instead.
     """
 
     def __init__(self, path: Path, profile: Profile, study: Study, settings: FishingSettings,
@@ -368,34 +373,21 @@ class PingReader:
 
         self.progress("vessels and gears", 1, 5)
         contact = self._lookups(con)
-        self.progress("domain and grid cells", 2, 5)
-        con.register("cells", self._locate(con))
-        self.progress("tracks", 3, 5)
-        self._checks(con)
-        # once per file, with a count: positions that would lie inside the domain swapped (not port pings)
-        off = con.execute(f"SELECT lat, lon FROM rej WHERE reason IN ('{ReasonCode.OUTSIDE_DOMAIN}', "
-                          f"'{ReasonCode.OUT_OF_RANGE}') AND lat IS NOT NULL AND lon IS NOT NULL "
-                          "ORDER BY row").fetchnumpy()
-        self.notes += swapped_position_notes(self.study, [(self.path.name, off["lat"], off["lon"])])
-        self.progress("fishing time", 4, 5)
         engine = current_engine()
         if engine.name == "dask":
+            self.progress("domain and grid cells", 2, 5)
+            con.register("cells", self._locate(con))
+            self._checks(con)
+            self._accepted_view(con)
+            self._swapped_notes(con)
+            self.progress("fishing time", 4, 5)
             cells_df, fishing, derived = self._track_on_dask(con, engine.scheduler)
         else:
-            self._track(con)
-            # the accepted pings are in the track, the rejected ones in rej and dups: the
-            # typed file is no longer needed
-            con.execute("DROP VIEW accepted")
-            con.execute("DROP VIEW p")
-            con.unregister("cells")
-            cells_df = self._aggregate(con)
-            fishing, derived = con.execute(
-                "SELECT count(*) FILTER (WHERE fishing), count(*) FILTER (WHERE sog IS NULL) FROM track WHERE NOT spike"
-            ).fetchall()[0]
-            con.execute("CREATE TEMP TABLE track_edges AS SELECT row, vid, t, lat, lon, sog, smin_of(gi) AS smin, "
-                        "smax_of(gi) AS smax, code, gear_of(gi) AS gear, layer_of(gi) AS layer, owned, "
-                        "CASE WHEN fishing AND NOT spike AND hours > 0 THEN hours ELSE 0 END AS file_hours "
-                        "FROM track WHERE edge")
+            self.progress("tracks", 3, 5)
+            cells_df, fishing, derived = self._track_buckets(con, n_rows)
+            self._checks(con)
+            self._swapped_notes(con)
+            self.progress("fishing time", 4, 5)
         edges, edge_cells = self._edges(con)
         events, values = effort_output(cells_df, self.study, self.grid, contact)
         edge_events, edge_values = effort_output(edge_cells, self.study, self.grid, contact)
@@ -408,6 +400,13 @@ class PingReader:
         return AdapterOutput(events=events, values=values, quarantine=quarantine, files=files,
                              notes=self.notes, masked=masked, track_edges=edges, edge_events=edge_events,
                              edge_values=edge_values)
+
+    def _swapped_notes(self, con: duckdb.DuckDBPyConnection) -> None:
+        """Once per file, with a count: positions that would lie inside the domain swapped (not port pings)."""
+        off = con.execute(f"SELECT lat, lon FROM rej WHERE reason IN ('{ReasonCode.OUTSIDE_DOMAIN}', "
+                          f"'{ReasonCode.OUT_OF_RANGE}') AND lat IS NOT NULL AND lon IS NOT NULL "
+                          "ORDER BY row").fetchnumpy()
+        self.notes += swapped_position_notes(self.study, [(self.path.name, off["lat"], off["lon"])])
 
     def _lookups(self, con: duckdb.DuckDBPyConnection) -> dict[str, str]:
         """Hash the distinct vessel ids and resolve the distinct gears (tables vmap, gmap)."""
@@ -445,11 +444,11 @@ class PingReader:
 
     def _checks(self, con: duckdb.DuckDBPyConnection) -> None:
         """Gear and domain: the rejected pings (table ``rej``, with what the quarantine shows
-        of each) and the view ``accepted`` of the others.
+        of each).
 
         The rejected pings are found by three selective scans (a row-level problem; else an
-        unknown gear; else a position outside the domain, by the rows :meth:`_locate` found),
-        so that a file with few of them costs little here.
+        unknown gear; else a position outside the domain, by the rows of the table
+        ``outside`` that the domain test found), so that a file with few of them costs little here.
         """
         unknown_gear = ("printf('gear ''%s'' is not a known gear code; add a [fishing.gears.\"%s\"] table "
                         "with contact = \"bottom\" or \"pelagic\" to the profile', cell_txt(p.gear_raw), cell_txt(upper(trim(p.gear_raw))))")
@@ -471,6 +470,10 @@ class PingReader:
             SELECT r.*, vm.vessel FROM ({union}) r(row, v_raw, t, lat, lon, sog, gear, raw, reason, message)
             LEFT JOIN vmap vm ON r.v_raw = vm.v_raw
         """)
+
+    def _accepted_view(self, con: duckdb.DuckDBPyConnection) -> None:
+        """The view ``accepted`` of the Dask path: the pings no check rejected, with the cell
+        codes of :meth:`_locate` (table ``cells``, in the order of ``p``)."""
         # the vessel's number comes from the small table of distinct vessels (each hashed once)
         con.execute(f"""
             CREATE TEMP VIEW accepted AS
@@ -482,24 +485,112 @@ class PingReader:
             WHERE p.reason IS NULL AND g.gi IS NOT NULL AND c.code <> {OUTSIDE}
         """)
 
-    def _duplicates(self, con: duckdb.DuckDBPyConnection) -> None:
-        """Table ``dups``: the accepted pings with the same vessel and time as an earlier row
-        (one ordered pass), with what the quarantine shows of each."""
-        con.execute("""
-            CREATE OR REPLACE TABLE dups AS
-            SELECT row, r0, same, vid, t, lat, lon, sog, gear FROM (
-                SELECT row, vid, t, lat, lon, sog, gear, lag(t) OVER w AS t0, lag(row) OVER w AS r0,
+    def _duplicates(self, con: duckdb.DuckDBPyConnection, pings: str) -> None:
+        """Append to table ``dups`` the pings of ``pings`` (accepted pings of whole vessels, with
+        their gear's number ``gi``) with the same vessel and time as an earlier row (one ordered
+        pass), with what the quarantine shows of each."""
+        con.execute(f"""
+            INSERT INTO dups
+            SELECT row, r0, same, vid, t, lat, lon, sog, gear_of(gi) AS gear FROM (
+                SELECT row, vid, t, lat, lon, sog, gi, lag(t) OVER w AS t0, lag(row) OVER w AS r0,
                        (lag(lat) OVER w IS NOT DISTINCT FROM lat AND lag(lon) OVER w IS NOT DISTINCT FROM lon
                         AND lag(sog) OVER w IS NOT DISTINCT FROM sog) AS same
-                FROM accepted
+                FROM {pings}
                 WINDOW w AS (PARTITION BY vid ORDER BY t, row))
             WHERE t = t0
         """)
 
-    def _track(self, con: duckdb.DuckDBPyConnection) -> None:
-        """Tables ``track`` (harmonize.tracks: neighbours, position jumps, derived speed,
-        fishing class, hours, and whether a ping lies at an edge of its vessel's part of this
-        file), ``dups`` and ``spikes``.
+    @staticmethod
+    def _empty_dups(con: duckdb.DuckDBPyConnection) -> None:
+        con.execute("CREATE OR REPLACE TABLE dups (row BIGINT, r0 BIGINT, same BOOLEAN, vid INTEGER, "
+                    "t TIMESTAMP, lat DOUBLE, lon DOUBLE, sog DOUBLE, gear VARCHAR)")
+
+    def _track_buckets(self, con: duckdb.DuckDBPyConnection, n_rows: int) -> tuple[pd.DataFrame, int, int]:
+        """The track, bucket of whole vessels by bucket (bounded memory); returns the fishing
+        cells (as :meth:`_aggregate`), the fishing pings and the derived speeds.
+
+        Each bucket (about :data:`PINGS_PER_BUCKET` pings: the vessels whose number ``vid``
+        has one remainder) is read from ``p`` with its vessel numbers and gears, located in
+        the grid and the domain (numpy, :func:`harmonize.adapters.fishing.locate`) and its
+        track made (:meth:`_track`); the rows something downstream reads are appended to the
+        tables ``spikes``, ``track_edges``, ``dups`` and ``cell_parts`` (fishing hours per cell
+        of the bucket's vessels). A vessel lies in one bucket, so the distinct vessels of a
+        cell are the sum of the buckets'. The window sorts of one bucket fit in memory: a file
+        of 1e7 pings in one sort filled the 1 GB memory limit and spilled. Registers
+        ``outside``: the rows located outside the domain.
+        """
+        buckets = max(1, -(-n_rows // PINGS_PER_BUCKET))
+        self._empty_dups(con)
+        # every step of the track orders its rows by vessel, time and row: the order in which
+        # a bucket's pings arrive does not matter, and need not be kept
+        con.execute("SET preserve_insertion_order = false")
+        try:
+            return self._track_each_bucket(con, buckets)
+        finally:
+            con.execute("SET preserve_insertion_order = true")
+
+    def _track_each_bucket(self, con: duckdb.DuckDBPyConnection, buckets: int) -> tuple[pd.DataFrame, int, int]:
+        season, season_year = season_sql("t", self.study.seasons, self.study.timezone)
+        outside: list[np.ndarray] = []
+        fishing = derived = 0
+        for b in range(buckets):
+            mine = f" AND vm.vid % {buckets} = {b}" if buckets > 1 else ""
+            pings = con.sql(f"""
+                SELECT p.row, vm.vid, p.t, p.lat, p.lon, p.sog, g.gi FROM p
+                JOIN vmap vm ON p.v_raw = vm.v_raw JOIN gmap g ON p.gear_raw = g.gear_raw
+                WHERE p.reason IS NULL AND g.gi IS NOT NULL{mine}""").to_arrow_table()
+            lon = pings["lon"].to_numpy().astype(float)
+            lat = pings["lat"].to_numpy().astype(float)
+            ok = np.isfinite(lon) & np.isfinite(lat) & (np.abs(lat) <= 90)
+            code = np.full(lon.shape[0], OUTSIDE, dtype=np.int64)
+            if ok.any():
+                code[ok] = locate(self.study, self.grid, lon[ok], lat[ok])
+            out = ok & (code == OUTSIDE)
+            if out.any():
+                outside.append(pings["row"].to_numpy()[out].astype(np.int64))
+            inside = ok & (code != OUTSIDE)
+            con.register("bucket_pings", pings.filter(pa.array(inside)).append_column("code", pa.array(code[inside])))
+            del pings, lon, lat, code
+            self._track(con, "bucket_pings")
+            con.unregister("bucket_pings")
+            first = b == 0
+            self._append(con, "spikes", first, "SELECT row, vid, t, lat, lon, sog, gear_of(gi) AS gear, r_p1, sp_in, "
+                         "r_n1, sp_out FROM track WHERE spike")
+            self._append(con, "track_edges", first,
+                         "SELECT row, vid, t, lat, lon, sog, smin_of(gi) AS smin, smax_of(gi) AS smax, code, "
+                         "gear_of(gi) AS gear, layer_of(gi) AS layer, owned, "
+                         "CASE WHEN fishing AND NOT spike AND hours > 0 THEN hours ELSE 0 END AS file_hours "
+                         "FROM track WHERE edge")
+            # the vessels and the speed_derived flag of a part are those of its interior pings:
+            # the store's view adds those of the owned edge pings, joined across the files of
+            # the source (harmonize.parts)
+            self._append(con, "cell_parts", first, f"""
+                SELECT code, {season_year} AS season_year, {season} AS season, gear_of(gi) AS gear,
+                       layer_of(gi) AS depth_layer, sum(hours) AS hours, count(DISTINCT vid) AS n_vessels,
+                       count(*) AS n_values,
+                       coalesce(bool_or(sog IS NULL) FILTER (WHERE NOT owned), false) AS speed_derived,
+                       coalesce(list(DISTINCT vessel) FILTER (WHERE NOT owned), []::VARCHAR[]) AS vessel_ids
+                FROM track LEFT JOIN (SELECT DISTINCT vid, vessel FROM vmap) USING (vid)
+                WHERE fishing AND NOT spike AND hours > 0
+                GROUP BY ALL""")
+            f, d = con.execute("SELECT count(*) FILTER (WHERE fishing), count(*) FILTER (WHERE sog IS NULL) "
+                               "FROM track WHERE NOT spike").fetchall()[0]
+            fishing, derived = fishing + f, derived + d
+            con.execute("DROP TABLE track")
+        rows = np.concatenate(outside) if outside else np.zeros(0, np.int64)
+        self.n_outside = int(rows.size)
+        con.register("outside", pa.table({"row": pa.array(rows, pa.int64())}))
+        return self._aggregate(con), fishing, derived
+
+    @staticmethod
+    def _append(con: duckdb.DuckDBPyConnection, table: str, first: bool, select: str) -> None:
+        """Create ``table`` from ``select`` (``first``), else append its rows."""
+        con.execute(f"CREATE TABLE {table} AS {select}" if first else f"INSERT INTO {table} {select}")
+
+    def _track(self, con: duckdb.DuckDBPyConnection, pings: str) -> None:
+        """Table ``track`` of the accepted pings of whole vessels in ``pings`` (harmonize.tracks:
+        neighbours, position jumps, derived speed, fishing class, hours, and whether a ping
+        lies at an edge of its vessel's part of this file); their duplicates appended to ``dups``.
 
         Pings in any order are sorted per vessel by time (the track's windows order by vessel,
         time and row): an ordinary AIS export interleaves vessels and repeats blocks, and a ping
@@ -508,15 +599,10 @@ class PingReader:
         sort: a ping whose previous ping on the track has its time. Most files have none, and
         then the one ordered pass is all; otherwise they are taken out and the track made again.
         """
-        con.execute(self._track_sql("accepted"))
+        con.execute(self._track_sql(pings))
         if con.execute("SELECT count(*) FROM track WHERE dup").fetchall()[0][0]:
-            self._duplicates(con)
-            con.execute(self._track_sql("(SELECT * FROM accepted ANTI JOIN dups USING (row))"))
-        else:
-            con.execute("CREATE OR REPLACE TABLE dups (row BIGINT, r0 BIGINT, same BOOLEAN, vid INTEGER, "
-                        "t TIMESTAMP, lat DOUBLE, lon DOUBLE, sog DOUBLE, gear VARCHAR)")
-        con.execute("CREATE TABLE spikes AS SELECT row, vid, t, lat, lon, sog, gear_of(gi) AS gear, r_p1, sp_in, r_n1, "
-                    "sp_out FROM track WHERE spike")
+            self._duplicates(con, pings)
+            con.execute(self._track_sql(f"(SELECT * FROM {pings} ANTI JOIN (SELECT row FROM dups) USING (row))"))
 
     def _track_sql(self, pings: str) -> str:
         """The statement making table ``track`` from a relation of accepted pings: the rows
@@ -548,11 +634,9 @@ class PingReader:
         scratch = Path(tempfile.mkdtemp(prefix="harmonize-pings-", dir=scratch_parent()))
         try:
             n, keys = con.execute("SELECT count(*), count(DISTINCT (vid, t)) FROM accepted").fetchall()[0]
-            if n == keys:  # no duplicates: a cheap count (a hash aggregate, no sort) says so
-                con.execute("CREATE OR REPLACE TABLE dups (row BIGINT, r0 BIGINT, same BOOLEAN, vid INTEGER, "
-                            "t TIMESTAMP, lat DOUBLE, lon DOUBLE, sog DOUBLE, gear VARCHAR)")
-            else:
-                self._duplicates(con)
+            self._empty_dups(con)
+            if n != keys:  # no duplicates: a cheap count (a hash aggregate, no sort) says so
+                self._duplicates(con, "accepted")
             buckets = max(2, min(512, n // 1_000_000))  # about a million pings per Dask task
             target = sql_text(str(scratch / "pings"))
             con.execute(f"""
@@ -671,11 +755,20 @@ class PingReader:
         folder: compressed and outside DuckDB's memory limit (an in-memory table of 1e7 typed
         pings filled the limit by itself and was spilled and read back uncompressed)."""
         target = sql_text(str(self.tmp / "typed.parquet"))
-        con.execute(f"COPY ({sql}) TO {target} (FORMAT parquet)")
+        # on one thread: the row numbers (a window over the file's order) make this statement
+        # run on one thread anyway, and a second one only buffers batches to write them in
+        # order (1e7 pings, 2 cores: the same time, 370 MB peak instead of 700 MB)
+        threads = con.execute("SELECT current_setting('threads')").fetchall()[0][0]
+        con.execute("SET threads = 1")
+        try:
+            con.execute(f"COPY ({sql}) TO {target} (FORMAT parquet)")
+        finally:
+            con.execute(f"SET threads = {int(threads)}")
         con.execute(f"CREATE OR REPLACE VIEW p AS SELECT * FROM read_parquet({target})")
 
     def _locate(self, con: duckdb.DuckDBPyConnection) -> pa.Table:
-        """Cell code per row (in table order): OUTSIDE outside the domain, null without a position.
+        """Cell code per row of ``p`` (in table order; the Dask path): OUTSIDE outside the domain,
+        null without a position.
 
         Also registers ``outside``: the rows of the positions outside the domain.
         """
@@ -697,18 +790,13 @@ class PingReader:
         return pa.table({"code": pa.chunked_array(parts, pa.int64())})
 
     def _aggregate(self, con: duckdb.DuckDBPyConnection) -> pd.DataFrame:
-        """Fishing hours per cell of the file's pings. The vessels and the speed_derived flag
-        of a part are those of its interior pings: the store's view adds those of the owned
-        edge pings, joined across the files of the source (harmonize.parts)."""
-        season, season_year = season_sql("t", self.study.seasons, self.study.timezone)
-        df = con.sql(f"""
-            SELECT code, {season_year} AS season_year, {season} AS season, gear_of(gi) AS gear, layer_of(gi) AS depth_layer,
-                   sum(hours) AS hours, count(DISTINCT vid) AS n_vessels, count(*) AS n_values,
-                   coalesce(bool_or(sog IS NULL) FILTER (WHERE NOT owned), false) AS speed_derived,
-                   coalesce(list_sort(list(DISTINCT vessel) FILTER (WHERE NOT owned)), []::VARCHAR[]) AS vessel_ids
-            FROM track LEFT JOIN (SELECT DISTINCT vid, vessel FROM vmap) USING (vid)
-            WHERE fishing AND NOT spike AND hours > 0
-            GROUP BY ALL ORDER BY ALL
+        """Fishing hours per cell of the file's pings, from the buckets' parts (table
+        ``cell_parts``: every vessel lies in one bucket, so vessels and counts add up)."""
+        df = con.sql("""
+            SELECT code, season_year, season, gear, depth_layer, sum(hours) AS hours,
+                   CAST(sum(n_vessels) AS BIGINT) AS n_vessels, CAST(sum(n_values) AS BIGINT) AS n_values,
+                   bool_or(speed_derived) AS speed_derived, list_sort(flatten(list(vessel_ids))) AS vessel_ids
+            FROM cell_parts GROUP BY ALL ORDER BY code, season_year, season, gear, depth_layer
         """).to_arrow_table().to_pandas()
         ix, iy = decode_cells(df["code"].to_numpy(np.int64))
         return df.assign(ix=ix, iy=iy).drop(columns="code")

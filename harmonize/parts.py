@@ -65,33 +65,76 @@ from harmonize.tracks import track_sql
 #: How the parts of a source's values merge (``ingests.merge_rule``, recorded at commit from
 #: what the pipeline says of the ingest's source kind, so that the store needs no knowledge
 #: of source kinds): the parts add up (fishing hours), or their area-weighted mean (a grid's
-#: cell value). NULL: the rows pass through as written.
+#: cell value), or the rows pass through as written (NONE). NULL: not recorded (an ingest
+#: committed before store version 7), read from its part files (:func:`rules_from_parts`).
 SUM = "sum"
 MEAN = "mean"
+NONE = "none"
 MERGE_RULES = (SUM, MEAN)
 
 
-def merge_rule(merges_parts: bool, parts_add_up: bool) -> str | None:
+def merge_rule(merges_parts: bool, parts_add_up: bool) -> str:
     """The ``ingests.merge_rule`` of an ingest whose source kind merges parts or not (see above)."""
     if not merges_parts:
-        return None
+        return NONE
     return SUM if parts_add_up else MEAN
 
 
 def merge_rules(con: duckdb.DuckDBPyConnection) -> dict[str, str]:
-    """source_kind -> merge rule, from the ``ingests`` table the store holds.
+    """source_kind -> merge rule (SUM or MEAN; kinds whose rows pass through are left out).
 
     A rule is recorded per ingest and applies to every ingest of its kind: the latest one
-    recorded, as the kind's adapter says it now (ingests committed before the store recorded
-    rules, version 7, follow the later ones of their kind). Empty for a store without the column.
+    recorded, as the kind's adapter says it now. A kind none of whose ingests has a rule
+    recorded (a store written before version 7, read before its first writer upgrades it) takes
+    the rule its part files show (:func:`rules_from_parts`).
     """
     known = con.execute("SELECT count(*) FROM duckdb_columns() WHERE table_name = 'ingests' "
                         "AND column_name = 'merge_rule'").fetchall()[0][0]
-    if not known:
-        return {}
     rows = con.execute("SELECT source_kind, arg_max(merge_rule, started_at) FROM ingests "
-                       "WHERE merge_rule IS NOT NULL GROUP BY ALL ORDER BY ALL").fetchall()
-    return {kind: rule for kind, rule in rows if rule in MERGE_RULES}
+                       "WHERE merge_rule IS NOT NULL GROUP BY ALL ORDER BY ALL").fetchall() if known else []
+    recorded = {kind: rule for kind, rule in rows}
+    unrecorded = con.execute(
+        "SELECT DISTINCT source_kind FROM ingests WHERE status = 'complete'"
+        + (" AND merge_rule IS NULL" if known else "") + " ORDER BY 1").fetchall()
+    legacy = [k for (k,) in unrecorded if k not in recorded]
+    if legacy:
+        inferred = rules_from_parts(con, f"i.status = 'complete' AND {sql_in('i.source_kind', legacy)}")
+        for ingest_kind, rule in inferred.values():
+            if rule != NONE:
+                recorded.setdefault(ingest_kind, rule)
+    return {kind: rule for kind, rule in recorded.items() if rule in MERGE_RULES}
+
+
+def rules_from_parts(con: duckdb.DuckDBPyConnection, where: str) -> dict[str, tuple[str, str]]:
+    """ingest_id -> (source_kind, merge rule) read from the footers of the ingests' part files
+    (``where`` selects rows of ``ingests i``): the pipeline writes the part columns only when
+    the adapter gives them, the area-weighted parts (``part_weight``) for values that merge as a
+    mean and the vessel lists (``vessel_ids``) for fishing hours, which add up; files with
+    neither pass through (so do the files of a store written before values were stored in
+    parts, as they did then). Footers only: no data page is read."""
+    files = con.execute(
+        f"""SELECT f.ingest_id, i.source_kind, f.path FROM observation_files f JOIN ingests i USING (ingest_id)
+            WHERE {where} ORDER BY f.path""").fetchall()
+    rules = {ingest: (kind, NONE) for ingest, kind, _ in files}
+    if not files:
+        return rules
+    # the manifest's paths are relative to the store folder, the connection's file_search_path;
+    # named in full (a folder name with glob characters is not globbed in a full path)
+    folder = con.execute("SELECT current_setting('file_search_path')").fetchall()[0][0] or ""
+    full = {path: (f"{folder.rstrip('/')}/{path}" if folder else path) for _, _, path in files}
+    shown = con.execute(
+        """SELECT file_name,
+                  bool_or(path_in_schema = 'part_weight') AS mean,
+                  bool_or(starts_with(path_in_schema, 'vessel_ids')) AS sum
+           FROM parquet_metadata(?::VARCHAR[]) GROUP BY ALL""", [list(full.values())]).fetchall()
+    by_file = {name: (mean, add) for name, mean, add in shown}
+    for ingest, kind, path in files:
+        mean, add = by_file.get(full[path], (False, False))
+        if add:
+            rules[ingest] = (kind, SUM)
+        elif mean and rules[ingest][1] != SUM:
+            rules[ingest] = (kind, MEAN)
+    return rules
 
 
 def _kinds(rules: Mapping[str, str], *chosen: str) -> tuple[str, ...]:

@@ -95,8 +95,8 @@ LOCK_SUFFIX = ".lock"
 #: ingest, so the store's check needs no knowledge of source kinds; NULL on older ingests).
 #: 7: ``ingests.merge_rule`` (how the ingest's values merge with the parts other ingests of its
 #: source wrote: harmonize.parts; recorded at commit from what the pipeline says of the ingest,
-#: so the store's views need no knowledge of source kinds; NULL on older ingests, which follow
-#: the later ingests of their source kind).
+#: so the store's views need no knowledge of source kinds; on older ingests it is read from
+#: their part files' footers when the first writer upgrades the store, and by readers until then).
 STORE_VERSION = 7
 _LOCK_RE = re.compile(r"\(PID (\d+)\)")
 logger = logging.getLogger(__name__)
@@ -445,6 +445,16 @@ class Store:
             con.execute("DELETE FROM store_meta WHERE key = 'checksums_since'")
             con.execute("INSERT INTO store_meta VALUES ('checksums_since', ?)",
                         [pd.Timestamp.now("UTC").isoformat()])
+        if version < 7:
+            # the merge rule of each ingest, read from its part files' footers (the views read it
+            # so until now: recorded, later readers need not open the footers)
+            try:
+                inferred = parts.rules_from_parts(con, "i.status = 'complete' AND i.merge_rule IS NULL")
+            except duckdb.Error:
+                inferred = {}  # unreadable files: the readers infer again; 'status --check' names them
+            if inferred:
+                con.executemany("UPDATE ingests SET merge_rule = ? WHERE ingest_id = ?",
+                                [[rule, ingest] for ingest, (_, rule) in inferred.items()])
         if version < 4:
             # the persisted views of an older store name absolute paths and cast naive times in
             # the session's zone: rewritten now (relative paths, naive times read as UTC); a

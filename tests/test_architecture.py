@@ -307,7 +307,7 @@ def test_merge_rules_come_from_the_adapter_classes() -> None:
     rules = {kind: parts.merge_rule(cls.merges_parts, cls.parts_add_up) for kind, cls in list_adapters().items()}
     # docs/store.md: values that span files; fishing hours add up, a grid cell's value is the
     # area-weighted mean of its parts
-    assert {kind: rule for kind, rule in rules.items() if rule} == {"effort": "sum", "gridded": "mean"}
+    assert {kind: rule for kind, rule in rules.items() if rule != parts.NONE} == {"effort": "sum", "gridded": "mean"}
 
 
 

@@ -294,7 +294,8 @@ def test_a_store_written_before_the_parts_still_reads_one_row_per_cell_period(st
 def test_the_merge_rule_is_recorded_at_commit_and_older_ingests_follow_their_kind(study_dir: Path) -> None:
     """The store merges parts by ``ingests.merge_rule``, written at commit from the adapter
     (store version 7): the store's views consult no adapter. An ingest committed before the
-    rule was recorded (null) follows the later ingests of its source kind."""
+    rule was recorded (null) follows the later ingests of its source kind; with no rule recorded
+    at all, the part files' footers say it (area-weighted parts: a mean)."""
     import duckdb
 
     study = _winter_case(study_dir)
@@ -307,9 +308,39 @@ def test_the_merge_rule_is_recorded_at_commit_and_older_ingests_follow_their_kin
     con.execute("UPDATE ingests SET merge_rule = NULL WHERE ingest_id = (SELECT min(ingest_id) FROM ingests)")
     con.close()
     pd.testing.assert_frame_equal(_view(study), exact)
-    # with no rule recorded the rows are read as each file wrote them: one part per file
     con = duckdb.connect(str(store.db_path))
     con.execute("UPDATE ingests SET merge_rule = NULL")
     con.close()
-    parts = _view(study)
-    assert not parts["event_id"].is_unique and len(parts) > len(exact)
+    pd.testing.assert_frame_equal(_view(study), exact)
+
+
+def test_a_store_of_version_6_reads_merged_and_is_upgraded_with_its_rules(study_dir: Path) -> None:
+    """A store written before the rules were recorded (version 6: no merge_rule column): its
+    readers merge the grid's parts (a mean) and the fishing hours (a sum) as its writer did, and
+    the first writer records each ingest's rule, read from the footers of its part files."""
+    import duckdb
+
+    study = _winter_case(study_dir)
+    for k, vessel in enumerate(["A-1", "B-2", "C-3"]):
+        day = f"2021-06-0{k + 1}"
+        text = PING_HEADER + "".join(f"{vessel},{day}T{h:02d}:00:00Z,42.9,{-152.0 + 0.001 * h},3.0,OTB\n"
+                                     for h in range(8, 12))
+        (study_dir / f"day{k}.csv").write_text(text)
+        run(study, "effort_pings", {"rows": study_dir / f"day{k}.csv"})
+    grid, hours = _view(study), _effort_view(study)
+    # three vessels x (0.5 + 1 + 1 + 0.5) h, one cell-period (hand arithmetic, as above)
+    assert hours["value"].tolist() == pytest.approx([9.0], abs=1e-12)
+    store = Store(study.store_dir)
+    con = duckdb.connect(str(store.db_path))
+    con.execute("ALTER TABLE ingests DROP COLUMN merge_rule")
+    con.execute("UPDATE store_meta SET value = '6' WHERE key = 'store_version'")
+    con.execute("DELETE FROM store_meta WHERE starts_with(key, 'view_sql:')")
+    con.close()
+    pd.testing.assert_frame_equal(_view(study), grid)
+    pd.testing.assert_frame_equal(_effort_view(study), hours)
+    with store.connect(read_only=False) as con:   # the first writer upgrades the store
+        rules = dict(con.execute("SELECT DISTINCT source_kind, merge_rule FROM ingests").fetchall())
+        version = con.execute("SELECT value FROM store_meta WHERE key = 'store_version'").fetchall()[0][0]
+    assert rules == {"gridded": "mean", "effort": "sum"} and version == "7"
+    pd.testing.assert_frame_equal(_view(study), grid)
+    pd.testing.assert_frame_equal(_effort_view(study), hours)

@@ -144,7 +144,7 @@ count = "number"
         # the catch rows that stay, with haul, taxon and life stage as integer codes
         catch = pd.DataFrame({
             "event_id": pd.Categorical(rc["event_id"][rc_ok]),
-            "variable": pd.Categorical(taxon[rc_ok]),
+            "variable": _present_categories(taxon[rc_ok]),
             "life_stage": _folded_categorical(rc["life_stage"][rc_ok]),
             "weight": rc["weight"][rc_ok].to_numpy(float),
             "count": rc["count"][rc_ok].to_numpy(float),
@@ -327,6 +327,15 @@ def _key_codes(column: pd.Series) -> tuple[np.ndarray, int]:
         return column.cat.codes.to_numpy().astype(np.int64) + 1, len(column.cat.categories) + 1
     code, uniques = pd.factorize(column, use_na_sentinel=True)
     return code.astype(np.int64) + 1, len(uniques) + 1
+
+
+def _present_categories(values: pd.Series) -> pd.Categorical:
+    """``pd.Categorical(values)``: the sorted distinct values present as categories; by category
+    when ``values`` is already categorical (no text per row)."""
+    if not isinstance(values.dtype, pd.CategoricalDtype):
+        return pd.Categorical(values)
+    present = values.cat.remove_unused_categories()
+    return pd.Categorical(present.cat.reorder_categories(sorted(present.cat.categories)))
 
 
 def _folded_categorical(text: pd.Series) -> pd.Categorical:

@@ -150,7 +150,9 @@ count = "number"
             "count": rc["count"][rc_ok].to_numpy(float),
             "row": np.flatnonzero(rc_ok) + 1,
         })
-        del taxon
+        # the typed catch table is not needed once its kept rows are coded: free it
+        del taxon, rc
+        opening.rc = None  # type: ignore[assignment]
         if unattributed:
             # a haul none of whose catch rows could be read has no known catch at all (not
             # even "nothing caught"): it is quarantined rather than stored without its catch

@@ -24,6 +24,7 @@ from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, fi
 from harmonize.errors import ReasonCode
 from harmonize.geodesy import track_geometry
 from harmonize.membership import distinct_present, is_in
+from harmonize.memory import release_free_memory
 from harmonize.profile import Profile
 from harmonize.reading.quarantine import Rejections, reject_repeated_ids
 from harmonize.reading.taxa import resolve_taxa
@@ -126,6 +127,7 @@ class EventRecordAdapter(Adapter):
     def check_records(self, opening: Opening, study: Study) -> RecordCheck:
         """Quarantine the records of unknown or rejected events and of unknown taxa, then the
         kind's own record checks; find the events whose records are incomplete."""
+        release_free_memory()  # what reading and the event checks freed: not counted below
         ev, rc, rej = opening.ev, opening.rc, opening.rejections
         ev_alive = ~rej.mask("events", len(ev))
         rc_alive = ~rej.mask("records", len(rc))
@@ -143,6 +145,7 @@ class EventRecordAdapter(Adapter):
         lost = ~kept & is_in(rc["event_id"], ev["event_id"][ev_alive])
         blocked = pd.DataFrame({"event_id": rc["event_id"][lost], "variable": _known_or_guessed(taxon[lost], guess[lost])})
         blocked = blocked.dropna()
+        release_free_memory()  # the checks' per-row temporaries
         return RecordCheck(taxon, kept, distinct_present(rc["event_id"][lost]), blocked,
                            unattributed_records(kept, rc["event_id"]))
 

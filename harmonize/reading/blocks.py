@@ -74,7 +74,7 @@ class BlockRawTable(RawTable):
             # small blocks: Arrow's streaming reader reads a few dozen blocks ahead of the one
             # handed over (measured: ~540 MB of a 400 MB file held with 64 MB blocks, ~150 MB
             # with 4 MB blocks), and only a few rows of each block are wanted here
-            blocks = _arrow_blocks(self.path, self.profile, FETCH_BLOCK_BYTES) if self.arrow \
+            blocks = _arrow_blocks(self.path, self.profile, min(FETCH_BLOCK_BYTES, BLOCK_BYTES)) if self.arrow \
                 else _line_blocks(self.path, self.profile)
             for offset, text, _ in blocks:
                 lo, hi = np.searchsorted(positions, [offset, offset + len(text)])
@@ -167,7 +167,7 @@ def _line_blocks(path, profile: Profile) -> Iterator[_Block]:  # type: ignore[no
             yield block.first_row - 1, frame, block.malformed
 
 
-def _arrow_blocks(path, profile: Profile, block_bytes: int = BLOCK_BYTES,  # type: ignore[no-untyped-def]
+def _arrow_blocks(path, profile: Profile, block_bytes: int | None = None,  # type: ignore[no-untyped-def]
                   use_threads: bool = True) -> Iterator[_Block]:
     """Blocks of a well-formed UTF-8 CSV file read by Arrow's streaming reader; raises
     :class:`_NotForArrow` (possibly after some blocks) where ``harmonize.reading.text._read_csv_arrow``
@@ -180,7 +180,7 @@ def _arrow_blocks(path, profile: Profile, block_bytes: int = BLOCK_BYTES,  # typ
     try:
         reader = pacsv.open_csv(
             path,
-            read_options=pacsv.ReadOptions(autogenerate_column_names=True, block_size=block_bytes,
+            read_options=pacsv.ReadOptions(autogenerate_column_names=True, block_size=block_bytes or BLOCK_BYTES,
                                            use_threads=use_threads),
             parse_options=pacsv.ParseOptions(delimiter=delimiter, newlines_in_values=True),
             convert_options=pacsv.ConvertOptions(

@@ -22,6 +22,7 @@ store harmonize wrote from the same files.
 from __future__ import annotations
 
 import difflib
+import shutil
 import unicodedata
 from pathlib import Path
 
@@ -130,14 +131,23 @@ def _names(con: duckdb.DuckDBPyConnection, path: Path, study) -> tuple[pd.DataFr
     return names, stages
 
 
+#: DuckDB's working memory for the floor's statement: what does not fit spills to a folder
+#: beside the output. DuckDB's default (80 % of RAM) exceeds the benchmark's 12 GB address
+#: space cap, so at 1e7 catch rows the statement failed instead of spilling.
+MEMORY_LIMIT = "3GB"
+
+
 def trawl_floor(study_dir: Path, events: Path, records: Path, out_dir: Path, source_id: str = "bench_trawl",
-                protocol: str = "keldmar_bottom_trawl") -> int:
+                protocol: str = "keldmar_bottom_trawl", memory_limit: str = MEMORY_LIMIT) -> int:
     """Write the observation rows of a trawl ingest of the benchmark files to ``out_dir``; returns the rows."""
     from harmonize.study import load_study
 
     study = load_study(study_dir)
     con = duckdb.connect()
+    spill = out_dir.parent / f"{out_dir.name}.spill"
     try:
+        con.execute(f"SET memory_limit = '{memory_limit}'")
+        con.execute(f"SET temp_directory = '{spill}'")
         hauls = _hauls(con, events, study)
         names, stages = _names(con, records, study)
         targets = study.targets[study.targets["protocol"] == protocol][["taxon", "first_year", "last_year"]].copy()
@@ -167,7 +177,7 @@ def trawl_floor(study_dir: Path, events: Path, records: Path, out_dir: Path, sou
                    LEFT JOIN stages s ON c.life_stage IS NOT DISTINCT FROM s.raw),
         lost AS (SELECT DISTINCT haul_id, coalesce(taxon, guess) AS taxon FROM t WHERE live AND NOT good),
         agg AS (
-            SELECT haul_id, taxon, stage, sum(kg) AS kg, sum(cnt) AS cnt, count(*) AS n, list(row ORDER BY row) AS rows
+            SELECT haul_id, taxon, stage, sum(kg) AS kg, sum(cnt) AS cnt, count(*) AS n, list_sort(list(row)) AS rows
             FROM t WHERE good AND live GROUP BY haul_id, taxon, stage),
         v AS (
             SELECT haul_id, taxon AS variable, 'taxon' AS variable_kind, stage AS life_stage, 'biomass' AS quantity,
@@ -206,6 +216,7 @@ def trawl_floor(study_dir: Path, events: Path, records: Path, out_dir: Path, sou
         """).fetchall()[0][0]
     finally:
         con.close()
+        shutil.rmtree(spill, ignore_errors=True)
     return int(n)
 
 

@@ -24,6 +24,7 @@ from harmonize.adapters.base import Adapter, AdapterOutput, ProgressCallback, fi
 from harmonize.errors import ReasonCode
 from harmonize.geodesy import track_geometry
 from harmonize.membership import distinct_present, is_in
+from harmonize.memory import release_free_memory
 from harmonize.profile import Profile
 from harmonize.reading.quarantine import Rejections, reject_repeated_ids
 from harmonize.reading.taxa import resolve_taxa
@@ -126,6 +127,7 @@ class EventRecordAdapter(Adapter):
     def check_records(self, opening: Opening, study: Study) -> RecordCheck:
         """Quarantine the records of unknown or rejected events and of unknown taxa, then the
         kind's own record checks; find the events whose records are incomplete."""
+        release_free_memory()  # what reading and the event checks freed: not counted below
         ev, rc, rej = opening.ev, opening.rc, opening.rejections
         ev_alive = ~rej.mask("events", len(ev))
         rc_alive = ~rej.mask("records", len(rc))
@@ -141,7 +143,9 @@ class EventRecordAdapter(Adapter):
         # taxon (when known, or the closest known name of a misspelt one) is never zero-filled
         # for that event.
         lost = ~kept & is_in(rc["event_id"], ev["event_id"][ev_alive])
-        blocked = pd.DataFrame({"event_id": rc["event_id"][lost], "variable": taxon.fillna(guess)[lost]}).dropna()
+        blocked = pd.DataFrame({"event_id": rc["event_id"][lost], "variable": _known_or_guessed(taxon[lost], guess[lost])})
+        blocked = blocked.dropna()
+        release_free_memory()  # the checks' per-row temporaries
         return RecordCheck(taxon, kept, distinct_present(rc["event_id"][lost]), blocked,
                            unattributed_records(kept, rc["event_id"]))
 
@@ -149,6 +153,15 @@ class EventRecordAdapter(Adapter):
         """The ingest note for ``n`` quarantined records that no event can claim."""
         return unattributed_note(file_name, n, self.record_word, self.event_word,
                                  what=self.records_called, flag=self.incomplete_flag)
+
+
+def _known_or_guessed(taxon: pd.Series, guess: pd.Series) -> pd.Series:
+    """The taxon of each record, or its closest known taxon where the name is unknown (categorical
+    columns, as :func:`~harmonize.reading.taxa.resolve_taxa` gives for a table read in blocks,
+    compared as text: their categories differ)."""
+    if isinstance(taxon.dtype, pd.CategoricalDtype):
+        taxon, guess = taxon.astype(object), guess.astype(object)
+    return taxon.fillna(guess)
 
 
 def event_times(ev: pd.DataFrame, rejections: Rejections, alive: np.ndarray, start_field: str = "start_time",

@@ -39,7 +39,8 @@ from harmonize.clock import add_hours
 from harmonize.contract import fields
 from harmonize.errors import ReasonCode
 from harmonize.geodesy import KM_PER_NMI
-from harmonize.membership import distinct_present, is_in
+from harmonize.membership import codes_in, distinct_present, is_in
+from harmonize.memory import release_free_memory
 from harmonize.reading.fields import resolve_columns
 from harmonize.reading.quarantine import Rejections
 from harmonize.study import Study
@@ -142,15 +143,22 @@ count = "number"
             notes.append(self.unattributed_note(rc_raw.path.name, unattributed))
 
         # the catch rows that stay, with haul, taxon and life stage as integer codes
+        # (taken by position from codes and numpy arrays: a masked pandas Series would copy
+        # an index of the table's length for each column)
+        kept_at = np.flatnonzero(rc_ok)
         catch = pd.DataFrame({
-            "event_id": pd.Categorical(rc["event_id"][rc_ok]),
-            "variable": pd.Categorical(taxon[rc_ok]),
-            "life_stage": _folded_categorical(rc["life_stage"][rc_ok]),
-            "weight": rc["weight"][rc_ok].to_numpy(float),
-            "count": rc["count"][rc_ok].to_numpy(float),
-            "row": np.flatnonzero(rc_ok) + 1,
-        })
-        del taxon
+            "event_id": _take_categorical(rc["event_id"], kept_at),
+            "variable": _present_categories(pd.Series(_take_categorical(taxon, kept_at))),
+            "life_stage": _folded_categorical(pd.Series(_take_categorical(rc["life_stage"], kept_at))),
+            "weight": rc["weight"].to_numpy(float)[kept_at],
+            "count": rc["count"].to_numpy(float)[kept_at],
+            "row": kept_at + 1,
+        }, copy=False)  # (a copy would consolidate the float columns: ~20 bytes per row more at the peak)
+        del kept_at
+        # the typed catch table is not needed once its kept rows are coded: free it
+        del taxon, rc
+        opening.rc = None  # type: ignore[assignment]
+        release_free_memory()
         if unattributed:
             # a haul none of whose catch rows could be read has no known catch at all (not
             # even "nothing caught"): it is quarantined rather than stored without its catch
@@ -165,7 +173,9 @@ count = "number"
         for table in (ev_raw, rc_raw):
             table.keep_only(rej.mask(table.role, table.n_rows))
         haul_ids = pd.Index(hauls["event_id"])
-        catch["event_id"] = catch["event_id"].cat.set_categories(haul_ids)
+        # (``cat.set_categories`` over a million haul ids held several per-row copies at once)
+        catch["event_id"] = pd.Categorical.from_codes(codes_in(catch["event_id"], haul_ids).astype(np.int32),
+                                                      categories=haul_ids)
         # the protocol records the quantities the catch file has a column for
         provided = resolve_columns(rc_raw, fields("trawl_records"), profile)
         quantities = [(q, u) for q, u, col in (("biomass", "kg", "weight"), ("count", "1", "count"))
@@ -329,9 +339,31 @@ def _key_codes(column: pd.Series) -> tuple[np.ndarray, int]:
     return code.astype(np.int64) + 1, len(uniques) + 1
 
 
+def _take_categorical(values: pd.Series, at: np.ndarray) -> pd.Categorical:
+    """``pd.Categorical(values.iloc[at])`` keeping every category of a categorical ``values``."""
+    cat = values.array if isinstance(values.dtype, pd.CategoricalDtype) else pd.Categorical(values)
+    return pd.Categorical.from_codes(cat.codes[at], dtype=cat.dtype)
+
+
+def _present_categories(values: pd.Series) -> pd.Categorical:
+    """``pd.Categorical(values)``: the sorted distinct values present as categories; by category
+    when ``values`` is already categorical (no text per row)."""
+    if not isinstance(values.dtype, pd.CategoricalDtype):
+        return pd.Categorical(values)
+    present = values.cat.remove_unused_categories()
+    return pd.Categorical(present.cat.reorder_categories(sorted(present.cat.categories)))
+
+
 def _folded_categorical(text: pd.Series) -> pd.Categorical:
     """Life stages normalised (:func:`~harmonize.adapters.life_stages.normalise_life_stage`) as a
     categorical: each distinct text is normalised once."""
+    if isinstance(text.dtype, pd.CategoricalDtype):  # by category: no text per row
+        present = text.cat.remove_unused_categories()
+        folded = pd.Categorical(normalise_life_stage(pd.Series(present.cat.categories, dtype="string")))
+        per_category = np.append(folded.codes, -1)
+        codes = present.cat.codes.to_numpy()
+        return pd.Categorical.from_codes(per_category[np.where(codes < 0, len(per_category) - 1, codes)],
+                                         dtype=folded.dtype)
     code, uniques = pd.factorize(text, use_na_sentinel=True)
     folded = pd.Categorical(normalise_life_stage(pd.Series(uniques, dtype="string")))
     per_unique = np.append(folded.codes, -1)
@@ -449,15 +481,20 @@ class TrawlValues(ValueSource):
         rank[order] = np.arange(n)
         # each catch row's haul by its place in ``order``; a row without a haul (none is
         # expected: the pipeline refuses values without an event) goes with the last run
-        catch_rank = np.where(self.catch_haul >= 0, rank[np.maximum(self.catch_haul, 0)], n)
+        # (4-byte integers: these arrays are per catch row, millions of them)
+        catch_rank = np.where(self.catch_haul >= 0, rank[np.maximum(self.catch_haul, 0)], n).astype(np.int32)
         zero_rank = rank[self.zero_haul]
         # runs of hauls of about ``rows`` values: two per catch row (biomass and count), the
         # protocol's zeros and a temperature per haul, roughly
-        per_haul = (np.bincount(catch_rank, minlength=n + 1)[:n] * 2 + 2 * len(self.quantities) + 1)[order]
+        per_rank = np.bincount(catch_rank, minlength=n + 1)
+        per_haul = (per_rank[:n] * 2 + 2 * len(self.quantities) + 1)[order]
         run = (np.cumsum(per_haul) - per_haul) // max(rows, 1)
         cuts = np.concatenate([[0], np.flatnonzero(np.diff(run)) + 1, [n]])
-        by_rank = np.argsort(catch_rank, kind="stable")
-        starts = np.searchsorted(catch_rank[by_rank], cuts)
+        by_rank = np.argsort(catch_rank, kind="stable").astype(np.int32)
+        del catch_rank
+        # the catch rows of ranks lo..hi-1 are by_rank[starts[lo]:starts[hi]]; the last run
+        # also takes rows without a haul (rank n)
+        starts = np.concatenate([[0], np.cumsum(per_rank)])[cuts]
         starts[-1] = len(by_rank)
         valued = np.zeros(n, dtype=bool)
         for (lo, hi), (a, b) in zip(zip(cuts[:-1], cuts[1:], strict=True),

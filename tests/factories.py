@@ -5,6 +5,7 @@ from __future__ import annotations
 import hashlib
 from pathlib import Path
 
+import numpy as np
 import pandas as pd
 
 from harmonize.adapters.base import AdapterOutput, InputFile
@@ -64,3 +65,23 @@ def store_frames(
     profile = Profile(path=study.root / "profiles" / f"{source_id}.toml", source_id=source_id, kind=kind,
                       provider_type=provider_type, protocol=protocol, raw={"source": {"id": source_id}})
     return store_output(study, profile, kind, out, replace=replace)
+
+
+def messy_ping_text(rng: np.random.Generator, vessels: int, per_vessel: int, start: str,
+                    gears: tuple[str, ...]) -> tuple[pd.DataFrame, np.ndarray]:
+    """Pings of the demo's fleet as the text a provider writes (columns vessel, time_utc, lat,
+    lon, sog, gear), with about 15 % of the speeds missing and about 2 % of the positions
+    jumping 0.4 degrees north; returns the frame and the rows of the jumps."""
+    from harmonize.demo.sources.effort import simulate_pings
+
+    df = simulate_pings(rng, vessels, per_vessel, start=start, gears=gears)
+    df = df.drop(columns="fishing").rename(columns={"vessel_name": "vessel", "utc_time": "time_utc",
+                                                    "latitude": "lat", "longitude": "lon", "sog_kn": "sog",
+                                                    "gear_code": "gear"})
+    df["time_utc"] = df["time_utc"].dt.strftime("%Y-%m-%dT%H:%M:%SZ")
+    df = df.astype({"lat": str, "lon": str, "sog": str})
+    n = len(df)
+    df.loc[rng.random(n) < 0.15, "sog"] = ""
+    jumps = np.flatnonzero(rng.random(n) < 0.02)
+    df.loc[jumps, "lat"] = (df.loc[jumps, "lat"].astype(float) + 0.4).round(5).astype(str)
+    return df, jumps

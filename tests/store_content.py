@@ -87,3 +87,33 @@ def differences(found: dict[str, dict[str, str]], recorded: dict[str, dict[str, 
         a, b = found.get(table, {}), recorded.get(table, {})
         diff += [f"{table}.{c}" for c in sorted(set(a) | set(b)) if a.get(c) != b.get(c)]
     return diff
+
+
+def store_tables(study_dir: Path) -> dict[str, Any]:
+    """The observations (``ingest_id`` left out, by record id), the quarantine and the ingests'
+    row accounting of the study's store, as pandas frames: for comparing two stores whole."""
+    with Store(study_dir / "store").connect() as con:
+        obs = con.sql("SELECT * EXCLUDE (ingest_id) FROM observations ORDER BY record_id").df()
+        quarantine = con.sql("SELECT source_file, source_row, reason_code, message, raw FROM quarantine "
+                             "ORDER BY source_file, source_row").df()
+        accounting = con.sql("SELECT file_name, rows_read, rows_accepted, rows_quarantined, records_written "
+                             "FROM ingests ORDER BY file_name").df()
+    return {"observations": obs, "quarantine": quarantine, "accounting": accounting}
+
+
+def assert_same_fishing_store(a: dict[str, Any], b: dict[str, Any]) -> None:
+    """Two stores of fishing hours (:func:`store_tables`) hold the same rows: the accounting and
+    the quarantine exactly, the hours to 1e-12 relative (a sum in another order may differ in
+    its last bits), every other column exactly."""
+    import numpy as np
+    import pandas as pd
+
+    pd.testing.assert_frame_equal(a["accounting"], b["accounting"])
+    pd.testing.assert_frame_equal(a["quarantine"], b["quarantine"])
+    obs_a, obs_b = a["observations"], b["observations"]
+    assert len(obs_a) > 20 and set(obs_a["variable"]) == {"fishing_hours"}
+    summed = ("value", "effort", "density")
+    for col in summed:
+        np.testing.assert_allclose(obs_a[col].to_numpy(float), obs_b[col].to_numpy(float), rtol=1e-12)
+    rest = [c for c in obs_a.columns if c not in summed]
+    pd.testing.assert_frame_equal(obs_a[rest], obs_b[rest])

@@ -14,15 +14,15 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import distributed
-import duckdb
 import numpy as np
 import pandas as pd
 import pytest
 from audit_stores import build_known_gaps
+from factories import messy_ping_text
+from store_content import assert_same_fishing_store, store_tables
 
-from harmonize import Store, load_study, run
+from harmonize import load_study, run
 from harmonize.audit.run import audit
-from harmonize.demo.sources.effort import simulate_pings
 from harmonize.engines import EngineChoice, check_engine, current_engine, engine_scope
 from harmonize.errors import HarmonizeError
 from harmonize.geodesy import distance_m
@@ -58,17 +58,7 @@ def _messy_pings(path: Path, seed: int = 4) -> None:
     the domain: every branch of the track rules is taken.
     """
     rng = np.random.default_rng(seed)
-    df = simulate_pings(rng, 8, 300, start="2021-05-20", gears=("OTB", "OTB", "TBB", "OTM", "OTB", "DRB",
-                                                                  "OTB", "TBB"))
-    df = df.drop(columns="fishing").rename(columns={"vessel_name": "vessel", "utc_time": "time_utc",
-                                                    "latitude": "lat", "longitude": "lon", "sog_kn": "sog",
-                                                    "gear_code": "gear"})
-    df["time_utc"] = df["time_utc"].dt.strftime("%Y-%m-%dT%H:%M:%SZ")
-    df = df.astype({"lat": str, "lon": str, "sog": str})
-    n = len(df)
-    df.loc[rng.random(n) < 0.15, "sog"] = ""
-    jumps = np.flatnonzero(rng.random(n) < 0.02)
-    df.loc[jumps, "lat"] = (df.loc[jumps, "lat"].astype(float) + 0.4).round(5).astype(str)
+    df, jumps = messy_ping_text(rng, 8, 300, "2021-05-20", ("OTB", "OTB", "TBB", "OTM", "OTB", "DRB", "OTB", "TBB"))
     df.loc[jumps[:3] + 1, "lat"] = (df.loc[jumps[:3] + 1, "lat"].astype(float) + 0.4).round(5).astype(str)
     df.loc[5, "gear"] = "XYZ"
     df.loc[7, "lat"] = "10.0"
@@ -96,20 +86,6 @@ def _ingest_both(study_dir: Path, tmp_path: Path, files: list[Path], scheduler: 
     return dirs[0], dirs[1]
 
 
-def _store_tables(study_dir: Path) -> dict[str, pd.DataFrame]:
-    con = duckdb.connect(str(study_dir / "store" / "harmonized.duckdb"), read_only=True)
-    try:
-        Store(study_dir / "store")._define_view(con, temporary=True)
-        obs = con.sql("SELECT * EXCLUDE (ingest_id) FROM observations ORDER BY record_id").df()
-        quarantine = con.sql("SELECT source_file, source_row, reason_code, message, raw FROM quarantine "
-                             "ORDER BY source_file, source_row").df()
-        accounting = con.sql("SELECT file_name, rows_read, rows_accepted, rows_quarantined, records_written "
-                             "FROM ingests ORDER BY file_name").df()
-    finally:
-        con.close()
-    return {"observations": obs, "quarantine": quarantine, "accounting": accounting}
-
-
 def test_ping_tracks_on_dask_equal_duckdb(study_dir: Path, tmp_path: Path, scheduler: str) -> None:
     messy = tmp_path / "pings_messy.csv"
     _messy_pings(messy)
@@ -117,20 +93,12 @@ def test_ping_tracks_on_dask_equal_duckdb(study_dir: Path, tmp_path: Path, sched
     shutil.copy(FIXTURES / "effort" / "pings_hand.csv", hand)
     on_duckdb, on_dask = _ingest_both(study_dir, tmp_path, [messy, hand], scheduler)
     assert "bucket" in _task_prefixes(scheduler)  # the track step did run on the cluster (task _bucket)
-    a, b = _store_tables(on_duckdb), _store_tables(on_dask)
-    pd.testing.assert_frame_equal(a["accounting"], b["accounting"])
-    pd.testing.assert_frame_equal(a["quarantine"], b["quarantine"])
-    obs_a, obs_b = a["observations"], b["observations"]
-    assert len(obs_a) > 20 and set(obs_a["variable"]) == {"fishing_hours"}
-    # the sums of hours may differ in the last bits (another summation order)
-    for col in ("value", "effort", "density"):
-        np.testing.assert_allclose(obs_a[col].to_numpy(float), obs_b[col].to_numpy(float), rtol=1e-12)
-    rest = [c for c in obs_a.columns if c not in ("value", "effort", "density")]
-    pd.testing.assert_frame_equal(obs_a[rest], obs_b[rest])
+    a, b = store_tables(on_duckdb), store_tables(on_dask)
+    assert_same_fishing_store(a, b)
     # the messy file exercised the rules the engines must agree on
     reasons = set(a["quarantine"]["reason_code"])
     assert {"implausible_speed", "duplicate_record", "outside_domain"} <= reasons
-    assert obs_a["flags"].map(lambda f: "speed_derived" in list(f)).any()
+    assert a["observations"]["flags"].map(lambda f: "speed_derived" in list(f)).any()
 
 
 def test_audit_on_dask_equals_duckdb(study_dir: Path, tmp_path: Path, scheduler: str) -> None:
@@ -259,8 +227,8 @@ def test_ping_files_cut_by_time_on_dask_equal_one_file_on_duckdb(study_dir: Path
     for path in reversed(parts):
         run(load_study(split), "effort_pings", {"rows": path}, engine="dask", scheduler=scheduler)
     cols = ["event_id", "value", "n_vessels", "n_values"]
-    a = _store_tables(one)["observations"][cols].sort_values("event_id").reset_index(drop=True)
-    b = _store_tables(split)["observations"][cols].sort_values("event_id").reset_index(drop=True)
+    a = store_tables(one)["observations"][cols].sort_values("event_id").reset_index(drop=True)
+    b = store_tables(split)["observations"][cols].sort_values("event_id").reset_index(drop=True)
     assert len(a) > 20
     pd.testing.assert_frame_equal(a[["event_id", "n_vessels", "n_values"]], b[["event_id", "n_vessels", "n_values"]])
     np.testing.assert_allclose(b["value"], a["value"], rtol=0, atol=1e-9)

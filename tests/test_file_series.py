@@ -238,15 +238,20 @@ def test_pings_in_one_file_in_vessel_files_or_shuffled_give_the_same_cells(study
     assert ((results["files"]["n_vessels"] < 3) == (one["n_vessels"] < 3)).all()
 
 
-def test_vessel_counts_merge_across_files_for_the_rule_of_three(study_dir: Path) -> None:
-    """Three vessels fishing one cell in one season, each in its own daily file: 3 vessels, not 1."""
-    study = load_study(study_dir)
+def _three_vessel_days(study: Study, study_dir: Path) -> None:
+    """Three vessels fishing one cell, each on its own day in its own file (four pings 1 h apart)."""
     for k, vessel in enumerate(["A-1", "B-2", "C-3"]):
         day = f"2021-06-0{k + 1}"
         text = PING_HEADER + "".join(f"{vessel},{day}T{h:02d}:00:00Z,42.9,{-152.0 + 0.001 * h},3.0,OTB\n"
                                      for h in range(8, 12))
         (study_dir / f"day{k}.csv").write_text(text)
         run(study, "effort_pings", {"rows": study_dir / f"day{k}.csv"})
+
+
+def test_vessel_counts_merge_across_files_for_the_rule_of_three(study_dir: Path) -> None:
+    """Three vessels fishing one cell in one season, each in its own daily file: 3 vessels, not 1."""
+    study = load_study(study_dir)
+    _three_vessel_days(study, study_dir)
     view = _effort_view(study)
     assert len(view) == 1
     # four pings 1 h apart, each gets half of each neighbouring interval (within the
@@ -321,12 +326,7 @@ def test_a_store_of_version_6_reads_merged_and_is_upgraded_with_its_rules(study_
     import duckdb
 
     study = _winter_case(study_dir)
-    for k, vessel in enumerate(["A-1", "B-2", "C-3"]):
-        day = f"2021-06-0{k + 1}"
-        text = PING_HEADER + "".join(f"{vessel},{day}T{h:02d}:00:00Z,42.9,{-152.0 + 0.001 * h},3.0,OTB\n"
-                                     for h in range(8, 12))
-        (study_dir / f"day{k}.csv").write_text(text)
-        run(study, "effort_pings", {"rows": study_dir / f"day{k}.csv"})
+    _three_vessel_days(study, study_dir)
     grid, hours = _view(study), _effort_view(study)
     # three vessels x (0.5 + 1 + 1 + 0.5) h, one cell-period (hand arithmetic, as above)
     assert hours["value"].tolist() == pytest.approx([9.0], abs=1e-12)

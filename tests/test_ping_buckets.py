@@ -23,26 +23,19 @@ import numpy as np
 import pandas as pd
 import pytest
 import shapely
+from factories import messy_ping_text
+from store_content import assert_same_fishing_store, store_tables
 
 import harmonize.adapters.pings as pings_adapter
-from harmonize import Store, load_study, run
-from harmonize.demo.sources.effort import simulate_pings
+from harmonize import load_study, run
 from harmonize.privacy import study_salt
 
 
 def _messy_pings(path: Path, domain: Path, seed: int = 11) -> None:
     rng = np.random.default_rng(seed)
-    df = simulate_pings(rng, 9, 120, start="2021-05-25", gears=("OTB", "OTB", "TBB", "OTM", "OTB", "DRB",
-                                                                  "OTB", "TBB", "OTB"))
-    df = df.drop(columns="fishing").rename(columns={"vessel_name": "vessel", "utc_time": "time_utc",
-                                                    "latitude": "lat", "longitude": "lon", "sog_kn": "sog",
-                                                    "gear_code": "gear"})
-    df["time_utc"] = df["time_utc"].dt.strftime("%Y-%m-%dT%H:%M:%SZ")
-    df = df.astype({"lat": str, "lon": str, "sog": str})
+    df, _jumps = messy_ping_text(rng, 9, 120, "2021-05-25", ("OTB", "OTB", "TBB", "OTM", "OTB", "DRB",
+                                                               "OTB", "TBB", "OTB"))
     n = len(df)
-    df.loc[rng.random(n) < 0.15, "sog"] = ""
-    jumps = np.flatnonzero(rng.random(n) < 0.02)
-    df.loc[jumps, "lat"] = (df.loc[jumps, "lat"].astype(float) + 0.4).round(5).astype(str)
     first = df["vessel"] == df["vessel"].iloc[0]
     # the first vessel's id also written in lower case with spaces: the same vessel
     other = first & (rng.random(n) < 0.5)
@@ -57,20 +50,6 @@ def _messy_pings(path: Path, domain: Path, seed: int = 11) -> None:
     extra.iloc[1, extra.columns.get_loc("sog")] = "9.9"
     df = pd.concat([df, extra], ignore_index=True)
     df.sample(frac=1.0, random_state=3).to_csv(path, index=False)  # vessels interleaved
-
-
-def _store_tables(study_dir: Path) -> dict[str, pd.DataFrame]:
-    con = duckdb.connect(str(study_dir / "store" / "harmonized.duckdb"), read_only=True)
-    try:
-        Store(study_dir / "store")._define_view(con, temporary=True)
-        obs = con.sql("SELECT * EXCLUDE (ingest_id) FROM observations ORDER BY record_id").df()
-        quarantine = con.sql("SELECT source_file, source_row, reason_code, message, raw FROM quarantine "
-                             "ORDER BY source_file, source_row").df()
-        accounting = con.sql("SELECT file_name, rows_read, rows_accepted, rows_quarantined, records_written "
-                             "FROM ingests ORDER BY file_name").df()
-    finally:
-        con.close()
-    return {"observations": obs, "quarantine": quarantine, "accounting": accounting}
 
 
 def _ingest(study_dir: Path, target: Path, csv: Path, per_bucket: int, monkeypatch: pytest.MonkeyPatch) -> Path:
@@ -96,21 +75,15 @@ def test_buckets_of_vessels_give_the_store_of_one_pass(study_dir: Path, tmp_path
         track(self, con, pings)
 
     monkeypatch.setattr(pings_adapter.PingReader, "_track", counting)
-    one = _store_tables(_ingest(study_dir, tmp_path / "one", csv, 10**9, monkeypatch))
+    one = store_tables(_ingest(study_dir, tmp_path / "one", csv, 10**9, monkeypatch))
     assert len(seen) == 1
     seen.clear()
-    many = _store_tables(_ingest(study_dir, tmp_path / "many", csv, per_bucket, monkeypatch))
+    many = store_tables(_ingest(study_dir, tmp_path / "many", csv, per_bucket, monkeypatch))
     n_lines = sum(1 for _ in csv.open()) - 1
     assert len(seen) == -(-n_lines // per_bucket) and sum(seen) < n_lines  # several buckets, each a part
 
-    pd.testing.assert_frame_equal(one["accounting"], many["accounting"])
-    pd.testing.assert_frame_equal(one["quarantine"], many["quarantine"])
+    assert_same_fishing_store(one, many)
     reasons = set(one["quarantine"]["reason_code"])
     assert {"implausible_speed", "duplicate_record", "outside_domain", "unknown_gear"} <= reasons
-    a, b = one["observations"], many["observations"]
-    assert len(a) > 20 and set(a["variable"]) == {"fishing_hours"}
-    for col in ("value", "effort", "density"):
-        np.testing.assert_allclose(a[col].to_numpy(float), b[col].to_numpy(float), rtol=1e-12)
-    rest = [c for c in a.columns if c not in ("value", "effort", "density")]
-    pd.testing.assert_frame_equal(a[rest], b[rest])
+    a = one["observations"]
     assert a["flags"].map(lambda f: "speed_derived" in list(f)).any()

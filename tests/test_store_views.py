@@ -17,8 +17,6 @@ import pytest
 from harmonize import Store, load_study
 from harmonize.ingest import run
 
-FIXTURES = Path(__file__).resolve().parent.parent / "fixtures"
-
 
 def _ingest(study_dir: Path, profile: str = "trawl_agency") -> None:
     result = run(load_study(study_dir), profile, {"events": study_dir / "hauls_messy.csv",
@@ -27,11 +25,9 @@ def _ingest(study_dir: Path, profile: str = "trawl_agency") -> None:
 
 
 @pytest.fixture
-def study(tmp_path: Path) -> Path:
-    target = tmp_path / "study"
-    shutil.copytree(FIXTURES / "keldmar", target)
-    for f in (FIXTURES / "trawl").glob("*.csv"):
-        shutil.copy(f, target / f.name)
+def study(study_dir: Path) -> Path:
+    """The small study with one trawl source ingested, and a second trawl source's profile."""
+    target = study_dir
     prof = (target / "profiles" / "trawl_agency.toml").read_text()
     (target / "profiles" / "trawl_b.toml").write_text(prof.replace('id = "keldmar_trawl"', 'id = "keldmar_trawl_b"'))
     _ingest(target)

@@ -16,6 +16,7 @@ import pandas as pd
 import pyarrow as pa
 
 from harmonize.demo.sea import write_study
+from harmonize.demo.sources import trawl as demo_trawl
 
 PING_PROFILE = """\
 [source]
@@ -36,31 +37,8 @@ form = "pings"
 pelagic_layer = "epipelagic"
 """
 
-TRAWL_PROFILE = """\
-[source]
-id = "bench_trawl"
-kind = "trawl"
-provider_type = "agency"
-protocol = "keldmar_bottom_trawl"
-
-[columns.events]
-event_id = "haul_id"
-start_time = "start_time_utc"
-end_time = "end_time_utc"
-start_lat = "lat_start"
-start_lon = "lon_start"
-end_lat = "lat_end"
-end_lon = "lon_end"
-net_width_m = "wing_spread_m"
-bottom_depth_m = "depth_m"
-bottom_temperature = "bottom_temp_c"
-
-[columns.records]
-event_id = "haul_id"
-taxon = "species"
-weight = "catch_kg"
-count = "catch_n"
-"""
+#: The demo's trawl profile under the benchmark's source id (the same columns and units).
+TRAWL_PROFILE = demo_trawl.PROFILE.replace('id = "keldmar_trawl"', 'id = "bench_trawl"', 1)
 
 #: Names in catch files: canonical names, aliases and case variants of the demo taxa.
 CATCH_NAMES = (

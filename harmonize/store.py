@@ -1070,8 +1070,11 @@ class Store:
                 "repair' to set them aside and start an empty store")
 
     def store_version(self) -> int:
-        """The version of the store's tables (1 when the store predates the key)."""
+        """The version of the store's tables (1 when the store predates the key; 0 when the
+        database holds no tables yet: its first writer was stopped before it created them)."""
         with self.connect(view=False) as con:
+            if not has_table(con, "store_meta"):
+                return 0
             found = con.execute("SELECT value FROM store_meta WHERE key = 'store_version'").fetchall()
         return int(found[0][0]) if found else 1
 

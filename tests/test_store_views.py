@@ -101,3 +101,21 @@ def test_a_moved_study_folder_still_reads(study: Path, tmp_path: Path) -> None:
     store = Store(moved / "store")
     with store.connect() as con:
         assert con.execute("SELECT count(*) FROM observations").fetchone()[0] == _live_rows(store)
+
+
+def test_a_database_without_tables_is_an_empty_store_the_check_completes(study_dir: Path) -> None:
+    """A first ingest stopped (e.g. by Ctrl-C) after DuckDB created the database file but
+    before the store's tables: the check upgrades it to an empty store, and an ingest lands."""
+    import duckdb
+
+    store = Store(study_dir / "store")
+    store.directory.mkdir()
+    duckdb.connect(str(store.db_path)).close()
+    assert store.store_version() == 0
+    assert store.check() == []
+    with store.connect() as con:
+        assert con.execute("SELECT count(*) FROM observations").fetchone()[0] == 0
+    _ingest(study_dir)
+    assert _live_rows(store) > 0
+    with store.connect() as con:
+        assert con.execute("SELECT count(*) FROM observations").fetchone()[0] == _live_rows(store)

@@ -10,7 +10,7 @@ import ast
 import csv
 import functools
 import re
-from collections.abc import Iterator
+from collections.abc import Callable, Iterator
 from pathlib import Path
 
 import pytest
@@ -323,15 +323,19 @@ def _kind_texts(tree: ast.Module, names: tuple[str, ...]) -> list[tuple[int, lis
     return found
 
 
+def _outside_the_adapters(check: Callable[[ast.Module], list[tuple[int, object]]]) -> list[str]:
+    """What ``check`` finds (line, what) in the library's modules but the adapters and the demo."""
+    return [f"{mod} line {line}: {what!r}" for mod, path in sorted(MODULES.items())
+            if not (_under(mod, "harmonize.adapters") or _under(mod, "harmonize.demo"))
+            for line, what in check(_tree(path))]
+
+
 def test_no_list_of_kind_names_in_sql_text_outside_the_adapters() -> None:
     # the same for lists written inside SQL or other text, e.g. "source_kind IN ('trawl',
     # 'plankton')": a second copy of a list the adapters' attributes define
     from harmonize.adapters.registry import kinds
 
-    found = [f"{mod} line {line}: {named}" for mod, path in sorted(MODULES.items())
-             if not (_under(mod, "harmonize.adapters") or _under(mod, "harmonize.demo"))
-             for line, named in _kind_texts(_tree(path), kinds())]
-    assert found == []
+    assert _outside_the_adapters(lambda tree: _kind_texts(tree, kinds())) == []
 
 
 def test_the_kind_text_check_can_fail(tmp_path: Path) -> None:
@@ -399,10 +403,7 @@ def test_no_single_kind_name_in_sql_or_comparisons_outside_the_adapters() -> Non
     # "source_kind = 'gridded'" outside the adapters is a kind's knowledge in a second place
     from harmonize.adapters.registry import kinds
 
-    found = [f"{mod} line {line}: '{name}'" for mod, path in sorted(MODULES.items())
-             if not (_under(mod, "harmonize.adapters") or _under(mod, "harmonize.demo"))
-             for line, name in _single_kind_uses(_tree(path), kinds())]
-    assert found == []
+    assert _outside_the_adapters(lambda tree: _single_kind_uses(tree, kinds())) == []
 
 
 def test_the_single_kind_check_can_fail(tmp_path: Path) -> None:

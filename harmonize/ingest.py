@@ -62,7 +62,7 @@ class IngestResult:
     superseded: list[str] = field(default_factory=list)
     notes: list[str] = field(default_factory=list)
     masked: pd.DataFrame = field(default_factory=pd.DataFrame)
-    #: accepted events that yield no observation row (see :func:`events_without_values`)
+    #: accepted events that yield no observation row (see :meth:`Assembly.events_without_values`)
     events_without_values: pd.DataFrame = field(default_factory=pd.DataFrame)
 
     @property
@@ -182,7 +182,7 @@ def _run(study: Study, profile: str | Path, inputs: Mapping[str, Path], *, write
                 sum(f.rows_accepted for f in out.files), sum(f.rows_quarantined for f in out.files))
     logger.debug("input sha256 %s, configuration sha256 %s", inputs_sha, config_sha)
     return store_output(study, prof, adapter.kind, out, write=write and not dry_run, replace=replace,
-                        inputs_sha256=inputs_sha, config_sha256=config_sha, started=started)
+                        inputs_sha256=inputs_sha, config_sha256=config_sha, started=started, consume=True)
 
 
 def _finds_twins(kind: str) -> bool:
@@ -220,11 +220,14 @@ def store_output(
     inputs_sha256: str | None = None,
     config_sha256: str | None = None,
     started: pd.Timestamp | None = None,
+    consume: bool = False,
 ) -> IngestResult:
     """Tag, assemble and (with ``write``) commit an adapter's output to the store.
 
     ``run`` calls this after ``adapter.read``; tests and outside tools can call it with an
-    AdapterOutput they built themselves.
+    AdapterOutput they built themselves. With ``consume`` the caller hands ``out`` over: its
+    events frame is emptied once the events are tagged, so that its memory is free while the
+    rows are made (``run`` does this; the output cannot be stored again).
     """
     _check_accounting(out)
     started = started if started is not None else pd.Timestamp.now("UTC").tz_localize(None)
@@ -235,7 +238,10 @@ def store_output(
     inputs_sha = inputs_sha256 or _digest(sorted(shas.items()))
     config_sha = config_sha256 or _digest([profile.fingerprint, study.fingerprint, CONTRACT_VERSION])
     ingest_id = f"{started:%Y%m%dT%H%M%S%f}-{uuid.uuid4().hex[:8]}"  # sorts by start time
-    blocks = assemble_blocks(out, study, profile, kind, ingest_id)
+    assembly = Assembly(out, study, profile, kind, ingest_id)
+    if consume:
+        out.events = out.events.iloc[:0]  # tagged and held by the assembly as Arrow columns
+    blocks = assembly.blocks()
     notes = list(out.notes) + swapped_position_notes(study, out.positions)
     result = IngestResult("checked", profile.source_id, kind, None, out.files, 0, 0, out.quarantine, notes=notes)
     result.masked = out.masked
@@ -243,8 +249,7 @@ def store_output(
         for block in blocks:
             result.records_written += block.num_rows
             result.records_zero_filled += _zero_filled(block)
-        # after the blocks: a value source then knows which events had values
-        result.events_without_values = events_without_values(out, study, profile, kind).to_pandas()
+        result.events_without_values = assembly.events_without_values().to_pandas()
         return result
 
     store = Store(study.store_dir)
@@ -270,7 +275,7 @@ def store_output(
     try:
         # the store decides where and how the rows are written; each file carries the record
         result.records_written, result.records_zero_filled = store.write_observations(staged, blocks, record, files)
-        no_values = events_without_values(out, study, profile, kind)
+        no_values = assembly.events_without_values()
         result.events_without_values = no_values.to_pandas()
         record.records_written, record.records_zero_filled = result.records_written, result.records_zero_filled
         record.finished_at = pd.Timestamp.now("UTC").tz_localize(None)
@@ -429,6 +434,8 @@ def _keep(frame: pd.DataFrame, column: str, computed: pd.Series) -> pd.Series:
 BLOCK_ROWS = 100_000
 #: Rows of the assembled output checked against the contract (pandera), spread over the blocks.
 SAMPLE_ROWS = 200_000
+#: Sampled rows checked in one call of the contract check (its fixed cost is per call).
+CHECK_ROWS = 20_000
 
 
 #: SQL: the row has a density (value / effort): counts and biomass with a positive effort
@@ -438,122 +445,276 @@ _HAS_DENSITY = "v.quantity IN ('count', 'biomass') AND NOT v.no_effort AND e.eff
 def assemble(out: AdapterOutput, study: Study, profile: Profile, kind: str, ingest_id: str) -> pa.Table:
     """Join tagged events and values into observation rows, in contract column order.
 
-    The whole output as one table; :func:`assemble_blocks` gives the same rows block by block.
+    The whole output as one table; :class:`Assembly` gives the same rows block by block.
     """
-    blocks = list(assemble_blocks(out, study, profile, kind, ingest_id))
+    blocks = list(Assembly(out, study, profile, kind, ingest_id).blocks())
     return pa.concat_tables(blocks) if len(blocks) > 1 else blocks[0]
 
 
 def assemble_blocks(out: AdapterOutput, study: Study, profile: Profile, kind: str, ingest_id: str,
                     block_rows: int | None = None) -> Iterator[pa.Table]:
-    """Observation rows in blocks of at most ``block_rows`` rows (default :data:`BLOCK_ROWS`), in store order.
+    """Observation rows in blocks of at most ``block_rows`` rows, in store order (:meth:`Assembly.blocks`)."""
+    return Assembly(out, study, profile, kind, ingest_id, block_rows).blocks()
 
-    Yields at least one table (an empty one when there are no values). The blocks, put end
-    to end, are the rows :func:`assemble` returns; a block is made only when the previous one
-    has been consumed, so a caller that writes each block holds one block of rows at a time.
-    Values are kept as Arrow columns (strings dictionary-encoded when the adapter gave
-    categoricals) until their block is made. When the adapter gives a value source
-    (:class:`~harmonize.adapters.value_source.ValueSource`), its values are asked for a run
-    of events at a time, in store order, and never held all at once.
+
+class Assembly:
+    """The observation rows of one adapter output, made block by block, and the accepted
+    events that yield none.
+
+    The output's events are tagged once and held as Arrow columns: once an Assembly is
+    made, the caller may drop the output's events frame (:func:`store_output` does, to
+    free it before the rows are made). :meth:`blocks` makes the rows; after the last block,
+    :meth:`events_without_values` lists the events none of whose values became a row, as
+    seen in the rows themselves.
     """
-    block_rows = block_rows or BLOCK_ROWS
-    ev = tag_events(out.events, study)
-    ev = ev.rename(columns={"flags": "event_flags"})
-    for col in _EVENT_ARROW.names:
-        if col not in ev:
-            ev[col] = None
-    ev_tab = _to_arrow(ev, _EVENT_ARROW)  # flags that are not lists become []
-    unique = ev["event_id"].is_unique
-    source = out.value_source if unique else None
-    ev_index = pd.Index(ev["event_id"])
-    rank = _event_rank(ev)
-    del ev
-    con = connections.connect()
-    try:
-        params = [ingest_id, profile.source_id, kind, profile.provider_type, profile.protocol, Path(_main_file(out)).name]
-        if not unique:
-            # a hash join over all rows (events whose ids repeat are rare and small)
-            va_tab = _values_to_arrow(out.values)
-            con.register("ev", ev_tab)
-            con.register("va", _decoded(va_tab))
-            select = _select_sql(con, va_tab, ev_tab, out.values.columns)
-            table = con.sql(f"SELECT {select} FROM va v JOIN ev e USING (event_id)", params=params).to_arrow_table()
-            missing = con.execute("SELECT count(*) FROM va v ANTI JOIN ev e USING (event_id)").fetchall()[0][0]
-            if missing:
-                raise HarmonizeError(f"internal error: {missing} values have no event; please report this")
-            con.unregister("va")
-            del va_tab
-            starts = range(0, max(table.num_rows, 1), block_rows)
-            for i in starts:
-                block = table.slice(i, block_rows)
-                _validate_block(block, len(starts), i)
-                yield block
-            return
-        if source is None:
-            frames: Iterator[pd.DataFrame] = iter([out.values])
-            n_blocks = -(-max(len(out.values), 1) // block_rows)
+
+    def __init__(self, out: AdapterOutput, study: Study, profile: Profile, kind: str, ingest_id: str,
+                 block_rows: int | None = None) -> None:
+        self.block_rows = block_rows or BLOCK_ROWS
+        ev = tag_events(out.events, study)
+        ev = ev.rename(columns={"flags": "event_flags"})
+        for col in _EVENT_ARROW.names:
+            if col not in ev:
+                ev[col] = None
+        self.events = _to_arrow(ev, _EVENT_ARROW)  # flags that are not lists become []
+        self.unique = bool(ev["event_id"].is_unique)
+        self.rank = _event_rank(ev)
+        del ev
+        self.event_index = pd.Index(self.events["event_id"].to_pandas(types_mapper=pd.ArrowDtype)
+                                    .astype(pd.StringDtype("pyarrow")))
+        self.values, self.value_source = out.values if out.value_source is None else None, out.value_source
+        self.params = [ingest_id, profile.source_id, kind, profile.provider_type, profile.protocol,
+                       Path(_main_file(out)).name]
+        self._effort_units = _distinct_text(self.events["effort_unit"])
+        self._selects: dict[tuple, str] = {}
+        self._valued: np.ndarray | None = None  # events with a row, once every block was made
+
+    def _all_values(self) -> pd.DataFrame:
+        if self.values is None:
+            self.values = self.value_source.frame()  # type: ignore[union-attr]
+        return self.values
+
+    def blocks(self) -> Iterator[pa.Table]:
+        """Observation rows in blocks of at most ``block_rows`` rows (default :data:`BLOCK_ROWS`), in store order.
+
+        Yields at least one table (an empty one when there are no values). The blocks, put
+        end to end, are the rows :func:`assemble` returns; a block is made only when the
+        previous one has been consumed, so a caller that writes each block holds one block of
+        rows at a time. Values are kept as Arrow columns (strings dictionary-encoded when the
+        adapter gave categoricals) until their block is made. When the adapter gives a value
+        source (:class:`~harmonize.adapters.value_source.ValueSource`), its values are asked
+        for a run of events at a time, in store order, and never held all at once. The rows
+        are checked against the contract on a sample (:class:`_ContractSample`).
+        """
+        block_rows = self.block_rows
+        valued = np.zeros(self.events.num_rows, dtype=bool)
+        con = connections.connect()
+        try:
+            if not self.unique:
+                # a hash join over all rows (events whose ids repeat are rare and small)
+                values = self._all_values()
+                va_tab = _values_to_arrow(values)
+                con.register("ev", self.events)
+                con.register("va", _decoded(va_tab))
+                select = self._select_sql(con, va_tab, values.columns)
+                table = con.sql(f"SELECT {select} FROM va v JOIN ev e USING (event_id)", params=self.params).to_arrow_table()
+                missing = con.execute("SELECT count(*) FROM va v ANTI JOIN ev e USING (event_id)").fetchall()[0][0]
+                if missing:
+                    raise HarmonizeError(f"internal error: {missing} values have no event; please report this")
+                con.unregister("va")
+                del va_tab
+                valued = is_in(pd.Series(self.event_index), distinct_present(values["event_id"]))
+                starts = range(0, max(table.num_rows, 1), block_rows)
+                check = _ContractSample(len(starts))
+                for i in starts:
+                    block = table.slice(i, block_rows)
+                    check.add(block, i)
+                    yield block
+                check.finish()
+                self._valued = valued
+                return
+            runs: Iterator[tuple[np.ndarray | None, pd.DataFrame]]
+            if self.value_source is None:
+                runs = iter([(None, self._all_values())])
+                n_blocks = -(-max(len(self.values), 1) // block_rows)
+            else:
+                runs = self.value_source.blocks(np.argsort(self.rank, kind="stable"), block_rows)
+                n_blocks = max(_VALUE_ROWS_PER_EVENT * len(self.rank), 1) // block_rows + 1
+            check = _ContractSample(n_blocks)
+            done = 0
+            empty = None
+            for position, values in runs:
+                if not len(values):
+                    empty = values
+                    continue
+                for block in self._positional_blocks(con, values, position, valued):
+                    check.add(block, done)
+                    done += block.num_rows
+                    yield block
+            if not done:  # no values: one empty table
+                for block in self._positional_blocks(con, self._all_values() if empty is None else empty, None, valued):
+                    check.add(block, 0)
+                    yield block
+            check.finish()
+            self._valued = valued
+        finally:
+            con.close()
+
+    def _positional_blocks(self, con: duckdb.DuckDBPyConnection, values: pd.DataFrame, position: np.ndarray | None,
+                           valued: np.ndarray) -> Iterator[pa.Table]:
+        """Observation rows of ``values`` (events with distinct ids) in blocks, in the order of
+        their events' ranks (values of one event in their given order); one empty table when
+        ``values`` is empty. ``position``: each value's event row, when its source knows it
+        (checked against the event ids); else found by id. Marks the events in ``valued``."""
+        va_tab = _values_to_arrow(values)
+        if position is None:
+            # each value's event row, found by integer code when the adapter gave categoricals
+            position = codes_in(values["event_id"], self.event_index).astype(np.int64)
         else:
-            frames = source.blocks(np.argsort(rank, kind="stable"), block_rows)
-            n_blocks = max(_VALUE_ROWS_PER_EVENT * len(rank), 1) // block_rows + 1
-        done = 0
-        empty = None
-        for values in frames:
-            if not len(values):
-                empty = values
-                continue
-            for block in _positional_blocks(con, values, ev_tab, ev_index, rank, params, block_rows):
-                _validate_block(block, n_blocks, done)
-                done += block.num_rows
-                yield block
-        if not done:  # no values: one empty table
-            for block in _positional_blocks(con, out.values if empty is None else empty, ev_tab, ev_index, rank,
-                                            params, block_rows):
-                _validate_block(block, 1, 0)
-                yield block
-    finally:
-        con.close()
+            position = np.asarray(position, dtype=np.int64)
+            self._check_positions(values["event_id"], position)
+        missing = int((position < 0).sum())
+        if missing:
+            raise HarmonizeError(f"internal error: {missing} values have no event; please report this")
+        valued[position] = True
+        order = np.argsort(self.rank[position], kind="stable")
+        # each block: its values (taken in store order) beside their event rows, by position;
+        # the POSITIONAL JOIN keeps that order, which a hash join would not
+        sql = f"SELECT {self._select_sql(con, va_tab, values.columns)} FROM va v POSITIONAL JOIN ev_rows e"
+        del values
+        for i in range(0, max(len(order), 1), self.block_rows):
+            take = pa.array(order[i:i + self.block_rows], pa.int64())
+            con.register("va", _decoded(va_tab.take(take)))
+            con.register("ev_rows", self.events.take(pa.array(position[take.to_numpy()], pa.int64())))
+            block = con.sql(sql, params=self.params).to_arrow_table()
+            con.unregister("va")
+            con.unregister("ev_rows")
+            yield block
+
+    def _check_positions(self, event_ids: pd.Series, position: np.ndarray) -> None:
+        """Refuse event rows given by a value source that are not the values' events."""
+        if len(position) != len(event_ids) or (len(position) and (position.min() < 0 or
+                                                                   position.max() >= self.events.num_rows)):
+            raise HarmonizeError("internal error: a value source gave event rows outside the events; please report this")
+        if isinstance(event_ids.dtype, pd.CategoricalDtype):
+            # every category at one event row, and that row's id the category: checked per category
+            codes = event_ids.cat.codes.to_numpy().astype(np.int64)
+            at = np.full(len(event_ids.cat.categories), -1, dtype=np.int64)
+            known = codes >= 0
+            at[codes[known]] = position[known]
+            used = np.flatnonzero(at >= 0)
+            same = np.array_equal(at[codes[known]], position[known]) and not (~known).any() and _same_text(
+                self.events["event_id"].take(pa.array(at[used])), pa.array(event_ids.cat.categories[used], pa.string()))
+        else:
+            same = _same_text(self.events["event_id"].take(pa.array(position)),
+                                pa.array(event_ids, pa.string(), from_pandas=True))
+        if not same:
+            raise HarmonizeError("internal error: a value source gave event rows that are not its values' events; "
+                                 "please report this")
+
+    def _select_sql(self, con: duckdb.DuckDBPyConnection, va_tab: pa.Table, value_columns: Sequence[str]) -> str:
+        """:func:`_select_sql` for these values; made once per set of value units and part columns."""
+        units = _distinct_text(va_tab["unit"])
+        key = (units, tuple(p.name for p in _PART_ARROW if p.name in value_columns))
+        if key not in self._selects:
+            self._selects[key] = _select_sql(_density_unit_expr(con, units, self._effort_units), value_columns)
+        return self._selects[key]
+
+    def events_without_values(self) -> pa.Table:
+        """The accepted events that yield no observation row, tagged, one row per event
+        (after :meth:`blocks` has made every block).
+
+        An empty haul under a profile without a zero-filling protocol, or a segment whose bird
+        rows all went to quarantine, is accepted but has no value: the store keeps it in its
+        ``events_without_values`` table so that its input row stays accounted for. Columns:
+        :data:`harmonize.store.EVENTS_WITHOUT_VALUES_COLUMNS` but ingest_id; ``flags`` are the
+        event's flags (e.g. catch_incomplete, counts_incomplete when records were rejected).
+        """
+        if self._valued is None:
+            raise HarmonizeError("internal error: events without values asked for before every block was made")
+        lonely = self.events.filter(pa.array(~self._valued))
+        n = lonely.num_rows
+        source_id, kind, provider_type, protocol, source_file = self.params[1:]
+        constants = {"source_id": source_id, "source_kind": kind, "provider_type": provider_type,
+                     "protocol": protocol, "source_file": source_file}
+        arrays = []
+        for fld in _NO_VALUES_ARROW:
+            if fld.name in constants:
+                arrays.append(pa.array([constants[fld.name]] * n, fld.type))
+            else:
+                arrays.append(lonely["event_flags" if fld.name == "flags" else fld.name].cast(fld.type))
+        return pa.Table.from_arrays(arrays, schema=_NO_VALUES_ARROW)
 
 
-def _positional_blocks(con: duckdb.DuckDBPyConnection, values: pd.DataFrame, ev_tab: pa.Table, ev_index: pd.Index,
-                       rank: np.ndarray, params: list, block_rows: int) -> Iterator[pa.Table]:
-    """Observation rows of ``values`` (events with distinct ids) in blocks of ``block_rows``, in
-    the order of their events' ``rank`` (values of one event in their given order); one
-    empty table when ``values`` is empty."""
-    va_tab = _values_to_arrow(values)
-    # each value's event row, found by integer code when the adapter gave categoricals
-    position = codes_in(values["event_id"], ev_index).astype(np.int64)
-    missing = int((position < 0).sum())
-    if missing:
-        raise HarmonizeError(f"internal error: {missing} values have no event; please report this")
-    order = np.argsort(rank[position], kind="stable")
-    # each block: its values (taken in store order) beside their event rows, by position;
-    # the POSITIONAL JOIN keeps that order, which a hash join would not
-    sql = f"SELECT {_select_sql(con, va_tab, ev_tab, values.columns)} FROM va v POSITIONAL JOIN ev_rows e"
-    del values
-    for i in range(0, max(len(order), 1), block_rows):
-        take = pa.array(order[i:i + block_rows], pa.int64())
-        con.register("va", _decoded(va_tab.take(take)))
-        con.register("ev_rows", ev_tab.take(pa.array(position[take.to_numpy()], pa.int64())))
-        block = con.sql(sql, params=params).to_arrow_table()
-        con.unregister("va")
-        con.unregister("ev_rows")
-        yield block
+def _same_text(a: pa.Array | pa.ChunkedArray, b: pa.Array | pa.ChunkedArray) -> bool:
+    """Whether two text columns are equal row by row (nulls equal only to nulls; chunks do not matter)."""
+    a, b = (c if isinstance(c, pa.ChunkedArray) else pa.chunked_array([c]) for c in (a, b))
+    return a.type == b.type and a.equals(b)
+
+
+def _distinct_text(column: pa.ChunkedArray | pa.Array) -> tuple[str, ...]:
+    """The distinct non-null texts of a (possibly dictionary-encoded) column, sorted."""
+    if isinstance(column, pa.ChunkedArray):
+        chunks = [c.dictionary_decode() if pa.types.is_dictionary(c.type) else c for c in column.chunks]
+        column = pa.chunked_array(chunks, type=chunks[0].type) if chunks else pa.array([], pa.string())
+    elif pa.types.is_dictionary(column.type):
+        column = column.dictionary_decode()
+    return tuple(sorted(v for v in pa.compute.unique(column).to_pylist() if v is not None))
+
+
+class _ContractSample:
+    """Checks the observation rows against the contract on a sample: up to ``SAMPLE_ROWS``
+    rows in all, spread over the blocks, checked together every :data:`CHECK_ROWS` rows
+    (one check per block was most of the check's time: its fixed cost is per call)."""
+
+    def __init__(self, n_blocks: int) -> None:
+        self.per_block = max(1_000, SAMPLE_ROWS // max(n_blocks, 1))
+        self.pending: list[pa.Table] = []
+        self.rows = 0
+
+    def add(self, block: pa.Table, start: int) -> None:
+        """Sample ``block`` (the rows from ``start`` on), checking the sample when it is large enough."""
+        if block.num_rows == 0:
+            validate_observations(block.slice(0, 0).to_pandas())
+            return
+        per_block = self.per_block
+        if block.num_rows <= per_block:
+            part = block
+        elif per_block >= 20_000:
+            part = _sample(block, per_block)
+        else:  # one slice at a seeded random place
+            at = int(np.random.default_rng(start).integers(0, block.num_rows - per_block + 1))
+            part = block.slice(at, per_block)
+        if self.pending and not part.schema.equals(self.pending[0].schema):
+            self.finish()
+        self.pending.append(part)
+        self.rows += part.num_rows
+        if self.rows >= CHECK_ROWS:
+            self.finish()
+
+    def finish(self) -> None:
+        """Check the rows sampled and not yet checked."""
+        if self.pending:
+            sample = pa.concat_tables(self.pending) if len(self.pending) > 1 else self.pending[0]
+            self.pending, self.rows = [], 0
+            validate_observations(sample.to_pandas())
 
 
 #: Value rows per event assumed when sizing the contract's samples of a value source's blocks.
 _VALUE_ROWS_PER_EVENT = 20
 
 
-def _select_sql(con: duckdb.DuckDBPyConnection, va_tab: pa.Table, ev_tab: pa.Table, value_columns: Sequence[str]) -> str:
+def _select_sql(density_unit: str, value_columns: Sequence[str]) -> str:
     """The select list that turns values ``v`` beside their events ``e`` into observation rows,
     each column cast to the contract's type (parameters: ingest id, source id, kind, provider
-    type, protocol, source file)."""
+    type, protocol, source file); ``density_unit``: SQL of the density's unit
+    (:func:`_density_unit_expr`)."""
     exprs = {
         "record_id": "substr(md5(concat_ws('|', $2, e.event_id, v.variable, coalesce(v.life_stage, ''), v.quantity, v.behavior)), 1, 24)",  # concat_ws skips a null behavior: ids without one are unchanged
         "ingest_id": "$1", "source_id": "$2", "source_kind": "$3", "provider_type": "$4", "protocol": "$5",
         # density only for counts and biomass; presence-only and no-effort values carry no effort
         "density": f"CASE WHEN {_HAS_DENSITY} THEN v.value / e.effort END",
-        "density_unit": f"CASE WHEN {_HAS_DENSITY} THEN {_density_unit_expr(con, va_tab, ev_tab)} END",
+        "density_unit": f"CASE WHEN {_HAS_DENSITY} THEN {density_unit} END",
         "effort": "CASE WHEN v.quantity = 'presence' OR v.no_effort THEN NULL ELSE e.effort END",
         "effort_unit": "CASE WHEN v.quantity = 'presence' OR v.no_effort THEN NULL ELSE e.effort_unit END",
         # the usual rows (no flag, or one value flag) skip the list sort: the same lists
@@ -578,29 +739,23 @@ def _select_sql(con: duckdb.DuckDBPyConnection, va_tab: pa.Table, ev_tab: pa.Tab
 _MAX_UNIT_PAIRS = 64
 
 
-def _density_unit_expr(con: duckdb.DuckDBPyConnection, va_tab: pa.Table, ev_tab: pa.Table) -> str:
+def _density_unit_expr(con: duckdb.DuckDBPyConnection, units: Sequence[str], effort_units: Sequence[str]) -> str:
     """SQL for the density unit of ``v.unit`` over ``e.effort_unit``: :func:`harmonize.units.density_unit_sql`
-    evaluated once per distinct pair of the ingest, then looked up per row by a CASE over the pairs.
+    evaluated once per pair of the given (distinct, non-null) units, then looked up per row by
+    a CASE over the pairs.
 
     Four regular expressions per row were a quarter of the assembling statement's time; the
     pairs are few (a handful of value units times one or two effort units). Null where
     either unit is null, as :func:`~harmonize.units.density_unit_sql`.
     """
-    con.register("unit_values", va_tab.select(["unit"]))
-    con.register("unit_events", ev_tab.select(["effort_unit"]))
-    try:
-        pairs = con.execute(
-            f"SELECT u.unit, f.effort_unit, {density_unit_sql('u.unit', 'f.effort_unit')} "
-            "FROM (SELECT DISTINCT CAST(unit AS VARCHAR) AS unit FROM unit_values WHERE unit IS NOT NULL) u, "
-            "(SELECT DISTINCT effort_unit FROM unit_events WHERE effort_unit IS NOT NULL) f").fetchall()
-    finally:
-        con.unregister("unit_values")
-        con.unregister("unit_events")
-    if len(pairs) > _MAX_UNIT_PAIRS:
+    if len(units) * len(effort_units) > _MAX_UNIT_PAIRS:
         return density_unit_sql("v.unit", "e.effort_unit")
-    if not pairs:
+    if not units or not effort_units:
         return "CAST(NULL AS VARCHAR)"
-
+    pairs = con.execute(
+        f"SELECT u.unit, f.effort_unit, {density_unit_sql('u.unit', 'f.effort_unit')} "
+        "FROM (SELECT unnest($1::VARCHAR[]) AS unit) u, (SELECT unnest($2::VARCHAR[]) AS effort_unit) f",
+        [list(units), list(effort_units)]).fetchall()
     whens = " ".join(f"WHEN v.unit = {sql_text(u)} AND e.effort_unit = {sql_text(f)} THEN {sql_text(d) if d is not None else 'NULL'}"
                      for u, f, d in pairs)
     return f"CASE {whens} END"
@@ -616,34 +771,6 @@ _NO_VALUES_ARROW = pa.schema([
     ("effort_unit", pa.string()), ("observer_id", pa.string()), ("flags", pa.list_(pa.string())),
     ("source_file", pa.string()), ("source_row", pa.int64()),
 ])
-
-
-def events_without_values(out: AdapterOutput, study: Study, profile: Profile, kind: str) -> pa.Table:
-    """The accepted events that yield no observation row, tagged, one row per event.
-
-    An empty haul under a profile without a zero-filling protocol, or a segment whose bird
-    rows all went to quarantine, is accepted but has no value: the store keeps it in its
-    ``events_without_values`` table so that its input row stays accounted for. Columns:
-    :data:`harmonize.store.EVENTS_WITHOUT_VALUES_COLUMNS` but ingest_id; ``flags`` are the
-    event's flags (e.g. catch_incomplete, counts_incomplete when records were rejected).
-    """
-    events = out.events
-    if events.empty:
-        return _NO_VALUES_ARROW.empty_table()
-    valued = out.value_source.event_ids() if out.value_source is not None else distinct_present(out.values["event_id"])
-    lonely = events[~is_in(events["event_id"], valued)]
-    if lonely.empty:
-        return _NO_VALUES_ARROW.empty_table()
-    ev = tag_events(lonely, study)  # tags are per event: tagging the few alone gives the same tags
-    for col, value in (("source_id", profile.source_id), ("source_kind", kind),
-                       ("provider_type", profile.provider_type), ("protocol", profile.protocol),
-                       ("source_file", Path(_main_file(out)).name)):
-        ev[col] = value
-    for col in _NO_VALUES_ARROW.names:
-        if col not in ev:
-            ev[col] = None
-    ev["source_row"] = pd.array(ev["source_row"], dtype="Int64")
-    return _to_arrow(ev, _NO_VALUES_ARROW)
 
 
 def _values_to_arrow(values: pd.DataFrame) -> pa.Table:
@@ -704,22 +831,7 @@ def _event_rank(events: pd.DataFrame) -> np.ndarray:
     return rank
 
 
-def _validate_block(block: pa.Table, n_blocks: int, start: int) -> None:
-    """Check a block (or a sample of it: :data:`SAMPLE_ROWS` in all) against the contract."""
-    if block.num_rows == 0:
-        validate_observations(block.slice(0, 0).to_pandas())
-        return
-    per_block = max(1_000, SAMPLE_ROWS // n_blocks)
-    if block.num_rows <= per_block:
-        validate_observations(block.to_pandas())
-    elif per_block >= 20_000:
-        validate_observations(_sample(block, per_block))
-    else:  # one slice at a seeded random place
-        at = int(np.random.default_rng(start).integers(0, block.num_rows - per_block + 1))
-        validate_observations(block.slice(at, per_block).to_pandas())
-
-
-def _sample(table: pa.Table, n: int = SAMPLE_ROWS) -> pd.DataFrame:
+def _sample(table: pa.Table, n: int = SAMPLE_ROWS) -> pa.Table:
     # The contract check runs on the whole table when it is small, on a sample otherwise;
     # the SQL above already fixes every column's type.
     if table.num_rows > n:
@@ -727,7 +839,7 @@ def _sample(table: pa.Table, n: int = SAMPLE_ROWS) -> pd.DataFrame:
         k, size = 20, n // 20
         blocks = np.sort(np.random.default_rng(0).choice(table.num_rows // size, k, replace=False))
         table = pa.concat_tables([table.slice(int(b) * size, size) for b in blocks])
-    return table.to_pandas()
+    return table
 
 
 def _main_file(out: AdapterOutput) -> Path:

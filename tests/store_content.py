@@ -69,7 +69,8 @@ def table_digests(con: Any, relation: str, exclude: tuple[str, ...] = ("ingest_i
 
 
 def store_digests(study_dir: Path) -> dict[str, dict[str, str]]:
-    """Digests of the observations, the quarantine and the ingests' accounting of a study's store."""
+    """Digests of the observations, the quarantine, the ingests' accounting and the events without
+    values of a study's store."""
     with Store(load_study(study_dir).store_dir).connect() as con:
         return {
             "observations": table_digests(con, "observations"),
@@ -77,6 +78,7 @@ def store_digests(study_dir: Path) -> dict[str, dict[str, str]]:
             "ingests": table_digests(con, "(SELECT source_id, source_kind, file_name, status, rows_read, "
                                           "rows_accepted, rows_quarantined, records_written, records_zero_filled "
                                           "FROM ingests)"),
+            "events_without_values": table_digests(con, "(SELECT * EXCLUDE (ingest_id) FROM events_without_values)"),
         }
 
 

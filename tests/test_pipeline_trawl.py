@@ -147,3 +147,34 @@ def test_store_without_the_events_without_values_table_still_opens(study_dir: Pa
         assert c.execute("SELECT value FROM store_meta WHERE key = 'store_version'").fetchall() == [(str(STORE_VERSION),)]
     assert list(store.events_without_values()["event_id"]) == ["H010"]
     assert store.check() == []
+
+
+def test_an_event_without_values_carries_the_tags_it_would_carry_with_values(study_dir: Path) -> None:
+    # Rule: an event's tags and effort belong to the event, not to its values. H010 stored
+    # as an event without values (no catch, no protocol) must carry exactly the event columns
+    # its observation rows carry once a catch row is given to it (the same haul, re-ingested).
+    study = load_study(study_dir)
+    profile = _without_protocol(study_dir)
+    run(study, profile, _inputs(study_dir))
+    lonely = Store(study.store_dir).events_without_values()
+    catch = study_dir / "catch_messy.csv"
+    catch.write_text(catch.read_text().replace("H099,keld cod", "H010,keld cod"))
+    run(study, profile, _inputs(study_dir), replace=True)
+    with Store(study.store_dir).connect() as con:
+        caught = con.sql("SELECT * FROM observations WHERE event_id = 'H010'").df()
+    columns = ["source_id", "source_kind", "provider_type", "protocol", "event_id", "event_start", "event_end",
+               "year", "season", "season_year", "depth_layer", "lat", "lon", "cell_id", "stratum", "depth_min_m",
+               "depth_max_m", "bottom_depth_m", "effort", "effort_unit", "observer_id", "source_file"]
+    assert len(lonely) == 1 and len(caught) >= 1
+    for col in columns:
+        found = caught[col].drop_duplicates().tolist()
+        assert len(found) == 1, col
+        expected = lonely[col].iloc[0]
+        if col in ("event_start", "event_end"):  # that table holds UTC times without their zone
+            expected = pd.Timestamp(expected).tz_localize("UTC")
+        if expected is None or (not isinstance(expected, str) and pd.isna(expected)):
+            assert found[0] is None or pd.isna(found[0]), col
+        else:
+            assert found[0] == expected, col
+    # the event's own row number in the hauls file (observations carry their catch rows instead)
+    assert lonely["source_row"].iloc[0] == 10

@@ -351,6 +351,16 @@ RECORDED_DEMO: dict[str, dict[str, str]] = {
     }
 }
 
+#: None of these inputs has an accepted event without values: the digest of that table
+#: when empty (recorded at commit a86fdcf, before the events without values were read from
+#: the rows made instead of from the adapter).
+EMPTY_EVENTS_WITHOUT_VALUES = {"*": "acf2943ff4d48d4a", "rows": "0", **{c: "e3b0c44298fc1c14" for c in (
+    "bottom_depth_m", "cell_id", "depth_layer", "depth_max_m", "depth_min_m", "effort", "effort_unit", "event_end",
+    "event_id", "event_start", "flags", "lat", "lon", "observer_id", "protocol", "provider_type", "season",
+    "season_year", "source_file", "source_id", "source_kind", "source_row", "stratum", "year")}}
+for _recorded in (*RECORDED_BENCH_STORES.values(), RECORDED_DEMO):
+    _recorded["events_without_values"] = EMPTY_EVENTS_WITHOUT_VALUES
+
 
 def _check(found: dict, recorded: dict, what: str) -> None:
     if os.environ.get("HARMONIZE_PRINT_DIGESTS"):

@@ -33,7 +33,6 @@ from harmonize.adapters.zero_filling import (
     stage_unresolved_events,
     target_years,
     zero_fill,
-    zero_pairs,
 )
 from harmonize.clock import add_hours
 from harmonize.contract import fields
@@ -469,12 +468,12 @@ class TrawlValues(ValueSource):
         # plain text: the few blocked pairs are looked up in every run
         self.blocked = blocked.astype({"event_id": object, "variable": object})
         self.study, self.protocol, self.quantities = study, protocol, quantities
-        self._valued: np.ndarray | None = None  # hauls with values, once every run was made
 
-    def blocks(self, order: np.ndarray, rows: int) -> Iterator[pd.DataFrame]:
+    def blocks(self, order: np.ndarray, rows: int) -> Iterator[tuple[np.ndarray, pd.DataFrame]]:
         n = len(self.haul_ids)
         if n == 0:
-            yield self.frame()
+            values = self.frame()
+            yield np.full(len(values), -1, dtype=np.int64), values
             return
         order = np.asarray(order, dtype=np.int64)
         rank = np.empty(n, dtype=np.int64)
@@ -496,45 +495,18 @@ class TrawlValues(ValueSource):
         # also takes rows without a haul (rank n)
         starts = np.concatenate([[0], np.cumsum(per_rank)])[cuts]
         starts[-1] = len(by_rank)
-        valued = np.zeros(n, dtype=bool)
         for (lo, hi), (a, b) in zip(zip(cuts[:-1], cuts[1:], strict=True),
                                     zip(starts[:-1], starts[1:], strict=True), strict=True):
             in_run = np.zeros(n, dtype=bool)
             in_run[order[lo:hi]] = True
             values = self._values(self.catch.iloc[np.sort(by_rank[a:b])],
                                   self.zero_events.iloc[np.flatnonzero((zero_rank >= lo) & (zero_rank < hi))], in_run)
+            # each value's haul: the run's haul ids are its categories, in the hauls' order
             codes = values["event_id"].cat.codes.to_numpy()
-            valued[np.flatnonzero(in_run)[codes[codes >= 0]]] = True
-            yield values
-        self._valued = valued  # every run made: which hauls have values is known
+            yield np.where(codes >= 0, np.flatnonzero(in_run)[np.maximum(codes, 0)], -1), values
 
     def frame(self) -> pd.DataFrame:
         return self._values(self.catch, self.zero_events, np.ones(len(self.haul_ids), dtype=bool))
-
-    def event_ids(self) -> np.ndarray:
-        if self._valued is not None:
-            return np.asarray(self.haul_ids[self._valued], dtype=object)
-        return self._event_ids()
-
-    def _event_ids(self) -> np.ndarray:
-        """The hauls with values, found without making them: catch, temperature or a zero."""
-        has = np.zeros(len(self.haul_ids), dtype=bool)
-        has[self.catch_haul[self.catch_haul >= 0]] = True  # every accepted catch row has a weight or a count
-        has |= np.isfinite(self.temperature)
-        if self.quantities:
-            step = 200_000  # the zero pairs of a bounded number of hauls at a time
-            for i in range(0, len(self.zero_events), step):
-                part = self.zero_events.iloc[i:i + step]
-                zero_rows, _ = zero_pairs(part, self._caught(part), self.blocked, self.study, self.protocol)
-                has[self.zero_haul[i + zero_rows]] = True
-        return np.asarray(self.haul_ids[has], dtype=object)
-
-    def _caught(self, events: pd.DataFrame) -> pd.DataFrame:
-        """Catch keys of the catch rows of ``events``."""
-        hauls = np.zeros(len(self.haul_ids), dtype=bool)
-        hauls[self.haul_ids.get_indexer(events["event_id"])] = True
-        mine = hauls[np.maximum(self.catch_haul, 0)] & (self.catch_haul >= 0)
-        return self.catch.loc[mine, ["event_id", "variable", "life_stage"]]
 
     def _values(self, catch: pd.DataFrame, zero_events: pd.DataFrame, hauls: np.ndarray) -> pd.DataFrame:
         """Catch sums of ``catch``, zeros of ``zero_events`` and the temperatures of the hauls in the mask."""

@@ -19,10 +19,12 @@ class ValueSource(ABC):
     """
 
     @abstractmethod
-    def blocks(self, order: np.ndarray, rows: int) -> Iterator[pd.DataFrame]:
+    def blocks(self, order: np.ndarray, rows: int) -> Iterator[tuple[np.ndarray, pd.DataFrame]]:
         """Value frames for consecutive runs of the events ``order`` (positions in the
         output's ``events``), in that order, of about ``rows`` value rows each (a run holds
-        at least one event, so a frame may be larger).
+        at least one event, so a frame may be larger), each with its rows' events: per value
+        row, the position of its event in the output's ``events`` (the pipeline checks that
+        they agree with the values' event ids, and looks up no id).
 
         Every value row of the output is in exactly one frame; within an event, values keep
         the order of :meth:`frame`. At least one frame is yielded (empty when there are no
@@ -32,7 +34,3 @@ class ValueSource(ABC):
     @abstractmethod
     def frame(self) -> pd.DataFrame:
         """All values as one frame (as adapters without a source give them)."""
-
-    @abstractmethod
-    def event_ids(self) -> np.ndarray:
-        """The distinct ids of the events that have at least one value."""

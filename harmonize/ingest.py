@@ -241,6 +241,7 @@ def store_output(
     assembly = Assembly(out, study, profile, kind, ingest_id)
     if consume:
         out.events = out.events.iloc[:0]  # tagged and held by the assembly as Arrow columns
+        release_free_memory()
     blocks = assembly.blocks()
     notes = list(out.notes) + swapped_position_notes(study, out.positions)
     result = IngestResult("checked", profile.source_id, kind, None, out.files, 0, 0, out.quarantine, notes=notes)
@@ -480,6 +481,7 @@ class Assembly:
         self.unique = bool(ev["event_id"].is_unique)
         self.rank = _event_rank(ev)
         del ev
+        release_free_memory()  # the tagged frame, now Arrow columns
         self.event_index = pd.Index(self.events["event_id"].to_pandas(types_mapper=pd.ArrowDtype)
                                     .astype(pd.StringDtype("pyarrow")))
         self.values, self.value_source = out.values if out.value_source is None else None, out.value_source
@@ -685,6 +687,8 @@ class _ContractSample:
         else:  # one slice at a seeded random place
             at = int(np.random.default_rng(start).integers(0, block.num_rows - per_block + 1))
             part = block.slice(at, per_block)
+        # a copy of the sampled rows: a slice would keep its whole block's buffers alive
+        part = part.take(pa.array(np.arange(part.num_rows, dtype=np.int64)))
         if self.pending and not part.schema.equals(self.pending[0].schema):
             self.finish()
         self.pending.append(part)

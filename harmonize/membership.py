@@ -27,10 +27,21 @@ def is_in(values: pd.Series, lookup: pd.Series | pd.Index | np.ndarray) -> np.nd
     in pandas.
     """
     if isinstance(values.dtype, pd.CategoricalDtype):
-        lookup_s = pd.Series(np.asarray(lookup, dtype=object))
-        found = codes_in(values, pd.Index(lookup_s.dropna().unique())) >= 0
-        if lookup_s.isna().any():
-            found |= values.isna().to_numpy()
+        # one test per category; text categories against the lookup as Arrow text (a lookup
+        # of a million event ids is never turned into Python strings)
+        categories = values.cat.categories
+        text = _arrow_text(categories)
+        value_set = _arrow_text(lookup) if text is not None else None
+        if text is not None and value_set is not None:
+            per_category = np.asarray(pc.is_in(text, value_set=value_set, skip_nulls=True)
+                                      .to_numpy(zero_copy_only=False), dtype=bool)
+            lookup_has_null = value_set.null_count > 0
+        else:
+            lookup_s = pd.Series(np.asarray(lookup, dtype=object))
+            per_category = pd.Index(categories).isin(lookup_s.dropna().unique())
+            lookup_has_null = bool(lookup_s.isna().any())
+        codes = values.cat.codes.to_numpy()
+        found = np.append(per_category, lookup_has_null)[np.where(codes < 0, len(per_category), codes)]
         return found
     if isinstance(values.dtype, pd.ArrowDtype | pd.StringDtype) and values.dtype != object:
         arr = pa.array(values, from_pandas=True)
@@ -51,3 +62,16 @@ def distinct_present(values: pd.Series) -> np.ndarray:
         codes = values.cat.codes.to_numpy()
         return np.asarray(values.cat.categories[np.unique(codes[codes >= 0])], dtype=object)
     return np.asarray(pd.unique(values.dropna()), dtype=object)
+
+
+def _arrow_text(values: pd.Series | pd.Index | np.ndarray) -> pa.Array | pa.ChunkedArray | None:
+    """``values`` as Arrow text (without a copy when they are Arrow-backed already), or None
+    when they are not all text (and nulls)."""
+    try:
+        arr = pa.array(values, from_pandas=True) if not isinstance(values, np.ndarray) or values.dtype != object \
+            else pa.array(values, type=pa.string(), from_pandas=True)
+    except (pa.ArrowInvalid, pa.ArrowTypeError, TypeError, ValueError):
+        return None
+    if pa.types.is_large_string(arr.type) or pa.types.is_null(arr.type):
+        arr = arr.cast(pa.string())
+    return arr if pa.types.is_string(arr.type) else None

@@ -151,7 +151,7 @@ count = "number"
             "life_stage": _folded_categorical(pd.Series(_take_categorical(rc["life_stage"], kept_at))),
             "weight": rc["weight"].to_numpy(float)[kept_at],
             "count": rc["count"].to_numpy(float)[kept_at],
-            "row": kept_at + 1,
+            "row": (kept_at + 1).astype(np.int32 if len(rc_ok) < 2**31 else np.int64),  # 1-based file rows
         }, copy=False)  # (a copy would consolidate the float columns: ~20 bytes per row more at the peak)
         del kept_at
         # the typed catch table is not needed once its kept rows are coded: free it

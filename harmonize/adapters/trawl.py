@@ -23,6 +23,7 @@ from harmonize.adapters.event_record import (
     RecordCheck,
     Track,
     event_times,
+    flag_tuples,
 )
 from harmonize.adapters.life_stages import normalise_life_stage
 from harmonize.adapters.registry import register
@@ -118,7 +119,7 @@ count = "number"
 # date and time in two columns: in [columns.events] write start_time = ["DATE", "TIME"]
 """
 
-    def validate_events(self, opening: Opening, study: Study) -> tuple[pd.DataFrame, list[list[str]]]:
+    def validate_events(self, opening: Opening, study: Study) -> tuple[pd.DataFrame, dict[str, np.ndarray]]:
         return self._hauls(opening.ev, study, opening.rejections)
 
     def reject_records(self, rc: pd.DataFrame, alive: np.ndarray, rejections: Rejections) -> None:
@@ -126,7 +127,7 @@ count = "number"
         rejections.add("records", np.flatnonzero(no_quantity), ReasonCode.MISSING_VALUE,
                        "catch row has neither a weight nor a count")
 
-    def convert(self, opening: Opening, records: RecordCheck, hauls: pd.DataFrame, flags: list[list[str]],
+    def convert(self, opening: Opening, records: RecordCheck, hauls: pd.DataFrame, flags: dict[str, np.ndarray],
                 study: Study) -> tuple[pd.DataFrame, pd.DataFrame, list[str]]:
         profile = opening.profile
         ev_raw, rc_raw, rc, rej = opening.ev_raw, opening.rc_raw, opening.rc, opening.rejections
@@ -166,7 +167,7 @@ count = "number"
                     f"none of this haul's catch rows could be read, and {unattributed} catch row(s) in "
                     f"{rc_raw.path.name} have no readable haul id, so its catch is unknown; fix the catch "
                     "file and ingest again with --replace")
-            flags = [f for f, known in zip(flags, ~unknown_catch, strict=True) if known]
+            flags = {name: mask[~unknown_catch] for name, mask in flags.items()}
             hauls = hauls[~unknown_catch].reset_index(drop=True)
         # every rejection is known: only the rejected rows' text is needed (for the quarantine)
         for table in (ev_raw, rc_raw):
@@ -187,11 +188,10 @@ count = "number"
                              blocked, study, profile.protocol, quantities)
         del catch
 
-        hauls["flags"] = [
-            f + ([STAGE_UNRESOLVED] if e in unresolved else []) + (["catch_incomplete"] if e in incomplete else [])
-            for f, e in zip(flags, hauls["event_id"], strict=True)
-        ]
-        n_disagree = sum(DISTANCE_DISAGREES in f for f in hauls["flags"])
+        # one tuple per distinct combination of flags, shared by the hauls that have it
+        hauls["flags"] = flag_tuples({**flags, STAGE_UNRESOLVED: is_in(hauls["event_id"], list(unresolved)),
+                                      "catch_incomplete": is_in(hauls["event_id"], list(incomplete))})
+        n_disagree = int(flags[DISTANCE_DISAGREES].sum())
         if n_disagree:
             notes.append(f"{ev_raw.path.name}: {n_disagree} haul(s) have a logged distance and a straight "
                          f"start-end line that differ by more than {DISTANCE_TOLERANCE:.0%}; the logged distance "
@@ -199,8 +199,9 @@ count = "number"
         return hauls.drop(columns=["bottom_temperature"]), values, notes
 
     @staticmethod
-    def _hauls(ev: pd.DataFrame, study: Study, rej: Rejections) -> tuple[pd.DataFrame, list[list[str]]]:
-        """Validate hauls and compute distance, duration, area swept and the tow midpoint."""
+    def _hauls(ev: pd.DataFrame, study: Study, rej: Rejections) -> tuple[pd.DataFrame, dict[str, np.ndarray]]:
+        """Validate hauls and compute distance, duration, area swept and the tow midpoint;
+        returns the accepted hauls and their flags (flag -> mask over them)."""
         n = len(ev)
         pos = np.arange(n)
         start, end, duration_h, alive = event_times(ev, rej, ~rej.mask("events", n))
@@ -267,20 +268,9 @@ count = "number"
             **track.columns(),
             "bottom_temperature": ev["bottom_temperature"],
         })[alive].reset_index(drop=True)
-        flag_lists = []
-        for derived, given, differs, checked in zip(speed_derived[alive], logged[alive], disagrees[alive],
-                                                    np.isfinite(tow_speed)[alive], strict=True):
-            f = []
-            if derived:
-                f.append("speed_derived")
-            if given:
-                f.append(DISTANCE_LOGGED)
-            if differs:
-                f.append(DISTANCE_DISAGREES)
-            if not checked:
-                f.append("speed_unchecked")
-            flag_lists.append(f)
-        return hauls, flag_lists
+        # the flags of each accepted haul, as masks (in the order they are listed)
+        return hauls, {"speed_derived": speed_derived[alive], DISTANCE_LOGGED: logged[alive],
+                       DISTANCE_DISAGREES: disagrees[alive], "speed_unchecked": ~np.isfinite(tow_speed)[alive]}
 
 
 def _catch_values(catch: pd.DataFrame) -> pd.DataFrame:

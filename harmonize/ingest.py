@@ -589,7 +589,7 @@ class Assembly:
         del values
         for i in range(0, max(len(order), 1), self.block_rows):
             take = pa.array(order[i:i + self.block_rows], pa.int64())
-            con.register("va", _decoded(va_tab.take(take)))
+            con.register("va", va_tab.take(take))
             con.register("ev_rows", self.events.take(pa.array(position[take.to_numpy()], pa.int64())))
             block = con.sql(sql, params=self.params).to_arrow_table()
             con.unregister("va")

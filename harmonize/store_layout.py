@@ -96,31 +96,40 @@ def metadata_problem(doc: dict[str, Any] | None, footer_rows: int) -> str | None
     return None
 
 
-def write_partitions(table: pa.Table, folder: Path, provenance: Mapping[str, Any] | None = None) -> None:
+def write_partitions(table: pa.Table, folder: Path, provenance: Mapping[str, Any] | None = None,
+                     con: duckdb.DuckDBPyConnection | None = None) -> None:
     """Write observation rows as hive-partitioned zstd parquet under ``folder``.
 
-    Rows are sorted by source_kind, season_year, event_start, event_id. Only the sort keys
-    and a row index go through DuckDB's sort; the rows are then taken in that order by
-    Arrow and each partition, a contiguous slice, is copied to its own file. Sorting the
-    whole rows inside a partitioned COPY held about 3.5x the table in memory (BENCHMARKS.md).
-    With ``provenance`` each file carries :data:`METADATA_KEY` metadata (:func:`part_metadata`).
+    Rows are sorted by source_kind, season_year, event_start, event_id (nulls last). A
+    table in that order already (as the ingest's blocks are) is sliced as it is; otherwise
+    only the sort keys and a row index go through DuckDB's sort, the rows are then taken in
+    that order by Arrow, and each partition, a contiguous slice, is copied to its own file.
+    Sorting the whole rows inside a partitioned COPY held about 3.5x the table in memory
+    (BENCHMARKS.md). With ``provenance`` each file carries :data:`METADATA_KEY` metadata
+    (:func:`part_metadata`). ``con``: a connection to use (one is opened otherwise).
     """
     if table.num_rows == 0:
         return
-    con = connections.connect()
+    own = con is None
+    con = connections.connect() if con is None else con
     try:
-        keys = pa.table({"i": np.arange(table.num_rows, dtype=np.int64), "k": table["source_kind"],
-                         "y": table["season_year"], "t": table["event_start"], "e": table["event_id"]})
-        con.register("sort_keys", keys)
-        parts = con.execute("SELECT k, y, count(*) FROM sort_keys GROUP BY ALL ORDER BY k, y").fetchall()
-        if not all(k is not None and _PLAIN_PARTITION.fullmatch(k) for k, _, _ in parts):
-            _write_partitions_sorted_in_copy(con, table, folder, provenance)
-            return
-        order = con.sql("SELECT i FROM sort_keys ORDER BY k, y, t, e, i").to_arrow_table()["i"]
-        con.unregister("sort_keys")
-        del keys
-        in_order = np.array_equal(order.to_numpy(), np.arange(table.num_rows))
-        ordered = table if in_order else table.take(order)
+        parts = _sorted_partitions(table)
+        if parts is not None:
+            ordered = table
+        else:
+            keys = pa.table({"i": np.arange(table.num_rows, dtype=np.int64), "k": table["source_kind"],
+                             "y": table["season_year"], "t": table["event_start"], "e": table["event_id"]})
+            con.register("sort_keys", keys)
+            parts = con.execute("SELECT k, y, count(*) FROM sort_keys GROUP BY ALL ORDER BY k, y").fetchall()
+            if all(k is not None and _PLAIN_PARTITION.fullmatch(k) for k, _, _ in parts):
+                order = con.sql("SELECT i FROM sort_keys ORDER BY k, y, t, e, i").to_arrow_table()["i"]
+            con.unregister("sort_keys")
+            del keys
+            if not all(k is not None and _PLAIN_PARTITION.fullmatch(k) for k, _, _ in parts):
+                _write_partitions_sorted_in_copy(con, table, folder, provenance)
+                return
+            in_order = np.array_equal(order.to_numpy(), np.arange(table.num_rows))
+            ordered = table if in_order else table.take(order)
         offset = 0
         for kind, year, n in parts:
             target = folder / f"source_kind={kind}" / f"season_year={'__HIVE_DEFAULT_PARTITION__' if year is None else year}"
@@ -134,7 +143,52 @@ def write_partitions(table: pa.Table, folder: Path, provenance: Mapping[str, Any
             con.unregister("part")
             offset += n
     finally:
-        con.close()
+        if own:
+            con.close()
+
+
+def in_store_order(table: pa.Table) -> bool:
+    """Whether the rows are sorted by source_kind, season_year, event_start, event_id, with
+    nulls last (DuckDB's order), comparing each row with the next (no sort)."""
+    n = table.num_rows
+    if n < 2:
+        return True
+    later = equal = None  # per pair of neighbours: the next row sorts after / level with this one
+    for name in ("source_kind", "season_year", "event_start", "event_id"):
+        col = table[name]
+        a, b = col.slice(0, n - 1), col.slice(1)
+        a_null, b_null = pc.is_null(a), pc.is_null(b)
+        # nulls last: a null after a value is later, two nulls are level
+        after = pc.or_(pc.and_(b_null, pc.invert(a_null)),
+                       pc.fill_null(pc.greater(b, a), False))
+        same = pc.or_(pc.and_(a_null, b_null), pc.fill_null(pc.equal(a, b), False))
+        if later is None:
+            later, equal = after, same
+        else:
+            later = pc.or_(later, pc.and_(equal, after))
+            equal = pc.and_(equal, same)
+    return bool(pc.all(pc.or_(later, equal)).as_py())
+
+
+def _sorted_partitions(table: pa.Table) -> list[tuple[str, int | None, int]] | None:
+    """(source_kind, season_year, rows) of each partition, in order, when the table is in
+    store order with plain partition values; None otherwise (the caller sorts)."""
+    if not in_store_order(table):
+        return None
+    kind, year = table["source_kind"].to_numpy(zero_copy_only=False), table["season_year"]
+    year_key = pc.fill_null(year, 0).to_numpy(zero_copy_only=False)  # nulls told apart by y_null
+    y_null = pc.is_null(year).to_numpy(zero_copy_only=False)
+    cut = np.flatnonzero((kind[1:] != kind[:-1]) | (year_key[1:] != year_key[:-1]) | (y_null[1:] != y_null[:-1])) + 1
+    starts = np.concatenate([[0], cut])
+    counts = np.diff(np.concatenate([starts, [table.num_rows]]))
+    parts = []
+    for start, count in zip(starts.tolist(), counts.tolist(), strict=True):
+        k = kind[start]
+        if k is None or not _PLAIN_PARTITION.fullmatch(k):
+            return None
+        y = year[start].as_py()
+        parts.append((k, y, count))
+    return parts
 
 
 def write_blocks(blocks: Iterable[pa.Table], folder: Path,
@@ -150,12 +204,18 @@ def write_blocks(blocks: Iterable[pa.Table], folder: Path,
     errors: list[BaseException] = []
 
     def writer() -> None:
-        while (block := waiting.get()) is not None:
-            if not errors:  # after an error, drain without writing
-                try:
-                    write_partitions(block, folder, provenance)
-                except BaseException as exc:  # noqa: BLE001  (re-raised by the caller below)
-                    errors.append(exc)
+        con = None  # one connection for every block
+        try:
+            while (block := waiting.get()) is not None:
+                if not errors:  # after an error, drain without writing
+                    try:
+                        con = con or connections.connect()
+                        write_partitions(block, folder, provenance, con)
+                    except BaseException as exc:  # noqa: BLE001  (re-raised by the caller below)
+                        errors.append(exc)
+        finally:
+            if con is not None:
+                con.close()
 
     thread = threading.Thread(target=writer, name="harmonize-writer", daemon=True)
     thread.start()

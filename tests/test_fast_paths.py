@@ -223,3 +223,65 @@ def test_partition_writer_equals_duckdb_partitioned_copy(tmp_path: Path) -> None
     for part in ours.rglob("*.parquet"):
         rows = duckdb.sql(f"SELECT event_start, event_id FROM read_parquet('{part}')").df()
         assert rows.equals(rows.sort_values(["event_start", "event_id"], kind="stable").reset_index(drop=True))
+
+
+_KEY_ROWS = st.lists(st.tuples(st.sampled_from(["effort", "trawl", "transect"]),
+                               st.one_of(st.none(), st.integers(2019, 2021)),
+                               st.one_of(st.none(), st.integers(0, 3)),
+                               st.sampled_from(["H1", "H10", "H2", "h1", "Ø1"])), max_size=12)
+
+
+def _key_table(rows: list[tuple]) -> pa.Table:
+    kinds, years, starts, ids = zip(*rows, strict=True) if rows else ((), (), (), ())
+    return pa.table({
+        "source_kind": pa.array(list(kinds), pa.string()),
+        "season_year": pa.array(list(years), pa.int32()),
+        "event_start": pa.array([None if s is None else pd.Timestamp("2020-01-01", tz="UTC") + pd.Timedelta(hours=s)
+                                 for s in starts], pa.timestamp("us", tz="UTC")),
+        "event_id": pa.array(list(ids), pa.string()),
+        "record_id": pa.array([f"r{i}" for i in range(len(rows))], pa.string()),
+    })
+
+
+@given(_KEY_ROWS, st.booleans())
+def test_store_order_check_agrees_with_a_sort(rows: list[tuple], sort_first: bool) -> None:
+    """Rule: a table is in store order when sorting it by source_kind, season_year,
+    event_start, event_id (nulls last, text by bytes as DuckDB orders VARCHAR) leaves it as
+    it is. The writer slices such a table without sorting it (store_layout.in_store_order)."""
+    from harmonize.store_layout import in_store_order
+
+    def key(r: tuple) -> tuple:
+        return tuple((v is None, v.encode() if isinstance(v, str) else (v or 0)) for v in r)
+
+    if sort_first:
+        rows = sorted(rows, key=key)
+    expected = all(key(a) <= key(b) for a, b in zip(rows, rows[1:], strict=False))
+    assert in_store_order(_key_table(rows)) == expected
+
+
+@given(_KEY_ROWS)
+def test_partition_writer_gives_the_same_files_sorted_or_not(tmp_path_factory: pytest.TempPathFactory,
+                                                              rows: list[tuple]) -> None:
+    """A table already in store order (sliced as it is) and the same rows in another order
+    (sorted by DuckDB first) give the same partitions, rows and order within each file."""
+    import duckdb
+
+    from harmonize.store_layout import write_partitions
+
+    if not rows:
+        return
+    table = _key_table(rows)
+    con = duckdb.connect()
+    con.register("t", table)
+    ordered = con.sql("SELECT * FROM t ORDER BY source_kind, season_year, event_start, event_id, record_id") \
+        .to_arrow_table()
+    con.close()
+    folder = tmp_path_factory.mktemp("parts")
+    results = []
+    for name, t in (("sorted", ordered), ("shuffled", table.take(np.random.default_rng(0).permutation(len(rows))))):
+        write_partitions(t, folder / name)
+        files = sorted(p.relative_to(folder / name).parent.as_posix() for p in (folder / name).rglob("*.parquet"))
+        content = {d: duckdb.sql(f"SELECT event_start, event_id FROM read_parquet('{folder / name / d}/*.parquet')")
+                   .fetchall() for d in files}
+        results.append((files, content))
+    assert results[0] == results[1]

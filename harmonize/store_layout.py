@@ -17,6 +17,7 @@ alone says where it came from, and the manifest can be rebuilt from the files
 from __future__ import annotations
 
 import json
+import os
 import queue
 import re
 import threading
@@ -103,10 +104,12 @@ def write_partitions(table: pa.Table, folder: Path, provenance: Mapping[str, Any
     Rows are sorted by source_kind, season_year, event_start, event_id (nulls last). A
     table in that order already (as the ingest's blocks are) is sliced as it is; otherwise
     only the sort keys and a row index go through DuckDB's sort, the rows are then taken in
-    that order by Arrow, and each partition, a contiguous slice, is copied to its own file.
-    Sorting the whole rows inside a partitioned COPY held about 3.5x the table in memory
-    (BENCHMARKS.md). With ``provenance`` each file carries :data:`METADATA_KEY` metadata
-    (:func:`part_metadata`). ``con``: a connection to use (one is opened otherwise).
+    that order by Arrow, and each partition, a contiguous slice, is written to its own file
+    by Arrow's parquet writer (straight from the Arrow columns: a DuckDB COPY of the slice
+    took twice the time and held a second copy of the rows; BENCHMARKS.md). Sorting the
+    whole rows inside a partitioned COPY held about 3.5x the table in memory. With
+    ``provenance`` each file carries :data:`METADATA_KEY` metadata (:func:`part_metadata`).
+    ``con``: a connection to use (one is opened otherwise).
     """
     if table.num_rows == 0:
         return
@@ -135,16 +138,32 @@ def write_partitions(table: pa.Table, folder: Path, provenance: Mapping[str, Any
             target = folder / f"source_kind={kind}" / f"season_year={'__HIVE_DEFAULT_PARTITION__' if year is None else year}"
             target.mkdir(parents=True, exist_ok=True)
             part = ordered.slice(offset, n)
-            con.register("part", part.drop_columns(["source_kind", "season_year"]))
-            name = sql_text(str(target / f"part-{uuid.uuid4()}.parquet"))
-            kv = _kv_option(provenance, n, _zero_filled(part) if provenance is not None else None)
-            con.execute(f"COPY part TO {name} (FORMAT parquet, COMPRESSION zstd, "
-                        f"ROW_GROUP_SIZE {_ROW_GROUP_ROWS}{kv})")
-            con.unregister("part")
+            _write_part(part.drop_columns(["source_kind", "season_year"]), target / f"part-{uuid.uuid4()}.parquet",
+                        None if provenance is None else part_metadata(provenance, n, _zero_filled(part)))
             offset += n
     finally:
         if own:
             con.close()
+
+
+def _write_part(rows: pa.Table, path: Path, metadata: str | None) -> None:
+    """One zstd parquet part file, with ``metadata`` under :data:`METADATA_KEY`.
+
+    No Arrow schema goes into the footer: readers take each column's type from the parquet
+    logical types alone, as in the files DuckDB writes (times: UTC instants). A failed write
+    (a full disk) is an OSError naming the file.
+    """
+    try:
+        with pq.ParquetWriter(path, rows.schema, compression="zstd", store_schema=False) as writer:
+            writer.write_table(rows, row_group_size=_ROW_GROUP_ROWS)
+            if metadata is not None:
+                writer.add_key_value_metadata({METADATA_KEY: metadata})
+    except OSError as exc:
+        if exc.filename is not None:
+            raise
+        found = re.search(r"errno (\d+)", str(exc), re.IGNORECASE)
+        code = exc.errno or (int(found.group(1)) if found else None)
+        raise OSError(code, os.strerror(code) if code else str(exc), str(path)) from exc
 
 
 def in_store_order(table: pa.Table) -> bool:

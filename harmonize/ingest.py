@@ -462,9 +462,9 @@ class Assembly:
 
     The output's events are tagged once and held as Arrow columns; with ``consume`` the
     output's events frame is tagged in place and then emptied, so that its memory is free
-    before the rows are made (:func:`run` hands its output over so). :meth:`blocks` makes the rows; after the last block,
-    :meth:`events_without_values` lists the events none of whose values became a row, as
-    seen in the rows themselves.
+    before the rows are made (:func:`run` hands its output over so). :meth:`blocks` makes
+    the rows; after the last block, :meth:`events_without_values` lists the events none of
+    whose values became a row, as seen in the rows themselves.
     """
 
     def __init__(self, out: AdapterOutput, study: Study, profile: Profile, kind: str, ingest_id: str,

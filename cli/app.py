@@ -63,6 +63,14 @@ def _plain_argument(arg: TyperArgument) -> None:
     arg._usage_display_name = usage_name  # type: ignore[method-assign]
 
 
+def _load_compiled_libraries() -> None:
+    """Import the compiled libraries a command works with (their start-up must not be cut)."""
+    import duckdb  # noqa: F401
+    import numpy  # noqa: F401
+    import pandas  # noqa: F401
+    import pyarrow  # noqa: F401
+
+
 class HarmonizeGroup(TyperGroup):
     """Turns every failure into one line on stderr and a documented exit code."""
 
@@ -81,6 +89,9 @@ class HarmonizeGroup(TyperGroup):
             # SIGINT / SIGTERM stop DuckDB queries through the connection and end in 130 / 143;
             # the HARMONIZE_* variables are read here, once, and apply to this command only
             with interrupts.installed(), settings.applied(settings.from_environment(os.environ)):
+                if "--help" not in [*getattr(ctx, "protected_args", []), *ctx.args]:
+                    with interrupts.shielded():  # an interrupt while they load is raised after
+                        _load_compiled_libraries()
                 return super().invoke(ctx)
         except interrupts.Interrupted as exc:
             _interrupted(exc.signum, exc.committed)

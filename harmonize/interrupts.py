@@ -126,6 +126,25 @@ def deferred() -> Iterator[None]:
         raise Interrupted(_pending, committed=True)
 
 
+@contextmanager
+def shielded() -> Iterator[None]:
+    """A section an interrupt must not cut that changes nothing: the interrupt is raised when
+    it ends.
+
+    Loading a compiled library is one: DuckDB's module builds Python enums while it
+    initialises, and an exception raised there by the handler aborts the whole process
+    (SIGABRT) instead of ending the command with 130 or 143.
+    """
+    global _deferring
+    _deferring += 1
+    try:
+        yield
+    finally:
+        _deferring -= 1
+    if not _deferring and _pending is not None:
+        raise Interrupted(_pending, committed=_committed)
+
+
 def committed() -> bool:
     """True once a deferred section (a commit) completed since :func:`installed`."""
     return _committed

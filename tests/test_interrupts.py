@@ -189,3 +189,36 @@ def test_a_read_only_folder_is_one_line(study_dir: Path, capsys: pytest.CaptureF
         finally:
             os.chmod(study_dir, 0o755)
         assert code == 2 and "permission denied" in err and len(err.strip().splitlines()) == 1
+
+
+def test_an_interrupt_while_libraries_load_is_raised_after_they_have_loaded() -> None:
+    # A signal whose handler raised inside DuckDB's module initialisation aborted the process
+    # (SIGABRT: "Critical nanobind error"), found by the test above in a fresh clone; the
+    # command line now loads the compiled libraries in a shielded section.
+    import os
+
+    from harmonize import interrupts
+
+    with interrupts.installed():
+        loaded = False
+        with pytest.raises(interrupts.Interrupted) as caught:
+            with interrupts.shielded():
+                os.kill(os.getpid(), signal.SIGINT)  # the handler runs here, inside the section
+                loaded = True
+        assert loaded and caught.value.signum == signal.SIGINT and not caught.value.committed
+    with interrupts.installed(), interrupts.shielded():  # no signal: nothing raised
+        pass
+
+
+def test_the_command_line_loads_the_compiled_libraries_in_a_shielded_section() -> None:
+    from unittest import mock
+
+    import cli.app as app
+    from harmonize import interrupts
+
+    depth = []
+    with mock.patch.object(app, "_load_compiled_libraries", lambda: depth.append(interrupts._deferring)):
+        from typer.testing import CliRunner
+
+        CliRunner().invoke(app.app, ["status", "--study", "/nonexistent-study"])
+    assert depth == [1]
